@@ -1,0 +1,259 @@
+"""Settings: one TOML file, validated once, merged per camera.
+
+Every setting has a default that works on a new scene; the file only changes what it
+names. Sections are plain dataclasses so the rest of the code reads attributes, never
+dictionaries. A camera table (``[cameras.NAME]``) may override any key of the
+``[frames]``, ``[model]`` and ``[calibration]`` sections for that camera, and adds the
+camera's ignore mask.
+
+Relative paths in the file are taken from the folder inspector is run in.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import sys
+from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any
+
+from inspector.errors import UsageError
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+#: Where the config is looked for when ``--config`` is not given.
+DEFAULT_CONFIG = Path("config") / "inspector.toml"
+
+
+@dataclass(frozen=True)
+class PathSettings:
+    store: str = "inspector-store"
+    out: str = "inspector-out"
+
+
+@dataclass(frozen=True)
+class FrameSettings:
+    #: Long side of the working resolution in pixels; the short side keeps the aspect ratio.
+    long_side: int = 320
+    #: Frames with more pixels than this are skipped before decoding (decompression bombs).
+    max_pixels: int = 100_000_000
+    #: strftime-style patterns searched for in file names for the capture time.
+    time_formats: tuple[str, ...] = (
+        "%Y-%m-%dT%H-%M-%S",
+        "%Y-%m-%d_%H-%M-%S",
+        "%Y-%m-%d %H-%M-%S",
+        "%Y%m%dT%H%M%S",
+        "%Y%m%d_%H%M%S",
+        "%Y%m%d-%H%M%S",
+        "%Y%m%d%H%M%S",
+    )
+    #: Model colour (luminance plus half-resolution chroma); false models luminance only.
+    colour: bool = True
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    #: Density model: "ppca" (per-location probabilistic PCA) or "vae".
+    model: str = "ppca"
+    #: Patch side and stride in working-resolution pixels (even; stride divides patch).
+    patch: int = 8
+    stride: int = 4
+    #: Latent size per location; 0 chooses it from ``explained_variance``.
+    latent: int = 0
+    explained_variance: float = 0.9
+    max_latent: int = 24
+
+
+@dataclass(frozen=True)
+class CalibrationSettings:
+    #: False-alarm rate promised on normal frames (conformal guarantee).
+    alpha: float = 0.01
+    #: Number of time blocks for cross-conformal calibration.
+    folds: int = 5
+
+
+@dataclass(frozen=True)
+class CameraMask:
+    #: Polygons in pixel coordinates of the exported frame, each a list of [x, y].
+    polygons: tuple[tuple[tuple[float, float], ...], ...] = ()
+    #: A mask image (same aspect ratio as the frames); non-zero pixels are ignored.
+    image: str = ""
+
+
+@dataclass(frozen=True)
+class CameraConfig:
+    """Everything that decides how one camera is learnt and scored."""
+
+    name: str
+    frames: FrameSettings
+    model: ModelSettings
+    calibration: CalibrationSettings
+    mask: CameraMask
+
+
+@dataclass(frozen=True)
+class Config:
+    paths: PathSettings = field(default_factory=PathSettings)
+    frames: FrameSettings = field(default_factory=FrameSettings)
+    model: ModelSettings = field(default_factory=ModelSettings)
+    calibration: CalibrationSettings = field(default_factory=CalibrationSettings)
+    #: Raw per-camera tables, validated when read through :meth:`camera`.
+    cameras: dict[str, dict[str, Any]] = field(default_factory=dict)
+    #: Sections that other parts of the tool own (watch, events, health, ...), as read.
+    extra: dict[str, dict[str, Any]] = field(default_factory=dict)
+    source: str = "built-in defaults"
+
+    def camera(self, name: str) -> CameraConfig:
+        """Settings for camera ``name``: the global sections with its overrides applied."""
+        table = dict(self.cameras.get(name, {}))
+        where = f"[cameras.{name}]"
+        mask = CameraMask(
+            polygons=_polygons(table.pop("mask_polygons", ()), where),
+            image=_typed(table.pop("mask_image", ""), str, f"{where} mask_image"),
+        )
+        sections = {"frames": self.frames, "model": self.model, "calibration": self.calibration}
+        out: dict[str, Any] = {}
+        for key, current in sections.items():
+            names = {f.name for f in fields(current)}
+            mine = {k: table.pop(k) for k in list(table) if k in names}
+            out[key] = _build(type(current), mine, where, base=current)
+        if table:
+            raise UsageError(f"{self.source}: unknown key {where} {sorted(table)[0]!r}")
+        return CameraConfig(name=name, mask=mask, **out)
+
+    def section(self, name: str, cls: type) -> Any:
+        """Build a dataclass ``cls`` from the extra section ``[name]`` (defaults if absent)."""
+        return _build(cls, dict(self.extra.get(name, {})), f"[{name}]", source=self.source)
+
+
+def load_config(path: str | Path | None = None) -> Config:
+    """Read and validate the config file.
+
+    Parameters
+    ----------
+    path : str or Path, optional
+        The TOML file. ``None`` uses ``config/inspector.toml`` in the working folder when it
+        exists, else the built-in defaults.
+
+    Raises
+    ------
+    UsageError
+        The file is missing (when named), is not valid TOML, or holds an unknown key or a
+        value of the wrong type or range; the message names the key.
+    """
+    if path is None:
+        if not DEFAULT_CONFIG.is_file():
+            return Config()
+        path = DEFAULT_CONFIG
+    path = Path(path)
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise UsageError(f"config file not found: {path}") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise UsageError(f"cannot read config file {path}: {exc}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise UsageError(f"config file {path} is not valid TOML: {exc}") from None
+    src = str(path)
+    known = {"paths": PathSettings, "frames": FrameSettings, "model": ModelSettings,
+             "calibration": CalibrationSettings}
+    built = {k: _build(cls, data.pop(k, {}), f"[{k}]", source=src) for k, cls in known.items()}
+    cameras = data.pop("cameras", {})
+    if not isinstance(cameras, dict) or not all(isinstance(v, dict) for v in cameras.values()):
+        raise UsageError(f"{src}: [cameras] must hold one table per camera, e.g. [cameras.dock]")
+    extra = {}
+    for key, value in data.items():
+        if not isinstance(value, dict):
+            raise UsageError(f"{src}: unknown top-level key {key!r}")
+        extra[key] = value
+    config = Config(cameras=cameras, extra=extra, source=src, **built)
+    for name in cameras:
+        config.camera(name)  # validate now, not in the middle of a run
+    return config
+
+
+# --- validation ---------------------------------------------------------------------------
+
+_RANGES: dict[str, tuple[float, float]] = {
+    "long_side": (32, 4096),
+    "max_pixels": (1, 10**10),
+    "patch": (2, 64),
+    "stride": (1, 64),
+    "latent": (0, 512),
+    "explained_variance": (0.0, 1.0),
+    "max_latent": (1, 512),
+    "alpha": (1e-9, 0.5),
+    "folds": (2, 50),
+}
+
+
+def _typed(value: Any, kind: type, name: str) -> Any:
+    if kind is float and isinstance(value, int) and not isinstance(value, bool):
+        value = float(value)
+    if kind is tuple:
+        if not isinstance(value, (list, tuple)):
+            raise UsageError(f"{name} must be a list, got {value!r}")
+        return tuple(value)
+    if not isinstance(value, kind) or (kind is int and isinstance(value, bool)):
+        raise UsageError(f"{name} must be {kind.__name__}, got {value!r}")
+    return value
+
+
+def _build(cls: type, table: Any, where: str, base: Any = None, source: str = "") -> Any:
+    """Make dataclass ``cls`` from a TOML table, checking names, types and ranges."""
+    prefix = f"{source}: " if source else ""
+    if not isinstance(table, dict):
+        raise UsageError(f"{prefix}{where} must be a table")
+    base = base if base is not None else cls()
+    known = {f.name: f for f in fields(cls)}
+    values = {}
+    for key, value in table.items():
+        if key not in known:
+            raise UsageError(f"{prefix}unknown key {where} {key!r}")
+        default = getattr(base, key)
+        kind = tuple if isinstance(default, tuple) else type(default)
+        value = _typed(value, kind, f"{prefix}{where} {key}")
+        lo_hi = _RANGES.get(key)
+        if lo_hi and not (lo_hi[0] <= value <= lo_hi[1]):
+            raise UsageError(f"{prefix}{where} {key} = {value!r} is outside [{lo_hi[0]}, {lo_hi[1]}]")
+        values[key] = value
+    built = replace(base, **values)
+    check = getattr(built, "check", None) or _CHECKS.get(cls)
+    if check:
+        check(built, f"{prefix}{where}")
+    return built
+
+
+def _check_model(m: ModelSettings, where: str) -> None:
+    from inspector.models import MODEL_NAMES
+
+    if m.model not in MODEL_NAMES:
+        raise UsageError(f"{where} model = {m.model!r}: choose one of {', '.join(MODEL_NAMES)}")
+    if m.patch % 2 or m.stride % 2 or m.patch % m.stride:
+        raise UsageError(
+            f"{where} patch = {m.patch}, stride = {m.stride}: both must be even and the "
+            "stride must divide the patch"
+        )
+
+
+_CHECKS = {ModelSettings: _check_model}
+
+
+def _polygons(value: Any, where: str) -> tuple:
+    try:
+        polys = tuple(tuple((float(x), float(y)) for x, y in poly) for poly in value)
+    except (TypeError, ValueError):
+        raise UsageError(f"{where} mask_polygons must be a list of polygons, "
+                         "each a list of [x, y] points") from None
+    for poly in polys:
+        if len(poly) < 3:
+            raise UsageError(f"{where} mask_polygons: a polygon needs at least 3 points")
+    return polys
+
+
+def settings_dict(obj: Any) -> dict[str, Any]:
+    """A JSON-ready dict of a settings dataclass (tuples become lists)."""
+    return dataclasses.asdict(obj)

@@ -1,0 +1,184 @@
+"""Frames to patch feature vectors, masks to observed-feature masks, patch values to maps.
+
+A patch feature vector holds the luminance of a ``patch x patch`` window followed by the
+two chroma channels at half resolution (``patch/2 x patch/2`` each), the layout JPEG
+itself uses (4:2:0 chroma subsampling): exported camera frames carry no finer chroma
+than that, and the vector is half the size of full RGB (96 instead of 192 values for an
+8-pixel patch), which makes each location's covariance 8 times cheaper to decompose.
+With ``colour=False`` only the luminance is kept.
+
+Grid geometry: patches start every ``stride`` pixels; the map of a frame is a grid of
+``stride x stride`` cells, each the mean of the patches that cover it (``stride`` must
+divide ``patch``). Maps therefore keep the frame's aspect ratio.
+"""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
+
+def grid_shape(height: int, width: int, patch: int, stride: int) -> tuple[int, int]:
+    """Number of patch positions (rows, columns) in a ``height x width`` frame."""
+    if height < patch or width < patch:
+        raise ValueError(f"frame {width}x{height} is smaller than one {patch}-pixel patch")
+    return (height - patch) // stride + 1, (width - patch) // stride + 1
+
+
+def map_shape(height: int, width: int, patch: int, stride: int) -> tuple[int, int]:
+    """Shape (rows, columns) of the cell map of a ``height x width`` frame."""
+    gh, gw = grid_shape(height, width, patch, stride)
+    r = patch // stride
+    return gh + r - 1, gw + r - 1
+
+
+def feature_size(patch: int, colour: bool) -> int:
+    """Length d of a patch feature vector."""
+    return patch * patch + (2 * (patch // 2) ** 2 if colour else 0)
+
+
+def to_planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray | None]:
+    """Luminance and half-resolution chroma of RGB frames.
+
+    Parameters
+    ----------
+    images : ndarray, shape (n, H, W, 3), uint8
+        RGB frames; H and W even.
+    colour : bool
+
+    Returns
+    -------
+    luma : ndarray, shape (n, H, W), float32 in [0, 1]
+    chroma : ndarray, shape (n, H/2, W/2, 2), float32 in [0, 1], or None
+        Cr and Cb (ITU-R BT.601, as in JPEG), each the mean of a 2x2 block.
+    """
+    images = np.asarray(images)
+    if images.ndim != 4 or images.shape[-1] != 3 or images.dtype != np.uint8:
+        raise ValueError(f"expected (n, H, W, 3) uint8 frames, got {images.shape} {images.dtype}")
+    n, h, w, _ = images.shape
+    flat = images.reshape(n * h, w, 3)
+    if not colour:
+        luma = cv2.cvtColor(flat, cv2.COLOR_RGB2GRAY).astype(np.float32) / 255.0
+        return luma.reshape(n, h, w), None
+    ycc = cv2.cvtColor(flat, cv2.COLOR_RGB2YCrCb).astype(np.float32) / 255.0
+    ycc = ycc.reshape(n, h, w, 3)
+    chroma = ycc[..., 1:].reshape(n, h // 2, 2, w // 2, 2, 2).mean(axis=(2, 4))
+    return np.ascontiguousarray(ycc[..., 0]), chroma
+
+
+def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool) -> np.ndarray:
+    """Feature vector of every patch of every frame.
+
+    Parameters
+    ----------
+    images : ndarray, shape (n, H, W, 3), uint8
+    patch, stride : int
+        Even; ``stride`` divides ``patch``.
+    colour : bool
+
+    Returns
+    -------
+    ndarray, shape (n, gh * gw, d), float32
+        Row-major over the patch grid (see :func:`grid_shape`), d = :func:`feature_size`.
+    """
+    luma, chroma = to_planes(images, colour)
+    n, h, w = luma.shape
+    gh, gw = grid_shape(h, w, patch, stride)
+    parts = [_windows(luma, patch, stride, gh, gw).reshape(n, gh * gw, patch * patch)]
+    if chroma is not None:
+        half = patch // 2
+        for c in range(2):
+            win = _windows(np.ascontiguousarray(chroma[..., c]), half, stride // 2, gh, gw)
+            parts.append(win.reshape(n, gh * gw, half * half))
+    return np.concatenate(parts, axis=2) if len(parts) > 1 else np.ascontiguousarray(parts[0])
+
+
+def _windows(planes: np.ndarray, size: int, step: int, gh: int, gw: int) -> np.ndarray:
+    view = sliding_window_view(planes, (size, size), axis=(1, 2))[:, ::step, ::step]
+    return view[:, :gh, :gw]
+
+
+def observed_features(mask: np.ndarray | None, patch: int, stride: int,
+                      colour: bool) -> np.ndarray | None:
+    """Which entries of each patch's feature vector are observed under an ignore mask.
+
+    Parameters
+    ----------
+    mask : ndarray, shape (H, W), bool, or None
+        True where pixels are to be ignored.
+
+    Returns
+    -------
+    ndarray, shape (gh * gw, d), bool, or None when nothing is masked
+        A chroma entry counts as masked when any pixel of its 2x2 block is.
+    """
+    if mask is None or not mask.any():
+        return None
+    seen = (~mask.astype(bool)).astype(np.uint8)[None, ..., None].repeat(3, axis=-1)
+    h, w = mask.shape
+    gh, gw = grid_shape(h, w, patch, stride)
+    parts = [_windows(seen[..., 0].astype(bool), patch, stride, gh, gw).reshape(gh * gw, -1)]
+    if colour:
+        half = patch // 2
+        block = seen[0, ..., 0].reshape(h // 2, 2, w // 2, 2).min(axis=(1, 3)).astype(bool)[None]
+        win = _windows(block, half, stride // 2, gh, gw).reshape(gh * gw, -1)
+        parts += [win, win]
+    return np.concatenate(parts, axis=1)
+
+
+def fold_to_cells(values: np.ndarray, grid: tuple[int, int], patch: int,
+                  stride: int) -> np.ndarray:
+    """Spread per-patch values onto the cell map, averaging overlapping patches.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n, gh * gw)
+    grid : (gh, gw)
+
+    Returns
+    -------
+    ndarray, shape (n, gh + r - 1, gw + r - 1), float32, with r = patch // stride
+    """
+    gh, gw = grid
+    r = patch // stride
+    v = np.asarray(values, dtype=np.float32).reshape(-1, gh, gw)
+    if r == 1:
+        return v.copy()
+    out = np.zeros((v.shape[0], gh + r - 1, gw + r - 1), np.float32)
+    count = np.zeros(out.shape[1:], np.float32)
+    for a in range(r):
+        for b in range(r):
+            out[:, a:a + gh, b:b + gw] += v
+            count[a:a + gh, b:b + gw] += 1.0
+    return out / count
+
+
+def rasterize_mask(polygons, image_mask: np.ndarray | None, source_size: tuple[int, int],
+                   size: tuple[int, int]) -> np.ndarray | None:
+    """The ignore mask at working resolution from polygons and/or a mask image.
+
+    Parameters
+    ----------
+    polygons : sequence of sequences of (x, y)
+        In pixel coordinates of the exported frame (``source_size``).
+    image_mask : ndarray, shape (h, w), or None
+        Non-zero = ignore; any resolution with the frame's aspect ratio.
+    source_size, size : (width, height)
+        Exported and working resolution.
+
+    Returns
+    -------
+    ndarray, shape (H, W), bool, or None when nothing is masked
+    """
+    w, h = size
+    mask = np.zeros((h, w), np.uint8)
+    sx, sy = w / source_size[0], h / source_size[1]
+    for poly in polygons:
+        pts = np.array([[x * sx, y * sy] for x, y in poly], np.float32)
+        cv2.fillPoly(mask, [np.round(pts).astype(np.int32)], 1)
+    if image_mask is not None:
+        resized = cv2.resize((np.asarray(image_mask) > 0).astype(np.uint8), (w, h),
+                             interpolation=cv2.INTER_NEAREST)
+        mask |= resized
+    return mask.astype(bool) if mask.any() else None

@@ -1,0 +1,364 @@
+"""Reading frames: discovery, capture time and decoding. The one frame loader of the tool.
+
+Learn, scan and watch all go through :func:`discover` (which files are frames of which
+camera) and :func:`read_frame` (bytes to a working-resolution RGB array). A file that
+cannot become a frame raises :class:`~inspector.errors.FrameError` whose message is the
+reason recorded in ``skipped.csv``.
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import re
+from collections.abc import Iterable, Iterator
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from datetime import datetime
+from functools import lru_cache
+from pathlib import Path
+
+import cv2
+import numpy as np
+from PIL import Image
+
+from inspector.errors import FrameError
+
+cv2.setLogLevel(0)  # corrupt files are reported as skips, not as decoder chatter on stderr
+
+#: Leading bytes of the formats read, by content rather than by file extension.
+_SIGNATURES = (
+    (b"\xff\xd8\xff", "jpeg"),
+    (b"\x89PNG\r\n\x1a\n", "png"),
+    (b"BM", "bmp"),
+    (b"II*\x00", "tiff"),
+    (b"MM\x00*", "tiff"),
+)
+_PARTIAL_SUFFIXES = (".part", ".tmp", ".partial", ".crdownload")
+#: Two aspect ratios closer than this (relative) count as the same.
+ASPECT_TOLERANCE = 0.02
+
+
+@dataclass(frozen=True)
+class FrameFile:
+    """A file that may hold a frame: where it is and which camera it belongs to."""
+
+    path: Path
+    #: Path relative to the scanned folder, forward slashes (the ``frame`` CSV column).
+    rel: str
+    camera: str
+
+
+@dataclass
+class Frame:
+    """A decoded frame at working resolution."""
+
+    file: FrameFile
+    #: RGB image, shape (H, W, 3), uint8.
+    image: np.ndarray
+    time: datetime
+    #: (width, height) of the exported frame as stored on disk.
+    source_size: tuple[int, int]
+    notes: list[str] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class Skip:
+    """A file that was not scored, with the reason."""
+
+    rel: str
+    camera: str
+    reason: str
+
+
+def is_ignored_name(name: str) -> bool:
+    """True for hidden files and names of downloads still being written (never frames yet)."""
+    low = name.lower()
+    return name.startswith((".", "~")) or low.endswith(_PARTIAL_SUFFIXES)
+
+
+def sniff(head: bytes) -> str | None:
+    """The image format from a file's first bytes (``"jpeg"``, ``"png"``, ...), else None."""
+    for magic, kind in _SIGNATURES:
+        if head.startswith(magic):
+            return kind
+    return None
+
+
+def discover(source: Path, camera: str | None = None) -> tuple[list[FrameFile], list[Skip]]:
+    """List the frame files under ``source``, recursively, in a stable order.
+
+    Parameters
+    ----------
+    source : Path
+        The folder to read. Nothing is written there.
+    camera : str, optional
+        Every frame belongs to this camera. Without it, a frame's camera is its first
+        folder level under ``source``; files directly in ``source`` are skipped.
+
+    Returns
+    -------
+    files : list of FrameFile
+        Files whose content starts like a JPEG, PNG, BMP or TIFF image.
+    skips : list of Skip
+        Files passed over with the reason (not an image, a link leading outside source, ...).
+        Hidden files and partial-download names are ignored without a record.
+    """
+    root = source.resolve()
+    files: list[FrameFile] = []
+    skips: list[Skip] = []
+    seen_dirs: set[Path] = set()
+    for dirpath, dirnames, filenames in os.walk(root, followlinks=True):
+        here = Path(dirpath)
+        real = here.resolve()
+        if real in seen_dirs or not _inside(real, root):
+            dirnames[:] = []
+            continue
+        seen_dirs.add(real)
+        dirnames[:] = sorted(d for d in dirnames if not is_ignored_name(d)
+                             and _inside((here / d).resolve(), root))
+        for name in sorted(filenames):
+            if is_ignored_name(name):
+                continue
+            path = here / name
+            rel = path.relative_to(root).as_posix()
+            cam = camera if camera is not None else (rel.split("/")[0] if "/" in rel else "")
+            if not cam:
+                skips.append(Skip(rel, "", "not inside a camera folder (expected SOURCE/<camera>/...)"))
+                continue
+            if not _inside(path.resolve(), root):
+                skips.append(Skip(rel, cam, "link leads outside the scanned folder"))
+                continue
+            try:
+                with open(path, "rb") as fh:
+                    head = fh.read(16)
+            except OSError as exc:
+                skips.append(Skip(rel, cam, f"cannot read file: {exc.strerror or exc}"))
+                continue
+            if not head:
+                skips.append(Skip(rel, cam, "empty file"))
+            elif sniff(head) is None:
+                skips.append(Skip(rel, cam, "not an image (content is not JPEG, PNG, BMP or TIFF)"))
+            else:
+                files.append(FrameFile(path, rel, cam))
+    return files, skips
+
+
+def _inside(path: Path, root: Path) -> bool:
+    return path == root or root in path.parents
+
+
+# --- capture time --------------------------------------------------------------------------
+
+_FIELD_RE = {"%Y": r"\d{4}", "%m": r"\d{2}", "%d": r"\d{2}", "%H": r"\d{2}", "%M": r"\d{2}",
+             "%S": r"\d{2}", "%f": r"\d{1,6}", "%y": r"\d{2}", "%j": r"\d{3}"}
+
+
+@lru_cache(maxsize=64)
+def _pattern(fmt: str) -> re.Pattern[str]:
+    out, i = [], 0
+    while i < len(fmt):
+        token = fmt[i:i + 2]
+        if token in _FIELD_RE:
+            out.append(_FIELD_RE[token])
+            i += 2
+        else:
+            out.append(re.escape(fmt[i]))
+            i += 1
+    return re.compile("(?<!\\d)" + "".join(out) + "(?!\\d)")
+
+
+def time_from_name(name: str, formats: Iterable[str]) -> datetime | None:
+    """The capture time written in a file name, by the first of ``formats`` that matches.
+
+    >>> time_from_name("dock_20261130_221505.jpg", ["%Y%m%d_%H%M%S"])
+    datetime.datetime(2026, 11, 30, 22, 15, 5)
+    """
+    for fmt in formats:
+        for match in _pattern(fmt).finditer(name):
+            try:
+                return datetime.strptime(match.group(0), fmt)
+            except ValueError:
+                continue
+    return None
+
+
+def time_from_exif(data: bytes) -> datetime | None:
+    """EXIF DateTimeOriginal (else DateTime) of an image's bytes, if present and valid."""
+    try:
+        with Image.open(io.BytesIO(data)) as im:
+            exif = im.getexif()
+            raw = exif.get_ifd(0x8769).get(36867) or exif.get(306)
+    except Exception:  # any broken header: there is simply no EXIF time
+        return None
+    try:
+        return datetime.strptime(str(raw).strip("\x00 "), "%Y:%m:%d %H:%M:%S")
+    except (TypeError, ValueError):
+        return None
+
+
+def capture_time(path: Path, formats: Iterable[str], data: bytes | None = None) -> datetime:
+    """Capture time: file-name pattern, else EXIF DateTimeOriginal, else modification time."""
+    found = time_from_name(path.name, formats)
+    if found is None:
+        if data is None:
+            try:
+                with open(path, "rb") as fh:
+                    data = fh.read(1 << 16)
+            except OSError:
+                data = b""
+        found = time_from_exif(data)
+    if found is None:
+        try:
+            found = datetime.fromtimestamp(path.stat().st_mtime)
+        except OSError:
+            found = datetime.now()
+    return found
+
+
+# --- decoding ------------------------------------------------------------------------------
+
+def working_size(source_size: tuple[int, int], long_side: int) -> tuple[int, int]:
+    """(width, height) at working resolution: long side ``long_side``, aspect kept, even sides."""
+    w, h = source_size
+    scale = long_side / max(w, h)
+    even = lambda v: max(2, int(round(v * scale / 2.0)) * 2)  # noqa: E731
+    return even(w), even(h)
+
+
+def same_aspect(a: tuple[int, int], b: tuple[int, int]) -> bool:
+    ra, rb = a[0] / a[1], b[0] / b[1]
+    return abs(ra - rb) <= ASPECT_TOLERANCE * rb
+
+
+def _reduced_flag(kind: str, source_size: tuple[int, int], size: tuple[int, int]) -> int:
+    """OpenCV read mode: JPEGs decode at 1/2, 1/4 or 1/8 scale in the DCT domain when the
+    result still covers ``size``; other formats decode in full."""
+    if kind == "jpeg":
+        for factor, flag in ((8, cv2.IMREAD_REDUCED_COLOR_8), (4, cv2.IMREAD_REDUCED_COLOR_4),
+                             (2, cv2.IMREAD_REDUCED_COLOR_2)):
+            if source_size[0] // factor >= size[0] and source_size[1] // factor >= size[1]:
+                return flag
+    return cv2.IMREAD_COLOR
+
+
+def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int]]:
+    """Format and (width, height) from the header alone, refusing oversized or truncated files.
+
+    Raises
+    ------
+    FrameError
+        Not an image, a header that cannot be read, more than ``max_pixels`` pixels
+        (checked before any pixel is decoded), or a JPEG/PNG missing its end marker.
+    """
+    if not data:
+        raise FrameError("empty file")
+    kind = sniff(data[:16])
+    if kind is None:
+        raise FrameError("not an image (content is not JPEG, PNG, BMP or TIFF)")
+    saved = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None  # our own cap below, with our own message
+    try:
+        with Image.open(io.BytesIO(data)) as im:
+            size = (int(im.size[0]), int(im.size[1]))
+    except Exception:
+        raise FrameError(f"unreadable {kind.upper()} header (corrupt or truncated file)") from None
+    finally:
+        Image.MAX_IMAGE_PIXELS = saved
+    if size[0] < 1 or size[1] < 1:
+        raise FrameError(f"image has no pixels ({size[0]}x{size[1]})")
+    if size[0] * size[1] > max_pixels:
+        raise FrameError(f"too large: {size[0]}x{size[1]} = {size[0] * size[1]} pixels "
+                         f"exceeds max_pixels = {max_pixels}")
+    if kind == "jpeg" and data.rfind(b"\xff\xd9", max(0, len(data) - 4096)) < 0:
+        raise FrameError("truncated JPEG (no end-of-image marker)")
+    if kind == "png" and b"IEND" not in data[-64:]:
+        raise FrameError("truncated PNG (no end chunk)")
+    return kind, size
+
+
+def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: Iterable[str],
+               size: tuple[int, int] | None = None,
+               source_size: tuple[int, int] | None = None) -> Frame:
+    """Decode one frame to RGB uint8 at working resolution.
+
+    Parameters
+    ----------
+    file : FrameFile
+    long_side : int
+        Working long side, used when ``size`` is None.
+    max_pixels : int
+        Pixel cap, checked on the header before decoding.
+    time_formats : iterable of str
+        File-name patterns for the capture time.
+    size : (int, int), optional
+        Exact working (width, height), e.g. the baseline's. A frame of another aspect ratio
+        is refused; one of the same aspect but another resolution is resized, with a note.
+    source_size : (int, int), optional
+        The exported resolution the baseline was learnt from, for that note.
+
+    Returns
+    -------
+    Frame
+        ``image`` has shape (H, W, 3), dtype uint8, RGB.
+
+    Raises
+    ------
+    FrameError
+        With the skip reason.
+    """
+    try:
+        with open(file.path, "rb") as fh:
+            data = fh.read()
+    except FileNotFoundError:
+        raise FrameError("file disappeared before it could be read") from None
+    except OSError as exc:
+        raise FrameError(f"cannot read file: {exc.strerror or exc}") from None
+    kind, src = header_size(data, max_pixels)
+    notes = []
+    if size is None:
+        size = working_size(src, long_side)
+    elif not same_aspect(src, size):
+        ref = source_size or size
+        raise FrameError(f"aspect ratio of {src[0]}x{src[1]} differs from the baseline's "
+                         f"{ref[0]}x{ref[1]}")
+    elif source_size is not None and tuple(src) != tuple(source_size):
+        notes.append(f"resolution {src[0]}x{src[1]} differs from the baseline's "
+                     f"{source_size[0]}x{source_size[1]}; resized")
+    buf = np.frombuffer(data, dtype=np.uint8)
+    image = cv2.imdecode(buf, _reduced_flag(kind, src, size))
+    if image is None or image.size == 0:
+        raise FrameError(f"cannot decode {kind.upper()} data (corrupt file)")
+    if image.shape[1] != size[0] or image.shape[0] != size[1]:
+        image = cv2.resize(image, size, interpolation=cv2.INTER_AREA)
+    image = cv2.cvtColor(image, cv2.COLOR_BGR2RGB)
+    when = capture_time(file.path, time_formats, data)
+    return Frame(file=file, image=image, time=when, source_size=src, notes=notes)
+
+
+def iter_frames(files: Iterable[FrameFile], workers: int = 2, lookahead: int = 16,
+                **read_args) -> Iterator[tuple[FrameFile, Frame | FrameError]]:
+    """Decode frames in a thread pool (OpenCV releases the GIL), yielding in input order.
+
+    Yields ``(file, frame)`` or ``(file, FrameError)``; keyword arguments go to
+    :func:`read_frame`. At most ``lookahead`` frames are decoded ahead of the consumer.
+    """
+    def one(f: FrameFile) -> Frame | FrameError:
+        try:
+            return read_frame(f, **read_args)
+        except FrameError as exc:
+            return exc
+
+    it = iter(files)
+    with ThreadPoolExecutor(max_workers=max(1, workers)) as pool:
+        pending = []
+        for f in it:
+            pending.append((f, pool.submit(one, f)))
+            if len(pending) >= lookahead:
+                break
+        while pending:
+            f, fut = pending.pop(0)
+            nxt = next(it, None)
+            if nxt is not None:
+                pending.append((nxt, pool.submit(one, nxt)))
+            yield f, fut.result()
