@@ -1,0 +1,415 @@
+"""Per-location probabilistic PCA over patches: the default baseline model.
+
+Each patch position of the camera's frame has its own Gaussian density
+``N(mu, W W^T + sigma^2 I)`` fitted in closed form (Tipping & Bishop 1999, "Probabilistic
+principal component analysis", J. R. Statist. Soc. B 61(3), eqs. 7-8):
+
+    sigma^2 = mean of the d - q discarded eigenvalues of the sample covariance,
+    W = U_q (Lambda_q - sigma^2 I)^(1/2).
+
+Fitting streams over the frames and keeps only per-location sufficient statistics (count,
+sum, scatter), so memory does not grow with the number of frames. The statistics are
+kept per time block, which makes K-fold cross-fitting cheap: the model for fold k is fitted
+from the totals minus block k, and scores block k (cross-conformal calibration, Vovk 2015).
+
+Scoring uses the Woodbury identity and the matrix determinant lemma: with
+``M = W^T W + sigma^2 I_q``,
+
+    C^-1 = (I - W M^-1 W^T) / sigma^2,   log|C| = (d - q) log sigma^2 + log|M|,
+
+so a frame costs O(L d q) for L locations, never a d x d inverse. Ignored (masked) pixels
+are marginalised out exactly: the marginal of a Gaussian over the observed entries is the
+Gaussian with the observed rows of ``mu`` and ``W``, which is again a PPCA, and it is fitted
+from the observed sub-covariance.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from inspector.features import (feature_size, fold_to_cells, grid_shape, observed_features,
+                                patch_features, to_planes)
+from inspector.models.base import DensityModel, FrameSource, HeldOut
+
+LOG_2PI = float(np.log(2.0 * np.pi))
+
+
+# --- pure functions ------------------------------------------------------------------------
+
+def ppca_fit(mean: np.ndarray, cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
+             var_floor: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """Closed-form maximum-likelihood PPCA of each location (Tipping & Bishop 1999).
+
+    Parameters
+    ----------
+    mean : ndarray, shape (L, d)
+        Unused except for its shape; kept so the call reads like the model it builds.
+    cov : ndarray, shape (L, d, d)
+        Sample covariance of each location.
+    latent : int
+        Latent size q, 1 <= q < d.
+    observed : ndarray, shape (L, d), bool, optional
+        Observed feature entries; the fit uses the observed sub-covariance only and returns
+        zero rows of W for unobserved entries.
+    var_floor : float
+        Lower bound on sigma^2 (sensor and compression noise never vanish).
+
+    Returns
+    -------
+    W : ndarray, shape (L, d, q), float64
+    sigma2 : ndarray, shape (L,), float64
+    """
+    L, d, _ = cov.shape
+    cov = np.asarray(cov, dtype=np.float64)
+    if observed is not None:
+        o = observed.astype(np.float64)
+        cov = cov * o[:, :, None] * o[:, None, :]
+        d_obs = observed.sum(axis=1).astype(np.float64)
+    else:
+        d_obs = np.full(L, float(d))
+    evals, evecs = np.linalg.eigh(cov)  # ascending
+    evals = np.clip(evals[:, ::-1], 0.0, None)
+    evecs = evecs[:, :, ::-1]
+    q = latent
+    total = np.trace(cov, axis1=1, axis2=2)
+    rest = np.maximum(d_obs - q, 1.0)
+    sigma2 = np.maximum((total - evals[:, :q].sum(axis=1)) / rest, var_floor)
+    sigma2 = np.maximum(sigma2, 1e-12)
+    scale = np.sqrt(np.clip(evals[:, :q] - sigma2[:, None], 0.0, None))
+    W = evecs[:, :, :q] * scale[:, None, :]
+    if observed is not None:
+        W = W * observed[:, :, None]
+    return W, sigma2
+
+
+def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | None = None
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-location terms of the Woodbury form of the log-likelihood.
+
+    Returns
+    -------
+    B : ndarray, shape (L, d, q)
+        ``W chol(M^-1)``, so that ``r^T W M^-1 W^T r = |B^T r|^2``.
+    logdet : ndarray, shape (L,)
+        ``log|C|`` of the (observed) covariance, by the matrix determinant lemma.
+    d_obs : ndarray, shape (L,)
+        Number of observed entries.
+    """
+    L, d, q = W.shape
+    d_obs = observed.sum(axis=1).astype(np.float64) if observed is not None else np.full(L, float(d))
+    M = np.einsum("ldq,ldr->lqr", W, W) + sigma2[:, None, None] * np.eye(q)
+    Minv = np.linalg.inv(M)
+    chol = np.linalg.cholesky((Minv + Minv.transpose(0, 2, 1)) / 2)
+    B = np.matmul(W, chol)
+    logdet = (d_obs - q) * np.log(sigma2) + np.linalg.slogdet(M)[1]
+    return B, logdet, d_obs
+
+
+def ppca_nll(X: np.ndarray, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray,
+             observed: np.ndarray | None = None) -> np.ndarray:
+    """Negative log-likelihood of samples under per-location PPCA, in nats.
+
+    Parameters
+    ----------
+    X : ndarray, shape (n, L, d)
+    mean : ndarray, shape (L, d)
+    W : ndarray, shape (L, d, q)
+    sigma2 : ndarray, shape (L,)
+    observed : ndarray, shape (L, d), bool, optional
+        Entries left out are marginalised out (not zero-filled).
+
+    Returns
+    -------
+    ndarray, shape (n, L), float64
+        ``-log N(x_o; mu_o, W_o W_o^T + sigma^2 I)`` per sample and location.
+    """
+    if observed is not None:
+        W = W * observed[:, :, None]
+    B, logdet, d_obs = ppca_precompute(W, sigma2, observed)
+    return _nll(X, mean, B, sigma2, logdet, d_obs, observed)
+
+
+def _nll(X, mean, B, sigma2, logdet, d_obs, observed):
+    R = np.asarray(X) - mean[None]
+    if observed is not None:
+        R = R * observed[None]
+    sq = np.einsum("nld,nld->nl", R, R)
+    proj = np.matmul(R.transpose(1, 0, 2), B.astype(R.dtype, copy=False))  # (L, n, q)
+    lat = np.einsum("lnq,lnq->nl", proj, proj)
+    quad = (sq - lat) / sigma2[None]
+    return 0.5 * (d_obs * LOG_2PI + logdet + quad)[...]
+
+
+class Moments:
+    """Streaming sufficient statistics of patch features, per location and per time block.
+
+    Scatter is accumulated about a fixed shift (the first batch's mean) to keep the
+    float64 sums well conditioned.
+    """
+
+    def __init__(self, n_blocks: int, L: int, d: int):
+        self.count = np.zeros(n_blocks)
+        self.sum = np.zeros((n_blocks, L, d))
+        self.scatter = np.zeros((n_blocks, L, d, d))
+        self.shift: np.ndarray | None = None
+
+    def add(self, block: int, X: np.ndarray) -> None:
+        """Add samples ``X`` (n, L, d) to ``block``."""
+        if self.shift is None:
+            self.shift = X.mean(axis=0, dtype=np.float64).astype(np.float32)
+        Xc = X - self.shift[None]
+        self.count[block] += len(X)
+        self.sum[block] += Xc.sum(axis=0, dtype=np.float64)
+        Xt = np.ascontiguousarray(Xc.transpose(1, 2, 0))  # (L, d, n)
+        self.scatter[block] += np.matmul(Xt, Xt.transpose(0, 2, 1))
+
+    def mean_cov(self, leave_out: int | None = None) -> tuple[np.ndarray, np.ndarray, int]:
+        """Mean (L, d), unbiased covariance (L, d, d) and count, optionally without a block."""
+        keep = np.ones(len(self.count), bool)
+        if leave_out is not None:
+            keep[leave_out] = False
+        n = self.count[keep].sum()
+        s = self.sum[keep].sum(axis=0)
+        S = self.scatter[keep].sum(axis=0)
+        m = s / n
+        cov = (S - n * m[:, :, None] * m[:, None, :]) / max(n - 1.0, 1.0)
+        return self.shift + m, cov, int(n)
+
+
+def choose_latent(cov: np.ndarray, explained: float, max_latent: int,
+                  observed: np.ndarray | None = None) -> int:
+    """Latent size shared by all locations: the median over locations of the smallest q
+    explaining ``explained`` of the variance, within [1, max_latent] and below d."""
+    if observed is not None:
+        o = observed.astype(np.float64)
+        cov = cov * o[:, :, None] * o[:, None, :]
+    ev = np.clip(np.linalg.eigvalsh(cov)[:, ::-1], 0.0, None)
+    frac = np.cumsum(ev, axis=1) / np.maximum(ev.sum(axis=1, keepdims=True), 1e-20)
+    q_loc = (frac < explained).sum(axis=1) + 1
+    d_min = int(observed.sum(axis=1).max()) if observed is not None else cov.shape[1]
+    return int(np.clip(np.median(q_loc), 1, min(max_latent, d_min - 1)))
+
+
+# --- the model -----------------------------------------------------------------------------
+
+class PatchPPCA(DensityModel):
+    """Per-location probabilistic PCA of patch features.
+
+    Parameters
+    ----------
+    patch, stride : int
+        Patch side and step in working-resolution pixels (even; stride divides patch).
+    colour : bool
+        Luminance plus half-resolution chroma (True) or luminance only.
+    latent : int
+        Latent size q; 0 chooses it from ``explained_variance`` (see :func:`choose_latent`).
+    explained_variance : float
+    max_latent : int
+    var_floor : float
+        Lower bound on each location's noise variance sigma^2, in squared [0, 1] intensity
+        units. The default 1e-4 (a standard deviation of about 2.5 grey levels) keeps flat or
+        saturated areas from becoming infinitely sensitive to compression noise.
+    batch_size : int
+        Frames per batch while fitting and scoring.
+
+    Attributes
+    ----------
+    mean_ : ndarray, shape (L, d)
+    W_ : ndarray, shape (L, d, q)
+    sigma2_ : ndarray, shape (L,)
+    observed_ : ndarray, shape (L, d), bool, or None
+    grid_ : (int, int)
+        Patch grid (rows, columns); L = rows * columns.
+    n_frames_ : int
+    """
+
+    kind = "ppca"
+
+    def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
+                 explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
+                 batch_size: int = 32):
+        self.patch = patch
+        self.stride = stride
+        self.colour = colour
+        self.latent = latent
+        self.explained_variance = explained_variance
+        self.max_latent = max_latent
+        self.var_floor = var_floor
+        self.batch_size = batch_size
+
+    def get_params(self) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in ("patch", "stride", "colour", "latent",
+                                                "explained_variance", "max_latent",
+                                                "var_floor", "batch_size")}
+
+    # fitting
+
+    def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:
+        """Fit on every frame of ``source``; cross-fit one model per time block.
+
+        Returns
+        -------
+        HeldOut
+            Raw maps of every frame from the model fitted without that frame's block.
+        """
+        w, h = source.size
+        self.grid_ = grid_shape(h, w, self.patch, self.stride)
+        L = self.grid_[0] * self.grid_[1]
+        d = feature_size(self.patch, self.colour)
+        self.observed_ = observed_features(mask, self.patch, self.stride, self.colour)
+        blocks = np.asarray(source.blocks)
+        labels = np.unique(blocks)
+        moments = Moments(len(labels), L, d)
+        order = np.argsort(blocks, kind="stable")
+        block_of = {b: i for i, b in enumerate(labels)}
+        for idx, images in source.batches(order, self.batch_size):
+            X = patch_features(images, self.patch, self.stride, self.colour)
+            for b in np.unique(blocks[idx]):
+                moments.add(block_of[b], X[blocks[idx] == b])
+        if moments.count.sum() < 2:
+            raise ValueError("need at least two decodable frames to fit")
+        self.n_frames_ = int(moments.count.sum())
+        mean, cov, _ = moments.mean_cov()
+        q = self.latent or choose_latent(cov, self.explained_variance, self.max_latent,
+                                         self.observed_)
+        d_min = int(self.observed_.sum(axis=1).max()) if self.observed_ is not None else d
+        self.q_ = int(min(q, d_min - 1, self.n_frames_ - 1))
+        # One model per held-out block scores that block, then the final model on all frames.
+        held_idx, held_maps = [], []
+        present = [i for i, c in enumerate(moments.count) if c > 0]
+        if len(present) >= 2:
+            for i in present:
+                m_k, c_k, n_k = moments.mean_cov(leave_out=i)
+                if n_k < 2:
+                    continue
+                self._set(m_k, c_k)
+                idx_k = order[np.isin(blocks[order], labels[i])]
+                for idx, images in source.batches(idx_k, self.batch_size):
+                    held_idx.append(idx)
+                    held_maps.append(self.score_maps(images))
+        self._set(mean, cov)
+        if held_maps:
+            return HeldOut(np.concatenate(held_idx), np.concatenate(held_maps))
+        return HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32))
+
+    def _set(self, mean: np.ndarray, cov: np.ndarray) -> None:
+        self.mean_ = mean.astype(np.float32)
+        self.W_, self.sigma2_ = ppca_fit(mean, cov, self.q_, self.observed_, self.var_floor)
+        self._prepare()
+
+    def _prepare(self) -> None:
+        B, logdet, d_obs = ppca_precompute(self.W_, self.sigma2_, self.observed_)
+        self._B = B.astype(np.float32)
+        self._logdet, self._d_obs = logdet, d_obs
+        r = self.patch // self.stride
+        self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
+
+    # scoring
+
+    def patch_nll(self, images: np.ndarray) -> np.ndarray:
+        """Negative log-likelihood of every patch, shape (n, L), float64."""
+        X = patch_features(images, self.patch, self.stride, self.colour)
+        return _nll(X, self.mean_, self._B, self.sigma2_, self._logdet, self._d_obs,
+                    self.observed_)
+
+    def score_maps(self, images: np.ndarray) -> np.ndarray:
+        """Raw anomaly maps: patch NLL averaged onto cells, shape (n, h, w), float32.
+
+        Fully masked locations score 0 (they carry no evidence).
+        """
+        nll = self.patch_nll(images)
+        if self.observed_ is not None:
+            nll[:, self._d_obs == 0] = 0.0
+        return fold_to_cells(nll, self.grid_, self.patch, self.stride)
+
+    def expected(self, images: np.ndarray) -> np.ndarray:
+        """The conditional mean of each patch given the model, averaged over overlaps.
+
+        For PPCA the posterior mean of the latent code is ``M^-1 W^T (x - mu)`` and the
+        expected patch ``mu + W M^-1 W^T (x - mu)`` (Tipping & Bishop 1999, sec. 3.3):
+        what the scene looks like at that place, pulled toward normal appearance.
+        """
+        X = patch_features(images, self.patch, self.stride, self.colour)
+        R = (X - self.mean_[None]).transpose(1, 0, 2)
+        if self.observed_ is not None:
+            R = R * self.observed_[:, None, :]
+        proj = np.matmul(np.matmul(R, self._B), self._B.transpose(0, 2, 1))  # W M^-1 W^T r
+        Xhat = (proj.transpose(1, 0, 2) + self.mean_[None]).astype(np.float32)
+        return _unpatch(Xhat, images.shape[1:3], self.grid_, self.patch, self.stride,
+                        self.colour)
+
+    def learned(self) -> dict[str, Any]:
+        return {"latent": self.q_, "grid": list(self.grid_), "frames": self.n_frames_,
+                "masked_locations": int((self._d_obs == 0).sum())}
+
+    # persistence
+
+    def save(self, directory: Path) -> None:
+        arrays = {"mean": self.mean_, "W": self.W_.astype(np.float32),
+                  "sigma2": self.sigma2_, "grid": np.array(self.grid_),
+                  "n_frames": np.array(self.n_frames_)}
+        if self.observed_ is not None:
+            arrays["observed"] = self.observed_
+        np.savez_compressed(Path(directory) / "ppca.npz", **arrays)
+
+    @classmethod
+    def load(cls, directory: Path, params: dict[str, Any]) -> "PatchPPCA":
+        model = cls(**params)
+        with np.load(Path(directory) / "ppca.npz", allow_pickle=False) as z:
+            model.mean_ = z["mean"]
+            model.W_ = z["W"].astype(np.float64)
+            model.sigma2_ = z["sigma2"]
+            model.grid_ = tuple(int(v) for v in z["grid"])
+            model.n_frames_ = int(z["n_frames"])
+            model.observed_ = z["observed"] if "observed" in z.files else None
+        model.q_ = model.W_.shape[2]
+        model._prepare()
+        return model
+
+    def __repr__(self) -> str:
+        return f"PatchPPCA({json.dumps(self.get_params())[1:-1]})"
+
+
+def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: int,
+             stride: int, colour: bool) -> np.ndarray:
+    """Patch feature vectors back to RGB frames, averaging overlaps (inverse of the layout
+    in :func:`inspector.features.patch_features`)."""
+    import cv2
+
+    n = X.shape[0]
+    h, w = hw
+    gh, gw = grid
+    X = X.reshape(n, gh, gw, -1)
+    half = patch // 2
+
+    def paste(vals, size, step, shape):
+        acc = np.zeros((n,) + shape, np.float32)
+        cnt = np.zeros(shape, np.float32)
+        v = vals.reshape(n, gh, gw, size, size)
+        for i in range(gh):
+            for j in range(gw):
+                acc[:, i * step:i * step + size, j * step:j * step + size] += v[:, i, j]
+                cnt[i * step:i * step + size, j * step:j * step + size] += 1
+        return acc / np.maximum(cnt, 1)
+
+    luma = paste(X[..., :patch * patch], patch, stride, (h, w))
+    if not colour:
+        out = np.repeat(luma[..., None], 3, axis=-1)
+        return (np.clip(out, 0, 1) * 255).round().astype(np.uint8)
+    c = half * half
+    cr = paste(X[..., patch * patch:patch * patch + c], half, stride // 2, (h // 2, w // 2))
+    cb = paste(X[..., patch * patch + c:], half, stride // 2, (h // 2, w // 2))
+    out = np.empty((n, h, w, 3), np.uint8)
+    for k in range(n):
+        ycc = np.dstack([luma[k], cv2.resize(cr[k], (w, h)), cv2.resize(cb[k], (w, h))])
+        ycc = (np.clip(ycc, 0, 1) * 255).round().astype(np.uint8)
+        out[k] = cv2.cvtColor(ycc, cv2.COLOR_YCrCb2RGB)
+    return out
+
+
+__all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "choose_latent", "Moments",
+           "to_planes"]
