@@ -24,7 +24,11 @@ from PIL import Image
 
 from inspector.errors import FrameError
 
-cv2.setLogLevel(0)  # corrupt files are reported as skips, not as decoder chatter on stderr
+# Corrupt files are reported as skips, not as decoder chatter on stderr.
+try:
+    cv2.utils.logging.setLogLevel(cv2.utils.logging.LOG_LEVEL_SILENT)
+except AttributeError:  # pragma: no cover - older OpenCV
+    cv2.setLogLevel(0)
 
 #: Leading bytes of the formats read, by content rather than by file extension.
 _SIGNATURES = (

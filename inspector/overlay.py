@@ -1,0 +1,50 @@
+"""Heatmap overlays: the picture a reviewer looks at for a flagged frame."""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+
+#: Perceptually uniform colour map (brightness rises monotonically with the value).
+COLORMAP = cv2.COLORMAP_INFERNO
+#: Overlays are drawn at least this wide so the caption stays readable.
+MIN_WIDTH = 640
+_OUTLINE = (255, 255, 255)
+
+
+def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
+                   caption: str) -> np.ndarray:
+    """The frame with a translucent heatmap, the flagged region outlined, and a caption.
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+        RGB frame at working resolution.
+    amap : ndarray, shape (h, w), float
+        Anomaly map (same aspect ratio as the frame).
+    threshold : float
+        Frame threshold; map regions above it are outlined.
+    caption : str
+
+    Returns
+    -------
+    ndarray, shape (H', W' + caption band, 3), uint8, BGR (ready for cv2.imwrite)
+    """
+    scale = max(1, int(np.ceil(MIN_WIDTH / image.shape[1])))
+    h, w = image.shape[0] * scale, image.shape[1] * scale
+    frame = cv2.resize(cv2.cvtColor(image, cv2.COLOR_RGB2BGR), (w, h),
+                       interpolation=cv2.INTER_LINEAR)
+    heat = cv2.resize(np.asarray(amap, np.float32), (w, h), interpolation=cv2.INTER_LINEAR)
+    top = max(float(heat.max()), threshold * 1.25, 1e-6)
+    level = np.clip(heat / top, 0.0, 1.0)
+    colour = cv2.applyColorMap((level * 255).astype(np.uint8), COLORMAP)
+    # Transparent where the map is unremarkable, up to 65% opaque where it is hottest.
+    alpha = (np.clip((heat - 0.5 * threshold) / max(threshold, 1e-6), 0.0, 1.0) * 0.65)[..., None]
+    out = (frame * (1.0 - alpha) + colour * alpha).astype(np.uint8)
+    region = (heat > threshold).astype(np.uint8)
+    contours, _ = cv2.findContours(region, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
+    cv2.drawContours(out, contours, -1, _OUTLINE, 2, cv2.LINE_AA)
+    band = np.zeros((28, w, 3), np.uint8)
+    cv2.putText(band, caption, (8, 19), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (255, 255, 255), 1,
+                cv2.LINE_AA)
+    return np.vstack([out, band])
