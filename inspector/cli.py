@@ -146,7 +146,8 @@ def cmd_scan(args: argparse.Namespace) -> int:
     config, store = resolve(args)
     out = args.out or Path(config.paths.out)
     check_source(args.source, out, args.all_scores, args.maps)
-    with ResultWriter(out, args.all_scores, args.maps) as writer:
+    with ResultWriter(out, args.all_scores, args.maps, source=args.source,
+                      store=store.root) as writer:
         summary = scan_folder(args.source, Baselines(store, config), writer)
     report_scan(summary, out, args.all_scores)
     return 0

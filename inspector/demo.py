@@ -44,7 +44,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
             f"threshold {report.threshold:.3f} ({report.seconds:.1f} s)")
     out = root / "results"
     all_scores = out / "all_scores.csv"
-    with ResultWriter(out, all_scores) as writer:
+    with ResultWriter(out, all_scores, source=scenario.new, store=store.root) as writer:
         summary = scan_folder(scenario.new, Baselines(store, config), writer)
     report_scan(summary, out, all_scores)
     scores = {}

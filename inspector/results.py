@@ -14,6 +14,7 @@ import cv2
 import numpy as np
 
 from inspector.overlay import render_overlay
+from inspector.store import write_json
 
 #: Columns of flagged.csv and of the all-scores file, in this order.
 COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "model", "overlay")
@@ -83,11 +84,19 @@ class ResultWriter:
         Also write ``<camera>/<stem>.npy``: the float32 anomaly map of every frame scored.
     append : bool
         Add to existing files (watch) instead of starting them anew (scan).
+    source, store : Path, optional
+        Recorded in ``run.json`` so that review can find the frames and baselines again.
     """
 
     def __init__(self, out: Path, all_scores: Path | None = None, maps: Path | None = None,
-                 append: bool = False):
+                 append: bool = False, source: Path | None = None, store: Path | None = None):
         self.out = Path(out)
+        self.out.mkdir(parents=True, exist_ok=True)
+        if source is not None:
+            write_json(self.out / "run.json", {
+                "source": str(Path(source).resolve()),
+                "store": str(Path(store).resolve()) if store else "",
+                "started": iso_time(datetime.now().astimezone())})
         self.maps = Path(maps) if maps else None
         self.flagged = _Csv(self.out / "flagged.csv", COLUMNS, append)
         self.skipped = _Csv(self.out / "skipped.csv", SKIP_COLUMNS, append)
