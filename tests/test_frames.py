@@ -1,0 +1,114 @@
+"""The frame loader: discovery, capture times, decoding and every kind of bad file."""
+
+import io
+import os
+from datetime import datetime
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+from PIL import Image
+from skimage import data
+
+from inspector.errors import FrameError
+from inspector.frames import (FrameFile, capture_time, discover, read_frame, time_from_name,
+                              working_size)
+
+READ = {"long_side": 160, "max_pixels": 10**8, "time_formats": ("%Y%m%d_%H%M%S",)}
+
+
+def _ff(path: Path) -> FrameFile:
+    return FrameFile(path, path.name, "cam")
+
+
+def test_discovery_by_content_skipping_partials_hidden_and_outside_links(tmp_path):
+    src = tmp_path / "src"
+    (src / "dock").mkdir(parents=True)
+    img = data.astronaut()
+    cv2.imwrite(str(src / "dock" / "a.jpg"), img)
+    (src / "dock" / "b").write_bytes(cv2.imencode(".png", img)[1].tobytes())  # no extension
+    (src / "dock" / "c.jpg.part").write_bytes(b"\xff\xd8\xff")
+    (src / "dock" / ".hidden.jpg").write_bytes(b"\xff\xd8\xff")
+    (src / "dock" / "notes.txt").write_text("hello")
+    outside = tmp_path / "elsewhere"
+    outside.mkdir()
+    cv2.imwrite(str(outside / "x.png"), img)
+    (src / "dock" / "link.png").symlink_to(outside / "x.png")
+    (src / "dock" / "linkdir").symlink_to(outside)
+    files, skips = discover(src)
+    assert [f.rel for f in files] == ["dock/a.jpg", "dock/b"]
+    reasons = {s.rel: s.reason for s in skips}
+    assert reasons["dock/notes.txt"].startswith("not an image")
+    assert "outside" in reasons["dock/link.png"]
+    assert not any("linkdir" in r for r in reasons)
+
+
+def test_capture_time_from_name_then_exif_then_mtime(tmp_path):
+    assert time_from_name("dock_20261130_221505.jpg", ["%Y%m%d_%H%M%S"]) == \
+        datetime(2026, 11, 30, 22, 15, 5)
+    p = tmp_path / "noname.jpg"
+    exif = Image.Exif()
+    exif.get_ifd(0x8769)[36867] = "2025:06:01 12:34:56"  # EXIF DateTimeOriginal (EXIF 2.3 spec)
+    Image.fromarray(data.astronaut()).save(p, exif=exif)
+    assert capture_time(p, ["%Y%m%d_%H%M%S"]) == datetime(2025, 6, 1, 12, 34, 56)
+    q = tmp_path / "plain.png"
+    Image.fromarray(data.astronaut()).save(q)
+    os.utime(q, (1_700_000_000, 1_700_000_000))
+    assert capture_time(q, []) == datetime.fromtimestamp(1_700_000_000)
+
+
+def test_reduced_jpeg_decode_matches_full_decode_and_resize(tmp_path):
+    big = cv2.resize(data.astronaut(), (1920, 1080))
+    p = tmp_path / "big_20261130_120000.jpg"
+    cv2.imwrite(str(p), big[..., ::-1], [cv2.IMWRITE_JPEG_QUALITY, 95])
+    frame = read_frame(_ff(p), **READ)
+    assert frame.image.shape == (90, 160, 3) and frame.image.dtype == np.uint8
+    assert frame.source_size == (1920, 1080)
+    assert frame.time == datetime(2026, 11, 30, 12, 0, 0)
+    ref = cv2.resize(big, (160, 90), interpolation=cv2.INTER_AREA)
+    # DCT-domain downscaling vs pixel-domain resize: close, not identical.
+    assert np.abs(frame.image.astype(int) - ref).mean() < 4
+
+
+@pytest.mark.parametrize("name,content,reason", [
+    ("empty.jpg", b"", "empty file"),
+    ("text.jpg", b"hello world, not a picture", "not an image"),
+    ("header.jpg", b"\xff\xd8\xff\xe0" + b"\x00" * 40, "unreadable JPEG header"),
+])
+def test_bad_files_raise_frame_errors_with_reasons(tmp_path, name, content, reason):
+    p = tmp_path / name
+    p.write_bytes(content)
+    with pytest.raises(FrameError, match=reason):
+        read_frame(_ff(p), **READ)
+
+
+def test_truncated_and_oversized_frames(tmp_path):
+    buf = cv2.imencode(".jpg", data.astronaut())[1].tobytes()
+    p = tmp_path / "cut.jpg"
+    p.write_bytes(buf[: len(buf) // 2])
+    with pytest.raises(FrameError, match="truncated"):
+        read_frame(_ff(p), **READ)
+    # A decompression bomb: a tiny PNG file that claims 20000 x 20000 pixels.
+    bomb = io.BytesIO()
+    Image.new("L", (20000, 20000)).save(bomb, format="PNG")
+    q = tmp_path / "bomb.png"
+    q.write_bytes(bomb.getvalue())
+    with pytest.raises(FrameError, match="too large"):
+        read_frame(_ff(q), **{**READ, "max_pixels": 50_000_000})
+
+
+def test_aspect_ratio_must_match_the_baseline(tmp_path):
+    p = tmp_path / "sq.png"
+    cv2.imwrite(str(p), data.astronaut())  # 512 x 512
+    with pytest.raises(FrameError, match="aspect ratio"):
+        read_frame(_ff(p), **READ, size=(160, 90), source_size=(1920, 1080))
+    frame = read_frame(_ff(p), **READ, size=(96, 96), source_size=(1024, 1024))
+    assert frame.image.shape == (96, 96, 3) and "resized" in frame.notes[0]
+
+
+def test_working_size_keeps_aspect_with_even_sides():
+    assert working_size((1920, 1080), 320) == (320, 180)
+    assert working_size((1080, 1920), 320) == (180, 320)
+    w, h = working_size((1280, 1024), 320)
+    assert (w, h) == (320, 256) and w % 2 == 0 and h % 2 == 0

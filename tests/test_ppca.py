@@ -1,0 +1,94 @@
+"""The PPCA density against reference implementations."""
+
+import cv2
+import numpy as np
+import pytest
+from scipy.stats import multivariate_normal
+from sklearn.decomposition import PCA
+
+from inspector.features import feature_size, patch_features
+from inspector.models.base import ArraySource
+from inspector.models.ppca import Moments, PatchPPCA, ppca_fit, ppca_nll
+
+
+def _data(n=400, d=10, seed=0):
+    rng = np.random.default_rng(seed)
+    A = rng.normal(size=(d, d))
+    return rng.normal(size=(n, d)) @ A * 0.3 + rng.normal(size=d)
+
+
+@pytest.mark.parametrize("q", [1, 3, 6])
+def test_log_likelihood_matches_sklearn_and_scipy(q):
+    X = _data()
+    mean, cov = X.mean(0), np.cov(X.T)
+    W, s2 = ppca_fit(mean[None], cov[None], q)
+    ll = -ppca_nll(X[:, None, :], mean[None], W, s2)[:, 0]
+    # scikit-learn's PCA implements Tipping & Bishop (1999) probabilistic PCA in score_samples
+    # (it too uses the unbiased sample covariance).
+    ref = PCA(n_components=q).fit(X).score_samples(X)
+    np.testing.assert_allclose(ll, ref, rtol=1e-10, atol=1e-9)
+    # SciPy's Gaussian log-density with C = W W^T + sigma^2 I.
+    C = W[0] @ W[0].T + s2[0] * np.eye(X.shape[1])
+    np.testing.assert_allclose(ll, multivariate_normal(mean, C).logpdf(X), rtol=1e-10, atol=1e-9)
+
+
+def test_masked_likelihood_is_the_exact_marginal():
+    X = _data(d=12)
+    mean, cov = X.mean(0), np.cov(X.T)
+    W, s2 = ppca_fit(mean[None], cov[None], 3)
+    observed = np.ones((1, 12), bool)
+    observed[0, [0, 5, 6, 11]] = False
+    ll = -ppca_nll(X[:, None, :], mean[None], W, s2, observed)[:, 0]
+    # SciPy: logpdf of the observed sub-vector under the observed sub-covariance.
+    o = observed[0]
+    C = W[0] @ W[0].T + s2[0] * np.eye(12)
+    ref = multivariate_normal(mean[o], C[np.ix_(o, o)]).logpdf(X[:, o])
+    np.testing.assert_allclose(ll, ref, rtol=1e-10, atol=1e-9)
+    # Zero-filling the masked entries instead would change the answer: they are ignored.
+    X2 = X.copy()
+    X2[:, ~o] = 1e3
+    np.testing.assert_allclose(-ppca_nll(X2[:, None, :], mean[None], W, s2, observed)[:, 0], ll)
+
+
+def test_streaming_moments_match_numpy_cov_with_a_block_left_out():
+    rng = np.random.default_rng(1)
+    X = rng.normal(size=(90, 4, 6)).astype(np.float32) + 5
+    m = Moments(3, 4, 6)
+    for b in range(3):
+        m.add(b, X[b * 30:(b + 1) * 30])
+    mean, cov, n = m.mean_cov(leave_out=1)
+    keep = np.r_[X[:30], X[60:]]
+    assert n == 60
+    np.testing.assert_allclose(mean, keep.mean(0), rtol=1e-5)
+    for loc in range(4):  # numpy.cov (unbiased) as the reference
+        np.testing.assert_allclose(cov[loc], np.cov(keep[:, loc].T), rtol=1e-4, atol=1e-5)
+
+
+def test_model_fit_score_save_load_roundtrip(tmp_path):
+    rng = np.random.default_rng(2)
+    # A smooth scene: 4:2:0 chroma cannot hold per-pixel colour noise, and cameras don't.
+    base = cv2.GaussianBlur(rng.integers(0, 255, size=(32, 48, 3)).astype(np.float32), (0, 0), 1.5)
+    imgs = np.clip(base + rng.normal(0, 4, (40, 32, 48, 3)), 0, 255).astype(np.uint8)
+    model = PatchPPCA(patch=8, stride=4, latent=4)
+    held = model.fit(ArraySource(imgs, folds=4))
+    assert sorted(held.index) == list(range(40))  # every normal frame is held out once
+    maps = model.score_maps(imgs[:3])
+    # 7 x 11 patch positions of stride 4 cover 8 x 12 cells of 4 pixels.
+    assert maps.shape[1:] == held.maps.shape[1:] == (8, 12)
+    model.save(tmp_path)
+    again = PatchPPCA.load(tmp_path, model.get_params())
+    np.testing.assert_allclose(again.score_maps(imgs[:3]), maps, rtol=1e-5)
+    exp = model.expected(imgs[:2])
+    assert exp.shape == imgs[:2].shape and exp.dtype == np.uint8
+    # The expected frame is closer to the scene than a random frame is.
+    assert np.abs(exp.astype(float) - base).mean() < np.abs(imgs[0].astype(float) - base).mean()
+
+
+def test_patch_features_layout_luma_then_half_resolution_chroma():
+    img = np.zeros((1, 16, 16, 3), np.uint8)
+    img[0, :, :8] = (255, 0, 0)
+    X = patch_features(img, 8, 8, colour=True)
+    assert X.shape == (1, 4, feature_size(8, True)) == (1, 4, 96)
+    # ITU-R BT.601 luma of pure red is 0.299 (common practice, no source).
+    np.testing.assert_allclose(X[0, 0, :64], 0.299, atol=2 / 255)
+    np.testing.assert_allclose(X[0, 1, :64], 0.0, atol=1 / 255)
