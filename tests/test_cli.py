@@ -1,0 +1,150 @@
+"""The command line end to end on generated frames: outputs, skips, exit codes."""
+
+import csv
+import subprocess
+import sys
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+from skimage import data
+
+from inspector.cli import main
+from inspector.results import COLUMNS, SKIP_COLUMNS
+
+from conftest import noisy_copies, write_frames
+
+
+def _scene(seed: int) -> np.ndarray:
+    img = cv2.resize(data.chelsea(), (128, 96), interpolation=cv2.INTER_AREA)
+    return np.roll(img, seed * 7, axis=1).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def learnt(tmp_path_factory):
+    """Two cameras learnt from 40 normal frames each, with a small config."""
+    root = tmp_path_factory.mktemp("cli")
+    cfg = root / "small.toml"
+    cfg.write_text('[frames]\nlong_side = 64\n\n[calibration]\nfolds = 3\n', encoding="utf-8")
+    rng = np.random.default_rng(0)
+    for k, cam in enumerate(["gate", "yard"]):
+        write_frames(root / "normal" / cam, noisy_copies(_scene(k), 40, rng), prefix=cam)
+    code = main(["learn", str(root / "normal"), "--store", str(root / "store"),
+                 "--config", str(cfg)])
+    assert code == 0
+    return root, cfg
+
+
+def _snapshot(folder: Path) -> dict:
+    return {p: (p.stat().st_size, p.stat().st_mtime_ns) for p in folder.rglob("*")}
+
+
+def _new_frames(root: Path) -> Path:
+    src = root / "new"
+    if src.exists():
+        return src
+    rng = np.random.default_rng(1)
+    imgs = noisy_copies(_scene(0), 6, rng)
+    imgs[2, 30:60, 40:80] = (20, 200, 40)  # a green object in frame 2
+    write_frames(src / "gate", imgs, prefix="gate")
+    write_frames(src / "yard", noisy_copies(_scene(1), 3, rng), prefix="yard")
+    write_frames(src / "attic", noisy_copies(_scene(0), 2, rng), prefix="attic")  # no baseline
+    bad = src / "gate"
+    (bad / "empty.jpg").write_bytes(b"")
+    (bad / "notes.txt").write_text("shift log")
+    buf = cv2.imencode(".jpg", _scene(0).astype(np.uint8))[1].tobytes()
+    (bad / "cut.jpg").write_bytes(buf[: len(buf) // 2])
+    (bad / "header.jpg").write_bytes(b"\xff\xd8\xff\xe0" + b"\x00" * 64)
+    cv2.imwrite(str(bad / "square.png"), np.zeros((80, 80, 3), np.uint8))
+    (bad / "upload.jpg.part").write_bytes(b"partial")
+    cv2.imwrite(str(src / "loose.jpg"), _scene(0).astype(np.uint8))
+    return src
+
+
+def test_scan_writes_the_contract_and_never_touches_source(learnt, capsys):
+    root, cfg = learnt
+    src = _new_frames(root)
+    before = _snapshot(src)
+    out = root / "out"
+    code = main(["scan", str(src), "--store", str(root / "store"), "--config", str(cfg),
+                 "--out", str(out), "--all-scores", str(root / "all.csv"),
+                 "--maps", str(root / "maps")])
+    assert code == 0
+    assert _snapshot(src) == before  # nothing written into SOURCE
+    with open(out / "flagged.csv", newline="") as fh:
+        reader = csv.reader(fh)
+        assert tuple(next(reader)) == COLUMNS
+        flagged = [dict(zip(COLUMNS, r)) for r in reader]
+    with open(root / "all.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert tuple(rows[0]) == COLUMNS
+    assert len(rows) == 9  # 6 gate + 3 yard frames scored
+    by_frame = {r["frame"]: r for r in rows}
+    hit = by_frame["gate/gate_20261120_080200.jpg"]
+    assert float(hit["score"]) > float(hit["threshold"])  # the green object is flagged
+    for r in flagged:
+        assert float(r["score"]) > float(r["threshold"])
+        assert Path(r["overlay"]).is_file() and r["model"] == "v1"
+        assert 0 < float(r["p_value"]) <= 1
+        assert r["time"].startswith("2026-11-20T08:")  # ISO 8601 capture time from the name
+    for r in rows:
+        if float(r["score"]) <= float(r["threshold"]):
+            assert r["overlay"] == ""
+    amap = np.load(root / "maps" / "gate" / "gate_20261120_080200.npy")
+    assert amap.dtype == np.float32
+    assert abs(amap.shape[1] / amap.shape[0] - 128 / 96) < 0.15  # the frame's aspect ratio
+    with open(out / "skipped.csv", newline="") as fh:
+        reader = csv.reader(fh)
+        assert tuple(next(reader)) == SKIP_COLUMNS
+        reasons = {r[0]: r[2] for r in reader}
+    assert reasons["gate/empty.jpg"] == "empty file"
+    assert reasons["gate/notes.txt"].startswith("not an image")
+    assert reasons["gate/cut.jpg"].startswith("truncated JPEG")
+    assert reasons["gate/header.jpg"].startswith("unreadable JPEG header")
+    assert reasons["gate/square.png"].startswith("aspect ratio")
+    assert reasons["attic/attic_20261120_080000.jpg"] == "no baseline for camera attic"
+    assert reasons["loose.jpg"].startswith("not inside a camera folder")
+    assert "gate/upload.jpg.part" not in reasons  # still being written: not a frame yet
+    summary = capsys.readouterr().out
+    assert "scored 9 frames" in summary and "skipped 8" in summary
+
+
+def test_learn_one_camera_recursively_and_warn_about_a_small_calibration_set(learnt, capsys):
+    root, cfg = learnt
+    rng = np.random.default_rng(3)
+    write_frames(root / "one" / "day1", noisy_copies(_scene(2), 12, rng), prefix="x")
+    write_frames(root / "one" / "day2" / "late", noisy_copies(_scene(2), 12, rng), prefix="y")
+    code = main(["learn", str(root / "one"), "--camera", "porch", "--store",
+                 str(root / "store"), "--config", str(cfg)])
+    assert code == 0
+    out = capsys.readouterr().out
+    assert "porch: baseline v1 (ppca) from 24 frames" in out
+    assert "warning: only 24 calibration frames" in out and "more normal frames" in out
+
+
+@pytest.mark.parametrize("args,message", [
+    (["scan", "does-not-exist"], "is not a folder"),
+    (["learn", "{root}/normal", "--config", "{root}/nope.toml"], "config file not found"),
+    (["learn", "{root}/normal", "--config", "{root}/badkey.toml"], "unknown key [frames] 'size'"),
+    (["learn", "{root}/normal", "--config", "{root}/badval.toml"], "alpha = 2.0 is outside"),
+    (["scan", "{root}/normal", "--out", "{root}/normal/out"], "inside SOURCE"),
+    (["learn", "{root}/few", "--camera", "c"], "at least 10 are needed"),
+    (["scan", "{root}/normal", "--bogus"], "unrecognized arguments: --bogus"),
+])
+def test_usage_errors_exit_2_with_one_line(learnt, capsys, args, message):
+    root, _ = learnt
+    (root / "badkey.toml").write_text("[frames]\nsize = 3\n")
+    (root / "badval.toml").write_text("[calibration]\nalpha = 2.0\n")
+    write_frames(root / "few", noisy_copies(_scene(0), 3, np.random.default_rng(0)))
+    argv = [a.format(root=root) for a in args] + ["--store", str(root / "store-x")]
+    assert main(argv) == 2
+    err = capsys.readouterr().err.strip()
+    assert message in err and len(err.splitlines()) == 1 and "Traceback" not in err
+
+
+def test_module_entry_point_reports_usage_errors_without_traceback(tmp_path):
+    proc = subprocess.run([sys.executable, "-m", "inspector", "scan", str(tmp_path / "none")],
+                          capture_output=True, text=True, cwd=tmp_path, stdin=subprocess.DEVNULL)
+    assert proc.returncode == 2
+    assert proc.stderr.strip().startswith("inspector: error:") and "Traceback" not in proc.stderr
