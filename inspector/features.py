@@ -63,7 +63,8 @@ def to_planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray 
         return luma.reshape(n, h, w), None
     ycc = cv2.cvtColor(flat, cv2.COLOR_RGB2YCrCb).astype(np.float32) / 255.0
     ycc = ycc.reshape(n, h, w, 3)
-    chroma = ycc[..., 1:].reshape(n, h // 2, 2, w // 2, 2, 2).mean(axis=(2, 4))
+    c = ycc[..., 1:]
+    chroma = (c[:, 0::2, 0::2] + c[:, 1::2, 0::2] + c[:, 0::2, 1::2] + c[:, 1::2, 1::2]) * 0.25
     return np.ascontiguousarray(ycc[..., 0]), chroma
 
 
@@ -85,13 +86,16 @@ def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool) ->
     luma, chroma = to_planes(images, colour)
     n, h, w = luma.shape
     gh, gw = grid_shape(h, w, patch, stride)
-    parts = [_windows(luma, patch, stride, gh, gw).reshape(n, gh * gw, patch * patch)]
+    out = np.empty((n, gh, gw, feature_size(patch, colour)), np.float32)
+    p2 = patch * patch
+    out[..., :p2] = _windows(luma, patch, stride, gh, gw).reshape(n, gh, gw, p2)
     if chroma is not None:
         half = patch // 2
-        for c in range(2):
-            win = _windows(np.ascontiguousarray(chroma[..., c]), half, stride // 2, gh, gw)
-            parts.append(win.reshape(n, gh * gw, half * half))
-    return np.concatenate(parts, axis=2) if len(parts) > 1 else np.ascontiguousarray(parts[0])
+        c = half * half
+        for k in range(2):
+            win = _windows(chroma[..., k], half, stride // 2, gh, gw)
+            out[..., p2 + k * c:p2 + (k + 1) * c] = win.reshape(n, gh, gw, c)
+    return out.reshape(n, gh * gw, -1)
 
 
 def _windows(planes: np.ndarray, size: int, step: int, gh: int, gw: int) -> np.ndarray:

@@ -1,0 +1,88 @@
+"""Scan throughput against the floor set by decoding alone, measured side by side.
+
+Generates N full-HD (1920x1080) JPEG frames of the invented depot scene, learns a baseline,
+then alternates, ROUNDS times each, between
+
+* decode: the frame loader alone (same files, same reduced-scale JPEG decode, same thread
+  pool, same working resolution), and
+* scan: the whole scan (decode, score, maps, CSV rows and overlays of flagged frames),
+
+and prints frames/s of both and their ratio (target: >= 0.6 on 2 cores). Alternating
+rounds in one run keeps the ratio fair on a shared, noisy machine.
+
+    python bench/throughput.py [--frames 200] [--rounds 3]
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from inspector.config import load_config  # noqa: E402
+from inspector.frames import discover, iter_frames  # noqa: E402
+from inspector.learn import learn_camera  # noqa: E402
+from inspector.results import ResultWriter  # noqa: E402
+from inspector.scan import Baselines, scan_files  # noqa: E402
+from inspector.scenario import generate  # noqa: E402
+from inspector.store import Store  # noqa: E402
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--frames", type=int, default=200, help="full-HD frames to scan")
+    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
+    args = ap.parse_args()
+    work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-bench-"))
+    try:
+        run(work, args.frames, args.rounds)
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
+def run(work: Path, n: int, rounds: int) -> None:
+    t = time.perf_counter()
+    scenario = generate(work / "frames", seed=1, normal_per_camera=120, new_per_camera=n // 2,
+                        size=(1920, 1080))
+    print(f"generated {n} + 240 full-HD frames in {time.perf_counter() - t:.1f} s")
+    config = load_config(None)
+    store = Store(work / "store")
+    normal, _ = discover(scenario.normal)
+    for cam in sorted({f.camera for f in normal}):
+        t = time.perf_counter()
+        learn_camera([f for f in normal if f.camera == cam], config.camera(cam), store)
+        print(f"learnt {cam} from 120 full-HD frames in {time.perf_counter() - t:.1f} s")
+    files, _ = discover(scenario.new)
+    baselines = Baselines(store, config)
+    decode_rates, scan_rates = [], []
+    for r in range(rounds):
+        t = time.perf_counter()
+        count = 0
+        for cam in sorted({f.camera for f in files}):
+            cam_files = [f for f in files if f.camera == cam]
+            for _, frame in iter_frames(cam_files, **baselines.read_args(cam)):
+                count += 1
+        decode_rates.append(count / (time.perf_counter() - t))
+        out = work / f"out{r}"
+        t = time.perf_counter()
+        with ResultWriter(out, out / "all.csv") as writer:
+            summary = scan_files(files, baselines, writer)
+        scan_rates.append(summary.scored / (time.perf_counter() - t))
+        print(f"round {r + 1}: decode {decode_rates[-1]:.1f} frames/s, "
+              f"scan {scan_rates[-1]:.1f} frames/s ({summary.flagged} flagged)")
+    d, s = statistics.median(decode_rates), statistics.median(scan_rates)
+    print(f"median over {rounds} rounds of {len(files)} frames 1920x1080: decode {d:.1f} "
+          f"frames/s, scan {s:.1f} frames/s, ratio scan/decode {s / d:.2f} (target >= 0.6)")
+
+
+if __name__ == "__main__":
+    main()
