@@ -23,7 +23,8 @@ from inspector.models import MODEL_NAMES
 from inspector.store import Store, check_camera_name
 
 #: Modules that add further subcommands (each defines ``add_command(subparsers)``).
-COMMAND_MODULES = ("inspector.demo",)
+COMMAND_MODULES = ("inspector.demo", "inspector.review", "inspector.labels",
+                   "inspector.baselines")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -44,6 +45,14 @@ def build_parser() -> argparse.ArgumentParser:
                         "frames with --camera")
     p.add_argument("--camera", help="all frames under SOURCE belong to this camera")
     p.add_argument("--model", choices=MODEL_NAMES, help="density model (default from config: ppca)")
+    p.add_argument("--add-false-alarms", action="store_true",
+                   help="also learn from the frames labelled 'false alarm' in review")
+    p.add_argument("--keep-active", action="store_true",
+                   help="save the new version without activating it (switch later with "
+                        "'inspector baselines CAMERA --activate VERSION')")
+    p.add_argument("--compare", type=int, default=200, metavar="N",
+                   help="show how many flags the new version adds and removes on the camera's "
+                        "last N scored frames (default 200; 0 skips)")
     add_common(p)
     p.set_defaults(func=cmd_learn)
 
@@ -120,11 +129,17 @@ def cmd_learn(args: argparse.Namespace) -> int:
     if not cameras:
         hint = "" if args.camera else " (one subfolder per camera, or name one with --camera)"
         raise UsageError(f"no frames found under {str(args.source)!r}{hint}")
+    if args.compare < 0:
+        raise UsageError("--compare must be 0 or more")
     for camera, cam_files in cameras.items():
         cfg = config.camera(camera)
         if args.model:
             cfg = replace(cfg, model=replace(cfg.model, model=args.model))
-        report = learn_camera(cam_files, cfg, store)
+        extra: dict = {}
+        if args.add_false_alarms:
+            cam_files, extra = _with_false_alarms(store, camera, cam_files)
+        previous = store.active_version(camera)
+        report = learn_camera(cam_files, cfg, store, activate=not args.keep_active, extra=extra)
         skipped = [s for s in skips if s.camera == camera] + report.skipped
         say(f"{camera}: baseline {report.version} ({cfg.model.model}) from {report.frames} "
             f"frames, threshold {report.threshold:.3f} for a false-alarm rate of "
@@ -135,8 +150,49 @@ def cmd_learn(args: argparse.Namespace) -> int:
             say(f"  skipped {s.rel}: {s.reason}")
         if len(skipped) > 10:
             say(f"  ... and {len(skipped) - 10} more skipped")
+        if args.compare and previous:
+            from inspector.baselines import compare_versions
+
+            say("  " + compare_versions(store, config, camera, previous, report.version,
+                                        args.compare).text())
+        if args.keep_active and previous:
+            say(f"  {previous} stays active; switch with 'inspector baselines {camera} "
+                f"--activate {report.version}'")
     say(f"store: {store.root}")
     return 0
+
+
+def _with_false_alarms(store: Store, camera: str, files: list) -> tuple[list, dict]:
+    """The camera's frames plus those labelled 'false alarm' in review (missing ones reported)."""
+    from inspector.frames import FrameFile
+    from inspector.labels import connect, read
+
+    if not store.database.is_file():
+        say(f"{camera}: no review labels in {store.root}; learning from SOURCE only")
+        return files, {}
+    conn = connect(store.database)
+    try:
+        labelled = read(conn, camera=camera, label="false_alarm")
+    finally:
+        conn.close()
+    have = {str(f.path.resolve()) for f in files}
+    added, missing = [], []
+    for lab in labelled:
+        path = Path(lab.path)
+        if str(path) in have:
+            continue
+        if path.is_file():
+            added.append(FrameFile(path, lab.rel or path.name, camera))
+            have.add(str(path))
+        else:
+            missing.append(lab.path)
+    say(f"{camera}: adding {len(added)} frames labelled 'false alarm'"
+        + (f"; {len(missing)} of them no longer exist" if missing else ""))
+    for p in missing[:10]:
+        say(f"  missing {p}")
+    if len(missing) > 10:
+        say(f"  ... and {len(missing) - 10} more missing")
+    return files + added, {"false_alarm_frames": len(added)}
 
 
 def cmd_scan(args: argparse.Namespace) -> int:

@@ -112,8 +112,10 @@ class LearnReport:
 
 
 def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
-                 activate: bool = True) -> LearnReport:
+                 activate: bool = True, extra: dict | None = None) -> LearnReport:
     """Build, calibrate and save a new baseline version from one camera's normal frames.
+
+    ``extra`` is added to the version's metadata (e.g. how many frames came from review).
 
     Raises
     ------
@@ -174,6 +176,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                       "frames_short": threshold.frames_short},
         "warnings": warnings,
         "inspector_version": inspector.__version__,
+        **(extra or {}),
     }
     baseline = Baseline(camera=camera, version="", model=model, center=center, scale=scale,
                         calibration_scores=cal, threshold=threshold, size=size,

@@ -54,10 +54,15 @@ class Baselines:
 
     def read_args(self, camera: str) -> dict:
         """Arguments of :func:`inspector.frames.read_frame` for this camera's frames."""
-        b = self.get(camera)
-        fs = self.config.camera(camera).frames
-        return {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
-                "time_formats": fs.time_formats, "size": b.size, "source_size": b.source_size}
+        return read_args(self.get(camera), self.config)
+
+
+def read_args(baseline: Baseline, config: Config) -> dict:
+    """Arguments of :func:`inspector.frames.read_frame` for frames scored by ``baseline``."""
+    fs = config.camera(baseline.camera).frames
+    return {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
+            "time_formats": fs.time_formats, "size": baseline.size,
+            "source_size": baseline.source_size}
 
 
 def score_frames(baseline: Baseline, frames: Sequence[Frame]) -> list[FrameResult]:

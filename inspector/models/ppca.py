@@ -416,7 +416,7 @@ def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: i
     X = X.reshape(n, gh, gw, -1)
     half = patch // 2
 
-    def paste(vals, size, step, shape):
+    def paste(vals, size, step, shape, fill):
         acc = np.zeros((n,) + shape, np.float32)
         cnt = np.zeros(shape, np.float32)
         v = vals.reshape(n, gh, gw, size, size)
@@ -424,15 +424,17 @@ def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: i
             for j in range(gw):
                 acc[:, i * step:i * step + size, j * step:j * step + size] += v[:, i, j]
                 cnt[i * step:i * step + size, j * step:j * step + size] += 1
-        return acc / np.maximum(cnt, 1)
+        # Pixels no patch covers (a border narrower than the stride) are not modelled:
+        # black with neutral chroma, rather than the colour of an all-zero YCrCb pixel.
+        return np.where(cnt > 0, acc / np.maximum(cnt, 1), np.float32(fill))
 
-    luma = paste(X[..., :patch * patch], patch, stride, (h, w))
+    luma = paste(X[..., :patch * patch], patch, stride, (h, w), 0.0)
     if not colour:
         out = np.repeat(luma[..., None], 3, axis=-1)
         return (np.clip(out, 0, 1) * 255).round().astype(np.uint8)
     c = half * half
-    cr = paste(X[..., patch * patch:patch * patch + c], half, stride // 2, (h // 2, w // 2))
-    cb = paste(X[..., patch * patch + c:], half, stride // 2, (h // 2, w // 2))
+    cr = paste(X[..., patch * patch:patch * patch + c], half, stride // 2, (h // 2, w // 2), 0.5)
+    cb = paste(X[..., patch * patch + c:], half, stride // 2, (h // 2, w // 2), 0.5)
     out = np.empty((n, h, w, 3), np.uint8)
     for k in range(n):
         ycc = np.dstack([luma[k], cv2.resize(cr[k], (w, h)), cv2.resize(cb[k], (w, h))])

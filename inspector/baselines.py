@@ -1,0 +1,231 @@
+"""Baseline versions of a camera: listing, switching (rollback included), and what a switch
+would change on the camera's recent frames.
+
+``inspector baselines CAMERA`` lists the versions; ``--activate VERSION`` switches after
+showing how many flags the switch adds and removes on the camera's last N scored frames
+(from the frame ledger, table ``frames`` of the store's SQLite file, read only).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sqlite3
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from inspector.config import Config
+from inspector.errors import FrameError
+from inspector.frames import FrameFile, iter_frames
+from inspector.store import Store
+
+#: Recent scored frames a comparison runs on, unless told otherwise.
+COMPARE_FRAMES = 200
+
+
+@dataclass(frozen=True)
+class FlagChange:
+    """How flags change from one baseline to another on the same frames.
+
+    Attributes
+    ----------
+    frames : int
+        Frames compared.
+    old_flags, new_flags : int
+        Frames flagged by each baseline.
+    added : int
+        Flagged by the new baseline only.
+    removed : int
+        Flagged by the old baseline only.
+    """
+
+    frames: int
+    old_flags: int
+    new_flags: int
+    added: int
+    removed: int
+
+
+def compare_flags(old_scores: np.ndarray, old_threshold: float, new_scores: np.ndarray,
+                  new_threshold: float) -> FlagChange:
+    """Flags added and removed when ``new`` replaces ``old``, on the same frames.
+
+    Parameters
+    ----------
+    old_scores, new_scores : ndarray, shape (n,)
+        Frame scores of the same n frames under each baseline.
+    old_threshold, new_threshold : float
+        A frame is flagged iff its score is above its baseline's threshold.
+    """
+    old = np.asarray(old_scores, float) > old_threshold
+    new = np.asarray(new_scores, float) > new_threshold
+    if old.shape != new.shape:
+        raise ValueError(f"scores of different frames: {old.shape} vs {new.shape}")
+    return FlagChange(frames=int(old.size), old_flags=int(old.sum()), new_flags=int(new.sum()),
+                      added=int((new & ~old).sum()), removed=int((old & ~new).sum()))
+
+
+def last_scored(database: Path, camera: str, n: int) -> list[str]:
+    """Absolute paths of the camera's last ``n`` scored frames in the ledger, newest first.
+
+    The ledger (table ``frames``) belongs to the watcher; it is opened read-only. A missing
+    file or table gives an empty list.
+    """
+    if n <= 0 or not Path(database).is_file():
+        return []
+    try:
+        conn = sqlite3.connect(f"{Path(database).resolve().as_uri()}?mode=ro", uri=True,
+                               timeout=10.0)
+    except sqlite3.Error:
+        return []
+    try:
+        rows = conn.execute("SELECT path FROM frames WHERE camera = ? AND status = 'scored' "
+                            "ORDER BY scored_at DESC, rowid DESC LIMIT ?", (camera, n))
+        return [r[0] for r in rows]
+    except sqlite3.Error:  # no ledger table (yet)
+        return []
+    finally:
+        conn.close()
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """Result of :func:`compare_versions`: the flag change, or why there is none."""
+
+    camera: str
+    old: str
+    new: str
+    change: FlagChange | None
+    unreadable: int = 0
+    reason: str = ""
+
+    def text(self) -> str:
+        if self.change is None:
+            return f"{self.camera}: {self.reason}"
+        c = self.change
+        extra = f", {self.unreadable} could not be read" if self.unreadable else ""
+        return (f"{self.camera}: {self.new} instead of {self.old} on the last {c.frames} "
+                f"scored frames{extra}: {c.old_flags} -> {c.new_flags} flags, "
+                f"{c.added} added, {c.removed} removed")
+
+
+def compare_versions(store: Store, config: Config, camera: str, old: str | None, new: str,
+                     n: int = COMPARE_FRAMES) -> Comparison:
+    """Score the camera's last ``n`` ledger frames with both versions and compare the flags."""
+    from inspector.scan import read_args
+
+    if old is None:
+        return Comparison(camera, "-", new, None, reason="no active version to compare with")
+    if old == new:
+        return Comparison(camera, old, new, None, reason=f"{new} is already the active version")
+    paths = last_scored(store.database, camera, n)
+    if not paths:
+        return Comparison(camera, old, new, None,
+                          reason="nothing to compare against: no scored frames of this camera "
+                                 "in the store's frame ledger")
+    scores, unreadable = [], set()
+    baselines = [store.load(camera, old), store.load(camera, new)]
+    files = [FrameFile(Path(p), Path(p).name, camera) for p in paths]
+    for b in baselines:
+        got: dict[str, float] = {}
+        batch_idx, batch = [], []
+
+        def flush() -> None:
+            if batch:
+                for p, s in zip(batch_idx, b.score(np.stack(batch)).scores):
+                    got[p] = float(s)
+                batch_idx.clear()
+                batch.clear()
+
+        for f, frame in iter_frames(files, **read_args(b, config)):
+            if isinstance(frame, FrameError):
+                unreadable.add(str(f.path))
+                continue
+            batch_idx.append(str(f.path))
+            batch.append(frame.image)
+            if len(batch) == 32:
+                flush()
+        flush()
+        scores.append(got)
+    common = [str(f.path) for f in files if str(f.path) not in unreadable
+              and all(str(f.path) in s for s in scores)]
+    if not common:
+        return Comparison(camera, old, new, None, unreadable=len(unreadable),
+                          reason=f"nothing to compare against: none of the last {len(paths)} "
+                                 "scored frames could be read")
+    change = compare_flags(np.array([scores[0][p] for p in common]),
+                           baselines[0].threshold.value,
+                           np.array([scores[1][p] for p in common]),
+                           baselines[1].threshold.value)
+    return Comparison(camera, old, new, change, unreadable=len(unreadable))
+
+
+def version_rows(store: Store, camera: str) -> list[dict]:
+    """One dict per version: version, created, frames, first/last frame time, threshold,
+    promised false-alarm rate, model, false alarms folded in, active."""
+    active = store.active_version(camera)
+    rows = []
+    for v in store.versions(camera):
+        try:
+            m = store.metadata(camera, v)
+        except (OSError, ValueError):
+            continue
+        t = m.get("threshold", {})
+        rows.append({"version": v, "created": m.get("created", ""),
+                     "model": m.get("model", ""), "frames": m.get("frames", 0),
+                     "first": m.get("first_frame_time", ""), "last": m.get("last_frame_time", ""),
+                     "threshold": t.get("value", float("nan")),
+                     "false_alarm_rate": t.get("promised", float("nan")),
+                     "false_alarms_added": m.get("false_alarm_frames", 0),
+                     "active": v == active})
+    return rows
+
+
+# --- command line ---------------------------------------------------------------------------
+
+def add_command(sub) -> None:
+    from inspector.cli import add_common
+
+    p = sub.add_parser("baselines", help="list a camera's baseline versions, or switch to one "
+                                         "(rollback included)")
+    p.add_argument("camera", metavar="CAMERA")
+    p.add_argument("--activate", metavar="VERSION",
+                   help="make VERSION (v1, v2, ...) the active baseline")
+    p.add_argument("--compare", type=int, default=COMPARE_FRAMES, metavar="N",
+                   help=f"before switching, compare flags on the camera's last N scored frames "
+                        f"(default {COMPARE_FRAMES}; 0 skips)")
+    add_common(p)
+    p.set_defaults(func=cmd_baselines)
+
+
+def cmd_baselines(args: argparse.Namespace) -> int:
+    from inspector.cli import resolve, say
+    from inspector.errors import UsageError
+    from inspector.store import check_camera_name
+
+    config, store = resolve(args)
+    camera = check_camera_name(args.camera)
+    rows = version_rows(store, camera)
+    if not rows:
+        known = ", ".join(store.cameras()) or "none"
+        raise UsageError(f"camera {camera!r} has no baselines in {store.root} "
+                         f"(cameras: {known})")
+    if args.activate:
+        if args.compare < 0:
+            raise UsageError("--compare must be 0 or more")
+        old = store.active_version(camera)
+        if args.activate not in store.versions(camera):
+            store.activate(camera, args.activate)  # raises the one-line error
+        if args.compare:
+            say(compare_versions(store, config, camera, old, args.activate, args.compare).text())
+        store.activate(camera, args.activate)
+        say(f"{camera}: {args.activate} is now active (was {old or 'none'})")
+        return 0
+    say(f"{'version':<9}{'active':<8}{'model':<6}{'frames':>7}  {'first frame':<20}"
+        f"{'last frame':<20}{'threshold':>10}{'false-alarm rate':>18}{'+false alarms':>15}")
+    for r in rows:
+        say(f"{r['version']:<9}{'yes' if r['active'] else '':<8}{r['model']:<6}{r['frames']:>7}  "
+            f"{r['first'][:19]:<20}{r['last'][:19]:<20}{r['threshold']:>10.3f}"
+            f"{r['false_alarm_rate']:>18.4g}{r['false_alarms_added']:>15}")
+    return 0
