@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test bench clean chromium
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
@@ -19,8 +19,14 @@ $(STAMP): $(PY) pyproject.toml
 demo: $(STAMP)
 	$(VENV)/bin/inspector demo
 
-test: $(STAMP)
+test: $(STAMP) chromium
 	$(PY) -m pytest -q
+
+# The review page's browser test drives Debian's chromium (Playwright's own browser download
+# does not work here); install it when missing. Without it that one test is skipped.
+chromium:
+	@command -v chromium >/dev/null 2>&1 || (apt-get update -q && DEBIAN_FRONTEND=noninteractive apt-get install -y -q chromium) \
+		|| echo "warning: could not install chromium; the browser test will be skipped"
 
 bench: $(STAMP)
 	$(PY) bench/throughput.py
