@@ -352,12 +352,12 @@ def symlog(v: float) -> float:
 
 
 def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str,
-                 selected: str = "", width: int = 900, height: int = 150) -> str:
+                 selected: str = "", width: int = 1200, height: int = 120) -> str:
     """An inline SVG: score over capture time, the threshold line, events shaded.
 
     Each point links to ``link + point.item`` (the page URL for that frame).
     """
-    pad_l, pad_r, pad_t, pad_b = 56, 12, 10, 24
+    pad_l, pad_r, pad_t, pad_b = 48, 12, 8, 22
     pw, ph = width - pad_l - pad_r, height - pad_t - pad_b
     pts = [p for p in points if p.camera == camera]
     evs = [e for e in events if e.camera == camera and e.start and e.end]
@@ -429,6 +429,8 @@ def _ticks(lo: float, hi: float) -> list[float]:
         k += 1
     if len(out) < 2:
         out.append(10 ** hi - 1)
+    while len(out) > 4:  # keep the axis readable on a short plot: every other decade
+        out = out[:1] + out[2::2]
     return out
 
 

@@ -235,6 +235,10 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
             token=token, labels=LABELS, label_text=LABEL_TEXT, link=link, results=results,
             fmt=_fmt)
 
+    @app.get("/favicon.ico")
+    def favicon():
+        return Response(status=204)
+
     @app.get("/img/<item_id>/<kind>")
     def image(item_id: str, kind: str):
         item = item_or_404(item_id)
