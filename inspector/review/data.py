@@ -13,6 +13,7 @@ import csv
 import json
 import math
 import sqlite3
+import threading
 from dataclasses import dataclass, field
 from datetime import date, datetime
 from html import escape
@@ -89,6 +90,7 @@ class Results:
         self.database = database
         self.problems: list[str] = []
         self._stamp: tuple = ()
+        self._lock = threading.Lock()
         self.items: dict[str, Item] = {}
         self.listed: list[Item] = []
         self.frames: list[Item] = []
@@ -104,8 +106,11 @@ class Results:
 
     def refresh(self) -> None:
         """Re-read the folder if any of its files changed since the last read."""
-        stamp = tuple((p.stat().st_mtime_ns, p.stat().st_size) if p.exists() else None
-                      for p in self._files())
+        with self._lock:
+            self._refresh()
+
+    def _refresh(self) -> None:
+        stamp = tuple(_stamp(p) for p in self._files())
         if stamp == self._stamp:
             return
         self._stamp = stamp
@@ -234,6 +239,14 @@ class Results:
             except (TypeError, ValueError):
                 continue
         return out
+
+
+def _stamp(path: Path):
+    try:
+        st = path.stat()
+        return st.st_mtime_ns, st.st_size
+    except OSError:
+        return None
 
 
 def read_run(out: Path) -> dict:

@@ -24,7 +24,7 @@ from werkzeug.security import safe_join
 
 from inspector.baseline import Baseline
 from inspector.config import Config
-from inspector.errors import FrameError
+from inspector.errors import FrameError, UsageError
 from inspector.frames import FrameFile, read_frame, sniff
 from inspector.labels import LABEL_TEXT, LABELS, Label, connect, now, put, read, remove
 from inspector.review.data import (Filters, Item, Results, parse_filters, select,
@@ -223,7 +223,12 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
                      for cam in tl_cams]
         from inspector.baselines import version_rows
 
-        versions = {cam: version_rows(store, cam) for cam in tl_cams}
+        versions = {}
+        for cam in tl_cams:
+            try:
+                versions[cam] = version_rows(store, cam)
+            except UsageError:  # a camera name in the results that cannot be a store folder
+                versions[cam] = []
         detail = None
         if current is not None:
             lab = labels.get((current.camera, str(current.path)))
@@ -260,8 +265,8 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
             data = pictures.expected(item) if kind == "expected" else pictures.overlay(item)
         except FrameError as exc:
             abort(404, f"frame cannot be read: {exc}")
-        except LookupError as exc:
-            abort(404, str(exc))
+        except (LookupError, OSError, ValueError, KeyError) as exc:
+            abort(404, f"no picture: {exc}")
         mime = "image/png" if kind == "expected" else "image/jpeg"
         return Response(data, mimetype=mime, headers={"Cache-Control": "max-age=3600"})
 
