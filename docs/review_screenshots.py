@@ -23,7 +23,6 @@ sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE.parent / "tests"))
 
 from _review_run import Run, serving  # noqa: E402
-from inspector.cli import main  # noqa: E402
 from inspector.review.server import LOOPBACK_NAMES, create_app  # noqa: E402
 from inspector.scenario import generate  # noqa: E402
 from inspector.store import Store  # noqa: E402

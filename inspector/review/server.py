@@ -27,8 +27,7 @@ from inspector.config import Config
 from inspector.errors import FrameError, UsageError
 from inspector.frames import FrameFile, read_frame, sniff
 from inspector.labels import LABEL_TEXT, LABELS, Label, connect, now, put, read, remove
-from inspector.review.data import (Filters, Item, Results, parse_filters, select,
-                                   timeline_svg)
+from inspector.review.data import Item, Results, parse_filters, select, timeline_svg
 from inspector.store import Store
 
 #: The longest note kept with a label.
@@ -205,7 +204,8 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
         for cam in cameras:
             mine = [i for i in items if i.camera == cam]
             labs = [label_of.get((cam, str(i.path)), "") for i in mine]
-            counts.append({"camera": cam, "flags": len(mine), "reviewed": sum(bool(x) for x in labs),
+            counts.append({"camera": cam, "flags": len(mine),
+                           "reviewed": sum(bool(x) for x in labs),
                            "incidents": labs.count("incident"),
                            "false_alarms": labs.count("false_alarm")})
         wanted = request.args.get("item", "")
