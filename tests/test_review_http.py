@@ -197,3 +197,29 @@ def test_path_traversal_gets_404_over_real_http(run):
         resp = conn.getresponse()
         assert resp.status == 400 and b"Traceback" not in resp.read()
         conn.close()
+
+
+@pytest.mark.parametrize("host, warned", [("127.0.0.1", False), ("0.0.0.0", True)])
+def test_command_binds_loopback_unless_told_and_then_warns(run, host, warned):
+    import subprocess
+    import sys
+    import urllib.request
+    from pathlib import Path
+
+    cmd = [sys.executable, "-m", "inspector", "review", "--out", str(run.out), "--config",
+           str(run.config_path), "--port", "0"] + (["--host", host] if warned else [])
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, text=True,
+                            cwd=Path(__file__).resolve().parents[1])
+    try:
+        lines = [proc.stdout.readline()]
+        if warned:
+            lines.append(proc.stdout.readline())
+        assert ("warning: listening on 0.0.0.0" in lines[0]) == warned
+        url = lines[-1].split("review page: ", 1)[1].split()[0]
+        assert url.startswith("http://127.0.0.1:") != warned
+        port = url.rstrip("/").rsplit(":", 1)[1]
+        page = urllib.request.urlopen(f"http://127.0.0.1:{port}/", timeout=30).read()
+        assert b"inspector review" in page
+    finally:
+        proc.terminate()
+        proc.wait(timeout=30)
