@@ -51,8 +51,9 @@ def main() -> None:
 
 def run(work: Path, n: int, rounds: int) -> None:
     t = time.perf_counter()
+    # Mostly normal frames, as in a real stream (overlays are drawn for flagged frames only).
     scenario = generate(work / "frames", seed=1, normal_per_camera=120, new_per_camera=n // 2,
-                        size=(1920, 1080))
+                        incident_fraction=0.05, size=(1920, 1080))
     print(f"generated {n} + 240 full-HD frames in {time.perf_counter() - t:.1f} s")
     config = load_config(None)
     store = Store(work / "store")

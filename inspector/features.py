@@ -38,6 +38,23 @@ def feature_size(patch: int, colour: bool) -> int:
     return patch * patch + (2 * (patch // 2) ** 2 if colour else 0)
 
 
+def _planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray | None]:
+    """Luma (n, H, W) uint8 and chroma 2x2 means (n, H/2, W/2, 2) float32 in [0, 255]."""
+    images = np.asarray(images)
+    if images.ndim != 4 or images.shape[-1] != 3 or images.dtype != np.uint8:
+        raise ValueError(f"expected (n, H, W, 3) uint8 frames, got {images.shape} {images.dtype}")
+    n, h, w, _ = images.shape
+    flat = images.reshape(n * h, w, 3)
+    if not colour:
+        return cv2.cvtColor(flat, cv2.COLOR_RGB2GRAY).reshape(n, h, w), None
+    luma, cr, cb = cv2.split(cv2.cvtColor(flat, cv2.COLOR_RGB2YCrCb))
+    # An exact 2x2 mean: area interpolation by a factor of two, in float (no rounding).
+    # Rows pair up within each frame because H is even.
+    half = [cv2.resize(c.astype(np.float32), (w // 2, n * h // 2), interpolation=cv2.INTER_AREA)
+            for c in (cr, cb)]
+    return luma.reshape(n, h, w), np.stack(half, axis=-1).reshape(n, h // 2, w // 2, 2)
+
+
 def to_planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray | None]:
     """Luminance and half-resolution chroma of RGB frames.
 
@@ -53,19 +70,9 @@ def to_planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray 
     chroma : ndarray, shape (n, H/2, W/2, 2), float32 in [0, 1], or None
         Cr and Cb (ITU-R BT.601, as in JPEG), each the mean of a 2x2 block.
     """
-    images = np.asarray(images)
-    if images.ndim != 4 or images.shape[-1] != 3 or images.dtype != np.uint8:
-        raise ValueError(f"expected (n, H, W, 3) uint8 frames, got {images.shape} {images.dtype}")
-    n, h, w, _ = images.shape
-    flat = images.reshape(n * h, w, 3)
-    if not colour:
-        luma = cv2.cvtColor(flat, cv2.COLOR_RGB2GRAY).astype(np.float32) / 255.0
-        return luma.reshape(n, h, w), None
-    ycc = cv2.cvtColor(flat, cv2.COLOR_RGB2YCrCb).astype(np.float32) / 255.0
-    ycc = ycc.reshape(n, h, w, 3)
-    c = ycc[..., 1:]
-    chroma = (c[:, 0::2, 0::2] + c[:, 1::2, 0::2] + c[:, 0::2, 1::2] + c[:, 1::2, 1::2]) * 0.25
-    return np.ascontiguousarray(ycc[..., 0]), chroma
+    luma, chroma = _planes(images, colour)
+    scale = np.float32(1 / 255)
+    return luma.astype(np.float32) * scale, None if chroma is None else chroma * scale
 
 
 def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool) -> np.ndarray:
@@ -81,20 +88,24 @@ def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool) ->
     Returns
     -------
     ndarray, shape (n, gh * gw, d), float32
-        Row-major over the patch grid (see :func:`grid_shape`), d = :func:`feature_size`.
+        Row-major over the patch grid (see :func:`grid_shape`), d = :func:`feature_size`;
+        values in [0, 1] as in :func:`to_planes`.
     """
-    luma, chroma = to_planes(images, colour)
+    luma, chroma = _planes(images, colour)
     n, h, w = luma.shape
     gh, gw = grid_shape(h, w, patch, stride)
     out = np.empty((n, gh, gw, feature_size(patch, colour)), np.float32)
     p2 = patch * patch
-    out[..., :p2] = _windows(luma, patch, stride, gh, gw).reshape(n, gh, gw, p2)
+    # Copy the window views straight into the output (one pass, casting on the way).
+    np.copyto(out[..., :p2].reshape(n, gh, gw, patch, patch),
+              _windows(luma, patch, stride, gh, gw))
     if chroma is not None:
         half = patch // 2
         c = half * half
         for k in range(2):
-            win = _windows(chroma[..., k], half, stride // 2, gh, gw)
-            out[..., p2 + k * c:p2 + (k + 1) * c] = win.reshape(n, gh, gw, c)
+            np.copyto(out[..., p2 + k * c:p2 + (k + 1) * c].reshape(n, gh, gw, half, half),
+                      _windows(chroma[..., k], half, stride // 2, gh, gw))
+    out *= np.float32(1 / 255)
     return out.reshape(n, gh * gw, -1)
 
 

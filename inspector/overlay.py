@@ -39,9 +39,8 @@ def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
     level = np.clip(heat / top, 0.0, 1.0)
     colour = cv2.applyColorMap((level * 255).astype(np.uint8), COLORMAP)
     # Transparent where the map is unremarkable, up to 65% opaque where it is hottest.
-    alpha = (np.clip((heat - 0.5 * threshold) / max(threshold, 1e-6), 0.0, 1.0) * 0.65)[..., None]
-    base = frame.astype(np.float32)
-    out = (base + alpha * (colour.astype(np.float32) - base)).astype(np.uint8)
+    alpha = np.clip((heat - 0.5 * threshold) / max(threshold, 1e-6), 0.0, 1.0) * 0.65
+    out = cv2.blendLinear(colour, frame, alpha, 1.0 - alpha)
     region = (heat > threshold).astype(np.uint8)
     contours, _ = cv2.findContours(region, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
     cv2.drawContours(out, contours, -1, _OUTLINE, 2, cv2.LINE_AA)
