@@ -1,7 +1,8 @@
 """The frame loader: discovery, capture times, decoding and every kind of bad file."""
 
-import io
 import os
+import struct
+import zlib
 from datetime import datetime
 from pathlib import Path
 
@@ -89,11 +90,17 @@ def test_truncated_and_oversized_frames(tmp_path):
     p.write_bytes(buf[: len(buf) // 2])
     with pytest.raises(FrameError, match="truncated"):
         read_frame(_ff(p), **READ)
-    # A decompression bomb: a tiny PNG file that claims 20000 x 20000 pixels.
-    bomb = io.BytesIO()
-    Image.new("L", (20000, 20000)).save(bomb, format="PNG")
+    # A decompression bomb: a tiny PNG file whose header claims 60000 x 60000 pixels
+    # (chunk layout from the PNG specification, ISO/IEC 15948).
+    def chunk(kind: bytes, body: bytes) -> bytes:
+        return struct.pack(">I", len(body)) + kind + body + struct.pack(
+            ">I", zlib.crc32(kind + body))
+
+    ihdr = struct.pack(">IIBBBBB", 60000, 60000, 8, 0, 0, 0, 0)
+    idat = zlib.compress(b"\x00" * 1000)
     q = tmp_path / "bomb.png"
-    q.write_bytes(bomb.getvalue())
+    q.write_bytes(b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", ihdr) + chunk(b"IDAT", idat)
+                  + chunk(b"IEND", b""))
     with pytest.raises(FrameError, match="too large"):
         read_frame(_ff(q), **{**READ, "max_pixels": 50_000_000})
 
