@@ -19,8 +19,9 @@ from inspector.learn import progress_bar
 from inspector.results import FrameResult, ResultWriter
 from inspector.store import Store
 
-#: Frames scored together (amortises the model's per-call overhead).
-BATCH = 16
+#: Frames scored together: amortises per-call overhead while a batch's patches still fit in
+#: cache (8 measured fastest of 4, 8, 16 and 32 at the default working resolution).
+BATCH = 8
 
 
 class Baselines:
