@@ -5,7 +5,8 @@ one item, not forty. The rule is a plain k-of-n rule with a gap tolerance, appli
 camera's frames in capture-time order:
 
 * an event opens at a flagged frame when at least ``k`` of the last ``n`` frames (that one
-  included) are flagged; it starts at the earliest flagged frame of that window;
+  included) are flagged, not counting frames of an earlier event; it starts at the
+  earliest such flagged frame of that window;
 * it grows with every further flagged frame, and tolerates up to ``gap`` unflagged frames
   in a row; the ``gap + 1``-th unflagged frame in a row closes it.
 
@@ -109,17 +110,18 @@ def group_events(points: Iterable[FramePoint], settings: EventSettings = EventSe
 
 def _camera_events(camera: str, series: list[FramePoint], s: EventSettings) -> list[Event]:
     out: list[Event] = []
-    window: deque[FramePoint] = deque(maxlen=s.n)
+    window: deque[tuple[int, FramePoint]] = deque(maxlen=s.n)
     members: list[FramePoint] | None = None  # flagged frames of the open event
     misses = 0
+    closed_at = -1  # position of the last frame of the last closed event
 
     def close() -> None:
         peak = max(members, key=lambda p: p.score)
         out.append(Event(f"{camera}-{len(out) + 1:04d}", camera, members[0].time,
                          members[-1].time, len(members), peak.frame, peak.score))
 
-    for p in series:
-        window.append(p)
+    for i, p in enumerate(series):
+        window.append((i, p))
         if members is not None:
             if p.flagged:
                 members.append(p)
@@ -129,9 +131,11 @@ def _camera_events(camera: str, series: list[FramePoint], s: EventSettings) -> l
             if misses > s.gap:
                 close()
                 members = None
+                closed_at = i
             continue
-        if p.flagged and sum(q.flagged for q in window) >= s.k:
-            members = [q for q in window if q.flagged]
+        fresh = [q for j, q in window if q.flagged and j > closed_at]
+        if p.flagged and len(fresh) >= s.k:
+            members = fresh
             misses = 0
     if members is not None:
         close()
