@@ -32,20 +32,18 @@ import queue
 import signal
 import threading
 import time
-from collections import Counter, deque
+from collections import deque
 from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from datetime import datetime
 from pathlib import Path
 
-from inspector.config import Config
 from inspector.errors import FrameError, UsageError
 from inspector.events import EventSettings, group_events, write_events
 from inspector.frames import FrameFile, Skip, discover, frame_file, is_ignored_name, read_frame
 from inspector.ledger import Ledger, now_iso
 from inspector.results import ResultWriter, format_row, iso_time
 from inspector.scan import Baselines, ScanSummary, score_frames
-from inspector.store import Store
 
 
 @dataclass(frozen=True)
@@ -165,7 +163,13 @@ class Watcher:
         t0 = time.perf_counter()
         self.reconcile()
         observer = self._observer()
-        observer.start()
+        try:
+            observer.start()
+        except OSError as exc:  # e.g. the system's limit of inotify watches is reached
+            poll = max(1.0, self.settings.settle)
+            self.log(f"file events unavailable ({exc}); polling every {poll:g} s instead")
+            observer = self._observer(poll)
+            observer.start()
         workers = [threading.Thread(target=self._worker, name=f"score-{i}", daemon=True)
                    for i in range(self.settings.workers)]
         for w in workers:
@@ -184,7 +188,7 @@ class Watcher:
         self.report.seconds = time.perf_counter() - t0
         return self.report
 
-    def _observer(self):
+    def _observer(self, poll: float | None = None):
         from watchdog.events import FileSystemEventHandler
         from watchdog.observers import Observer
         from watchdog.observers.polling import PollingObserver
@@ -195,8 +199,9 @@ class Watcher:
             def on_any_event(self, event):  # noqa: D401 - never block the observer
                 sink.put(event)
 
-        if self.settings.poll > 0:
-            observer = PollingObserver(timeout=self.settings.poll)
+        poll = poll or self.settings.poll
+        if poll > 0:
+            observer = PollingObserver(timeout=poll)
         else:
             observer = Observer()
         observer.schedule(Handler(), str(self.root), recursive=True)
@@ -413,11 +418,13 @@ class Watcher:
                 version = self.baselines.store.active_version(cam)
             except UsageError:
                 continue
-            if version == self._versions.get(cam):
+            with self._lock:
+                retry = cam in self._waiting and version is not None
+            if version == self._versions.get(cam) and not retry:
                 continue
             known = cam in self._versions
             self._versions[cam] = version
-            if not known and cam not in self._waiting:
+            if not known and not retry:
                 continue
             self.baselines.forget(cam)
             if version is not None:
