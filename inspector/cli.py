@@ -219,8 +219,9 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
         say(f"warning: {n} frames of {note}")
     say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
         f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
-    say(f"flagged frames: {out / 'flagged.csv'}  events: {out / 'events.csv'}  "
-        f"overlays: {out / 'overlays'}  skipped: {out / 'skipped.csv'}")
+    events = f"  events: {out / 'events.csv'}" if (out / "events.csv").exists() else ""
+    say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
+        f"skipped: {out / 'skipped.csv'}")
     if all_scores:
         say(f"all scores: {all_scores}")
 
