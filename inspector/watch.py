@@ -177,6 +177,8 @@ class Watcher:
         try:
             self.catch_up()
             self._loop()
+            if self.stop.is_set():
+                self.log("stop requested: finishing the frames in hand")
         finally:
             self.stop.set()
             observer.stop()
