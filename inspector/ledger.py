@@ -177,14 +177,18 @@ class Ledger:
                 f"SELECT * FROM frames WHERE path >= ? AND path < ? AND ({where}) ORDER BY id",
                 (lo, hi, *params)))
 
-    def points(self, root: Path | str) -> Iterator[FramePoint]:
-        """Scored frames under ``root`` as the event grouping sees them."""
+    def points(self, root: Path | str, camera: str | None = None) -> Iterator[FramePoint]:
+        """Scored frames under ``root`` (of one camera, if given) as the event grouping
+        sees them."""
         lo, hi = source_range(root)
+        sql = ("SELECT camera, capture_time, rel, score, flagged FROM frames "
+               "WHERE path >= ? AND path < ? AND status = 'scored'")
+        params: tuple = (lo, hi)
+        if camera is not None:
+            sql += " AND camera = ?"
+            params += (camera,)
         with self.lock:
-            cur = self.conn.execute(
-                "SELECT camera, capture_time, rel, score, flagged FROM frames "
-                "WHERE path >= ? AND path < ? AND status = 'scored'", (lo, hi))
-            found = cur.fetchall()
+            found = self.conn.execute(sql, params).fetchall()
         for r in found:
             yield FramePoint(r[0], r[1] or "", r[2], float(r[3]), bool(r[4]))
 

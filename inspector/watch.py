@@ -151,7 +151,8 @@ class Watcher:
         self._write_lock = threading.Lock()  # the ResultWriter
         self._waiting: set[str] = set()
         self._versions: dict[str, str | None] = {}
-        self._dirty = True
+        self._dirty: set[str] | None = None  # cameras whose events changed; None = all
+        self._events_by_camera: dict[str, list] = {}
         self._last_activity = time.monotonic()
         self._started = now_iso()
         self._tick = max(0.02, min(0.1, settings.settle / 4))
@@ -223,7 +224,7 @@ class Watcher:
             if now - last_check >= 2.0:
                 self._check_baselines()
                 last_check = now
-            if self._dirty and now - last_events >= 2.0:
+            if (self._dirty is None or self._dirty) and now - last_events >= 2.0:
                 self._write_events()
                 last_events = now
             if now - last_lag >= 5.0 and self._log_lag(now):
@@ -470,9 +471,21 @@ class Watcher:
         return True
 
     def _write_events(self) -> None:
-        self._dirty = False
+        """Regroup the cameras with new scored frames (all on the first call) and rewrite
+        events.csv."""
+        with self._lock:
+            dirty, self._dirty = self._dirty, set()
+        if dirty is None:
+            self._events_by_camera = {}
+            for e in group_events(self.ledger.points(self.root), self.event_settings):
+                self._events_by_camera.setdefault(e.camera, []).append(e)
+        else:
+            for cam in dirty:
+                self._events_by_camera[cam] = group_events(
+                    self.ledger.points(self.root, cam), self.event_settings)
         write_events(self.writer.out / "events.csv",
-                     group_events(self.ledger.points(self.root), self.event_settings))
+                     [e for cam in sorted(self._events_by_camera)
+                      for e in self._events_by_camera[cam]])
 
     # --- the workers --------------------------------------------------------------------
 
@@ -570,7 +583,8 @@ class Watcher:
                 if e["status"] == "scored":
                     self.report.scored += 1
                     self.report.flagged += e["flagged"]
-                    self._dirty = True
+                    if self._dirty is not None:
+                        self._dirty.add(e["camera"])
                 elif e["status"] == "skipped":
                     self.report.skipped += 1
                 else:
