@@ -162,6 +162,7 @@ class Watcher:
     def run(self) -> WatchReport:
         """Watch until :attr:`stop` is set (signal) or the idle time passes."""
         t0 = time.perf_counter()
+        self._heartbeat(time.monotonic())
         self.reconcile()
         observer = self._observer()
         try:
@@ -602,6 +603,24 @@ class Watcher:
                     seen_at=it.seen_at, scored_at=now_iso(), **values)
 
 
+def refuse_second_watcher(ledger: Ledger, root: Path) -> None:
+    """One watcher per folder: two would score its frames twice."""
+    for w in ledger.watchers():
+        if w["source"] == str(root) and w["pid"] != os.getpid() and _alive(w["pid"]):
+            raise UsageError(f"{root} is already being watched (process {w['pid']}); "
+                             "two watchers would score its frames twice")
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # exists, owned by someone else
+        return True
+    return True
+
+
 def _csv_rows(path: Path) -> set[tuple]:
     import csv
 
@@ -654,22 +673,30 @@ def cmd_watch(args: argparse.Namespace) -> int:
     def log(text: str) -> None:
         say(f"{datetime.now().strftime('%H:%M:%S')} {text}")
 
-    with Ledger(store.database) as ledger, \
-            ResultWriter(out, args.all_scores, args.maps, append=True, source=root,
-                         store=store.root) as writer:
-        watcher = Watcher(root, Baselines(store, config), writer, ledger, settings, events,
-                          idle_exit=args.idle_exit, log=log)
-        stop = lambda *_: watcher.stop.set()  # noqa: E731 - finish the frame in hand
-        old = {s: signal.signal(s, stop) for s in (signal.SIGINT, signal.SIGTERM)}
-        try:
-            mode = f"polling every {settings.poll:g} s" if settings.poll else "file events"
-            log(f"watching {root} ({mode}, settle {settings.settle:g} s); "
-                "stop with Ctrl-C")
-            report = watcher.run()
-        finally:
-            for s, h in old.items():
-                signal.signal(s, h)
+    with Ledger(store.database) as ledger:
+        refuse_second_watcher(ledger, root)
+        with ResultWriter(out, args.all_scores, args.maps, append=True, source=root,
+                          store=store.root) as writer:
+            report = _run(Watcher(root, Baselines(store, config), writer, ledger, settings,
+                                  events, idle_exit=args.idle_exit, log=log), settings, log)
     if report.waiting:
         say(f"{report.waiting} frames wait for a baseline of their camera")
     report_scan(report, out, args.all_scores)
     return 0
+
+
+def _run(watcher: Watcher, settings: WatchSettings, log) -> WatchReport:
+    """Run until stopped, SIGINT and SIGTERM asking for a clean stop."""
+
+    def stop(*_):  # finish the frames in hand, then exit 0
+        watcher.stop.set()
+
+    old = {s: signal.signal(s, stop) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        mode = f"polling every {settings.poll:g} s" if settings.poll else "file events"
+        log(f"watching {watcher.root} ({mode}, settle {settings.settle:g} s); "
+            "stop with Ctrl-C")
+        return watcher.run()
+    finally:
+        for s, h in old.items():
+            signal.signal(s, h)

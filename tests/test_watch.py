@@ -421,10 +421,12 @@ def test_restart_after_sigkill_scores_every_frame_exactly_once(env, capsys):
     assert env["all"].read_text(encoding="utf-8").count("frame,camera,time") == 1
 
 
-def test_sigterm_finishes_the_frame_in_hand_and_exits_0(env):
+def test_sigterm_finishes_the_frame_in_hand_and_exits_0(env, capsys):
     write_frames(env["src"], "dock", range(300))
     proc = start(env)
     wait_scored(env, 10, proc)
+    second = cli.main(watch_args(env, "--idle-exit", "0"))  # one watcher per folder
+    assert second == 2 and "already being watched" in capsys.readouterr().err
     proc.send_signal(signal.SIGTERM)
     out = proc.communicate(timeout=120)[0]
     assert proc.returncode == 0, out
