@@ -24,7 +24,7 @@ from inspector.store import Store, check_camera_name
 
 #: Modules that add further subcommands (each defines ``add_command(subparsers)``).
 COMMAND_MODULES = ("inspector.demo", "inspector.review", "inspector.labels",
-                   "inspector.baselines")
+                   "inspector.baselines", "inspector.watch")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -196,14 +196,18 @@ def _with_false_alarms(store: Store, camera: str, files: list) -> tuple[list, di
 
 
 def cmd_scan(args: argparse.Namespace) -> int:
+    from inspector.events import EventSettings
+    from inspector.ledger import Ledger
     from inspector.results import ResultWriter
     from inspector.scan import Baselines, scan_folder
 
     config, store = resolve(args)
     out = args.out or Path(config.paths.out)
     check_source(args.source, out, args.all_scores, args.maps)
-    with ResultWriter(out, args.all_scores, args.maps, source=args.source,
-                      store=store.root) as writer:
+    events = config.section("events", EventSettings)
+    with Ledger(store.database) as ledger, \
+            ResultWriter(out, args.all_scores, args.maps, source=args.source,
+                         store=store.root, ledger=ledger, events=events) as writer:
         summary = scan_folder(args.source, Baselines(store, config), writer)
     report_scan(summary, out, args.all_scores)
     return 0
@@ -215,7 +219,8 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
         say(f"warning: {n} frames of {note}")
     say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
         f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
-    say(f"flagged frames: {out / 'flagged.csv'}  overlays: {out / 'overlays'}  "
+    events = f"  events: {out / 'events.csv'}" if (out / "events.csv").exists() else ""
+    say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
         f"skipped: {out / 'skipped.csv'}")
     if all_scores:
         say(f"all scores: {all_scores}")

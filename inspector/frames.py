@@ -122,30 +122,49 @@ def discover(source: Path, camera: str | None = None) -> tuple[list[FrameFile], 
         dirnames[:] = sorted(d for d in dirnames if not is_ignored_name(d)
                              and _inside((here / d).resolve(), root))
         for name in sorted(filenames):
-            if is_ignored_name(name):
-                continue
-            path = here / name
-            rel = path.relative_to(root).as_posix()
-            cam = camera if camera is not None else (rel.split("/")[0] if "/" in rel else "")
-            if not cam:
-                skips.append(Skip(rel, "", "not inside a camera folder (expected SOURCE/<camera>/...)"))
-                continue
-            if not _inside(path.resolve(), root):
-                skips.append(Skip(rel, cam, "link leads outside the scanned folder"))
-                continue
-            try:
-                with open(path, "rb") as fh:
-                    head = fh.read(16)
-            except OSError as exc:
-                skips.append(Skip(rel, cam, f"cannot read file: {exc.strerror or exc}"))
-                continue
-            if not head:
-                skips.append(Skip(rel, cam, "empty file"))
-            elif sniff(head) is None:
-                skips.append(Skip(rel, cam, "not an image (content is not JPEG, PNG, BMP or TIFF)"))
-            else:
-                files.append(FrameFile(path, rel, cam))
+            found = frame_file(here / name, root, camera)
+            if isinstance(found, FrameFile):
+                files.append(found)
+            elif found is not None:
+                skips.append(found)
     return files, skips
+
+
+def frame_file(path: Path, root: Path, camera: str | None = None) -> FrameFile | Skip | None:
+    """Decide what one file under ``root`` is: a frame file, a skip with its reason, or
+    None for names that are ignored (hidden files, downloads still being written).
+
+    Parameters
+    ----------
+    path : Path
+        The file, under ``root`` (not resolved: links are checked here).
+    root : Path
+        The resolved folder being read.
+    camera : str, optional
+        As in :func:`discover`.
+    """
+    if is_ignored_name(path.name):
+        return None
+    rel = path.relative_to(root).as_posix()
+    if any(is_ignored_name(part) for part in rel.split("/")[:-1]):
+        return None
+    cam = camera if camera is not None else (rel.split("/")[0] if "/" in rel else "")
+    if not cam:
+        return Skip(rel, "", "not inside a camera folder (expected SOURCE/<camera>/...)")
+    if not _inside(path.resolve(), root):
+        return Skip(rel, cam, "link leads outside the scanned folder")
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(16)
+    except FileNotFoundError:
+        return Skip(rel, cam, "file disappeared before it could be read")
+    except OSError as exc:
+        return Skip(rel, cam, f"cannot read file: {exc.strerror or exc}")
+    if not head:
+        return Skip(rel, cam, "empty file")
+    if sniff(head) is None:
+        return Skip(rel, cam, "not an image (content is not JPEG, PNG, BMP or TIFF)")
+    return FrameFile(path, rel, cam)
 
 
 def _inside(path: Path, root: Path) -> bool:

@@ -1,20 +1,28 @@
 """Where results are written: flagged.csv, all scores, skipped.csv, overlays and maps.
 
-The one writer of results, shared by scan and watch (and read back by review).
+The one writer of results, shared by scan and watch (and read back by review). When given
+a ledger, every frame scored or skipped is also recorded there (see :mod:`inspector.ledger`);
+when given event settings, ``events.csv`` is written on close (see :mod:`inspector.events`).
 """
 
 from __future__ import annotations
 
 import csv
+import os
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import cv2
 import numpy as np
 
 from inspector.overlay import render_overlay
+from inspector.events import EventSettings, FramePoint, group_events, write_events
 from inspector.store import write_json
+
+if TYPE_CHECKING:
+    from inspector.ledger import Ledger
 
 #: Columns of flagged.csv and of the all-scores file, in this order.
 COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "model", "overlay")
@@ -25,6 +33,13 @@ SKIP_COLUMNS = ("frame", "camera", "reason")
 def iso_time(t: datetime) -> str:
     """ISO 8601, to the second (milliseconds when the time has them)."""
     return t.isoformat(timespec="milliseconds" if t.microsecond else "seconds")
+
+
+def format_row(frame: str, camera: str, time: str, score: float, threshold: float,
+               p_value: float, model: str, overlay: str) -> tuple[str, ...]:
+    """A row of flagged.csv / the all-scores file (``time`` already ISO 8601)."""
+    return (frame, camera, time, f"{score:.4f}", f"{threshold:.4f}", f"{p_value:.6g}", model,
+            overlay)
 
 
 @dataclass
@@ -53,9 +68,37 @@ class FrameResult:
     amap: np.ndarray
 
 
+def repair_tail(path: Path) -> None:
+    """Cut a CSV file back to its last complete line (after a crash mid-write)."""
+    try:
+        with open(path, "rb+") as fh:
+            size = fh.seek(0, os.SEEK_END)
+            if size == 0:
+                return
+            fh.seek(size - 1)
+            if fh.read(1) == b"\n":
+                return
+            keep, step = 0, 4096
+            pos = size
+            while pos > 0:
+                start = max(0, pos - step)
+                fh.seek(start)
+                chunk = fh.read(pos - start)
+                i = chunk.rfind(b"\n")
+                if i >= 0:
+                    keep = start + i + 1
+                    break
+                pos = start
+            fh.truncate(keep)
+    except FileNotFoundError:
+        pass
+
+
 class _Csv:
     def __init__(self, path: Path, columns, append: bool):
         path.parent.mkdir(parents=True, exist_ok=True)
+        if append:
+            repair_tail(path)
         fresh = not append or not path.exists() or path.stat().st_size == 0
         self.fh = open(path, "a" if append else "w", newline="", encoding="utf-8")
         self.writer = csv.writer(self.fh)
@@ -86,11 +129,21 @@ class ResultWriter:
         Add to existing files (watch) instead of starting them anew (scan).
     source, store : Path, optional
         Recorded in ``run.json`` so that review can find the frames and baselines again.
+    ledger : Ledger, optional
+        Also record every frame written (scored, skipped or waiting) in the ledger, by its
+        path under ``source``.
+    events : EventSettings, optional
+        Group the flagged frames of this run into events and write ``events.csv`` on close.
     """
 
     def __init__(self, out: Path, all_scores: Path | None = None, maps: Path | None = None,
-                 append: bool = False, source: Path | None = None, store: Path | None = None):
+                 append: bool = False, source: Path | None = None, store: Path | None = None,
+                 ledger: "Ledger | None" = None, events: EventSettings | None = None):
         self.out = Path(out)
+        self.source = Path(source).resolve() if source is not None else None
+        self.ledger = ledger
+        self.events = events
+        self._points: list[FramePoint] = []
         self.out.mkdir(parents=True, exist_ok=True)
         if source is not None:
             write_json(self.out / "run.json", {
@@ -115,6 +168,23 @@ class ResultWriter:
 
     def write(self, r: FrameResult) -> str:
         """Record one scored frame; returns the overlay path ('' when none was written)."""
+        overlay = self.save_files(r)
+        self.add_rows(format_row(r.frame, r.camera, iso_time(r.time), r.score, r.threshold,
+                                 r.p_value, r.model, overlay), r.flagged)
+        if self.events is not None:
+            self._points.append(FramePoint(r.camera, iso_time(r.time), r.frame, r.score,
+                                           r.flagged))
+        if self.ledger is not None:
+            self.ledger.record([dict(self._ledger_file(r.frame), camera=r.camera,
+                                     status="scored", score=r.score, threshold=r.threshold,
+                                     p_value=r.p_value, flagged=int(r.flagged),
+                                     version=r.model, capture_time=iso_time(r.time),
+                                     overlay=overlay)])
+        return overlay
+
+    def save_files(self, r: FrameResult) -> str:
+        """Write the overlay (flagged frames) and the map file of one scored frame; returns
+        the overlay path ('' when none). No CSV row is written."""
         overlay = ""
         if r.flagged:
             name = self._unique("overlay", r.camera, r.frame)
@@ -125,27 +195,47 @@ class ResultWriter:
             cv2.imwrite(str(path), render_overlay(r.image, r.amap, r.threshold, caption),
                         [cv2.IMWRITE_JPEG_QUALITY, 90])
             overlay = path.as_posix()
-        row = (r.frame, r.camera, iso_time(r.time), f"{r.score:.4f}", f"{r.threshold:.4f}",
-               f"{r.p_value:.6g}", r.model, overlay)
-        if r.flagged:
-            self.flagged.row(row)
-            self.counts["flagged"] += 1
-        if self.all_scores:
-            self.all_scores.row(row)
         if self.maps is not None:
             name = self._unique("map", r.camera, r.frame)
             path = self.maps / r.camera / f"{name}.npy"
             path.parent.mkdir(parents=True, exist_ok=True)
             np.save(path, np.asarray(r.amap, np.float32), allow_pickle=False)
-        self.counts["scored"] += 1
         return overlay
 
-    def skip(self, frame: str, camera: str, reason: str) -> None:
-        """Record a frame that could not be scored, with the reason."""
+    def add_rows(self, row: tuple[str, ...], flagged: bool) -> None:
+        """Append a scored frame's row (see :func:`format_row`) to the CSV files."""
+        if flagged:
+            self.flagged.row(row)
+            self.counts["flagged"] += 1
+        if self.all_scores:
+            self.all_scores.row(row)
+        self.counts["scored"] += 1
+
+    def skip(self, frame: str, camera: str, reason: str, waiting: bool = False) -> None:
+        """Record a frame that could not be scored, with the reason. ``waiting``: the camera
+        has no baseline yet (the ledger keeps the frame for a later watch to score)."""
         self.skipped.row((frame, camera, reason))
         self.counts["skipped"] += 1
+        if self.ledger is not None:
+            self.ledger.record([dict(self._ledger_file(frame), camera=camera, reason=reason,
+                                     status="waiting" if waiting else "skipped")])
+
+    def _ledger_file(self, rel: str) -> dict:
+        from inspector.ledger import now_iso
+
+        path = (self.source / rel) if self.source is not None else Path(rel).resolve()
+        try:
+            st = os.stat(path)
+            size, mtime = st.st_size, st.st_mtime
+        except OSError:
+            size = mtime = None
+        now = now_iso()
+        return {"path": str(path), "rel": rel, "size": size, "mtime": mtime, "seen_at": now,
+                "scored_at": now, "written": 1}
 
     def close(self) -> None:
+        if self.events is not None:
+            write_events(self.out / "events.csv", group_events(self._points, self.events))
         for f in (self.flagged, self.skipped, self.all_scores):
             if f:
                 f.close()

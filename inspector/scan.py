@@ -3,6 +3,7 @@ watcher reuses (one loaded baseline per camera, batch scoring into results)."""
 
 from __future__ import annotations
 
+import threading
 import time
 from collections import Counter
 from collections.abc import Iterable, Sequence
@@ -34,14 +35,16 @@ class Baselines:
         self.store = store
         self.config = config
         self._loaded: dict[str, Baseline | LookupError] = {}
+        self._lock = threading.Lock()  # watch scores from several threads: load once
 
     def get(self, camera: str) -> Baseline:
-        if camera not in self._loaded:
-            try:
-                self._loaded[camera] = self.store.load(camera)
-            except LookupError as exc:
-                self._loaded[camera] = exc
-        found = self._loaded[camera]
+        with self._lock:
+            if camera not in self._loaded:
+                try:
+                    self._loaded[camera] = self.store.load(camera)
+                except LookupError as exc:
+                    self._loaded[camera] = exc
+            found = self._loaded[camera]
         if isinstance(found, LookupError):
             raise found
         return found
@@ -106,7 +109,7 @@ def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultW
                 baseline = baselines.get(camera)
             except LookupError as exc:
                 for f in cam_files:
-                    writer.skip(f.rel, camera, str(exc))
+                    writer.skip(f.rel, camera, str(exc), waiting=True)
                     bar.update()
                 continue
             batch: list[Frame] = []

@@ -48,6 +48,12 @@ def make_run(root: Path, seed: int = 5) -> Run:
     assert run.cli("learn", str(scenario.normal)) == 0
     assert run.cli("scan", str(scenario.new), "--out", str(run.out),
                    "--all-scores", str(run.out / "all_scores.csv")) == 0
+    # These tests list single flagged frames; events (which scan also writes) and the ledger
+    # rows scan records are set up by the tests that need them.
+    (run.out / "events.csv").unlink()
+    with sqlite3.connect(run.store.database) as conn:
+        conn.execute("DELETE FROM frames")
+    conn.close()
     return run
 
 
@@ -67,7 +73,9 @@ def write_ledger(database: Path, rows: list[tuple[str, str, float]]) -> None:
     t0 = datetime(2026, 12, 1, 8, 0, 0)
     with conn:
         for k, (path, camera, score) in enumerate(rows):
-            conn.execute("INSERT OR REPLACE INTO frames VALUES (?,?,?,?,?,?,?,?,?,?)",
+            conn.execute("INSERT OR REPLACE INTO frames (path, rel, camera, status, score, "
+                         "threshold, flagged, version, capture_time, scored_at) "
+                         "VALUES (?,?,?,?,?,?,?,?,?,?)",
                          (path, Path(path).name, camera, "scored", score, 1.0, int(score > 1),
                           "v1", t0.isoformat(), (t0 + timedelta(seconds=k)).isoformat()))
     conn.close()
