@@ -9,7 +9,6 @@ showing how many flags the switch adds and removes on the camera's last N scored
 from __future__ import annotations
 
 import argparse
-import sqlite3
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -18,6 +17,7 @@ import numpy as np
 from inspector.config import Config
 from inspector.errors import FrameError
 from inspector.frames import FrameFile, iter_frames
+from inspector.ledger import read_scored
 from inspector.store import Store
 
 #: Recent scored frames a comparison runs on, unless told otherwise.
@@ -67,26 +67,9 @@ def compare_flags(old_scores: np.ndarray, old_threshold: float, new_scores: np.n
 
 
 def last_scored(database: Path, camera: str, n: int) -> list[str]:
-    """Absolute paths of the camera's last ``n`` scored frames in the ledger, newest first.
-
-    The ledger (table ``frames``) belongs to the watcher; it is opened read-only. A missing
-    file or table gives an empty list.
-    """
-    if n <= 0 or not Path(database).is_file():
-        return []
-    try:
-        conn = sqlite3.connect(f"{Path(database).resolve().as_uri()}?mode=ro", uri=True,
-                               timeout=10.0)
-    except sqlite3.Error:
-        return []
-    try:
-        rows = conn.execute("SELECT path FROM frames WHERE camera = ? AND status = 'scored' "
-                            "ORDER BY scored_at DESC, rowid DESC LIMIT ?", (camera, n))
-        return [r[0] for r in rows]
-    except sqlite3.Error:  # no ledger table (yet)
-        return []
-    finally:
-        conn.close()
+    """Absolute paths of the camera's last ``n`` scored frames in the ledger, newest first
+    (empty when nothing was scored yet)."""
+    return [r["path"] for r in read_scored(database, camera, n)]
 
 
 @dataclass(frozen=True)

@@ -95,6 +95,38 @@ def source_range(root: Path | str) -> tuple[str, str]:
     return base + "/", base + "0"  # '0' is the character after '/'
 
 
+def read_scored(database: Path | str, camera: str | None = None, limit: int | None = None
+                ) -> list[sqlite3.Row]:
+    """Scored frames from the ledger, newest first, through a read-only connection.
+
+    For readers in other processes (review page, baseline comparison); a missing database
+    or table (nothing scanned yet) gives an empty list.
+    """
+    if limit is not None and limit <= 0 or not Path(database).is_file():
+        return []
+    sql = "SELECT * FROM frames WHERE status = 'scored'"
+    params: tuple = ()
+    if camera is not None:
+        sql += " AND camera = ?"
+        params += (camera,)
+    sql += " ORDER BY scored_at DESC, id DESC"
+    if limit is not None:
+        sql += " LIMIT ?"
+        params += (limit,)
+    try:
+        conn = sqlite3.connect(f"{Path(database).resolve().as_uri()}?mode=ro", uri=True,
+                               timeout=10.0)
+    except sqlite3.Error:
+        return []
+    try:
+        conn.row_factory = sqlite3.Row
+        return conn.execute(sql, params).fetchall()
+    except sqlite3.Error:  # no ledger table (yet)
+        return []
+    finally:
+        conn.close()
+
+
 class Ledger:
     """The frame ledger in SQLite file ``path`` (created with its tables if missing).
 

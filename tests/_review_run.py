@@ -12,6 +12,7 @@ from pathlib import Path
 
 from inspector.cli import main
 from inspector.config import load_config
+from inspector.ledger import Ledger
 from inspector.scenario import generate
 from inspector.store import Store
 
@@ -65,20 +66,15 @@ def copy_run(run: Run, root: Path) -> Run:
 
 
 def write_ledger(database: Path, rows: list[tuple[str, str, float]]) -> None:
-    """A stand-in for the watcher's frame ledger (table ``frames``) with the agreed columns."""
-    conn = sqlite3.connect(database)
-    conn.execute("CREATE TABLE IF NOT EXISTS frames (path TEXT PRIMARY KEY, rel TEXT, camera TEXT, "
-                 "status TEXT, score REAL, threshold REAL, flagged INTEGER, version TEXT, "
-                 "capture_time TEXT, scored_at TEXT)")
+    """Scored frames written into the frame ledger as scan and watch record them."""
     t0 = datetime(2026, 12, 1, 8, 0, 0)
-    with conn:
-        for k, (path, camera, score) in enumerate(rows):
-            conn.execute("INSERT OR REPLACE INTO frames (path, rel, camera, status, score, "
-                         "threshold, flagged, version, capture_time, scored_at) "
-                         "VALUES (?,?,?,?,?,?,?,?,?,?)",
-                         (path, Path(path).name, camera, "scored", score, 1.0, int(score > 1),
-                          "v1", t0.isoformat(), (t0 + timedelta(seconds=k)).isoformat()))
-    conn.close()
+    with Ledger(database) as ledger:
+        ledger.record([{"path": path, "rel": Path(path).name, "camera": camera,
+                        "status": "scored", "score": score, "threshold": 1.0,
+                        "flagged": int(score > 1), "version": "v1",
+                        "capture_time": t0.isoformat(),
+                        "scored_at": (t0 + timedelta(seconds=k)).isoformat()}
+                       for k, (path, camera, score) in enumerate(rows)])
 
 
 @contextmanager

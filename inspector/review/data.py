@@ -12,13 +12,14 @@ from __future__ import annotations
 import csv
 import json
 import math
-import sqlite3
 import threading
 from dataclasses import dataclass, field
 from datetime import date, datetime
 from html import escape
 from pathlib import Path
 from urllib.parse import urlencode
+
+from inspector.ledger import read_scored
 
 #: All-scores files looked for in OUT for the timelines (``scan --all-scores OUT/all_scores.csv``).
 ALL_SCORES_NAMES = ("all_scores.csv", "scores.csv")
@@ -213,29 +214,16 @@ class Results:
         self.points = [p for ps in by_cam.values() for p in ps[-MAX_POINTS:]]
 
     def _ledger(self) -> list:
-        """Scored frames of the scanned folder from the watcher's ledger (read only)."""
-        db = self.database
-        if db is None or not Path(db).is_file():
+        """Scored frames of the scanned folder from the ledger (read only)."""
+        if self.database is None:
             return []
         out = []
-        try:
-            conn = sqlite3.connect(f"{Path(db).resolve().as_uri()}?mode=ro", uri=True,
-                                   timeout=5.0)
-        except sqlite3.Error:
-            return []
-        try:
-            rows = conn.execute("SELECT path, camera, score, threshold, version, capture_time "
-                                "FROM frames WHERE status = 'scored'").fetchall()
-        except sqlite3.Error:  # no ledger yet
-            rows = []
-        finally:
-            conn.close()
-        for path, camera, score, thr, version, when in rows:
+        for r in read_scored(self.database):
             try:
-                p = Path(path)
+                p = Path(r["path"])
                 rel = p.relative_to(self.source).as_posix()
-                out.append((camera, p, rel, parse_time(when), float(score), float(thr),
-                            version or ""))
+                out.append((r["camera"], p, rel, parse_time(r["capture_time"]),
+                            float(r["score"]), float(r["threshold"]), r["version"] or ""))
             except (TypeError, ValueError):
                 continue
         return out
