@@ -5,7 +5,8 @@ then alternates, ROUNDS times each, between
 
 * decode: the frame loader alone (same files, same reduced-scale JPEG decode, same thread
   pool, same working resolution), and
-* scan: the whole scan (decode, score, maps, CSV rows and overlays of flagged frames),
+* scan: the whole scan as the command runs it (decode, score, CSV rows, overlays of
+  flagged frames, ledger rows and events.csv),
 
 and prints frames/s of both and their ratio (target: >= 0.6 on 2 cores). Alternating
 rounds in one run keeps the ratio fair on a shared, noisy machine.
@@ -29,8 +30,7 @@ sys.path.insert(0, str(ROOT))
 from inspector.config import load_config  # noqa: E402
 from inspector.frames import discover, iter_frames  # noqa: E402
 from inspector.learn import learn_camera  # noqa: E402
-from inspector.results import ResultWriter  # noqa: E402
-from inspector.scan import Baselines, scan_files  # noqa: E402
+from inspector.scan import Baselines, run_scan  # noqa: E402
 from inspector.scenario import generate  # noqa: E402
 from inspector.store import Store  # noqa: E402
 
@@ -75,8 +75,7 @@ def run(work: Path, n: int, rounds: int) -> None:
         decode_rates.append(count / (time.perf_counter() - t))
         out = work / f"out{r}"
         t = time.perf_counter()
-        with ResultWriter(out, out / "all.csv") as writer:
-            summary = scan_files(files, baselines, writer)
+        summary = run_scan(scenario.new, config, store, out, out / "all.csv")
         scan_rates.append(summary.scored / (time.perf_counter() - t))
         print(f"round {r + 1}: decode {decode_rates[-1]:.1f} frames/s, "
               f"scan {scan_rates[-1]:.1f} frames/s ({summary.flagged} flagged)")

@@ -196,19 +196,12 @@ def _with_false_alarms(store: Store, camera: str, files: list) -> tuple[list, di
 
 
 def cmd_scan(args: argparse.Namespace) -> int:
-    from inspector.events import EventSettings
-    from inspector.ledger import Ledger
-    from inspector.results import ResultWriter
-    from inspector.scan import Baselines, scan_folder
+    from inspector.scan import run_scan
 
     config, store = resolve(args)
     out = args.out or Path(config.paths.out)
     check_source(args.source, out, args.all_scores, args.maps)
-    events = config.section("events", EventSettings)
-    with Ledger(store.database) as ledger, \
-            ResultWriter(out, args.all_scores, args.maps, source=args.source,
-                         store=store.root, ledger=ledger, events=events) as writer:
-        summary = scan_folder(args.source, Baselines(store, config), writer)
+    summary = run_scan(args.source, config, store, out, args.all_scores, args.maps)
     report_scan(summary, out, args.all_scores)
     return 0
 

@@ -24,10 +24,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
     from inspector.cli import report_scan, say
     from inspector.config import load_config
-    from inspector.learn import learn_camera
     from inspector.frames import discover
-    from inspector.results import ResultWriter
-    from inspector.scan import Baselines, scan_folder
+    from inspector.learn import learn_camera
+    from inspector.scan import run_scan
     from inspector.scenario import generate, load_truth
     from inspector.store import Store
 
@@ -44,8 +43,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
             f"threshold {report.threshold:.3f} ({report.seconds:.1f} s)")
     out = root / "results"
     all_scores = out / "all_scores.csv"
-    with ResultWriter(out, all_scores, source=scenario.new, store=store.root) as writer:
-        summary = scan_folder(scenario.new, Baselines(store, config), writer)
+    summary = run_scan(scenario.new, config, store, out, all_scores)
     report_scan(summary, out, all_scores)
     scores = {}
     with open(all_scores, newline="", encoding="utf-8") as fh:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -17,8 +18,8 @@ from typing import TYPE_CHECKING
 import cv2
 import numpy as np
 
-from inspector.overlay import render_overlay
 from inspector.events import EventSettings, FramePoint, group_events, write_events
+from inspector.overlay import render_overlay
 from inspector.store import write_json
 
 if TYPE_CHECKING:
@@ -166,21 +167,26 @@ class ResultWriter:
         self._names.add((kind, f"{camera}/{name}"))
         return name
 
-    def write(self, r: FrameResult) -> str:
-        """Record one scored frame; returns the overlay path ('' when none was written)."""
-        overlay = self.save_files(r)
-        self.add_rows(format_row(r.frame, r.camera, iso_time(r.time), r.score, r.threshold,
-                                 r.p_value, r.model, overlay), r.flagged)
-        if self.events is not None:
-            self._points.append(FramePoint(r.camera, iso_time(r.time), r.frame, r.score,
-                                           r.flagged))
+    def write(self, results: Sequence[FrameResult]) -> list[str]:
+        """Record scored frames (one ledger transaction for all); returns their overlay
+        paths ('' where none was written)."""
+        overlays = []
+        for r in results:
+            overlay = self.save_files(r)
+            overlays.append(overlay)
+            self.add_rows(format_row(r.frame, r.camera, iso_time(r.time), r.score, r.threshold,
+                                     r.p_value, r.model, overlay), r.flagged)
+            if self.events is not None:
+                self._points.append(FramePoint(r.camera, iso_time(r.time), r.frame, r.score,
+                                               r.flagged))
         if self.ledger is not None:
             self.ledger.record([dict(self._ledger_file(r.frame), camera=r.camera,
                                      status="scored", score=r.score, threshold=r.threshold,
                                      p_value=r.p_value, flagged=int(r.flagged),
                                      version=r.model, capture_time=iso_time(r.time),
-                                     overlay=overlay)])
-        return overlay
+                                     overlay=overlay)
+                                for r, overlay in zip(results, overlays)])
+        return overlays
 
     def save_files(self, r: FrameResult) -> str:
         """Write the overlay (flagged frames) and the map file of one scored frame; returns

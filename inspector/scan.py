@@ -121,11 +121,9 @@ def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultW
                 summary.notes.update(f"{camera}: {n}" for n in frame.notes)
                 batch.append(frame)
                 if len(batch) == BATCH:
-                    for r in score_frames(baseline, batch):
-                        writer.write(r)
+                    writer.write(score_frames(baseline, batch))
                     batch = []
-            for r in score_frames(baseline, batch):
-                writer.write(r)
+            writer.write(score_frames(baseline, batch))
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]
     summary.skipped = writer.counts["skipped"]
@@ -140,3 +138,16 @@ def scan_folder(source: Path, baselines: Baselines, writer: ResultWriter,
     for s in skips:
         writer.skip(s.rel, s.camera, s.reason)
     return scan_files(files, baselines, writer, workers=workers, total=len(files))
+
+
+def run_scan(source: Path, config: Config, store: Store, out: Path,
+             all_scores: Path | None = None, maps: Path | None = None) -> ScanSummary:
+    """A whole scan as the command runs it: results, ledger rows and events.csv."""
+    from inspector.events import EventSettings
+    from inspector.ledger import Ledger
+
+    events = config.section("events", EventSettings)
+    with Ledger(store.database) as ledger, \
+            ResultWriter(out, all_scores, maps, source=source, store=store.root,
+                         ledger=ledger, events=events) as writer:
+        return scan_folder(source, Baselines(store, config), writer)
