@@ -75,7 +75,8 @@ def to_planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray 
     return luma.astype(np.float32) * scale, None if chroma is None else chroma * scale
 
 
-def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool) -> np.ndarray:
+def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool,
+                   center: np.ndarray | None = None, scale: float = 1 / 255) -> np.ndarray:
     """Feature vector of every patch of every frame.
 
     Parameters
@@ -84,29 +85,44 @@ def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool) ->
     patch, stride : int
         Even; ``stride`` divides ``patch``.
     colour : bool
+    center : ndarray, shape (gh * gw, d), optional
+        Subtracted from every frame's features, in the same units as the result. The
+        subtraction happens while the patches are gathered, which saves a pass over the
+        largest array of scoring.
+    scale : float
+        Unit of the result: 1/255 gives [0, 1] (as :func:`to_planes`); 1 leaves grey levels
+        and skips a pass when the caller folds the scale into its own small arrays.
 
     Returns
     -------
     ndarray, shape (n, gh * gw, d), float32
-        Row-major over the patch grid (see :func:`grid_shape`), d = :func:`feature_size`;
-        values in [0, 1] as in :func:`to_planes`.
+        Row-major over the patch grid (see :func:`grid_shape`), d = :func:`feature_size`.
     """
     luma, chroma = _planes(images, colour)
     n, h, w = luma.shape
     gh, gw = grid_shape(h, w, patch, stride)
-    out = np.empty((n, gh, gw, feature_size(patch, colour)), np.float32)
-    p2 = patch * patch
-    # Copy the window views straight into the output (one pass, casting on the way).
-    np.copyto(out[..., :p2].reshape(n, gh, gw, patch, patch),
-              _windows(luma, patch, stride, gh, gw))
+    d = feature_size(patch, colour)
+    out = np.empty((n, gh, gw, d), np.float32)
+    ctr = None if center is None else (np.asarray(center, np.float32) / np.float32(scale)
+                                       ).reshape(gh, gw, d)
+    half = patch // 2
+    p2, c = patch * patch, half * half
+    parts = [(slice(0, p2), luma, patch, stride)]
     if chroma is not None:
-        half = patch // 2
-        c = half * half
-        for k in range(2):
-            np.copyto(out[..., p2 + k * c:p2 + (k + 1) * c].reshape(n, gh, gw, half, half),
-                      _windows(chroma[..., k], half, stride // 2, gh, gw))
-    out *= np.float32(1 / 255)
-    return out.reshape(n, gh * gw, -1)
+        parts += [(slice(p2 + k * c, p2 + (k + 1) * c), chroma[..., k], half, stride // 2)
+                  for k in range(2)]
+    for cols, plane, size, step in parts:
+        # Gather the windows straight into the output (one pass, casting on the way).
+        dst = out[..., cols].reshape(n, gh, gw, size, size)
+        src = _windows(plane, size, step, gh, gw)
+        if ctr is None:
+            np.copyto(dst, src, casting="unsafe")
+        else:
+            np.subtract(src, ctr[..., cols].reshape(gh, gw, size, size), out=dst,
+                        casting="unsafe")
+    if scale != 1:
+        out *= np.float32(scale)
+    return out.reshape(n, gh * gw, d)
 
 
 def _windows(planes: np.ndarray, size: int, step: int, gh: int, gw: int) -> np.ndarray:

@@ -92,3 +92,19 @@ def test_patch_features_layout_luma_then_half_resolution_chroma():
     # ITU-R BT.601 luma of pure red is 0.299 (common practice, no source).
     np.testing.assert_allclose(X[0, 0, :64], 0.299, atol=2 / 255)
     np.testing.assert_allclose(X[0, 1, :64], 0.0, atol=1 / 255)
+
+
+def test_fast_scoring_path_equals_the_reference_formula():
+    # The scoring path gathers residuals in grey levels with the mean subtracted on the way;
+    # it must give the likelihood of ppca_nll (checked above against scikit-learn and SciPy).
+    rng = np.random.default_rng(5)
+    base = cv2.GaussianBlur(rng.integers(0, 255, size=(24, 40, 3)).astype(np.float32), (0, 0), 1)
+    imgs = np.clip(base + rng.normal(0, 5, (30, 24, 40, 3)), 0, 255).astype(np.uint8)
+    model = PatchPPCA(patch=8, stride=4, latent=3)
+    model.fit(ArraySource(imgs, folds=3))
+    X = patch_features(imgs[:4], 8, 4, colour=True)
+    ref = ppca_nll(X.astype(np.float64), model.mean_.astype(np.float64), model.W_,
+                   model.sigma2_)
+    np.testing.assert_allclose(model.patch_nll(imgs[:4]), ref, rtol=2e-4, atol=2e-2)
+    centered = patch_features(imgs[:4], 8, 4, True, center=model.mean_)
+    np.testing.assert_allclose(centered, X - model.mean_[None], atol=1e-6)

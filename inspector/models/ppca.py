@@ -169,15 +169,18 @@ def ppca_nll(X: np.ndarray, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray,
     return _nll(X, mean, B, sigma2, logdet, d_obs, observed)
 
 
-def _nll(X, mean, B, sigma2, logdet, d_obs, observed):
-    R = np.asarray(X) - mean[None]
+def _nll(X, mean, B, sigma2, logdet, d_obs, observed, unit: float = 1.0):
+    """NLL from features ``X`` (``mean`` is subtracted unless None, i.e. already done);
+    ``unit`` is the size of one feature step in the units of the model (1/255 when X is in
+    grey levels)."""
+    R = np.asarray(X) if mean is None else np.asarray(X) - mean[None]
     if observed is not None:
         R = R * observed[None]
     sq = np.einsum("nld,nld->nl", R, R)
     proj = np.matmul(R.transpose(1, 0, 2), B.astype(R.dtype, copy=False))  # (L, n, q)
     lat = np.einsum("lnq,lnq->nl", proj, proj)
-    quad = (sq - lat) / sigma2[None]
-    return 0.5 * (d_obs * LOG_2PI + logdet + quad)[...]
+    quad = (sq - lat) * (unit * unit) / sigma2[None]
+    return 0.5 * (d_obs * LOG_2PI + logdet + quad)
 
 
 class Moments:
@@ -334,6 +337,7 @@ class PatchPPCA(DensityModel):
     def _prepare(self) -> None:
         B, logdet, d_obs = ppca_precompute(self.W_, self.sigma2_, self.observed_)
         self._B = B.astype(np.float32)
+        self._mean_grey = self.mean_ * np.float32(255)
         self._logdet, self._d_obs = logdet, d_obs
         r = self.patch // self.stride
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
@@ -342,9 +346,12 @@ class PatchPPCA(DensityModel):
 
     def patch_nll(self, images: np.ndarray) -> np.ndarray:
         """Negative log-likelihood of every patch, shape (n, L), float64."""
-        X = patch_features(images, self.patch, self.stride, self.colour)
-        return _nll(X, self.mean_, self._B, self.sigma2_, self._logdet, self._d_obs,
-                    self.observed_)
+        # Residuals in grey levels, the mean subtracted while gathering (the scale is applied
+        # to the per-location sums instead of the whole array).
+        R = patch_features(images, self.patch, self.stride, self.colour,
+                           center=self._mean_grey, scale=1.0)
+        return _nll(R, None, self._B, self.sigma2_, self._logdet, self._d_obs,
+                    self.observed_, unit=1 / 255)
 
     def score_maps(self, images: np.ndarray) -> np.ndarray:
         """Raw anomaly maps: patch NLL averaged onto cells, shape (n, h, w), float32.
