@@ -141,9 +141,11 @@ def test_importance_weighted_bound_is_above_elbo_and_grows_with_k():
         ref = elbo(x, enc, decoder, samples=20000, generator=gen).mean()
         means, ses = {}, {}
         for k in (1, 4, 16, 64):
-            est = torch.stack([iwae_bound(x, enc, decoder, k, generator=gen).mean()
-                               for _ in range(max(4000 // k, 60))])
-            means[k], ses[k] = float(est.mean()), float(est.std()) / math.sqrt(len(est))
+            reps = max(4000 // k, 60)  # independent estimates, all in one batch
+            rep = lambda _, r=reps: (m.repeat(r, 1), lv.repeat(r, 1))  # noqa: E731
+            est = iwae_bound(x.repeat(reps, 1), rep, decoder, k, generator=gen)
+            est = est.reshape(reps, len(x)).mean(1)
+            means[k], ses[k] = float(est.mean()), float(est.std()) / math.sqrt(reps)
     assert abs(means[1] - float(ref)) < 3 * ses[1] + 1e-3
     ks = sorted(means)
     for a, b in zip(ks, ks[1:]):
@@ -179,9 +181,9 @@ def test_exact_likelihood_by_quadrature_sits_between_elbo_and_iwae_limit():
         grid = np.linspace(-6, 6, 61)
         peak = max(log_joint(a, b, xi) for a in grid for b in grid)
         val, err = integrate.dblquad(lambda z2, z1: math.exp(log_joint(z1, z2, xi) - peak),
-                                     -8, 8, -8, 8, epsabs=1e-10, epsrel=1e-8)
+                                     -8, 8, -8, 8, epsabs=1e-9, epsrel=1e-6)
         exact = peak + math.log(val)
-        assert err / val < 1e-6
+        assert err / val < 1e-5
         assert bound[i] < exact  # 20000-sample ELBO: MC error ~1e-3, gaps here are >= 0.04
         assert abs(iw[i] - exact) < 0.02  # one estimate: a bound only in expectation
         assert abs(iw[i] - exact) < 0.25 * (exact - bound[i])
@@ -212,12 +214,12 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     mask[21:30, 33:47] = True  # odd-aligned, so part-masked cells and chroma blocks too
     model = PatchVAE(**SMALL)
     held = model.fit(ArraySource(images, folds=5), mask)
-    assert list(held.index) == [16, 17, 18, 19]
-    assert held.maps.shape == (4, h // 4, w // 4) and held.maps.dtype == np.float32
+    assert list(held.index) == [3, 7, 11, 15, 19]  # the last frame of each block
+    assert held.maps.shape == (5, h // 4, w // 4) and held.maps.dtype == np.float32
     assert np.isfinite(held.maps).all()
     assert np.all(held.maps[:, :2, :4] == 0)
     facts = model.learned()
-    assert facts["epochs"] == 3 and facts["train_frames"] == 16
+    assert facts["epochs"] == 3 and facts["train_frames"] == 15
     assert math.isfinite(facts["best_heldout_elbo"])
     json.dumps(facts)
     params = json.loads(json.dumps(model.get_params()))
@@ -225,7 +227,7 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
 
     # Held-out maps equal scoring the same frames afresh (the final model scored them).
     maps = model.score_maps(images)
-    np.testing.assert_allclose(maps[16:], held.maps, rtol=1e-5, atol=1e-3)
+    np.testing.assert_allclose(maps[held.index], held.maps, rtol=1e-5, atol=1e-3)
 
     model.save(tmp_path)
     assert (tmp_path / "vae.pt").is_file()

@@ -10,17 +10,24 @@ shared by patches.
 
 * A camera never moves, so *where* something is matters as much as *what* it is. A
   patch VAE with weights shared across the frame learns generic image patches and happily
-  reconstructs a parcel on a floor that never has parcels. Here the decoder adds a learned
-  per-pixel background (initialised at the mean frame) and the Gaussian likelihood has a
-  learned per-pixel, per-channel variance (a free parameter, not predicted from the code,
-  so an anomaly cannot lower its own score by being declared noisy; floored at
-  ``var_floor`` like PPCA's noise variance). The convolutions model the *departures*
-  from the background, which are local and similar across the frame (lighting, shadows,
-  people passing).
-* The latent code is a spatial grid: ``latent`` channels per ``patch x patch`` block of
-  the frame, each with a standard normal prior. Evidence stays local (a latent cell has a
-  bounded receptive field), so the KL term of each latent cell can be put back on the map
-  where it came from, and the frame's map sums to the negative ELBO.
+  reconstructs a parcel on a floor that never has parcels. Here the decoder works from a
+  learned per-pixel background (initialised at the mean frame) and the Gaussian
+  likelihood has a learned per-pixel, per-channel variance (a free parameter, not
+  predicted from the code, so an anomaly cannot lower its own score by being declared
+  noisy; floored at ``var_floor`` like PPCA's noise variance). The convolutions model
+  the *departures* from the background, which are local and alike across the frame
+  (lighting, shadows, people passing): the decoder predicts a per-pixel relative gain
+  and an offset, ``mean = background + gain * (background - anchor) + offset``.
+* The latent code is a spatial grid, ``latent`` channels per ``patch x patch`` block of
+  the frame, plus ``global_latent`` values for the whole frame, all with standard normal
+  priors. The global values carry what changes everywhere at once (daylight, exposure,
+  colour temperature), which a local code would pay KL for in every cell; with the gain
+  form above, a global lighting change is one uniform gain. Local evidence stays local
+  (a latent cell has a bounded receptive field), so each latent cell's KL term is put
+  back on the map where it came from and the global one is spread evenly: the frame's
+  map sums to its reconstruction NLL at the posterior mean plus its KL (the negative
+  ELBO with the mean code in place of the expectation). On the demo dock camera the global code raised image
+  AUROC from 0.981 to 0.994 (240 frames, same seed).
 * Running once over the whole frame shares all the convolution work between overlapping
   neighbourhoods, which is what makes CPU training and >= 50 frames/s scoring possible.
 
@@ -41,14 +48,29 @@ total ``-log (1/K) sum_k w_k`` is split exactly into cells as
 ``sum_k omega_k c_k(cell) + (log K - H(omega)) / cells``, where ``c_k`` is sample k's per-cell
 share of ``-log w_k`` and ``omega`` the normalised weights.
 
-Training: Adam on the negative ELBO (one reparameterised sample, analytic KL) of the frames
-of the earlier time blocks; the last ``holdout_blocks`` time blocks are held out. Each
-epoch the held-out ELBO (fixed noise, so epochs compare fairly) is measured; the best
-weights are kept and training stops after ``patience`` epochs without improvement. The
-held-out frames are then scored by that final model and returned for calibration (split
-conformal; the model is not refitted on them). They also chose the stopping epoch, a
-weak dependence (one number picked out of a few dozen) accepted to keep every held-out
-frame for calibration.
+Held-out frames: the latest ``holdout`` share of every time block (``source.blocks``), a
+contiguous run of frames at the end of each block. Holding out whole late blocks instead
+trains without the last session of the normal set and calibrates on it alone; on the demo
+dock camera that cost image AUROC 0.966 against 0.993, and 13 against 29 of 36 incidents
+caught at the same (zero) false alarms. A run at the end of every block keeps near-copies
+(neighbouring frames) on one side of the split except at the run's two ends, and spreads
+the calibration frames over all the conditions of the normal set. The price: held-out
+runs share their sessions with training frames, so calibration sees less day-to-day
+change than PPCA's whole-block cross-fitting. On the demo aisle camera a scan day spent
+mostly in an exposure state that is rare in the normal frames (the ceiling lights fall
+out of saturation) raised far more false alarms than the rate asked for, with PPCA too
+but less.
+
+Training: Adam on the negative ELBO (one reparameterised sample, analytic KL) of the other
+frames, at most ``steps`` batches (so training time does not grow with the number of
+frames), the per-pixel maps at 10 times the network's learning rate (see
+:data:`MAP_LR_SCALE`), halving both after 2 epochs without progress. Each epoch the
+held-out ELBO (fixed noise, so epochs compare fairly) is measured;
+the best weights are kept and training stops after ``patience`` epochs without
+improvement. The held-out frames are then scored by that final model and returned for
+calibration (split conformal; the model is not refitted on them). They also chose the
+stopping epoch, a weak dependence (one number picked out of a few dozen) accepted to keep
+every held-out frame for calibration.
 """
 
 from __future__ import annotations
@@ -73,6 +95,11 @@ from inspector.features import map_shape, to_planes
 from inspector.models.base import DensityModel, FrameSource, HeldOut
 
 LOG_2PI = math.log(2.0 * math.pi)
+#: Learning-rate multiplier of the per-pixel background and variance maps. Each of their
+#: entries gets one gradient per frame and Adam moves it by about ``lr`` per step, so at the
+#: network's rate they would need thousands of steps to leave their start values; at 10x
+#: the held-out ELBO of the demo cameras reached in 1,200 steps what took 2,000+ before.
+MAP_LR_SCALE = 10.0
 
 Encoder = Callable[[torch.Tensor], tuple[torch.Tensor, torch.Tensor]]
 Decoder = Callable[[torch.Tensor], tuple[torch.Tensor, torch.Tensor]]
@@ -104,9 +131,24 @@ def _noise(shape, like: torch.Tensor, generator: torch.Generator | None) -> torc
     return torch.randn(shape, generator=generator, dtype=like.dtype, device=like.device)
 
 
+def _decode_samples(x: torch.Tensor, decoder: Decoder, z: torch.Tensor,
+                    weight: torch.Tensor | None) -> torch.Tensor:
+    """``-log p(x | z_s)`` per sample and item, shape (s, n), for codes z of shape (s, n, ...).
+
+    The s samples go through the decoder as one batch of s * n items.
+    """
+    s, n = z.shape[:2]
+    mean, logvar = decoder(z.reshape(s * n, *z.shape[2:]))
+    mean = mean.reshape(s, n, *mean.shape[1:])
+    if logvar.dim() == mean.dim() - 1 and logvar.shape[:1] == (s * n,):
+        logvar = logvar.reshape(s, n, *logvar.shape[1:])  # per-item variances
+    nll = gaussian_nll(x[None], mean, logvar, weight)
+    return nll.reshape(s, n, -1).sum(dim=2)
+
+
 def elbo(x: torch.Tensor, encoder: Encoder, decoder: Decoder, samples: int = 1,
-         weight: torch.Tensor | None = None,
-         generator: torch.Generator | None = None) -> torch.Tensor:
+         weight: torch.Tensor | None = None, generator: torch.Generator | None = None,
+         chunk: int = 256) -> torch.Tensor:
     """Evidence lower bound of each item, reparameterised samples and analytic KL.
 
     ``E_q[log p(x|z)] - KL(q(z|x) || N(0, I))`` (Kingma & Welling 2014, eq. 10).
@@ -117,11 +159,14 @@ def elbo(x: torch.Tensor, encoder: Encoder, decoder: Decoder, samples: int = 1,
     encoder : callable
         ``x -> (mu, logvar)`` of a diagonal Gaussian posterior, shape (n, ...).
     decoder : callable
-        ``z -> (mean, logvar)`` of a diagonal Gaussian likelihood, broadcastable to ``x``.
+        ``z -> (mean, logvar)`` of a diagonal Gaussian likelihood: ``mean`` shaped like the
+        items it decodes, ``logvar`` the same or broadcastable to one item.
     samples : int
         Monte-Carlo samples of z averaged for the expectation.
     weight : Tensor, optional
         0/1, broadcastable to ``x``: entries with 0 are left out of the likelihood.
+    chunk : int
+        Samples decoded together in one batch.
 
     Returns
     -------
@@ -131,40 +176,40 @@ def elbo(x: torch.Tensor, encoder: Encoder, decoder: Decoder, samples: int = 1,
     kl = _per_item(kl_standard_normal(mu, logvar))
     std = torch.exp(0.5 * logvar)
     rec = torch.zeros_like(kl)
-    for _ in range(samples):
-        z = mu + std * _noise(mu.shape, mu, generator)
-        mean, dec_logvar = decoder(z)
-        rec = rec + _per_item(gaussian_nll(x, mean, dec_logvar, weight))
+    for start in range(0, samples, chunk):
+        s = min(chunk, samples - start)
+        z = mu + std * _noise((s,) + mu.shape, mu, generator)
+        rec = rec + _decode_samples(x, decoder, z, weight).sum(dim=0)
     return -rec / samples - kl
 
 
 def log_weights(x: torch.Tensor, encoder: Encoder, decoder: Decoder, k: int,
                 weight: torch.Tensor | None = None,
-                generator: torch.Generator | None = None) -> torch.Tensor:
+                generator: torch.Generator | None = None, chunk: int = 256) -> torch.Tensor:
     """Importance log-weights ``log p(x, z_k) - log q(z_k | x)``, z_k ~ q, shape (k, n)."""
     mu, logvar = encoder(x)
     std = torch.exp(0.5 * logvar)
     out = []
-    for _ in range(k):
-        eps = _noise(mu.shape, mu, generator)
+    for start in range(0, k, chunk):
+        s = min(chunk, k - start)
+        eps = _noise((s,) + mu.shape, mu, generator)
         z = mu + std * eps
-        mean, dec_logvar = decoder(z)
-        log_px = -_per_item(gaussian_nll(x, mean, dec_logvar, weight))
-        log_pz = -0.5 * _per_item(LOG_2PI + z ** 2)
-        log_qz = -0.5 * _per_item(LOG_2PI + logvar + eps ** 2)
+        log_px = -_decode_samples(x, decoder, z, weight)
+        log_pz = -0.5 * (LOG_2PI + z ** 2).reshape(s, len(x), -1).sum(dim=2)
+        log_qz = -0.5 * (LOG_2PI + logvar + eps ** 2).reshape(s, len(x), -1).sum(dim=2)
         out.append(log_px + log_pz - log_qz)
-    return torch.stack(out)
+    return torch.cat(out)
 
 
 def iwae_bound(x: torch.Tensor, encoder: Encoder, decoder: Decoder, k: int,
                weight: torch.Tensor | None = None,
-               generator: torch.Generator | None = None) -> torch.Tensor:
+               generator: torch.Generator | None = None, chunk: int = 256) -> torch.Tensor:
     """Importance-weighted bound ``log (1/k) sum_k w_k`` of each item, shape (n,).
 
     Burda, Grosse & Salakhutdinov 2016, eq. 8: ``L_1`` is the ELBO in expectation, ``L_k``
     does not decrease with k in expectation and tends to ``log p(x)``.
     """
-    lw = log_weights(x, encoder, decoder, k, weight, generator)
+    lw = log_weights(x, encoder, decoder, k, weight, generator, chunk)
     return torch.logsumexp(lw, dim=0) - math.log(k)
 
 
@@ -172,6 +217,14 @@ def iwae_bound(x: torch.Tensor, encoder: Encoder, decoder: Decoder, k: int,
 
 class FrameVAE(nn.Module):
     """Fully convolutional VAE over half-resolution planes (C, Hp, Wp).
+
+    The code of a frame is a flat vector: ``latent`` channels on the latent grid (local
+    detail) followed by ``global_latent`` values for the whole frame (illumination,
+    exposure, colour temperature: changes a local code would pay for once per latent
+    cell). The decoder predicts a per-pixel relative gain ``g`` and an offset ``o`` and
+    the likelihood mean is ``background + g * (background - anchor) + o`` (anchor 0 for
+    luminance, 1/2 for chroma), so a lighting change of any strength is one uniform ``g``
+    that the global code can express; the log-variance is a per-pixel parameter.
 
     Parameters
     ----------
@@ -181,6 +234,8 @@ class FrameVAE(nn.Module):
         Padded half-resolution (Hp, Wp), multiples of ``2 ** down``.
     latent : int
         Latent channels per latent cell.
+    global_latent : int
+        Latent values for the whole frame (0 for none).
     down : int
         Number of stride-2 stages; a latent cell covers ``2 ** down`` half-resolution pixels.
     width : int
@@ -189,27 +244,36 @@ class FrameVAE(nn.Module):
         Lower bound on the decoder variance.
     """
 
-    def __init__(self, channels: int, shape: tuple[int, int], latent: int, down: int,
-                 width: int, var_floor: float):
+    def __init__(self, channels: int, shape: tuple[int, int], latent: int, global_latent: int,
+                 down: int, width: int, var_floor: float):
         super().__init__()
         hp, wp = shape
+        f = 2 ** down
+        self.grid = (hp // f, wp // f)
+        self.latent, self.global_latent = latent, global_latent
         self.log_floor = math.log(var_floor)
         self.register_buffer("center", torch.zeros(channels, hp, wp))
         self.register_buffer("observed", torch.ones(channels, hp, wp))
+        anchor = torch.zeros(channels, 1, 1)
+        anchor[4:] = 0.5
+        self.register_buffer("anchor", anchor)
         self.background = nn.Parameter(torch.zeros(channels, hp, wp))
         self.raw_logvar = nn.Parameter(torch.full((channels, hp, wp), math.log(1e-2)))
         chans = [max(width // 2, 8)] + [width] * (down - 1)
-        enc: list[nn.Module] = []
+        trunk: list[nn.Module] = []
         c = channels
         for co in chans:
-            enc += [nn.Conv2d(c, co, 4, 2, 1), nn.SiLU()]
+            trunk += [nn.Conv2d(c, co, 4, 2, 1), nn.SiLU()]
             c = co
-        enc += [nn.Conv2d(c, width, 3, 1, 1), nn.SiLU(), nn.Conv2d(width, 2 * latent, 1)]
-        self.enc = nn.Sequential(*enc)
-        dec: list[nn.Module] = [nn.Conv2d(latent, width, 3, 1, 1), nn.SiLU(),
-                                nn.Conv2d(width, width, 3, 1, 1), nn.SiLU()]
+        trunk += [nn.Conv2d(c, width, 3, 1, 1), nn.SiLU()]
+        self.trunk = nn.Sequential(*trunk)
+        self.local_head = nn.Conv2d(width, 2 * latent, 1)
+        self.global_head = nn.Linear(width, 2 * global_latent) if global_latent else None
+        self.dec_local = nn.Conv2d(latent, width, 3, 1, 1)
+        self.dec_global = nn.Linear(global_latent, width) if global_latent else None
+        dec: list[nn.Module] = [nn.SiLU(), nn.Conv2d(width, width, 3, 1, 1), nn.SiLU()]
         c = width
-        targets = list(reversed(chans[:-1])) + [channels]
+        targets = list(reversed(chans[:-1])) + [2 * channels]
         for i, co in enumerate(targets):
             dec.append(nn.ConvTranspose2d(c, co, 4, 2, 1))
             if i < len(targets) - 1:
@@ -220,17 +284,39 @@ class FrameVAE(nn.Module):
             self.dec[-1].weight.mul_(0.1)
             self.dec[-1].bias.zero_()
 
-    def encode(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """Posterior mean and log-variance, each (n, latent, Hl, Wl)."""
-        h = self.enc((x - self.center) * self.observed)
-        mu, logvar = h.chunk(2, dim=1)
-        return mu, logvar.clamp(-12.0, 6.0)
+    @property
+    def code_size(self) -> int:
+        return self.latent * self.grid[0] * self.grid[1] + self.global_latent
 
-    def decode(self, z: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """Likelihood mean (n, C, Hp, Wp) and log-variance (C, Hp, Wp)."""
-        mean = self.background + self.dec(z)
+    def split(self, code: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Flat codes (..., code_size) -> local (..., latent, Hl, Wl) and global (..., g)."""
+        n_local = self.latent * self.grid[0] * self.grid[1]
+        lead = code.shape[:-1]
+        return (code[..., :n_local].reshape(*lead, self.latent, *self.grid),
+                code[..., n_local:])
+
+    def encode(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Posterior mean and log-variance of the flat code, each (n, code_size)."""
+        h = self.trunk((x - self.center) * self.observed)
+        parts = [self.local_head(h).flatten(2)]  # (n, 2q, cells)
+        mu = [parts[0][:, :self.latent].flatten(1)]
+        logvar = [parts[0][:, self.latent:].flatten(1)]
+        if self.global_head is not None:
+            g = self.global_head(h.mean(dim=(2, 3)))
+            mu.append(g[:, :self.global_latent])
+            logvar.append(g[:, self.global_latent:])
+        return torch.cat(mu, 1), torch.cat(logvar, 1).clamp(-12.0, 6.0)
+
+    def decode(self, code: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Likelihood mean (n, C, Hp, Wp) and log-variance (C, Hp, Wp) of flat codes."""
+        local, glob = self.split(code)
+        h = self.dec_local(local)
+        if self.dec_global is not None:
+            h = h + self.dec_global(glob)[:, :, None, None]
+        gain, offset = self.dec(h).chunk(2, dim=1)
+        mean = self.background + gain * (self.background - self.anchor) + offset
         logvar = torch.logaddexp(self.raw_logvar,
-                                 torch.tensor(self.log_floor, dtype=z.dtype))
+                                 torch.tensor(self.log_floor, dtype=code.dtype))
         return mean, logvar
 
 
@@ -263,19 +349,29 @@ class PatchVAE(DensityModel):
         Luminance plus half-resolution chroma (True) or luminance only.
     latent : int
         Latent channels per latent cell; 0 means 8.
+    global_latent : int
+        Latent values describing the whole frame (lighting); 0 for none.
     width : int
         Convolution channels (the network's size).
     epochs : int
-        Upper bound on training epochs.
+        Upper bound on training epochs (passes over the training frames).
+    steps : int
+        Upper bound on optimiser steps (batches), whatever the number of frames: training
+        cost is bounded by ``steps * batch_size`` frame passes.
     patience : int
-        Epochs without a better held-out ELBO before training stops.
+        Epochs without a better held-out ELBO before training stops (the learning rate is
+        halved after 2 such epochs).
     batch_size : int
     lr : float
         Adam learning rate.
     seed : int
         Seeds weight initialisation, shuffling and sampling.
     threads : int
-        Torch CPU threads while fitting and scoring; 0 keeps torch's default.
+        Torch CPU threads while fitting and scoring; 0 keeps torch's default. One by
+        default: the convolutions here are small, and on a 2-core host shared with one
+        other busy process two OpenMP threads ran a training step 1.5 to 4 times *slower*
+        than one (each parallel region waits for the descheduled thread), while one thread
+        already meets the speed targets.
     iw_samples : int
         0 scores with the posterior mean code; K > 0 with the importance-weighted bound
         of K samples (K decoder passes per frame).
@@ -283,10 +379,12 @@ class PatchVAE(DensityModel):
         Add each latent cell's KL to the map cells it covers (posterior-mean scoring).
     var_floor : float
         Lower bound on the decoder variance in squared [0, 1] units (as PPCA's).
-    holdout_blocks : int
-        Latest time blocks held out for early stopping and calibration.
+    holdout : float
+        Share of every time block held out (its latest frames) for early stopping and
+        calibration.
     max_frames : int
-        Training frames kept in memory (uint8); more are subsampled evenly in time.
+        Training frames kept in memory (as uint16 planes, 2 bytes per modelled value: 177 MB
+        for 1,000 frames at 320x180); more are subsampled evenly in time.
 
     Attributes
     ----------
@@ -299,16 +397,17 @@ class PatchVAE(DensityModel):
     kind = "vae"
 
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
-                 width: int = 32, epochs: int = 40, patience: int = 5, batch_size: int = 16,
-                 lr: float = 2e-3, seed: int = 0, threads: int = 0, iw_samples: int = 0,
-                 kl_in_map: bool = True, var_floor: float = 1e-4, holdout_blocks: int = 1,
-                 max_frames: int = 2000):
+                 width: int = 32, epochs: int = 100, steps: int = 2000, patience: int = 8,
+                 batch_size: int = 8, lr: float = 2e-3, seed: int = 0, threads: int = 1,
+                 iw_samples: int = 0, kl_in_map: bool = True, var_floor: float = 1e-4,
+                 holdout: float = 0.2, max_frames: int = 2000, global_latent: int = 4):
         self.patch = patch
         self.stride = stride
         self.colour = colour
         self.latent = latent
         self.width = width
         self.epochs = epochs
+        self.steps = steps
         self.patience = patience
         self.batch_size = batch_size
         self.lr = lr
@@ -317,12 +416,13 @@ class PatchVAE(DensityModel):
         self.iw_samples = iw_samples
         self.kl_in_map = kl_in_map
         self.var_floor = var_floor
-        self.holdout_blocks = holdout_blocks
+        self.holdout = holdout
         self.max_frames = max_frames
+        self.global_latent = global_latent
 
-    _PARAMS = ("patch", "stride", "colour", "latent", "width", "epochs", "patience",
+    _PARAMS = ("patch", "stride", "colour", "latent", "width", "epochs", "steps", "patience",
                "batch_size", "lr", "seed", "threads", "iw_samples", "kl_in_map", "var_floor",
-               "holdout_blocks", "max_frames")
+               "holdout", "max_frames", "global_latent")
 
     def get_params(self) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -355,6 +455,10 @@ class PatchVAE(DensityModel):
         self._cell_cols = torch.as_tensor(cols)
         self._cell_share = torch.as_tensor(
             1.0 / count[rows[:, None], cols[None, :]], dtype=torch.float32)
+
+    def _network(self) -> FrameVAE:
+        return FrameVAE(self.channels_, self.padded_, self.q_, int(self.global_latent),
+                        self.down_, self.width, self.var_floor)
 
     def _observed(self, mask: np.ndarray | None) -> np.ndarray:
         """Observed planes (C, Hp, Wp), float32 0/1: not masked and not padding."""
@@ -405,17 +509,18 @@ class PatchVAE(DensityModel):
     # fitting
 
     def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:
-        """Train on the earlier time blocks; score the held-out latest block(s) for calibration.
+        """Train on most of every time block; score the held-out rest for calibration.
 
         Returns
         -------
         HeldOut
-            Raw maps of the held-out frames, by the final (best held-out ELBO) model.
+            Raw maps of the held-out frames (the latest ``holdout`` share of each block),
+            by the final model (the epoch with the best held-out ELBO).
         """
         started = time.perf_counter()
         self.size_ = tuple(int(v) for v in source.size)
         self._geometry(self.size_)
-        train_idx, held_idx, held_blocks = self._split(np.asarray(source.blocks))
+        train_idx, held_idx = self._split(np.asarray(source.blocks))
         train_idx = self._subsample(train_idx)
         train_pos, train_imgs = self._read(source, train_idx)
         held_pos, held_imgs = self._read(source, held_idx)
@@ -428,38 +533,38 @@ class PatchVAE(DensityModel):
             raise ValueError("the mask ignores every pixel")
         with _torch_threads(self.threads), torch.random.fork_rng(devices=[]):
             torch.manual_seed(self.seed)
-            self.net_ = FrameVAE(self.channels_, self.padded_, self.q_, self.down_, self.width,
-                                 self.var_floor)
+            self.net_ = self._network()
             self._init_from_data(train_imgs, obs)
             self._prepare_scoring()
             history = self._train(train_imgs, held_imgs, obs)
             self.net_.eval()
             maps = self._score_packed(held_imgs)
         self.learned_ = {
-            "latent": self.q_, "latent_cell": self.cell_, "latent_grid": list(self.latent_grid_),
+            "latent": self.q_, "global_latent": int(self.global_latent),
+            "latent_cell": self.cell_, "latent_grid": list(self.latent_grid_),
             "train_frames": int(len(train_imgs)), "heldout_frames": int(len(held_imgs)),
-            "heldout_blocks": [int(b) for b in held_blocks],
             "parameters": int(sum(p.numel() for p in self.net_.parameters())),
             "observed_dims": int(obs.sum()), "seconds": round(time.perf_counter() - started, 2),
             **history,
         }
         return HeldOut(held_pos, maps)
 
-    def _split(self, blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, list]:
-        """Training and held-out positions: the latest ``holdout_blocks`` blocks held out."""
+    def _split(self, blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Training and held-out positions: the latest ``holdout`` share of every block."""
         n = len(blocks)
         if n < 3:
             raise ValueError(f"need at least 3 frames to fit, got {n}")
-        labels = np.unique(blocks)
-        if len(labels) >= 2:
-            k = int(np.clip(self.holdout_blocks, 1, len(labels) - 1))
-            held = labels[-k:]
-            is_held = np.isin(blocks, held)
-        else:  # one block: hold out the latest fifth of the frames
-            held = labels
-            is_held = np.arange(n) >= n - max(1, n // 5)
         pos = np.arange(n)
-        return pos[~is_held], pos[is_held], list(held)
+        held = np.zeros(n, bool)
+        for b in np.unique(blocks):
+            members = pos[blocks == b]
+            k = int(round(self.holdout * len(members)))
+            if len(members) >= 2:
+                k = min(max(k, 1), len(members) - 1)
+            held[members[len(members) - k:]] = k > 0
+        if held.all() or not held.any():
+            held = pos >= n - max(1, n // 5)
+        return pos[~held], pos[held]
 
     def _subsample(self, idx: np.ndarray) -> np.ndarray:
         if len(idx) <= self.max_frames:
@@ -499,10 +604,15 @@ class PatchVAE(DensityModel):
                obs: torch.Tensor) -> dict[str, Any]:
         net = self.net_
         dims = float(obs.sum())
-        opt = torch.optim.Adam(net.parameters(), lr=self.lr)
+        maps = [net.background, net.raw_logvar]
+        rest = [p for p in net.parameters() if all(p is not m for m in maps)]
+        opt = torch.optim.Adam([{"params": rest},
+                                {"params": maps, "lr": self.lr * MAP_LR_SCALE}], lr=self.lr)
+        plateau = torch.optim.lr_scheduler.ReduceLROnPlateau(opt, mode="max", factor=0.5,
+                                                             patience=2)
         rng = np.random.default_rng(self.seed)
         gen = torch.Generator().manual_seed(self.seed)
-        best, best_state, best_epoch, stale, epoch = -math.inf, None, 0, 0, 0
+        best, best_state, best_epoch, stale, epoch, steps = -math.inf, None, 0, 0, 0, 0
         train_elbo = math.nan
         bar = tqdm(range(1, self.epochs + 1), desc="vae", unit="epoch", leave=False,
                    file=sys.stderr, disable=not sys.stderr.isatty(), dynamic_ncols=True)
@@ -511,6 +621,9 @@ class PatchVAE(DensityModel):
             order = rng.permutation(len(train_imgs))
             total, count = 0.0, 0
             for start in range(0, len(order), self.batch_size):
+                if steps >= max(self.steps, 1):
+                    break
+                steps += 1
                 x = self._unpack(train_imgs[np.sort(order[start:start + self.batch_size])])
                 e = elbo(x, net.encode, net.decode, weight=obs, generator=gen)
                 loss = -e.mean() / dims
@@ -521,19 +634,20 @@ class PatchVAE(DensityModel):
                 count += len(x)
             train_elbo = total / count
             held = self._heldout_elbo(held_imgs, obs)
+            plateau.step(held)
             if held > best:
                 best, best_epoch, stale = held, epoch, 0
                 best_state = copy.deepcopy(net.state_dict())
             else:
                 stale += 1
-            bar.set_postfix_str(f"ELBO/frame train {train_elbo:.1f} held-out {held:.1f} "
-                                f"(best {best:.1f} @ {best_epoch})")
-            if stale >= self.patience:
+            bar.set_postfix_str(f"ELBO nats/frame: train {train_elbo:.1f}, held-out {held:.1f} "
+                                f"(best {best:.1f} @ epoch {best_epoch}); step {steps}")
+            if stale >= self.patience or steps >= self.steps:
                 break
         bar.close()
         if best_state is not None:
             net.load_state_dict(best_state)
-        return {"epochs": int(epoch), "best_epoch": int(best_epoch),
+        return {"epochs": int(epoch), "steps": int(steps), "best_epoch": int(best_epoch),
                 "best_heldout_elbo": round(float(best), 3),
                 "best_heldout_elbo_per_dim": round(float(best) / dims, 5),
                 "last_train_elbo": round(float(train_elbo), 3)}
@@ -552,18 +666,25 @@ class PatchVAE(DensityModel):
 
     # scoring
 
-    def _to_cells(self, pixel_nll: torch.Tensor, latent_term: torch.Tensor | None
+    def _to_cells(self, pixel_nll: torch.Tensor, code_term: torch.Tensor | None
                   ) -> torch.Tensor:
-        """Per-plane NLL (n, C, Hp, Wp) and per-latent-cell terms (n, Hl, Wl) -> cell maps."""
+        """Per-plane NLL (n, C, Hp, Wp) and per-code-entry terms (n, code_size) -> cell maps.
+
+        A local code entry's term goes to the map cells of its latent cell, a global one's
+        is spread evenly over all cells that are not fully masked.
+        """
         h2, w2 = self.half_
         per_pix = pixel_nll[:, :, :h2, :w2].sum(dim=1, keepdim=True)
         k = self.stride // 2
         cells = F.avg_pool2d(per_pix, k, k)[:, 0] * (k * k) if k > 1 else per_pix[:, 0]
         mh, mw = self.map_shape_
         cells = cells[:, :mh, :mw]
-        if latent_term is not None:
-            spread = latent_term[:, self._cell_rows][:, :, self._cell_cols]
+        if code_term is not None:
+            local, glob = self.net_.split(code_term)
+            spread = local.sum(1)[:, self._cell_rows][:, :, self._cell_cols]
             cells = cells + spread * self._cell_share
+            if glob.shape[1]:
+                cells = cells + (glob.sum(1) / self._live.sum().clamp_min(1.0))[:, None, None]
         return cells * self._live
 
     def _prepare_scoring(self) -> None:
@@ -580,17 +701,17 @@ class PatchVAE(DensityModel):
         mu, logvar = net.encode(x)
         if self.iw_samples <= 0:
             mean, dec_logvar = net.decode(mu)
-            kl = kl_standard_normal(mu, logvar).sum(1) if self.kl_in_map else None
+            kl = kl_standard_normal(mu, logvar) if self.kl_in_map else None
             return self._to_cells(gaussian_nll(x, mean, dec_logvar, obs), kl)
         K = int(self.iw_samples)
         std = torch.exp(0.5 * logvar)
         shares, neg_logw = [], []
-        for _ in range(K):
-            eps = _noise(mu.shape, mu, gen)
+        noise = _noise((K,) + mu.shape, mu, gen)  # as log_weights draws it (K <= its chunk)
+        for eps in noise:
             z = mu + std * eps
             mean, dec_logvar = net.decode(z)
             rec = gaussian_nll(x, mean, dec_logvar, obs)
-            ratio = 0.5 * (z ** 2 - logvar - eps ** 2).sum(1)  # log q(z|x) - log p(z)
+            ratio = 0.5 * (z ** 2 - logvar - eps ** 2)  # log q(z|x) - log p(z), per entry
             neg_logw.append(_per_item(rec) + _per_item(ratio))
             shares.append(self._to_cells(rec, ratio))
         neg = torch.stack(neg_logw)                      # (K, n): -log w_k
@@ -664,8 +785,7 @@ class PatchVAE(DensityModel):
         ckpt = torch.load(Path(directory) / "vae.pt", map_location="cpu", weights_only=True)
         model.size_ = tuple(int(v) for v in ckpt["size"])
         model._geometry(model.size_)
-        model.net_ = FrameVAE(model.channels_, model.padded_, model.q_, model.down_,
-                              model.width, model.var_floor)
+        model.net_ = model._network()
         model.net_.load_state_dict(ckpt["state_dict"])
         model.net_.eval()
         model._prepare_scoring()
