@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from inspector.calibration import Threshold, conformal_p_values
+from inspector.conditions import Conditions, grey
 from inspector.models.base import DensityModel
 from inspector.scoring import anomaly_maps, frame_scores
 
@@ -25,12 +26,17 @@ class Scores:
     p_values : ndarray, shape (n,)
         Conformal p-values against the calibration scores.
     flagged : ndarray, shape (n,), bool
+        Score above the threshold and no health condition (a covered lens or a moved
+        camera is reported as such, not as an anomaly).
+    health : list (one per frame) of lists of (condition, measure, limit)
+        Camera health conditions of each frame (empty lists when all is well).
     """
 
     maps: np.ndarray
     scores: np.ndarray
     p_values: np.ndarray
     flagged: np.ndarray
+    health: list = field(default_factory=list)
 
 
 @dataclass
@@ -51,7 +57,7 @@ class Baseline:
     source_size : (int, int)
         (width, height) of the exported frames learnt from.
     mask : ndarray, shape (H, W), bool, or None
-        Ignored pixels at working resolution.
+        Ignored pixels at working resolution (the user's mask and burned-in text).
     meta : dict
         Everything else recorded in the version's JSON (times, counts, settings, notes).
     """
@@ -67,11 +73,53 @@ class Baseline:
     source_size: tuple[int, int]
     mask: np.ndarray | None = None
     meta: dict[str, Any] = field(default_factory=dict)
+    #: Registration, photometric normalisation and health limits; None for baselines
+    #: learnt without them (frames are then scored as they are).
+    conditions: Conditions | None = None
+    #: Grey of the last frame scored with ``sequence=True`` (for "frozen feed").
+    _previous: np.ndarray | None = field(default=None, init=False, repr=False, compare=False)
 
-    def score(self, images: np.ndarray) -> Scores:
-        """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size."""
-        maps = anomaly_maps(self.model.score_maps(images), self.center, self.scale)
+    def prepare(self, images: np.ndarray) -> np.ndarray:
+        """Frames as the model sees them: aligned and normalised to the baseline's reference.
+
+        Parameters
+        ----------
+        images : ndarray, shape (n, H, W, 3), uint8
+
+        Returns
+        -------
+        ndarray, shape (n, H, W, 3), uint8
+        """
+        if self.conditions is None:
+            return np.asarray(images)
+        return self.conditions.prepare(images)[0]
+
+    def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
+        """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.
+
+        Parameters
+        ----------
+        images : ndarray, shape (n, H, W, 3), uint8
+        sequence : bool
+            The frames continue the stream of the previous call with ``sequence=True``
+            (scan and watch): the first is compared with the last of that call for a
+            frozen feed.
+        """
+        images = np.asarray(images)
+        health: list = [[] for _ in range(len(images))]
+        if self.conditions is None:
+            prepared = images
+        else:
+            prepared, shifts = self.conditions.prepare(images)
+            if self.conditions.health:
+                m = self.conditions.measures(images, grey(prepared),
+                                             self._previous if sequence else None, shifts)
+                health = self.conditions.conditions(m)
+            if sequence and len(images):
+                self._previous = grey(images[-1:])[0]
+        maps = anomaly_maps(self.model.score_maps(prepared), self.center, self.scale)
         scores = frame_scores(maps)
+        healthy = np.array([not h for h in health], bool)
         return Scores(maps=maps, scores=scores,
                       p_values=conformal_p_values(self.calibration_scores, scores),
-                      flagged=scores > self.threshold.value)
+                      flagged=(scores > self.threshold.value) & healthy, health=health)

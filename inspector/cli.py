@@ -144,6 +144,8 @@ def cmd_learn(args: argparse.Namespace) -> int:
         say(f"{camera}: baseline {report.version} ({cfg.model.model}) from {report.frames} "
             f"frames, threshold {report.threshold:.3f} for a false-alarm rate of "
             f"{report.promised_alpha:.3g}, {len(skipped)} skipped, {report.seconds:.1f} s")
+        for note in getattr(report, "notes", []):
+            say(f"  {note}")
         for w in report.warnings:
             say(f"  warning: {w}")
         for s in skipped[:10]:
@@ -215,6 +217,8 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     events = f"  events: {out / 'events.csv'}" if (out / "events.csv").exists() else ""
     say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
         f"skipped: {out / 'skipped.csv'}")
+    if getattr(summary, "health", 0):
+        say(f"camera health: {summary.health} conditions in {out / 'health.csv'}")
     if all_scores:
         say(f"all scores: {all_scores}")
 

@@ -3,7 +3,7 @@
 Every setting has a default that works on a new scene; the file only changes what it
 names. Sections are plain dataclasses so the rest of the code reads attributes, never
 dictionaries. A camera table (``[cameras.NAME]``) may override any key of the
-``[frames]``, ``[model]`` and ``[calibration]`` sections for that camera, and adds the
+``[frames]``, ``[model]``, ``[calibration]`` and ``[conditions]`` sections for that camera, and adds the
 camera's ignore mask.
 
 Relative paths in the file are taken from the folder inspector is run in.
@@ -76,6 +76,44 @@ class CalibrationSettings:
 
 
 @dataclass(frozen=True)
+class ConditionSettings:
+    """How camera conditions are handled (see :mod:`inspector.conditions`)."""
+
+    #: Photometric normalisation against the baseline: "global" (a robust gain and offset
+    #: per frame), "local" (also a smooth brightness field, for lights on one side only)
+    #: or "off".
+    lighting: str = "global"
+    #: Align each frame to the baseline's reference (phase correlation) before scoring.
+    register: bool = True
+    #: Largest shift corrected, as a fraction of the frame's long side; beyond it the frame
+    #: is reported as "camera moved" in health.csv instead of being scored for anomalies.
+    max_shift: float = 0.05
+    #: Find burned-in text (clock, date, camera name) at learn time and mask it.
+    auto_text_mask: bool = True
+    #: Text boxes to mask as well, [x0, y0, x1, y1] in pixels of the exported frame.
+    text_boxes: tuple = ()
+    #: Report camera health (lens covered, out of focus, frozen, too dark, overexposed,
+    #: moved) in health.csv; frames with a condition are not flagged as anomalies.
+    health: bool = True
+    #: Budget of false alarms per camera per day; 0 uses [calibration] alpha instead.
+    #: Converted to a per-frame rate with the frame rate measured from capture times.
+    alarms_per_day: float = 0.0
+    #: When the calibration set is too small for the rate asked for, extrapolate the
+    #: threshold with a generalized Pareto fit of the largest scores (with a warning).
+    tail_fit: bool = True
+    #: Health limits before they are widened by what the normal frames show: 99th
+    #: percentile of grey below which a frame is too dark; share of clipped pixels above
+    #: which it is overexposed; share of textured cells gone flat above which the lens is
+    #: covered; sharpness relative to normal below which it is out of focus; mean absolute
+    #: difference to the previous frame (grey levels) below which the feed is frozen.
+    dark_level: float = 20.0
+    overexposed_share: float = 0.5
+    covered_share: float = 0.6
+    focus_ratio: float = 0.35
+    frozen_difference: float = 0.25
+
+
+@dataclass(frozen=True)
 class CameraMask:
     #: Polygons in pixel coordinates of the exported frame, each a list of [x, y].
     polygons: tuple[tuple[tuple[float, float], ...], ...] = ()
@@ -92,6 +130,7 @@ class CameraConfig:
     model: ModelSettings
     calibration: CalibrationSettings
     mask: CameraMask
+    conditions: ConditionSettings = field(default_factory=ConditionSettings)
 
 
 @dataclass(frozen=True)
@@ -100,6 +139,7 @@ class Config:
     frames: FrameSettings = field(default_factory=FrameSettings)
     model: ModelSettings = field(default_factory=ModelSettings)
     calibration: CalibrationSettings = field(default_factory=CalibrationSettings)
+    conditions: ConditionSettings = field(default_factory=ConditionSettings)
     #: Raw per-camera tables, validated when read through :meth:`camera`.
     cameras: dict[str, dict[str, Any]] = field(default_factory=dict)
     #: Sections that other parts of the tool own (watch, events, health, ...), as read.
@@ -114,7 +154,8 @@ class Config:
             polygons=_polygons(table.pop("mask_polygons", ()), where),
             image=_typed(table.pop("mask_image", ""), str, f"{where} mask_image"),
         )
-        sections = {"frames": self.frames, "model": self.model, "calibration": self.calibration}
+        sections = {"frames": self.frames, "model": self.model, "calibration": self.calibration,
+                    "conditions": self.conditions}
         out: dict[str, Any] = {}
         for key, current in sections.items():
             names = {f.name for f in fields(current)}
@@ -159,7 +200,7 @@ def load_config(path: str | Path | None = None) -> Config:
         raise UsageError(f"config file {path} is not valid TOML: {exc}") from None
     src = str(path)
     known = {"paths": PathSettings, "frames": FrameSettings, "model": ModelSettings,
-             "calibration": CalibrationSettings}
+             "calibration": CalibrationSettings, "conditions": ConditionSettings}
     built = {k: _build(cls, data.pop(k, {}), f"[{k}]", source=src) for k, cls in known.items()}
     cameras = data.pop("cameras", {})
     if not isinstance(cameras, dict) or not all(isinstance(v, dict) for v in cameras.values()):
@@ -187,6 +228,13 @@ _RANGES: dict[str, tuple[float, float]] = {
     "max_latent": (1, 512),
     "alpha": (1e-9, 0.5),
     "folds": (2, 50),
+    "max_shift": (0.0, 0.5),
+    "alarms_per_day": (0.0, 1e6),
+    "dark_level": (0.0, 255.0),
+    "overexposed_share": (0.0, 1.0),
+    "covered_share": (0.0, 1.0),
+    "focus_ratio": (0.0, 1.0),
+    "frozen_difference": (0.0, 255.0),
 }
 
 
@@ -239,7 +287,21 @@ def _check_model(m: ModelSettings, where: str) -> None:
         )
 
 
-_CHECKS = {ModelSettings: _check_model}
+def _check_conditions(c: ConditionSettings, where: str) -> None:
+    from inspector.conditions import LIGHTING_MODES
+
+    if c.lighting not in LIGHTING_MODES:
+        raise UsageError(f"{where} lighting = {c.lighting!r}: choose one of "
+                         f"{', '.join(LIGHTING_MODES)}")
+    for box in c.text_boxes:
+        ok = (isinstance(box, (list, tuple)) and len(box) == 4
+              and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in box))
+        if not ok or box[2] <= box[0] or box[3] <= box[1]:
+            raise UsageError(f"{where} text_boxes: each box must be [x0, y0, x1, y1] with "
+                             f"x1 > x0 and y1 > y0, got {box!r}")
+
+
+_CHECKS = {ModelSettings: _check_model, ConditionSettings: _check_conditions}
 
 
 def _polygons(value: Any, where: str) -> tuple:

@@ -4,6 +4,10 @@ Frames are put in capture-time order and split into time blocks; the model fits 
 of them and returns held-out maps (each from a model that did not see that frame's
 block); the held-out maps set the per-cell standardisation and the calibration scores;
 the conformal threshold follows. The result is saved as a new, active version.
+
+Before the model sees them, frames are aligned and photometrically normalised to a
+reference learnt from a sample of the normal frames (:mod:`inspector.conditions`); the
+same sample finds burned-in text overlays, which are masked, and sets the health limits.
 """
 
 from __future__ import annotations
@@ -21,7 +25,9 @@ from tqdm import tqdm
 
 import inspector
 from inspector.baseline import Baseline
-from inspector.calibration import conformal_threshold, time_blocks
+from inspector.calibration import (alarms_to_alpha, conformal_threshold, tail_threshold,
+                                   time_blocks)
+from inspector.conditions import Conditions, boxes_mask, find_text_boxes, grey
 from inspector.config import CameraConfig, settings_dict
 from inspector.errors import FrameError, UsageError
 from inspector.features import rasterize_mask
@@ -32,6 +38,10 @@ from inspector.store import Store
 
 #: Fewer normal frames than this cannot make a baseline at all.
 MIN_FRAMES = 10
+#: Normal frames (spread evenly in time) that set the reference, health limits and text mask.
+CONDITION_SAMPLE = 48
+#: Long side at which burned-in text is looked for (small text vanishes at working size).
+TEXT_LONG_SIDE = 640
 
 
 def progress_bar(total: int | None, desc: str) -> tqdm:
@@ -97,6 +107,32 @@ class FileSource:
                 yield np.array(idx), np.stack(imgs)
 
 
+class PreparedSource:
+    """A :class:`FrameSource` whose frames pass through :meth:`Conditions.prepare` first."""
+
+    def __init__(self, source, conditions: Conditions):
+        self.source = source
+        self.conditions = conditions
+        self.blocks = source.blocks
+        self.size = source.size
+        #: Health measures of every frame prepared, by position (for the health limits).
+        self.measures: dict[int, dict[str, float]] = {}
+
+    def __len__(self) -> int:
+        return len(self.source)
+
+    def batches(self, indices: Sequence[int], batch_size: int = 64
+                ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        for idx, images in self.source.batches(indices, batch_size):
+            prepared, shifts = self.conditions.prepare(images)
+            if self.conditions.reference is not None and not all(
+                    int(i) in self.measures for i in idx):
+                m = self.conditions.measures(images, grey(prepared), shifts=shifts)
+                for j, i in enumerate(idx):
+                    self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
+            yield idx, prepared
+
+
 @dataclass
 class LearnReport:
     """What ``learn`` did for one camera."""
@@ -109,6 +145,10 @@ class LearnReport:
     promised_alpha: float
     warnings: list[str] = field(default_factory=list)
     seconds: float = 0.0
+    #: Burned-in text boxes masked, (x0, y0, x1, y1) in pixels of the exported frames.
+    text_boxes: list[tuple[int, int, int, int]] = field(default_factory=list)
+    #: Other facts worth a line in the summary (alarm budget, health limits).
+    notes: list[str] = field(default_factory=list)
 
 
 def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
@@ -140,18 +180,32 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                  "time_formats": fs.time_formats}
     source = FileSource(files, blocks, size, source_size, read_args, camera)
     mask = _mask(cfg, source_size, size)
+    conditions, text_boxes, mask, limits = _conditions(cfg, source, mask)
     model = model_class(cfg.model.model)(**_model_params(cfg))
+    prepared = PreparedSource(source, conditions)
     try:
-        held = model.fit(source, mask)
+        held = model.fit(prepared, mask)
     except ValueError as exc:
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
     used = len(files) - len(source.skipped)
     if used < MIN_FRAMES:
         raise UsageError(f"camera {camera}: only {used} of {len(files)} normal frames could be "
                          f"read, at least {MIN_FRAMES} are needed to learn a baseline")
+    if prepared.measures:  # health limits from every normal frame, not just the sample
+        conditions.set_limits({k: np.array([m[k] for m in prepared.measures.values()])
+                               for k in ("dark", "bright", "covered", "focus")}, limits)
     center, scale = location_stats(held.maps)
     cal = frame_scores(anomaly_maps(held.maps, center, scale))
-    threshold = conformal_threshold(cal, cfg.calibration.alpha)
+    cs = cfg.conditions
+    alpha, notes = cfg.calibration.alpha, []
+    if cs.alarms_per_day > 0:
+        try:
+            alpha, per_day = alarms_to_alpha(cs.alarms_per_day, times)
+        except ValueError as exc:
+            raise UsageError(f"camera {camera}: alarms_per_day is set but {exc}") from None
+        notes.append(f"{cs.alarms_per_day:g} false alarms a day at {per_day:.0f} frames a day "
+                     f"(from capture times): false-alarm rate {alpha:.3g} per frame")
+    threshold = (tail_threshold if cs.tail_fit else conformal_threshold)(cal, alpha)
     warnings = [threshold.warning] if threshold.warning else []
     warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
     good = [t for i, t in enumerate(times) if i not in source.skipped]
@@ -170,22 +224,68 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
         "working_size": list(size),
         "settings": {"frames": settings_dict(fs), "model": settings_dict(cfg.model),
                      "calibration": settings_dict(cfg.calibration),
+                     "conditions": settings_dict(cfg.conditions),
                      "mask": settings_dict(cfg.mask)},
         "threshold": {"value": threshold.value, "alpha": threshold.alpha,
                       "promised": threshold.promised, "n": threshold.n,
-                      "frames_short": threshold.frames_short},
+                      "frames_short": threshold.frames_short, "method": threshold.method},
+        "text_boxes": [list(b) for b in text_boxes],
         "warnings": warnings,
         "inspector_version": inspector.__version__,
         **(extra or {}),
     }
     baseline = Baseline(camera=camera, version="", model=model, center=center, scale=scale,
                         calibration_scores=cal, threshold=threshold, size=size,
-                        source_size=source_size, mask=mask, meta=meta)
+                        source_size=source_size, mask=mask, meta=meta, conditions=conditions)
     version = store.save(baseline, activate=activate)
     skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
     seconds = (datetime.now(timezone.utc) - started).total_seconds()
+    if text_boxes:
+        notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
+                     + ", ".join(str(tuple(b)) for b in text_boxes))
     return LearnReport(camera, version, used, skipped, threshold.value, threshold.promised,
-                       warnings, seconds)
+                       warnings, seconds, text_boxes=text_boxes, notes=notes)
+
+
+def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
+                ) -> tuple[Conditions, list[tuple[int, int, int, int]], np.ndarray | None, dict]:
+    """Learn the camera's conditions from a sample of its normal frames.
+
+    Returns the conditions, the text boxes masked (exported pixels), the model's mask
+    (the user's mask with the text boxes added) and the health limits asked for.
+    """
+    cs = cfg.conditions
+    n = len(source)
+    sample = np.unique(np.linspace(0, n - 1, min(CONDITION_SAMPLE, n)).round().astype(int))
+    images = np.concatenate([b for _, b in source.batches(sample)] or
+                            [np.zeros((0, source.size[1], source.size[0], 3), np.uint8)])
+    w, h = source.size
+    sw, sh = source.source_size
+    boxes: list[tuple[int, int, int, int]] = [tuple(int(round(v)) for v in b)  # type: ignore
+                                              for b in cs.text_boxes]
+    if cs.auto_text_mask and len(images) >= 3:
+        long_side = min(max(sw, sh), max(TEXT_LONG_SIDE, w, h))
+        big = FileSource([source.files[i] for i in sample], np.zeros(len(sample), int),
+                         working_size((sw, sh), long_side), source.source_size,
+                         source.read_args, source.camera)
+        frames = np.concatenate([b for _, b in big.batches(range(len(sample)))] or
+                                [np.zeros((0, 1, 1, 3), np.uint8)])
+        if len(frames) >= 3:
+            tw, th = big.size
+            found = find_text_boxes(grey(frames))
+            boxes += [(int(x0 * sw / tw), int(y0 * sh / th), int(np.ceil(x1 * sw / tw)),
+                       int(np.ceil(y1 * sh / th))) for x0, y0, x1, y1 in found]
+    if boxes:
+        text = boxes_mask(boxes, (w, h), (w / sw, h / sh))
+        mask = text if mask is None else (mask | text)
+    conditions = Conditions(lighting=cs.lighting, register=cs.register,
+                            max_shift=cs.max_shift * max(w, h), health=cs.health)
+    limits = {"dark": cs.dark_level, "bright": cs.overexposed_share,
+              "covered": cs.covered_share, "focus": cs.focus_ratio,
+              "frozen": cs.frozen_difference}
+    if len(images):
+        conditions.fit(images, mask, limits)
+    return conditions, boxes, mask, limits
 
 
 def _model_params(cfg: CameraConfig) -> dict:

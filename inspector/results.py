@@ -1,4 +1,4 @@
-"""Where results are written: flagged.csv, all scores, skipped.csv, overlays and maps.
+"""Where results are written: flagged.csv, all scores, skipped.csv, health.csv, overlays, maps.
 
 The one writer of results, shared by scan and watch (and read back by review). When given
 a ledger, every frame scored or skipped is also recorded there (see :mod:`inspector.ledger`);
@@ -10,7 +10,7 @@ from __future__ import annotations
 import csv
 import os
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -29,6 +29,8 @@ if TYPE_CHECKING:
 COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "model", "overlay")
 #: Columns of skipped.csv.
 SKIP_COLUMNS = ("frame", "camera", "reason")
+#: Columns of health.csv: camera health conditions, kept apart from anomalies.
+HEALTH_COLUMNS = ("frame", "camera", "time", "condition", "measure", "limit")
 
 
 def iso_time(t: datetime) -> str:
@@ -55,6 +57,8 @@ class FrameResult:
         The frame at working resolution (for the overlay).
     amap : ndarray, shape (h, w), float32
         Anomaly map.
+    health : list of (condition, measure, limit)
+        Camera health conditions of the frame (see :mod:`inspector.conditions`).
     """
 
     frame: str
@@ -67,6 +71,7 @@ class FrameResult:
     flagged: bool
     image: np.ndarray
     amap: np.ndarray
+    health: list = field(default_factory=list)
 
 
 def repair_tail(path: Path) -> None:
@@ -154,9 +159,10 @@ class ResultWriter:
         self.maps = Path(maps) if maps else None
         self.flagged = _Csv(self.out / "flagged.csv", COLUMNS, append)
         self.skipped = _Csv(self.out / "skipped.csv", SKIP_COLUMNS, append)
+        self.health_rows = _Csv(self.out / "health.csv", HEALTH_COLUMNS, append)
         self.all_scores = _Csv(Path(all_scores), COLUMNS, append) if all_scores else None
         self._names: set[tuple[str, str]] = set()
-        self.counts = {"scored": 0, "flagged": 0, "skipped": 0}
+        self.counts = {"scored": 0, "flagged": 0, "skipped": 0, "health": 0}
 
     def _unique(self, kind: str, camera: str, frame: str) -> str:
         stem = Path(frame).stem
@@ -168,10 +174,12 @@ class ResultWriter:
         return name
 
     def write(self, results: Sequence[FrameResult]) -> list[str]:
-        """Record scored frames (one ledger transaction for all); returns their overlay
-        paths ('' where none was written)."""
+        """Record scored frames (one ledger transaction for all) and their camera health
+        conditions (health.csv); returns their overlay paths ('' where none was written)."""
         overlays = []
         for r in results:
+            for condition, measure, limit in r.health:
+                self.health(r.frame, r.camera, r.time, condition, measure, limit)
             overlay = self.save_files(r)
             overlays.append(overlay)
             self.add_rows(format_row(r.frame, r.camera, iso_time(r.time), r.score, r.threshold,
@@ -239,10 +247,17 @@ class ResultWriter:
         return {"path": str(path), "rel": rel, "size": size, "mtime": mtime, "seen_at": now,
                 "scored_at": now, "written": 1}
 
+    def health(self, frame: str, camera: str, time: datetime, condition: str,
+               measure: float, limit: float) -> None:
+        """Record a camera health condition of a frame in health.csv."""
+        self.health_rows.row((frame, camera, iso_time(time), condition, f"{measure:.4g}",
+                              f"{limit:.4g}"))
+        self.counts["health"] += 1
+
     def close(self) -> None:
         if self.events is not None:
             write_events(self.out / "events.csv", group_events(self._points, self.events))
-        for f in (self.flagged, self.skipped, self.all_scores):
+        for f in (self.flagged, self.skipped, self.health_rows, self.all_scores):
             if f:
                 f.close()
 

@@ -70,14 +70,16 @@ def read_args(baseline: Baseline, config: Config) -> dict:
 
 
 def score_frames(baseline: Baseline, frames: Sequence[Frame]) -> list[FrameResult]:
-    """Score decoded frames of one camera; results in the same order."""
+    """Score decoded frames of one camera, consecutive in its stream; results in the same
+    order, each with its health conditions."""
     if not frames:
         return []
-    s = baseline.score(np.stack([f.image for f in frames]))
+    s = baseline.score(np.stack([f.image for f in frames]), sequence=True)
     return [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
                         score=float(s.scores[i]), threshold=baseline.threshold.value,
                         p_value=float(s.p_values[i]), model=baseline.version,
-                        flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i])
+                        flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
+                        health=s.health[i] if s.health else [])
             for i, f in enumerate(frames)]
 
 
@@ -86,6 +88,7 @@ class ScanSummary:
     scored: int = 0
     flagged: int = 0
     skipped: int = 0
+    health: int = 0
     seconds: float = 0.0
     notes: Counter = field(default_factory=Counter)
 
@@ -127,6 +130,7 @@ def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultW
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]
     summary.skipped = writer.counts["skipped"]
+    summary.health = writer.counts.get("health", 0)
     summary.seconds = time.perf_counter() - started
     return summary
 

@@ -55,7 +55,21 @@ INCIDENTS = ("parcel", "spill", "lens", "haze")
 NUISANCES = {
     "jitter_px": "standard deviation, in pixels, of a random camera shift per frame",
     "gain": "largest relative change of a random global gain per frame (0.2 = +-20 %)",
+    # The ones below change the frames to scan only: conditions the normal frames never showed.
+    "exposure_step": "relative size of auto-exposure steps in the frames to scan: each "
+                     "frame's gain is 1 +- this, plus an offset of +- 40 x this grey levels",
+    "moved_px": "the camera is knocked half-way through the frames to scan: the second "
+                "half is shifted this many pixels right and half as many down",
+    "covered": "share of the incident-free frames to scan with the lens covered",
+    "defocus": "share of the incident-free frames to scan that are out of focus",
+    "frozen": "share of the incident-free frames to scan that repeat the previous frame "
+              "byte for byte (a frozen feed)",
 }
+#: Camera condition written to ``health_truth.csv`` for each of these nuisances.
+HEALTH_NUISANCES = {"covered": "lens covered", "defocus": "out of focus",
+                    "frozen": "frozen feed", "moved_px": "camera moved"}
+#: File (in the scenario root) listing frames to scan with a camera health condition.
+HEALTH_TRUTH = "health_truth.csv"
 
 JPEG_QUALITY = 85
 #: First day of the normal frames; four consecutive days follow, then the scan day.
@@ -185,12 +199,22 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
         if job.split == 1:
             truth_rows.append((job.path.relative_to(out.new).as_posix(), job.camera,
                                job.incident or "none"))
+    health_rows = [(j.path.relative_to(out.new).as_posix(), j.camera, j.fault)
+                   for j in jobs if j.fault]
 
     jitter = float(extra.get("jitter_px", 0.0))
     workers = max(1, min(4, os.cpu_count() or 1))
     with ThreadPoolExecutor(max_workers=workers) as pool:
         for _ in pool.map(lambda j: _render(j, scenes[j.camera], bank, jitter), jobs):
             pass
+    for before, job in zip(jobs, jobs[1:]):  # a frozen feed repeats the frame before
+        if job.fault == "frozen feed" and before.camera == job.camera:
+            job.path.write_bytes(before.path.read_bytes())
+    if health_rows:
+        with open(out.root / HEALTH_TRUTH, "w", newline="", encoding="utf-8") as fh:
+            writer = csv.writer(fh)
+            writer.writerow(("frame", "camera", "condition"))
+            writer.writerows(health_rows)
 
     with open(out.truth, "w", newline="", encoding="utf-8") as fh:
         writer = csv.writer(fh)
@@ -267,7 +291,7 @@ def _prepare(out: Scenario) -> None:
     """Create the output folder; clear what an earlier run left, refuse foreign data."""
     out.root.mkdir(parents=True, exist_ok=True)
     ours = (out.root / _MARKER).exists()
-    for path in (out.normal, out.new, out.masks, out.truth):
+    for path in (out.normal, out.new, out.masks, out.truth, out.root / HEALTH_TRUTH):
         if not path.exists():
             continue
         if path.is_dir() and not any(path.iterdir()):
@@ -898,6 +922,11 @@ class _Job:
     seed: tuple[int, ...]
     path: Path
     mask_path: Path | None
+    #: Camera condition of a frame to scan (see :data:`HEALTH_NUISANCES`), or "".
+    fault: str = ""
+    #: Exposure step (gain, offset in grey levels) and camera shift (dx, dy) in pixels.
+    exposure: tuple[float, float] = (1.0, 0.0)
+    moved: tuple[float, float] = (0.0, 0.0)
 
 
 def _plan(camera, cam_index, split, count, seed, incident_fraction, extra, scene,
@@ -913,14 +942,45 @@ def _plan(camera, cam_index, split, count, seed, incident_fraction, extra, scene
         for pos, kind in zip(rng.choice(count, n_inc, replace=False), kinds):
             incidents[int(pos)] = kind
     folder = (out.normal if split == 0 else out.new) / camera
+    faults, exposure, moved = _faults(count if split == 1 else 0, incidents, seed, cam_index,
+                                      extra)
     jobs = []
     for i, (t, kind) in enumerate(zip(times, incidents)):
         name = f"{camera}_{t:%Y%m%d_%H%M%S}"
         cond = weather.conditions(t, scene, extra.get("gain", 0.0))
         jobs.append(_Job(camera=camera, split=split, time=t, incident=kind, conditions=cond,
                          seed=(seed, 2, cam_index, split, i), path=folder / f"{name}.jpg",
-                         mask_path=(out.masks / camera / f"{name}.png") if kind else None))
+                         mask_path=(out.masks / camera / f"{name}.png") if kind else None,
+                         fault=faults[i] if faults else "",
+                         exposure=exposure[i] if exposure else (1.0, 0.0),
+                         moved=moved[i] if moved else (0.0, 0.0)))
     return jobs
+
+
+def _faults(count: int, incidents, seed: int, cam_index: int, extra):
+    """Camera conditions of the frames to scan: faults, exposure steps and shifts."""
+    if not count or not any(k in extra for k in ("exposure_step", "moved_px", "covered",
+                                                 "defocus", "frozen")):
+        return [], [], []
+    rng = np.random.default_rng([seed, 5, cam_index])
+    faults = [""] * count
+    free = [i for i in range(1, count) if incidents[i] is None]
+    rng.shuffle(free)
+    start = 0
+    for key in ("covered", "defocus", "frozen"):
+        n = int(round(extra.get(key, 0.0) * len(free)))
+        for i in free[start:start + n]:
+            faults[i] = HEALTH_NUISANCES[key]
+        start += n
+    step = extra.get("exposure_step", 0.0)
+    signs = rng.choice([-1.0, 1.0], size=(count, 2))
+    exposure = [(1.0 + step * a, 40.0 * step * b) for a, b in signs]
+    px = extra.get("moved_px", 0.0)
+    moved = [(px, px / 2) if i >= count // 2 else (0.0, 0.0) for i in range(count)]
+    if px > 0:
+        for i in range(count // 2, count):
+            faults[i] = faults[i] or HEALTH_NUISANCES["moved_px"]
+    return faults, exposure, moved
 
 
 def _noise_bank(rng: np.random.Generator, height: int, width: int) -> list[np.ndarray]:
@@ -960,6 +1020,22 @@ def _render(job: _Job, scene: _Scene, bank: list[np.ndarray], jitter_px: float) 
         if mask is not None:
             mask = cv2.warpAffine(mask.astype(np.uint8), shift, (W, H),
                                   flags=cv2.INTER_NEAREST) > 0
+    if job.moved != (0.0, 0.0):
+        shift = np.float32([[1, 0, job.moved[0]], [0, 1, job.moved[1]]])
+        out = cv2.warpAffine(out, shift, (W, H), flags=cv2.INTER_LINEAR,
+                             borderMode=cv2.BORDER_REFLECT_101)
+        if mask is not None:
+            mask = cv2.warpAffine(mask.astype(np.uint8), shift, (W, H),
+                                  flags=cv2.INTER_NEAREST) > 0
+    if job.fault == "out of focus":
+        out = cv2.GaussianBlur(out, (0, 0), 0.008 * W)
+    if job.fault == "lens covered":                   # a hand or a bag: dark, soft, most of it
+        a = np.linspace(0.0, 2 * np.pi, 48, endpoint=False)
+        blob = np.stack([W * (0.45 + 0.6 * np.cos(a)), H * (0.55 + 0.75 * np.sin(a))], 1)
+        cover = _coverage(H, W, [blob], blur=0.05 * W)
+        out = out * (1.0 - 0.92 * cover[..., None]).astype(np.float32)
+    if job.exposure != (1.0, 0.0):
+        out = out * np.float32(job.exposure[0]) + np.float32(job.exposure[1] / 255.0)
     if cond.band is not None:
         amp, period, phase = cond.band
         rows = 1.0 + amp * np.sin(2 * np.pi * np.arange(H, dtype=np.float32) / period + phase)

@@ -4,6 +4,7 @@ Layout::
 
     STORE/<camera>/<version>/baseline.json   metadata and settings
     STORE/<camera>/<version>/calibration.npz standardisation, calibration scores, mask
+    STORE/<camera>/<version>/conditions.npz  reference frame and health statistics
     STORE/<camera>/<version>/<model files>   e.g. ppca.npz or vae.pt
     STORE/<camera>/active.json               {"version": "v3"}
 
@@ -25,6 +26,7 @@ import numpy as np
 
 from inspector.baseline import Baseline
 from inspector.calibration import Threshold
+from inspector.conditions import Conditions
 from inspector.errors import UsageError
 from inspector.models import model_class
 
@@ -119,11 +121,17 @@ class Store:
             cal = z["calibration_scores"]
             mask = z["mask"] if "mask" in z.files else None
         t = meta["threshold"]
-        threshold = Threshold(t["value"], t["alpha"], t["promised"], t["n"], t["frames_short"])
+        threshold = Threshold(t["value"], t["alpha"], t["promised"], t["n"], t["frames_short"],
+                              t.get("method", "conformal"))
+        conditions = None
+        if "conditions" in meta and (folder / "conditions.npz").is_file():
+            with np.load(folder / "conditions.npz", allow_pickle=False) as z:
+                conditions = Conditions.from_saved(meta["conditions"],
+                                                   {k: z[k] for k in z.files})
         return Baseline(camera=camera, version=version, model=model, center=center,
                         scale=scale, calibration_scores=cal, threshold=threshold,
                         size=tuple(meta["working_size"]), source_size=tuple(meta["source_size"]),
-                        mask=mask, meta=meta)
+                        mask=mask, meta=meta, conditions=conditions)
 
     def save(self, baseline: Baseline, activate: bool = True) -> str:
         """Write ``baseline`` as the camera's next version; returns the version id.
@@ -142,6 +150,9 @@ class Store:
             if baseline.mask is not None:
                 arrays["mask"] = baseline.mask
             np.savez_compressed(tmp / "calibration.npz", **arrays)
+            if baseline.conditions is not None:
+                np.savez_compressed(tmp / "conditions.npz", **baseline.conditions.arrays())
+                baseline.meta["conditions"] = baseline.conditions.to_json()
             while True:
                 existing = [int(_VERSION_RE.match(v).group(1)) for v in self.versions(camera)]
                 version = f"v{max(existing, default=0) + 1}"

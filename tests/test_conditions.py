@@ -1,0 +1,200 @@
+"""Camera conditions: tail threshold, registration, photometric fit, text overlays, health,
+and the false-alarm budget on generated streams with nuisances."""
+
+from __future__ import annotations
+
+import csv
+from datetime import datetime, timedelta
+
+import cv2
+import numpy as np
+import pytest
+from scipy import ndimage
+from scipy.stats import binom, genpareto
+from skimage import data as skdata
+from sklearn.metrics import roc_auc_score
+
+from inspector.calibration import alarms_to_alpha, gpd_fit, tail_threshold
+from inspector.conditions import (find_text_boxes, grey, phase_shift, robust_gain_offset,
+                                  sharpness)
+from inspector.config import load_config
+from inspector.errors import UsageError
+from inspector.frames import discover
+from inspector.learn import learn_camera
+from inspector.results import HEALTH_COLUMNS, ResultWriter
+from inspector.scan import Baselines, scan_files
+from inspector.scenario import HEALTH_TRUTH, generate
+from inspector.store import Store
+
+
+# --- tail of the calibration scores -----------------------------------------------------
+
+def test_gpd_fit_matches_scipy_on_a_known_tail():
+    xi, sigma = 0.2, 1.5
+    x = genpareto.rvs(xi, scale=sigma, size=4000, random_state=np.random.default_rng(1))
+    est_xi, est_sigma = gpd_fit(x)
+    ref_xi, _, ref_sigma = genpareto.fit(x, floc=0)  # scipy.stats.genpareto maximum likelihood
+    assert abs(est_xi - xi) < 0.08 and abs(est_xi - ref_xi) < 0.08
+    assert abs(est_sigma / sigma - 1) < 0.1 and abs(est_sigma / ref_sigma - 1) < 0.1
+
+
+def test_tail_threshold_extrapolates_to_the_true_quantile():
+    # Scores with an exact generalized Pareto tail: the true (1 - alpha) quantile is known
+    # from scipy.stats.genpareto.isf.
+    xi, sigma, alpha = 0.1, 1.0, 1e-4
+    truth = genpareto.isf(alpha, xi, scale=sigma)
+    errors = []
+    for seed in range(20):
+        s = genpareto.rvs(xi, scale=sigma, size=600, random_state=np.random.default_rng(seed))
+        t = tail_threshold(s, alpha)
+        assert t.method == "tail" and t.frames_short == 9999 - 600
+        assert "9399 more normal frames" in t.warning
+        errors.append(np.log(t.value / truth))
+    # the order statistic alone could only offer max(s), far below the true quantile
+    assert abs(np.median(errors)) < 0.2
+
+
+def test_tail_threshold_is_conformal_when_the_set_suffices():
+    s = np.random.default_rng(0).normal(size=500)
+    t = tail_threshold(s, 0.05)
+    # ceil((n + 1)(1 - alpha))-th smallest (Vovk, Gammerman & Shafer 2005)
+    assert t.method == "conformal" and t.value == np.sort(s)[int(np.ceil(501 * 0.95)) - 1]
+
+
+def test_alarms_per_day_to_alpha():
+    t0 = datetime(2026, 1, 1)
+    times = [t0 + timedelta(minutes=i) for i in range(100)]
+    times += [t0 + timedelta(days=1, minutes=i) for i in range(100)]  # a gap between sessions
+    alpha, per_day = alarms_to_alpha(2.0, times)
+    assert per_day == pytest.approx(1440.0)      # one frame a minute, arithmetic
+    assert alpha == pytest.approx(2.0 / 1440.0)
+
+
+# --- registration, lighting, focus, text -----------------------------------------------
+
+def _camera_image() -> np.ndarray:
+    return skdata.camera().astype(np.float32)[::2, ::2]  # bundled scikit-image image
+
+
+def test_phase_shift_recovers_a_sub_pixel_shift():
+    ref = _camera_image()
+    moved = ndimage.shift(ref, (1.6, -2.3), order=3, mode="reflect")  # scipy.ndimage.shift
+    dx, dy = phase_shift(moved, ref)
+    assert dx == pytest.approx(-2.3, abs=0.3) and dy == pytest.approx(1.6, abs=0.3)
+
+
+def test_robust_gain_offset_ignores_a_local_incident():
+    ref = _camera_image()
+    frame = (ref - 20.0) / 0.6              # reference = 0.6 * frame + 20
+    frame[40:90, 40:90] = 255.0 - frame[40:90, 40:90] * 0.2   # a bright object
+    gain, offset = robust_gain_offset(np.clip(frame, 0, 255), ref)
+    assert gain == pytest.approx(0.6, rel=0.05) and offset == pytest.approx(20.0, abs=4.0)
+
+
+def test_sharpness_drops_when_out_of_focus():
+    ref = _camera_image()
+    blurred = cv2.GaussianBlur(ref, (0, 0), 2.0)
+    assert sharpness(blurred) / sharpness(ref) < 0.35
+    assert sharpness(ref * 0.4) == pytest.approx(sharpness(ref), rel=1e-3)  # blind to gain
+
+
+def test_text_boxes_found_around_a_running_clock():
+    rng = np.random.default_rng(0)
+    base = skdata.astronaut()[::2, ::2].astype(np.float32).mean(axis=2)  # bundled image
+    frames = []
+    for i in range(30):
+        g = base + rng.normal(0, 2, base.shape)
+        img = np.clip(g, 0, 255).astype(np.uint8)
+        cv2.putText(img, f"2026-11-{26 + i // 10} 10:{i:02d}:{(7 * i) % 60:02d}", (20, 240),
+                    cv2.FONT_HERSHEY_SIMPLEX, 0.5, 255, 1, cv2.LINE_AA)
+        frames.append(img.astype(np.float32))
+    boxes = find_text_boxes(np.stack(frames))
+    assert len(boxes) == 1
+    x0, y0, x1, y1 = boxes[0]
+    assert x0 <= 60 and x1 >= 150 and y0 <= 232 and y1 >= 238 and y1 - y0 < 30
+    plain = np.stack([base + rng.normal(0, 2, base.shape) for _ in range(30)])
+    assert find_text_boxes(plain) == []
+
+
+# --- config -----------------------------------------------------------------------------
+
+def test_conditions_config_per_camera(tmp_path):
+    p = tmp_path / "c.toml"
+    p.write_text('[conditions]\nalarms_per_day = 3\n[cameras.gate]\nlighting = "local"\n'
+                 'text_boxes = [[0, 0, 50, 10]]\n', encoding="utf-8")
+    cfg = load_config(p)
+    assert cfg.camera("gate").conditions.lighting == "local"
+    assert cfg.camera("gate").conditions.alarms_per_day == 3.0
+    assert cfg.camera("other").conditions.lighting == "global"
+    p.write_text('[conditions]\nlighting = "bright"\n', encoding="utf-8")
+    with pytest.raises(UsageError, match="lighting"):
+        load_config(p)
+    p.write_text('[cameras.gate]\ntext_boxes = [[5, 0, 1, 10]]\n', encoding="utf-8")
+    with pytest.raises(UsageError, match="text_boxes"):
+        load_config(p)
+
+
+# --- generated streams ------------------------------------------------------------------
+
+ALPHA = 0.05
+
+
+def _learn_and_scan(tmp_path, nuisance, seed):
+    root = tmp_path / "scenario"
+    generate(root, seed=seed, normal_per_camera=120, new_per_camera=80,
+             incident_fraction=0.3, size=(256, 144), nuisance=nuisance)
+    cfg_path = tmp_path / "inspector.toml"
+    cfg_path.write_text(f"[frames]\nlong_side = 128\n[calibration]\nalpha = {ALPHA}\n",
+                        encoding="utf-8")
+    config = load_config(cfg_path)
+    store = Store(tmp_path / "store")
+    files, _ = discover(root / "normal")
+    report = learn_camera([f for f in files if f.camera == "dock"], config.camera("dock"), store)
+    out = tmp_path / "out"
+    new, _ = discover(root / "new")
+    with ResultWriter(out, out / "all.csv") as writer:
+        scan_files([f for f in new if f.camera == "dock"], Baselines(store, config), writer)
+    truth = {r["frame"]: r["incident"] for r in csv.DictReader(open(root / "truth.csv"))}
+    faults = {}
+    if (root / HEALTH_TRUTH).exists():
+        faults = {r["frame"]: r["condition"] for r in csv.DictReader(open(root / HEALTH_TRUTH))
+                  if r["camera"] == "dock"}
+    return report, out, truth, faults
+
+
+def _check_budget_and_detection(out, truth, faults):
+    rows = [r for r in csv.DictReader(open(out / "all.csv")) if r["frame"] not in faults]
+    flagged = {r["frame"] for r in csv.DictReader(open(out / "flagged.csv"))}
+    normal = [r for r in rows if truth[r["frame"]] == "none"]
+    k = sum(r["frame"] in flagged for r in normal)
+    # false alarms on normal frames within a binomial 99.9 % bound of the budget
+    # (scipy.stats.binom)
+    assert k <= binom.ppf(0.999, len(normal), ALPHA)
+    y = [truth[r["frame"]] != "none" for r in rows]
+    s = [float(r["score"]) for r in rows]
+    assert roc_auc_score(y, s) >= 0.95  # sklearn.metrics.roc_auc_score
+    return flagged
+
+
+def test_exposure_steps_and_camera_faults(tmp_path):
+    report, out, truth, faults = _learn_and_scan(
+        tmp_path, {"exposure_step": 0.15, "covered": 0.1, "defocus": 0.1, "frozen": 0.1}, 3)
+    assert report.text_boxes  # the demo's burned-in clock
+    flagged = _check_budget_and_detection(out, truth, faults)
+    with open(out / "health.csv") as fh:
+        assert tuple(next(csv.reader(fh))) == HEALTH_COLUMNS
+    reported = {(r["frame"], r["condition"]) for r in csv.DictReader(open(out / "health.csv"))}
+    assert faults
+    found = sum((f, c) in reported for f, c in faults.items())
+    assert found >= 0.8 * len(faults)
+    assert not any(f in flagged for f, c in faults.items() if (f, c) in reported)
+
+
+def test_camera_moved_is_health_not_anomalies(tmp_path):
+    _, out, truth, faults = _learn_and_scan(tmp_path, {"moved_px": 12, "jitter_px": 1.0}, 4)
+    _check_budget_and_detection(out, truth, faults)
+    reported = {r["frame"] for r in csv.DictReader(open(out / "health.csv"))
+                if r["condition"] == "camera moved"}
+    assert reported <= set(faults) and len(reported) >= 0.8 * len(faults)
+    flagged = {r["frame"] for r in csv.DictReader(open(out / "flagged.csv"))}
+    assert not flagged & reported
