@@ -456,11 +456,13 @@ class Conditions:
         rows: list[list[tuple[str, float, float]]] = []
         for i in range(len(m["dark"])):
             found = []
-            moved = self.register and m["shift"][i] > self.max_shift
+            covered = m["covered"][i] > lim.get("covered", 0.6)
+            # a covered lens leaves nothing to correlate: its "shift" means nothing
+            moved = self.register and m["shift"][i] > self.max_shift and not covered
             if moved:
                 found.append(("camera moved", m["shift"][i], self.max_shift))
             dark = m["dark"][i] < lim.get("dark", 20.0)
-            if m["covered"][i] > lim.get("covered", 0.6) and not moved:
+            if covered:
                 found.append(("lens covered", m["covered"][i], lim.get("covered", 0.6)))
             elif m["focus"][i] < lim.get("focus", 0.35) and not moved and not dark:
                 found.append(("out of focus", m["focus"][i], lim.get("focus", 0.35)))
