@@ -2,8 +2,8 @@
 
 For each nuisance the demo generator can add, a scenario is rendered, a baseline learnt on
 its normal frames and its frames to scan scored, once with the handling off (no
-registration, no photometric normalisation, no text mask, no health checks) and once per
-lighting mode. Printed per row: the false-alarm rate on normal frames to scan (incident-
+registration, no photometric normalisation, no text mask, no health checks, one regime),
+once per lighting mode, and once with "global" but without regimes. Printed per row: the false-alarm rate on normal frames to scan (incident-
 and fault-free) with its 95 % binomial interval (Clopper-Pearson, scipy.stats.beta), the
 rate asked for, the AUROC of incident frames against those normal frames
 (sklearn.metrics.roc_auc_score), and how many of the frames with a camera fault were
@@ -40,11 +40,14 @@ CASES = {
     "jitter 1.5 px": {"jitter_px": 1.5},
     "camera moved 12 px": {"moved_px": 12},
     "covered/defocus/frozen": {"covered": 0.1, "defocus": 0.1, "frozen": 0.1},
+    "IR greyscale at night": {"ir_night": 1},
 }
 HANDLING = {
-    "off": 'lighting = "off"\nregister = false\nauto_text_mask = false\nhealth = false\n',
+    "off": ('lighting = "off"\nregister = false\nauto_text_mask = false\nhealth = false\n'
+            'regimes = false\n'),
     "global": 'lighting = "global"\n',
-    "local": 'lighting = "local"\n',
+    "local (default)": 'lighting = "local"\n',
+    "local + regimes": 'lighting = "local"\nregimes = true\n',
 }
 
 

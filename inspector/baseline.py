@@ -9,6 +9,7 @@ import numpy as np
 
 from inspector.calibration import Threshold, conformal_p_values
 from inspector.conditions import Conditions, grey
+from inspector.regimes import Regimes
 from inspector.models.base import DensityModel
 from inspector.scoring import anomaly_maps, frame_scores
 
@@ -30,6 +31,10 @@ class Scores:
         camera is reported as such, not as an anomaly).
     health : list (one per frame) of lists of (condition, measure, limit)
         Camera health conditions of each frame (empty lists when all is well).
+    thresholds : ndarray, shape (n,), or None
+        Threshold each frame was held to (its regime's; see :mod:`inspector.regimes`).
+    regimes : ndarray, shape (n,), int, or None
+        Regime of each frame (None when the baseline has one).
     """
 
     maps: np.ndarray
@@ -37,6 +42,8 @@ class Scores:
     p_values: np.ndarray
     flagged: np.ndarray
     health: list = field(default_factory=list)
+    thresholds: np.ndarray | None = None
+    regimes: np.ndarray | None = None
 
 
 @dataclass
@@ -76,6 +83,9 @@ class Baseline:
     #: Registration, photometric normalisation and health limits; None for baselines
     #: learnt without them (frames are then scored as they are).
     conditions: Conditions | None = None
+    #: Appearance regimes (day/night, colour/IR) with their own standardisation and
+    #: calibration; None when the camera has one (``center``, ``scale``, ``threshold``).
+    regimes: Regimes | None = None
     #: Grey of the last frame scored with ``sequence=True`` (for "frozen feed").
     _previous: np.ndarray | None = field(default=None, init=False, repr=False, compare=False)
 
@@ -117,9 +127,26 @@ class Baseline:
                 health = self.conditions.conditions(m)
             if sequence and len(images):
                 self._previous = grey(images[-1:])[0]
-        maps = anomaly_maps(self.model.score_maps(prepared), self.center, self.scale)
-        scores = frame_scores(maps)
+        raw = self.model.score_maps(prepared)
         healthy = np.array([not h for h in health], bool)
-        return Scores(maps=maps, scores=scores,
-                      p_values=conformal_p_values(self.calibration_scores, scores),
-                      flagged=(scores > self.threshold.value) & healthy, health=health)
+        if self.regimes is None or not len(images):
+            maps = anomaly_maps(raw, self.center, self.scale)
+            scores = frame_scores(maps)
+            return Scores(maps=maps, scores=scores,
+                          p_values=conformal_p_values(self.calibration_scores, scores),
+                          flagged=(scores > self.threshold.value) & healthy, health=health,
+                          thresholds=np.full(len(scores), self.threshold.value))
+        labels = self.regimes.assign(images)
+        maps = np.empty(raw.shape, np.float32)
+        scores = np.empty(len(raw))
+        p_values = np.empty(len(raw))
+        thresholds = np.empty(len(raw))
+        for r in np.unique(labels):
+            idx = np.flatnonzero(labels == r)
+            maps[idx] = anomaly_maps(raw[idx], self.regimes.centers[r], self.regimes.scales[r])
+            scores[idx] = frame_scores(maps[idx])
+            p_values[idx] = conformal_p_values(self.regimes.calibration_scores[r], scores[idx])
+            thresholds[idx] = self.regimes.thresholds[r].value
+        return Scores(maps=maps, scores=scores, p_values=p_values,
+                      flagged=(scores > thresholds) & healthy, health=health,
+                      thresholds=thresholds, regimes=labels)

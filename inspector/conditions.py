@@ -297,6 +297,8 @@ class Conditions:
     ----------
     reference : ndarray, shape (H, W), float32
         Median grey of the (aligned, normalised) sample of normal frames.
+    reference_rgb : ndarray, shape (H, W, 3), uint8
+        Their median colour (fills what a shift uncovers; bounds clipped pixels).
     ignore : ndarray, shape (H, W), bool, or None
         Pixels left out of the fits and the health measures (user mask and text overlays).
     ref_cells : ndarray, shape (g, g), float32
@@ -305,12 +307,13 @@ class Conditions:
         Median sharpness of the normal frames.
     """
 
-    lighting: str = "global"
+    lighting: str = "local"
     register: bool = True
     max_shift: float = 8.0
     health: bool = True
     limits: dict[str, float] = field(default_factory=dict)
     reference: np.ndarray | None = None
+    reference_rgb: np.ndarray | None = None
     ignore: np.ndarray | None = None
     ref_cells: np.ndarray | None = None
     ref_sharpness: float = 1.0
@@ -335,15 +338,17 @@ class Conditions:
         ignore : ndarray, shape (H, W), bool, optional
         """
         self.ignore = ignore
-        g = grey(images)
-        ref = np.median(g, axis=0)
+        ref = np.median(grey(images), axis=0)
+        ref_rgb = None
         for _ in range(2):  # align and normalise the sample to a first reference, then redo
-            prepared = grey(self.prepare(images, reference=ref)[0])
-            ref = np.median(prepared, axis=0)
+            rgb = self.prepare(images, reference=ref, reference_rgb=ref_rgb)[0]
+            ref = np.median(grey(rgb), axis=0)
+            ref_rgb = np.median(rgb, axis=0).astype(np.uint8)
         self.reference = ref.astype(np.float32)
+        self.reference_rgb = ref_rgb
         prepared = grey(self.prepare(images)[0])
         self.ref_cells = np.median(np.stack([cell_contrast(x) for x in prepared]), axis=0)
-        sharp = np.array([sharpness(x) for x in prepared])
+        sharp = np.array([sharpness(x) for x in grey(images)])  # blind to gain already
         self.ref_sharpness = float(np.median(sharp))
         self.set_limits(self.measures(images, prepared), defaults)
         return self
@@ -363,13 +368,24 @@ class Conditions:
         }
 
     # -- per frame -----------------------------------------------------------------------
-    def prepare(self, images: np.ndarray, reference: np.ndarray | None = None
-                ) -> tuple[np.ndarray, np.ndarray]:
+    def prepare(self, images: np.ndarray, reference: np.ndarray | None = None,
+                reference_rgb: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """Align and normalise frames to the reference.
+
+        A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
+        the places where burned-in text (which does not move with the camera) would land are
+        filled from the colour reference. After the gain and offset, a pixel that was
+        clipped white in the frame (>= 250) only bounds the true value from below, so it is
+        raised to the reference value when that lies above (a lamp clipped at every
+        exposure stays white instead of turning grey at a lower gain). Black clipping is
+        left alone: at night most dark pixels are near 0 and the reference says nothing
+        about them.
 
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
+        reference, reference_rgb : ndarray, optional
+            Used instead of the learnt ones (while learning them).
 
         Returns
         -------
@@ -377,7 +393,10 @@ class Conditions:
         shifts : ndarray, shape (n, 2), float
             Measured (dx, dy) of each frame; frames beyond ``max_shift`` are not moved.
         """
-        ref = self.reference if reference is None else reference
+        if reference is None:
+            ref, ref_rgb = self.reference, self.reference_rgb
+        else:
+            ref, ref_rgb = reference, reference_rgb
         images = np.asarray(images)
         shifts = np.zeros((len(images), 2))
         if ref is None or (not self.register and self.lighting == "off"):
@@ -385,21 +404,37 @@ class Conditions:
         keep = None if self.ignore is None else ~self.ignore
         out = np.empty_like(images)
         sigma = max(images.shape[1:3]) / 8.0
+        ones = np.ones(images.shape[1:3], np.float32)
+        ignore = (np.zeros(images.shape[1:3], np.float32) if self.ignore is None
+                  else self.ignore.astype(np.float32))
         for i, img in enumerate(images):
             g = grey(img[None])[0]
+            fill = None
             if self.register:
                 dx, dy = phase_shift(g, ref, self.ignore)
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
                     img = shift_images(img, -dx, -dy)
                     g = shift_images(g, -dx, -dy)
+                    m = np.float32([[1, 0, -dx], [0, 1, -dy]])
+                    h, w = g.shape
+                    covered = cv2.warpAffine(ones, m, (w, h), flags=cv2.INTER_LINEAR,
+                                             borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+                    ghost = cv2.warpAffine(ignore, m, (w, h), flags=cv2.INTER_LINEAR,
+                                           borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+                    fill = (covered < 0.999) | (ghost > 0.001)
             if self.lighting == "off":
-                out[i] = img
-                continue
-            gain, offset = robust_gain_offset(g, ref, keep)
-            f = img.astype(np.float32) * gain + offset
-            if self.lighting == "local":
-                f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
+                f = img.astype(np.float32)
+            else:
+                gain, offset = robust_gain_offset(g, ref, keep)
+                f = img.astype(np.float32) * gain + offset
+                if self.lighting == "local":
+                    f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
+                if ref_rgb is not None:
+                    r = ref_rgb.astype(np.float32)
+                    f = np.where(img >= 250, np.maximum(f, r), f)
+            if fill is not None and ref_rgb is not None:
+                f[fill] = ref_rgb[fill]
             out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)
         return out, shifts
 
@@ -437,7 +472,7 @@ class Conditions:
                 cells = cell_contrast(prepared[i])
                 flat = cells < 0.2 * self.ref_cells
                 out["covered"][i] = float(flat[textured].mean())
-            out["focus"][i] = sharpness(prepared[i]) / max(self.ref_sharpness, 1e-6)
+            out["focus"][i] = sharpness(g[i]) / max(self.ref_sharpness, 1e-6)
             before = previous if i == 0 else g[i - 1]
             out["frozen"][i] = (float(np.abs(g[i] - before)[keep].mean())
                                 if before is not None else np.inf)
@@ -483,7 +518,7 @@ class Conditions:
 
     def arrays(self) -> dict[str, np.ndarray]:
         out = {}
-        for k in ("reference", "ignore", "ref_cells"):
+        for k in ("reference", "reference_rgb", "ignore", "ref_cells"):
             v = getattr(self, k)
             if v is not None:
                 out[k] = v
@@ -496,6 +531,7 @@ class Conditions:
                 limits={k: float(v) for k, v in meta["limits"].items()},
                 ref_sharpness=float(meta["ref_sharpness"]))
         c.reference = arrays.get("reference")
+        c.reference_rgb = arrays.get("reference_rgb")
         c.ignore = arrays.get("ignore")
         c.ref_cells = arrays.get("ref_cells")
         return c

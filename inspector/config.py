@@ -80,9 +80,9 @@ class ConditionSettings:
     """How camera conditions are handled (see :mod:`inspector.conditions`)."""
 
     #: Photometric normalisation against the baseline: "global" (a robust gain and offset
-    #: per frame), "local" (also a smooth brightness field, for lights on one side only)
-    #: or "off".
-    lighting: str = "global"
+    #: per frame), "local" (that, then a smooth brightness field, for lights that change
+    #: one part of the scene more than another) or "off".
+    lighting: str = "local"
     #: Align each frame to the baseline's reference (phase correlation) before scoring.
     register: bool = True
     #: Largest shift corrected, as a fraction of the frame's long side; beyond it the frame
@@ -92,6 +92,13 @@ class ConditionSettings:
     auto_text_mask: bool = True
     #: Text boxes to mask as well, [x0, y0, x1, y1] in pixels of the exported frame.
     text_boxes: tuple = ()
+    #: Split the normal frames into appearance regimes (day/night, lights on/off, colour
+    #: and infrared greyscale) when they clearly fall apart, each with its own per-cell
+    #: standardisation and calibration (the density model stays shared). Off by default:
+    #: smaller calibration sets per regime cost more than they gave in our measurements.
+    regimes: bool = False
+    #: Most regimes a camera may have.
+    max_regimes: int = 3
     #: Report camera health (lens covered, out of focus, frozen, too dark, overexposed,
     #: moved) in health.csv; frames with a condition are not flagged as anomalies.
     health: bool = True
@@ -229,6 +236,7 @@ _RANGES: dict[str, tuple[float, float]] = {
     "alpha": (1e-9, 0.5),
     "folds": (2, 50),
     "max_shift": (0.0, 0.5),
+    "max_regimes": (1, 8),
     "alarms_per_day": (0.0, 1e6),
     "dark_level": (0.0, 255.0),
     "overexposed_share": (0.0, 1.0),

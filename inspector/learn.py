@@ -33,6 +33,7 @@ from inspector.errors import FrameError, UsageError
 from inspector.features import rasterize_mask
 from inspector.frames import FrameFile, Skip, capture_time, iter_frames, working_size
 from inspector.models import model_class
+from inspector.regimes import Regimes, appearance, find_regimes
 from inspector.scoring import anomaly_maps, frame_scores, location_stats
 from inspector.store import Store
 
@@ -40,6 +41,8 @@ from inspector.store import Store
 MIN_FRAMES = 10
 #: Normal frames (spread evenly in time) that set the reference, health limits and text mask.
 CONDITION_SAMPLE = 48
+#: Fewest normal frames a regime (see :mod:`inspector.regimes`) may be calibrated on.
+MIN_REGIME_FRAMES = 30
 #: Long side at which burned-in text is looked for (small text vanishes at working size).
 TEXT_LONG_SIDE = 640
 
@@ -117,6 +120,8 @@ class PreparedSource:
         self.size = source.size
         #: Health measures of every frame prepared, by position (for the health limits).
         self.measures: dict[int, dict[str, float]] = {}
+        #: Global appearance of every frame, by position (for the regimes).
+        self.appearance: dict[int, np.ndarray] = {}
 
     def __len__(self) -> int:
         return len(self.source)
@@ -130,6 +135,9 @@ class PreparedSource:
                 m = self.conditions.measures(images, grey(prepared), shifts=shifts)
                 for j, i in enumerate(idx):
                     self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
+            if not all(int(i) in self.appearance for i in idx):
+                for i, a in zip(idx, appearance(images)):
+                    self.appearance[int(i)] = a
             yield idx, prepared
 
 
@@ -205,8 +213,28 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
             raise UsageError(f"camera {camera}: alarms_per_day is set but {exc}") from None
         notes.append(f"{cs.alarms_per_day:g} false alarms a day at {per_day:.0f} frames a day "
                      f"(from capture times): false-alarm rate {alpha:.3g} per frame")
-    threshold = (tail_threshold if cs.tail_fit else conformal_threshold)(cal, alpha)
+    threshold_of = tail_threshold if cs.tail_fit else conformal_threshold
+    threshold = threshold_of(cal, alpha)
     warnings = [threshold.warning] if threshold.warning else []
+    regimes = None
+    if cs.regimes and cs.max_regimes > 1 and len(prepared.appearance) >= len(held.index):
+        feats = np.array([prepared.appearance[int(i)] for i in held.index])
+        centres, fscale, labels = find_regimes(feats, MIN_REGIME_FRAMES, cs.max_regimes)
+        if len(centres) > 1:
+            parts = [location_stats(held.maps[labels == r]) for r in range(len(centres))]
+            cals = [frame_scores(anomaly_maps(held.maps[labels == r], c, sc))
+                    for r, (c, sc) in enumerate(parts)]
+            regimes = Regimes(centres=centres, scale=fscale,
+                              centers=np.stack([p[0] for p in parts]),
+                              scales=np.stack([p[1] for p in parts]),
+                              calibration_scores=cals,
+                              thresholds=[threshold_of(c, alpha) for c in cals])
+            desc = ", ".join(
+                f"{len(c)} frames (brightness {np.expm1(ce[0] * fscale[0]):.0f}, "
+                f"saturation {ce[1] * fscale[1]:.2f})" for c, ce in zip(cals, centres))
+            notes.append(f"{len(centres)} regimes, each calibrated on its own: {desc}")
+            warnings += [f"regime {r + 1}: {t.warning}"
+                         for r, t in enumerate(regimes.thresholds) if t.warning]
     warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
     good = [t for i, t in enumerate(times) if i not in source.skipped]
     meta = {
@@ -236,7 +264,8 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     }
     baseline = Baseline(camera=camera, version="", model=model, center=center, scale=scale,
                         calibration_scores=cal, threshold=threshold, size=size,
-                        source_size=source_size, mask=mask, meta=meta, conditions=conditions)
+                        source_size=source_size, mask=mask, meta=meta, conditions=conditions,
+                        regimes=regimes)
     version = store.save(baseline, activate=activate)
     skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
     seconds = (datetime.now(timezone.utc) - started).total_seconds()

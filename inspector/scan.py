@@ -76,7 +76,9 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame]) -> list[FrameResul
         return []
     s = baseline.score(np.stack([f.image for f in frames]), sequence=True)
     return [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
-                        score=float(s.scores[i]), threshold=baseline.threshold.value,
+                        score=float(s.scores[i]),
+                        threshold=float(s.thresholds[i]) if s.thresholds is not None
+                        else baseline.threshold.value,
                         p_value=float(s.p_values[i]), model=baseline.version,
                         flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
                         health=s.health[i] if s.health else [])

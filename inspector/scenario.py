@@ -36,7 +36,7 @@ import os
 import shutil
 from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import date, datetime, timedelta
 from pathlib import Path
 
@@ -55,6 +55,8 @@ INCIDENTS = ("parcel", "spill", "lens", "haze")
 NUISANCES = {
     "jitter_px": "standard deviation, in pixels, of a random camera shift per frame",
     "gain": "largest relative change of a random global gain per frame (0.2 = +-20 %)",
+    "ir_night": "1 switches the cameras to infrared greyscale before 8:00 and after 18:00 "
+                "(an IR lamp: brighter, colourless), in normal frames and frames to scan",
     # The ones below change the frames to scan only: conditions the normal frames never showed.
     "exposure_step": "relative size of auto-exposure steps in the frames to scan: each "
                      "frame's gain is 1 +- this, plus an offset of +- 40 x this grey levels",
@@ -203,6 +205,8 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
                    for j in jobs if j.fault]
 
     jitter = float(extra.get("jitter_px", 0.0))
+    if extra.get("ir_night"):
+        jobs = [replace(j, ir=not 8.0 <= _hours(j.time) < 18.0) for j in jobs]
     workers = max(1, min(4, os.cpu_count() or 1))
     with ThreadPoolExecutor(max_workers=workers) as pool:
         for _ in pool.map(lambda j: _render(j, scenes[j.camera], bank, jitter), jobs):
@@ -927,6 +931,8 @@ class _Job:
     #: Exposure step (gain, offset in grey levels) and camera shift (dx, dy) in pixels.
     exposure: tuple[float, float] = (1.0, 0.0)
     moved: tuple[float, float] = (0.0, 0.0)
+    #: Infrared night mode: greyscale under an IR lamp.
+    ir: bool = False
 
 
 def _plan(camera, cam_index, split, count, seed, incident_fraction, extra, scene,
@@ -1034,6 +1040,10 @@ def _render(job: _Job, scene: _Scene, bank: list[np.ndarray], jitter_px: float) 
         blob = np.stack([W * (0.45 + 0.6 * np.cos(a)), H * (0.55 + 0.75 * np.sin(a))], 1)
         cover = _coverage(H, W, [blob], blur=0.05 * W)
         out = out * (1.0 - 0.92 * cover[..., None]).astype(np.float32)
+    if job.ir:
+        luma = out @ np.array([0.114, 0.587, 0.299], np.float32)   # BGR weights
+        ir = 0.12 + 0.33 * luma / max(float(luma.mean()), 1e-3)
+        out = np.repeat(ir[..., None], 3, axis=2).astype(np.float32)
     if job.exposure != (1.0, 0.0):
         out = out * np.float32(job.exposure[0]) + np.float32(job.exposure[1] / 255.0)
     if cond.band is not None:

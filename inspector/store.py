@@ -5,6 +5,7 @@ Layout::
     STORE/<camera>/<version>/baseline.json   metadata and settings
     STORE/<camera>/<version>/calibration.npz standardisation, calibration scores, mask
     STORE/<camera>/<version>/conditions.npz  reference frame and health statistics
+    STORE/<camera>/<version>/regimes.npz     per-regime standardisation and calibration
     STORE/<camera>/<version>/<model files>   e.g. ppca.npz or vae.pt
     STORE/<camera>/active.json               {"version": "v3"}
 
@@ -27,6 +28,7 @@ import numpy as np
 from inspector.baseline import Baseline
 from inspector.calibration import Threshold
 from inspector.conditions import Conditions
+from inspector.regimes import Regimes
 from inspector.errors import UsageError
 from inspector.models import model_class
 
@@ -128,10 +130,14 @@ class Store:
             with np.load(folder / "conditions.npz", allow_pickle=False) as z:
                 conditions = Conditions.from_saved(meta["conditions"],
                                                    {k: z[k] for k in z.files})
+        regimes = None
+        if meta.get("regimes") and (folder / "regimes.npz").is_file():
+            with np.load(folder / "regimes.npz", allow_pickle=False) as z:
+                regimes = Regimes.from_saved(meta["regimes"], {k: z[k] for k in z.files})
         return Baseline(camera=camera, version=version, model=model, center=center,
                         scale=scale, calibration_scores=cal, threshold=threshold,
                         size=tuple(meta["working_size"]), source_size=tuple(meta["source_size"]),
-                        mask=mask, meta=meta, conditions=conditions)
+                        mask=mask, meta=meta, conditions=conditions, regimes=regimes)
 
     def save(self, baseline: Baseline, activate: bool = True) -> str:
         """Write ``baseline`` as the camera's next version; returns the version id.
@@ -153,6 +159,9 @@ class Store:
             if baseline.conditions is not None:
                 np.savez_compressed(tmp / "conditions.npz", **baseline.conditions.arrays())
                 baseline.meta["conditions"] = baseline.conditions.to_json()
+            if baseline.regimes is not None:
+                np.savez_compressed(tmp / "regimes.npz", **baseline.regimes.arrays())
+                baseline.meta["regimes"] = baseline.regimes.to_json()
             while True:
                 existing = [int(_VERSION_RE.match(v).group(1)) for v in self.versions(camera)]
                 version = f"v{max(existing, default=0) + 1}"

@@ -15,6 +15,7 @@ from skimage import data as skdata
 from sklearn.metrics import roc_auc_score
 
 from inspector.calibration import alarms_to_alpha, gpd_fit, tail_threshold
+from inspector.regimes import appearance, find_regimes
 from inspector.conditions import (find_text_boxes, grey, phase_shift, robust_gain_offset,
                                   sharpness)
 from inspector.config import load_config
@@ -125,7 +126,7 @@ def test_conditions_config_per_camera(tmp_path):
     cfg = load_config(p)
     assert cfg.camera("gate").conditions.lighting == "local"
     assert cfg.camera("gate").conditions.alarms_per_day == 3.0
-    assert cfg.camera("other").conditions.lighting == "global"
+    assert cfg.camera("other").conditions.lighting == "local"
     p.write_text('[conditions]\nlighting = "bright"\n', encoding="utf-8")
     with pytest.raises(UsageError, match="lighting"):
         load_config(p)
@@ -139,26 +140,27 @@ def test_conditions_config_per_camera(tmp_path):
 ALPHA = 0.05
 
 
-def _learn_and_scan(tmp_path, nuisance, seed):
+def _learn_and_scan(tmp_path, nuisance, seed, conditions="", camera="dock"):
     root = tmp_path / "scenario"
     generate(root, seed=seed, normal_per_camera=120, new_per_camera=80,
              incident_fraction=0.3, size=(256, 144), nuisance=nuisance)
     cfg_path = tmp_path / "inspector.toml"
-    cfg_path.write_text(f"[frames]\nlong_side = 128\n[calibration]\nalpha = {ALPHA}\n",
-                        encoding="utf-8")
+    cfg_path.write_text(f"[frames]\nlong_side = 128\n[calibration]\nalpha = {ALPHA}\n"
+                        f"[conditions]\n{conditions}\n", encoding="utf-8")
     config = load_config(cfg_path)
     store = Store(tmp_path / "store")
     files, _ = discover(root / "normal")
-    report = learn_camera([f for f in files if f.camera == "dock"], config.camera("dock"), store)
+    report = learn_camera([f for f in files if f.camera == camera], config.camera(camera),
+                          store)
     out = tmp_path / "out"
     new, _ = discover(root / "new")
     with ResultWriter(out, out / "all.csv") as writer:
-        scan_files([f for f in new if f.camera == "dock"], Baselines(store, config), writer)
+        scan_files([f for f in new if f.camera == camera], Baselines(store, config), writer)
     truth = {r["frame"]: r["incident"] for r in csv.DictReader(open(root / "truth.csv"))}
     faults = {}
     if (root / HEALTH_TRUTH).exists():
         faults = {r["frame"]: r["condition"] for r in csv.DictReader(open(root / HEALTH_TRUTH))
-                  if r["camera"] == "dock"}
+                  if r["camera"] == camera}
     return report, out, truth, faults
 
 
@@ -180,9 +182,7 @@ def test_exposure_steps_and_camera_faults(tmp_path):
     report, out, truth, faults = _learn_and_scan(
         tmp_path, {"exposure_step": 0.15, "covered": 0.1, "defocus": 0.1, "frozen": 0.1}, 3)
     assert report.text_boxes  # the demo's burned-in clock
-    # exposure steps cost detection at this tiny size (AUROC about 0.89 at long side 128;
-    # see bench/conditions.py for the figures at 160): the budget must hold regardless
-    flagged = _check_budget_and_detection(out, truth, faults, min_auroc=0.85)
+    flagged = _check_budget_and_detection(out, truth, faults)
     with open(out / "health.csv") as fh:
         assert tuple(next(csv.reader(fh))) == HEALTH_COLUMNS
     reported = {(r["frame"], r["condition"]) for r in csv.DictReader(open(out / "health.csv"))}
@@ -205,3 +205,25 @@ def test_camera_moved_is_health_not_anomalies(tmp_path):
     assert reported <= set(faults) and len(reported) >= 0.8 * len(faults)
     flagged = {r["frame"] for r in csv.DictReader(open(out / "flagged.csv"))}
     assert not flagged & reported
+
+
+def test_regimes_split_colour_from_infrared_only():
+    rng = np.random.default_rng(0)
+    colour = skdata.astronaut()[::4, ::4]  # bundled scikit-image image
+    ir = np.repeat(colour.mean(axis=2, keepdims=True), 3, axis=2)
+    frames = [np.clip(img * rng.uniform(0.9, 1.1) + rng.normal(0, 2, img.shape), 0, 255)
+              .astype(np.uint8) for img in [colour] * 40 + [ir] * 40]
+    centres, _, labels = find_regimes(appearance(np.stack(frames)), min_frames=20)
+    assert len(centres) == 2                      # constructed: two clearly apart groups
+    assert len(set(labels[:40])) == 1 and len(set(labels[40:])) == 1
+    centres, _, labels = find_regimes(appearance(np.stack(frames[:40])), min_frames=10)
+    assert len(centres) == 1 and not labels.any()
+
+
+def test_infrared_nights_with_regimes(tmp_path):
+    report, out, truth, faults = _learn_and_scan(tmp_path, {"ir_night": 1}, 5,
+                                                 "regimes = true", camera="aisle")
+    assert any("regimes" in n for n in report.notes)
+    _check_budget_and_detection(out, truth, faults, min_auroc=0.9)
+    thresholds = {float(r["threshold"]) for r in csv.DictReader(open(out / "all.csv"))}
+    assert len(thresholds) >= 2                   # each regime has its own threshold
