@@ -34,9 +34,11 @@ LIGHTING_MODES = ("global", "local", "off")
 HEALTH_CONDITIONS = ("camera moved", "lens covered", "out of focus", "frozen feed",
                      "too dark", "overexposed")
 #: Health limits before they are widened by the normal frames (see :meth:`Conditions.fit`).
-DEFAULT_LIMITS = {"dark": 20.0, "bright": 0.5, "covered": 0.6, "focus": 0.35, "frozen": 0.25}
+DEFAULT_LIMITS = {"dark": 20.0, "bright": 0.5, "covered": 0.5, "focus": 0.35, "frozen": 0.25}
 #: Side of the grid of cells used by the "lens covered" measure.
 COVER_GRID = 8
+#: A textured cell whose correlation with the reference falls below this is lost from view.
+COVER_CORRELATION = 0.2
 
 
 # --- pure functions -------------------------------------------------------------------------
@@ -175,6 +177,30 @@ def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     for i in range(grid):
         for j in range(grid):
             out[i, j] = g[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].std()
+    return out
+
+
+def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
+    """Normalised cross-correlation of each cell of ``g`` with the same cell of ``ref``.
+
+    Blind to gain and offset cell by cell, so night and day frames of the same view both
+    correlate with the reference, while a cell behind a hand, a bag or tape does not.
+
+    Returns
+    -------
+    ndarray, shape (grid, grid), float32 in [-1, 1]
+    """
+    h, w = g.shape
+    ys = np.linspace(0, h, grid + 1).astype(int)
+    xs = np.linspace(0, w, grid + 1).astype(int)
+    out = np.zeros((grid, grid), np.float32)
+    for i in range(grid):
+        for j in range(grid):
+            a = g[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].astype(np.float64)
+            b = ref[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].astype(np.float64)
+            a, b = a - a.mean(), b - b.mean()
+            den = np.sqrt((a * a).sum() * (b * b).sum())
+            out[i, j] = (a * b).sum() / den if den > 0 else 0.0
     return out
 
 
@@ -325,7 +351,8 @@ class Conditions:
 
         Limits start from ``defaults`` (``dark``: 99th percentile of grey below which a
         frame is too dark; ``bright``: share of clipped pixels above which it is
-        overexposed; ``covered``: share of textured cells gone flat; ``focus``: sharpness
+        overexposed; ``covered``: share of the reference's textured cells that no longer correlate with
+        it (aligned by the measured shift); ``focus``: sharpness
         relative to normal below which it is out of focus; ``frozen``: mean absolute
         difference to the previous frame, in grey levels, below which the feed is frozen)
         and are widened so that no more than the sample's extremes would have tripped them
@@ -468,10 +495,10 @@ class Conditions:
             px = g[i][keep]
             out["dark"][i] = np.percentile(px, 99)
             out["bright"][i] = float(np.mean(px >= 250))
-            if textured is not None and textured.any():
-                cells = cell_contrast(prepared[i])
-                flat = cells < 0.2 * self.ref_cells
-                out["covered"][i] = float(flat[textured].mean())
+            if textured is not None and textured.any() and self.reference is not None:
+                aligned = g[i] if shifts is None else shift_images(g[i], *(-shifts[i]))
+                lost = cell_correlation(aligned, self.reference) < COVER_CORRELATION
+                out["covered"][i] = float(lost[textured].mean())
             out["focus"][i] = sharpness(g[i]) / max(self.ref_sharpness, 1e-6)
             before = previous if i == 0 else g[i - 1]
             out["frozen"][i] = (float(np.abs(g[i] - before)[keep].mean())
@@ -491,14 +518,14 @@ class Conditions:
         rows: list[list[tuple[str, float, float]]] = []
         for i in range(len(m["dark"])):
             found = []
-            covered = m["covered"][i] > lim.get("covered", 0.6)
+            covered = m["covered"][i] > lim.get("covered", 0.5)
             # a covered lens leaves nothing to correlate: its "shift" means nothing
             moved = self.register and m["shift"][i] > self.max_shift and not covered
             if moved:
                 found.append(("camera moved", m["shift"][i], self.max_shift))
             dark = m["dark"][i] < lim.get("dark", 20.0)
             if covered:
-                found.append(("lens covered", m["covered"][i], lim.get("covered", 0.6)))
+                found.append(("lens covered", m["covered"][i], lim.get("covered", 0.5)))
             elif m["focus"][i] < lim.get("focus", 0.35) and not moved and not dark:
                 found.append(("out of focus", m["focus"][i], lim.get("focus", 0.35)))
             if m["frozen"][i] < lim.get("frozen", 0.25):

@@ -110,12 +110,12 @@ class ConditionSettings:
     tail_fit: bool = True
     #: Health limits before they are widened by what the normal frames show: 99th
     #: percentile of grey below which a frame is too dark; share of clipped pixels above
-    #: which it is overexposed; share of textured cells gone flat above which the lens is
+    #: which it is overexposed; share of textured cells lost from view above which the lens is
     #: covered; sharpness relative to normal below which it is out of focus; mean absolute
     #: difference to the previous frame (grey levels) below which the feed is frozen.
     dark_level: float = 20.0
     overexposed_share: float = 0.5
-    covered_share: float = 0.6
+    covered_share: float = 0.5
     focus_ratio: float = 0.35
     frozen_difference: float = 0.25
 

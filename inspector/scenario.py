@@ -1039,7 +1039,10 @@ def _render(job: _Job, scene: _Scene, bank: list[np.ndarray], jitter_px: float) 
         a = np.linspace(0.0, 2 * np.pi, 48, endpoint=False)
         blob = np.stack([W * (0.45 + 0.6 * np.cos(a)), H * (0.55 + 0.75 * np.sin(a))], 1)
         cover = _coverage(H, W, [blob], blur=0.05 * W)
-        out = out * (1.0 - 0.92 * cover[..., None]).astype(np.float32)
+        shade = 0.06 + 0.03 * _smooth_noise(rng, (H, W), 0.3 * W)          # skin or cloth
+        hand = (shade[..., None] * np.array([0.8, 0.9, 1.1], np.float32)).astype(np.float32)
+        c = cover[..., None].astype(np.float32)
+        out = out * (1.0 - c) + hand * c
     if job.ir:
         luma = out @ np.array([0.114, 0.587, 0.299], np.float32)   # BGR weights
         ir = 0.12 + 0.33 * luma / max(float(luma.mean()), 1e-3)

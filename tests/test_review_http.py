@@ -81,7 +81,8 @@ def test_pictures_and_expected_image(client, run):
     b = run.store.load(rows[0][1], rows[0][6])
     image = read_frame(FrameFile(run.source / rows[0][0], rows[0][0], rows[0][1]),
                        **read_args(b, run.config)).image
-    assert np.array_equal(got, b.model.expected(image[None])[0])  # PNG is lossless
+    # the model sees frames aligned and normalised to its reference (Baseline.prepare)
+    assert np.array_equal(got, b.model.expected(b.prepare(image[None]))[0])  # PNG is lossless
     # An unflagged frame from the timeline: overlay computed on demand.
     html = client.get("/").get_data(as_text=True)
     point = html.split('data-item="p', 1)[1].split('"', 1)[0]

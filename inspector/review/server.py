@@ -73,7 +73,7 @@ class Pictures:
     def expected(self, item: Item) -> bytes:
         b, image = self.decode(item)
         with self._lock:  # one model evaluation at a time on a 2-core machine
-            out = b.model.expected(image[None])[0]
+            out = b.model.expected(b.prepare(image[None]))[0]  # as the model saw it
         return _encode(out, ".png")
 
     def overlay(self, item: Item) -> bytes:
@@ -83,9 +83,10 @@ class Pictures:
         b, image = self.decode(item)
         with self._lock:
             s = b.score(image[None])
+        threshold = float(s.thresholds[0]) if s.thresholds is not None else b.threshold.value
         caption = (f"{item.camera}  {iso_time(item.time)}  score {float(s.scores[0]):.2f}  "
-                   f"threshold {b.threshold.value:.2f}")
-        ok, buf = cv2.imencode(".jpg", render_overlay(image, s.maps[0], b.threshold.value,
+                   f"threshold {threshold:.2f}")
+        ok, buf = cv2.imencode(".jpg", render_overlay(image, s.maps[0], threshold,
                                                       caption), [cv2.IMWRITE_JPEG_QUALITY, 90])
         return buf.tobytes()
 
