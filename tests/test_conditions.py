@@ -228,3 +228,23 @@ def test_infrared_nights_with_regimes(tmp_path):
     _check_budget_and_detection(out, truth, faults, min_auroc=0.9)
     thresholds = {float(r["threshold"]) for r in csv.DictReader(open(out / "all.csv"))}
     assert len(thresholds) >= 2                   # each regime has its own threshold
+
+
+def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
+    root = tmp_path / "scenario"
+    generate(root, seed=6, normal_per_camera=40, new_per_camera=0, size=(192, 108))
+    cfg_path = tmp_path / "inspector.toml"
+    cfg_path.write_text("[frames]\nlong_side = 96\n[conditions]\nalarms_per_day = 1\n",
+                        encoding="utf-8")
+    config = load_config(cfg_path)
+    store = Store(tmp_path / "store")
+    files, _ = discover(root / "normal")
+    report = learn_camera([f for f in files if f.camera == "aisle"], config.camera("aisle"),
+                          store)
+    meta = store.metadata("aisle", report.version)
+    per_day = float(report.notes[0].split(" at ")[1].split()[0])
+    # alpha = alarms per day / frames per day (arithmetic)
+    assert meta["threshold"]["alpha"] == pytest.approx(1.0 / per_day, rel=0.01)
+    assert meta["threshold"]["method"] == "tail"
+    assert any("more normal frames would make it exact" in w for w in report.warnings)
+    assert store.load("aisle").threshold.method == "tail"
