@@ -36,6 +36,7 @@ from inspector.store import Store  # noqa: E402
 
 CASES = {
     "none": {},
+    "exposure steps 15%": {"exposure_step": 0.15},
     "exposure steps 30%": {"exposure_step": 0.3},
     "jitter 1.5 px": {"jitter_px": 1.5},
     "camera moved 12 px": {"moved_px": 12},
