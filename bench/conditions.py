@@ -39,7 +39,7 @@ CASES = {
     "exposure steps 15%": {"exposure_step": 0.15},
     "exposure steps 30%": {"exposure_step": 0.3},
     "jitter 1.5 px": {"jitter_px": 1.5},
-    "camera moved 12 px": {"moved_px": 12},
+    "camera moved 24 px": {"moved_px": 24},
     "covered/defocus/frozen": {"covered": 0.1, "defocus": 0.1, "frozen": 0.1},
     "IR greyscale at night": {"ir_night": 1},
 }
