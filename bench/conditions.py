@@ -22,7 +22,6 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-import numpy as np  # noqa: E402
 from scipy.stats import beta  # noqa: E402
 from sklearn.metrics import roc_auc_score  # noqa: E402
 
@@ -100,8 +99,8 @@ def main() -> None:
     args = ap.parse_args()
     print(f"{args.normal} normal frames and {args.new} to scan per camera (dock, aisle), "
           f"320x180, long side {args.long_side}, alpha {args.alpha}")
-    print(f"| nuisance | handling | false alarms on normal | 95 % interval | AUROC | "
-          f"faults reported | faults flagged as anomalies |")
+    print("| nuisance | handling | false alarms on normal | 95 % interval | AUROC | "
+          "faults reported | faults flagged as anomalies |")
     print("|---|---|---|---|---|---|---|")
     for name in args.cases:
         nuisance = CASES[name]

@@ -122,8 +122,8 @@ class Baseline:
         else:
             prepared, shifts = self.conditions.prepare(images)
             if self.conditions.health:
-                m = self.conditions.measures(images, grey(prepared),
-                                             self._previous if sequence else None, shifts)
+                m = self.conditions.measures(images, self._previous if sequence else None,
+                                             shifts)
                 health = self.conditions.conditions(m)
             if sequence and len(images):
                 self._previous = grey(images[-1:])[0]

@@ -328,7 +328,7 @@ class Conditions:
     ignore : ndarray, shape (H, W), bool, or None
         Pixels left out of the fits and the health measures (user mask and text overlays).
     ref_cells : ndarray, shape (g, g), float32
-        Median cell contrast of the normal frames.
+        Median cell contrast of the normal frames (which cells have texture to lose).
     ref_sharpness : float
         Median sharpness of the normal frames.
     """
@@ -351,9 +351,9 @@ class Conditions:
 
         Limits start from ``defaults`` (``dark``: 99th percentile of grey below which a
         frame is too dark; ``bright``: share of clipped pixels above which it is
-        overexposed; ``covered``: share of the reference's textured cells that no longer correlate with
-        it (aligned by the measured shift); ``focus``: sharpness
-        relative to normal below which it is out of focus; ``frozen``: mean absolute
+        overexposed; ``covered``: share of the reference's textured cells that no longer
+        correlate with it; ``focus``: sharpness relative to normal below which it is out of
+        focus; ``frozen``: mean absolute
         difference to the previous frame, in grey levels, below which the feed is frozen)
         and are widened so that no more than the sample's extremes would have tripped them
         (with a margin), so a camera that is normally dim or soft is not reported all day.
@@ -373,11 +373,11 @@ class Conditions:
             ref_rgb = np.median(rgb, axis=0).astype(np.uint8)
         self.reference = ref.astype(np.float32)
         self.reference_rgb = ref_rgb
-        prepared = grey(self.prepare(images)[0])
-        self.ref_cells = np.median(np.stack([cell_contrast(x) for x in prepared]), axis=0)
+        rgb, shifts = self.prepare(images)
+        self.ref_cells = np.median(np.stack([cell_contrast(x) for x in grey(rgb)]), axis=0)
         sharp = np.array([sharpness(x) for x in grey(images)])  # blind to gain already
         self.ref_sharpness = float(np.median(sharp))
-        self.set_limits(self.measures(images, prepared), defaults)
+        self.set_limits(self.measures(images, shifts=shifts), defaults)
         return self
 
     def set_limits(self, m: dict[str, np.ndarray], defaults: dict[str, float] | None = None
@@ -465,20 +465,19 @@ class Conditions:
             out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)
         return out, shifts
 
-    def measures(self, images: np.ndarray, prepared: np.ndarray,
-                 previous: np.ndarray | None = None, shifts: np.ndarray | None = None
-                 ) -> dict[str, np.ndarray]:
+    def measures(self, images: np.ndarray, previous: np.ndarray | None = None,
+                 shifts: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Health measures of each frame (see :meth:`fit` for their meaning).
 
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
             Frames as captured.
-        prepared : ndarray, shape (n, H, W), float
-            Their grey after :meth:`prepare`.
         previous : ndarray, shape (H, W), float, optional
             Grey of the frame before the first one (for "frozen feed").
         shifts : ndarray, shape (n, 2), optional
+            Shifts measured by :meth:`prepare` ("camera moved"; the "lens covered" measure
+            compares the frame aligned by them).
 
         Returns
         -------

@@ -132,7 +132,7 @@ class PreparedSource:
             prepared, shifts = self.conditions.prepare(images)
             if self.conditions.reference is not None and not all(
                     int(i) in self.measures for i in idx):
-                m = self.conditions.measures(images, grey(prepared), shifts=shifts)
+                m = self.conditions.measures(images, shifts=shifts)
                 for j, i in enumerate(idx):
                     self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
             if not all(int(i) in self.appearance for i in idx):

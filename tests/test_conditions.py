@@ -15,13 +15,12 @@ from skimage import data as skdata
 from sklearn.metrics import roc_auc_score
 
 from inspector.calibration import alarms_to_alpha, gpd_fit, tail_threshold
-from inspector.regimes import appearance, find_regimes
-from inspector.conditions import (find_text_boxes, grey, phase_shift, robust_gain_offset,
-                                  sharpness)
+from inspector.conditions import find_text_boxes, phase_shift, robust_gain_offset, sharpness
 from inspector.config import load_config
 from inspector.errors import UsageError
 from inspector.frames import discover
 from inspector.learn import learn_camera
+from inspector.regimes import appearance, find_regimes
 from inspector.results import HEALTH_COLUMNS, ResultWriter
 from inspector.scan import Baselines, scan_files
 from inspector.scenario import HEALTH_TRUTH, generate
