@@ -48,6 +48,7 @@ HANDLING = {
     "global": 'lighting = "global"\n',
     "local (default)": 'lighting = "local"\n',
     "local + regimes": 'lighting = "local"\nregimes = true\n',
+    "local, exposure_range 0": 'lighting = "local"\nexposure_range = 0.0\n',
 }
 
 
@@ -96,6 +97,8 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=11)
     ap.add_argument("--cases", nargs="*", default=list(CASES), choices=list(CASES),
                     help="nuisances to run (all by default)")
+    ap.add_argument("--handling", nargs="*", default=list(HANDLING), choices=list(HANDLING),
+                    help="handlings to compare (all by default)")
     args = ap.parse_args()
     print(f"{args.normal} normal frames and {args.new} to scan per camera (dock, aisle), "
           f"320x180, long side {args.long_side}, alpha {args.alpha}")
@@ -109,7 +112,7 @@ def main() -> None:
             generate(root, seed=args.seed, normal_per_camera=args.normal,
                      new_per_camera=args.new, incident_fraction=0.3, size=(320, 180),
                      nuisance=nuisance)
-            for handling in HANDLING:
+            for handling in args.handling:
                 work = Path(tmp) / handling
                 work.mkdir()
                 k, n, auc, found, faults, ff = run(root, work, handling, args.long_side,

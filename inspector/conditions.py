@@ -35,6 +35,8 @@ HEALTH_CONDITIONS = ("camera moved", "lens covered", "out of focus", "frozen fee
                      "too dark", "overexposed")
 #: Health limits before they are widened by the normal frames (see :meth:`Conditions.fit`).
 DEFAULT_LIMITS = {"dark": 20.0, "bright": 0.5, "covered": 0.5, "focus": 0.35, "frozen": 0.25}
+#: Neighbourhood of a clipped pixel whose brightness is not trusted (see ``prepare``).
+_NEAR = np.ones((3, 3), np.uint8)
 #: Side of the grid of cells used by the "lens covered" measure.
 COVER_GRID = 8
 #: A textured cell whose correlation with the reference falls below this is lost from view.
@@ -202,6 +204,41 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> 
             den = np.sqrt((a * a).sum() * (b * b).sum())
             out[i, j] = (a * b).sum() / den if den > 0 else 0.0
     return out
+
+
+def noise_sigma(g: np.ndarray) -> float:
+    """Standard deviation of white noise in an image.
+
+    The image is filtered with the difference of two Laplacians of Immerkaer (1996, "Fast
+    noise variance estimation", Computer Vision and Image Understanding 64(2)), which
+    cancels smooth content and leaves 6 sigma of white noise; the robust spread
+    1.4826 x median |response| is used instead of the mean absolute response, so edges
+    (a small share of the pixels) do not inflate the estimate.
+    """
+    kernel = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], np.float32)
+    r = cv2.filter2D(np.asarray(g, np.float32), -1, kernel)[1:-1, 1:-1]
+    return float(1.4826 * np.median(np.abs(r)) / 6.0)
+
+
+def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator) -> np.ndarray:
+    """The frame as a shorter exposure would have caught it: the signal times ``gain``
+    (<= 1) with the sensor noise unchanged, i.e. ``gain * image`` plus fresh noise of
+    variance ``sigma^2 (1 - gain^2)`` (sigma from :func:`noise_sigma`). Normalised back to
+    the reference, such a frame is noisier than the original, as real darker frames are.
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+    gain : float in (0, 1]
+
+    Returns
+    -------
+    ndarray, shape (H, W, 3), uint8
+    """
+    sigma = noise_sigma(grey(image[None])[0])
+    extra = sigma * np.sqrt(max(0.0, 1.0 - gain * gain))
+    out = image.astype(np.float32) * gain + rng.normal(0.0, extra, image.shape)
+    return np.clip(out + 0.5, 0, 255).astype(np.uint8)
 
 
 def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
@@ -401,12 +438,12 @@ class Conditions:
 
         A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
         the places where burned-in text (which does not move with the camera) would land are
-        filled from the colour reference. After the gain and offset, a pixel that was
-        clipped white in the frame (>= 250) only bounds the true value from below, so it is
-        raised to the reference value when that lies above (a lamp clipped at every
-        exposure stays white instead of turning grey at a lower gain). Black clipping is
-        left alone: at night most dark pixels are near 0 and the reference says nothing
-        about them.
+        filled from the colour reference. Pixels clipped white in the frame (>= 250) and
+        their neighbours do not follow a gain (a clipped lamp stays white at any exposure,
+        and its edge pixels mix clipped and unclipped light), so they take the reference's
+        colour: an incident there cannot be told from glare anyway, while something dark in
+        front of a lamp unclips it and is still seen. Black clipping is left alone: at night
+        most dark pixels are near 0 and follow no gain either, but they are all alike.
 
         Parameters
         ----------
@@ -458,8 +495,8 @@ class Conditions:
                 if self.lighting == "local":
                     f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
                 if ref_rgb is not None:
-                    r = ref_rgb.astype(np.float32)
-                    f = np.where(img >= 250, np.maximum(f, r), f)
+                    hot = cv2.dilate((img.max(axis=2) >= 250).astype(np.uint8), _NEAR)
+                    f[hot > 0] = ref_rgb[hot > 0]
             if fill is not None and ref_rgb is not None:
                 f[fill] = ref_rgb[fill]
             out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)

@@ -83,6 +83,11 @@ class ConditionSettings:
     #: per frame), "local" (that, then a smooth brightness field, for lights that change
     #: one part of the scene more than another) or "off".
     lighting: str = "local"
+    #: Exposure changes the baseline should take in its stride: half the normal frames are
+    #: also learnt as if caught up to this fraction darker (same sensor noise), so the
+    #: extra noise of a darker frame brought back to the reference is not an anomaly.
+    #: 0 turns it off. Needs lighting normalisation.
+    exposure_range: float = 0.2
     #: Align each frame to the baseline's reference (phase correlation) before scoring.
     register: bool = True
     #: Largest shift corrected, as a fraction of the frame's long side; beyond it the frame
@@ -237,6 +242,7 @@ _RANGES: dict[str, tuple[float, float]] = {
     "folds": (2, 50),
     "max_shift": (0.0, 0.5),
     "max_regimes": (1, 8),
+    "exposure_range": (0.0, 0.9),
     "alarms_per_day": (0.0, 1e6),
     "dark_level": (0.0, 255.0),
     "overexposed_share": (0.0, 1.0),

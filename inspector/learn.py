@@ -27,7 +27,8 @@ import inspector
 from inspector.baseline import Baseline
 from inspector.calibration import (alarms_to_alpha, conformal_threshold, tail_threshold,
                                    time_blocks)
-from inspector.conditions import Conditions, boxes_mask, find_text_boxes, grey
+from inspector.conditions import (Conditions, boxes_mask, darker_exposure, find_text_boxes,
+                                  grey)
 from inspector.config import CameraConfig, settings_dict
 from inspector.errors import FrameError, UsageError
 from inspector.features import rasterize_mask
@@ -111,11 +112,18 @@ class FileSource:
 
 
 class PreparedSource:
-    """A :class:`FrameSource` whose frames pass through :meth:`Conditions.prepare` first."""
+    """A :class:`FrameSource` whose frames pass through :meth:`Conditions.prepare` first.
 
-    def __init__(self, source, conditions: Conditions):
+    With ``exposure`` > 0, every other frame (chosen at random, the same on every pass) is
+    first made to look like a shorter exposure, darker by up to that fraction with the
+    sensor noise unchanged (:func:`inspector.conditions.darker_exposure`), so the model and
+    its calibration know the extra noise a normalised darker frame carries.
+    """
+
+    def __init__(self, source, conditions: Conditions, exposure: float = 0.0):
         self.source = source
         self.conditions = conditions
+        self.exposure = exposure
         self.blocks = source.blocks
         self.size = source.size
         #: Health measures of every frame prepared, by position (for the health limits).
@@ -129,7 +137,15 @@ class PreparedSource:
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         for idx, images in self.source.batches(indices, batch_size):
-            prepared, shifts = self.conditions.prepare(images)
+            varied = images
+            if self.exposure > 0:
+                varied = images.copy()
+                for j, i in enumerate(idx):
+                    rng = np.random.default_rng([7, int(i)])
+                    if rng.random() < 0.5:
+                        gain = 1.0 - self.exposure * rng.random()
+                        varied[j] = darker_exposure(images[j], gain, rng)
+            prepared, shifts = self.conditions.prepare(varied)
             if self.conditions.reference is not None and not all(
                     int(i) in self.measures for i in idx):
                 m = self.conditions.measures(images, shifts=shifts)
@@ -190,7 +206,9 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     mask = _mask(cfg, source_size, size)
     conditions, text_boxes, mask, limits = _conditions(cfg, source, mask)
     model = model_class(cfg.model.model)(**_model_params(cfg))
-    prepared = PreparedSource(source, conditions)
+    prepared = PreparedSource(source, conditions,
+                              cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
+                              else 0.0)
     try:
         held = model.fit(prepared, mask)
     except ValueError as exc:
