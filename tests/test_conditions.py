@@ -15,7 +15,8 @@ from skimage import data as skdata
 from sklearn.metrics import roc_auc_score
 
 from inspector.calibration import alarms_to_alpha, gpd_fit, tail_threshold
-from inspector.conditions import find_text_boxes, phase_shift, robust_gain_offset, sharpness
+from inspector.conditions import (darker_exposure, find_text_boxes, noise_sigma, phase_shift,
+                                  robust_gain_offset, sharpness)
 from inspector.config import load_config
 from inspector.errors import UsageError
 from inspector.frames import discover
@@ -96,6 +97,19 @@ def test_sharpness_drops_when_out_of_focus():
     blurred = cv2.GaussianBlur(ref, (0, 0), 2.0)
     assert sharpness(blurred) / sharpness(ref) < 0.35
     assert sharpness(ref * 0.4) == pytest.approx(sharpness(ref), rel=1e-3)  # blind to gain
+
+
+def test_noise_estimate_and_darker_exposure_keep_the_sensor_noise():
+    rng = np.random.default_rng(0)
+    yy, xx = np.mgrid[0:200, 0:300]
+    smooth = 60 + 0.3 * xx + 20 * np.sin(yy / 15.0)
+    noisy = smooth + rng.normal(0, 4.0, smooth.shape)
+    # white noise of sigma 4 on smooth content (Immerkaer 1996: the filter cancels it)
+    assert noise_sigma(noisy) == pytest.approx(4.0, rel=0.1)
+    img = np.clip(np.repeat(noisy[..., None], 3, axis=2), 0, 255).astype(np.uint8)
+    dark = darker_exposure(img, 0.7, rng)
+    assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)
+    assert noise_sigma(dark[..., 0].astype(np.float32)) == pytest.approx(4.0, rel=0.15)
 
 
 def test_text_boxes_found_around_a_running_clock():
