@@ -7,20 +7,50 @@ new column is one more entry in :data:`COLUMNS`.
 from __future__ import annotations
 
 import argparse
+import csv
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 from inspector.ledger import Ledger
 from inspector.store import Store
 
 
-def camera_facts(store: Store) -> dict[str, dict[str, Any]]:
-    """Per camera: active baseline version, ledger counts, last frame time and current lag.
+def latest_health(path: Path) -> dict[str, tuple[str, str]]:
+    """The latest camera health condition per camera in a ``health.csv``.
+
+    Returns
+    -------
+    dict of camera to (time, conditions)
+        Conditions of the same frame are joined with " + ".
+    """
+    latest: dict[str, tuple[str, str, str]] = {}
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            for row in csv.DictReader(fh):
+                cam, t, frame = row.get("camera") or "", row.get("time") or "", row.get("frame")
+                cond = row.get("condition") or ""
+                if not cam or not cond:
+                    continue
+                old = latest.get(cam)
+                if old and (old[0], old[1]) == (t, frame):
+                    latest[cam] = (t, frame, f"{old[2]} + {cond}")
+                elif old is None or t >= old[0]:
+                    latest[cam] = (t, frame, cond)
+    except (OSError, csv.Error, UnicodeDecodeError):
+        return {}
+    return {cam: (t, cond) for cam, (t, _, cond) in latest.items()}
+
+
+def camera_facts(store: Store, health_csv: Path | None = None) -> dict[str, dict[str, Any]]:
+    """Per camera: active baseline version, ledger counts, last frame time and current lag,
+    and the latest camera health condition found in ``health_csv``.
 
     ``lag`` is None when no watcher is running (no heartbeat in the last 15 s), else the
     seconds the oldest complete frame of that camera has waited to be scored (0 when none)
     and ``queued`` the number of such frames.
     """
+    health = latest_health(health_csv) if health_csv is not None else {}
     facts: dict[str, dict[str, Any]] = {}
     counts: dict[str, dict[str, Any]] = {}
     watchers: list[dict[str, Any]] = []
@@ -31,7 +61,7 @@ def camera_facts(store: Store) -> dict[str, dict[str, Any]]:
     for cam in sorted(set(store.cameras()) | {c for c in counts if c}):
         f = {"camera": cam, "baseline": store.active_version(cam) or "none",
              "scored": 0, "flagged": 0, "skipped": 0, "waiting": 0, "last": "",
-             "lag": None, "queued": 0}
+             "lag": None, "queued": 0, "health": health.get(cam)}
         f.update(counts.get(cam, {}))
         if watchers:
             f["lag"] = 0.0
@@ -50,6 +80,13 @@ def _lag(f: dict[str, Any]) -> str:
     return f"{f['lag']:.1f} s" + (f" ({f['queued']} queued)" if f["queued"] else "")
 
 
+def _health(f: dict[str, Any]) -> str:
+    if not f.get("health"):
+        return "ok"
+    t, cond = f["health"]
+    return f"{cond} ({'last frame' if t and t == f['last'] else t})"
+
+
 #: (title, cell) per column of the status table.
 COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
     ("camera", lambda f: f["camera"]),
@@ -60,6 +97,7 @@ COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
     ("waiting", lambda f: str(f["waiting"])),
     ("last frame", lambda f: f["last"] or "-"),
     ("lag", _lag),
+    ("camera health", _health),
 ]
 
 
@@ -75,16 +113,20 @@ def add_command(sub) -> None:
     from inspector.cli import add_common
 
     p = sub.add_parser("status", help="per camera: active baseline, frames scored, flagged, "
-                                      "skipped and waiting, last frame, current lag")
+                                      "skipped and waiting, last frame, current lag, latest "
+                                      "camera health condition")
     add_common(p)
+    p.add_argument("--out", type=Path, help="results folder whose health.csv gives the latest "
+                                            "camera health condition (default from config)")
     p.set_defaults(func=cmd_status)
 
 
 def cmd_status(args: argparse.Namespace) -> int:
     from inspector.cli import resolve, say
 
-    _, store = resolve(args)
-    facts = camera_facts(store)
+    config, store = resolve(args)
+    out = args.out or Path(config.paths.out)
+    facts = camera_facts(store, out / "health.csv")
     if not facts:
         say(f"no cameras yet in {store.root} (run 'inspector learn' or 'inspector scan')")
         return 0

@@ -25,6 +25,7 @@ from inspector.regimes import appearance, find_regimes
 from inspector.results import HEALTH_COLUMNS, ResultWriter
 from inspector.scan import Baselines, scan_files
 from inspector.scenario import HEALTH_TRUTH, generate
+from inspector.status import camera_facts, format_table
 from inspector.store import Store
 
 
@@ -209,6 +210,13 @@ def test_exposure_steps_and_camera_faults(tmp_path):
     assert recall("out of focus") >= 0.8 and recall("lens covered") >= 0.8
     assert found >= 0.8 * len(faults)
     assert not any(f in flagged for f, c in faults.items() if (f, c) in reported)
+    # inspector status: the latest health condition of the camera
+    rows = list(csv.DictReader(open(out / "health.csv")))
+    last = max(rows, key=lambda r: r["time"])
+    facts = camera_facts(Store(tmp_path / "store"), out / "health.csv")
+    assert facts["dock"]["health"][0] == last["time"]
+    assert last["condition"] in facts["dock"]["health"][1]
+    assert "camera health" in format_table(facts)[0]
 
 
 def test_camera_moved_is_health_not_anomalies(tmp_path):
