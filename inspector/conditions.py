@@ -5,7 +5,8 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 
 * Registration: each frame is aligned to the baseline's reference by phase correlation
   (Kuglin & Hines 1975, "The phase correlation image alignment method"; sub-pixel peak as
-  in ``cv2.phaseCorrelate``). A shift beyond ``max_shift`` is not corrected: the camera
+  in ``cv2.phaseCorrelate``), kept only when it makes the frame correlate better with the
+  reference (a large incident can fool the peak). A shift beyond ``max_shift`` is not corrected: the camera
   has been moved, which is a health condition, not an anomaly.
 * Photometric normalisation: a robust fit ``reference ~ gain * frame + offset`` over the
   frame's pixels (percentile matching, then least squares refitted twice on the pixels
@@ -130,6 +131,21 @@ def phase_shift(frame: np.ndarray, reference: np.ndarray,
     return float(dx), float(dy)
 
 
+def _correlation(a: np.ndarray, b: np.ndarray, keep: np.ndarray | None = None) -> float:
+    """Pearson correlation of two images over the kept pixels, a 10-pixel margin left out
+    (the edges a shift moves in)."""
+    h, w = a.shape
+    m = min(10, h // 8, w // 8)
+    sel = np.s_[m:h - m, m:w - m]
+    x, y = a[sel], b[sel]
+    if keep is not None:
+        x, y = x[keep[sel]], y[keep[sel]]
+    x = x - x.mean()
+    y = y - y.mean()
+    den = float(np.sqrt((x * x).sum() * (y * y).sum()))
+    return float((x * y).sum() / den) if den > 0 else 0.0
+
+
 def shift_images(images: np.ndarray, dx: float, dy: float) -> np.ndarray:
     """Move the content of images by (dx, dy) pixels (bilinear, edges reflected).
 
@@ -163,6 +179,25 @@ def sharpness(g: np.ndarray) -> float:
     g = np.asarray(g, np.float32)
     lap = cv2.Laplacian(g, cv2.CV_32F, ksize=3)
     return float(lap.var() / max(float(g.var()), 1e-3))
+
+
+def cell_detail(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
+    """Variance of the Laplacian in each cell of a ``grid`` x ``grid`` split (the detail a
+    sharp lens resolves there).
+
+    Returns
+    -------
+    ndarray, shape (grid, grid), float32
+    """
+    lap = cv2.Laplacian(np.asarray(g, np.float32), cv2.CV_32F, ksize=3)
+    h, w = lap.shape
+    ys = np.linspace(0, h, grid + 1).astype(int)
+    xs = np.linspace(0, w, grid + 1).astype(int)
+    out = np.zeros((grid, grid), np.float32)
+    for i in range(grid):
+        for j in range(grid):
+            out[i, j] = lap[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].var()
+    return out
 
 
 def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
@@ -366,8 +401,9 @@ class Conditions:
         Pixels left out of the fits and the health measures (user mask and text overlays).
     ref_cells : ndarray, shape (g, g), float32
         Median cell contrast of the normal frames (which cells have texture to lose).
-    ref_sharpness : float
-        Median sharpness of the normal frames.
+    ref_detail : ndarray, shape (g, g), float32
+        Median cell detail (:func:`cell_detail`) of the normal frames, brought to the
+        reference's gain.
     """
 
     lighting: str = "local"
@@ -379,7 +415,7 @@ class Conditions:
     reference_rgb: np.ndarray | None = None
     ignore: np.ndarray | None = None
     ref_cells: np.ndarray | None = None
-    ref_sharpness: float = 1.0
+    ref_detail: np.ndarray | None = None
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
@@ -389,8 +425,8 @@ class Conditions:
         Limits start from ``defaults`` (``dark``: 99th percentile of grey below which a
         frame is too dark; ``bright``: share of clipped pixels above which it is
         overexposed; ``covered``: share of the reference's textured cells that no longer
-        correlate with it; ``focus``: sharpness relative to normal below which it is out of
-        focus; ``frozen``: mean absolute
+        correlate with it; ``focus``: median over textured cells of their detail (variance of the
+        Laplacian) relative to normal, below which it is out of focus; ``frozen``: mean absolute
         difference to the previous frame, in grey levels, below which the feed is frozen)
         and are widened so that no more than the sample's extremes would have tripped them
         (with a margin), so a camera that is normally dim or soft is not reported all day.
@@ -412,8 +448,7 @@ class Conditions:
         self.reference_rgb = ref_rgb
         rgb, shifts = self.prepare(images)
         self.ref_cells = np.median(np.stack([cell_contrast(x) for x in grey(rgb)]), axis=0)
-        sharp = np.array([sharpness(x) for x in grey(images)])  # blind to gain already
-        self.ref_sharpness = float(np.median(sharp))
+        self.ref_detail = np.median(np.stack([self._detail(x) for x in grey(images)]), axis=0)
         self.set_limits(self.measures(images, shifts=shifts), defaults)
         return self
 
@@ -438,12 +473,13 @@ class Conditions:
 
         A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
         the places where burned-in text (which does not move with the camera) would land are
-        filled from the colour reference. Pixels clipped white in the frame (>= 250) and
-        their neighbours do not follow a gain (a clipped lamp stays white at any exposure,
-        and its edge pixels mix clipped and unclipped light), so they take the reference's
-        colour: an incident there cannot be told from glare anyway, while something dark in
-        front of a lamp unclips it and is still seen. Black clipping is left alone: at night
-        most dark pixels are near 0 and follow no gain either, but they are all alike.
+        filled from the colour reference. A pixel clipped white in the frame (>= 250) only
+        bounds its true value from below, so after the gain it is raised to the reference
+        when that is brighter (never lowered: a white parcel stays white). Where the frame
+        is clipped next to where the reference is clipped too (a lamp, a sunlit window),
+        the pixels do not follow a gain at all (their edges mix clipped and unclipped
+        light) and take the reference's colour. Black clipping is left alone: at night most
+        dark pixels are near 0 and follow no gain either, but they are all alike.
 
         Parameters
         ----------
@@ -476,10 +512,14 @@ class Conditions:
             fill = None
             if self.register:
                 dx, dy = phase_shift(g, ref, self.ignore)
+                if np.hypot(dx, dy) > 0.05:
+                    moved_back = shift_images(g, -dx, -dy)
+                    if _correlation(moved_back, ref, keep) <= _correlation(g, ref, keep):
+                        dx = dy = 0.0  # no better aligned: a large change fooled the peak
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
                     img = shift_images(img, -dx, -dy)
-                    g = shift_images(g, -dx, -dy)
+                    g = moved_back
                     m = np.float32([[1, 0, -dx], [0, 1, -dy]])
                     h, w = g.shape
                     covered = cv2.warpAffine(ones, m, (w, h), flags=cv2.INTER_LINEAR,
@@ -495,8 +535,12 @@ class Conditions:
                 if self.lighting == "local":
                     f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
                 if ref_rgb is not None:
-                    hot = cv2.dilate((img.max(axis=2) >= 250).astype(np.uint8), _NEAR)
-                    f[hot > 0] = ref_rgb[hot > 0]
+                    r = ref_rgb.astype(np.float32)
+                    clipped = img.max(axis=2) >= 250
+                    f = np.where(clipped[..., None], np.maximum(f, r), f)
+                    glare = (cv2.dilate(clipped.astype(np.uint8), _NEAR)
+                             & cv2.dilate((ref_rgb.max(axis=2) >= 250).astype(np.uint8), _NEAR))
+                    f[glare > 0] = r[glare > 0]
             if fill is not None and ref_rgb is not None:
                 f[fill] = ref_rgb[fill]
             out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)
@@ -535,13 +579,25 @@ class Conditions:
                 aligned = g[i] if shifts is None else shift_images(g[i], *(-shifts[i]))
                 lost = cell_correlation(aligned, self.reference) < COVER_CORRELATION
                 out["covered"][i] = float(lost[textured].mean())
-            out["focus"][i] = sharpness(g[i]) / max(self.ref_sharpness, 1e-6)
+            if textured is not None and textured.any() and self.ref_detail is not None:
+                ratio = self._detail(g[i]) / np.maximum(self.ref_detail, 1e-6)
+                out["focus"][i] = float(np.median(ratio[textured]))
+            else:
+                out["focus"][i] = 1.0
             before = previous if i == 0 else g[i - 1]
             out["frozen"][i] = (float(np.abs(g[i] - before)[keep].mean())
                                 if before is not None else np.inf)
             if shifts is not None:
                 out["shift"][i] = float(np.hypot(*shifts[i]))
         return out
+
+    def _detail(self, g: np.ndarray) -> np.ndarray:
+        """Cell detail of a grey frame at the reference's gain."""
+        if self.reference is not None:
+            keep = None if self.ignore is None else ~self.ignore
+            gain, _ = robust_gain_offset(g, self.reference, keep)
+            g = g * gain
+        return cell_detail(g)
 
     def conditions(self, m: dict[str, np.ndarray]) -> list[list[tuple[str, float, float]]]:
         """Health conditions of each frame from its measures.
@@ -576,12 +632,11 @@ class Conditions:
     # -- persistence ---------------------------------------------------------------------
     def to_json(self) -> dict[str, Any]:
         return {"lighting": self.lighting, "register": self.register,
-                "max_shift": self.max_shift, "health": self.health, "limits": self.limits,
-                "ref_sharpness": self.ref_sharpness}
+                "max_shift": self.max_shift, "health": self.health, "limits": self.limits}
 
     def arrays(self) -> dict[str, np.ndarray]:
         out = {}
-        for k in ("reference", "reference_rgb", "ignore", "ref_cells"):
+        for k in ("reference", "reference_rgb", "ignore", "ref_cells", "ref_detail"):
             v = getattr(self, k)
             if v is not None:
                 out[k] = v
@@ -591,10 +646,10 @@ class Conditions:
     def from_saved(cls, meta: dict[str, Any], arrays: dict[str, np.ndarray]) -> "Conditions":
         c = cls(lighting=meta["lighting"], register=bool(meta["register"]),
                 max_shift=float(meta["max_shift"]), health=bool(meta["health"]),
-                limits={k: float(v) for k, v in meta["limits"].items()},
-                ref_sharpness=float(meta["ref_sharpness"]))
+                limits={k: float(v) for k, v in meta["limits"].items()})
         c.reference = arrays.get("reference")
         c.reference_rgb = arrays.get("reference_rgb")
         c.ignore = arrays.get("ignore")
         c.ref_cells = arrays.get("ref_cells")
+        c.ref_detail = arrays.get("ref_detail")
         return c
