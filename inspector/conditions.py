@@ -181,6 +181,28 @@ def sharpness(g: np.ndarray) -> float:
     return float(lap.var() / max(float(g.var()), 1e-3))
 
 
+def _cell_sums(x: np.ndarray, grid: int) -> np.ndarray:
+    """Sums of ``x`` (H, W) over the cells of a ``grid`` x ``grid`` split, shape (grid, grid)."""
+    h, w = x.shape
+    ys = np.linspace(0, h, grid + 1).astype(int)[:-1]
+    xs = np.linspace(0, w, grid + 1).astype(int)[:-1]
+    return np.add.reduceat(np.add.reduceat(x, ys, axis=0), xs, axis=1)
+
+
+def _cell_counts(shape: tuple[int, int], grid: int) -> np.ndarray:
+    h, w = shape
+    ny = np.diff(np.linspace(0, h, grid + 1).astype(int))
+    nx = np.diff(np.linspace(0, w, grid + 1).astype(int))
+    return np.outer(ny, nx).astype(np.float64)
+
+
+def _cell_var(x: np.ndarray, grid: int) -> np.ndarray:
+    x = np.asarray(x, np.float64)
+    n = _cell_counts(x.shape, grid)
+    m = _cell_sums(x, grid) / n
+    return np.maximum(_cell_sums(x * x, grid) / n - m * m, 0.0)
+
+
 def cell_detail(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     """Variance of the Laplacian in each cell of a ``grid`` x ``grid`` split (the detail a
     sharp lens resolves there).
@@ -190,14 +212,7 @@ def cell_detail(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     ndarray, shape (grid, grid), float32
     """
     lap = cv2.Laplacian(np.asarray(g, np.float32), cv2.CV_32F, ksize=3)
-    h, w = lap.shape
-    ys = np.linspace(0, h, grid + 1).astype(int)
-    xs = np.linspace(0, w, grid + 1).astype(int)
-    out = np.zeros((grid, grid), np.float32)
-    for i in range(grid):
-        for j in range(grid):
-            out[i, j] = lap[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].var()
-    return out
+    return _cell_var(lap, grid).astype(np.float32)
 
 
 def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
@@ -207,14 +222,7 @@ def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     -------
     ndarray, shape (grid, grid), float32
     """
-    h, w = g.shape
-    ys = np.linspace(0, h, grid + 1).astype(int)
-    xs = np.linspace(0, w, grid + 1).astype(int)
-    out = np.zeros((grid, grid), np.float32)
-    for i in range(grid):
-        for j in range(grid):
-            out[i, j] = g[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].std()
-    return out
+    return np.sqrt(_cell_var(g, grid)).astype(np.float32)
 
 
 def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
@@ -227,18 +235,15 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> 
     -------
     ndarray, shape (grid, grid), float32 in [-1, 1]
     """
-    h, w = g.shape
-    ys = np.linspace(0, h, grid + 1).astype(int)
-    xs = np.linspace(0, w, grid + 1).astype(int)
-    out = np.zeros((grid, grid), np.float32)
-    for i in range(grid):
-        for j in range(grid):
-            a = g[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].astype(np.float64)
-            b = ref[ys[i]:ys[i + 1], xs[j]:xs[j + 1]].astype(np.float64)
-            a, b = a - a.mean(), b - b.mean()
-            den = np.sqrt((a * a).sum() * (b * b).sum())
-            out[i, j] = (a * b).sum() / den if den > 0 else 0.0
-    return out
+    a = np.asarray(g, np.float64)
+    b = np.asarray(ref, np.float64)
+    n = _cell_counts(a.shape, grid)
+    ma, mb = _cell_sums(a, grid) / n, _cell_sums(b, grid) / n
+    cov = _cell_sums(a * b, grid) / n - ma * mb
+    va = np.maximum(_cell_sums(a * a, grid) / n - ma * ma, 0.0)
+    vb = np.maximum(_cell_sums(b * b, grid) / n - mb * mb, 0.0)
+    den = np.sqrt(va * vb)
+    return np.where(den > 1e-9, cov / np.maximum(den, 1e-9), 0.0).astype(np.float32)
 
 
 def noise_sigma(g: np.ndarray) -> float:
