@@ -97,9 +97,14 @@ def robust_gain_offset(frame: np.ndarray, reference: np.ndarray,
         mad = 1.4826 * np.median(np.abs(r - np.median(r)))
         use = np.abs(r - np.median(r)) <= 3.0 * max(mad, 0.5)
         xs, ys = x[use], y[use]
-        if len(xs) < 16 or xs.std() < 1.0:
+        if len(xs) < 16:
             break
-        gain, offset = np.polyfit(xs, ys, 1)
+        mx, my = xs.mean(), ys.mean()
+        vx = float(((xs - mx) ** 2).mean())
+        if vx < 1.0:
+            break
+        gain = float(((xs - mx) * (ys - my)).mean()) / vx  # least squares line
+        offset = my - gain * mx
     gain = float(np.clip(gain, 0.1, 10.0))
     return gain, float(offset)
 
@@ -167,9 +172,16 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float) -> 
     -------
     ndarray, shape (H, W), float32
     """
-    f = cv2.GaussianBlur(np.asarray(frame, np.float32), (0, 0), sigma)
-    r = cv2.GaussianBlur(np.asarray(reference, np.float32), (0, 0), sigma)
-    return np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32)
+    frame = np.asarray(frame, np.float32)
+    h, w = frame.shape
+    k = max(1, int(sigma // 4))  # the field is smooth: blur a 1/k image, then enlarge it
+    small = (max(1, w // k), max(1, h // k))
+    f = cv2.GaussianBlur(cv2.resize(frame, small, interpolation=cv2.INTER_AREA), (0, 0),
+                         sigma / k)
+    r = cv2.GaussianBlur(cv2.resize(np.asarray(reference, np.float32), small,
+                                    interpolation=cv2.INTER_AREA), (0, 0), sigma / k)
+    field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32)
+    return cv2.resize(field, (w, h), interpolation=cv2.INTER_LINEAR)
 
 
 def sharpness(g: np.ndarray) -> float:
