@@ -435,6 +435,8 @@ class Conditions:
     ignore: np.ndarray | None = None
     ref_cells: np.ndarray | None = None
     ref_detail: np.ndarray | None = None
+    #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
+    _ref_terms: tuple | None = field(default=None, init=False, repr=False, compare=False)
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
@@ -553,17 +555,25 @@ class Conditions:
                 f = img.astype(np.float32) * gain + offset
                 if self.lighting == "local":
                     f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
-                if ref_rgb is not None:
-                    r = ref_rgb.astype(np.float32)
+                if ref_rgb is not None and img.max() >= 250:  # any clipped pixel at all
+                    r, ref_glare = self._reference_terms(ref_rgb)
                     clipped = img.max(axis=2) >= 250
-                    f = np.where(clipped[..., None], np.maximum(f, r), f)
-                    glare = (cv2.dilate(clipped.astype(np.uint8), _NEAR)
-                             & cv2.dilate((ref_rgb.max(axis=2) >= 250).astype(np.uint8), _NEAR))
-                    f[glare > 0] = r[glare > 0]
+                    np.maximum(f, r, out=f, where=clipped[..., None])
+                    glare = (cv2.dilate(clipped.astype(np.uint8), _NEAR) & ref_glare) > 0
+                    f[glare] = r[glare]
             if fill is not None and ref_rgb is not None:
                 f[fill] = ref_rgb[fill]
             out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)
         return out, shifts
+
+    def _reference_terms(self, ref_rgb: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The colour reference as float32 and the dilated mask of its clipped whites,
+        computed once per reference rather than once per frame."""
+        if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
+            clipped = (np.asarray(ref_rgb).max(axis=2) >= 250).astype(np.uint8)
+            self._ref_terms = (ref_rgb, np.asarray(ref_rgb, np.float32),
+                               cv2.dilate(clipped, _NEAR))
+        return self._ref_terms[1], self._ref_terms[2]
 
     def measures(self, images: np.ndarray, previous: np.ndarray | None = None,
                  shifts: np.ndarray | None = None) -> dict[str, np.ndarray]:
