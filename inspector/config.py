@@ -110,8 +110,9 @@ class ConditionSettings:
     #: Budget of false alarms per camera per day; 0 uses [calibration] alpha instead.
     #: Converted to a per-frame rate with the frame rate measured from capture times.
     alarms_per_day: float = 0.0
-    #: When the calibration set is too small for the rate asked for, extrapolate the
-    #: threshold with a generalized Pareto fit of the largest scores (with a warning).
+    #: When the calibration set is too small for the rate that ``alarms_per_day`` asks for,
+    #: extrapolate the threshold with a generalized Pareto fit of the largest scores (with a
+    #: warning). A plain ``alpha`` always uses the conformal threshold.
     tail_fit: bool = True
     #: Health limits before they are widened by what the normal frames show: 99th
     #: percentile of grey below which a frame is too dark; share of clipped pixels above

@@ -231,7 +231,11 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
             raise UsageError(f"camera {camera}: alarms_per_day is set but {exc}") from None
         notes.append(f"{cs.alarms_per_day:g} false alarms a day at {per_day:.0f} frames a day "
                      f"(from capture times): false-alarm rate {alpha:.3g} per frame")
-    threshold_of = tail_threshold if cs.tail_fit else conformal_threshold
+    # A budget in alarms per day can ask for a rate far below what the normal frames
+    # support: then the tail is extrapolated. A plain alpha keeps the exact conformal promise
+    # (the largest score, promising 1/(n+1), with a warning when frames are too few).
+    threshold_of = (tail_threshold if cs.tail_fit and cs.alarms_per_day > 0
+                    else conformal_threshold)
     threshold = threshold_of(cal, alpha)
     warnings = [threshold.warning] if threshold.warning else []
     regimes = None
