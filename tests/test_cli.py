@@ -148,3 +148,22 @@ def test_module_entry_point_reports_usage_errors_without_traceback(tmp_path):
                           capture_output=True, text=True, cwd=tmp_path, stdin=subprocess.DEVNULL)
     assert proc.returncode == 2
     assert proc.stderr.strip().startswith("inspector: error:") and "Traceback" not in proc.stderr
+
+
+def test_everything_but_the_vae_runs_without_torch(learnt, tmp_path):
+    # torch is optional: with it blocked, learn/scan with PPCA work and --model vae says
+    # what to install (exit 2, one line).
+    root, cfg = learnt
+    code = (
+        "import sys; sys.modules['torch'] = None\n"
+        "from inspector.cli import main\n"
+        f"a = main(['scan', {str(root / 'normal')!r}, '--store', {str(root / 'store')!r},"
+        f" '--config', {str(cfg)!r}, '--out', {str(tmp_path / 'out')!r}])\n"
+        f"b = main(['learn', {str(root / 'normal')!r}, '--model', 'vae', '--store',"
+        f" {str(tmp_path / 'st')!r}, '--config', {str(cfg)!r}])\n"
+        "print('codes', a, b)\n"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          stdin=subprocess.DEVNULL, cwd=tmp_path)
+    assert "codes 0 2" in proc.stdout, proc.stderr
+    assert "needs PyTorch" in proc.stderr and "Traceback" not in proc.stderr
