@@ -27,9 +27,8 @@ from sklearn.metrics import roc_auc_score  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
 from inspector.frames import discover  # noqa: E402
-from inspector.learn import learn_camera  # noqa: E402
-from inspector.results import ResultWriter  # noqa: E402
-from inspector.scan import Baselines, scan_folder  # noqa: E402
+from inspector.learn import learn_cameras  # noqa: E402
+from inspector.scan import run_scan  # noqa: E402
 from inspector.scenario import HEALTH_TRUTH, generate  # noqa: E402
 from inspector.store import Store  # noqa: E402
 
@@ -66,11 +65,9 @@ def run(root: Path, work: Path, handling: str, long_side: int, alpha: float):
     config = load_config(cfg_path)
     store = Store(work / "store")
     files, _ = discover(root / "normal")
-    for camera in sorted({f.camera for f in files}):
-        learn_camera([f for f in files if f.camera == camera], config.camera(camera), store)
+    list(learn_cameras(files, config, store))
     out = work / "out"
-    with ResultWriter(out, out / "all.csv") as writer:
-        scan_folder(root / "new", Baselines(store, config), writer)
+    run_scan(root / "new", config, store, out, out / "all.csv")
     truth = {r["frame"]: r["incident"] for r in csv.DictReader(open(root / "truth.csv"))}
     faults = {}
     if (root / HEALTH_TRUTH).exists():

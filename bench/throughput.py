@@ -30,7 +30,7 @@ sys.path.insert(0, str(ROOT))
 
 from inspector.config import load_config  # noqa: E402
 from inspector.frames import discover, iter_frames  # noqa: E402
-from inspector.learn import learn_camera  # noqa: E402
+from inspector.learn import learn_cameras  # noqa: E402
 from inspector.scan import Baselines, run_scan  # noqa: E402
 from inspector.scenario import generate  # noqa: E402
 from inspector.store import Store  # noqa: E402
@@ -59,10 +59,9 @@ def run(work: Path, n: int, rounds: int) -> None:
     config = load_config(None)
     store = Store(work / "store")
     normal, _ = discover(scenario.normal)
-    for cam in sorted({f.camera for f in normal}):
-        t = time.perf_counter()
-        learn_camera([f for f in normal if f.camera == cam], config.camera(cam), store)
-        print(f"learnt {cam} from 120 full-HD frames in {time.perf_counter() - t:.1f} s")
+    for report in learn_cameras(normal, config, store):
+        print(f"learnt {report.camera} from {report.frames} full-HD frames in "
+              f"{report.seconds:.1f} s")
     files, _ = discover(scenario.new)
     baselines = Baselines(store, config)
     decode_rates, scan_rates, decode_cpu, scan_cpu = [], [], [], []

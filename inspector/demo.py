@@ -25,7 +25,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from inspector.cli import report_scan, say
     from inspector.config import load_config
     from inspector.frames import discover
-    from inspector.learn import learn_camera
+    from inspector.learn import learn_cameras
     from inspector.scan import run_scan
     from inspector.scenario import generate, load_truth
     from inspector.store import Store
@@ -36,10 +36,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
     config = load_config(None)
     store = Store(root / "store")
     files, _ = discover(scenario.normal)
-    for camera in sorted({f.camera for f in files}):
-        report = learn_camera([f for f in files if f.camera == camera], config.camera(camera),
-                              store)
-        say(f"learnt {camera}: baseline {report.version} from {report.frames} normal frames, "
+    for report in learn_cameras(files, config, store):
+        say(f"learnt {report.camera}: baseline {report.version} from {report.frames} normal frames, "
             f"threshold {report.threshold:.3f} ({report.seconds:.1f} s)")
     out = root / "results"
     all_scores = out / "all_scores.csv"

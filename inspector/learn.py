@@ -29,7 +29,7 @@ from inspector.calibration import (alarms_to_alpha, conformal_threshold, tail_th
                                    time_blocks)
 from inspector.conditions import (Conditions, boxes_mask, darker_exposure, find_text_boxes,
                                   grey)
-from inspector.config import CameraConfig, settings_dict
+from inspector.config import CameraConfig, Config, settings_dict
 from inspector.errors import FrameError, UsageError
 from inspector.features import rasterize_mask
 from inspector.frames import FrameFile, Skip, capture_time, iter_frames, working_size
@@ -337,6 +337,15 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
     if len(images):
         conditions.fit(images, mask, limits)
     return conditions, boxes, mask, limits
+
+
+def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store
+                  ) -> Iterator[LearnReport]:
+    """Learn a baseline for every camera among ``files``, in camera-name order, each with
+    its own settings from ``config``; yields each camera's report as it is done."""
+    for camera in sorted({f.camera for f in files}):
+        yield learn_camera([f for f in files if f.camera == camera], config.camera(camera),
+                           store)
 
 
 def _model_params(cfg: CameraConfig) -> dict:
