@@ -1,7 +1,7 @@
 """Regenerate the committed sample frames in ``sample_frames/`` from the synthetic scenario.
 
 Run from the repository root: ``python bench/make_sample_frames.py``. The frames are
-invented (the fictional Larkspur Parcel Co. depot, see :mod:`inspector.scenario`); the
+invented (the fictional Larkspur Parcel Co. depot, see :mod:`inspector.demo.scenario`); the
 script replaces ``sample_frames/normal``, ``sample_frames/new``, ``sample_frames/truth.csv``
 and ``sample_frames/truth_masks`` and leaves ``sample_frames/README.md`` alone.
 """
@@ -16,7 +16,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from inspector.scenario import generate  # noqa: E402
+from inspector.demo.scenario import generate  # noqa: E402
 
 SEED = 0
 NORMAL_PER_CAMERA = 40

@@ -1,9 +1,9 @@
 """Benchmark: the PPCA and VAE models side by side on the demo scenario, in one run.
 
-For each camera of the synthetic depot (:func:`inspector.scenario.generate`) and each
-model, a baseline is learnt through the real pipeline (:func:`inspector.learn.learn_camera`:
+For each camera of the synthetic depot (:func:`inspector.demo.scenario.generate`) and each
+model, a baseline is learnt through the real pipeline (:func:`inspector.jobs.learn.learn_camera`:
 decoding, fitting, held-out maps, calibration, store) and the frames to scan are scored
-through the stored baseline (:meth:`inspector.baseline.Baseline.score`: raw maps,
+through the stored baseline (:meth:`inspector.core.baseline.Baseline.score`: raw maps,
 standardisation, frame score). Reported per camera and model:
 
 * image AUROC: frame scores against the scenario's incident labels;
@@ -38,10 +38,10 @@ from sklearn.metrics import roc_auc_score
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import Config  # noqa: E402
-from inspector.frames import discover, iter_frames  # noqa: E402
-from inspector.learn import learn_camera  # noqa: E402
-from inspector.scenario import generate, load_truth  # noqa: E402
-from inspector.store import Store  # noqa: E402
+from inspector.storage.frames import discover, iter_frames  # noqa: E402
+from inspector.jobs.learn import learn_camera  # noqa: E402
+from inspector.demo.scenario import generate, load_truth  # noqa: E402
+from inspector.storage.store import Store  # noqa: E402
 
 BATCH = 16
 #: The scenario's timestamp box (top-left) in exported 960x540 pixels, with a margin.

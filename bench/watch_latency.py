@@ -33,7 +33,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from inspector import cli  # noqa: E402
+from inspector.cli import main as cli  # noqa: E402
 
 SAMPLES = ROOT / "sample_frames"
 

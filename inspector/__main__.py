@@ -1,3 +1,3 @@
-from inspector.cli import main
+from inspector.cli.main import main
 
 raise SystemExit(main())

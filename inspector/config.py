@@ -77,7 +77,7 @@ class CalibrationSettings:
 
 @dataclass(frozen=True)
 class ConditionSettings:
-    """How camera conditions are handled (see :mod:`inspector.conditions`)."""
+    """How camera conditions are handled (see :mod:`inspector.core.conditions`)."""
 
     #: Photometric normalisation against the baseline: "global" (a robust gain and offset
     #: per frame), "local" (that, then a smooth brightness field, for lights that change
@@ -291,7 +291,7 @@ def _build(cls: type, table: Any, where: str, base: Any = None, source: str = ""
 
 
 def _check_model(m: ModelSettings, where: str) -> None:
-    from inspector.models import MODEL_NAMES
+    from inspector.core.models import MODEL_NAMES
 
     if m.model not in MODEL_NAMES:
         raise UsageError(f"{where} model = {m.model!r}: choose one of {', '.join(MODEL_NAMES)}")
@@ -303,7 +303,7 @@ def _check_model(m: ModelSettings, where: str) -> None:
 
 
 def _check_conditions(c: ConditionSettings, where: str) -> None:
-    from inspector.conditions import LIGHTING_MODES
+    from inspector.core.conditions import LIGHTING_MODES
 
     if c.lighting not in LIGHTING_MODES:
         raise UsageError(f"{where} lighting = {c.lighting!r}: choose one of "

@@ -10,11 +10,11 @@ from dataclasses import dataclass
 from datetime import datetime, timedelta
 from pathlib import Path
 
-from inspector.cli import main
+from inspector.cli.main import main
 from inspector.config import load_config
-from inspector.ledger import Ledger
-from inspector.scenario import generate
-from inspector.store import Store
+from inspector.storage.ledger import Ledger
+from inspector.demo.scenario import generate
+from inspector.storage.store import Store
 
 #: Small frames keep the tests quick (the defaults are for real cameras).
 CONFIG = """

@@ -9,8 +9,8 @@ import pytest
 from sklearn.metrics import confusion_matrix
 
 from _review_run import copy_run, make_run, write_ledger
-from inspector.baselines import compare_flags, compare_versions, last_scored
-from inspector.labels import Label, connect, put
+from inspector.jobs.compare import compare_flags, compare_versions, last_scored
+from inspector.storage.labels import Label, connect, put
 
 
 @pytest.fixture(scope="module")

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from skimage import data
 
-from inspector.cli import main
-from inspector.results import COLUMNS, SKIP_COLUMNS
+from inspector.cli.main import main
+from inspector.storage.results import COLUMNS, SKIP_COLUMNS
 
 from conftest import noisy_copies, write_frames
 
@@ -156,7 +156,7 @@ def test_everything_but_the_vae_runs_without_torch(learnt, tmp_path):
     root, cfg = learnt
     code = (
         "import sys; sys.modules['torch'] = None\n"
-        "from inspector.cli import main\n"
+        "from inspector.cli.main import main\n"
         f"a = main(['scan', {str(root / 'normal')!r}, '--store', {str(root / 'store')!r},"
         f" '--config', {str(cfg)!r}, '--out', {str(tmp_path / 'out')!r}])\n"
         f"b = main(['learn', {str(root / 'normal')!r}, '--model', 'vae', '--store',"

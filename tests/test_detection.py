@@ -9,11 +9,11 @@ from skimage import data
 from sklearn.metrics import roc_auc_score
 
 from inspector.config import load_config
-from inspector.frames import discover
-from inspector.learn import learn_camera
-from inspector.results import ResultWriter
-from inspector.scan import Baselines, scan_folder
-from inspector.store import Store
+from inspector.storage.frames import discover
+from inspector.jobs.learn import learn_camera
+from inspector.storage.results import ResultWriter
+from inspector.jobs.scan import Baselines, scan_folder
+from inspector.storage.store import Store
 
 from conftest import noisy_copies, write_frames
 

@@ -9,8 +9,8 @@ import sqlite3
 import pytest
 from sklearn.metrics import precision_score
 
-from inspector.cli import main
-from inspector.labels import COLUMNS, Label, connect, put, read, remove, summarize
+from inspector.cli.main import main
+from inspector.storage.labels import COLUMNS, Label, connect, put, read, remove, summarize
 
 
 def lab(camera, name, label, when="2026-11-30T22:00:00", note=""):

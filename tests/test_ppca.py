@@ -6,9 +6,9 @@ import pytest
 from scipy.stats import multivariate_normal
 from sklearn.decomposition import PCA
 
-from inspector.features import feature_size, patch_features
-from inspector.models.base import ArraySource
-from inspector.models.ppca import Moments, PatchPPCA, ppca_fit, ppca_nll
+from inspector.core.features import feature_size, patch_features
+from inspector.core.models.base import ArraySource
+from inspector.core.models.ppca import Moments, PatchPPCA, ppca_fit, ppca_nll
 
 
 def _data(n=400, d=10, seed=0):

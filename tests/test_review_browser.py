@@ -29,7 +29,7 @@ def browser():
 
 
 def test_filter_label_with_keyboard_and_reload(browser, tmp_path):
-    from inspector.labels import connect, read
+    from inspector.storage.labels import connect, read
     from inspector.review.server import LOOPBACK_NAMES, create_app
 
     run = make_run(tmp_path)

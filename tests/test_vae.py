@@ -1,4 +1,4 @@
-"""The convolutional VAE model and its bound helpers (inspector.models.vae).
+"""The convolutional VAE model and its bound helpers (inspector.core.models.vae).
 
 Each check names the outside result it relies on.
 """
@@ -15,9 +15,9 @@ torch = pytest.importorskip("torch")
 
 from scipy import integrate  # noqa: E402
 
-from inspector.models.base import ArraySource  # noqa: E402
-from inspector.models.ppca import ppca_fit, ppca_nll  # noqa: E402
-from inspector.models.vae import PatchVAE, elbo, iwae_bound, log_weights  # noqa: E402
+from inspector.core.models.base import ArraySource  # noqa: E402
+from inspector.core.models.ppca import ppca_fit, ppca_nll  # noqa: E402
+from inspector.core.models.vae import PatchVAE, elbo, iwae_bound, log_weights  # noqa: E402
 
 
 @pytest.fixture(autouse=True)

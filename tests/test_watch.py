@@ -22,8 +22,8 @@ import cv2
 import numpy as np
 import pytest
 
-from inspector import cli
-from inspector.events import EventSettings, FramePoint, group_events
+from inspector.cli import main as cli
+from inspector.core.events import EventSettings, FramePoint, group_events
 
 ROOT = Path(__file__).resolve().parents[1]
 W, H = 64, 48

@@ -19,7 +19,7 @@ from html import escape
 from pathlib import Path
 from urllib.parse import urlencode
 
-from inspector.ledger import read_scored
+from inspector.storage.ledger import read_scored
 
 #: All-scores files looked for in OUT for the timelines (``scan --all-scores OUT/all_scores.csv``).
 ALL_SCORES_NAMES = ("all_scores.csv", "scores.csv")

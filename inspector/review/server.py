@@ -22,13 +22,13 @@ from markupsafe import Markup
 from werkzeug.exceptions import HTTPException
 from werkzeug.security import safe_join
 
-from inspector.baseline import Baseline
+from inspector.core.baseline import Baseline
 from inspector.config import Config
 from inspector.errors import FrameError, UsageError
-from inspector.frames import FrameFile, read_frame, sniff
-from inspector.labels import LABEL_TEXT, LABELS, Label, connect, now, put, read, remove
+from inspector.storage.frames import FrameFile, read_frame, sniff
+from inspector.storage.labels import LABEL_TEXT, LABELS, Label, connect, now, put, read, remove
 from inspector.review.data import Item, Results, parse_filters, select, timeline_svg
-from inspector.store import Store
+from inspector.storage.store import Store
 
 #: The longest note kept with a label.
 MAX_NOTE = 2000
@@ -64,7 +64,7 @@ class Pictures:
             return ""
 
     def decode(self, item: Item) -> tuple[Baseline, np.ndarray]:
-        from inspector.scan import read_args
+        from inspector.jobs.scan import read_args
 
         b = self.baseline(item.camera, item.version)
         frame = read_frame(FrameFile(item.path, item.rel, item.camera), **read_args(b, self.config))
@@ -77,8 +77,8 @@ class Pictures:
         return _encode(out, ".png")
 
     def overlay(self, item: Item) -> bytes:
-        from inspector.overlay import render_overlay
-        from inspector.results import iso_time
+        from inspector.storage.overlay import render_overlay
+        from inspector.storage.results import iso_time
 
         b, image = self.decode(item)
         with self._lock:
@@ -222,7 +222,7 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
         timelines = [(cam, Markup(timeline_svg(cam, points, events, link,
                                                current.id if current else "")))
                      for cam in tl_cams]
-        from inspector.baselines import version_rows
+        from inspector.jobs.compare import version_rows
 
         versions = {}
         for cam in tl_cams:
@@ -325,7 +325,7 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
 
     @app.get("/api/compare")
     def compare():
-        from inspector.baselines import COMPARE_FRAMES, compare_versions
+        from inspector.jobs.compare import COMPARE_FRAMES, compare_versions
 
         camera, version = request.args.get("camera", ""), request.args.get("version", "")
         try:

@@ -1,6 +1,6 @@
 """Density models of a camera's normal appearance. Each lives in its own module.
 
-Every model follows :class:`inspector.models.base.DensityModel`; the rest of the tool
+Every model follows :class:`inspector.core.models.base.DensityModel`; the rest of the tool
 (calibration, scoring, the store, the shells) only talks to that interface.
 """
 
@@ -12,8 +12,8 @@ from inspector.errors import UsageError
 
 #: Model name -> (module, class). Modules are imported only when used (torch is optional).
 _REGISTRY = {
-    "ppca": ("inspector.models.ppca", "PatchPPCA"),
-    "vae": ("inspector.models.vae", "PatchVAE"),
+    "ppca": ("inspector.core.models.ppca", "PatchPPCA"),
+    "vae": ("inspector.core.models.vae", "PatchVAE"),
 }
 MODEL_NAMES = tuple(_REGISTRY)
 

@@ -44,7 +44,7 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
-from inspector.events import FramePoint
+from inspector.core.events import FramePoint
 
 #: Columns of ``frames`` written by :meth:`Ledger.record` (all but ``id``).
 FRAME_COLUMNS = ("path", "rel", "camera", "size", "mtime", "status", "reason", "score",

@@ -1,8 +1,8 @@
 """Where results are written: flagged.csv, all scores, skipped.csv, health.csv, overlays, maps.
 
 The one writer of results, shared by scan and watch (and read back by review). When given
-a ledger, every frame scored or skipped is also recorded there (see :mod:`inspector.ledger`);
-when given event settings, ``events.csv`` is written on close (see :mod:`inspector.events`).
+a ledger, every frame scored or skipped is also recorded there (see :mod:`inspector.storage.ledger`);
+when given event settings, ``events.csv`` is written on close (see :mod:`inspector.core.events`).
 """
 
 from __future__ import annotations
@@ -18,12 +18,12 @@ from typing import TYPE_CHECKING
 import cv2
 import numpy as np
 
-from inspector.events import EventSettings, FramePoint, group_events, write_events
-from inspector.overlay import render_overlay
-from inspector.store import write_json
+from inspector.core.events import EventSettings, FramePoint, group_events, write_events
+from inspector.storage.overlay import render_overlay
+from inspector.storage.store import write_json
 
 if TYPE_CHECKING:
-    from inspector.ledger import Ledger
+    from inspector.storage.ledger import Ledger
 
 #: Columns of flagged.csv and of the all-scores file, in this order.
 COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "model", "overlay")
@@ -58,7 +58,7 @@ class FrameResult:
     amap : ndarray, shape (h, w), float32
         Anomaly map.
     health : list of (condition, measure, limit)
-        Camera health conditions of the frame (see :mod:`inspector.conditions`).
+        Camera health conditions of the frame (see :mod:`inspector.core.conditions`).
     """
 
     frame: str
@@ -235,7 +235,7 @@ class ResultWriter:
                                      status="waiting" if waiting else "skipped")])
 
     def _ledger_file(self, rel: str) -> dict:
-        from inspector.ledger import now_iso
+        from inspector.storage.ledger import now_iso
 
         path = (self.source / rel) if self.source is not None else Path(rel).resolve()
         try:

@@ -6,14 +6,13 @@ new column is one more entry in :data:`COLUMNS`.
 
 from __future__ import annotations
 
-import argparse
 import csv
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from inspector.ledger import Ledger
-from inspector.store import Store
+from inspector.storage.ledger import Ledger
+from inspector.storage.store import Store
 
 
 def latest_health(path: Path) -> dict[str, tuple[str, str]]:
@@ -107,29 +106,3 @@ def format_table(facts: dict[str, dict[str, Any]]) -> list[str]:
                                          for f in facts.values()]
     widths = [max(len(row[i]) for row in table) for i in range(len(COLUMNS))]
     return ["  ".join(v.ljust(w) for v, w in zip(row, widths)).rstrip() for row in table]
-
-
-def add_command(sub) -> None:
-    from inspector.cli import add_common
-
-    p = sub.add_parser("status", help="per camera: active baseline, frames scored, flagged, "
-                                      "skipped and waiting, last frame, current lag, latest "
-                                      "camera health condition")
-    add_common(p)
-    p.add_argument("--out", type=Path, help="results folder whose health.csv gives the latest "
-                                            "camera health condition (default from config)")
-    p.set_defaults(func=cmd_status)
-
-
-def cmd_status(args: argparse.Namespace) -> int:
-    from inspector.cli import resolve, say
-
-    config, store = resolve(args)
-    out = args.out or Path(config.paths.out)
-    facts = camera_facts(store, out / "health.csv")
-    if not facts:
-        say(f"no cameras yet in {store.root} (run 'inspector learn' or 'inspector scan')")
-        return 0
-    for line in format_table(facts):
-        say(line)
-    return 0

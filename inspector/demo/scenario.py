@@ -307,7 +307,7 @@ def _prepare(out: Scenario) -> None:
             shutil.rmtree(path)
         else:
             path.unlink()
-    (out.root / _MARKER).write_text("written by inspector.scenario.generate\n",
+    (out.root / _MARKER).write_text("written by inspector.demo.scenario.generate\n",
                                     encoding="utf-8")
 
 

@@ -6,13 +6,12 @@ block); the held-out maps set the per-cell standardisation and the calibration s
 the conformal threshold follows. The result is saved as a new, active version.
 
 Before the model sees them, frames are aligned and photometrically normalised to a
-reference learnt from a sample of the normal frames (:mod:`inspector.conditions`); the
+reference learnt from a sample of the normal frames (:mod:`inspector.core.conditions`); the
 same sample finds burned-in text overlays, which are masked, and sets the health limits.
 """
 
 from __future__ import annotations
 
-import sys
 from collections import Counter
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -21,37 +20,31 @@ from pathlib import Path
 
 import numpy as np
 from PIL import Image
-from tqdm import tqdm
 
 import inspector
-from inspector.baseline import Baseline
-from inspector.calibration import (alarms_to_alpha, conformal_threshold, tail_threshold,
+from inspector.core.baseline import Baseline
+from inspector.core.calibration import (alarms_to_alpha, conformal_threshold, tail_threshold,
                                    time_blocks)
-from inspector.conditions import (Conditions, boxes_mask, darker_exposure, find_text_boxes,
+from inspector.core.conditions import (Conditions, boxes_mask, darker_exposure, find_text_boxes,
                                   grey)
 from inspector.config import CameraConfig, Config, settings_dict
 from inspector.errors import FrameError, UsageError
-from inspector.features import rasterize_mask
-from inspector.frames import FrameFile, Skip, capture_time, iter_frames, working_size
-from inspector.models import model_class
-from inspector.regimes import Regimes, appearance, find_regimes
-from inspector.scoring import anomaly_maps, frame_scores, location_stats
-from inspector.store import Store
+from inspector.core.features import rasterize_mask
+from inspector.storage.frames import FrameFile, Skip, capture_time, iter_frames, working_size
+from inspector.core.models import model_class
+from inspector.core.regimes import Regimes, appearance, find_regimes
+from inspector.core.scoring import anomaly_maps, frame_scores, location_stats
+from inspector.jobs.progress import progress_bar
+from inspector.storage.store import Store
 
 #: Fewer normal frames than this cannot make a baseline at all.
 MIN_FRAMES = 10
 #: Normal frames (spread evenly in time) that set the reference, health limits and text mask.
 CONDITION_SAMPLE = 48
-#: Fewest normal frames a regime (see :mod:`inspector.regimes`) may be calibrated on.
+#: Fewest normal frames a regime (see :mod:`inspector.core.regimes`) may be calibrated on.
 MIN_REGIME_FRAMES = 30
 #: Long side at which burned-in text is looked for (small text vanishes at working size).
 TEXT_LONG_SIDE = 640
-
-
-def progress_bar(total: int | None, desc: str) -> tqdm:
-    """A progress bar on stderr, silent when stderr is not a terminal."""
-    return tqdm(total=total, desc=desc, unit="frame", leave=False, file=sys.stderr,
-                disable=not sys.stderr.isatty(), dynamic_ncols=True)
 
 
 class FileSource:
@@ -65,7 +58,7 @@ class FileSource:
     size, source_size : (int, int)
         Working and exported (width, height).
     read_args : dict
-        ``long_side``, ``max_pixels``, ``time_formats`` for :func:`inspector.frames.read_frame`.
+        ``long_side``, ``max_pixels``, ``time_formats`` for :func:`inspector.storage.frames.read_frame`.
 
     Attributes
     ----------
@@ -116,7 +109,7 @@ class PreparedSource:
 
     With ``exposure`` > 0, every other frame (chosen at random, the same on every pass) is
     first made to look like a shorter exposure, darker by up to that fraction with the
-    sensor noise unchanged (:func:`inspector.conditions.darker_exposure`), so the model and
+    sensor noise unchanged (:func:`inspector.core.conditions.darker_exposure`), so the model and
     its calibration know the extra noise a normalised darker frame carries.
     """
 

@@ -1,6 +1,6 @@
 """A small convolutional variational autoencoder over the whole frame: the non-linear model.
 
-Per-location PPCA (:mod:`inspector.models.ppca`) is exact but linear in each patch. This
+Per-location PPCA (:mod:`inspector.core.models.ppca`) is exact but linear in each patch. This
 model replaces it with a deep latent-variable density (Kingma & Welling 2014,
 "Auto-encoding variational Bayes"; Rezende, Mohamed & Wierstra 2014) while keeping what
 makes the per-location model right for a fixed camera.
@@ -32,7 +32,7 @@ shared by patches.
   neighbourhoods, which is what makes CPU training and >= 50 frames/s scoring possible.
 
 The likelihood is over the same values PPCA models: luminance at full resolution and the
-two chroma planes at half resolution (JPEG 4:2:0, :func:`inspector.features.to_planes`).
+two chroma planes at half resolution (JPEG 4:2:0, :func:`inspector.core.features.to_planes`).
 Full-resolution luminance is folded into four half-resolution channels (a lossless
 space-to-depth step), so the network runs at half resolution on 6 channels (4 without
 colour). The frame is padded to a multiple of the latent cell; padding, and pixels under
@@ -41,7 +41,7 @@ the background before the encoder sees them, so their values can never change a 
 
 Raw maps: the decoder's Gaussian negative log-likelihood of each pixel given the posterior
 mean code, summed over ``stride x stride`` cells (the grid of
-:func:`inspector.features.map_shape`), plus (``kl_in_map``) each latent cell's KL
+:func:`inspector.core.features.map_shape`), plus (``kl_in_map``) each latent cell's KL
 divergence spread evenly over the map cells it covers. With ``iw_samples = K > 0`` the map
 is the importance-weighted bound instead (Burda, Grosse & Salakhutdinov 2016): the frame
 total ``-log (1/K) sum_k w_k`` is split exactly into cells as
@@ -91,8 +91,8 @@ import torch.nn.functional as F
 from torch import nn
 from tqdm import tqdm
 
-from inspector.features import map_shape, to_planes
-from inspector.models.base import DensityModel, FrameSource, HeldOut
+from inspector.core.features import map_shape, to_planes
+from inspector.core.models.base import DensityModel, FrameSource, HeldOut
 
 LOG_2PI = math.log(2.0 * math.pi)
 #: Learning-rate multiplier of the per-pixel background and variance maps. Each of their

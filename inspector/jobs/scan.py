@@ -12,13 +12,13 @@ from pathlib import Path
 
 import numpy as np
 
-from inspector.baseline import Baseline
+from inspector.core.baseline import Baseline
 from inspector.config import Config
 from inspector.errors import FrameError
-from inspector.frames import Frame, FrameFile, discover, iter_frames
-from inspector.learn import progress_bar
-from inspector.results import FrameResult, ResultWriter
-from inspector.store import Store
+from inspector.storage.frames import Frame, FrameFile, discover, iter_frames
+from inspector.jobs.progress import progress_bar
+from inspector.storage.results import FrameResult, ResultWriter
+from inspector.storage.store import Store
 
 #: Frames scored together: amortises per-call overhead while a batch's patches still fit in
 #: cache (8 measured fastest of 4, 8, 16 and 32 at the default working resolution).
@@ -57,12 +57,12 @@ class Baselines:
             self._loaded.pop(camera, None)
 
     def read_args(self, camera: str) -> dict:
-        """Arguments of :func:`inspector.frames.read_frame` for this camera's frames."""
+        """Arguments of :func:`inspector.storage.frames.read_frame` for this camera's frames."""
         return read_args(self.get(camera), self.config)
 
 
 def read_args(baseline: Baseline, config: Config) -> dict:
-    """Arguments of :func:`inspector.frames.read_frame` for frames scored by ``baseline``."""
+    """Arguments of :func:`inspector.storage.frames.read_frame` for frames scored by ``baseline``."""
     fs = config.camera(baseline.camera).frames
     return {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
             "time_formats": fs.time_formats, "size": baseline.size,
@@ -149,8 +149,8 @@ def scan_folder(source: Path, baselines: Baselines, writer: ResultWriter,
 def run_scan(source: Path, config: Config, store: Store, out: Path,
              all_scores: Path | None = None, maps: Path | None = None) -> ScanSummary:
     """A whole scan as the command runs it: results, ledger rows and events.csv."""
-    from inspector.events import EventSettings
-    from inspector.ledger import Ledger
+    from inspector.core.events import EventSettings
+    from inspector.storage.ledger import Ledger
 
     events = config.section("events", EventSettings)
     with Ledger(store.database) as ledger, \

@@ -25,12 +25,12 @@ from typing import Any
 
 import numpy as np
 
-from inspector.baseline import Baseline
-from inspector.calibration import Threshold
-from inspector.conditions import Conditions
-from inspector.regimes import Regimes
+from inspector.core.baseline import Baseline
+from inspector.core.calibration import Threshold
+from inspector.core.conditions import Conditions
+from inspector.core.regimes import Regimes
 from inspector.errors import UsageError
-from inspector.models import model_class
+from inspector.core.models import model_class
 
 _VERSION_RE = re.compile(r"^v(\d+)$")
 _NAME_RE = re.compile(r"^[^/\\\x00]+$")

@@ -33,9 +33,9 @@ from typing import Any
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from inspector.features import (feature_size, fold_to_cells, grid_shape, observed_features,
+from inspector.core.features import (feature_size, fold_to_cells, grid_shape, observed_features,
                                 patch_features)
-from inspector.models.base import DensityModel, FrameSource, HeldOut
+from inspector.core.models.base import DensityModel, FrameSource, HeldOut
 
 LOG_2PI = float(np.log(2.0 * np.pi))
 
@@ -414,7 +414,7 @@ class PatchPPCA(DensityModel):
 def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: int,
              stride: int, colour: bool) -> np.ndarray:
     """Patch feature vectors back to RGB frames, averaging overlaps (inverse of the layout
-    in :func:`inspector.features.patch_features`)."""
+    in :func:`inspector.core.features.patch_features`)."""
     import cv2
 
     n = X.shape[0]

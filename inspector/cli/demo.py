@@ -8,8 +8,10 @@ from pathlib import Path
 
 import numpy as np
 
+from inspector.cli.common import report_scan, say
 
-def add_command(sub) -> None:
+
+def register(sub) -> None:
     p = sub.add_parser("demo", help="generate an invented two-camera depot, learn, scan and "
                                     "report detection quality")
     p.add_argument("--out", type=Path, default=Path("inspector-demo"),
@@ -22,13 +24,12 @@ def add_command(sub) -> None:
 def cmd_demo(args: argparse.Namespace) -> int:
     from sklearn.metrics import roc_auc_score
 
-    from inspector.cli import report_scan, say
     from inspector.config import load_config
-    from inspector.frames import discover
-    from inspector.learn import learn_cameras
-    from inspector.scan import run_scan
-    from inspector.scenario import generate, load_truth
-    from inspector.store import Store
+    from inspector.storage.frames import discover
+    from inspector.jobs.learn import learn_cameras
+    from inspector.jobs.scan import run_scan
+    from inspector.demo.scenario import generate, load_truth
+    from inspector.storage.store import Store
 
     root = args.out
     say(f"generating the Larkspur Parcel Co. depot scenario in {root / 'frames'} ...")

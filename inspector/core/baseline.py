@@ -7,11 +7,11 @@ from typing import Any
 
 import numpy as np
 
-from inspector.calibration import Threshold, conformal_p_values
-from inspector.conditions import Conditions, grey
-from inspector.regimes import Regimes
-from inspector.models.base import DensityModel
-from inspector.scoring import anomaly_maps, frame_scores
+from inspector.core.calibration import Threshold, conformal_p_values
+from inspector.core.conditions import Conditions, grey
+from inspector.core.regimes import Regimes
+from inspector.core.models.base import DensityModel
+from inspector.core.scoring import anomaly_maps, frame_scores
 
 
 @dataclass
@@ -32,7 +32,7 @@ class Scores:
     health : list (one per frame) of lists of (condition, measure, limit)
         Camera health conditions of each frame (empty lists when all is well).
     thresholds : ndarray, shape (n,), or None
-        Threshold each frame was held to (its regime's; see :mod:`inspector.regimes`).
+        Threshold each frame was held to (its regime's; see :mod:`inspector.core.regimes`).
     regimes : ndarray, shape (n,), int, or None
         Regime of each frame (None when the baseline has one).
     """
@@ -55,7 +55,7 @@ class Baseline:
     camera, version : str
     model : DensityModel
     center, scale : ndarray, shape (h, w), float32
-        Per-cell standardisation of raw maps (see :mod:`inspector.scoring`).
+        Per-cell standardisation of raw maps (see :mod:`inspector.core.scoring`).
     calibration_scores : ndarray, shape (n,)
         Held-out frame scores of normal frames.
     threshold : Threshold

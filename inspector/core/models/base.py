@@ -3,8 +3,8 @@
 A model has settings in its constructor, learned state after :meth:`DensityModel.fit`,
 and turns frames into a raw anomaly map: negative log-likelihood in nats per map cell
 (higher = more unusual). Standardising maps, frame scores, thresholds and p-values are
-the same for every model and live in :mod:`inspector.scoring` and
-:mod:`inspector.calibration`.
+the same for every model and live in :mod:`inspector.core.scoring` and
+:mod:`inspector.core.calibration`.
 """
 
 from __future__ import annotations

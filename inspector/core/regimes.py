@@ -18,7 +18,7 @@ from typing import Any
 import cv2
 import numpy as np
 
-from inspector.calibration import Threshold
+from inspector.core.calibration import Threshold
 
 #: Smallest silhouette for a split into regimes to be kept.
 MIN_SILHOUETTE = 0.7
@@ -99,7 +99,7 @@ class Regimes:
     centres : ndarray, shape (k, 2)
     scale : ndarray, shape (2,)
     centers, scales : ndarray, shape (k, h, w), float32
-        Per-cell standardisation of each regime (see :mod:`inspector.scoring`).
+        Per-cell standardisation of each regime (see :mod:`inspector.core.scoring`).
     calibration_scores : list of ndarray
         Held-out frame scores of each regime's normal frames.
     thresholds : list of Threshold

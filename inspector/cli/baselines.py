@@ -1,0 +1,51 @@
+"""``inspector baselines CAMERA``: list a camera's baseline versions, or switch to one."""
+
+from __future__ import annotations
+
+import argparse
+
+from inspector.cli.common import add_common, resolve, say
+from inspector.errors import UsageError
+from inspector.jobs.compare import COMPARE_FRAMES, compare_versions, version_rows
+from inspector.storage.store import check_camera_name
+
+
+def register(sub) -> None:
+    p = sub.add_parser("baselines", help="list a camera's baseline versions, or switch to one "
+                                         "(rollback included)")
+    p.add_argument("camera", metavar="CAMERA")
+    p.add_argument("--activate", metavar="VERSION",
+                   help="make VERSION (v1, v2, ...) the active baseline")
+    p.add_argument("--compare", type=int, default=COMPARE_FRAMES, metavar="N",
+                   help=f"before switching, compare flags on the camera's last N scored frames "
+                        f"(default {COMPARE_FRAMES}; 0 skips)")
+    add_common(p)
+    p.set_defaults(func=cmd_baselines)
+
+
+def cmd_baselines(args: argparse.Namespace) -> int:
+    config, store = resolve(args)
+    camera = check_camera_name(args.camera)
+    rows = version_rows(store, camera)
+    if not rows:
+        known = ", ".join(store.cameras()) or "none"
+        raise UsageError(f"camera {camera!r} has no baselines in {store.root} "
+                         f"(cameras: {known})")
+    if args.activate:
+        if args.compare < 0:
+            raise UsageError("--compare must be 0 or more")
+        old = store.active_version(camera)
+        if args.activate not in store.versions(camera):
+            store.activate(camera, args.activate)  # raises the one-line error
+        if args.compare:
+            say(compare_versions(store, config, camera, old, args.activate, args.compare).text())
+        store.activate(camera, args.activate)
+        say(f"{camera}: {args.activate} is now active (was {old or 'none'})")
+        return 0
+    say(f"{'version':<9}{'active':<8}{'model':<6}{'frames':>7}  {'first frame':<20}"
+        f"{'last frame':<20}{'threshold':>10}{'false-alarm rate':>18}{'+false alarms':>15}")
+    for r in rows:
+        say(f"{r['version']:<9}{'yes' if r['active'] else '':<8}{r['model']:<6}{r['frames']:>7}  "
+            f"{r['first'][:19]:<20}{r['last'][:19]:<20}{r['threshold']:>10.3f}"
+            f"{r['false_alarm_rate']:>18.4g}{r['false_alarms_added']:>15}")
+    return 0

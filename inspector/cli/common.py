@@ -1,0 +1,67 @@
+"""What every command shares: the --store/--config options, output options, reading the
+config and store, checking SOURCE, and printing to the terminal."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from inspector.config import Config, load_config
+from inspector.errors import UsageError
+from inspector.storage.store import Store
+
+
+def add_common(p: argparse.ArgumentParser) -> None:
+    """--store and --config, shared by every command."""
+    p.add_argument("--store", type=Path, help="baseline store folder (default from config)")
+    p.add_argument("--config", type=Path, help="TOML config file (default: config/inspector.toml "
+                                               "if present)")
+
+
+def add_outputs(p: argparse.ArgumentParser) -> None:
+    """Output options shared by scan and watch."""
+    p.add_argument("--out", type=Path, help="results folder (default from config)")
+    p.add_argument("--all-scores", type=Path, metavar="FILE",
+                   help="also write a CSV row for every frame scored")
+    p.add_argument("--maps", type=Path, metavar="DIR",
+                   help="also write each frame's anomaly map as DIR/<camera>/<stem>.npy")
+
+
+def resolve(args: argparse.Namespace) -> tuple[Config, Store]:
+    """Config and store of a command, with command-line options over the config file."""
+    config = load_config(args.config)
+    store = Store(args.store or Path(config.paths.store))
+    return config, store
+
+
+def check_source(source: Path, *outputs: Path | None) -> Path:
+    """SOURCE must be a folder, and no output may land inside it."""
+    if not source.is_dir():
+        raise UsageError(f"SOURCE {str(source)!r} is not a folder")
+    root = source.resolve()
+    for out in outputs:
+        if out is not None:
+            o = out.resolve()
+            if o == root or root in o.parents:
+                raise UsageError(f"output {str(out)!r} is inside SOURCE; inspector never writes "
+                                 "into the folder it reads")
+    return root
+
+
+def say(text: str = "") -> None:
+    print(text, flush=True)
+
+
+def report_scan(summary, out: Path, all_scores: Path | None) -> None:
+    """The closing summary of a scan or watch run."""
+    for note, n in summary.notes.items():
+        say(f"warning: {n} frames of {note}")
+    say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
+        f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
+    events = f"  events: {out / 'events.csv'}" if (out / "events.csv").exists() else ""
+    say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
+        f"skipped: {out / 'skipped.csv'}")
+    if getattr(summary, "health", 0):
+        say(f"camera health: {summary.health} conditions in {out / 'health.csv'}")
+    if all_scores:
+        say(f"all scores: {all_scores}")

@@ -1,0 +1,29 @@
+"""``inspector scan``: score every frame under a folder against its camera's baseline."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from inspector.cli.common import add_common, add_outputs, check_source, report_scan, resolve
+
+
+def register(sub) -> None:
+    p = sub.add_parser("scan", help="score every frame under a folder against its camera's "
+                                    "baseline")
+    p.add_argument("source", type=Path, metavar="SOURCE",
+                   help="folder of frames, one subfolder per camera")
+    add_common(p)
+    add_outputs(p)
+    p.set_defaults(func=cmd_scan)
+
+
+def cmd_scan(args: argparse.Namespace) -> int:
+    from inspector.jobs.scan import run_scan
+
+    config, store = resolve(args)
+    out = args.out or Path(config.paths.out)
+    check_source(args.source, out, args.all_scores, args.maps)
+    summary = run_scan(args.source, config, store, out, args.all_scores, args.maps)
+    report_scan(summary, out, args.all_scores)
+    return 0

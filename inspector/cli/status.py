@@ -1,0 +1,31 @@
+"""``inspector status``: where each camera stands."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from inspector.cli.common import add_common, resolve, say
+from inspector.jobs.status import camera_facts, format_table
+
+
+def register(sub) -> None:
+    p = sub.add_parser("status", help="per camera: active baseline, frames scored, flagged, "
+                                      "skipped and waiting, last frame, current lag, latest "
+                                      "camera health condition")
+    add_common(p)
+    p.add_argument("--out", type=Path, help="results folder whose health.csv gives the latest "
+                                            "camera health condition (default from config)")
+    p.set_defaults(func=cmd_status)
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    config, store = resolve(args)
+    out = args.out or Path(config.paths.out)
+    facts = camera_facts(store, out / "health.csv")
+    if not facts:
+        say(f"no cameras yet in {store.root} (run 'inspector learn' or 'inspector scan')")
+        return 0
+    for line in format_table(facts):
+        say(line)
+    return 0
