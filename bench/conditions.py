@@ -26,10 +26,10 @@ from scipy.stats import beta  # noqa: E402
 from sklearn.metrics import roc_auc_score  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
-from inspector.storage.frames import discover  # noqa: E402
+from inspector.demo.scenario import HEALTH_TRUTH, generate  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
-from inspector.demo.scenario import HEALTH_TRUTH, generate  # noqa: E402
+from inspector.storage.frames import discover  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 CASES = {

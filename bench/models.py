@@ -38,9 +38,9 @@ from sklearn.metrics import roc_auc_score
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import Config  # noqa: E402
-from inspector.storage.frames import discover, iter_frames  # noqa: E402
-from inspector.jobs.learn import learn_camera  # noqa: E402
 from inspector.demo.scenario import generate, load_truth  # noqa: E402
+from inspector.jobs.learn import learn_camera  # noqa: E402
+from inspector.storage.frames import discover, iter_frames  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 BATCH = 16

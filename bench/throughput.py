@@ -29,10 +29,10 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from inspector.config import load_config  # noqa: E402
-from inspector.storage.frames import discover, iter_frames  # noqa: E402
+from inspector.demo.scenario import generate  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import Baselines, run_scan  # noqa: E402
-from inspector.demo.scenario import generate  # noqa: E402
+from inspector.storage.frames import discover, iter_frames  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 

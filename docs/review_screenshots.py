@@ -23,8 +23,9 @@ sys.path.insert(0, str(HERE.parent))
 sys.path.insert(0, str(HERE.parent / "tests"))
 
 from _review_run import Run, serving  # noqa: E402
-from inspector.review.server import LOOPBACK_NAMES, create_app  # noqa: E402
+
 from inspector.demo.scenario import generate  # noqa: E402
+from inspector.review.server import LOOPBACK_NAMES, create_app  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 ARGS = ["--headless", "--disable-gpu", "--no-first-run", "--disable-background-networking",

@@ -12,8 +12,8 @@ from pathlib import Path
 
 from inspector.cli.main import main
 from inspector.config import load_config
-from inspector.storage.ledger import Ledger
 from inspector.demo.scenario import generate
+from inspector.storage.ledger import Ledger
 from inspector.storage.store import Store
 
 #: Small frames keep the tests quick (the defaults are for real cameras).

@@ -6,9 +6,9 @@ import json
 
 import numpy as np
 import pytest
+from _review_run import copy_run, make_run, write_ledger
 from sklearn.metrics import confusion_matrix
 
-from _review_run import copy_run, make_run, write_ledger
 from inspector.jobs.compare import compare_flags, compare_versions, last_scored
 from inspector.storage.labels import Label, connect, put
 

@@ -6,7 +6,11 @@ from datetime import datetime, timedelta
 import numpy as np
 from scipy.stats import binom
 
-from inspector.core.calibration import conformal_p_values, conformal_threshold, time_blocks
+from inspector.core.calibration import (
+    conformal_p_values,
+    conformal_threshold,
+    time_blocks,
+)
 
 
 def test_false_alarm_rate_on_fresh_normal_scores_is_alpha():

@@ -8,12 +8,11 @@ from pathlib import Path
 import cv2
 import numpy as np
 import pytest
+from conftest import noisy_copies, write_frames
 from skimage import data
 
 from inspector.cli.main import main
 from inspector.storage.results import COLUMNS, SKIP_COLUMNS
-
-from conftest import noisy_copies, write_frames
 
 
 def _scene(seed: int) -> np.ndarray:

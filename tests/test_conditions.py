@@ -14,20 +14,25 @@ from scipy.stats import binom, genpareto
 from skimage import data as skdata
 from sklearn.metrics import roc_auc_score
 
-from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
-from inspector.core.conditions import (darker_exposure, find_text_boxes, noise_sigma, phase_shift,
-                                  robust_gain_offset, sharpness)
 from inspector.config import load_config
-from inspector.errors import UsageError
-from inspector.storage.frames import discover
-from inspector.jobs.learn import learn_camera
+from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
+from inspector.core.image import (
+    darker_exposure,
+    noise_sigma,
+    phase_shift,
+    robust_gain_offset,
+    sharpness,
+)
 from inspector.core.regimes import appearance, find_regimes
-from inspector.storage.results import HEALTH_COLUMNS, ResultWriter
-from inspector.jobs.scan import Baselines, scan_files
+from inspector.core.textmask import find_text_boxes
 from inspector.demo.scenario import HEALTH_TRUTH, generate
+from inspector.errors import UsageError
+from inspector.jobs.learn import learn_camera
+from inspector.jobs.scan import Baselines, scan_files
 from inspector.jobs.status import camera_facts, format_table
+from inspector.storage.frames import discover
+from inspector.storage.results import HEALTH_COLUMNS, ResultWriter
 from inspector.storage.store import Store
-
 
 # --- tail of the calibration scores -----------------------------------------------------
 

@@ -5,17 +5,16 @@ import csv
 import cv2
 import numpy as np
 import pytest
+from conftest import noisy_copies, write_frames
 from skimage import data
 from sklearn.metrics import roc_auc_score
 
 from inspector.config import load_config
-from inspector.storage.frames import discover
 from inspector.jobs.learn import learn_camera
-from inspector.storage.results import ResultWriter
 from inspector.jobs.scan import Baselines, scan_folder
+from inspector.storage.frames import discover
+from inspector.storage.results import ResultWriter
 from inspector.storage.store import Store
-
-from conftest import noisy_copies, write_frames
 
 #: AUROC the detector must reach on each texture. Measured 1.000 on all three here; the bound
 #: leaves room for the randomness of defect placement.

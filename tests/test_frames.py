@@ -13,8 +13,14 @@ from PIL import Image
 from skimage import data
 
 from inspector.errors import FrameError
-from inspector.storage.frames import (FrameFile, capture_time, discover, read_frame, time_from_name,
-                              working_size)
+from inspector.storage.frames import (
+    FrameFile,
+    capture_time,
+    discover,
+    read_frame,
+    time_from_name,
+    working_size,
+)
 
 READ = {"long_side": 160, "max_pixels": 10**8, "time_formats": ("%Y%m%d_%H%M%S",)}
 

@@ -10,7 +10,15 @@ import pytest
 from sklearn.metrics import precision_score
 
 from inspector.cli.main import main
-from inspector.storage.labels import COLUMNS, Label, connect, put, read, remove, summarize
+from inspector.storage.labels import (
+    COLUMNS,
+    Label,
+    connect,
+    put,
+    read,
+    remove,
+    summarize,
+)
 
 
 def lab(camera, name, label, when="2026-11-30T22:00:00", note=""):

@@ -6,7 +6,6 @@ import os
 import shutil
 
 import pytest
-
 from _review_run import make_run, serving
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -29,8 +28,8 @@ def browser():
 
 
 def test_filter_label_with_keyboard_and_reload(browser, tmp_path):
-    from inspector.storage.labels import connect, read
     from inspector.review.server import LOOPBACK_NAMES, create_app
+    from inspector.storage.labels import connect, read
 
     run = make_run(tmp_path)
     app = create_app(run.out, run.store, run.config, allowed_hosts=LOOPBACK_NAMES)

@@ -8,12 +8,12 @@ import json
 import cv2
 import numpy as np
 import pytest
-
 from _review_run import copy_run, make_run, serving, write_ledger
+
+from inspector.jobs.scan import read_args
+from inspector.review.server import LOOPBACK_NAMES, create_app
 from inspector.storage.frames import FrameFile, read_frame
 from inspector.storage.labels import connect, read
-from inspector.review.server import LOOPBACK_NAMES, create_app
-from inspector.jobs.scan import read_args
 
 TOKEN = "test-token-123"
 

@@ -10,8 +10,8 @@ import cv2
 import numpy as np
 import pytest
 
-from inspector.errors import UsageError
 from inspector.demo.scenario import CAMERAS, INCIDENTS, Scenario, generate, load_truth
+from inspector.errors import UsageError
 
 SIZE = (320, 180)
 NAME = re.compile(r"^(dock|aisle)_(\d{8}_\d{6})\.jpg$")

@@ -25,10 +25,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from sklearn.metrics import roc_auc_score
 
     from inspector.config import load_config
-    from inspector.storage.frames import discover
+    from inspector.demo.scenario import generate, load_truth
     from inspector.jobs.learn import learn_cameras
     from inspector.jobs.scan import run_scan
-    from inspector.demo.scenario import generate, load_truth
+    from inspector.storage.frames import discover
     from inspector.storage.store import Store
 
     root = args.out

@@ -5,7 +5,13 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from inspector.cli.common import add_common, add_outputs, check_source, report_scan, resolve
+from inspector.cli.common import (
+    add_common,
+    add_outputs,
+    check_source,
+    report_scan,
+    resolve,
+)
 
 
 def register(sub) -> None:

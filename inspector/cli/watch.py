@@ -8,11 +8,23 @@ from dataclasses import replace
 from datetime import datetime
 from pathlib import Path
 
-from inspector.cli.common import add_common, add_outputs, check_source, report_scan, resolve, say
+from inspector.cli.common import (
+    add_common,
+    add_outputs,
+    check_source,
+    report_scan,
+    resolve,
+    say,
+)
 from inspector.core.events import EventSettings
 from inspector.errors import UsageError
 from inspector.jobs.scan import Baselines
-from inspector.jobs.watch import Watcher, WatchReport, WatchSettings, refuse_second_watcher
+from inspector.jobs.watch import (
+    Watcher,
+    WatchReport,
+    WatchSettings,
+    refuse_second_watcher,
+)
 from inspector.storage.ledger import Ledger
 from inspector.storage.results import ResultWriter
 

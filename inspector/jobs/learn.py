@@ -22,19 +22,30 @@ import numpy as np
 from PIL import Image
 
 import inspector
-from inspector.core.baseline import Baseline
-from inspector.core.calibration import (alarms_to_alpha, conformal_threshold, tail_threshold,
-                                   time_blocks)
-from inspector.core.conditions import (Conditions, boxes_mask, darker_exposure, find_text_boxes,
-                                  grey)
 from inspector.config import CameraConfig, Config, settings_dict
-from inspector.errors import FrameError, UsageError
+from inspector.core.baseline import Baseline
+from inspector.core.calibration import (
+    alarms_to_alpha,
+    conformal_threshold,
+    tail_threshold,
+    time_blocks,
+)
+from inspector.core.conditions import Conditions
 from inspector.core.features import rasterize_mask
-from inspector.storage.frames import FrameFile, Skip, capture_time, iter_frames, working_size
+from inspector.core.image import darker_exposure, grey
 from inspector.core.models import model_class
 from inspector.core.regimes import Regimes, appearance, find_regimes
 from inspector.core.scoring import anomaly_maps, frame_scores, location_stats
+from inspector.core.textmask import boxes_mask, find_text_boxes
+from inspector.errors import FrameError, UsageError
 from inspector.jobs.progress import progress_bar
+from inspector.storage.frames import (
+    FrameFile,
+    Skip,
+    capture_time,
+    iter_frames,
+    working_size,
+)
 from inspector.storage.store import Store
 
 #: Fewer normal frames than this cannot make a baseline at all.
@@ -109,7 +120,7 @@ class PreparedSource:
 
     With ``exposure`` > 0, every other frame (chosen at random, the same on every pass) is
     first made to look like a shorter exposure, darker by up to that fraction with the
-    sensor noise unchanged (:func:`inspector.core.conditions.darker_exposure`), so the model and
+    sensor noise unchanged (:func:`inspector.core.image.darker_exposure`), so the model and
     its calibration know the extra noise a normalised darker frame carries.
     """
 

@@ -12,11 +12,11 @@ from pathlib import Path
 
 import numpy as np
 
-from inspector.core.baseline import Baseline
 from inspector.config import Config
+from inspector.core.baseline import Baseline
 from inspector.errors import FrameError
-from inspector.storage.frames import Frame, FrameFile, discover, iter_frames
 from inspector.jobs.progress import progress_bar
+from inspector.storage.frames import Frame, FrameFile, discover, iter_frames
 from inspector.storage.results import FrameResult, ResultWriter
 from inspector.storage.store import Store
 

@@ -35,12 +35,19 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from inspector.errors import FrameError, UsageError
 from inspector.core.events import EventSettings, group_events, write_events
-from inspector.storage.frames import FrameFile, Skip, discover, frame_file, is_ignored_name, read_frame
+from inspector.errors import FrameError, UsageError
+from inspector.jobs.scan import Baselines, ScanSummary, score_frames
+from inspector.storage.frames import (
+    FrameFile,
+    Skip,
+    discover,
+    frame_file,
+    is_ignored_name,
+    read_frame,
+)
 from inspector.storage.ledger import Ledger, now_iso
 from inspector.storage.results import ResultWriter, format_row, iso_time
-from inspector.jobs.scan import Baselines, ScanSummary, score_frames
 
 
 @dataclass(frozen=True)

@@ -22,12 +22,21 @@ from markupsafe import Markup
 from werkzeug.exceptions import HTTPException
 from werkzeug.security import safe_join
 
-from inspector.core.baseline import Baseline
 from inspector.config import Config
+from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
-from inspector.storage.frames import FrameFile, read_frame, sniff
-from inspector.storage.labels import LABEL_TEXT, LABELS, Label, connect, now, put, read, remove
 from inspector.review.data import Item, Results, parse_filters, select, timeline_svg
+from inspector.storage.frames import FrameFile, read_frame, sniff
+from inspector.storage.labels import (
+    LABEL_TEXT,
+    LABELS,
+    Label,
+    connect,
+    now,
+    put,
+    read,
+    remove,
+)
 from inspector.storage.store import Store
 
 #: The longest note kept with a label.

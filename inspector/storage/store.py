@@ -28,9 +28,9 @@ import numpy as np
 from inspector.core.baseline import Baseline
 from inspector.core.calibration import Threshold
 from inspector.core.conditions import Conditions
+from inspector.core.models import model_class
 from inspector.core.regimes import Regimes
 from inspector.errors import UsageError
-from inspector.core.models import model_class
 
 _VERSION_RE = re.compile(r"^v(\d+)$")
 _NAME_RE = re.compile(r"^[^/\\\x00]+$")

@@ -33,8 +33,13 @@ from typing import Any
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from inspector.core.features import (feature_size, fold_to_cells, grid_shape, observed_features,
-                                patch_features)
+from inspector.core.features import (
+    feature_size,
+    fold_to_cells,
+    grid_shape,
+    observed_features,
+    patch_features,
+)
 from inspector.core.models.base import DensityModel, FrameSource, HeldOut
 
 LOG_2PI = float(np.log(2.0 * np.pi))
