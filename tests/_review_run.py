@@ -78,15 +78,16 @@ def write_ledger(database: Path, rows: list[tuple[str, str, float]]) -> None:
 
 
 @contextmanager
-def serving(app):
-    """Serve a WSGI app on 127.0.0.1 on a free port in a thread; yields the base URL."""
-    from werkzeug.serving import make_server
+def serving(app, host: str = "127.0.0.1", **options):
+    """Serve the review app as the command does, on a free port in a thread; yields the base
+    URL."""
+    from inspector.review.server import make_server
 
-    server = make_server("127.0.0.1", 0, app, threaded=True)
+    server = make_server(app, host, 0, **options)
     thread = threading.Thread(target=server.serve_forever, daemon=True)
     thread.start()
     try:
-        yield f"http://127.0.0.1:{server.server_port}"
+        yield f"http://{host}:{server.server_port}"
     finally:
         server.shutdown()
         server.server_close()

@@ -28,11 +28,11 @@ def browser():
 
 
 def test_filter_label_with_keyboard_and_reload(browser, tmp_path):
-    from inspector.review.server import LOOPBACK_NAMES, create_app
+    from inspector.review.server import create_app
     from inspector.storage.labels import connect, read
 
     run = make_run(tmp_path)
-    app = create_app(run.out, run.store, run.config, allowed_hosts=LOOPBACK_NAMES)
+    app = create_app(run.out, run.store, run.config)
     with serving(app) as url:
         page = browser.new_page(viewport={"width": 1300, "height": 900})
         errors = []

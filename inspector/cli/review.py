@@ -4,7 +4,6 @@ what each baseline version changes. See :mod:`inspector.review.server`."""
 from __future__ import annotations
 
 import argparse
-import ipaddress
 import logging
 import secrets
 from pathlib import Path
@@ -24,24 +23,17 @@ def register(sub) -> None:
                    help="address to listen on (default 127.0.0.1: this machine only)")
     p.add_argument("--port", type=int, default=PORT, help=f"port (default {PORT}; 0 picks a "
                                                           "free one)")
+    p.add_argument("--allow-host", action="append", default=[], metavar="NAME",
+                   help="also answer requests addressed to NAME (a reverse proxy's or another "
+                        "name of this machine; repeatable). The page always answers to "
+                        "localhost, the --host address and this machine's host name")
     p.set_defaults(func=cmd_review)
 
 
-def is_loopback(host: str) -> bool:
-    if host == "localhost":
-        return True
-    try:
-        return ipaddress.ip_address(host.strip("[]")).is_loopback
-    except ValueError:
-        return False
-
-
 def cmd_review(args: argparse.Namespace) -> int:
-    from werkzeug.serving import make_server
-
     from inspector.errors import UsageError
     from inspector.review.data import read_run
-    from inspector.review.server import LOOPBACK_NAMES, create_app
+    from inspector.review.server import Hosts, create_app, is_loopback, make_server
     from inspector.storage.store import Store
 
     config, store = resolve(args)
@@ -65,10 +57,10 @@ def cmd_review(args: argparse.Namespace) -> int:
             "see frames and, with the page's token, write labels")
     token = secrets.token_urlsafe(24)
     app = create_app(out, store, config, token=token,
-                     allowed_hosts=LOOPBACK_NAMES if loopback else None)
+                     hosts=Hosts.for_bind(args.host, args.allow_host))
     logging.getLogger("werkzeug").setLevel(logging.WARNING)
     try:
-        server = make_server(args.host, args.port, app, threaded=True)
+        server = make_server(app, args.host, args.port)
     except OSError as exc:
         raise UsageError(f"cannot listen on {args.host}:{args.port}: "
                          f"{exc.strerror or exc}") from None

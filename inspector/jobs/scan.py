@@ -26,7 +26,7 @@ BATCH = 8
 
 
 class Baselines:
-    """Active baselines, loaded once per camera and reused.
+    """Loaded baselines, each loaded once and reused (scan, watch and the review page).
 
     ``get`` raises LookupError("no baseline for camera X") for a camera without one.
     """
@@ -34,27 +34,28 @@ class Baselines:
     def __init__(self, store: Store, config: Config):
         self.store = store
         self.config = config
-        self._loaded: dict[str, Baseline | LookupError] = {}
+        self._loaded: dict[tuple[str, str | None], Baseline | LookupError] = {}
         self._lock = threading.Lock()  # watch scores from several threads: load once
 
-    def get(self, camera: str) -> Baseline:
+    def get(self, camera: str, version: str | None = None) -> Baseline:
+        """The camera's active baseline, or the given version of it."""
+        key = (camera, version)
         with self._lock:
-            if camera not in self._loaded:
+            if key not in self._loaded:
                 try:
-                    self._loaded[camera] = self.store.load(camera)
+                    self._loaded[key] = self.store.load(camera, version)
                 except LookupError as exc:
-                    self._loaded[camera] = exc
-            found = self._loaded[camera]
+                    self._loaded[key] = exc
+            found = self._loaded[key]
         if isinstance(found, LookupError):
             raise found
         return found
 
     def forget(self, camera: str | None = None) -> None:
         """Reload on next use (after ``learn`` or an activation)."""
-        if camera is None:
-            self._loaded.clear()
-        else:
-            self._loaded.pop(camera, None)
+        with self._lock:
+            for key in [k for k in self._loaded if camera is None or k[0] == camera]:
+                del self._loaded[key]
 
     def read_args(self, camera: str) -> dict:
         """Arguments of :func:`inspector.storage.frames.read_frame` for this camera's frames."""

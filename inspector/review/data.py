@@ -37,7 +37,10 @@ class Item:
         ``f<row>`` for a row of flagged.csv, ``e<row>`` for a row of events.csv,
         ``p<n>`` for an unflagged frame of the timelines.
     path : Path
-        Absolute path of the (peak) frame.
+        Absolute path of the (peak) frame as the results name it; the page reads it only
+        through its boundary check on ``rel`` (see :func:`inspector.review.server.inside`).
+    overlay : str
+        The saved overlay, relative to the results folder ('' when none was saved).
     members : list of str
         Absolute paths of the flagged frames a label applies to.
     """
@@ -52,7 +55,7 @@ class Item:
     threshold: float
     p_value: float
     version: str
-    overlay: Path | None = None
+    overlay: str = ""
     flagged: bool = True
     event: str = ""
     start: datetime | None = None
@@ -144,11 +147,11 @@ class Results:
             items[-1].members = [str(items[-1].path)]
         return items
 
-    def _overlay(self, camera: str, written: str) -> Path | None:
-        if not written:
-            return None
-        path = self.out / "overlays" / camera / Path(written).name
-        return path if path.is_file() else None
+    @staticmethod
+    def _overlay(camera: str, written: str) -> str:
+        """Where the row's saved overlay lies in the results folder ('' when none); whether it
+        is there, and inside the folder, is checked when it is served."""
+        return f"overlays/{camera}/{Path(written).name}" if written else ""
 
     def _read_events(self, flagged: list[Item]) -> list[Item]:
         events = []
@@ -173,7 +176,7 @@ class Results:
                 time=top.time if top else start, score=score,
                 threshold=top.threshold if top else math.nan,
                 p_value=top.p_value if top else math.nan, version=top.version if top else "",
-                overlay=top.overlay if top else None, event=row.get("event") or str(n),
+                overlay=top.overlay if top else "", event=row.get("event") or str(n),
                 start=start, end=end, frames=count, members=members))
         return events
 
@@ -380,8 +383,8 @@ def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str
     def y(v: float) -> float:
         return pad_t + ph - (symlog(v) - lo) / (hi - lo) * ph
 
-    parts = [f'<svg class="timeline" role="img" aria-label="{title}" viewBox="0 0 {width} '
-             f'{height}" width="{width}" height="{height}" data-camera="{escape(camera)}">',
+    parts = [(f'<svg class="timeline" role="img" aria-label="{title}" viewBox="0 0 {width} '
+             f'{height}" width="{width}" height="{height}" data-camera="{escape(camera)}">'),
              f'<title>{title}</title>',
              f'<rect x="{pad_l}" y="{pad_t}" width="{pw}" height="{ph}" class="plot"/>']
     for e in evs:

@@ -12,6 +12,12 @@ MIN_WIDTH = 640
 _OUTLINE = (255, 255, 255)
 
 
+def overlay_caption(camera: str, time: str, score: float, threshold: float) -> str:
+    """The caption of every overlay, saved or drawn on the spot (ASCII: drawn by OpenCV)."""
+    sign = ">" if score > threshold else "<="
+    return f"{camera}  {time}  score {score:.2f} {sign} threshold {threshold:.2f}"
+
+
 def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
                    caption: str) -> np.ndarray:
     """The frame with a translucent heatmap, the flagged region outlined, and a caption.

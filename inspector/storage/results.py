@@ -19,7 +19,7 @@ import cv2
 import numpy as np
 
 from inspector.core.events import EventSettings, FramePoint, group_events, write_events
-from inspector.storage.overlay import render_overlay
+from inspector.storage.overlay import overlay_caption, render_overlay
 from inspector.storage.store import write_json
 
 if TYPE_CHECKING:
@@ -204,8 +204,7 @@ class ResultWriter:
             name = self._unique("overlay", r.camera, r.frame)
             path = self.out / "overlays" / r.camera / f"{name}.jpg"
             path.parent.mkdir(parents=True, exist_ok=True)
-            caption = (f"{r.camera}  {iso_time(r.time)}  score {r.score:.2f} > "
-                       f"threshold {r.threshold:.2f}")
+            caption = overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold)
             cv2.imwrite(str(path), render_overlay(r.image, r.amap, r.threshold, caption),
                         [cv2.IMWRITE_JPEG_QUALITY, 90])
             overlay = path.as_posix()
