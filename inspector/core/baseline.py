@@ -9,7 +9,6 @@ import numpy as np
 
 from inspector.core.calibration import Threshold, conformal_p_values
 from inspector.core.conditions import Conditions
-from inspector.core.image import grey
 from inspector.core.models.base import DensityModel
 from inspector.core.regimes import Regimes
 from inspector.core.scoring import anomaly_maps, frame_scores
@@ -103,7 +102,7 @@ class Baseline:
         """
         if self.conditions is None:
             return np.asarray(images)
-        return self.conditions.prepare(images)[0]
+        return self.conditions.prepare(images).images
 
     def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.
@@ -121,13 +120,13 @@ class Baseline:
         if self.conditions is None:
             prepared = images
         else:
-            prepared, shifts = self.conditions.prepare(images)
+            rec = self.conditions.prepare(images)
+            prepared = rec.images
             if self.conditions.health:
-                m = self.conditions.measures(images, self._previous if sequence else None,
-                                             shifts)
+                m = self.conditions.measures(rec, self._previous if sequence else None)
                 health = self.conditions.conditions(m)
             if sequence and len(images):
-                self._previous = grey(images[-1:])[0]
+                self._previous = rec.grey[-1]
         raw = self.model.score_maps(prepared)
         healthy = np.array([not h for h in health], bool)
         if self.regimes is None or not len(images):

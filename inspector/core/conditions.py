@@ -23,7 +23,7 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import cv2
@@ -40,6 +40,7 @@ from inspector.core.image import (
     robust_gain_offset,
     shift_images,
 )
+from inspector.core.estimator import Estimator
 
 #: Lighting modes of :func:`photometric`.
 LIGHTING_MODES = ("global", "local", "off")
@@ -55,7 +56,38 @@ COVER_CORRELATION = 0.2
 
 
 @dataclass
-class Conditions:
+class Prepared:
+    """Frames after :meth:`Conditions.prepare`, with what preparation measured on them.
+
+    Handed on to the model (``images``) and to the health measures (:meth:`Conditions.measures`),
+    so the grey frame, the shift and the gain of a frame are computed once.
+
+    Attributes
+    ----------
+    images : ndarray, shape (n, H, W, 3), uint8
+        Aligned and normalised frames, as the model sees them.
+    grey : ndarray, shape (n, H, W), float32
+        Grey (:func:`~inspector.core.image.grey`) of the frames as captured.
+    aligned : ndarray, shape (n, H, W), float32
+        That grey moved back by the measured shift, however large (``grey`` where none).
+    shifts : ndarray, shape (n, 2), float
+        Measured (dx, dy) of each frame; frames beyond ``max_shift`` are not moved.
+    gains : ndarray, shape (n, 2), float
+        Robust (gain, offset) of ``reference ~ gain * aligned + offset``
+        (:func:`~inspector.core.image.robust_gain_offset`); (1, 0) without a reference.
+    """
+
+    images: np.ndarray
+    grey: np.ndarray
+    aligned: np.ndarray
+    shifts: np.ndarray
+    gains: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.images)
+
+
+class Conditions(Estimator):
     """A camera's normal conditions, learnt with its baseline, applied to every frame.
 
     Parameters
@@ -67,43 +99,45 @@ class Conditions:
         Largest shift corrected, in working pixels; beyond it, "camera moved".
     health : bool
         Report health conditions (and keep frames with one from being flagged).
-    limits : dict of str to float
-        Limit of each health measure (see :meth:`fit`).
+    limits : dict of str to float, optional
+        Health limits asked for, before :meth:`fit` widens them (missing keys take
+        :data:`DEFAULT_LIMITS`).
 
     Attributes
     ----------
-    reference : ndarray, shape (H, W), float32
-        Median grey of the (aligned, normalised) sample of normal frames.
-    reference_rgb : ndarray, shape (H, W, 3), uint8
+    reference_ : ndarray, shape (H, W), float32, or None
+        Median grey of the (aligned, normalised) sample of normal frames (None when fitted
+        on no frames: frames then pass through unchanged).
+    reference_rgb_ : ndarray, shape (H, W, 3), uint8, or None
         Their median colour (fills what a shift uncovers; bounds clipped pixels).
-    ignore : ndarray, shape (H, W), bool, or None
+    ignore_ : ndarray, shape (H, W), bool, or None
         Pixels left out of the fits and the health measures (user mask and text overlays).
-    ref_cells : ndarray, shape (g, g), float32
+    ref_cells_ : ndarray, shape (g, g), float32, or None
         Median cell contrast of the normal frames (which cells have texture to lose).
-    ref_detail : ndarray, shape (g, g), float32
+    ref_detail_ : ndarray, shape (g, g), float32, or None
         Median cell detail (:func:`cell_detail`) of the normal frames, brought to the
         reference's gain.
+    limits_ : dict of str to float
+        Health limits in force (see :meth:`fit`).
     """
 
-    lighting: str = "local"
-    register: bool = True
-    max_shift: float = 8.0
-    health: bool = True
-    limits: dict[str, float] = field(default_factory=dict)
-    reference: np.ndarray | None = None
-    reference_rgb: np.ndarray | None = None
-    ignore: np.ndarray | None = None
-    ref_cells: np.ndarray | None = None
-    ref_detail: np.ndarray | None = None
-    #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
-    _ref_terms: tuple | None = field(default=None, init=False, repr=False, compare=False)
+    def __init__(self, lighting: str = "local", register: bool = True, max_shift: float = 8.0,
+                 health: bool = True, limits: dict[str, float] | None = None):
+        if lighting not in LIGHTING_MODES:
+            raise ValueError(f"lighting must be one of {LIGHTING_MODES}, got {lighting!r}")
+        self.lighting = lighting
+        self.register = register
+        self.max_shift = max_shift
+        self.health = health
+        self.limits = limits
+        #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
+        self._ref_terms: tuple | None = None
 
     # -- learning ------------------------------------------------------------------------
-    def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
-            defaults: dict[str, float] | None = None) -> "Conditions":
+    def fit(self, images: np.ndarray, ignore: np.ndarray | None = None) -> "Conditions":
         """Learn the reference and the health limits from a sample of normal frames.
 
-        Limits start from ``defaults`` (``dark``: 99th percentile of grey below which a
+        Limits start from ``limits`` (``dark``: 99th percentile of grey below which a
         frame is too dark; ``bright``: share of clipped pixels above which it is
         overexposed; ``covered``: share of the reference's textured cells that no longer
         correlate with it; ``focus``: median over textured cells of their detail (variance of the
@@ -115,31 +149,37 @@ class Conditions:
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
-            Normal frames in time order.
+            Normal frames in time order (none: nothing is learnt, frames pass through).
         ignore : ndarray, shape (H, W), bool, optional
         """
-        self.ignore = ignore
+        images = np.asarray(images)
+        self.ignore_ = ignore
+        self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
+        self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
+        self._ref_terms = None
+        if not len(images):
+            return self
         ref = np.median(grey(images), axis=0)
         ref_rgb = None
         for _ in range(2):  # align and normalise the sample to a first reference, then redo
-            rgb = self.prepare(images, reference=ref, reference_rgb=ref_rgb)[0]
+            rgb = self._prepare(images, ref, ref_rgb).images
             ref = np.median(grey(rgb), axis=0)
             ref_rgb = np.median(rgb, axis=0).astype(np.uint8)
-        self.reference = ref.astype(np.float32)
-        self.reference_rgb = ref_rgb
-        rgb, shifts = self.prepare(images)
-        self.ref_cells = np.median(np.stack([cell_contrast(x) for x in grey(rgb)]), axis=0)
-        self.ref_detail = np.median(np.stack([self._detail(x) for x in grey(images)]), axis=0)
-        self.set_limits(self.measures(images, shifts=shifts), defaults)
+        self.reference_ = ref.astype(np.float32)
+        self.reference_rgb_ = ref_rgb
+        rec = self.prepare(images)
+        self.ref_cells_ = np.median(np.stack([cell_contrast(x) for x in grey(rec.images)]),
+                                    axis=0)
+        self.ref_detail_ = np.median(self._detail(rec), axis=0)
+        self.set_limits(self.measures(rec))
         return self
 
-    def set_limits(self, m: dict[str, np.ndarray], defaults: dict[str, float] | None = None
-                   ) -> None:
-        """Health limits from ``defaults`` widened by the measures ``m`` of normal frames
+    def set_limits(self, m: dict[str, np.ndarray]) -> None:
+        """Health limits from ``limits`` widened by the measures ``m`` of normal frames
         (see :meth:`fit`); call again with the measures of all normal frames when known."""
-        d = dict(DEFAULT_LIMITS)
-        d.update(defaults or {})
-        self.limits = {
+        self.check_fitted()
+        d = {**DEFAULT_LIMITS, **(self.limits or {})}
+        self.limits_ = {
             "dark": float(min(d["dark"], 0.7 * np.min(m["dark"]))),
             "bright": float(min(0.99, max(d["bright"], 1.5 * np.max(m["bright"])))),
             "covered": float(min(0.99, max(d["covered"], np.max(m["covered"]) + 0.2))),
@@ -148,9 +188,8 @@ class Conditions:
         }
 
     # -- per frame -----------------------------------------------------------------------
-    def prepare(self, images: np.ndarray, reference: np.ndarray | None = None,
-                reference_rgb: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """Align and normalise frames to the reference.
+    def prepare(self, images: np.ndarray) -> Prepared:
+        """Align and normalise frames to the learnt reference.
 
         A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
         the places where burned-in text (which does not move with the camera) would land are
@@ -165,38 +204,48 @@ class Conditions:
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
-        reference, reference_rgb : ndarray, optional
-            Used instead of the learnt ones (while learning them).
 
         Returns
         -------
-        prepared : ndarray, shape (n, H, W, 3), uint8
-        shifts : ndarray, shape (n, 2), float
-            Measured (dx, dy) of each frame; frames beyond ``max_shift`` are not moved.
+        Prepared
+            The prepared frames with their grey, shifts and gains.
+
+        Raises
+        ------
+        NotFittedError
+            Before :meth:`fit`.
         """
-        if reference is None:
-            ref, ref_rgb = self.reference, self.reference_rgb
-        else:
-            ref, ref_rgb = reference, reference_rgb
+        self.check_fitted()
+        return self._prepare(images, self.reference_, self.reference_rgb_)
+
+    def _prepare(self, images: np.ndarray, ref: np.ndarray | None,
+                 ref_rgb: np.ndarray | None) -> Prepared:
+        """:meth:`prepare` against a given reference (also while learning it)."""
         images = np.asarray(images)
-        shifts = np.zeros((len(images), 2))
-        if ref is None or (not self.register and self.lighting == "off"):
-            return images, shifts
-        keep = None if self.ignore is None else ~self.ignore
+        n = len(images)
+        g_all = grey(images)
+        aligned = g_all.copy()
+        shifts = np.zeros((n, 2))
+        gains = np.tile([1.0, 0.0], (n, 1))
+        if ref is None or (not self.register and self.lighting == "off" and not self.health):
+            return Prepared(images, g_all, aligned, shifts, gains)
+        keep = None if self.ignore_ is None else ~self.ignore_
         out = np.empty_like(images)
         sigma = max(images.shape[1:3]) / 8.0
         ones = np.ones(images.shape[1:3], np.float32)
-        ignore = (np.zeros(images.shape[1:3], np.float32) if self.ignore is None
-                  else self.ignore.astype(np.float32))
+        ignore = (np.zeros(images.shape[1:3], np.float32) if self.ignore_ is None
+                  else self.ignore_.astype(np.float32))
         for i, img in enumerate(images):
-            g = grey(img[None])[0]
+            g = g_all[i]
             fill = None
             if self.register:
-                dx, dy = phase_shift(g, ref, self.ignore)
+                dx, dy = phase_shift(g, ref, self.ignore_)
                 if np.hypot(dx, dy) > 0.05:
                     moved_back = shift_images(g, -dx, -dy)
                     if correlation(moved_back, ref, keep) <= correlation(g, ref, keep):
                         dx = dy = 0.0  # no better aligned: a large change fooled the peak
+                    else:
+                        aligned[i] = moved_back
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
                     img = shift_images(img, -dx, -dy)
@@ -208,10 +257,10 @@ class Conditions:
                     ghost = cv2.warpAffine(ignore, m, (w, h), flags=cv2.INTER_LINEAR,
                                            borderMode=cv2.BORDER_CONSTANT, borderValue=0)
                     fill = (covered < 0.999) | (ghost > 0.001)
+            gain, offset = gains[i] = robust_gain_offset(g, ref, keep)
             if self.lighting == "off":
                 f = img.astype(np.float32)
             else:
-                gain, offset = robust_gain_offset(g, ref, keep)
                 f = img.astype(np.float32) * gain + offset
                 if self.lighting == "local":
                     f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
@@ -224,7 +273,7 @@ class Conditions:
             if fill is not None and ref_rgb is not None:
                 f[fill] = ref_rgb[fill]
             out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)
-        return out, shifts
+        return Prepared(out, g_all, aligned, shifts, gains)
 
     def _reference_terms(self, ref_rgb: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """The colour reference as float32 and the dilated mask of its clipped whites,
@@ -235,58 +284,56 @@ class Conditions:
                                cv2.dilate(clipped, _NEAR))
         return self._ref_terms[1], self._ref_terms[2]
 
-    def measures(self, images: np.ndarray, previous: np.ndarray | None = None,
-                 shifts: np.ndarray | None = None) -> dict[str, np.ndarray]:
-        """Health measures of each frame (see :meth:`fit` for their meaning).
+    def measures(self, prepared: Prepared, previous: np.ndarray | None = None
+                 ) -> dict[str, np.ndarray]:
+        """Health measures of each frame (see :meth:`fit` for their meaning), from what
+        :meth:`prepare` measured.
 
         Parameters
         ----------
-        images : ndarray, shape (n, H, W, 3), uint8
-            Frames as captured.
+        prepared : Prepared
+            The frames' preparation record.
         previous : ndarray, shape (H, W), float, optional
             Grey of the frame before the first one (for "frozen feed").
-        shifts : ndarray, shape (n, 2), optional
-            Shifts measured by :meth:`prepare` ("camera moved"; the "lens covered" measure
-            compares the frame aligned by them).
 
         Returns
         -------
         dict of str to ndarray, shape (n,)
             ``dark``, ``bright``, ``covered``, ``focus``, ``frozen``, ``shift``.
         """
-        g = grey(images)
-        keep = np.ones(g.shape[1:], bool) if self.ignore is None else ~self.ignore
+        self.check_fitted()
+        g = prepared.grey
+        keep = np.ones(g.shape[1:], bool) if self.ignore_ is None else ~self.ignore_
         n = len(g)
-        out = {k: np.zeros(n) for k in ("dark", "bright", "covered", "focus", "frozen", "shift")}
-        textured = self.ref_cells > max(2.0, 0.1 * float(np.median(self.ref_cells))) \
-            if self.ref_cells is not None else None
+        out = {k: np.zeros(n) for k in ("dark", "bright", "covered", "focus", "frozen")}
+        out["shift"] = np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1])
+        textured = self.ref_cells_ > max(2.0, 0.1 * float(np.median(self.ref_cells_))) \
+            if self.ref_cells_ is not None else None
+        usable = textured is not None and bool(textured.any())
+        detail = self._detail(prepared) if usable and self.ref_detail_ is not None else None
         for i in range(n):
             px = g[i][keep]
             out["dark"][i] = np.percentile(px[::4], 99)  # a quarter of the pixels is plenty
             out["bright"][i] = float(np.mean(px >= 250))
-            if textured is not None and textured.any() and self.reference is not None:
-                aligned = g[i] if shifts is None else shift_images(g[i], *(-shifts[i]))
-                lost = cell_correlation(aligned, self.reference) < COVER_CORRELATION
+            if usable and self.reference_ is not None:
+                lost = cell_correlation(prepared.aligned[i], self.reference_) < COVER_CORRELATION
                 out["covered"][i] = float(lost[textured].mean())
-            if textured is not None and textured.any() and self.ref_detail is not None:
-                ratio = self._detail(g[i]) / np.maximum(self.ref_detail, 1e-6)
+            if detail is not None:
+                ratio = detail[i] / np.maximum(self.ref_detail_, 1e-6)
                 out["focus"][i] = float(np.median(ratio[textured]))
             else:
                 out["focus"][i] = 1.0
             before = previous if i == 0 else g[i - 1]
             out["frozen"][i] = (float(np.abs(g[i] - before)[keep].mean())
                                 if before is not None else np.inf)
-            if shifts is not None:
-                out["shift"][i] = float(np.hypot(*shifts[i]))
         return out
 
-    def _detail(self, g: np.ndarray) -> np.ndarray:
-        """Cell detail of a grey frame at the reference's gain."""
-        if self.reference is not None:
-            keep = None if self.ignore is None else ~self.ignore
-            gain, _ = robust_gain_offset(g, self.reference, keep)
-            g = g * gain
-        return cell_detail(g)
+    @staticmethod
+    def _detail(prepared: Prepared) -> np.ndarray:
+        """Cell detail (:func:`cell_detail`) of each captured frame at the reference's gain,
+        shape (n, g, g)."""
+        return np.stack([cell_detail(g * gain)
+                         for g, gain in zip(prepared.grey, prepared.gains[:, 0])])
 
     def conditions(self, m: dict[str, np.ndarray]) -> list[list[tuple[str, float, float]]]:
         """Health conditions of each frame from its measures.
@@ -295,7 +342,8 @@ class Conditions:
         -------
         list (one per frame) of lists of (condition, measure, limit)
         """
-        lim = self.limits
+        self.check_fitted()
+        lim = self.limits_
         rows: list[list[tuple[str, float, float]]] = []
         for i in range(len(m["dark"])):
             found = []
@@ -319,26 +367,31 @@ class Conditions:
         return rows
 
     # -- persistence ---------------------------------------------------------------------
+    #: Learned arrays as saved (``conditions.npz`` keys; attribute = key + "_").
+    _ARRAYS = ("reference", "reference_rgb", "ignore", "ref_cells", "ref_detail")
+
     def to_json(self) -> dict[str, Any]:
+        """Settings and the health limits in force, JSON-ready (``limits`` are the learnt
+        ones, ``limits_asked`` the constructor's)."""
+        self.check_fitted()
         return {"lighting": self.lighting, "register": self.register,
-                "max_shift": self.max_shift, "health": self.health, "limits": self.limits}
+                "max_shift": self.max_shift, "health": self.health, "limits": self.limits_,
+                "limits_asked": self.limits}
 
     def arrays(self) -> dict[str, np.ndarray]:
-        out = {}
-        for k in ("reference", "reference_rgb", "ignore", "ref_cells", "ref_detail"):
-            v = getattr(self, k)
-            if v is not None:
-                out[k] = v
-        return out
+        """Learned arrays by their saved names (None ones left out)."""
+        self.check_fitted()
+        return {k: v for k in self._ARRAYS if (v := getattr(self, k + "_")) is not None}
 
     @classmethod
     def from_saved(cls, meta: dict[str, Any], arrays: dict[str, np.ndarray]) -> "Conditions":
+        """Rebuild fitted conditions from :meth:`to_json` and :meth:`arrays`."""
+        limits = {k: float(v) for k, v in meta["limits"].items()}
+        asked = meta.get("limits_asked")
         c = cls(lighting=meta["lighting"], register=bool(meta["register"]),
                 max_shift=float(meta["max_shift"]), health=bool(meta["health"]),
-                limits={k: float(v) for k, v in meta["limits"].items()})
-        c.reference = arrays.get("reference")
-        c.reference_rgb = arrays.get("reference_rgb")
-        c.ignore = arrays.get("ignore")
-        c.ref_cells = arrays.get("ref_cells")
-        c.ref_detail = arrays.get("ref_detail")
+                limits=limits if asked is None else {k: float(v) for k, v in asked.items()})
+        for k in cls._ARRAYS:
+            setattr(c, k + "_", arrays.get(k))
+        c.limits_ = limits
         return c

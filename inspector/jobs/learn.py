@@ -141,18 +141,24 @@ class PreparedSource:
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         for idx, images in self.source.batches(indices, batch_size):
-            varied = images
+            # The record of the frames as captured feeds the health measures; frames made
+            # darker are prepared again for the model.
+            rec = self.conditions.prepare(images)
+            prepared = rec.images
             if self.exposure > 0:
-                varied = images.copy()
+                darker = {}
                 for j, i in enumerate(idx):
                     rng = np.random.default_rng([7, int(i)])
                     if rng.random() < 0.5:
                         gain = 1.0 - self.exposure * rng.random()
-                        varied[j] = darker_exposure(images[j], gain, rng)
-            prepared, shifts = self.conditions.prepare(varied)
-            if self.conditions.reference is not None and not all(
+                        darker[j] = darker_exposure(images[j], gain, rng)
+                if darker:
+                    prepared = prepared.copy()
+                    prepared[list(darker)] = self.conditions.prepare(
+                        np.stack(list(darker.values()))).images
+            if self.conditions.reference_ is not None and not all(
                     int(i) in self.measures for i in idx):
-                m = self.conditions.measures(images, shifts=shifts)
+                m = self.conditions.measures(rec)
                 for j, i in enumerate(idx):
                     self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
             if not all(int(i) in self.appearance for i in idx):
@@ -208,7 +214,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                  "time_formats": fs.time_formats}
     source = FileSource(files, blocks, size, source_size, read_args, camera)
     mask = _mask(cfg, source_size, size)
-    conditions, text_boxes, mask, limits = _conditions(cfg, source, mask)
+    conditions, text_boxes, mask = _conditions(cfg, source, mask)
     model = model_class(cfg.model.model)(**_model_params(cfg))
     prepared = PreparedSource(source, conditions,
                               cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
@@ -223,7 +229,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                          f"read, at least {MIN_FRAMES} are needed to learn a baseline")
     if prepared.measures:  # health limits from every normal frame, not just the sample
         conditions.set_limits({k: np.array([m[k] for m in prepared.measures.values()])
-                               for k in ("dark", "bright", "covered", "focus")}, limits)
+                               for k in ("dark", "bright", "covered", "focus")})
     center, scale = location_stats(held.maps)
     cal = frame_scores(anomaly_maps(held.maps, center, scale))
     cs = cfg.conditions
@@ -303,11 +309,11 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
 
 
 def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
-                ) -> tuple[Conditions, list[tuple[int, int, int, int]], np.ndarray | None, dict]:
+                ) -> tuple[Conditions, list[tuple[int, int, int, int]], np.ndarray | None]:
     """Learn the camera's conditions from a sample of its normal frames.
 
-    Returns the conditions, the text boxes masked (exported pixels), the model's mask
-    (the user's mask with the text boxes added) and the health limits asked for.
+    Returns the conditions, the text boxes masked (exported pixels) and the model's mask
+    (the user's mask with the text boxes added).
     """
     cs = cfg.conditions
     n = len(source)
@@ -333,14 +339,12 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
     if boxes:
         text = boxes_mask(boxes, (w, h), (w / sw, h / sh))
         mask = text if mask is None else (mask | text)
-    conditions = Conditions(lighting=cs.lighting, register=cs.register,
-                            max_shift=cs.max_shift * max(w, h), health=cs.health)
     limits = {"dark": cs.dark_level, "bright": cs.overexposed_share,
               "covered": cs.covered_share, "focus": cs.focus_ratio,
               "frozen": cs.frozen_difference}
-    if len(images):
-        conditions.fit(images, mask, limits)
-    return conditions, boxes, mask, limits
+    conditions = Conditions(lighting=cs.lighting, register=cs.register,
+                            max_shift=cs.max_shift * max(w, h), health=cs.health, limits=limits)
+    return conditions.fit(images, mask), boxes, mask
 
 
 def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store

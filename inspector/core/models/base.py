@@ -17,6 +17,8 @@ from typing import Any, ClassVar, Protocol
 
 import numpy as np
 
+from inspector.core.estimator import Estimator
+
 
 class FrameSource(Protocol):
     """The normal frames of one camera, decoded on demand, in capture-time order.
@@ -58,15 +60,15 @@ class HeldOut:
     maps: np.ndarray
 
 
-class DensityModel(ABC):
-    """A density over a camera's frames, scored as a negative log-likelihood map."""
+class DensityModel(Estimator, ABC):
+    """A density over a camera's frames, scored as a negative log-likelihood map.
+
+    Settings are the constructor's keyword arguments, JSON-ready (``get_params`` and
+    ``__repr__`` come from :class:`~inspector.core.estimator.Estimator`).
+    """
 
     #: Registry name, also stored in the baseline metadata.
     kind: ClassVar[str]
-
-    @abstractmethod
-    def get_params(self) -> dict[str, Any]:
-        """Constructor settings, JSON-ready (``type(m)(**m.get_params())`` is unfitted twin)."""
 
     @abstractmethod
     def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:

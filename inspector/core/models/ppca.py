@@ -25,7 +25,6 @@ from the observed sub-covariance.
 
 from __future__ import annotations
 
-import json
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -273,11 +272,6 @@ class PatchPPCA(DensityModel):
         self.var_floor = var_floor
         self.batch_size = batch_size
 
-    def get_params(self) -> dict[str, Any]:
-        return {k: getattr(self, k) for k in ("patch", "stride", "colour", "latent",
-                                                "explained_variance", "max_latent",
-                                                "var_floor", "batch_size")}
-
     # fitting
 
     def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:
@@ -411,9 +405,6 @@ class PatchPPCA(DensityModel):
         model.q_ = model.W_.shape[2]
         model._prepare()
         return model
-
-    def __repr__(self) -> str:
-        return f"PatchPPCA({json.dumps(self.get_params())[1:-1]})"
 
 
 def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: int,

@@ -420,13 +420,6 @@ class PatchVAE(DensityModel):
         self.max_frames = max_frames
         self.global_latent = global_latent
 
-    _PARAMS = ("patch", "stride", "colour", "latent", "width", "epochs", "steps", "patience",
-               "batch_size", "lr", "seed", "threads", "iw_samples", "kl_in_map", "var_floor",
-               "holdout", "max_frames", "global_latent")
-
-    def get_params(self) -> dict[str, Any]:
-        return {k: getattr(self, k) for k in self._PARAMS}
-
     # geometry
 
     def _geometry(self, size: tuple[int, int]) -> None:
@@ -791,9 +784,6 @@ class PatchVAE(DensityModel):
         model._prepare_scoring()
         model.learned_ = dict(ckpt["learned"])
         return model
-
-    def __repr__(self) -> str:
-        return f"PatchVAE({json.dumps(self.get_params())[1:-1]})"
 
 
 __all__ = ["PatchVAE", "FrameVAE", "elbo", "iwae_bound", "log_weights", "gaussian_nll",

@@ -1,0 +1,88 @@
+"""Estimator manners shared by the camera conditions and the density models, checked
+against scikit-learn's own base class, and the preparation record handed to the health
+measures."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from skimage import data as skdata
+from sklearn.base import BaseEstimator
+
+from inspector.core.conditions import Conditions, Prepared
+from inspector.core.estimator import Estimator, NotFittedError
+from inspector.core.image import grey, shift_images
+from inspector.core.models.ppca import PatchPPCA
+
+
+class _Ours(Estimator):
+    def __init__(self, alpha: float = 1.0, mode: str = "a", limits: dict | None = None):
+        self.alpha = alpha
+        self.mode = mode
+        self.limits = limits
+
+
+class _Theirs(BaseEstimator):
+    def __init__(self, alpha: float = 1.0, mode: str = "a", limits: dict | None = None):
+        self.alpha = alpha
+        self.mode = mode
+        self.limits = limits
+
+
+def test_get_params_as_scikit_learn_reads_them():
+    # sklearn.base.BaseEstimator.get_params reads the constructor's signature the same way
+    kw = {"alpha": 0.5, "mode": "b", "limits": {"dark": 3.0}}
+    assert _Ours(**kw).get_params() == _Theirs(**kw).get_params(deep=False)
+    assert type(_Ours(**kw))(**_Ours(**kw).get_params()).get_params() == kw
+    assert repr(_Ours(alpha=2.0)) == "_Ours(alpha=2.0, mode='a', limits=None)"
+
+
+def test_models_and_conditions_share_the_base():
+    m = PatchPPCA(patch=8, stride=4, latent=3)
+    assert m.get_params()["latent"] == 3 and repr(m).startswith("PatchPPCA(patch=8, ")
+    c = Conditions(lighting="global", limits={"dark": 10.0})
+    assert c.get_params() == {"lighting": "global", "register": True, "max_shift": 8.0,
+                              "health": True, "limits": {"dark": 10.0}}
+    assert not c.is_fitted() and not m.is_fitted()
+
+
+def _frames() -> np.ndarray:
+    """Frames of the scikit-image 'astronaut' photograph (bundled), moved a little."""
+    img = skdata.astronaut()[::4, ::4]  # 128 x 128 RGB
+    moves = [(0.0, 0.0), (1.0, 0.0), (0.0, -1.5), (0.5, 0.5), (-1.0, 1.0), (0.0, 0.0)]
+    return np.stack([shift_images(img, dx, dy) for dx, dy in moves])
+
+
+def test_conditions_used_unfitted_says_so():
+    c = Conditions()
+    with pytest.raises(NotFittedError, match="Conditions is not fitted yet"):
+        c.prepare(_frames())
+    with pytest.raises(NotFittedError):
+        c.to_json()
+
+
+def test_learned_state_has_trailing_underscores_and_round_trips():
+    frames = _frames()
+    c = Conditions(limits={"dark": 15.0}).fit(frames)
+    assert c.is_fitted() and c.reference_.shape == (128, 128)
+    assert c.limits == {"dark": 15.0} and set(c.limits_) >= {"dark", "focus", "covered"}
+    back = Conditions.from_saved(c.to_json(), c.arrays())
+    assert back.limits_ == c.limits_ and back.limits == c.limits
+    assert np.array_equal(back.prepare(frames).images, c.prepare(frames).images)
+
+
+def test_preparation_record_feeds_the_health_measures():
+    frames = _frames()
+    c = Conditions().fit(frames)
+    rec = c.prepare(frames[2:4])
+    assert isinstance(rec, Prepared) and len(rec) == 2
+    # the grey of the frames as captured (ITU-R BT.601 luma, as computed by grey())
+    assert np.allclose(rec.grey, grey(frames[2:4]))
+    # the shift measured by phase correlation moves the frame back onto the reference:
+    # the aligned grey is the captured grey shifted by minus that shift
+    dx, dy = rec.shifts[0]
+    assert abs(dy - -1.5) < 0.4
+    assert np.allclose(rec.aligned[0], shift_images(rec.grey[0], -dx, -dy))
+    m = c.measures(rec)
+    assert np.allclose(m["shift"], np.hypot(*rec.shifts.T))
+    assert not any(c.conditions(m))  # normal frames: no health condition
