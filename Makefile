@@ -13,7 +13,7 @@ $(PY):
 # torch is pinned to the CPU build; a looser requirement would pull a multi-GB CUDA build.
 $(STAMP): $(PY) pyproject.toml
 	$(PY) -m pip install --quiet "torch==2.13.0"
-	$(PY) -m pip install --quiet -e ".[vae,review,test]"
+	$(PY) -m pip install --quiet -e ".[vae,review,test,cluster]"
 	touch $(STAMP)
 
 demo: $(STAMP)

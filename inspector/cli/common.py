@@ -4,6 +4,7 @@ config and store, checking SOURCE, and printing to the terminal."""
 from __future__ import annotations
 
 import argparse
+from contextlib import contextmanager
 from pathlib import Path
 
 from inspector.config import Config, load_config
@@ -25,6 +26,30 @@ def add_outputs(p: argparse.ArgumentParser) -> None:
                    help="also write a CSV row for every frame scored")
     p.add_argument("--maps", type=Path, metavar="DIR",
                    help="also write each frame's anomaly map as DIR/<camera>/<stem>.npy")
+
+
+def add_scheduler(p: argparse.ArgumentParser) -> None:
+    """--scheduler, shared by learn and scan."""
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on a Dask cluster: a scheduler address (tcp://host:8786), or "
+                        "local:N for N worker processes on this machine (default from config: "
+                        "none, everything runs here)")
+
+
+@contextmanager
+def cluster(args: argparse.Namespace, config: Config):
+    """The Dask client of ``--scheduler`` or ``[cluster] scheduler`` (None when neither is
+    set); says where the Dask dashboard is."""
+    from inspector.jobs.cluster import cluster_settings, connect, dashboard
+
+    settings = cluster_settings(config, getattr(args, "scheduler", None))
+    with connect(settings) as client:
+        if client is not None:
+            workers = len(client.scheduler_info().get("workers", {}))
+            link = dashboard(client)
+            say(f"Dask scheduler {client.scheduler.address}: {workers} workers"
+                + (f", dashboard {link}" if link else ""))
+        yield client
 
 
 def resolve(args: argparse.Namespace) -> tuple[Config, Store]:
@@ -58,6 +83,11 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
         say(f"warning: {n} frames of {note}")
     say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
         f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
+    if getattr(summary, "unchanged", 0):
+        older = (f", {summary.unchanged_older} of them against an older baseline than the "
+                 "active one" if summary.unchanged_older else "")
+        say(f"not scored again: {summary.unchanged} frames scored before and unchanged since "
+            f"(see the ledger{older}); --rescore scores them again")
     events = f"  events: {out / 'events.csv'}" if (out / "events.csv").exists() else ""
     say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
         f"skipped: {out / 'skipped.csv'}")

@@ -6,7 +6,7 @@ import argparse
 from dataclasses import replace
 from pathlib import Path
 
-from inspector.cli.common import add_common, check_source, resolve, say
+from inspector.cli.common import add_common, add_scheduler, check_source, cluster, resolve, say
 from inspector.core.models import MODEL_NAMES
 from inspector.errors import UsageError
 from inspector.storage.frames import discover
@@ -29,6 +29,7 @@ def register(sub) -> None:
                    help="show how many flags the new version adds and removes on the camera's "
                         "last N scored frames (default 200; 0 skips)")
     add_common(p)
+    add_scheduler(p)
     p.set_defaults(func=cmd_learn)
 
 
@@ -53,6 +54,7 @@ def cmd_learn(args: argparse.Namespace) -> int:
         raise UsageError(f"no frames found under {str(args.source)!r}{hint}")
     if args.compare < 0:
         raise UsageError("--compare must be 0 or more")
+    tasks, previous = [], {}
     for camera, cam_files in cameras.items():
         cfg = config.camera(camera)
         if args.model:
@@ -60,30 +62,45 @@ def cmd_learn(args: argparse.Namespace) -> int:
         extra: dict = {}
         if args.add_false_alarms:
             cam_files, extra = _with_false_alarms(store, camera, cam_files)
-        previous = store.active_version(camera)
-        report = learn_camera(cam_files, cfg, store, activate=not args.keep_active, extra=extra)
-        skipped = [s for s in skips if s.camera == camera] + report.skipped
-        say(f"{camera}: baseline {report.version} ({cfg.model.model}) from {report.frames} "
-            f"frames, threshold {report.threshold:.3f} for a false-alarm rate of "
-            f"{report.promised_alpha:.3g}, {len(skipped)} skipped, {report.seconds:.1f} s")
-        for note in getattr(report, "notes", []):
-            say(f"  {note}")
-        for w in report.warnings:
-            say(f"  warning: {w}")
-        for s in skipped[:10]:
-            say(f"  skipped {s.rel}: {s.reason}")
-        if len(skipped) > 10:
-            say(f"  ... and {len(skipped) - 10} more skipped")
-        if args.compare and previous:
-            from inspector.jobs.compare import compare_versions
+        previous[camera] = store.active_version(camera)
+        tasks.append({"files": cam_files, "cfg": cfg, "store": store,
+                      "activate": not args.keep_active, "extra": extra})
+    with cluster(args, config) as client:
+        if client is None:
+            reports = (learn_camera(**t) for t in tasks)
+        else:
+            from inspector.jobs.cluster import learn_on_cluster
 
-            say("  " + compare_versions(store, config, camera, previous, report.version,
-                                        args.compare).text())
-        if args.keep_active and previous:
-            say(f"  {previous} stays active; switch with 'inspector baselines {camera} "
-                f"--activate {report.version}'")
+            reports = learn_on_cluster(client, tasks)
+        for report, task in zip(reports, tasks):
+            _report(args, config, store, report, task["cfg"], skips, previous[report.camera])
     say(f"store: {store.root}")
     return 0
+
+
+def _report(args, config, store, report, cfg, skips, previous: str | None) -> None:
+    """What learn says about one camera's new baseline."""
+    camera = report.camera
+    skipped = [s for s in skips if s.camera == camera] + report.skipped
+    say(f"{camera}: baseline {report.version} ({cfg.model.model}) from {report.frames} "
+        f"frames, threshold {report.threshold:.3f} for a false-alarm rate of "
+        f"{report.promised_alpha:.3g}, {len(skipped)} skipped, {report.seconds:.1f} s")
+    for note in getattr(report, "notes", []):
+        say(f"  {note}")
+    for w in report.warnings:
+        say(f"  warning: {w}")
+    for s in skipped[:10]:
+        say(f"  skipped {s.rel}: {s.reason}")
+    if len(skipped) > 10:
+        say(f"  ... and {len(skipped) - 10} more skipped")
+    if args.compare and previous:
+        from inspector.jobs.compare import compare_versions
+
+        say("  " + compare_versions(store, config, camera, previous, report.version,
+                                    args.compare).text())
+    if args.keep_active and previous:
+        say(f"  {previous} stays active; switch with 'inspector baselines {camera} "
+            f"--activate {report.version}'")
 
 
 def _with_false_alarms(store: Store, camera: str, files: list) -> tuple[list, dict]:

@@ -8,7 +8,9 @@ from pathlib import Path
 from inspector.cli.common import (
     add_common,
     add_outputs,
+    add_scheduler,
     check_source,
+    cluster,
     report_scan,
     resolve,
 )
@@ -19,8 +21,12 @@ def register(sub) -> None:
                                     "baseline")
     p.add_argument("source", type=Path, metavar="SOURCE",
                    help="folder of frames, one subfolder per camera")
+    p.add_argument("--rescore", action="store_true",
+                   help="score again the frames the ledger has scored before (e.g. after "
+                        "activating a new baseline); by default unchanged frames are left out")
     add_common(p)
     add_outputs(p)
+    add_scheduler(p)
     p.set_defaults(func=cmd_scan)
 
 
@@ -30,6 +36,8 @@ def cmd_scan(args: argparse.Namespace) -> int:
     config, store = resolve(args)
     out = args.out or Path(config.paths.out)
     check_source(args.source, out, args.all_scores, args.maps)
-    summary = run_scan(args.source, config, store, out, args.all_scores, args.maps)
+    with cluster(args, config) as client:
+        summary = run_scan(args.source, config, store, out, args.all_scores, args.maps,
+                           rescore=args.rescore, client=client)
     report_scan(summary, out, args.all_scores)
     return 0

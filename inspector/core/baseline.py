@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -88,6 +89,22 @@ class Baseline:
     regimes: Regimes | None = None
     #: Grey of the last frame scored with ``sequence=True`` (for "frozen feed").
     _previous: np.ndarray | None = field(default=None, init=False, repr=False, compare=False)
+
+    def continue_from(self, image: np.ndarray | None) -> "Baseline":
+        """A copy whose next ``score(..., sequence=True)`` continues a stream after ``image``.
+
+        For scoring one stretch of a camera's stream apart from the rest (a cluster task):
+        the first frame is compared with ``image``, the frame just before the stretch, for a
+        frozen feed, as it would be in one pass. The learned arrays are shared, not copied.
+
+        Parameters
+        ----------
+        image : ndarray, shape (H, W, 3), uint8, or None
+            None starts a new stream (no comparison for the first frame).
+        """
+        other = copy.copy(self)
+        other._previous = None if image is None else grey(np.asarray(image)[None])[0]
+        return other
 
     def prepare(self, images: np.ndarray) -> np.ndarray:
         """Frames as the model sees them: aligned and normalised to the baseline's reference.

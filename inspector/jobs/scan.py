@@ -94,6 +94,11 @@ class ScanSummary:
     health: int = 0
     seconds: float = 0.0
     notes: Counter = field(default_factory=Counter)
+    #: Frames left out because the ledger has them scored and the file is unchanged
+    #: (``rescore=False``), and how many of those were scored against a baseline version
+    #: that is no longer the camera's active one.
+    unchanged: int = 0
+    unchanged_older: int = 0
 
     @property
     def rate(self) -> float:
@@ -139,17 +144,40 @@ def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultW
 
 
 def scan_folder(source: Path, baselines: Baselines, writer: ResultWriter,
-                workers: int = 2) -> ScanSummary:
-    """Discover every frame under ``source`` (camera = first folder level) and score it."""
+                workers: int = 2, rescore: bool = True, client=None) -> ScanSummary:
+    """Discover every frame under ``source`` (camera = first folder level) and score it.
+
+    ``rescore=False`` leaves out the frames that ``writer``'s ledger has scored before and
+    whose file is unchanged (counted in the summary). With a ``distributed.Client`` the
+    frames are scored on its Dask cluster (:func:`inspector.jobs.cluster.scan_on_cluster`).
+    """
     files, skips = discover(source)
     for s in skips:
         writer.skip(s.rel, s.camera, s.reason)
-    return scan_files(files, baselines, writer, workers=workers, total=len(files))
+    done: dict = {}
+    if not rescore and writer.ledger is not None:
+        root = Path(source).resolve()
+        done = writer.ledger.unchanged_scored([root / f.rel for f in files])
+        files = [f for f in files if str(root / f.rel) not in done]
+    if client is not None:
+        from inspector.jobs.cluster import scan_on_cluster
+
+        summary = scan_on_cluster(client, files, baselines, writer, total=len(files))
+    else:
+        summary = scan_files(files, baselines, writer, workers=workers, total=len(files))
+    summary.unchanged = len(done)
+    active = {c: baselines.store.active_version(c) for c in {r["camera"] for r in done.values()}}
+    summary.unchanged_older = sum(r["version"] != active[r["camera"]] for r in done.values())
+    return summary
 
 
 def run_scan(source: Path, config: Config, store: Store, out: Path,
-             all_scores: Path | None = None, maps: Path | None = None) -> ScanSummary:
-    """A whole scan as the command runs it: results, ledger rows and events.csv."""
+             all_scores: Path | None = None, maps: Path | None = None,
+             rescore: bool = True, client=None) -> ScanSummary:
+    """A whole scan as the command runs it: results, ledger rows and events.csv.
+
+    ``rescore`` and ``client``: see :func:`scan_folder`.
+    """
     from inspector.core.events import EventSettings
     from inspector.storage.ledger import Ledger
 
@@ -157,4 +185,5 @@ def run_scan(source: Path, config: Config, store: Store, out: Path,
     with Ledger(store.database) as ledger, \
             ResultWriter(out, all_scores, maps, source=source, store=store.root,
                          ledger=ledger, events=events) as writer:
-        return scan_folder(source, Baselines(store, config), writer)
+        return scan_folder(source, Baselines(store, config), writer, rescore=rescore,
+                           client=client)

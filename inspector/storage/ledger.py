@@ -200,6 +200,22 @@ class Ledger:
                     found[row["path"]] = row
         return found
 
+    def unchanged_scored(self, paths: Sequence[Path | str]) -> dict[str, sqlite3.Row]:
+        """Rows of the frames among ``paths`` scored before whose file still has the size and
+        modification time recorded then (scoring them again gives what the row holds, unless
+        the baseline changed: compare the row's ``version``)."""
+        found = {}
+        for path, row in self.lookup([str(p) for p in paths]).items():
+            if row["status"] != "scored":
+                continue
+            try:
+                st = os.stat(path)
+            except OSError:
+                continue
+            if row["size"] == st.st_size and row["mtime"] == st.st_mtime:
+                found[path] = row
+        return found
+
     def rows(self, root: Path | str, where: str = "1", params: Sequence = ()
              ) -> list[sqlite3.Row]:
         """Rows under folder ``root`` matching an SQL condition, in id order."""

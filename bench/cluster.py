@@ -1,0 +1,98 @@
+"""Scan throughput on a Dask cluster with 1 and 2 local workers, and the speed-up.
+
+Generates N frames of the invented depot scene (two cameras), learns their baselines on
+this machine, then scans the same frames, ROUNDS times each, alternating between
+
+* in-process: the scan as it runs without ``--scheduler`` (for reference),
+* 1 worker: a ``distributed.LocalCluster`` with one single-threaded worker process,
+* 2 workers: the same cluster scaled to two,
+
+every scan the whole command's work (decode and score in the workers, CSV rows, overlays,
+ledger rows and events.csv by the one writer here), and prints the median frames/s of each
+and the speed-up of 2 workers over 1. The workers' first baseline loads are in the first
+round; the median leaves them out. On a machine with fewer free cores than workers the
+speed-up says so.
+
+    python bench/cluster.py [--frames 200] [--rounds 3] [--size 960x540]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from inspector.config import load_config  # noqa: E402
+from inspector.demo.scenario import generate  # noqa: E402
+from inspector.jobs.learn import learn_cameras  # noqa: E402
+from inspector.jobs.scan import run_scan  # noqa: E402
+from inspector.storage.frames import discover  # noqa: E402
+from inspector.storage.store import Store  # noqa: E402
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--frames", type=int, default=200, help="frames to scan (two cameras)")
+    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--size", default="960x540", help="frame size WxH (default 960x540)")
+    ap.add_argument("--normal", type=int, default=60, help="normal frames per camera to learn from")
+    ap.add_argument("--config", type=Path, help="TOML config (default: built-in settings)")
+    ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
+    args = ap.parse_args()
+    work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-bench-"))
+    size = tuple(int(v) for v in args.size.lower().split("x"))
+    try:
+        run(work, args.frames, args.rounds, size, args.normal, args.config)
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
+def run(work: Path, n: int, rounds: int, size: tuple[int, int], normal: int = 60,
+        config_path: Path | None = None) -> None:
+    from distributed import Client, LocalCluster
+
+    t = time.perf_counter()
+    scenario = generate(work / "frames", seed=1, normal_per_camera=normal,
+                        new_per_camera=max(1, n // 2), incident_fraction=0.05, size=size)
+    print(f"generated {n} + {2 * normal} frames {size[0]}x{size[1]} in {time.perf_counter() - t:.1f} s")
+    config = load_config(config_path)
+    store = Store(work / "store")
+    normal, _ = discover(scenario.normal)
+    for report in learn_cameras(normal, config, store):
+        print(f"learnt {report.camera} from {report.frames} frames in {report.seconds:.1f} s")
+    rates: dict[str, list[float]] = {"in-process": [], "1 worker": [], "2 workers": []}
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                      dashboard_address=None, silence_logs=40) as cluster, \
+            Client(cluster) as client:
+        for r in range(rounds):
+            for name, workers in (("in-process", 0), ("1 worker", 1), ("2 workers", 2)):
+                if workers:
+                    cluster.scale(workers)
+                    client.wait_for_workers(workers)
+                    while len(client.scheduler_info()["workers"]) > workers:
+                        time.sleep(0.1)
+                out = work / f"out-{r}-{workers}"
+                t = time.perf_counter()
+                summary = run_scan(scenario.new, config, store, out, out / "all.csv",
+                                   client=client if workers else None)
+                rates[name].append(summary.scored / (time.perf_counter() - t))
+            print(f"round {r + 1}: " + ", ".join(f"{k} {v[-1]:.1f}" for k, v in rates.items())
+                  + " frames/s")
+    med = {k: statistics.median(v) for k, v in rates.items()}
+    print(f"median over {rounds} rounds of {summary.scored} frames: "
+          + ", ".join(f"{k} {v:.1f} frames/s" for k, v in med.items()))
+    print(f"speed-up of 2 workers over 1: {med['2 workers'] / med['1 worker']:.2f} "
+          f"(cores {os.cpu_count()}, load average {os.getloadavg()[0]:.1f})")
+
+
+if __name__ == "__main__":
+    main()

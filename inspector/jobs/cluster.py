@@ -1,0 +1,335 @@
+"""Learning and scanning on a Dask distributed cluster (``--scheduler``).
+
+Without a scheduler everything runs on this machine as before; this module is only
+imported when one is named. The split of work:
+
+* scan: the frames of each camera, in stream order, are cut into partitions of
+  ``partition`` consecutive frames. A worker scores a partition with the same code as a
+  local scan (:func:`inspector.jobs.scan.scan_files` over the same frame reader and
+  :func:`inspector.jobs.scan.score_frames`), into a recorder instead of the result files;
+  the driver replays each partition's record into the one :class:`ResultWriter` (CSV files,
+  overlays, maps, ledger) in partition order, whatever order the workers finish in. A
+  partition lost with its worker is computed again by Dask (``retries``) and its record is
+  read once, so no frame is lost or written twice.
+* learn: one task per camera (:func:`inspector.jobs.learn.learn_camera`), each saving its
+  version into the store, reports returned in camera order.
+
+Workers load baselines from the store path themselves (the frames and the store must be at
+the same paths on every machine, e.g. a shared mount) and keep the last few in memory, so a
+camera's baseline is read once per worker process, not once per task.
+
+Tasks and results travel between processes by Dask's own serialisation; nothing of it is
+written to disk.
+"""
+
+from __future__ import annotations
+
+import re
+import threading
+import time
+from collections import Counter, OrderedDict, deque
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from inspector.config import Config
+from inspector.core.baseline import Baseline
+from inspector.errors import FrameError, UsageError
+from inspector.jobs.progress import progress_bar
+from inspector.jobs.scan import ScanSummary, read_args, scan_files
+from inspector.storage.frames import FrameFile, read_frame
+from inspector.storage.store import Store
+
+_LOCAL = re.compile(r"^local:(\d+)$")
+
+
+@dataclass(frozen=True)
+class ClusterSettings:
+    """The ``[cluster]`` section of the config."""
+
+    #: "" runs on this machine; "local:N" starts N worker processes here; "tcp://host:8786"
+    #: uses a running Dask scheduler.
+    scheduler: str = ""
+    #: Consecutive frames of one camera scored by one task.
+    partition: int = 64
+    #: Times a failed or lost task is tried again before its frames are skipped.
+    retries: int = 3
+    #: Seconds to wait for the scheduler to answer before giving up.
+    connect_timeout: float = 5.0
+    #: Baselines each worker process keeps loaded (least recently used ones are dropped).
+    cached_baselines: int = 8
+
+    @staticmethod
+    def check(s: "ClusterSettings", where: str) -> None:
+        if s.scheduler and not (_LOCAL.match(s.scheduler) or "://" in s.scheduler):
+            raise UsageError(f"{where} scheduler = {s.scheduler!r}: expected 'local:N' or an "
+                             "address such as 'tcp://host:8786'")
+        for name, low in (("partition", 1), ("retries", 0), ("cached_baselines", 1)):
+            if getattr(s, name) < low:
+                raise UsageError(f"{where} {name} must be at least {low}")
+        if not s.connect_timeout > 0:
+            raise UsageError(f"{where} connect_timeout must be more than 0")
+
+
+def cluster_settings(config: Config, scheduler: str | None = None) -> ClusterSettings:
+    """The config's ``[cluster]`` settings, with ``scheduler`` (``--scheduler``) over it."""
+    s = config.section("cluster", ClusterSettings)
+    if scheduler is not None:
+        s = replace(s, scheduler=scheduler)
+    ClusterSettings.check(s, "--scheduler" if scheduler is not None else "[cluster]")
+    return s
+
+
+@contextmanager
+def connect(settings: ClusterSettings) -> Iterator[Any]:
+    """A ``distributed.Client`` for ``settings.scheduler`` (None when it is empty).
+
+    ``local:N`` starts a ``distributed.LocalCluster`` of N single-threaded worker processes
+    for the duration; any other address must be a running scheduler.
+
+    Raises
+    ------
+    UsageError
+        dask/distributed are not installed, N is not a positive number, or the scheduler does
+        not answer within ``connect_timeout`` seconds.
+    """
+    address = settings.scheduler
+    if not address:
+        yield None
+        return
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise UsageError("--scheduler needs dask and distributed: "
+                         "pip install 'inspector[cluster]'") from None
+    local = _LOCAL.match(address)
+    if local:
+        n = int(local.group(1))
+        if n < 1:
+            raise UsageError(f"scheduler {address!r}: local needs at least 1 worker")
+        with LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                          dashboard_address=":0", silence_logs=40) as cluster, \
+                Client(cluster) as client:
+            yield client
+        return
+    try:
+        client = Client(address, timeout=settings.connect_timeout)
+    except (OSError, TimeoutError, ValueError) as exc:
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise UsageError(f"cannot reach the Dask scheduler at {address}: {reason}") from None
+    with client:
+        yield client
+
+
+def dashboard(client) -> str:
+    """The Dask dashboard address of ``client``'s cluster ('' when it serves none)."""
+    try:
+        return client.dashboard_link or ""
+    except Exception:  # no dashboard (bokeh missing on the scheduler)
+        return ""
+
+
+# --- worker side -----------------------------------------------------------------------------
+
+_cache: OrderedDict[tuple[str, str, str], Baseline] = OrderedDict()
+_cache_lock = threading.Lock()
+#: Baselines this process read from a store, by (store, camera, version): shows the cache
+#: works (see ``client.run``).
+loads: Counter[tuple[str, str, str]] = Counter()
+
+
+def worker_baseline(root: str, camera: str, version: str | None, keep: int) -> Baseline:
+    """The baseline ``version`` of ``camera`` from the store at ``root``, read once per
+    process and kept among the ``keep`` most recently used. ``version`` None reads the
+    active one (not kept: it may change).
+
+    Raises
+    ------
+    LookupError
+        ``no baseline for camera X``.
+    """
+    key = (root, camera, version or "")
+    with _cache_lock:
+        if version is not None and key in _cache:
+            _cache.move_to_end(key)
+            return _cache[key]
+        baseline = Store(root).load(camera, version)
+        loads[(root, camera, baseline.version)] += 1
+        if version is not None:
+            _cache[key] = baseline
+            while len(_cache) > keep:
+                _cache.popitem(last=False)
+        return baseline
+
+
+class _Partition:
+    """What :func:`scan_files` needs of ``Baselines``, for one camera on a worker."""
+
+    def __init__(self, baseline: Baseline, config: Config):
+        self.baseline, self.config = baseline, config
+
+    def get(self, camera: str) -> Baseline:
+        return self.baseline
+
+    def read_args(self, camera: str) -> dict:
+        return read_args(self.baseline, self.config)
+
+
+class _Missing(_Partition):
+    """A camera without a baseline: every frame waits, as in a local scan."""
+
+    def __init__(self, error: LookupError):
+        self.error = error
+
+    def get(self, camera: str) -> Baseline:
+        raise self.error
+
+    read_args = get  # type: ignore[assignment]
+
+
+class Recorder:
+    """Stands in for :class:`ResultWriter` on a worker: keeps the calls a scan makes, in
+    order, for the driver's writer to replay.
+
+    The frame image of an unflagged result is dropped (the writer draws overlays of flagged
+    frames only), which keeps what travels back to the driver small.
+    """
+
+    def __init__(self):
+        self.calls: list[tuple[str, tuple]] = []
+        self.counts: Counter[str] = Counter()
+
+    def write(self, results) -> list[str]:
+        slim = [r if r.flagged else replace(r, image=np.zeros((0, 0, 3), np.uint8))
+                for r in results]
+        if slim:
+            self.calls.append(("write", (slim,)))
+        return ["" for _ in slim]
+
+    def skip(self, frame: str, camera: str, reason: str, waiting: bool = False) -> None:
+        self.calls.append(("skip", (frame, camera, reason, waiting)))
+
+    def replay(self, writer) -> None:
+        """Make the recorded calls on ``writer``, in the order they were made."""
+        for name, args in self.calls:
+            getattr(writer, name)(*args)
+
+
+@dataclass
+class Part:
+    """One task of a cluster scan: consecutive frames of one camera."""
+
+    camera: str
+    version: str | None
+    files: list[FrameFile]
+    #: The frames just before ``files`` in the stream, nearest first (for a frozen feed).
+    before: list[FrameFile] = field(default_factory=list)
+
+
+def score_part(part: Part, root: str, config: Config, keep: int) -> tuple[Recorder, Counter]:
+    """Score one partition on a worker: its record of results and its frame notes."""
+    recorder = Recorder()
+    try:
+        baseline = worker_baseline(root, part.camera, part.version, keep)
+    except LookupError as exc:
+        summary = scan_files(part.files, _Missing(exc), recorder)
+        return recorder, summary.notes
+    previous = None
+    for f in part.before:  # the last decodable frame before the partition
+        try:
+            previous = read_frame(f, **read_args(baseline, config)).image
+            break
+        except FrameError:
+            continue
+    summary = scan_files(part.files, _Partition(baseline.continue_from(previous), config),
+                         recorder)
+    return recorder, summary.notes
+
+
+# --- driver side -----------------------------------------------------------------------------
+
+def partitions(files: Sequence[FrameFile], store: Store, size: int) -> list[Part]:
+    """Cut frames into tasks: by camera (in order of first appearance, as a local scan goes),
+    then ``size`` consecutive frames of the camera's stream each."""
+    by_camera: dict[str, list[FrameFile]] = {}
+    for f in files:
+        by_camera.setdefault(f.camera, []).append(f)
+    parts = []
+    for camera, cam_files in by_camera.items():
+        version = store.active_version(camera)
+        for i in range(0, len(cam_files), size):
+            before = cam_files[max(0, i - size):i][::-1]
+            parts.append(Part(camera, version, cam_files[i:i + size], before))
+    return parts
+
+
+def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer,
+                    total: int | None = None, settings: ClusterSettings | None = None
+                    ) -> ScanSummary:
+    """Score frame files on ``client``'s cluster into ``writer``, as
+    :func:`inspector.jobs.scan.scan_files` does on this machine.
+
+    Partitions are submitted a few per worker thread ahead of the writer; each one's
+    results are written when it and all before it are done, so the files and the ledger
+    come out the same whatever order the workers finish in. A partition still failing after
+    ``retries`` (or whose workers kept dying) becomes ``skipped.csv`` rows with the reason.
+    """
+    store, config = baselines.store, baselines.config
+    settings = settings or cluster_settings(config)
+    started = time.perf_counter()
+    parts = partitions(list(files), store, settings.partition)
+    root = str(Path(store.root).resolve())
+    ahead = max(4, 3 * sum(client.nthreads().values()))
+    notes: Counter[str] = Counter()
+    todo = iter(parts)
+    flight: deque = deque()
+
+    def submit() -> None:
+        part = next(todo, None)
+        if part is not None:
+            flight.append((part, client.submit(score_part, part, root, config,
+                                               settings.cached_baselines, pure=False,
+                                               retries=settings.retries)))
+
+    for _ in range(ahead):
+        submit()
+    with progress_bar(total, "scanning") as bar:
+        while flight:
+            part, future = flight.popleft()
+            try:
+                recorder, part_notes = future.result()
+            except Exception as exc:
+                if type(exc).__name__ != "KilledWorker":
+                    raise
+                for f in part.files:
+                    writer.skip(f.rel, f.camera, f"not scored: the workers scoring it were "
+                                                 f"lost {settings.retries + 1} times")
+            else:
+                recorder.replay(writer)
+                notes.update(part_notes)
+            finally:
+                future.release()
+            bar.update(len(part.files))
+            submit()
+    return ScanSummary(scored=writer.counts["scored"], flagged=writer.counts["flagged"],
+                       skipped=writer.counts["skipped"], health=writer.counts.get("health", 0),
+                       seconds=time.perf_counter() - started, notes=notes)
+
+
+def learn_on_cluster(client, tasks: Sequence[dict]) -> Iterator:
+    """Run :func:`inspector.jobs.learn.learn_camera` for each keyword set of ``tasks`` on the
+    cluster, all at once; yields the reports in the order of ``tasks``. An error of one
+    camera (e.g. too few frames) is raised when its turn comes."""
+    from inspector.jobs.learn import learn_camera
+
+    futures = [client.submit(learn_camera, pure=False, **t) for t in tasks]
+    try:
+        for future in futures:
+            yield future.result()
+    finally:
+        for future in futures:
+            future.cancel()

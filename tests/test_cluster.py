@@ -1,0 +1,218 @@
+"""Learning and scanning on a Dask cluster (``--scheduler``) against the single-machine run.
+
+One ``distributed.LocalCluster`` (2 worker processes) is shared by the module: starting one
+costs seconds. The reference for every check is the same command run on this machine.
+"""
+
+import csv
+import os
+import shutil
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import cv2
+import numpy as np
+import pytest
+from conftest import noisy_copies, write_frames
+from skimage import data
+
+pytest.importorskip("distributed")
+
+from inspector.cli.main import main  # noqa: E402
+from inspector.config import load_config  # noqa: E402
+from inspector.jobs import cluster as jc  # noqa: E402
+from inspector.jobs.scan import Baselines  # noqa: E402
+from inspector.storage.frames import discover  # noqa: E402
+from inspector.storage.results import ResultWriter  # noqa: E402
+from inspector.storage.store import Store  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+FLOAT_COLUMNS = {"score", "threshold", "p_value", "measure", "limit", "peak_score"}
+
+
+def _scene(image: np.ndarray) -> np.ndarray:
+    return cv2.resize(image, (128, 96), interpolation=cv2.INTER_AREA).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def client():
+    with jc.connect(jc.ClusterSettings(scheduler="local:2")) as c:
+        yield c
+
+
+@pytest.fixture(scope="module")
+def site(tmp_path_factory):
+    """Two cameras (photographs bundled with scikit-image) learnt on this machine, and new
+    frames: an object in one, a truncated file, a camera without a baseline."""
+    root = tmp_path_factory.mktemp("cluster")
+    cfg = root / "small.toml"
+    cfg.write_text('[frames]\nlong_side = 64\n\n[calibration]\nfolds = 3\n\n'
+                   '[cluster]\npartition = 3\nconnect_timeout = 1.0\n', encoding="utf-8")
+    rng = np.random.default_rng(0)
+    scenes = {"gate": _scene(data.chelsea()), "yard": _scene(data.coffee())}
+    for cam, scene in scenes.items():
+        write_frames(root / "normal" / cam, noisy_copies(scene, 30, rng), prefix=cam)
+    new = root / "new"
+    gate = noisy_copies(scenes["gate"], 14, rng)
+    gate[5, 30:60, 40:80] = (20, 200, 40)
+    write_frames(new / "gate", gate, prefix="gate")
+    write_frames(new / "yard", noisy_copies(scenes["yard"], 7, rng), prefix="yard")
+    write_frames(new / "attic", noisy_copies(scenes["yard"], 2, rng), prefix="attic")
+    buf = cv2.imencode(".jpg", scenes["gate"].astype(np.uint8))[1].tobytes()
+    (new / "gate" / "gate_20261120_080330.jpg").write_bytes(buf[: len(buf) // 2])
+    assert main(["learn", str(root / "normal"), "--store", str(root / "store"),
+                 "--config", str(cfg)]) == 0
+    return root, cfg
+
+
+def _rows(path: Path) -> list[dict]:
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def _same_rows(a: Path, b: Path) -> int:
+    """The CSV files hold the same rows (in any order), floats to float tolerance."""
+    ra, rb = _rows(a), _rows(b)
+    assert len(ra) == len(rb)
+    key = (lambda r: tuple(v for k, v in r.items() if k not in FLOAT_COLUMNS | {"overlay"}))
+    for x, y in zip(sorted(ra, key=key), sorted(rb, key=key)):
+        assert key(x) == key(y)
+        assert bool(x.get("overlay")) == bool(y.get("overlay"))
+        for k in FLOAT_COLUMNS & set(x):
+            assert float(x[k]) == pytest.approx(float(y[k]), rel=1e-3, abs=2e-4), k
+    return len(ra)
+
+
+def _scan(site, name: str, *extra: str) -> Path:
+    root, cfg = site
+    store = root / f"store-{name}"
+    shutil.copytree(root / "store", store)
+    out = root / f"out-{name}"
+    assert main(["scan", str(root / "new"), "--store", str(store), "--config", str(cfg),
+                 "--out", str(out), "--all-scores", str(out / "all.csv"), *extra]) == 0
+    return out
+
+
+def _ledger(out: Path) -> list[tuple]:
+    import sqlite3
+
+    store = out.parent / out.name.replace("out-", "store-")
+    with sqlite3.connect(store / "inspector.sqlite") as conn:
+        return sorted(conn.execute("SELECT rel, camera, status, reason, round(score, 3), "
+                                   "flagged, version, capture_time FROM frames"))
+
+
+def test_scan_on_the_cluster_writes_what_a_local_scan_writes(site, client, capsys):
+    local = _scan(site, "local")
+    remote = _scan(site, "remote", "--scheduler", client.scheduler.address)
+    said = capsys.readouterr().out
+    assert "Dask scheduler tcp://" in said and "2 workers" in said
+    assert _same_rows(local / "all.csv", remote / "all.csv") == 21  # 14 gate + 7 yard
+    assert _same_rows(local / "flagged.csv", remote / "flagged.csv") >= 1
+    assert _same_rows(local / "skipped.csv", remote / "skipped.csv") == 3  # cut + 2 attic
+    _same_rows(local / "health.csv", remote / "health.csv")
+    _same_rows(local / "events.csv", remote / "events.csv")
+    skipped = {r["frame"]: r["reason"] for r in _rows(remote / "skipped.csv")}
+    assert skipped["gate/gate_20261120_080330.jpg"].startswith("truncated JPEG")
+    assert skipped["attic/attic_20261120_080000.jpg"] == "no baseline for camera attic"
+    assert _ledger(local) == _ledger(remote)
+    # 9 partitions of 3 frames: each worker read each camera's baseline at most once
+    loads = client.run(lambda: dict(jc.loads))
+    for counts in loads.values():
+        assert all(n == 1 for n in counts.values())
+    assert sum(len(c) for c in loads.values()) <= 4
+
+
+def test_a_worker_killed_mid_scan_loses_and_repeats_no_frame(site, client):
+    root, cfg = site
+    config = load_config(cfg)
+    store = Store(root / "store")
+    files, _ = discover(root / "new")
+    pids = list(client.run(os.getpid).values())
+
+    class KillOnFirstWrite(ResultWriter):
+        killed = False
+
+        def write(self, results):
+            if not self.killed:
+                KillOnFirstWrite.killed = True
+                os.kill(pids[0], signal.SIGKILL)  # the other partitions are in flight
+            return super().write(results)
+
+    out = root / "out-killed"
+    settings = jc.ClusterSettings(partition=1)
+    with KillOnFirstWrite(out, out / "all.csv") as writer:
+        jc.scan_on_cluster(client, files, Baselines(store, config), writer, settings=settings)
+    assert KillOnFirstWrite.killed
+    frames = [r["frame"] for r in _rows(out / "all.csv")]
+    assert len(frames) == len(set(frames)) == 21
+    local = root / "out-local"
+    if (local / "all.csv").is_file():
+        _same_rows(local / "all.csv", out / "all.csv")
+
+
+def test_a_baseline_learnt_on_the_cluster_equals_the_local_one(site, client, capsys):
+    root, cfg = site
+    assert main(["learn", str(root / "normal"), "--store", str(root / "store-learnt"),
+                 "--config", str(cfg), "--scheduler", client.scheduler.address]) == 0
+    said = capsys.readouterr().out
+    assert said.index("gate: baseline v1") < said.index("yard: baseline v1")
+    here, there = Store(root / "store"), Store(root / "store-learnt")
+    for camera in ("gate", "yard"):
+        a, b = here.load(camera), there.load(camera)
+        for name in ("center", "scale", "calibration_scores"):
+            np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-5,
+                                       atol=1e-6)
+        for name in ("mean_", "W_", "sigma2_"):
+            np.testing.assert_allclose(getattr(a.model, name), getattr(b.model, name),
+                                       rtol=1e-4, atol=1e-6)
+        assert a.threshold.value == pytest.approx(b.threshold.value, rel=1e-6)
+
+
+def test_scan_leaves_out_frames_already_scored_unless_asked(site, capsys):
+    root, cfg = site
+    store = root / "store-rescore"
+    shutil.copytree(root / "store", store)
+    args = ["scan", str(root / "new"), "--store", str(store), "--config", str(cfg),
+            "--out", str(root / "out-rescore")]
+    assert main(args) == 0
+    capsys.readouterr()
+    assert main(args) == 0
+    said = capsys.readouterr().out
+    assert "scored 0 frames" in said
+    assert "not scored again: 21 frames" in said and "older" not in said
+    s = Store(store)
+    s.save(s.load("gate"))  # a new version of gate, active
+    assert main(args) == 0
+    said = capsys.readouterr().out
+    assert "not scored again: 21 frames" in said
+    assert "14 of them against an older baseline" in said
+    assert main(args + ["--rescore"]) == 0
+    said = capsys.readouterr().out
+    assert "scored 21 frames" in said and "not scored again" not in said
+    versions = {r["frame"]: r["model"] for r in _rows(root / "out-rescore" / "flagged.csv")}
+    assert all(v == "v2" for f, v in versions.items() if f.startswith("gate/"))
+
+
+def test_an_unreachable_scheduler_is_one_line_and_exit_2(site, capsys):
+    root, cfg = site
+    code = main(["scan", str(root / "new"), "--store", str(root / "store"), "--config",
+                 str(cfg), "--out", str(root / "out-none"), "--scheduler",
+                 "tcp://127.0.0.1:9"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.startswith("inspector: error: cannot reach the Dask scheduler at "
+                          "tcp://127.0.0.1:9") and err.count("\n") == 1
+    assert main(["scan", str(root / "new"), "--scheduler", "somewhere"]) == 2
+    assert "expected 'local:N'" in capsys.readouterr().err
+
+
+def test_bench_smoke(tmp_path, small_config):
+    proc = subprocess.run([sys.executable, str(ROOT / "bench" / "cluster.py"), "--frames", "6",
+                           "--rounds", "1", "--normal", "16", "--size", "192x108",
+                           "--config", str(small_config), "--keep", str(tmp_path / "work")],
+                          capture_output=True, text=True, timeout=600, cwd=ROOT)
+    assert proc.returncode == 0, proc.stderr
+    assert "speed-up" in proc.stdout
