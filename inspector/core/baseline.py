@@ -10,6 +10,7 @@ import numpy as np
 
 from inspector.core.calibration import Threshold, conformal_p_values
 from inspector.core.conditions import Conditions
+from inspector.core.image import grey
 from inspector.core.models.base import DensityModel
 from inspector.core.regimes import Regimes
 from inspector.core.scoring import anomaly_maps, frame_scores
