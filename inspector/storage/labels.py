@@ -14,8 +14,11 @@ import csv
 import sqlite3
 from collections.abc import Iterable, Sequence
 from dataclasses import astuple, dataclass, fields
-from datetime import datetime, timezone
+from datetime import datetime
 from pathlib import Path
+
+from inspector.clock import now_iso as now  # noqa: F401 - the labels' timestamp
+from inspector.storage.database import open_database, transaction
 
 #: The labels a reviewer can give, in the order of the keys 1, 2, 3.
 LABELS = ("incident", "false_alarm", "unsure")
@@ -66,17 +69,9 @@ COLUMNS = tuple(f.name for f in fields(Label))
 
 def connect(database: Path | str) -> sqlite3.Connection:
     """Open the store's SQLite file (WAL mode) and make sure table ``labels`` exists."""
-    path = Path(database)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    conn = sqlite3.connect(str(path), timeout=10.0, check_same_thread=False)
-    conn.execute("PRAGMA journal_mode=WAL")
+    conn = open_database(database)
     conn.execute(_SCHEMA)
-    conn.commit()
     return conn
-
-
-def now() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
 def put(conn: sqlite3.Connection, labels: Iterable[Label]) -> int:
@@ -85,7 +80,7 @@ def put(conn: sqlite3.Connection, labels: Iterable[Label]) -> int:
     for r in rows:
         if r[COLUMNS.index("label")] not in LABELS:
             raise ValueError(f"unknown label {r[COLUMNS.index('label')]!r}; one of {LABELS}")
-    with conn:
+    with transaction(conn):
         conn.executemany(f"INSERT OR REPLACE INTO labels ({', '.join(COLUMNS)}) "
                          f"VALUES ({', '.join('?' * len(COLUMNS))})", rows)
     return len(rows)
@@ -93,7 +88,7 @@ def put(conn: sqlite3.Connection, labels: Iterable[Label]) -> int:
 
 def remove(conn: sqlite3.Connection, camera: str, paths: Sequence[str]) -> int:
     """Forget the labels of these frames; returns how many existed."""
-    with conn:
+    with transaction(conn):
         cur = conn.executemany("DELETE FROM labels WHERE camera = ? AND path = ?",
                                [(camera, p) for p in paths])
     return cur.rowcount

@@ -24,7 +24,10 @@ capture_time  ISO 8601 capture time of the frame
 overlay  overlay image written for a flagged frame ('' when none)
 seen_at  when the file was found complete (ISO 8601, local time with offset)
 scored_at when the row was committed
-written  1 once the frame's CSV rows are in the results folder (see ``watch``)
+written  1 once the frame's CSV rows are in the results folder (see
+         :mod:`inspector.storage.results`)
+health   the frame's camera health conditions, JSON ``[[condition, measure, limit], ...]``
+         (NULL when none), so that its health.csv rows can be written again after a crash
 ======== ================================================================================
 
 Table ``watchers``: one heartbeat row per running watcher (queue lengths and lag), read by
@@ -40,16 +43,17 @@ import sqlite3
 import threading
 import time
 from collections.abc import Iterable, Iterator, Sequence
-from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+from inspector.clock import now_iso
 from inspector.core.events import FramePoint
+from inspector.storage.database import TIMEOUT, open_database, transaction
 
 #: Columns of ``frames`` written by :meth:`Ledger.record` (all but ``id``).
 FRAME_COLUMNS = ("path", "rel", "camera", "size", "mtime", "status", "reason", "score",
                  "threshold", "p_value", "flagged", "version", "capture_time", "overlay",
-                 "seen_at", "scored_at", "written")
+                 "seen_at", "scored_at", "written", "health")
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS frames (
@@ -70,7 +74,8 @@ CREATE TABLE IF NOT EXISTS frames (
     overlay TEXT,
     seen_at TEXT,
     scored_at TEXT,
-    written INTEGER NOT NULL DEFAULT 1
+    written INTEGER NOT NULL DEFAULT 1,
+    health TEXT
 );
 CREATE INDEX IF NOT EXISTS frames_camera ON frames (camera, status, capture_time);
 CREATE TABLE IF NOT EXISTS watchers (
@@ -82,11 +87,6 @@ CREATE TABLE IF NOT EXISTS watchers (
     state TEXT
 );
 """
-
-
-def now_iso() -> str:
-    """The current local time, ISO 8601 with milliseconds and UTC offset."""
-    return datetime.now().astimezone().isoformat(timespec="milliseconds")
 
 
 def source_range(root: Path | str) -> tuple[str, str]:
@@ -114,12 +114,10 @@ def read_scored(database: Path | str, camera: str | None = None, limit: int | No
         sql += " LIMIT ?"
         params += (limit,)
     try:
-        conn = sqlite3.connect(f"{Path(database).resolve().as_uri()}?mode=ro", uri=True,
-                               timeout=10.0)
+        conn = open_database(database, readonly=True, timeout=10.0)
     except sqlite3.Error:
         return []
     try:
-        conn.row_factory = sqlite3.Row
         return conn.execute(sql, params).fetchall()
     except sqlite3.Error:  # no ledger table (yet)
         return []
@@ -134,17 +132,16 @@ class Ledger:
     processes (status, the review page, a scan) read while a watcher writes.
     """
 
-    def __init__(self, path: Path | str, timeout: float = 60.0):
-        path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        self.path = path
+    def __init__(self, path: Path | str, timeout: float = TIMEOUT):
+        self.path = Path(path)
         self.lock = threading.RLock()
-        self.conn = sqlite3.connect(str(path), timeout=timeout, check_same_thread=False,
-                                    isolation_level=None)
-        self.conn.row_factory = sqlite3.Row
-        self.conn.execute("PRAGMA journal_mode=WAL")
-        self.conn.execute("PRAGMA synchronous=NORMAL")
+        self.conn = open_database(self.path, timeout=timeout)
         self.conn.executescript(_SCHEMA)
+        with self.lock, self._transaction():  # ledgers made before a column existed
+            have = {r[1] for r in self.conn.execute("PRAGMA table_info(frames)")}
+            for name, kind in (("health", "TEXT"),):
+                if name not in have:
+                    self.conn.execute(f"ALTER TABLE frames ADD COLUMN {name} {kind}")
 
     # --- writing -----------------------------------------------------------------------
 
@@ -240,6 +237,14 @@ class Ledger:
         for r in found:
             yield FramePoint(r[0], r[1] or "", r[2], float(r[3]), bool(r[4]))
 
+    def cameras(self, root: Path | str) -> list[str]:
+        """Cameras with scored frames under ``root``."""
+        lo, hi = source_range(root)
+        with self.lock:
+            return [r[0] for r in self.conn.execute(
+                "SELECT DISTINCT camera FROM frames WHERE path >= ? AND path < ? "
+                "AND status = 'scored'", (lo, hi))]
+
     def camera_counts(self) -> dict[str, dict[str, Any]]:
         """Per camera: scored, flagged, skipped, waiting counts and the last capture time."""
         out: dict[str, dict[str, Any]] = {}
@@ -266,18 +271,8 @@ class Ledger:
 
     # --- plumbing ----------------------------------------------------------------------
 
-    def _transaction(self):
-        conn = self.conn
-
-        class _Tx:
-            def __enter__(self_inner):
-                conn.execute("BEGIN IMMEDIATE")
-
-            def __exit__(self_inner, kind, exc, tb):
-                conn.execute("COMMIT" if kind is None else "ROLLBACK")
-                return False
-
-        return _Tx()
+    def _transaction(self) -> transaction:
+        return transaction(self.conn)
 
     def close(self) -> None:
         with self.lock:
