@@ -78,6 +78,19 @@ class Threshold:
     #: with a generalized Pareto fit of the largest scores, see :func:`tail_threshold`).
     method: str = "conformal"
 
+    def to_dict(self) -> dict:
+        """The threshold as JSON-ready values (the inverse of :meth:`from_dict`)."""
+        return {"value": float(self.value), "alpha": float(self.alpha),
+                "promised": float(self.promised), "n": int(self.n),
+                "frames_short": int(self.frames_short), "method": self.method}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Threshold":
+        """A threshold from :meth:`to_dict`'s values (extra keys ignored; thresholds saved
+        before ``method`` existed are conformal)."""
+        return cls(float(d["value"]), float(d["alpha"]), float(d["promised"]), int(d["n"]),
+                   int(d["frames_short"]), d.get("method", "conformal"))
+
     @property
     def warning(self) -> str:
         if not self.frames_short:

@@ -44,9 +44,6 @@ from inspector.core.estimator import Estimator
 
 #: Lighting modes of :func:`photometric`.
 LIGHTING_MODES = ("global", "local", "off")
-#: Health conditions, in the order they are reported.
-HEALTH_CONDITIONS = ("camera moved", "lens covered", "out of focus", "frozen feed",
-                     "too dark", "overexposed")
 #: Health limits before they are widened by the normal frames (see :meth:`Conditions.fit`).
 DEFAULT_LIMITS = {"dark": 20.0, "bright": 0.5, "covered": 0.5, "focus": 0.35, "frozen": 0.25}
 #: Neighbourhood of a clipped pixel whose brightness is not trusted (see ``prepare``).

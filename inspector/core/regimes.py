@@ -119,9 +119,7 @@ class Regimes:
         return assign(appearance(images), self.centres, self.scale)
 
     def to_json(self) -> list[dict[str, Any]]:
-        return [{"value": t.value, "alpha": t.alpha, "promised": t.promised, "n": t.n,
-                 "frames_short": t.frames_short, "method": t.method,
-                 "centre": [float(v) for v in c]}
+        return [{**t.to_dict(), "centre": [float(v) for v in c]}
                 for t, c in zip(self.thresholds, self.centres)]
 
     def arrays(self) -> dict[str, np.ndarray]:
@@ -137,6 +135,4 @@ class Regimes:
         return cls(centres=a["centres"], scale=a["scale"], centers=a["centers"],
                    scales=a["scales"],
                    calibration_scores=[a["scores"][a["labels"] == i] for i in range(k)],
-                   thresholds=[Threshold(t["value"], t["alpha"], t["promised"], t["n"],
-                                         t["frames_short"], t.get("method", "conformal"))
-                               for t in meta])
+                   thresholds=[Threshold.from_dict(t) for t in meta])

@@ -265,6 +265,26 @@ def _reduced_flag(kind: str, source_size: tuple[int, int], size: tuple[int, int]
     return cv2.IMREAD_COLOR
 
 
+def _header_dims(source) -> tuple[int, int] | None:
+    """(width, height) from an image header (a path or a binary file object), or None when
+    it cannot be read. No pixel is decoded, so no size limit applies here: callers apply
+    their own."""
+    saved = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None  # our own cap, with our own message
+    try:
+        with Image.open(source) as im:
+            return int(im.size[0]), int(im.size[1])
+    except Exception:
+        return None
+    finally:
+        Image.MAX_IMAGE_PIXELS = saved
+
+
+def image_size(path: Path) -> tuple[int, int] | None:
+    """(width, height) of an image file from its header alone; None when unreadable."""
+    return _header_dims(path)
+
+
 def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int]]:
     """Format and (width, height) from the header alone, refusing oversized or truncated files.
 
@@ -279,15 +299,9 @@ def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int]]:
     kind = sniff(data[:16])
     if kind is None:
         raise FrameError("not an image (content is not JPEG, PNG, BMP or TIFF)")
-    saved = Image.MAX_IMAGE_PIXELS
-    Image.MAX_IMAGE_PIXELS = None  # our own cap below, with our own message
-    try:
-        with Image.open(io.BytesIO(data)) as im:
-            size = (int(im.size[0]), int(im.size[1]))
-    except Exception:
-        raise FrameError(f"unreadable {kind.upper()} header (corrupt or truncated file)") from None
-    finally:
-        Image.MAX_IMAGE_PIXELS = saved
+    size = _header_dims(io.BytesIO(data))
+    if size is None:
+        raise FrameError(f"unreadable {kind.upper()} header (corrupt or truncated file)")
     if size[0] < 1 or size[1] < 1:
         raise FrameError(f"image has no pixels ({size[0]}x{size[1]})")
     if size[0] * size[1] > max_pixels:
