@@ -31,7 +31,7 @@ sys.path.insert(0, str(ROOT))
 from inspector.config import load_config  # noqa: E402
 from inspector.demo.scenario import generate  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
-from inspector.jobs.scan import Baselines, run_scan  # noqa: E402
+from inspector.jobs.scan import BaselineCache, read_args, run_scan  # noqa: E402
 from inspector.storage.frames import discover, iter_frames  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
@@ -63,14 +63,14 @@ def run(work: Path, n: int, rounds: int) -> None:
         print(f"learnt {report.camera} from {report.frames} full-HD frames in "
               f"{report.seconds:.1f} s")
     files, _ = discover(scenario.new)
-    baselines = Baselines(store, config)
+    baselines = BaselineCache(store)
     decode_rates, scan_rates, decode_cpu, scan_cpu = [], [], [], []
     for r in range(rounds):
         t, c = time.perf_counter(), time.process_time()
         count = 0
         for cam in sorted({f.camera for f in files}):
             cam_files = [f for f in files if f.camera == cam]
-            for _, frame in iter_frames(cam_files, **baselines.read_args(cam)):
+            for _, frame in iter_frames(cam_files, **read_args(baselines.get(cam), config)):
                 count += 1
         decode_rates.append(count / (time.perf_counter() - t))
         decode_cpu.append(count / (time.process_time() - c))

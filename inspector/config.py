@@ -127,6 +127,57 @@ class ConditionSettings:
 
 
 @dataclass(frozen=True)
+class WatchSettings:
+    """The ``[watch]`` section of the config."""
+
+    #: A file is complete once its size and modification time stay unchanged this long (s).
+    settle: float = 1.0
+    #: Poll the folder every this many seconds instead of using file events (0 = events).
+    #: For network shares and mounts where no events arrive.
+    poll: float = 0.0
+    #: Complete frames handed to the scoring workers at most at a time (back-pressure).
+    queue: int = 64
+    #: Scoring threads.
+    workers: int = 2
+    #: Frames scored together by a worker.
+    batch: int = 16
+    #: Walk the whole folder again every this many seconds for anything missed (0 = never).
+    rescan: float = 600.0
+    #: Log the backlog when the oldest complete frame has waited longer than this (s).
+    lag_warning: float = 5.0
+
+    @staticmethod
+    def check(s: "WatchSettings", where: str) -> None:
+        for name, lo, hi in (("settle", 0.0, 3600.0), ("poll", 0.0, 3600.0),
+                             ("rescan", 0.0, 86400.0), ("lag_warning", 0.0, 86400.0)):
+            v = getattr(s, name)
+            if not lo <= v <= hi:
+                raise UsageError(f"{where} {name} = {v!r} is outside [{lo:g}, {hi:g}]")
+        for name, lo, hi in (("queue", 1, 100_000), ("workers", 1, 64), ("batch", 1, 256)):
+            v = getattr(s, name)
+            if not lo <= v <= hi:
+                raise UsageError(f"{where} {name} = {v!r} is outside [{lo}, {hi}]")
+
+
+@dataclass(frozen=True)
+class EventSettings:
+    """The ``[events]`` section of the config."""
+
+    #: An event opens when at least k of the last n frames are flagged.
+    k: int = 1
+    n: int = 1
+    #: Unflagged frames in a row tolerated inside an event.
+    gap: int = 1
+
+    @staticmethod
+    def check(s: "EventSettings", where: str) -> None:
+        if not (1 <= s.k <= s.n <= 1000):
+            raise UsageError(f"{where} k = {s.k}, n = {s.n}: need 1 <= k <= n <= 1000")
+        if not (0 <= s.gap <= 1000):
+            raise UsageError(f"{where} gap = {s.gap} is outside [0, 1000]")
+
+
+@dataclass(frozen=True)
 class CameraMask:
     #: Polygons in pixel coordinates of the exported frame, each a list of [x, y].
     polygons: tuple[tuple[tuple[float, float], ...], ...] = ()
@@ -153,9 +204,11 @@ class Config:
     model: ModelSettings = field(default_factory=ModelSettings)
     calibration: CalibrationSettings = field(default_factory=CalibrationSettings)
     conditions: ConditionSettings = field(default_factory=ConditionSettings)
+    watch: WatchSettings = field(default_factory=WatchSettings)
+    events: EventSettings = field(default_factory=EventSettings)
     #: Raw per-camera tables, validated when read through :meth:`camera`.
     cameras: dict[str, dict[str, Any]] = field(default_factory=dict)
-    #: Sections that other parts of the tool own (watch, events, health, ...), as read.
+    #: Sections that other parts of the tool own, as read (see :meth:`section`).
     extra: dict[str, dict[str, Any]] = field(default_factory=dict)
     source: str = "built-in defaults"
 
@@ -179,7 +232,10 @@ class Config:
         return CameraConfig(name=name, mask=mask, **out)
 
     def section(self, name: str, cls: type) -> Any:
-        """Build a dataclass ``cls`` from the extra section ``[name]`` (defaults if absent)."""
+        """Build a dataclass ``cls`` from the extra section ``[name]`` (defaults if absent);
+        a section the config knows (e.g. ``watch``) is returned as validated at load."""
+        if name in {f.name for f in fields(self)} and isinstance(getattr(self, name), cls):
+            return getattr(self, name)
         return _build(cls, dict(self.extra.get(name, {})), f"[{name}]", source=self.source)
 
 
@@ -213,7 +269,8 @@ def load_config(path: str | Path | None = None) -> Config:
         raise UsageError(f"config file {path} is not valid TOML: {exc}") from None
     src = str(path)
     known = {"paths": PathSettings, "frames": FrameSettings, "model": ModelSettings,
-             "calibration": CalibrationSettings, "conditions": ConditionSettings}
+             "calibration": CalibrationSettings, "conditions": ConditionSettings,
+             "watch": WatchSettings, "events": EventSettings}
     built = {k: _build(cls, data.pop(k, {}), f"[{k}]", source=src) for k, cls in known.items()}
     cameras = data.pop("cameras", {})
     if not isinstance(cameras, dict) or not all(isinstance(v, dict) for v in cameras.values()):

@@ -23,7 +23,7 @@ pytest.importorskip("distributed")
 from inspector.cli.main import main  # noqa: E402
 from inspector.config import load_config  # noqa: E402
 from inspector.jobs import cluster as jc  # noqa: E402
-from inspector.jobs.scan import Baselines  # noqa: E402
+from inspector.jobs.scan import BaselineCache  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
 from inspector.storage.results import ResultWriter  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
@@ -135,16 +135,17 @@ def test_a_worker_killed_mid_scan_loses_and_repeats_no_frame(site, client):
     class KillOnFirstWrite(ResultWriter):
         killed = False
 
-        def write(self, results):
+        def write(self, results=(), skipped=(), seen=None):
             if not self.killed:
                 KillOnFirstWrite.killed = True
                 os.kill(pids[0], signal.SIGKILL)  # the other partitions are in flight
-            return super().write(results)
+            return super().write(results, skipped, seen)
 
     out = root / "out-killed"
     settings = jc.ClusterSettings(partition=1)
     with KillOnFirstWrite(out, out / "all.csv") as writer:
-        jc.scan_on_cluster(client, files, Baselines(store, config), writer, settings=settings)
+        jc.scan_on_cluster(client, files, BaselineCache(store), writer, config,
+                           settings=settings)
     assert KillOnFirstWrite.killed
     frames = [r["frame"] for r in _rows(out / "all.csv")]
     assert len(frames) == len(set(frames)) == 21

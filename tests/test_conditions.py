@@ -28,7 +28,7 @@ from inspector.core.textmask import find_text_boxes
 from inspector.demo.scenario import HEALTH_TRUTH, generate
 from inspector.errors import UsageError
 from inspector.jobs.learn import learn_camera
-from inspector.jobs.scan import Baselines, scan_files
+from inspector.jobs.scan import BaselineCache, scan_files
 from inspector.jobs.status import camera_facts, format_table
 from inspector.storage.frames import discover
 from inspector.storage.results import HEALTH_COLUMNS, ResultWriter
@@ -174,7 +174,8 @@ def _learn_and_scan(tmp_path, nuisance, seed, conditions="", camera="dock"):
     out = tmp_path / "out"
     new, _ = discover(root / "new")
     with ResultWriter(out, out / "all.csv") as writer:
-        scan_files([f for f in new if f.camera == camera], Baselines(store, config), writer)
+        scan_files([f for f in new if f.camera == camera], BaselineCache(store), writer,
+                   config)
     truth = {r["frame"]: r["incident"] for r in csv.DictReader(open(root / "truth.csv"))}
     faults = {}
     if (root / HEALTH_TRUTH).exists():

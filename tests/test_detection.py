@@ -11,7 +11,7 @@ from sklearn.metrics import roc_auc_score
 
 from inspector.config import load_config
 from inspector.jobs.learn import learn_camera
-from inspector.jobs.scan import Baselines, scan_folder
+from inspector.jobs.scan import BaselineCache, scan_folder
 from inspector.storage.frames import discover
 from inspector.storage.results import ResultWriter
 from inspector.storage.store import Store
@@ -62,7 +62,7 @@ def test_pasted_defects_are_detected_on_texture_photographs(tmp_path, small_conf
     learn_camera(files, config.camera(texture), store)
     all_scores = tmp_path / "out" / "all.csv"
     with ResultWriter(tmp_path / "out", all_scores) as writer:
-        scan_folder(tmp_path / "new", Baselines(store, config), writer)
+        scan_folder(tmp_path / "new", BaselineCache(store), writer, config)
     with open(all_scores, newline="") as fh:
         rows = sorted(csv.DictReader(fh), key=lambda r: r["frame"])
     scores = np.array([float(r["score"]) for r in rows])

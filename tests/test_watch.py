@@ -294,6 +294,32 @@ def test_new_camera_without_baseline_waits_then_is_scored(env):
     assert len(rows) == 12 and {r["status"] for r in rows.values()} == {"scored"}
 
 
+def covered_bytes(seed: int) -> bytes:
+    """The test scene with most of the lens covered by something dark and soft, as
+    inspector.demo.scenario draws a hand over the lens (tests/test_conditions.py)."""
+    img = cv2.imdecode(np.frombuffer(frame_bytes(seed), np.uint8), cv2.IMREAD_COLOR)
+    img[:, : W * 9 // 10] = 20
+    ok, buf = cv2.imencode(".png", cv2.GaussianBlur(img, (0, 0), 2.0))
+    assert ok
+    return buf.tobytes()
+
+
+def test_watch_writes_health_rows_for_a_covered_lens(env):
+    """health.csv is written under watch as under scan (one writer), and status shows it."""
+    write_frames(env["src"], "dock", range(3))
+    (env["src"] / "dock" / name("dock", 3)).write_bytes(covered_bytes(3))
+    assert run_watch(env, None, 1.0) == 0
+    check_agree(env)
+    health = csv_rows(env["out"] / "health.csv")
+    covered = f"dock/{name('dock', 3)}"
+    assert "lens covered" in {r["condition"] for r in health if r["frame"] == covered}
+    assert {r["frame"] for r in health} == {covered}
+    st = subprocess.run([sys.executable, "-m", "inspector", "status", "--store",
+                         str(env["store"]), "--out", str(env["out"])], cwd=ROOT,
+                        capture_output=True, text=True, check=False)
+    assert st.returncode == 0 and "lens covered" in st.stdout, st.stdout + st.stderr
+
+
 def test_bad_files_during_watch_are_recorded(env):
     def writer():
         write_frames(env["src"], "dock", range(2))

@@ -43,9 +43,23 @@ def cmd_baselines(args: argparse.Namespace) -> int:
         say(f"{camera}: {args.activate} is now active (was {old or 'none'})")
         return 0
     say(f"{'version':<9}{'active':<8}{'model':<6}{'frames':>7}  {'first frame':<20}"
-        f"{'last frame':<20}{'threshold':>10}{'false-alarm rate':>18}{'+false alarms':>15}")
+        f"{'last frame':<20}{'threshold':>10}{'false-alarm rate':>18}{'+false alarms':>15}"
+        f"  files")
     for r in rows:
         say(f"{r['version']:<9}{'yes' if r['active'] else '':<8}{r['model']:<6}{r['frames']:>7}  "
             f"{r['first'][:19]:<20}{r['last'][:19]:<20}{r['threshold']:>10.3f}"
-            f"{r['false_alarm_rate']:>18.4g}{r['false_alarms_added']:>15}")
+            f"{r['false_alarm_rate']:>18.4g}{r['false_alarms_added']:>15}  "
+            f"{_files(r['check'])}")
+    damaged = [r for r in rows if r["check"].damaged and r["active"]]
+    if damaged:
+        say(f"the active version is damaged: {store.advice(camera, damaged[0]['version'])}")
     return 0
+
+
+def _files(check) -> str:
+    """The files column: ok, unchecked (saved before checksums) or DAMAGED with the problem."""
+    if check.state == "unchecked":
+        return "unchecked (saved before checksums were recorded)"
+    if check.damaged:
+        return f"DAMAGED: {check.problem}"
+    return "ok"

@@ -95,3 +95,6 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
         say(f"camera health: {summary.health} conditions in {out / 'health.csv'}")
     if all_scores:
         say(f"all scores: {all_scores}")
+    if getattr(summary, "damaged", None):
+        say("damaged baselines (their frames were not scored): "
+            + "; ".join(summary.damaged[c] for c in sorted(summary.damaged)))

@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 import signal
 from dataclasses import replace
-from datetime import datetime
 from pathlib import Path
 
 from inspector.cli.common import (
@@ -16,15 +15,11 @@ from inspector.cli.common import (
     resolve,
     say,
 )
-from inspector.core.events import EventSettings
+from inspector.clock import now
+from inspector.config import WatchSettings
 from inspector.errors import UsageError
-from inspector.jobs.scan import Baselines
-from inspector.jobs.watch import (
-    Watcher,
-    WatchReport,
-    WatchSettings,
-    refuse_second_watcher,
-)
+from inspector.jobs.scan import BaselineCache
+from inspector.jobs.watch import Watcher, WatchReport, refuse_second_watcher
 from inspector.storage.ledger import Ledger
 from inspector.storage.results import ResultWriter
 
@@ -48,7 +43,7 @@ def register(sub) -> None:
 
 def cmd_watch(args: argparse.Namespace) -> int:
     config, store = resolve(args)
-    settings = config.section("watch", WatchSettings)
+    settings = config.watch
     if args.poll is not None:
         if not 0 < args.poll <= 3600:
             raise UsageError(f"--poll {args.poll:g}: choose seconds in (0, 3600]")
@@ -57,17 +52,16 @@ def cmd_watch(args: argparse.Namespace) -> int:
         raise UsageError(f"--idle-exit {args.idle_exit:g}: seconds must not be negative")
     out = args.out or Path(config.paths.out)
     root = check_source(args.source, out, args.all_scores, args.maps, store.root)
-    events = config.section("events", EventSettings)
 
     def log(text: str) -> None:
-        say(f"{datetime.now().strftime('%H:%M:%S')} {text}")
+        say(f"{now().strftime('%H:%M:%S')} {text}")
 
     with Ledger(store.database) as ledger:
         refuse_second_watcher(ledger, root)
         with ResultWriter(out, args.all_scores, args.maps, append=True, source=root,
-                          store=store.root) as writer:
-            report = _run(Watcher(root, Baselines(store, config), writer, ledger, settings,
-                                  events, idle_exit=args.idle_exit, log=log), settings, log)
+                          store=store.root, ledger=ledger, events=config.events) as writer:
+            report = _run(Watcher(root, BaselineCache(store), config, writer, settings,
+                                  idle_exit=args.idle_exit, log=log), settings, log)
     if report.waiting:
         say(f"{report.waiting} frames wait for a baseline of their camera")
     report_scan(report, out, args.all_scores)

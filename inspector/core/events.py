@@ -14,43 +14,20 @@ With the defaults (k = 1, n = 1, gap = 1) every flagged frame belongs to an even
 flagged frames separated by at most one unflagged frame share one. Raising k (say k = 2,
 n = 3) leaves isolated flags out of events (they stay in flagged.csv).
 
-The grouping is a pure function (:func:`group_events`) used by ``scan`` and ``watch``;
-:func:`write_events` writes ``events.csv`` atomically.
+The grouping is a pure function (:func:`group_events`), the only one, used by ``scan`` and
+``watch`` alike; :mod:`inspector.storage.results` writes ``events.csv``.
 """
 
 from __future__ import annotations
 
-import csv
-import io
-import os
-import tempfile
 from collections import deque
 from collections.abc import Iterable
 from dataclasses import dataclass
-from pathlib import Path
 
-from inspector.errors import UsageError
+from inspector.config import EventSettings  # the [events] section: k, n, gap
 
 #: Columns of events.csv, in this order.
 EVENT_COLUMNS = ("event", "camera", "start", "end", "frames", "peak_frame", "peak_score")
-
-
-@dataclass(frozen=True)
-class EventSettings:
-    """The ``[events]`` section of the config."""
-
-    #: An event opens when at least k of the last n frames are flagged.
-    k: int = 1
-    n: int = 1
-    #: Unflagged frames in a row tolerated inside an event.
-    gap: int = 1
-
-    @staticmethod
-    def check(s: "EventSettings", where: str) -> None:
-        if not (1 <= s.k <= s.n <= 1000):
-            raise UsageError(f"{where} k = {s.k}, n = {s.n}: need 1 <= k <= n <= 1000")
-        if not (0 <= s.gap <= 1000):
-            raise UsageError(f"{where} gap = {s.gap} is outside [0, 1000]")
 
 
 @dataclass(frozen=True)
@@ -140,21 +117,3 @@ def _camera_events(camera: str, series: list[FramePoint], s: EventSettings) -> l
     if members is not None:
         close()
     return out
-
-
-def write_events(path: Path, events: Iterable[Event]) -> None:
-    """Write events.csv atomically (a reader never sees half a file)."""
-    buf = io.StringIO()
-    w = csv.writer(buf)
-    w.writerow(EVENT_COLUMNS)
-    for e in events:
-        w.writerow(e.row())
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-events-", suffix=".csv")
-    try:
-        with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
-            fh.write(buf.getvalue())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise

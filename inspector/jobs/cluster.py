@@ -42,6 +42,7 @@ from inspector.errors import FrameError, UsageError
 from inspector.jobs.progress import progress_bar
 from inspector.jobs.scan import ScanSummary, read_args, scan_files
 from inspector.storage.frames import FrameFile, read_frame
+from inspector.storage.results import Skipped
 from inspector.storage.store import Store
 
 _LOCAL = re.compile(r"^local:(\d+)$")
@@ -167,28 +168,23 @@ def worker_baseline(root: str, camera: str, version: str | None, keep: int) -> B
 
 
 class _Partition:
-    """What :func:`scan_files` needs of ``Baselines``, for one camera on a worker."""
+    """What :func:`scan_files` needs of a ``BaselineCache``, for one camera on a worker."""
 
-    def __init__(self, baseline: Baseline, config: Config):
-        self.baseline, self.config = baseline, config
+    def __init__(self, baseline: Baseline):
+        self.baseline = baseline
 
     def get(self, camera: str) -> Baseline:
         return self.baseline
 
-    def read_args(self, camera: str) -> dict:
-        return read_args(self.baseline, self.config)
 
-
-class _Missing(_Partition):
-    """A camera without a baseline: every frame waits, as in a local scan."""
+class _Missing:
+    """A camera without a usable baseline: every frame waits, as in a local scan."""
 
     def __init__(self, error: LookupError):
         self.error = error
 
     def get(self, camera: str) -> Baseline:
         raise self.error
-
-    read_args = get  # type: ignore[assignment]
 
 
 class Recorder:
@@ -203,20 +199,17 @@ class Recorder:
         self.calls: list[tuple[str, tuple]] = []
         self.counts: Counter[str] = Counter()
 
-    def write(self, results) -> list[str]:
+    def write(self, results=(), skipped=(), seen=None) -> list[str]:
         slim = [r if r.flagged else replace(r, image=np.zeros((0, 0, 3), np.uint8))
                 for r in results]
-        if slim:
-            self.calls.append(("write", (slim,)))
+        if slim or skipped:
+            self.calls.append((slim, list(skipped)))
         return ["" for _ in slim]
-
-    def skip(self, frame: str, camera: str, reason: str, waiting: bool = False) -> None:
-        self.calls.append(("skip", (frame, camera, reason, waiting)))
 
     def replay(self, writer) -> None:
         """Make the recorded calls on ``writer``, in the order they were made."""
-        for name, args in self.calls:
-            getattr(writer, name)(*args)
+        for results, skipped in self.calls:
+            writer.write(results, skipped)
 
 
 @dataclass
@@ -230,14 +223,16 @@ class Part:
     before: list[FrameFile] = field(default_factory=list)
 
 
-def score_part(part: Part, root: str, config: Config, keep: int) -> tuple[Recorder, Counter]:
-    """Score one partition on a worker: its record of results and its frame notes."""
+def score_part(part: Part, root: str, config: Config, keep: int
+               ) -> tuple[Recorder, Counter, dict[str, str]]:
+    """Score one partition on a worker: its record of results, its frame notes and the
+    damaged baseline met (camera -> message)."""
     recorder = Recorder()
     try:
         baseline = worker_baseline(root, part.camera, part.version, keep)
     except LookupError as exc:
-        summary = scan_files(part.files, _Missing(exc), recorder)
-        return recorder, summary.notes
+        summary = scan_files(part.files, _Missing(exc), recorder, config)
+        return recorder, summary.notes, summary.damaged
     previous = None
     for f in part.before:  # the last decodable frame before the partition
         try:
@@ -245,9 +240,9 @@ def score_part(part: Part, root: str, config: Config, keep: int) -> tuple[Record
             break
         except FrameError:
             continue
-    summary = scan_files(part.files, _Partition(baseline.continue_from(previous), config),
-                         recorder)
-    return recorder, summary.notes
+    summary = scan_files(part.files, _Partition(baseline.continue_from(previous)), recorder,
+                         config)
+    return recorder, summary.notes, summary.damaged
 
 
 # --- driver side -----------------------------------------------------------------------------
@@ -267,7 +262,7 @@ def partitions(files: Sequence[FrameFile], store: Store, size: int) -> list[Part
     return parts
 
 
-def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer,
+def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, config: Config,
                     total: int | None = None, settings: ClusterSettings | None = None
                     ) -> ScanSummary:
     """Score frame files on ``client``'s cluster into ``writer``, as
@@ -278,13 +273,14 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer,
     come out the same whatever order the workers finish in. A partition still failing after
     ``retries`` (or whose workers kept dying) becomes ``skipped.csv`` rows with the reason.
     """
-    store, config = baselines.store, baselines.config
+    store = baselines.store
     settings = settings or cluster_settings(config)
     started = time.perf_counter()
     parts = partitions(list(files), store, settings.partition)
     root = str(Path(store.root).resolve())
     ahead = max(4, 3 * sum(client.nthreads().values()))
     notes: Counter[str] = Counter()
+    damaged: dict[str, str] = {}
     todo = iter(parts)
     flight: deque = deque()
 
@@ -301,23 +297,26 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer,
         while flight:
             part, future = flight.popleft()
             try:
-                recorder, part_notes = future.result()
+                recorder, part_notes, part_damaged = future.result()
             except Exception as exc:
                 if type(exc).__name__ != "KilledWorker":
                     raise
-                for f in part.files:
-                    writer.skip(f.rel, f.camera, f"not scored: the workers scoring it were "
-                                                 f"lost {settings.retries + 1} times")
+                writer.write(skipped=[
+                    Skipped(f.rel, f.camera, f"not scored: the workers scoring it were lost "
+                                             f"{settings.retries + 1} times")
+                    for f in part.files])
             else:
                 recorder.replay(writer)
                 notes.update(part_notes)
+                damaged.update(part_damaged)
             finally:
                 future.release()
             bar.update(len(part.files))
             submit()
     return ScanSummary(scored=writer.counts["scored"], flagged=writer.counts["flagged"],
-                       skipped=writer.counts["skipped"], health=writer.counts.get("health", 0),
-                       seconds=time.perf_counter() - started, notes=notes)
+                       skipped=writer.counts["skipped"] + writer.counts["waiting"],
+                       health=writer.counts["health"],
+                       seconds=time.perf_counter() - started, notes=notes, damaged=damaged)
 
 
 def learn_on_cluster(client, tasks: Sequence[dict]) -> Iterator:

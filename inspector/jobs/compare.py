@@ -8,7 +8,7 @@ showing how many flags the switch adds and removes on the camera's last N scored
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np
@@ -145,20 +145,18 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
 
 def version_rows(store: Store, camera: str) -> list[dict]:
     """One dict per version: version, created, frames, first/last frame time, threshold,
-    promised false-alarm rate, model, false alarms folded in, active."""
+    promised false-alarm rate, model, false alarms folded in, active, and ``check`` (see
+    :meth:`inspector.storage.store.Store.check`: ok, unchecked or damaged, with the problem).
+    A damaged version whose description cannot be read is listed with blanks."""
     active = store.active_version(camera)
     rows = []
     for v in store.versions(camera):
+        check = store.check(camera, v)
         try:
-            m = store.metadata(camera, v)
-        except (OSError, ValueError):
-            continue
-        t = m.get("threshold", {})
-        rows.append({"version": v, "created": m.get("created", ""),
-                     "model": m.get("model", ""), "frames": m.get("frames", 0),
-                     "first": m.get("first_frame_time", ""), "last": m.get("last_frame_time", ""),
-                     "threshold": t.get("value", float("nan")),
-                     "false_alarm_rate": t.get("promised", float("nan")),
-                     "false_alarms_added": m.get("false_alarm_frames", 0),
-                     "active": v == active})
+            info = asdict(store.info(camera, v))
+        except (OSError, ValueError, AttributeError):
+            info = {"version": v, "created": "", "model": "", "frames": 0, "first": "",
+                    "last": "", "threshold": float("nan"), "false_alarm_rate": float("nan"),
+                    "false_alarms_added": 0}
+        rows.append({**info, "active": v == active, "check": check})
     return rows

@@ -15,13 +15,12 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
-from PIL import Image
 
 import inspector
+from inspector.clock import now
 from inspector.config import CameraConfig, Config, settings_dict
 from inspector.core.baseline import Baseline
 from inspector.core.calibration import (
@@ -43,10 +42,11 @@ from inspector.storage.frames import (
     FrameFile,
     Skip,
     capture_time,
+    image_size,
     iter_frames,
     working_size,
 )
-from inspector.storage.store import Store
+from inspector.storage.store import Store, VersionFacts, describe
 
 #: Fewer normal frames than this cannot make a baseline at all.
 MIN_FRAMES = 10
@@ -197,7 +197,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
         Too few usable frames for the model at all (the message says how many are needed),
         or a mask image that cannot be read.
     """
-    started = datetime.now(timezone.utc)
+    started = now()
     fs = cfg.frames
     camera = cfg.name
     if len(files) < MIN_FRAMES:
@@ -269,38 +269,22 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                          for r, t in enumerate(regimes.thresholds) if t.warning]
     warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
     good = [t for i, t in enumerate(times) if i not in source.skipped]
-    meta = {
-        "camera": camera,
-        "created": started.isoformat(timespec="seconds"),
-        "model": model.kind,
-        "model_params": model.get_params(),
-        "model_learned": model.learned(),
-        "frames": used,
-        "frames_skipped": len(source.skipped),
-        "calibration_frames": int(len(cal)),
-        "first_frame_time": min(good).isoformat(),
-        "last_frame_time": max(good).isoformat(),
-        "source_size": list(source_size),
-        "working_size": list(size),
-        "settings": {"frames": settings_dict(fs), "model": settings_dict(cfg.model),
-                     "calibration": settings_dict(cfg.calibration),
-                     "conditions": settings_dict(cfg.conditions),
-                     "mask": settings_dict(cfg.mask)},
-        "threshold": {"value": threshold.value, "alpha": threshold.alpha,
-                      "promised": threshold.promised, "n": threshold.n,
-                      "frames_short": threshold.frames_short, "method": threshold.method},
-        "text_boxes": [list(b) for b in text_boxes],
-        "warnings": warnings,
-        "inspector_version": inspector.__version__,
-        **(extra or {}),
-    }
+    facts = VersionFacts(
+        created=started, frames=used, frames_skipped=len(source.skipped),
+        first_frame_time=min(good), last_frame_time=max(good),
+        settings={"frames": settings_dict(fs), "model": settings_dict(cfg.model),
+                  "calibration": settings_dict(cfg.calibration),
+                  "conditions": settings_dict(cfg.conditions),
+                  "mask": settings_dict(cfg.mask)},
+        text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}))
     baseline = Baseline(camera=camera, version="", model=model, center=center, scale=scale,
                         calibration_scores=cal, threshold=threshold, size=size,
-                        source_size=source_size, mask=mask, meta=meta, conditions=conditions,
+                        source_size=source_size, mask=mask, conditions=conditions,
                         regimes=regimes)
+    baseline.meta = describe(baseline, facts, inspector.__version__)
     version = store.save(baseline, activate=activate)
     skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
-    seconds = (datetime.now(timezone.utc) - started).total_seconds()
+    seconds = (now() - started).total_seconds()
     if text_boxes:
         notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
                      + ", ".join(str(tuple(b)) for b in text_boxes))
@@ -365,19 +349,8 @@ def _model_params(cfg: CameraConfig) -> dict:
 
 def _common_resolution(files: Sequence[FrameFile]) -> tuple[int, int]:
     """The most common exported resolution among the frames (read from headers only)."""
-    sizes: Counter[tuple[int, int]] = Counter()
-    saved = Image.MAX_IMAGE_PIXELS
-    Image.MAX_IMAGE_PIXELS = None
-    try:
-        for f in files:
-            try:
-                with Image.open(f.path) as im:
-                    sizes[(int(im.size[0]), int(im.size[1]))] += 1
-            except Exception:  # unreadable ones are recorded when decoded
-                continue
-    finally:
-        Image.MAX_IMAGE_PIXELS = saved
-    if not sizes:
+    sizes = Counter(size for f in files if (size := image_size(f.path)) is not None)
+    if not sizes:  # unreadable ones are recorded when decoded
         raise UsageError("none of the normal frames could be read")
     return sizes.most_common(1)[0][0]
 

@@ -17,23 +17,24 @@ from inspector.core.baseline import Baseline
 from inspector.errors import FrameError
 from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import Frame, FrameFile, discover, iter_frames
-from inspector.storage.results import FrameResult, ResultWriter
-from inspector.storage.store import Store
+from inspector.storage.results import FrameResult, ResultWriter, Skipped
+from inspector.storage.store import DamagedBaseline, Store
 
 #: Frames scored together: amortises per-call overhead while a batch's patches still fit in
 #: cache (8 measured fastest of 4, 8, 16 and 32 at the default working resolution).
 BATCH = 8
 
 
-class Baselines:
+class BaselineCache:
     """Loaded baselines, each loaded once and reused (scan, watch and the review page).
 
-    ``get`` raises LookupError("no baseline for camera X") for a camera without one.
+    ``get`` raises LookupError ("no baseline for camera X") for a camera without one, and
+    :class:`inspector.storage.store.DamagedBaseline` (a LookupError) for a damaged
+    version; the answer is kept until ``forget``.
     """
 
-    def __init__(self, store: Store, config: Config):
+    def __init__(self, store: Store):
         self.store = store
-        self.config = config
         self._loaded: dict[tuple[str, str | None], Baseline | LookupError] = {}
         self._lock = threading.Lock()  # watch scores from several threads: load once
 
@@ -52,14 +53,11 @@ class Baselines:
         return found
 
     def forget(self, camera: str | None = None) -> None:
-        """Reload on next use (after ``learn`` or an activation)."""
+        """Load again on next use (after ``learn`` or an activation); all cameras when
+        none is named."""
         with self._lock:
             for key in [k for k in self._loaded if camera is None or k[0] == camera]:
                 del self._loaded[key]
-
-    def read_args(self, camera: str) -> dict:
-        """Arguments of :func:`inspector.storage.frames.read_frame` for this camera's frames."""
-        return read_args(self.get(camera), self.config)
 
 
 def read_args(baseline: Baseline, config: Config) -> dict:
@@ -78,8 +76,7 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame]) -> list[FrameResul
     s = baseline.score(np.stack([f.image for f in frames]), sequence=True)
     return [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
                         score=float(s.scores[i]),
-                        threshold=float(s.thresholds[i]) if s.thresholds is not None
-                        else baseline.threshold.value,
+                        threshold=float(s.thresholds[i]),
                         p_value=float(s.p_values[i]), model=baseline.version,
                         flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
                         health=s.health[i] if s.health else [])
@@ -99,15 +96,34 @@ class ScanSummary:
     #: that is no longer the camera's active one.
     unchanged: int = 0
     unchanged_older: int = 0
+    #: Cameras whose active baseline is damaged: the message, with what to do.
+    damaged: dict[str, str] = field(default_factory=dict)
 
     @property
     def rate(self) -> float:
         return self.scored / self.seconds if self.seconds > 0 else 0.0
 
 
-def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultWriter,
-               workers: int = 2, total: int | None = None) -> ScanSummary:
-    """Score frame files (any cameras) into ``writer``; nothing is dropped silently."""
+def load_baseline(baselines: BaselineCache, camera: str, damaged: dict[str, str]
+                  ) -> tuple[Baseline | None, str]:
+    """The camera's baseline and '', or None and why its frames cannot be scored (no
+    baseline, or a damaged one: then the message with what to do goes into ``damaged``)."""
+    try:
+        return baselines.get(camera), ""
+    except DamagedBaseline as exc:
+        damaged[camera] = f"{exc}: {exc.advice}"
+        return None, str(exc)
+    except LookupError as exc:
+        return None, str(exc)
+
+
+def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: ResultWriter,
+               config: Config, workers: int = 2, total: int | None = None) -> ScanSummary:
+    """Score frame files (any cameras) into ``writer``; nothing is dropped silently.
+
+    A camera without a usable baseline (none, or a damaged one) has its frames recorded
+    with the reason; the other cameras are scored as usual.
+    """
     started = time.perf_counter()
     summary = ScanSummary()
     by_camera: dict[str, list[FrameFile]] = {}
@@ -115,19 +131,18 @@ def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultW
         by_camera.setdefault(f.camera, []).append(f)
     with progress_bar(total, "scanning") as bar:
         for camera, cam_files in by_camera.items():
-            try:
-                args = baselines.read_args(camera)
-                baseline = baselines.get(camera)
-            except LookupError as exc:
-                for f in cam_files:
-                    writer.skip(f.rel, camera, str(exc), waiting=True)
-                    bar.update()
+            baseline, reason = load_baseline(baselines, camera, summary.damaged)
+            if baseline is None:
+                writer.write(skipped=[Skipped(f.rel, camera, reason, waiting=True)
+                                      for f in cam_files])
+                bar.update(len(cam_files))
                 continue
             batch: list[Frame] = []
-            for f, frame in iter_frames(cam_files, workers=workers, **args):
+            for f, frame in iter_frames(cam_files, workers=workers,
+                                        **read_args(baseline, config)):
                 bar.update()
                 if isinstance(frame, FrameError):
-                    writer.skip(f.rel, camera, str(frame))
+                    writer.write(skipped=[Skipped(f.rel, camera, str(frame))])
                     continue
                 summary.notes.update(f"{camera}: {n}" for n in frame.notes)
                 batch.append(frame)
@@ -137,13 +152,13 @@ def scan_files(files: Iterable[FrameFile], baselines: Baselines, writer: ResultW
             writer.write(score_frames(baseline, batch))
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]
-    summary.skipped = writer.counts["skipped"]
-    summary.health = writer.counts.get("health", 0)
+    summary.skipped = writer.counts["skipped"] + writer.counts["waiting"]
+    summary.health = writer.counts["health"]
     summary.seconds = time.perf_counter() - started
     return summary
 
 
-def scan_folder(source: Path, baselines: Baselines, writer: ResultWriter,
+def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, config: Config,
                 workers: int = 2, rescore: bool = True, client=None) -> ScanSummary:
     """Discover every frame under ``source`` (camera = first folder level) and score it.
 
@@ -152,8 +167,7 @@ def scan_folder(source: Path, baselines: Baselines, writer: ResultWriter,
     frames are scored on its Dask cluster (:func:`inspector.jobs.cluster.scan_on_cluster`).
     """
     files, skips = discover(source)
-    for s in skips:
-        writer.skip(s.rel, s.camera, s.reason)
+    writer.write(skipped=[Skipped(s.rel, s.camera, s.reason) for s in skips])
     done: dict = {}
     if not rescore and writer.ledger is not None:
         root = Path(source).resolve()
@@ -162,9 +176,10 @@ def scan_folder(source: Path, baselines: Baselines, writer: ResultWriter,
     if client is not None:
         from inspector.jobs.cluster import scan_on_cluster
 
-        summary = scan_on_cluster(client, files, baselines, writer, total=len(files))
+        summary = scan_on_cluster(client, files, baselines, writer, config, total=len(files))
     else:
-        summary = scan_files(files, baselines, writer, workers=workers, total=len(files))
+        summary = scan_files(files, baselines, writer, config, workers=workers,
+                             total=len(files))
     summary.unchanged = len(done)
     active = {c: baselines.store.active_version(c) for c in {r["camera"] for r in done.values()}}
     summary.unchanged_older = sum(r["version"] != active[r["camera"]] for r in done.values())
@@ -178,12 +193,10 @@ def run_scan(source: Path, config: Config, store: Store, out: Path,
 
     ``rescore`` and ``client``: see :func:`scan_folder`.
     """
-    from inspector.core.events import EventSettings
     from inspector.storage.ledger import Ledger
 
-    events = config.section("events", EventSettings)
     with Ledger(store.database) as ledger, \
             ResultWriter(out, all_scores, maps, source=source, store=store.root,
-                         ledger=ledger, events=events) as writer:
-        return scan_folder(source, Baselines(store, config), writer, rescore=rescore,
+                         ledger=ledger, events=config.events) as writer:
+        return scan_folder(source, BaselineCache(store), writer, config, rescore=rescore,
                            client=client)

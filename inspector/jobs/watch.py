@@ -2,26 +2,24 @@
 
 How a frame goes through the watcher::
 
-    file events (watchdog: inotify, or polling)      catch-up pass / periodic rescan
-                 \\                                     /
-                  pending: path -> (size, mtime, last change)      [event thread]
-                  |  complete = size and mtime unchanged for ``settle`` seconds,
-                  |  or renamed into place; temporary names are never pending
+    complete files (see inspector.jobs.settle: file events, settling, polling, catch-up)
+                  |                                                 [event thread]
                   ready (unbounded; nothing is dropped)  ->  work queue (bounded)
                                                               |
-                  workers: decode, score (one loaded baseline per camera), write overlay,
-                  commit ledger rows, append CSV rows, mark the rows written
+                  workers: decode, score (one loaded baseline per camera), then the
+                  one writer (inspector.storage.results.ResultWriter): overlay, ledger
+                  rows, CSV and health rows, rows marked written
 
 Exactly once: a frame is done when its ledger row holds status scored/skipped for the
-file's current size and modification time; such files are never read again. The ledger row
-is committed *before* the CSV rows are appended and marked ``written`` after; on start,
-rows not marked written are compared with the CSV files and the missing CSV rows appended
-(a crash between the two steps leaves no gap and no duplicate). A CSV line cut short by a
-crash is trimmed first.
+file's current size and modification time; such files are never read again. The writer
+commits the ledger rows before it appends the CSV rows and marks them written after; on
+start, :meth:`~inspector.storage.results.ResultWriter.reconcile` appends the CSV rows of
+frames not marked written (a crash between the two steps leaves no gap and no duplicate).
+A CSV line cut short by a crash is trimmed first.
 
-Frames of a camera without a baseline are recorded as ``waiting`` and scored as soon as
-``learn`` activates a baseline for that camera (checked every few seconds) or on the next
-start.
+Frames of a camera without a usable baseline (none yet, or a damaged active version) are
+recorded as ``waiting`` and scored as soon as a good baseline is active for that camera
+(checked every few seconds) or on the next start.
 """
 
 from __future__ import annotations
@@ -30,88 +28,25 @@ import os
 import queue
 import threading
 import time
-from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from inspector.core.events import EventSettings, group_events, write_events
+from inspector.clock import now_iso
+from inspector.config import WatchSettings
 from inspector.errors import FrameError, UsageError
-from inspector.jobs.scan import Baselines, ScanSummary, score_frames
-from inspector.storage.frames import (
-    FrameFile,
-    Skip,
-    discover,
-    frame_file,
-    is_ignored_name,
-    read_frame,
-)
-from inspector.storage.ledger import Ledger, now_iso
-from inspector.storage.results import ResultWriter, format_row, iso_time
-
-
-@dataclass(frozen=True)
-class WatchSettings:
-    """The ``[watch]`` section of the config."""
-
-    #: A file is complete once its size and modification time stay unchanged this long (s).
-    settle: float = 1.0
-    #: Poll the folder every this many seconds instead of using file events (0 = events).
-    #: For network shares and mounts where no events arrive.
-    poll: float = 0.0
-    #: Complete frames handed to the scoring workers at most at a time (back-pressure).
-    queue: int = 64
-    #: Scoring threads.
-    workers: int = 2
-    #: Frames scored together by a worker.
-    batch: int = 16
-    #: Walk the whole folder again every this many seconds for anything missed (0 = never).
-    rescan: float = 600.0
-    #: Log the backlog when the oldest complete frame has waited longer than this (s).
-    lag_warning: float = 5.0
-
-    @staticmethod
-    def check(s: "WatchSettings", where: str) -> None:
-        for name, lo, hi in (("settle", 0.0, 3600.0), ("poll", 0.0, 3600.0),
-                             ("rescan", 0.0, 86400.0), ("lag_warning", 0.0, 86400.0)):
-            v = getattr(s, name)
-            if not lo <= v <= hi:
-                raise UsageError(f"{where} {name} = {v!r} is outside [{lo:g}, {hi:g}]")
-        for name, lo, hi in (("queue", 1, 100_000), ("workers", 1, 64), ("batch", 1, 256)):
-            v = getattr(s, name)
-            if not lo <= v <= hi:
-                raise UsageError(f"{where} {name} = {v!r} is outside [{lo}, {hi}]")
-
-
-@dataclass
-class Item:
-    """A complete file handed to the workers."""
-
-    path: str
-    size: int | None
-    mtime: float | None
-    seen_at: str
-    #: time.monotonic() when it was found complete (for the lag).
-    ready: float
-    file: FrameFile | None = None
-    #: Set when the file cannot be a frame: recorded as skipped with this reason.
-    skip: Skip | None = None
-
-
-@dataclass
-class _Pending:
-    size: int
-    mtime: float
-    changed: float  # monotonic time of the last change seen
+from inspector.jobs.scan import BaselineCache, ScanSummary, read_args, score_frames
+from inspector.jobs.settle import Arrival, Settler, is_done
+from inspector.storage.frames import read_frame
+from inspector.storage.ledger import Ledger
+from inspector.storage.results import ResultWriter, Seen, Skipped
+from inspector.storage.store import DamagedBaseline, Store
 
 
 @dataclass
 class WatchReport(ScanSummary):
+    #: Frames recorded as waiting for a usable baseline of their camera.
     waiting: int = 0
-
-
-def _same(row, size, mtime) -> bool:
-    return row is not None and row["size"] == size and row["mtime"] == mtime
 
 
 class Watcher:
@@ -121,45 +56,47 @@ class Watcher:
     ----------
     root : Path
         Resolved folder, one subfolder per camera.
-    baselines : Baselines
+    baselines : BaselineCache
+    config : Config
+        Per-camera frame settings.
     writer : ResultWriter
-        In append mode, without a ledger (the watcher records the ledger itself).
-    ledger : Ledger
+        In append mode, with the ledger and the event settings.
     settings : WatchSettings
-    events : EventSettings
     idle_exit : float, optional
         Stop after this many seconds with no new frame and nothing in hand.
     log : callable
         Receives one-line messages for the operator.
     """
 
-    def __init__(self, root: Path, baselines: Baselines, writer: ResultWriter, ledger: Ledger,
-                 settings: WatchSettings, events: EventSettings, idle_exit: float | None = None,
+    def __init__(self, root: Path, baselines: BaselineCache, config, writer: ResultWriter,
+                 settings: WatchSettings, idle_exit: float | None = None,
                  log: Callable[[str], None] = print):
+        if writer.ledger is None:
+            raise ValueError("the watcher's writer needs the ledger")
         self.root = root
         self.baselines = baselines
+        self.config = config
         self.writer = writer
-        self.ledger = ledger
+        self.ledger: Ledger = writer.ledger
         self.settings = settings
-        self.event_settings = events
         self.idle_exit = idle_exit
         self.log = log
         self.stop = threading.Event()
         self.report = WatchReport()
-        self._events: queue.Queue = queue.Queue()  # from the observer thread, unbounded
-        self._pending: dict[str, _Pending] = {}
-        self._ready: deque[Item] = deque()
-        self._work: queue.Queue[Item] = queue.Queue(maxsize=settings.queue)
-        self._inflight: dict[str, Item] = {}  # queued or being scored, by path
-        self._lock = threading.Lock()  # inflight, report, waiting cameras, dirty flag
-        self._write_lock = threading.Lock()  # the ResultWriter
-        self._waiting: set[str] = set()
+        self.files = Settler(root, self.ledger, settings.settle, settings.poll,
+                             self._in_hand, log)
+        self._work: queue.Queue[Arrival] = queue.Queue(maxsize=settings.queue)
+        self._inflight: dict[str, Arrival] = {}  # queued or being scored, by path
+        self._lock = threading.Lock()  # inflight, report, waiting cameras
+        #: Cameras whose frames wait, with the version that could not be used (None: none).
+        self._failed: dict[str, str | None] = {}
+        self._damaged: dict[str, str] = {}  # camera -> message (with advice), while damaged
         self._versions: dict[str, str | None] = {}
-        self._dirty: set[str] | None = None  # cameras whose events changed; None = all
-        self._events_by_camera: dict[str, list] = {}
-        self._last_activity = time.monotonic()
         self._started = now_iso()
-        self._tick = max(0.02, min(0.1, settings.settle / 4))
+
+    @property
+    def store(self) -> Store:
+        return self.baselines.store
 
     # --- the event thread ----------------------------------------------------------------
 
@@ -167,61 +104,38 @@ class Watcher:
         """Watch until :attr:`stop` is set (signal) or the idle time passes."""
         t0 = time.perf_counter()
         self._heartbeat(time.monotonic())
-        self.reconcile()
-        observer = self._observer()
-        try:
-            observer.start()
-        except OSError as exc:  # e.g. the system's limit of inotify watches is reached
-            poll = max(1.0, self.settings.settle)
-            self.log(f"file events unavailable ({exc}); polling every {poll:g} s instead")
-            observer = self._observer(poll)
-            observer.start()
+        frames, added = self.writer.reconcile()
+        if frames:
+            self.log(f"recovered {frames} frames committed before the last stop "
+                     f"({added} CSV rows appended)")
+        self.files.start()
         workers = [threading.Thread(target=self._worker, name=f"score-{i}", daemon=True)
                    for i in range(self.settings.workers)]
         for w in workers:
             w.start()
         try:
-            self.catch_up()
+            self.files.catch_up()
             self._loop()
             if self.stop.is_set():
                 self.log("stop requested: finishing the frames in hand")
         finally:
             self.stop.set()
-            observer.stop()
             for w in workers:
                 w.join()
-            observer.join(timeout=5)
-            self._write_events()
+            self.files.stop()
+            self.writer.write_events()
             self.ledger.end_watch(str(self.root))
         self.report.seconds = time.perf_counter() - t0
+        with self._lock:
+            self.report.damaged = dict(self._damaged)
         return self.report
-
-    def _observer(self, poll: float | None = None):
-        from watchdog.events import FileSystemEventHandler
-        from watchdog.observers import Observer
-        from watchdog.observers.polling import PollingObserver
-
-        sink = self._events
-
-        class Handler(FileSystemEventHandler):
-            def on_any_event(self, event):  # noqa: D401 - never block the observer
-                sink.put(event)
-
-        poll = poll or self.settings.poll
-        if poll > 0:
-            observer = PollingObserver(timeout=poll)
-        else:
-            observer = Observer()
-        observer.schedule(Handler(), str(self.root), recursive=True)
-        return observer
 
     def _loop(self) -> None:
         last_beat = last_events = last_check = last_lag = 0.0
         last_rescan = time.monotonic()
         while not self.stop.is_set():
-            self._drain_events()
+            self.files.step()
             now = time.monotonic()
-            self._settle(now)
             self._feed()
             if now - last_beat >= 2.0:
                 self._heartbeat(now)
@@ -229,128 +143,32 @@ class Watcher:
             if now - last_check >= 2.0:
                 self._check_baselines()
                 last_check = now
-            if (self._dirty is None or self._dirty) and now - last_events >= 2.0:
-                self._write_events()
+            if self.writer.events_changed and now - last_events >= 2.0:
+                self.writer.write_events()
                 last_events = now
             if now - last_lag >= 5.0 and self._log_lag(now):
                 last_lag = now
             if self.settings.rescan > 0 and now - last_rescan >= self.settings.rescan:
-                self.catch_up()
+                self.files.catch_up()
                 last_rescan = now
             if self.idle_exit is not None and self._idle(now):
                 self.log(f"no new frame for {self.idle_exit:g} s: stopping")
                 break
 
-    def _drain_events(self) -> None:
-        try:
-            event = self._events.get(timeout=self._tick)
-        except queue.Empty:
-            return
-        while True:
-            self._handle(event)
-            try:
-                event = self._events.get_nowait()
-            except queue.Empty:
-                return
-
-    def _handle(self, event) -> None:
-        kind = event.event_type
-        src = os.fsdecode(event.src_path)
-        if event.is_directory:
-            if kind == "created":
-                self._walk(src)
-            elif kind == "moved":
-                self._walk(os.fsdecode(event.dest_path))
-            return
-        if kind in ("created", "modified", "closed"):
-            self._observe(src)
-        elif kind == "moved":
-            self._pending.pop(src, None)
-            self._observe(os.fsdecode(event.dest_path), renamed=True)
-        elif kind == "deleted":
-            p = self._pending.pop(src, None)
-            if p is not None:  # seen, never complete: record why it was not scored
-                self._complete(src, p.size, p.mtime,
-                               gone="deleted before it could be read")
-
-    def _under_root(self, path: str) -> bool:
-        return path.startswith(str(self.root) + os.sep)
-
-    def _observe(self, path: str, renamed: bool = False) -> None:
-        """A file may have changed: (re)start its settle clock, or complete it if renamed."""
-        if not self._under_root(path):
-            return
-        rel = path[len(str(self.root)) + 1:]
-        if any(is_ignored_name(part) for part in rel.split(os.sep)):
-            return
-        try:
-            st = os.stat(path)
-        except OSError:
-            self._pending.pop(path, None)
-            return
-        if not os.path.isfile(path):
-            return
-        self._last_activity = time.monotonic()
-        if renamed:  # renamed into place: the writer is done with it
-            self._pending.pop(path, None)
-            self._complete(path, st.st_size, st.st_mtime)
-            return
-        p = self._pending.get(path)
-        if p is None or (p.size, p.mtime) != (st.st_size, st.st_mtime):
-            self._pending[path] = _Pending(st.st_size, st.st_mtime, time.monotonic())
-
-    def _walk(self, folder: str) -> None:
-        for dirpath, dirnames, filenames in os.walk(folder):
-            dirnames[:] = [d for d in dirnames if not is_ignored_name(d)]
-            for name in filenames:
-                self._observe(os.path.join(dirpath, name))
-
-    def _settle(self, now: float) -> None:
-        settle = self.settings.settle
-        due = [path for path, p in self._pending.items() if now - p.changed >= settle]
-        for path in due:
-            p = self._pending[path]
-            try:
-                st = os.stat(path)
-            except OSError:
-                del self._pending[path]
-                self._complete(path, p.size, p.mtime, gone="deleted before it could be read")
-                continue
-            if (st.st_size, st.st_mtime) != (p.size, p.mtime):
-                self._pending[path] = _Pending(st.st_size, st.st_mtime, now)
-                continue
-            del self._pending[path]
-            self._complete(path, st.st_size, st.st_mtime)
-
-    def _complete(self, path: str, size, mtime, gone: str = "") -> None:
-        """The file is complete (or gone): hand it on unless it is already in hand."""
+    def _in_hand(self, path: str, size, mtime) -> bool:
         with self._lock:
             held = self._inflight.get(path)
-            if held is not None and (held.size, held.mtime) == (size, mtime):
-                return
-        item = Item(path, size, mtime, now_iso(), time.monotonic())
-        if gone:
-            rel = Path(path).relative_to(self.root).as_posix()
-            cam = rel.split("/")[0] if "/" in rel else ""
-            item.skip = Skip(rel, cam, gone)
-        else:
-            found = frame_file(Path(path), self.root)
-            if found is None:
-                return
-            if isinstance(found, Skip):
-                item.skip = found
-            else:
-                item.file = found
-        self._ready.append(item)
+            return held is not None and (held.size, held.mtime) == (size, mtime)
 
     def _feed(self) -> None:
-        while self._ready:
-            item = self._ready[0]
+        ready = self.files.ready
+        while ready:
+            item = ready[0]
             with self._lock:
                 held = self._inflight.get(item.path)
                 if held is not None:
                     if (held.size, held.mtime) == (item.size, item.mtime):
-                        self._ready.popleft()
+                        ready.popleft()
                         continue
                     return  # an older version is in hand: keep order, try again later
             try:
@@ -359,108 +177,68 @@ class Watcher:
                 return
             with self._lock:
                 self._inflight[item.path] = item
-            self._ready.popleft()
-
-    def catch_up(self) -> None:
-        """Find every frame not yet done (arrived while the tool was down, or missed)."""
-        files, skips = discover(self.root)
-        paths = [str(f.path) for f in files] + [str(self.root / s.rel) for s in skips]
-        rows = self.ledger.lookup(paths)
-        for path in paths:
-            if path in self._pending:
-                continue
-            try:
-                st = os.stat(path)
-            except OSError:
-                continue
-            row = rows.get(path)
-            if row is not None and row["status"] != "waiting" and _same(row, st.st_size,
-                                                                          st.st_mtime):
-                continue
-            self._pending[path] = _Pending(st.st_size, st.st_mtime, time.monotonic())
-
-    def reconcile(self) -> None:
-        """Append the CSV rows of frames committed in the ledger but not yet written."""
-        rows = self.ledger.rows(self.root, "written = 0")
-        if not rows:
-            return
-        files = {"flagged": self.writer.out / "flagged.csv",
-                 "skipped": self.writer.out / "skipped.csv"}
-        if self.writer.all_scores:
-            files["all"] = Path(self.writer.all_scores.fh.name)
-        present = {k: _csv_rows(p) for k, p in files.items()}
-        added = 0
-        with self._write_lock:
-            for r in rows:
-                if r["status"] == "scored":
-                    row = format_row(r["rel"], r["camera"], r["capture_time"], r["score"],
-                                     r["threshold"], r["p_value"], r["version"],
-                                     r["overlay"] or "")
-                    if r["flagged"] and row not in present["flagged"]:
-                        self.writer.flagged.row(row)
-                        added += 1
-                    if "all" in present and row not in present["all"]:
-                        self.writer.all_scores.row(row)
-                        added += 1
-                elif r["status"] == "skipped":
-                    row = (r["rel"], r["camera"], r["reason"] or "")
-                    if row not in present["skipped"]:
-                        self.writer.skipped.row(row)
-                        added += 1
-        self.ledger.mark_written([r["path"] for r in rows])
-        self.log(f"recovered {len(rows)} frames committed before the last stop "
-                 f"({added} CSV rows appended)")
+            ready.popleft()
 
     def _idle(self, now: float) -> bool:
         with self._lock:
             busy = bool(self._inflight)
-        return (not busy and not self._pending and not self._ready
-                and now - self._last_activity >= self.idle_exit)
+        return (not busy and not self.files.pending and not self.files.ready
+                and now - self.files.last_activity >= self.idle_exit)
 
     def _check_baselines(self) -> None:
-        """Reload a camera's baseline after ``learn``; score its waiting frames."""
+        """Load a camera's baseline again after ``learn`` or an activation; score its
+        waiting frames once a usable one is active."""
         with self._lock:
-            cameras = set(self._versions) | self._waiting
+            cameras = set(self._versions) | set(self._failed)
         for cam in cameras:
             try:
-                version = self.baselines.store.active_version(cam)
+                version = self.store.active_version(cam)
             except UsageError:
                 continue
             with self._lock:
-                retry = cam in self._waiting and version is not None
-            if version == self._versions.get(cam) and not retry:
-                continue
-            known = cam in self._versions
+                waiting = cam in self._failed
+                failed = self._failed.get(cam)
+            changed = cam in self._versions and version != self._versions[cam]
             self._versions[cam] = version
-            if not known and not retry:
+            if not (changed or (waiting and version is not None and version != failed)):
                 continue
             self.baselines.forget(cam)
-            if version is not None:
-                self.log(f"{cam}: baseline {version} is now active")
+            if version is None:
+                continue
+            try:
+                self.baselines.get(cam)
+            except LookupError as exc:
                 with self._lock:
-                    waiting = cam in self._waiting
-                    self._waiting.discard(cam)
-                if waiting:
-                    for r in self.ledger.rows(self.root, "status = 'waiting' AND camera = ?",
-                                              (cam,)):
-                        self._observe(r["path"])
+                    if cam in self._failed:
+                        self._failed[cam] = version
+                self.log(f"{cam}: {exc}; its frames keep waiting")
+                continue
+            self.log(f"{cam}: baseline {version} is now active")
+            with self._lock:
+                self._failed.pop(cam, None)
+                self._damaged.pop(cam, None)
+            if waiting:
+                for r in self.ledger.rows(self.root, "status = 'waiting' AND camera = ?",
+                                          (cam,)):
+                    self.files.observe(r["path"])
 
     def _backlog(self, now: float) -> dict:
         cams: dict[str, dict] = {}
         with self._lock:
             items = list(self._inflight.values())
-        items += list(self._ready)
+        items += list(self.files.ready)
         for it in items:
-            cam = (it.file.camera if it.file else it.skip.camera) or ""
-            c = cams.setdefault(cam, {"queued": 0, "oldest": 0.0})
+            c = cams.setdefault(it.camera, {"queued": 0, "oldest": 0.0})
             c["queued"] += 1
             c["oldest"] = max(c["oldest"], now - it.ready)
         return cams
 
     def _heartbeat(self, now: float) -> None:
         cams = self._backlog(now)
+        with self._lock:
+            damaged = dict(self._damaged)
         self.ledger.heartbeat(str(self.root), self._started, {
-            "cameras": cams, "pending": len(self._pending),
+            "cameras": cams, "pending": self.files.pending, "damaged": damaged,
             "queued": sum(c["queued"] for c in cams.values())})
 
     def _log_lag(self, now: float) -> bool:
@@ -474,23 +252,6 @@ class Watcher:
         self.log(f"lag: {n} frames waiting to be scored, oldest found {oldest:.1f} s ago "
                  f"(frames arrive faster than they are scored; none is dropped)")
         return True
-
-    def _write_events(self) -> None:
-        """Regroup the cameras with new scored frames (all on the first call) and rewrite
-        events.csv."""
-        with self._lock:
-            dirty, self._dirty = self._dirty, set()
-        if dirty is None:
-            self._events_by_camera = {}
-            for e in group_events(self.ledger.points(self.root), self.event_settings):
-                self._events_by_camera.setdefault(e.camera, []).append(e)
-        else:
-            for cam in dirty:
-                self._events_by_camera[cam] = group_events(
-                    self.ledger.points(self.root, cam), self.event_settings)
-        write_events(self.writer.out / "events.csv",
-                     [e for cam in sorted(self._events_by_camera)
-                      for e in self._events_by_camera[cam]])
 
     # --- the workers --------------------------------------------------------------------
 
@@ -515,96 +276,69 @@ class Watcher:
                     for it in batch:
                         if self._inflight.get(it.path) is it:
                             del self._inflight[it.path]
-                self._last_activity = time.monotonic()
+                self.files.last_activity = time.monotonic()
 
-    def _process(self, batch: list[Item]) -> None:
+    def _process(self, batch: list[Arrival]) -> None:
         done = self.ledger.lookup([it.path for it in batch])
-        todo = [it for it in batch if not (
-            (row := done.get(it.path)) is not None and row["status"] != "waiting"
-            and _same(row, it.size, it.mtime))]
-        entries: list[dict] = []
-        rows: list[tuple[str, tuple, bool]] = []  # (kind, csv row, flagged)
-        by_camera: dict[str, list[Item]] = {}
+        todo = [it for it in batch if not is_done(done.get(it.path), it.size, it.mtime)]
+        skipped: list[Skipped] = []
+        seen: dict[str, Seen] = {}
+        by_camera: dict[str, list[Arrival]] = {}
         for it in todo:
+            rel = it.skip.rel if it.skip is not None else it.file.rel
+            seen[rel] = Seen(it.path, it.size, it.mtime, it.seen_at)
             if it.skip is not None:
-                entries.append(self._entry(it, it.skip.rel, it.skip.camera, status="skipped",
-                                           reason=it.skip.reason, written=0))
-                rows.append(("skipped", (it.skip.rel, it.skip.camera, it.skip.reason), False))
+                skipped.append(Skipped(it.skip.rel, it.skip.camera, it.skip.reason))
             else:
                 by_camera.setdefault(it.file.camera, []).append(it)
-        waiting: list[str] = []
-        flagged_lines: list[str] = []
+        newly_waiting: list[tuple[str, str]] = []
+        results = []
         for camera, items in by_camera.items():
             with self._lock:
-                self._versions.setdefault(camera, self.baselines.store.active_version(camera))
+                self._versions.setdefault(camera, self.store.active_version(camera))
             try:
                 baseline = self.baselines.get(camera)
-                args = self.baselines.read_args(camera)
             except LookupError as exc:
-                for it in items:
-                    entries.append(self._entry(it, it.file.rel, camera, status="waiting",
-                                               reason=f"{exc} yet"))
+                damage = f"{exc}: {exc.advice}" if isinstance(exc, DamagedBaseline) else ""
+                skipped += [Skipped(it.file.rel, camera, str(exc), waiting=True)
+                            for it in items]
                 with self._lock:
-                    if camera not in self._waiting:
-                        waiting.append(camera)
-                    self._waiting.add(camera)
+                    if camera not in self._failed:
+                        newly_waiting.append((camera, damage))
+                    self._failed[camera] = exc.check.version if damage else None
+                    if damage:
+                        self._damaged[camera] = damage
                 continue
-            frames, by_path = [], {}
+            frames = []
             for it in items:
-                by_path[str(it.file.path)] = it
                 try:
-                    frames.append(read_frame(it.file, **args))
+                    frames.append(read_frame(it.file, **read_args(baseline, self.config)))
                 except FrameError as exc:
-                    entries.append(self._entry(it, it.file.rel, camera, status="skipped",
-                                               reason=str(exc), written=0))
-                    rows.append(("skipped", (it.file.rel, camera, str(exc)), False))
-            results = score_frames(baseline, frames)
-            for frame, r in zip(frames, results):
-                it = by_path[str(frame.file.path)]
+                    skipped.append(Skipped(it.file.rel, camera, str(exc)))
+            for frame in frames:
                 with self._lock:
                     self.report.notes.update(f"{camera}: {n}" for n in frame.notes)
-                with self._write_lock:
-                    overlay = self.writer.save_files(r)
-                t = iso_time(r.time)
-                entries.append(self._entry(
-                    it, r.frame, camera, status="scored", score=r.score,
-                    threshold=r.threshold, p_value=r.p_value, flagged=int(r.flagged),
-                    version=r.model, capture_time=t, overlay=overlay, written=0))
-                rows.append(("scored", format_row(r.frame, camera, t, r.score, r.threshold,
-                                                  r.p_value, r.model, overlay), r.flagged))
-                if r.flagged:
-                    flagged_lines.append(
-                        f"flagged {r.frame}  score {r.score:.2f} > {r.threshold:.2f}")
-        self.ledger.record(entries)  # committed: from here on the frames are done
-        with self._write_lock:
-            for kind, row, flagged in rows:
-                if kind == "scored":
-                    self.writer.add_rows(row, flagged)
-                else:
-                    self.writer.skipped.row(row)
-        self.ledger.mark_written(e["path"] for e in entries if e.get("written") == 0)
+            results += score_frames(baseline, frames)
+        self.writer.write(results, skipped, seen)
         with self._lock:
-            for e in entries:
-                if e["status"] == "scored":
-                    self.report.scored += 1
-                    self.report.flagged += e["flagged"]
-                    if self._dirty is not None:
-                        self._dirty.add(e["camera"])
-                elif e["status"] == "skipped":
-                    self.report.skipped += 1
-                else:
+            for r in results:
+                self.report.scored += 1
+                self.report.flagged += r.flagged
+                self.report.health += len(r.health)
+            for s in skipped:
+                if s.waiting:
                     self.report.waiting += 1
-        for line in flagged_lines:
-            self.log(line)
-        for camera in waiting:
-            self.log(f"{camera}: no baseline yet; its frames wait (run 'inspector learn')")
-        for kind, row, _ in rows:
-            if kind == "skipped":
-                self.log(f"skipped {row[0]}: {row[2]}")
-
-    def _entry(self, it: Item, rel: str, camera: str, **values) -> dict:
-        return dict(path=it.path, rel=rel, camera=camera, size=it.size, mtime=it.mtime,
-                    seen_at=it.seen_at, scored_at=now_iso(), **values)
+                else:
+                    self.report.skipped += 1
+        for r in results:
+            if r.flagged:
+                self.log(f"flagged {r.frame}  score {r.score:.2f} > {r.threshold:.2f}")
+        for camera, damage in newly_waiting:
+            self.log(f"{camera}: {damage}; its frames wait meanwhile" if damage else
+                     f"{camera}: no baseline yet; its frames wait (run 'inspector learn')")
+        for s in skipped:
+            if not s.waiting:
+                self.log(f"skipped {s.frame}: {s.reason}")
 
 
 def refuse_second_watcher(ledger: Ledger, root: Path) -> None:
@@ -623,13 +357,3 @@ def _alive(pid: int) -> bool:
     except PermissionError:  # exists, owned by someone else
         return True
     return True
-
-
-def _csv_rows(path: Path) -> set[tuple]:
-    import csv
-
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            return {tuple(r) for r in csv.reader(fh)}
-    except FileNotFoundError:
-        return set()

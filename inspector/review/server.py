@@ -54,7 +54,7 @@ from inspector.config import Config
 from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.compare import COMPARE_FRAMES, compare_versions, version_rows
-from inspector.jobs.scan import Baselines, read_args
+from inspector.jobs.scan import BaselineCache, read_args
 from inspector.review.data import Item, Results, parse_filters, select, timeline_svg
 from inspector.storage.frames import FrameFile, read_frame, sniff
 from inspector.storage.labels import (
@@ -157,7 +157,7 @@ class Review:
     config: Config
     token: str
     hosts: Hosts
-    baselines: Baselines
+    baselines: BaselineCache
     compared: dict[tuple[str, str, str], dict] = field(default_factory=dict)
     compute: threading.Lock = field(default_factory=threading.Lock)
 
@@ -241,7 +241,7 @@ def create_app(out: Path, store: Store, config: Config, token: str | None = None
     review = Review(results=Results(Path(out), source=source, database=store.database),
                     store=store, config=config, token=token or secrets.token_urlsafe(24),
                     hosts=hosts or Hosts.for_bind("127.0.0.1"),
-                    baselines=Baselines(store, config))
+                    baselines=BaselineCache(store))
     app.extensions["inspector_review"] = review
     app.before_request(check_host)
     app.after_request(security_headers)

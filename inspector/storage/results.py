@@ -1,15 +1,29 @@
-"""Where results are written: flagged.csv, all scores, skipped.csv, health.csv, overlays, maps.
+"""Where results are written: flagged.csv, all scores, skipped.csv, health.csv, events.csv,
+overlays, maps, and the frame ledger.
 
-The one writer of results, shared by scan and watch (and read back by review). When given
-a ledger, every frame scored or skipped is also recorded there (see :mod:`inspector.storage.ledger`);
-when given event settings, ``events.csv`` is written on close (see :mod:`inspector.core.events`).
+:class:`ResultWriter` is the one writer of results, shared by scan and watch (and read back
+by review). One batch of frames goes through it in this order:
+
+1. overlays and map files of the scored frames;
+2. one ledger transaction with every frame's row, marked not yet ``written`` (with a
+   ledger; see :mod:`inspector.storage.ledger`);
+3. the CSV rows: flagged.csv, the all-scores file, skipped.csv, health.csv;
+4. the ledger rows marked ``written``.
+
+A crash between 2 and 4 leaves rows not marked written; :meth:`ResultWriter.reconcile`
+(run when a watch starts) appends the CSV rows that are missing, so no row is lost or
+doubled. ``events.csv`` is regrouped by :func:`inspector.core.events.group_events` for the
+cameras with new scored frames and rewritten atomically.
 """
 
 from __future__ import annotations
 
 import csv
+import io
+import json
 import os
-from collections.abc import Sequence
+import threading
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
@@ -18,9 +32,16 @@ from typing import TYPE_CHECKING
 import cv2
 import numpy as np
 
-from inspector.core.events import EventSettings, FramePoint, group_events, write_events
+from inspector.clock import iso_time, now, now_iso  # noqa: F401 - iso_time for readers
+from inspector.core.events import (
+    EVENT_COLUMNS,
+    Event,
+    EventSettings,
+    FramePoint,
+    group_events,
+)
 from inspector.storage.overlay import overlay_caption, render_overlay
-from inspector.storage.store import write_json
+from inspector.storage.store import write_atomic, write_json
 
 if TYPE_CHECKING:
     from inspector.storage.ledger import Ledger
@@ -31,11 +52,6 @@ COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "model", 
 SKIP_COLUMNS = ("frame", "camera", "reason")
 #: Columns of health.csv: camera health conditions, kept apart from anomalies.
 HEALTH_COLUMNS = ("frame", "camera", "time", "condition", "measure", "limit")
-
-
-def iso_time(t: datetime) -> str:
-    """ISO 8601, to the second (milliseconds when the time has them)."""
-    return t.isoformat(timespec="milliseconds" if t.microsecond else "seconds")
 
 
 def format_row(frame: str, camera: str, time: str, score: float, threshold: float,
@@ -120,13 +136,46 @@ class _Csv:
         self.fh.close()
 
 
+@dataclass(frozen=True)
+class Skipped:
+    """A frame that was not scored, with the reason.
+
+    ``waiting``: its camera has no usable baseline yet. The ledger keeps such a frame as
+    ``waiting`` so that a watch scores it once a baseline is active; a scan (a writer not
+    in append mode) also records it in skipped.csv, since nobody will come back to it.
+    """
+
+    frame: str
+    camera: str
+    reason: str
+    waiting: bool = False
+
+
+@dataclass(frozen=True)
+class Seen:
+    """A frame file as found: its ledger row's path, size, modification time and when it
+    was found complete (ISO 8601)."""
+
+    path: str
+    size: int | None
+    mtime: float | None
+    seen_at: str
+
+
+def health_rows(frame: str, camera: str, time: str, health: Iterable) -> list[tuple]:
+    """Rows of health.csv for one frame's ``(condition, measure, limit)`` conditions."""
+    return [(frame, camera, time, condition, f"{float(measure):.4g}", f"{float(limit):.4g}")
+            for condition, measure, limit in health]
+
+
 class ResultWriter:
-    """Writes every output of a run into ``out``.
+    """Writes every output of a run into ``out``, and the frame ledger.
 
     Parameters
     ----------
     out : Path
-        ``flagged.csv``, ``skipped.csv`` and ``overlays/<camera>/<stem>.jpg`` go here.
+        ``flagged.csv``, ``skipped.csv``, ``health.csv``, ``events.csv`` and
+        ``overlays/<camera>/<stem>.jpg`` go here.
     all_scores : Path, optional
         Also write a row (same columns) for every frame scored.
     maps : Path, optional
@@ -139,7 +188,11 @@ class ResultWriter:
         Also record every frame written (scored, skipped or waiting) in the ledger, by its
         path under ``source``.
     events : EventSettings, optional
-        Group the flagged frames of this run into events and write ``events.csv`` on close.
+        Group flagged frames into events and write ``events.csv`` (on :meth:`write_events`
+        and on close). In append mode with a ledger the events cover every frame of
+        ``source`` in the ledger, else the frames of this run.
+
+    Thread-safe: several scoring threads may write through one writer.
     """
 
     def __init__(self, out: Path, all_scores: Path | None = None, maps: Path | None = None,
@@ -147,58 +200,77 @@ class ResultWriter:
                  ledger: "Ledger | None" = None, events: EventSettings | None = None):
         self.out = Path(out)
         self.source = Path(source).resolve() if source is not None else None
+        self.append = append
         self.ledger = ledger
         self.events = events
-        self._points: list[FramePoint] = []
+        self._lock = threading.RLock()
+        self._points: dict[str, list[FramePoint]] = {}
+        self._events: dict[str, list[Event]] = {}
+        self._dirty: set[str] | None = None  # cameras whose events changed; None = all
         self.out.mkdir(parents=True, exist_ok=True)
         if source is not None:
             write_json(self.out / "run.json", {
                 "source": str(Path(source).resolve()),
                 "store": str(Path(store).resolve()) if store else "",
-                "started": iso_time(datetime.now().astimezone())})
+                "started": iso_time(now())})
         self.maps = Path(maps) if maps else None
         self.flagged = _Csv(self.out / "flagged.csv", COLUMNS, append)
         self.skipped = _Csv(self.out / "skipped.csv", SKIP_COLUMNS, append)
         self.health_rows = _Csv(self.out / "health.csv", HEALTH_COLUMNS, append)
         self.all_scores = _Csv(Path(all_scores), COLUMNS, append) if all_scores else None
         self._names: set[tuple[str, str]] = set()
-        self.counts = {"scored": 0, "flagged": 0, "skipped": 0, "health": 0}
+        self.counts = {"scored": 0, "flagged": 0, "skipped": 0, "waiting": 0, "health": 0}
 
-    def _unique(self, kind: str, camera: str, frame: str) -> str:
-        stem = Path(frame).stem
-        name, k = stem, 1
-        while (kind, f"{camera}/{name}") in self._names:
-            k += 1
-            name = f"{stem}-{k}"
-        self._names.add((kind, f"{camera}/{name}"))
-        return name
+    # --- writing ---------------------------------------------------------------------------
 
-    def write(self, results: Sequence[FrameResult]) -> list[str]:
-        """Record scored frames (one ledger transaction for all) and their camera health
-        conditions (health.csv); returns their overlay paths ('' where none was written)."""
-        overlays = []
-        for r in results:
-            for condition, measure, limit in r.health:
-                self.health(r.frame, r.camera, r.time, condition, measure, limit)
-            overlay = self.save_files(r)
-            overlays.append(overlay)
-            self.add_rows(format_row(r.frame, r.camera, iso_time(r.time), r.score, r.threshold,
-                                     r.p_value, r.model, overlay), r.flagged)
-            if self.events is not None:
-                self._points.append(FramePoint(r.camera, iso_time(r.time), r.frame, r.score,
-                                               r.flagged))
-        if self.ledger is not None:
-            self.ledger.record([dict(self._ledger_file(r.frame), camera=r.camera,
-                                     status="scored", score=r.score, threshold=r.threshold,
-                                     p_value=r.p_value, flagged=int(r.flagged),
-                                     version=r.model, capture_time=iso_time(r.time),
-                                     overlay=overlay)
-                                for r, overlay in zip(results, overlays)])
+    def write(self, results: Sequence[FrameResult] = (), skipped: Sequence[Skipped] = (),
+              seen: Mapping[str, Seen] | None = None) -> list[str]:
+        """Record a batch: scored frames (with their health conditions) and frames not
+        scored, in the order described in the module docstring.
+
+        ``seen`` gives the file facts of the ledger rows by frame (relative path); frames
+        missing from it are looked up under ``source``. Returns the overlay paths of
+        ``results`` ('' where none was written).
+        """
+        with self._lock:
+            overlays = [self._save_files(r) for r in results]
+            times = [iso_time(r.time) for r in results]
+            if self.ledger is not None:
+                entries = [dict(self._file(r.frame, seen), camera=r.camera, status="scored",
+                                score=r.score, threshold=r.threshold, p_value=r.p_value,
+                                flagged=int(r.flagged), version=r.model, capture_time=t,
+                                overlay=overlay, written=0,
+                                health=json.dumps(r.health) if r.health else None)
+                           for r, t, overlay in zip(results, times, overlays)]
+                entries += [dict(self._file(s.frame, seen), camera=s.camera, reason=s.reason,
+                                 status="waiting" if s.waiting else "skipped",
+                                 written=0 if self._csv_skip(s) else 1)
+                            for s in skipped]
+                self.ledger.record(entries)  # committed: from here on the frames are done
+            for r, t, overlay in zip(results, times, overlays):
+                self._scored_rows(format_row(r.frame, r.camera, t, r.score, r.threshold,
+                                             r.p_value, r.model, overlay), r.flagged)
+                for row in health_rows(r.frame, r.camera, t, r.health):
+                    self.health_rows.row(row)
+                    self.counts["health"] += 1
+                self._points.setdefault(r.camera, []).append(
+                    FramePoint(r.camera, t, r.frame, r.score, r.flagged))
+                if self._dirty is not None:
+                    self._dirty.add(r.camera)
+            for s in skipped:
+                if self._csv_skip(s):
+                    self.skipped.row((s.frame, s.camera, s.reason))
+                self.counts["waiting" if s.waiting else "skipped"] += 1
+            if self.ledger is not None:
+                self.ledger.mark_written(e["path"] for e in entries if e["written"] == 0)
         return overlays
 
-    def save_files(self, r: FrameResult) -> str:
+    def _csv_skip(self, s: Skipped) -> bool:
+        return not (s.waiting and self.append)
+
+    def _save_files(self, r: FrameResult) -> str:
         """Write the overlay (flagged frames) and the map file of one scored frame; returns
-        the overlay path ('' when none). No CSV row is written."""
+        the overlay path ('' when none)."""
         overlay = ""
         if r.flagged:
             name = self._unique("overlay", r.camera, r.frame)
@@ -215,8 +287,16 @@ class ResultWriter:
             np.save(path, np.asarray(r.amap, np.float32), allow_pickle=False)
         return overlay
 
-    def add_rows(self, row: tuple[str, ...], flagged: bool) -> None:
-        """Append a scored frame's row (see :func:`format_row`) to the CSV files."""
+    def _unique(self, kind: str, camera: str, frame: str) -> str:
+        stem = Path(frame).stem
+        name, k = stem, 1
+        while (kind, f"{camera}/{name}") in self._names:
+            k += 1
+            name = f"{stem}-{k}"
+        self._names.add((kind, f"{camera}/{name}"))
+        return name
+
+    def _scored_rows(self, row: tuple[str, ...], flagged: bool) -> None:
         if flagged:
             self.flagged.row(row)
             self.counts["flagged"] += 1
@@ -224,38 +304,100 @@ class ResultWriter:
             self.all_scores.row(row)
         self.counts["scored"] += 1
 
-    def skip(self, frame: str, camera: str, reason: str, waiting: bool = False) -> None:
-        """Record a frame that could not be scored, with the reason. ``waiting``: the camera
-        has no baseline yet (the ledger keeps the frame for a later watch to score)."""
-        self.skipped.row((frame, camera, reason))
-        self.counts["skipped"] += 1
-        if self.ledger is not None:
-            self.ledger.record([dict(self._ledger_file(frame), camera=camera, reason=reason,
-                                     status="waiting" if waiting else "skipped")])
+    def _file(self, rel: str, seen: Mapping[str, Seen] | None) -> dict:
+        found = seen.get(rel) if seen else None
+        if found is None:
+            path = (self.source / rel) if self.source is not None else Path(rel).resolve()
+            try:
+                st = os.stat(path)
+                size, mtime = st.st_size, st.st_mtime
+            except OSError:
+                size = mtime = None
+            found = Seen(str(path), size, mtime, now_iso())
+        return {"path": found.path, "rel": rel, "size": found.size, "mtime": found.mtime,
+                "seen_at": found.seen_at, "scored_at": now_iso()}
 
-    def _ledger_file(self, rel: str) -> dict:
-        from inspector.storage.ledger import now_iso
+    # --- after a crash ---------------------------------------------------------------------
 
-        path = (self.source / rel) if self.source is not None else Path(rel).resolve()
-        try:
-            st = os.stat(path)
-            size, mtime = st.st_size, st.st_mtime
-        except OSError:
-            size = mtime = None
-        now = now_iso()
-        return {"path": str(path), "rel": rel, "size": size, "mtime": mtime, "seen_at": now,
-                "scored_at": now, "written": 1}
+    def reconcile(self) -> tuple[int, int]:
+        """Append the CSV rows of frames under ``source`` committed in the ledger but not
+        marked written (a crash between the two steps); returns (frames, rows appended).
 
-    def health(self, frame: str, camera: str, time: datetime, condition: str,
-               measure: float, limit: float) -> None:
-        """Record a camera health condition of a frame in health.csv."""
-        self.health_rows.row((frame, camera, iso_time(time), condition, f"{measure:.4g}",
-                              f"{limit:.4g}"))
-        self.counts["health"] += 1
+        Rows already in the files are not written again, so nothing is doubled.
+        """
+        if self.ledger is None or self.source is None:
+            return 0, 0
+        with self._lock:
+            rows = self.ledger.rows(self.source, "written = 0")
+            if not rows:
+                return 0, 0
+            files = {"flagged": self.flagged, "skipped": self.skipped,
+                     "health": self.health_rows, "all": self.all_scores}
+            present = {k: _csv_rows(Path(f.fh.name)) for k, f in files.items() if f}
+            added = 0
+
+            def put(kind: str, row: tuple) -> None:
+                nonlocal added
+                if kind in present and row not in present[kind]:
+                    files[kind].row(row)
+                    added += 1
+
+            for r in rows:
+                if r["status"] == "scored":
+                    row = format_row(r["rel"], r["camera"], r["capture_time"], r["score"],
+                                     r["threshold"], r["p_value"], r["version"],
+                                     r["overlay"] or "")
+                    if r["flagged"]:
+                        put("flagged", row)
+                    put("all", row)
+                    for h in health_rows(r["rel"], r["camera"], r["capture_time"],
+                                         json.loads(r["health"] or "[]")):
+                        put("health", h)
+                elif r["status"] == "skipped":
+                    put("skipped", (r["rel"], r["camera"], r["reason"] or ""))
+            self.ledger.mark_written([r["path"] for r in rows])
+        return len(rows), added
+
+    # --- events ----------------------------------------------------------------------------
+
+    @property
+    def events_changed(self) -> bool:
+        """Frames were scored since events.csv was last written."""
+        return self.events is not None and (self._dirty is None or bool(self._dirty))
+
+    def write_events(self) -> None:
+        """Regroup the cameras with new scored frames (all on the first call) with
+        :func:`inspector.core.events.group_events` and rewrite events.csv atomically."""
+        if self.events is None:
+            return
+        with self._lock:
+            dirty, self._dirty = self._dirty, set()
+            from_ledger = self.append and self.ledger is not None and self.source is not None
+            if dirty is None:
+                cameras = set(self._points)
+                if from_ledger:
+                    cameras |= {c for c in self.ledger.cameras(self.source)}
+                self._events = {}
+            else:
+                cameras = dirty
+            for cam in cameras:
+                points = (self.ledger.points(self.source, cam) if from_ledger
+                          else self._points.get(cam, []))
+                self._events[cam] = group_events(points, self.events)
+            if from_ledger:
+                self._points.clear()  # the ledger holds them
+            buf = io.StringIO()
+            w = csv.writer(buf)
+            w.writerow(EVENT_COLUMNS)
+            for cam in sorted(self._events):
+                for e in self._events[cam]:
+                    w.writerow(e.row())
+            write_atomic(self.out / "events.csv", buf.getvalue())
 
     def close(self) -> None:
         if self.events is not None:
-            write_events(self.out / "events.csv", group_events(self._points, self.events))
+            self._dirty = None
+            self.write_events()
         for f in (self.flagged, self.skipped, self.health_rows, self.all_scores):
             if f:
                 f.close()
@@ -265,3 +407,11 @@ class ResultWriter:
 
     def __exit__(self, *exc) -> None:
         self.close()
+
+
+def _csv_rows(path: Path) -> set[tuple]:
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            return {tuple(r) for r in csv.reader(fh)}
+    except FileNotFoundError:
+        return set()
