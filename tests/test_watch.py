@@ -24,6 +24,7 @@ import pytest
 
 from inspector.cli import main as cli
 from inspector.core.events import EventSettings, FramePoint, group_events
+from inspector.errors import UsageError
 
 ROOT = Path(__file__).resolve().parents[1]
 W, H = 64, 48
@@ -480,3 +481,18 @@ def test_watch_usage_errors(env, capsys):
     assert cli.main(["watch", str(env["src"]), "--out", str(env["src"] / "out")]) == 2
     err = capsys.readouterr().err
     assert "settel" in err and "not a folder" in err and "inside SOURCE" in err
+
+
+def test_watch_and_events_sections_are_checked_when_the_config_is_loaded(tmp_path, capsys):
+    """Any command reading the config refuses a bad [watch] or [events] section at once."""
+    from inspector.config import load_config
+
+    bad = tmp_path / "bad.toml"
+    for text, word in (("[watch]\nworkers = 0\n", "workers"),
+                       ("[events]\nk = 3\nn = 2\n", "k = 3"),
+                       ("[watch]\nsettel = 1\n", "settel")):
+        bad.write_text(text, encoding="utf-8")
+        with pytest.raises(UsageError, match=word):
+            load_config(bad)
+        assert cli.main(["status", "--config", str(bad), "--store", str(tmp_path)]) == 2
+    assert "workers" in capsys.readouterr().err
