@@ -172,6 +172,55 @@ def test_a_baseline_learnt_on_the_cluster_equals_the_local_one(site, client, cap
         assert a.threshold.value == pytest.approx(b.threshold.value, rel=1e-6)
 
 
+def test_one_camera_learnt_with_its_passes_in_the_workers_equals_the_local_one(site, client,
+                                                                              capsys):
+    root, cfg = site
+    assert main(["learn", str(root / "normal" / "gate"), "--camera", "gate", "--store",
+                 str(root / "store-one"), "--config", str(cfg), "--scheduler",
+                 client.scheduler.address]) == 0
+    assert "gate: baseline v1 (ppca) from 30 frames" in capsys.readouterr().out
+    a, b = Store(root / "store").load("gate"), Store(root / "store-one").load("gate")
+    for name in ("center", "scale", "calibration_scores"):
+        np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-4, atol=1e-5)
+    for name in ("mean_", "sigma2_"):
+        np.testing.assert_allclose(getattr(a.model, name), getattr(b.model, name), rtol=1e-4,
+                                   atol=1e-6)
+    # W is defined up to the sign of each column: compare W W^T (Tipping & Bishop 1999)
+    wa, wb = a.model.W_, b.model.W_
+    np.testing.assert_allclose(wa @ wa.transpose(0, 2, 1), wb @ wb.transpose(0, 2, 1),
+                               rtol=1e-3, atol=1e-6)
+    assert a.meta["calibration_frames"] == b.meta["calibration_frames"]
+    assert a.threshold.value == pytest.approx(b.threshold.value, rel=1e-4)
+
+
+def test_moments_reduced_from_parts_equal_numpy_mean_and_cov():
+    from inspector.core.models.ppca import Moments
+
+    rng = np.random.default_rng(4)
+    X = (rng.normal(size=(90, 5, 4)) * [1, 2, 3, 4] + 50).astype(np.float32)
+    blocks = np.repeat([0, 1, 2], 30)
+    whole = Moments(3, 5, 4)
+    for b in range(3):
+        whole.add(b, X[blocks == b])
+    merged = Moments(3, 5, 4)
+    for part in (slice(0, 20), slice(20, 55), slice(55, 90)):  # parts cut across blocks
+        m = Moments(3, 5, 4)
+        for b in np.unique(blocks[part]):
+            m.add(b, X[part][blocks[part] == b])
+        merged.merge(m)
+    for leave in (None, 0, 1, 2):
+        keep = blocks != leave
+        mean, cov, n = merged.mean_cov(leave_out=leave)
+        assert n == keep.sum()
+        for loc in range(5):  # numpy.cov: unbiased sample covariance
+            np.testing.assert_allclose(mean[loc], X[keep, loc].mean(axis=0), rtol=1e-6)
+            np.testing.assert_allclose(cov[loc], np.cov(X[keep, loc].T.astype(np.float64)),
+                                       rtol=1e-5, atol=1e-6)  # float32 centring
+        w_mean, w_cov, _ = whole.mean_cov(leave_out=leave)
+        np.testing.assert_allclose(mean, w_mean, rtol=1e-6)
+        np.testing.assert_allclose(cov, w_cov, rtol=1e-5, atol=1e-6)
+
+
 def test_scan_leaves_out_frames_already_scored_unless_asked(site, capsys):
     root, cfg = site
     store = root / "store-rescore"
@@ -217,3 +266,21 @@ def test_bench_smoke(tmp_path, small_config):
                           capture_output=True, text=True, timeout=600, cwd=ROOT)
     assert proc.returncode == 0, proc.stderr
     assert "speed-up" in proc.stdout
+
+
+def test_a_pooled_ppca_fit_equals_the_plain_one():
+    from concurrent.futures import ThreadPoolExecutor
+
+    from inspector.core.models.base import ArraySource
+    from inspector.core.models.ppca import PatchPPCA
+
+    rng = np.random.default_rng(5)
+    images = np.clip(rng.normal(120, 20, (40, 32, 48, 3)), 0, 255).astype(np.uint8)
+    plain = PatchPPCA(batch_size=8)
+    held = plain.fit(ArraySource(images, folds=4))
+    with ThreadPoolExecutor(2) as ex:
+        pooled = PatchPPCA(batch_size=8)
+        held2 = pooled.fit(ArraySource(images, folds=4), pool=ex)
+    np.testing.assert_array_equal(held.index, held2.index)
+    np.testing.assert_allclose(held.maps, held2.maps, rtol=1e-4, atol=1e-3)
+    np.testing.assert_allclose(plain.sigma2_, pooled.sigma2_, rtol=1e-6)

@@ -319,12 +319,47 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
                        seconds=time.perf_counter() - started, notes=notes, damaged=damaged)
 
 
+class ClusterPool:
+    """An executor over a Dask cluster for a model's fit (``fit(..., pool=...)``):
+    ``map(fn, items)`` runs ``fn(item)`` in the workers and yields the results in order.
+
+    Attributes
+    ----------
+    workers : int
+        Tasks the cluster runs at once (its worker threads).
+    """
+
+    def __init__(self, client, retries: int = 3):
+        self.client = client
+        self.retries = retries
+        self.workers = max(1, sum(client.nthreads().values()))
+
+    def map(self, fn, items) -> Iterator:
+        futures = [self.client.submit(fn, item, pure=False, retries=self.retries)
+                   for item in items]
+        try:
+            for future in futures:
+                yield future.result()
+                future.release()
+        finally:
+            for future in futures:
+                future.cancel()
+
+
 def learn_on_cluster(client, tasks: Sequence[dict]) -> Iterator:
     """Run :func:`inspector.jobs.learn.learn_camera` for each keyword set of ``tasks`` on the
-    cluster, all at once; yields the reports in the order of ``tasks``. An error of one
-    camera (e.g. too few frames) is raised when its turn comes."""
+    cluster; yields the reports in the order of ``tasks``. An error of one camera (e.g. too
+    few frames) is raised when its turn comes.
+
+    Several cameras are learnt at once, one task each. A single camera is learnt here with
+    its model's passes over the frames in the workers (:class:`ClusterPool`): the moments of
+    each time block accumulated there and added here, the held-out blocks scored there.
+    """
     from inspector.jobs.learn import learn_camera
 
+    if len(tasks) == 1:
+        yield learn_camera(**tasks[0], pool=ClusterPool(client))
+        return
     futures = [client.submit(learn_camera, pure=False, **t) for t in tasks]
     try:
         for future in futures:

@@ -91,6 +91,19 @@ class FileSource:
     def __len__(self) -> int:
         return len(self.files)
 
+    def spawn(self) -> "FileSource":
+        """The same frames with empty records (to read some of them elsewhere)."""
+        return FileSource(self.files, self.blocks, self.size, self.source_size,
+                          self.read_args, self.camera)
+
+    def collected(self) -> dict:
+        return {"skipped": dict(self.skipped), "notes": Counter(self.notes)}
+
+    def absorb(self, record: dict) -> None:
+        """Add a spawned copy's records."""
+        self.skipped.update(record["skipped"])
+        self.notes.update(record["notes"])
+
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         indices = [int(i) for i in indices]
@@ -137,6 +150,20 @@ class PreparedSource:
 
     def __len__(self) -> int:
         return len(self.source)
+
+    def spawn(self) -> "PreparedSource":
+        """The same frames with empty records (to read some of them elsewhere)."""
+        return PreparedSource(self.source.spawn(), self.conditions, self.exposure)
+
+    def collected(self) -> dict:
+        return {"source": self.source.collected(), "measures": dict(self.measures),
+                "appearance": dict(self.appearance)}
+
+    def absorb(self, record: dict) -> None:
+        """Add a spawned copy's records."""
+        self.source.absorb(record["source"])
+        self.measures.update(record["measures"])
+        self.appearance.update(record["appearance"])
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
@@ -186,8 +213,11 @@ class LearnReport:
 
 
 def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
-                 activate: bool = True, extra: dict | None = None) -> LearnReport:
+                 activate: bool = True, extra: dict | None = None, pool=None) -> LearnReport:
     """Build, calibrate and save a new baseline version from one camera's normal frames.
+
+    ``pool``: an executor (e.g. :class:`inspector.jobs.cluster.ClusterPool`) in whose workers
+    the model's passes over the frames run, for models whose ``fit`` takes one (PPCA).
 
     ``extra`` is added to the version's metadata (e.g. how many frames came from review).
 
@@ -220,7 +250,8 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                               cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
                               else 0.0)
     try:
-        held = model.fit(prepared, mask)
+        pooled = {"pool": pool} if pool is not None and _takes_pool(model) else {}
+        held = model.fit(prepared, mask, **pooled)
     except ValueError as exc:
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
     used = len(files) - len(source.skipped)
@@ -338,6 +369,12 @@ def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store
     for camera in sorted({f.camera for f in files}):
         yield learn_camera([f for f in files if f.camera == camera], config.camera(camera),
                            store)
+
+
+def _takes_pool(model) -> bool:
+    import inspect
+
+    return "pool" in inspect.signature(model.fit).parameters
 
 
 def _model_params(cfg: CameraConfig) -> dict:

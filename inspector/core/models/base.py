@@ -44,6 +44,10 @@ class FrameSource(Protocol):
         """
         ...
 
+    # A source that records what it sees (frames skipped, notes) and may be read in other
+    # processes (a model's ``fit(..., pool=...)``) also has ``spawn()``: a copy with empty
+    # records; ``collected()``: its records, picklable; ``absorb(record)``: add a copy's.
+
 
 @dataclass
 class HeldOut:

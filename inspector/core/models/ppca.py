@@ -25,6 +25,7 @@ from the observed sub-covariance.
 
 from __future__ import annotations
 
+import copy
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
@@ -213,6 +214,36 @@ class Moments:
         self.scatter[block] += S
         self.total_scatter += S
 
+    def merge(self, other: "Moments") -> "Moments":
+        """Add the samples counted in ``other`` (same blocks, L and d), e.g. accumulated in
+        another process; returns self.
+
+        ``other``'s sums about its own shift b are moved to this one's shift a exactly: with
+        delta = b - a, sum_a = sum_b + n delta and
+        scatter_a = scatter_b + sum_b delta^T + delta sum_b^T + n delta delta^T
+        (the parallel form of the scatter update, Chan, Golub & LeVeque 1979, "Updating
+        formulae and a pairwise algorithm for computing sample variances").
+        """
+        if other.shift is None:
+            return self
+        if self.shift is None:
+            self.shift = other.shift.copy()
+        delta = (other.shift.astype(np.float64) - self.shift)  # (L, d)
+
+        def moved(n, s, S):
+            cross = s[..., :, None] * delta[..., None, :]
+            return (s + n[..., None, None] * delta,
+                    S + cross + np.swapaxes(cross, -1, -2)
+                    + n[..., None, None, None] * (delta[:, :, None] * delta[:, None, :]))
+
+        s, S = moved(other.count, other.sum, other.scatter)
+        _, T = moved(np.asarray(other.count.sum()), other.sum.sum(axis=0), other.total_scatter)
+        self.count += other.count
+        self.sum += s
+        self.scatter += S
+        self.total_scatter += T
+        return self
+
     def mean_cov(self, leave_out: int | None = None) -> tuple[np.ndarray, np.ndarray, int]:
         """Mean (L, d), unbiased covariance (L, d, d) and count, optionally without a block."""
         n = self.count.sum()
@@ -274,8 +305,22 @@ class PatchPPCA(DensityModel):
 
     # fitting
 
-    def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:
+    def fit(self, source: FrameSource, mask: np.ndarray | None = None, pool=None) -> HeldOut:
         """Fit on every frame of ``source``; cross-fit one model per time block.
+
+        Parameters
+        ----------
+        source : FrameSource
+        mask : ndarray, shape (H, W), bool, optional
+        pool : executor, optional
+            Anything with ``map(fn, iterable)`` returning results in order (a
+            ``concurrent.futures`` executor, or a Dask cluster's, see
+            :class:`inspector.jobs.cluster.ClusterPool`; its ``workers`` attribute, if any,
+            says how many run at once). The moments of the time blocks are then accumulated
+            in its workers and added here (:meth:`Moments.merge`), and the held-out blocks
+            scored there. Each job reads a copy of ``source`` (its ``spawn()``, if it has
+            one) whose record (``collected()``: frames skipped, notes) is added back with
+            ``absorb``; the result equals the fit without a pool to float rounding.
 
         Returns
         -------
@@ -289,13 +334,14 @@ class PatchPPCA(DensityModel):
         self.observed_ = observed_features(mask, self.patch, self.stride, self.colour)
         blocks = np.asarray(source.blocks)
         labels = np.unique(blocks)
-        moments = Moments(len(labels), L, d)
         order = np.argsort(blocks, kind="stable")
-        block_of = {b: i for i, b in enumerate(labels)}
-        for idx, images in source.batches(order, self.batch_size):
-            X = patch_features(images, self.patch, self.stride, self.colour)
-            for b in np.unique(blocks[idx]):
-                moments.add(block_of[b], X[blocks[idx] == b])
+        if pool is None:
+            moments = _block_moments(self, source, order)
+        else:
+            moments = Moments(len(labels), L, d)
+            for part in _pooled(pool, _block_moments, self, source,
+                                _pieces(order, blocks, labels, pool)):
+                moments.merge(part)
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
@@ -306,19 +352,28 @@ class PatchPPCA(DensityModel):
         del cov
         self._set(*final)
         # Then one model per time block, fitted without that block, scores that block.
-        held_idx, held_maps = [], []
+        folds = []
         present = [i for i, c in enumerate(moments.count) if c > 0]
         if len(present) >= 2:
             for i in present:
                 m_k, c_k, n_k = moments.mean_cov(leave_out=i)
                 if n_k < 2:
                     continue
-                self._set(m_k, *self._fit_params(c_k))
+                params = (m_k, *self._fit_params(c_k))
                 idx_k = order[np.isin(blocks[order], labels[i])]
-                for idx, images in source.batches(idx_k, self.batch_size):
-                    held_idx.append(idx)
-                    held_maps.append(self.score_maps(images))
+                if pool is None:
+                    self._set(*params)
+                    folds.append(_held_maps(self, source, idx_k))
+                else:
+                    fold = copy.copy(self)
+                    fold._set(*params)
+                    folds.append((fold, _pieces(idx_k, blocks, labels[i:i + 1], pool)))
+        if pool is not None:
+            jobs = [(fold, piece) for fold, pieces in folds for piece in pieces]
+            folds = list(_pooled(pool, _held_maps, None, source, jobs))
         self._set(*final)
+        held_idx = [i for fold in folds for i, _ in fold]
+        held_maps = [m for fold in folds for _, m in fold]
         if held_maps:
             return HeldOut(np.concatenate(held_idx), np.concatenate(held_maps))
         return HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32))
@@ -405,6 +460,58 @@ class PatchPPCA(DensityModel):
         model.q_ = model.W_.shape[2]
         model._prepare()
         return model
+
+
+def _block_moments(model: PatchPPCA, source: FrameSource, indices: np.ndarray) -> Moments:
+    """Moments of the frames at ``indices`` of ``source``, per time block (all blocks)."""
+    blocks = np.asarray(source.blocks)
+    labels = np.unique(blocks)
+    block_of = {b: i for i, b in enumerate(labels)}
+    moments = Moments(len(labels), model.grid_[0] * model.grid_[1],
+                      feature_size(model.patch, model.colour))
+    for idx, images in source.batches(indices, model.batch_size):
+        X = patch_features(images, model.patch, model.stride, model.colour)
+        for b in np.unique(blocks[idx]):
+            moments.add(block_of[b], X[blocks[idx] == b])
+    return moments
+
+
+def _held_maps(model: PatchPPCA, source: FrameSource, indices: np.ndarray
+               ) -> list[tuple[np.ndarray, np.ndarray]]:
+    """``(positions, raw maps)`` of the frames at ``indices``, batch by batch."""
+    return [(idx, model.score_maps(images))
+            for idx, images in source.batches(indices, model.batch_size)]
+
+
+def _pieces(order: np.ndarray, blocks: np.ndarray, labels: np.ndarray, pool
+            ) -> list[np.ndarray]:
+    """Frame positions (in ``order``) cut into tasks: each block of ``labels`` in about
+    ``pool.workers / len(labels)`` consecutive pieces, so every worker has one."""
+    per_block = -(-max(1, int(getattr(pool, "workers", 1))) // max(1, len(labels)))
+    pieces = []
+    for b in labels:
+        idx = order[blocks[order] == b]
+        pieces += [p for p in np.array_split(idx, min(per_block, max(1, len(idx)))) if len(p)]
+    return pieces
+
+
+def _pooled(pool, fn, model, source, jobs):
+    """``fn(model, source, indices)`` for each job in ``pool``, results in order; the
+    source's record of each run (skipped frames, notes, ...) is added to ``source``.
+    A job is ``indices``, or ``(model, indices)`` to use a model of its own."""
+    jobs = [j if isinstance(j, tuple) else (model, j) for j in jobs]
+    for result, record in pool.map(_collecting, [(fn, m, source, idx) for m, idx in jobs]):
+        if record is not None:
+            source.absorb(record)
+        yield result
+
+
+def _collecting(job):
+    """Run one pooled job on a fresh copy of the source (``spawn``); its record with it."""
+    fn, model, source, indices = job
+    part = source.spawn() if hasattr(source, "spawn") else source
+    result = fn(model, part, indices)
+    return result, (part.collected() if hasattr(part, "collected") else None)
 
 
 def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: int,
