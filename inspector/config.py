@@ -73,6 +73,21 @@ class CalibrationSettings:
     alpha: float = 0.01
     #: Number of time blocks for cross-conformal calibration.
     folds: int = 5
+    #: Budget of false alarms per camera per day; 0 uses ``alpha`` instead. Converted to a
+    #: per-frame rate with the frames per day counted from the normal frames' capture days.
+    alarms_per_day: float = 0.0
+    #: When the calibration set is too small for the rate that ``alarms_per_day`` asks for,
+    #: extrapolate the threshold with a generalized Pareto fit of the largest scores (with a
+    #: warning; the rate guaranteed stays 1/(n+1)). A plain ``alpha`` always uses the
+    #: conformal threshold.
+    tail_fit: bool = True
+    #: Split the normal frames into appearance regimes (day/night, lights on/off, colour
+    #: and infrared greyscale) when they clearly fall apart, each with its own per-cell
+    #: standardisation and calibration (the density model stays shared). Off by default:
+    #: smaller calibration sets per regime cost more than they gave in our measurements.
+    regimes: bool = False
+    #: Most regimes a camera may have.
+    max_regimes: int = 3
 
 
 @dataclass(frozen=True)
@@ -97,23 +112,9 @@ class ConditionSettings:
     auto_text_mask: bool = True
     #: Text boxes to mask as well, [x0, y0, x1, y1] in pixels of the exported frame.
     text_boxes: tuple = ()
-    #: Split the normal frames into appearance regimes (day/night, lights on/off, colour
-    #: and infrared greyscale) when they clearly fall apart, each with its own per-cell
-    #: standardisation and calibration (the density model stays shared). Off by default:
-    #: smaller calibration sets per regime cost more than they gave in our measurements.
-    regimes: bool = False
-    #: Most regimes a camera may have.
-    max_regimes: int = 3
     #: Report camera health (lens covered, out of focus, frozen, too dark, overexposed,
     #: moved) in health.csv; frames with a condition are not flagged as anomalies.
     health: bool = True
-    #: Budget of false alarms per camera per day; 0 uses [calibration] alpha instead.
-    #: Converted to a per-frame rate with the frame rate measured from capture times.
-    alarms_per_day: float = 0.0
-    #: When the calibration set is too small for the rate that ``alarms_per_day`` asks for,
-    #: extrapolate the threshold with a generalized Pareto fit of the largest scores (with a
-    #: warning). A plain ``alpha`` always uses the conformal threshold.
-    tail_fit: bool = True
     #: Health limits before they are widened by what the normal frames show: 99th
     #: percentile of grey below which a frame is too dark; share of clipped pixels above
     #: which it is overexposed; share of textured cells lost from view above which the lens is
@@ -268,6 +269,7 @@ def load_config(path: str | Path | None = None) -> Config:
     except tomllib.TOMLDecodeError as exc:
         raise UsageError(f"config file {path} is not valid TOML: {exc}") from None
     src = str(path)
+    _moved_keys(data, src)
     known = {"paths": PathSettings, "frames": FrameSettings, "model": ModelSettings,
              "calibration": CalibrationSettings, "conditions": ConditionSettings,
              "watch": WatchSettings, "events": EventSettings}
@@ -284,6 +286,29 @@ def load_config(path: str | Path | None = None) -> Config:
     for name in cameras:
         config.camera(name)  # validate now, not in the middle of a run
     return config
+
+
+#: Keys that moved from [conditions] to [calibration]; the old place is still read.
+MOVED_TO_CALIBRATION = ("alarms_per_day", "tail_fit", "regimes", "max_regimes")
+
+
+def _moved_keys(data: dict[str, Any], src: str) -> None:
+    """Move calibration keys found under [conditions] to [calibration], with a one-line
+    warning on standard error (a key set in both places keeps the [calibration] value)."""
+    cond = data.get("conditions")
+    if not isinstance(cond, dict):
+        return
+    moved = [k for k in MOVED_TO_CALIBRATION if k in cond]
+    if not moved:
+        return
+    cal = data.setdefault("calibration", {})
+    if not isinstance(cal, dict):
+        return
+    for k in moved:
+        value = cond.pop(k)
+        cal.setdefault(k, value)
+    print(f"inspector: warning: {src}: {', '.join(moved)} under [conditions] is deprecated; "
+          f"move {'it' if len(moved) == 1 else 'them'} to [calibration]", file=sys.stderr)
 
 
 # --- validation ---------------------------------------------------------------------------

@@ -7,10 +7,16 @@ import numpy as np
 from scipy.stats import binom
 
 from inspector.core.calibration import (
+    Threshold,
+    alarms_to_alpha,
+    calibrate,
     conformal_p_values,
     conformal_threshold,
+    cross_fit_scores,
+    tail_threshold,
     time_blocks,
 )
+from inspector.core.scoring import anomaly_maps, frame_scores, location_stats
 
 
 def test_false_alarm_rate_on_fresh_normal_scores_is_alpha():
@@ -33,13 +39,13 @@ def test_threshold_is_the_conformal_rank():
     scores = np.arange(1.0, 201.0)  # 1..200
     t = conformal_threshold(scores, 0.05)
     k = math.ceil((200 + 1) * (1 - 0.05))  # Vovk et al. (2005): ceil((n+1)(1-alpha))
-    assert t.value == scores[k - 1] and t.promised == 0.05 and t.frames_short == 0
+    assert t.value == scores[k - 1] and t.guaranteed == 0.05 and t.frames_short == 0
 
 
 def test_too_few_scores_use_the_maximum_and_say_how_many_are_missing():
     t = conformal_threshold(np.arange(30.0), 0.01)
     assert t.value == 29.0
-    assert t.promised == 1 / 31
+    assert t.guaranteed == 1 / 31
     assert t.frames_short == 99 - 30  # 1/alpha - 1 = 99 scores reach alpha
     assert "69 more normal frames" in t.warning
 
@@ -60,9 +66,11 @@ def test_p_values_of_normal_scores_are_uniform():
     rng = np.random.default_rng(2)
     p = np.concatenate([conformal_p_values(rng.normal(size=199), rng.normal(size=50))
                         for _ in range(200)])
+    # With n + 1 = 200 and a a multiple of 1/200, P(p <= a) = a exactly (Bates et al. 2023,
+    # Lemma 2 for continuous scores): the count must lie in the binomial interval both ways.
     for a in (0.05, 0.1, 0.5):
         lo, hi = binom.interval(0.999, len(p), a)  # scipy.stats.binom
-        assert (p <= a).sum() <= hi
+        assert lo <= (p <= a).sum() <= hi, ((p <= a).mean(), a)
 
 
 def test_time_blocks_are_contiguous_in_time():
@@ -72,3 +80,60 @@ def test_time_blocks_are_contiguous_in_time():
     order = np.argsort([t.timestamp() for t in times])
     assert list(blocks[order]) == sorted(blocks)  # never interleaved
     assert np.bincount(blocks).tolist() == [25, 25, 25, 25]
+
+
+def test_alarms_per_day_counts_frames_per_capture_day():
+    # 100 frames a day, one a minute from 08:00, over five days: 100 frames a day, not the
+    # 1,440 a one-minute interval would give round the clock (arithmetic).
+    t0 = datetime(2026, 11, 2, 8, 0)
+    times = [t0 + timedelta(days=d, minutes=m) for d in range(5) for m in range(100)]
+    times += [t0 + timedelta(days=5)]  # a partial last day is left out
+    alpha, per_day, days = alarms_to_alpha(2.0, times)
+    assert per_day == 100 and days == 4 and alpha == 2.0 / 100
+
+
+def test_tail_threshold_records_what_is_guaranteed_apart_from_its_target():
+    rng = np.random.default_rng(4)
+    t = tail_threshold(rng.gumbel(size=200), 1e-3)
+    assert t.method == "tail" and t.extrapolated
+    assert t.guaranteed == 1 / 201 and t.alpha == 1e-3  # the order-statistic bound, 1/(n+1)
+    assert "guaranteed 0.00498" in t.describe() and "extrapolated target 0.001" in t.describe()
+    assert Threshold.from_json(t.to_json()) == t
+    # A baseline saved before the field existed stored the target as "promised".
+    old = {"value": t.value, "alpha": 1e-3, "promised": 1e-3, "n": 200, "frames_short": 799,
+           "method": "tail"}
+    assert Threshold.from_json(old).guaranteed == 1 / 201
+
+
+def test_cross_fitted_scores_never_standardise_a_frame_with_itself():
+    rng = np.random.default_rng(5)
+    maps = rng.gumbel(size=(30, 4, 5)).astype(np.float32)
+    blocks = np.repeat([0, 1, 2], 10)
+    got = cross_fit_scores(maps, blocks)
+    for b in range(3):
+        c, s = location_stats(maps[blocks != b])
+        np.testing.assert_allclose(got[blocks == b],
+                                   frame_scores(anomaly_maps(maps[blocks == b], c, s)))
+    cal = calibrate(maps, blocks, 0.1)
+    np.testing.assert_array_equal(cal.scores, got)
+    np.testing.assert_array_equal(cal.center, location_stats(maps)[0])
+
+
+def test_cross_fitting_keeps_the_rate_that_in_sample_standardisation_breaks():
+    # The leak of issue 11: standardising calibration maps with their own median/MAD shrinks
+    # their maxima. Fresh maps from the same distribution must exceed the threshold at most
+    # alpha of the time (Vovk et al. 2005) when the calibration scores are cross-fitted.
+    rng = np.random.default_rng(6)
+    alpha, n, trials, fresh = 0.1, 30, 400, 20
+    leaky = honest = 0
+    for _ in range(trials):
+        maps = rng.normal(size=(n, 6, 8)).astype(np.float32)
+        new = rng.normal(size=(fresh, 6, 8)).astype(np.float32)
+        cal = calibrate(maps, np.arange(n) * 3 // n, alpha)
+        honest += int((cal.score(new)[1] > cal.threshold.value).sum())
+        c, s = location_stats(maps)
+        t = conformal_threshold(frame_scores(anomaly_maps(maps, c, s)), alpha).value
+        leaky += int((frame_scores(anomaly_maps(new, c, s)) > t).sum())
+    total = trials * fresh
+    hi = binom.interval(0.999, total, alpha)[1]  # scipy.stats.binom
+    assert honest <= hi < leaky, (honest / total, leaky / total)

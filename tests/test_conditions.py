@@ -72,9 +72,11 @@ def test_alarms_per_day_to_alpha():
     t0 = datetime(2026, 1, 1)
     times = [t0 + timedelta(minutes=i) for i in range(100)]
     times += [t0 + timedelta(days=1, minutes=i) for i in range(100)]  # a gap between sessions
-    alpha, per_day = alarms_to_alpha(2.0, times)
-    assert per_day == pytest.approx(1440.0)      # one frame a minute, arithmetic
-    assert alpha == pytest.approx(2.0 / 1440.0)
+    alpha, per_day, days = alarms_to_alpha(2.0, times)
+    # Two sessions of 100 frames on two days: 100 frames a day counted, not the 1,440 a
+    # one-minute interval would give round the clock (arithmetic).
+    assert per_day == 100 and days == 2
+    assert alpha == pytest.approx(2.0 / 100)
 
 
 # --- registration, lighting, focus, text -----------------------------------------------
@@ -138,13 +140,16 @@ def test_text_boxes_found_around_a_running_clock():
 
 # --- config -----------------------------------------------------------------------------
 
-def test_conditions_config_per_camera(tmp_path):
+def test_conditions_config_per_camera(tmp_path, capsys):
     p = tmp_path / "c.toml"
     p.write_text('[conditions]\nalarms_per_day = 3\n[cameras.gate]\nlighting = "local"\n'
                  'text_boxes = [[0, 0, 50, 10]]\n', encoding="utf-8")
     cfg = load_config(p)
     assert cfg.camera("gate").conditions.lighting == "local"
-    assert cfg.camera("gate").conditions.alarms_per_day == 3.0
+    # Calibration keys moved to [calibration]; the old place is read with a one-line warning.
+    assert cfg.camera("gate").calibration.alarms_per_day == 3.0
+    err = capsys.readouterr().err
+    assert "alarms_per_day under [conditions] is deprecated" in err and err.count("\n") == 1
     assert cfg.camera("other").conditions.lighting == "local"
     p.write_text('[conditions]\nlighting = "bright"\n', encoding="utf-8")
     with pytest.raises(UsageError, match="lighting"):
@@ -159,13 +164,13 @@ def test_conditions_config_per_camera(tmp_path):
 ALPHA = 0.05
 
 
-def _learn_and_scan(tmp_path, nuisance, seed, conditions="", camera="dock"):
+def _learn_and_scan(tmp_path, nuisance, seed, conditions="", camera="dock", calibration=""):
     root = tmp_path / "scenario"
     generate(root, seed=seed, normal_per_camera=120, new_per_camera=80,
              incident_fraction=0.3, size=(256, 144), nuisance=nuisance)
     cfg_path = tmp_path / "inspector.toml"
     cfg_path.write_text(f"[frames]\nlong_side = 128\n[calibration]\nalpha = {ALPHA}\n"
-                        f"[conditions]\n{conditions}\n", encoding="utf-8")
+                        f"{calibration}\n[conditions]\n{conditions}\n", encoding="utf-8")
     config = load_config(cfg_path)
     store = Store(tmp_path / "store")
     files, _ = discover(root / "normal")
@@ -250,7 +255,7 @@ def test_regimes_split_colour_from_infrared_only():
 
 def test_infrared_nights_with_regimes(tmp_path):
     report, out, truth, faults = _learn_and_scan(tmp_path, {"ir_night": 1}, 5,
-                                                 "regimes = true", camera="aisle")
+                                                 camera="aisle", calibration="regimes = true")
     assert any("regimes" in n for n in report.notes)
     _check_budget_and_detection(out, truth, faults, min_auroc=0.9)
     thresholds = {float(r["threshold"]) for r in csv.DictReader(open(out / "all.csv"))}
@@ -261,7 +266,7 @@ def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
     root = tmp_path / "scenario"
     generate(root, seed=6, normal_per_camera=40, new_per_camera=0, size=(192, 108))
     cfg_path = tmp_path / "inspector.toml"
-    cfg_path.write_text("[frames]\nlong_side = 96\n[conditions]\nalarms_per_day = 1\n",
+    cfg_path.write_text("[frames]\nlong_side = 96\n[calibration]\nalarms_per_day = 0.1\n",
                         encoding="utf-8")
     config = load_config(cfg_path)
     store = Store(tmp_path / "store")
@@ -271,7 +276,10 @@ def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
     meta = store.metadata("aisle", report.version)
     per_day = float(report.notes[0].split(" at ")[1].split()[0])
     # alpha = alarms per day / frames per day (arithmetic)
-    assert meta["threshold"]["alpha"] == pytest.approx(1.0 / per_day, rel=0.01)
+    assert meta["threshold"]["alpha"] == pytest.approx(0.1 / per_day, rel=0.01)
     assert meta["threshold"]["method"] == "tail"
+    # What is guaranteed is recorded apart from the extrapolated target: 1/(n+1).
+    assert meta["threshold"]["guaranteed"] == pytest.approx(1 / (meta["calibration_frames"] + 1))
+    assert "extrapolated target" in report.notes[1]
     assert any("more normal frames would make it exact" in w for w in report.warnings)
     assert store.load("aisle").threshold.method == "tail"

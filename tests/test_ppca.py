@@ -21,7 +21,7 @@ def _data(n=400, d=10, seed=0):
 def test_log_likelihood_matches_sklearn_and_scipy(q):
     X = _data()
     mean, cov = X.mean(0), np.cov(X.T)
-    W, s2 = ppca_fit(mean[None], cov[None], q)
+    W, s2 = ppca_fit(cov[None], q)
     ll = -ppca_nll(X[:, None, :], mean[None], W, s2)[:, 0]
     # scikit-learn's PCA implements Tipping & Bishop (1999) probabilistic PCA in score_samples
     # (it too uses the unbiased sample covariance).
@@ -35,7 +35,7 @@ def test_log_likelihood_matches_sklearn_and_scipy(q):
 def test_masked_likelihood_is_the_exact_marginal():
     X = _data(d=12)
     mean, cov = X.mean(0), np.cov(X.T)
-    W, s2 = ppca_fit(mean[None], cov[None], 3)
+    W, s2 = ppca_fit(cov[None], 3)
     observed = np.ones((1, 12), bool)
     observed[0, [0, 5, 6, 11]] = False
     ll = -ppca_nll(X[:, None, :], mean[None], W, s2, observed)[:, 0]
@@ -53,7 +53,7 @@ def test_masked_likelihood_is_the_exact_marginal():
 def test_streaming_moments_match_numpy_cov_with_a_block_left_out():
     rng = np.random.default_rng(1)
     X = rng.normal(size=(90, 4, 6)).astype(np.float32) + 5
-    m = Moments(3, 4, 6)
+    m = Moments(3, 4, 6, block_scatter=True)
     for b in range(3):
         m.add(b, X[b * 30:(b + 1) * 30])
     mean, cov, n = m.mean_cov(leave_out=1)
@@ -71,7 +71,13 @@ def test_model_fit_score_save_load_roundtrip(tmp_path):
     imgs = np.clip(base + rng.normal(0, 4, (40, 32, 48, 3)), 0, 255).astype(np.uint8)
     model = PatchPPCA(patch=8, stride=4, latent=4)
     held = model.fit(ArraySource(imgs, folds=4))
-    assert sorted(held.index) == list(range(40))  # every normal frame is held out once
+    # Forward chaining: every frame after the first block is held out once, scored by the
+    # model of the blocks before it (the same as a model fitted on those frames alone).
+    assert sorted(held.index) == list(range(10, 40))
+    early = PatchPPCA(patch=8, stride=4, latent=4)
+    early.fit(ArraySource(imgs[:20], folds=2))
+    in_block_2 = (held.index >= 20) & (held.index < 30)
+    np.testing.assert_allclose(held.maps[in_block_2], early.score_maps(imgs[20:30]), rtol=1e-4)
     maps = model.score_maps(imgs[:3])
     # 7 x 11 patch positions of stride 4 cover 8 x 12 cells of 4 pixels.
     assert maps.shape[1:] == held.maps.shape[1:] == (8, 12)

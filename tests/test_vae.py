@@ -55,7 +55,7 @@ def test_linear_vae_elbo_reaches_ppca_maximum_likelihood():
     W = rng.normal(size=(d, q)) * np.array([2.0, 1.0])
     X = rng.normal(size=(n, q)) @ W.T + rng.normal(size=d) + 0.5 * rng.normal(size=(n, d))
     mean, cov = X.mean(0), np.cov(X.T, bias=True)  # ML estimates (divide by n)
-    Wp, s2 = ppca_fit(mean[None], cov[None], q)
+    Wp, s2 = ppca_fit(cov[None], q)
     max_loglik = float(-ppca_nll(X[:, None, :], mean[None], Wp, s2)[:, 0].mean())
 
     torch.manual_seed(0)
@@ -205,8 +205,9 @@ SMALL = dict(width=8, latent=4, epochs=3, patience=5, batch_size=8, threads=1, s
 
 
 def test_patch_vae_fit_save_load_and_mask(tmp_path):
-    # Held-out maps come from the latest time block (split conformal, Vovk et al. 2005:
-    # calibration frames are not training frames); masked pixels are outside the likelihood.
+    # Held-out maps come from the latest frames, after a gap (split conformal, Vovk et al.
+    # 2005: calibration frames are not training frames, and here also not the frames that
+    # chose the epoch); masked pixels are outside the likelihood.
     images = _frames()
     h, w = images.shape[1:3]
     mask = np.zeros((h, w), bool)
@@ -214,12 +215,14 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     mask[21:30, 33:47] = True  # odd-aligned, so part-masked cells and chroma blocks too
     model = PatchVAE(**SMALL)
     held = model.fit(ArraySource(images, folds=5), mask)
-    assert list(held.index) == [3, 7, 11, 15, 19]  # the last frame of each block
-    assert held.maps.shape == (5, h // 4, w // 4) and held.maps.dtype == np.float32
+    # 20 frames: 13 train, gap, 1 stops early, gap, the latest 4 calibrate.
+    assert list(held.index) == [16, 17, 18, 19]
+    assert held.maps.shape == (4, h // 4, w // 4) and held.maps.dtype == np.float32
     assert np.isfinite(held.maps).all()
     assert np.all(held.maps[:, :2, :4] == 0)
     facts = model.learned()
-    assert facts["epochs"] == 3 and facts["train_frames"] == 15
+    assert facts["epochs"] == 3 and facts["train_frames"] == 13
+    assert facts["stop_frames"] == 1 and facts["gap_frames"] == 2
     assert math.isfinite(facts["best_heldout_elbo"])
     json.dumps(facts)
     params = json.loads(json.dumps(model.get_params()))

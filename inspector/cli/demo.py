@@ -39,7 +39,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     files, _ = discover(scenario.normal)
     for report in learn_cameras(files, config, store):
         say(f"learnt {report.camera}: baseline {report.version} from {report.frames} normal frames, "
-            f"threshold {report.threshold:.3f} ({report.seconds:.1f} s)")
+            f"threshold {report.threshold.value:.3f} ({report.seconds:.1f} s)")
     out = root / "results"
     all_scores = out / "all_scores.csv"
     summary = run_scan(scenario.new, config, store, out, all_scores)

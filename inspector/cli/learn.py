@@ -83,8 +83,8 @@ def _report(args, config, store, report, cfg, skips, previous: str | None) -> No
     camera = report.camera
     skipped = [s for s in skips if s.camera == camera] + report.skipped
     say(f"{camera}: baseline {report.version} ({cfg.model.model}) from {report.frames} "
-        f"frames, threshold {report.threshold:.3f} for a false-alarm rate of "
-        f"{report.promised_alpha:.3g}, {len(skipped)} skipped, {report.seconds:.1f} s")
+        f"frames, threshold {report.threshold.value:.3f} ({report.threshold.describe()}), "
+        f"{len(skipped)} skipped, {report.seconds:.1f} s")
     for note in getattr(report, "notes", []):
         say(f"  {note}")
     for w in report.warnings:

@@ -8,12 +8,11 @@ from typing import Any
 
 import numpy as np
 
-from inspector.core.calibration import Threshold, conformal_p_values
+from inspector.core.calibration import Calibration, Threshold
 from inspector.core.conditions import Conditions
 from inspector.core.image import grey
 from inspector.core.models.base import DensityModel
 from inspector.core.regimes import Regimes
-from inspector.core.scoring import anomaly_maps, frame_scores
 
 
 @dataclass
@@ -56,11 +55,9 @@ class Baseline:
     ----------
     camera, version : str
     model : DensityModel
-    center, scale : ndarray, shape (h, w), float32
-        Per-cell standardisation of raw maps (see :mod:`inspector.core.scoring`).
-    calibration_scores : ndarray, shape (n,)
-        Held-out frame scores of normal frames.
-    threshold : Threshold
+    calibration : Calibration
+        Per-cell standardisation, calibration scores and threshold of all normal frames
+        (see :func:`inspector.core.calibration.calibrate`).
     size : (int, int)
         Working (width, height).
     source_size : (int, int)
@@ -74,10 +71,7 @@ class Baseline:
     camera: str
     version: str
     model: DensityModel
-    center: np.ndarray
-    scale: np.ndarray
-    calibration_scores: np.ndarray
-    threshold: Threshold
+    calibration: Calibration
     size: tuple[int, int]
     source_size: tuple[int, int]
     mask: np.ndarray | None = None
@@ -86,7 +80,7 @@ class Baseline:
     #: learnt without them (frames are then scored as they are).
     conditions: Conditions | None = None
     #: Appearance regimes (day/night, colour/IR) with their own standardisation and
-    #: calibration; None when the camera has one (``center``, ``scale``, ``threshold``).
+    #: calibration; None when the camera has one (``calibration``).
     regimes: Regimes | None = None
     #: Grey of the last frame scored with ``sequence=True`` (for "frozen feed").
     _previous: np.ndarray | None = field(default=None, init=False, repr=False, compare=False)
@@ -106,6 +100,11 @@ class Baseline:
         other = copy.copy(self)
         other._previous = None if image is None else grey(np.asarray(image)[None])[0]
         return other
+
+    @property
+    def threshold(self) -> Threshold:
+        """The threshold of all normal frames (each regime has its own, see ``regimes``)."""
+        return self.calibration.threshold
 
     def prepare(self, images: np.ndarray) -> np.ndarray:
         """Frames as the model sees them: aligned and normalised to the baseline's reference.
@@ -147,24 +146,16 @@ class Baseline:
                 self._previous = rec.grey[-1]
         raw = self.model.score_maps(prepared)
         healthy = np.array([not h for h in health], bool)
-        if self.regimes is None or not len(images):
-            maps = anomaly_maps(raw, self.center, self.scale)
-            scores = frame_scores(maps)
-            return Scores(maps=maps, scores=scores,
-                          p_values=conformal_p_values(self.calibration_scores, scores),
-                          flagged=(scores > self.threshold.value) & healthy, health=health,
-                          thresholds=np.full(len(scores), self.threshold.value))
-        labels = self.regimes.assign(images)
+        groups = self.regimes.calibrations if self.regimes is not None else [self.calibration]
+        labels = (self.regimes.assign(images) if self.regimes is not None and len(images)
+                  else np.zeros(len(images), int))
         maps = np.empty(raw.shape, np.float32)
-        scores = np.empty(len(raw))
-        p_values = np.empty(len(raw))
-        thresholds = np.empty(len(raw))
+        scores, p_values, thresholds = (np.empty(len(raw)) for _ in range(3))
         for r in np.unique(labels):
             idx = np.flatnonzero(labels == r)
-            maps[idx] = anomaly_maps(raw[idx], self.regimes.centers[r], self.regimes.scales[r])
-            scores[idx] = frame_scores(maps[idx])
-            p_values[idx] = conformal_p_values(self.regimes.calibration_scores[r], scores[idx])
-            thresholds[idx] = self.regimes.thresholds[r].value
+            maps[idx], scores[idx], p_values[idx] = groups[r].score(raw[idx])
+            thresholds[idx] = groups[r].threshold.value
         return Scores(maps=maps, scores=scores, p_values=p_values,
                       flagged=(scores > thresholds) & healthy, health=health,
-                      thresholds=thresholds, regimes=labels)
+                      thresholds=thresholds,
+                      regimes=labels if self.regimes is not None else None)

@@ -23,8 +23,11 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
+from typing import Any
 
 import numpy as np
+
+from inspector.core.scoring import anomaly_maps, frame_scores, location_stats
 
 
 def time_blocks(times: Sequence[datetime], folds: int) -> np.ndarray:
@@ -52,44 +55,34 @@ def time_blocks(times: Sequence[datetime], folds: int) -> np.ndarray:
 
 @dataclass(frozen=True)
 class Threshold:
-    """A conformal threshold and what it promises.
+    """A threshold on frame scores and what it guarantees.
 
     Attributes
     ----------
     value : float
         Flag a frame iff its score > value.
     alpha : float
-        The false-alarm rate asked for.
-    promised : float
-        The false-alarm rate the calibration set supports: ``alpha`` when it has enough
-        scores, else 1 / (n + 1).
+        The false-alarm rate asked for (the target).
+    guaranteed : float
+        The false-alarm rate the calibration set guarantees for a new normal frame
+        exchangeable with it: ``alpha`` when it has enough scores, else 1 / (n + 1) (the
+        threshold is then at or above the largest score), also when the threshold is
+        extrapolated towards ``alpha``.
     n : int
         Number of calibration scores.
     frames_short : int
         How many more calibration frames would reach ``alpha`` (0 when enough).
+    method : str
+        "conformal" (an order statistic of the calibration scores) or "tail" (extrapolated
+        with a generalized Pareto fit of the largest scores, see :func:`tail_threshold`).
     """
 
     value: float
     alpha: float
-    promised: float
+    guaranteed: float
     n: int
     frames_short: int
-    #: "conformal" (an order statistic of the calibration scores) or "tail" (extrapolated
-    #: with a generalized Pareto fit of the largest scores, see :func:`tail_threshold`).
     method: str = "conformal"
-
-    def to_dict(self) -> dict:
-        """The threshold as JSON-ready values (the inverse of :meth:`from_dict`)."""
-        return {"value": float(self.value), "alpha": float(self.alpha),
-                "promised": float(self.promised), "n": int(self.n),
-                "frames_short": int(self.frames_short), "method": self.method}
-
-    @classmethod
-    def from_dict(cls, d: dict) -> "Threshold":
-        """A threshold from :meth:`to_dict`'s values (extra keys ignored; thresholds saved
-        before ``method`` existed are conformal)."""
-        return cls(float(d["value"]), float(d["alpha"]), float(d["promised"]), int(d["n"]),
-                   int(d["frames_short"]), d.get("method", "conformal"))
 
     @property
     def warning(self) -> str:
@@ -98,11 +91,32 @@ class Threshold:
         if self.method == "tail":
             return (f"only {self.n} calibration frames for a false-alarm rate of "
                     f"{self.alpha:.3g}: the threshold is extrapolated from a generalized "
-                    f"Pareto fit of the largest scores, not guaranteed; about "
+                    f"Pareto fit of the largest scores, not guaranteed (guaranteed: "
+                    f"1/{self.n + 1} = {self.guaranteed:.3g}); about "
                     f"{self.frames_short} more normal frames would make it exact")
-        return (f"only {self.n} calibration frames: the false-alarm rate promised is "
-                f"1/{self.n + 1} = {self.promised:.3g}, not {self.alpha:g}; about "
+        return (f"only {self.n} calibration frames: the false-alarm rate guaranteed is "
+                f"1/{self.n + 1} = {self.guaranteed:.3g}, not {self.alpha:g}; about "
                 f"{self.frames_short} more normal frames would reach {self.alpha:g}")
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict (the one layout, read back by :meth:`from_dict`)."""
+        return {"value": self.value, "alpha": self.alpha, "guaranteed": self.guaranteed,
+                "n": self.n, "frames_short": self.frames_short, "method": self.method}
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> "Threshold":
+        """Inverse of :meth:`to_dict`; also reads baselines saved before ``guaranteed``
+        (then called ``promised``, which held ``alpha`` even for an extrapolated tail)."""
+        method = d.get("method", "conformal")
+        n = int(d["n"])
+        if "guaranteed" in d:
+            guaranteed = float(d["guaranteed"])
+        elif method == "tail" and d.get("frames_short", 0):
+            guaranteed = 1.0 / (n + 1)
+        else:
+            guaranteed = float(d["promised"])
+        return cls(float(d["value"]), float(d["alpha"]), guaranteed, n,
+                   int(d["frames_short"]), method)
 
 
 def conformal_threshold(scores: np.ndarray, alpha: float) -> Threshold:
@@ -204,14 +218,18 @@ def tail_threshold(scores: np.ndarray, alpha: float) -> Threshold:
     p = alpha * n / m
     value = float(u + genpareto.isf(p, xi, loc=0.0, scale=sigma))
     value = max(value, float(s[-1]))
-    return Threshold(value, alpha, alpha, n, base.frames_short, "tail")
+    return Threshold(value, alpha, base.guaranteed, n, base.frames_short, "tail")
 
 
-def alarms_to_alpha(alarms_per_day: float, times) -> tuple[float, float]:
+def alarms_to_alpha(alarms_per_day: float, times) -> tuple[float, float, int]:
     """The false-alarm rate per frame for a budget of false alarms per camera per day.
 
-    The frame rate is measured from capture times: the median gap between consecutive
-    frames (gaps longer than an hour, between sessions, are left out).
+    Frames per day are counted from the normal frames themselves, per calendar day of
+    their capture times: a camera that captures 100 frames a day, one a minute, has 100,
+    not the 1,440 its frame interval would suggest. With three or more capture days the
+    first and last are left out (they may be partial) and the median of the others is
+    taken; with fewer, the busiest day is taken (the rate is then a lower bound, so the
+    per-frame rate may be higher than the budget asks: more normal days make it exact).
 
     Parameters
     ----------
@@ -221,17 +239,21 @@ def alarms_to_alpha(alarms_per_day: float, times) -> tuple[float, float]:
 
     Returns
     -------
-    alpha, frames_per_day : float
-        ``alpha = alarms_per_day / frames_per_day``, clipped to (0, 0.5].
+    alpha : float
+        ``alarms_per_day / frames_per_day``, clipped to (0, 0.5].
+    frames_per_day : float
+    days : int
+        Capture days the count comes from.
     """
-    t = np.sort(np.array([x.timestamp() for x in times], dtype=np.float64))
-    gaps = np.diff(t)
-    gaps = gaps[(gaps > 0) & (gaps <= 3600.0)]
-    if not len(gaps):
-        raise ValueError("capture times do not show a frame rate (need frames less than "
-                         "an hour apart)")
-    per_day = 86400.0 / float(np.median(gaps))
-    return float(min(0.5, alarms_per_day / per_day)), per_day
+    from collections import Counter
+
+    per_date = Counter(t.date() for t in times)
+    if not per_date:
+        raise ValueError("there are no capture times to count frames per day")
+    counts = [per_date[d] for d in sorted(per_date)]
+    inner = counts[1:-1] if len(counts) >= 3 else counts
+    per_day = float(np.median(inner)) if len(counts) >= 3 else float(max(counts))
+    return float(min(0.5, alarms_per_day / per_day)), per_day, len(inner)
 
 
 def conformal_p_values(calibration: np.ndarray, scores: np.ndarray) -> np.ndarray:
@@ -250,3 +272,92 @@ def conformal_p_values(calibration: np.ndarray, scores: np.ndarray) -> np.ndarra
     s = np.asarray(scores, dtype=np.float64)
     at_least = len(cal) - np.searchsorted(cal, s, side="left")
     return (1.0 + at_least) / (len(cal) + 1.0)
+
+
+# --- the calibration chain: held-out maps -> standardisation, scores, threshold ------------
+
+@dataclass
+class Calibration:
+    """What one group of normal frames (a camera, or one of its regimes) calibrates.
+
+    Attributes
+    ----------
+    center, scale : ndarray, shape (h, w), float32
+        Per-cell standardisation of raw maps at scan time, from every held-out map of the
+        group (see :func:`inspector.core.scoring.location_stats`).
+    scores : ndarray, shape (n,), float64
+        Calibration scores: held-out frame scores, cross-fitted (see :func:`calibrate`).
+    threshold : Threshold
+    """
+
+    center: np.ndarray
+    scale: np.ndarray
+    scores: np.ndarray
+    threshold: Threshold
+
+    def score(self, raw_maps: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Anomaly maps (n, h, w) float32, frame scores (n,) and conformal p-values (n,)
+        of raw maps (n, h, w)."""
+        maps = anomaly_maps(raw_maps, self.center, self.scale)
+        scores = frame_scores(maps)
+        return maps, scores, conformal_p_values(self.scores, scores)
+
+
+def cross_fit_scores(maps: np.ndarray, blocks: np.ndarray) -> np.ndarray:
+    """Frame scores of held-out raw maps, each block standardised by the others only.
+
+    A frame that helped set its own cell centres and scales would have its largest
+    z-score shrunk, and a threshold taken over such scores comes out low (cross-fitting,
+    as in Chernozhukov et al. 2018, "Double/debiased machine learning", Econometrics J.
+    21(1)). Each block's frames are standardised with :func:`location_stats` of the other
+    blocks' maps, so every calibration score is, like a scan score, that of a frame the
+    standardisation never saw. A group within one block is split into two halves in the
+    given order.
+
+    Parameters
+    ----------
+    maps : ndarray, shape (n, h, w)
+        Held-out raw maps, n >= 2, in capture-time order.
+    blocks : ndarray, shape (n,), int
+        Time block of each map.
+
+    Returns
+    -------
+    ndarray, shape (n,), float64
+    """
+    maps = np.asarray(maps)
+    n = len(maps)
+    if n < 2:
+        raise ValueError(f"at least 2 held-out maps are needed to calibrate, got {n}")
+    blocks = np.asarray(blocks)
+    if len(np.unique(blocks)) < 2:
+        blocks = (np.arange(n) * 2) // n
+    out = np.empty(n)
+    for b in np.unique(blocks):
+        inside = blocks == b
+        center, scale = location_stats(maps[~inside])
+        out[inside] = frame_scores(anomaly_maps(maps[inside], center, scale))
+    return out
+
+
+def calibrate(maps: np.ndarray, blocks: np.ndarray, alpha: float,
+              tail: bool = False) -> Calibration:
+    """The calibration chain: held-out raw maps of normal frames -> standardisation,
+    calibration scores and threshold. The one path for a camera and for each regime.
+
+    Parameters
+    ----------
+    maps : ndarray, shape (n, h, w), float32
+        Raw maps of normal frames, each from a model that did not see it (and that was
+        fitted on earlier frames only, see :class:`inspector.core.models.base.HeldOut`).
+    blocks : ndarray, shape (n,), int
+        Time block of each map (cross-fitting, see :func:`cross_fit_scores`).
+    alpha : float in (0, 1)
+    tail : bool
+        Extrapolate with :func:`tail_threshold` when the scores are too few for ``alpha``
+        (else :func:`conformal_threshold`).
+    """
+    center, scale = location_stats(maps)
+    scores = cross_fit_scores(maps, blocks)
+    threshold = (tail_threshold if tail else conformal_threshold)(scores, alpha)
+    return Calibration(center, scale, scores, threshold)

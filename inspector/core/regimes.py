@@ -18,7 +18,7 @@ from typing import Any
 import cv2
 import numpy as np
 
-from inspector.core.calibration import Threshold
+from inspector.core.calibration import Calibration, Threshold
 
 #: Smallest silhouette for a split into regimes to be kept.
 MIN_SILHOUETTE = 0.7
@@ -56,9 +56,9 @@ def find_regimes(features: np.ndarray, min_frames: int, max_regimes: int = 3,
 
     Returns
     -------
-    centres : ndarray, shape (k, f)
-        In standardised units (see ``scale``).
-    scale : ndarray, shape (f,)
+    prototypes : ndarray, shape (k, f)
+        Cluster centres in standardised units (see ``feature_scale``).
+    feature_scale : ndarray, shape (f,)
         Per-feature scale the centres and distances use (overall standard deviation,
         floored so a feature that barely varies cannot split the frames).
     labels : ndarray, shape (n,), int
@@ -83,56 +83,60 @@ def find_regimes(features: np.ndarray, min_frames: int, max_regimes: int = 3,
     return best[0], scale, best[1]
 
 
-def assign(features: np.ndarray, centres: np.ndarray, scale: np.ndarray) -> np.ndarray:
+def assign(features: np.ndarray, prototypes: np.ndarray, feature_scale: np.ndarray
+           ) -> np.ndarray:
     """Nearest regime of each frame, shape (n,) int."""
-    z = np.asarray(features, np.float64) / scale
-    d = ((z[:, None, :] - centres[None]) ** 2).sum(axis=2)
+    z = np.asarray(features, np.float64) / feature_scale
+    d = ((z[:, None, :] - prototypes[None]) ** 2).sum(axis=2)
     return d.argmin(axis=1)
 
 
 @dataclass
 class Regimes:
-    """A baseline's regimes and what each calibrates (k >= 2).
+    """A baseline's regimes (k >= 2): how a frame is assigned to one, and what each calibrates.
 
     Attributes
     ----------
-    centres : ndarray, shape (k, 2)
-    scale : ndarray, shape (2,)
-    centers, scales : ndarray, shape (k, h, w), float32
-        Per-cell standardisation of each regime (see :mod:`inspector.core.scoring`).
-    calibration_scores : list of ndarray
-        Held-out frame scores of each regime's normal frames.
-    thresholds : list of Threshold
+    prototypes : ndarray, shape (k, 2)
+        Appearance cluster centres, in units of ``feature_scale``.
+    feature_scale : ndarray, shape (2,)
+        Per-feature scale of the appearance features (see :func:`find_regimes`).
+    calibrations : list of Calibration, length k
+        Per-cell standardisation, calibration scores and threshold of each regime.
     """
 
-    centres: np.ndarray
-    scale: np.ndarray
-    centers: np.ndarray
-    scales: np.ndarray
-    calibration_scores: list = field(default_factory=list)
-    thresholds: list = field(default_factory=list)
+    prototypes: np.ndarray
+    feature_scale: np.ndarray
+    calibrations: list[Calibration] = field(default_factory=list)
 
     def __len__(self) -> int:
-        return len(self.centres)
+        return len(self.prototypes)
 
     def assign(self, images: np.ndarray) -> np.ndarray:
-        return assign(appearance(images), self.centres, self.scale)
+        """Regime of each RGB frame (n, H, W, 3) uint8, shape (n,) int."""
+        return assign(appearance(images), self.prototypes, self.feature_scale)
 
     def to_json(self) -> list[dict[str, Any]]:
-        return [{**t.to_dict(), "centre": [float(v) for v in c]}
-                for t, c in zip(self.thresholds, self.centres)]
+        return [{**c.threshold.to_dict(), "prototype": [float(v) for v in p]}
+                for c, p in zip(self.calibrations, self.prototypes)]
 
     def arrays(self) -> dict[str, np.ndarray]:
-        return {"centres": self.centres, "scale": self.scale, "centers": self.centers,
-                "scales": self.scales,
-                "scores": np.concatenate(self.calibration_scores),
-                "labels": np.concatenate([np.full(len(s), i)
-                                          for i, s in enumerate(self.calibration_scores)])}
+        return {"prototypes": self.prototypes, "feature_scale": self.feature_scale,
+                "cell_center": np.stack([c.center for c in self.calibrations]),
+                "cell_scale": np.stack([c.scale for c in self.calibrations]),
+                "scores": np.concatenate([c.scores for c in self.calibrations]),
+                "labels": np.concatenate([np.full(len(c.scores), i)
+                                          for i, c in enumerate(self.calibrations)])}
 
     @classmethod
     def from_saved(cls, meta: list[dict[str, Any]], a: dict[str, np.ndarray]) -> "Regimes":
-        k = len(a["centres"])
-        return cls(centres=a["centres"], scale=a["scale"], centers=a["centers"],
-                   scales=a["scales"],
-                   calibration_scores=[a["scores"][a["labels"] == i] for i in range(k)],
-                   thresholds=[Threshold.from_dict(t) for t in meta])
+        """Inverse of :meth:`to_json` and :meth:`arrays` (also reads the array names of
+        baselines saved before the rename: centres, scale, centers, scales)."""
+        prototypes = a["prototypes"] if "prototypes" in a else a["centres"]
+        feature_scale = a["feature_scale"] if "feature_scale" in a else a["scale"]
+        center = a["cell_center"] if "cell_center" in a else a["centers"]
+        scale = a["cell_scale"] if "cell_scale" in a else a["scales"]
+        return cls(prototypes, feature_scale,
+                   [Calibration(center[i], scale[i], a["scores"][a["labels"] == i],
+                                Threshold.from_dict(t))
+                    for i, t in enumerate(meta)])

@@ -23,18 +23,12 @@ import inspector
 from inspector.clock import now
 from inspector.config import CameraConfig, Config, settings_dict
 from inspector.core.baseline import Baseline
-from inspector.core.calibration import (
-    alarms_to_alpha,
-    conformal_threshold,
-    tail_threshold,
-    time_blocks,
-)
+from inspector.core.calibration import Threshold, alarms_to_alpha, calibrate, time_blocks
 from inspector.core.conditions import Conditions
 from inspector.core.features import rasterize_mask
 from inspector.core.image import darker_exposure, grey
 from inspector.core.models import model_class
-from inspector.core.regimes import Regimes, appearance, find_regimes
-from inspector.core.scoring import anomaly_maps, frame_scores, location_stats
+from inspector.core.regimes import Regimes, appearance, assign, find_regimes
 from inspector.core.textmask import boxes_mask, find_text_boxes
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.progress import progress_bar
@@ -131,10 +125,12 @@ class FileSource:
 class PreparedSource:
     """A :class:`FrameSource` whose frames pass through :meth:`Conditions.prepare` first.
 
-    With ``exposure`` > 0, every other frame (chosen at random, the same on every pass) is
-    first made to look like a shorter exposure, darker by up to that fraction with the
-    sensor noise unchanged (:func:`inspector.core.image.darker_exposure`), so the model and
-    its calibration know the extra noise a normalised darker frame carries.
+    With ``exposure`` > 0, :meth:`training_batches` also gives every other frame (chosen at
+    random, the same on every pass) as if caught at a shorter exposure, darker by up to
+    that fraction with the sensor noise unchanged
+    (:func:`inspector.core.image.darker_exposure`), so the model learns the extra noise a
+    normalised darker frame carries. These varied frames are learnt from only: calibration
+    scores come from the frames as they are, as scan scores do.
     """
 
     def __init__(self, source, conditions: Conditions, exposure: float = 0.0):
@@ -167,12 +163,21 @@ class PreparedSource:
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        for idx, prepared, _ in self._prepared(indices, batch_size, vary=False):
+            yield idx, prepared
+
+    def training_batches(self, indices: Sequence[int], batch_size: int = 64
+                         ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        yield from self._prepared(indices, batch_size, vary=self.exposure > 0)
+
+    def _prepared(self, indices: Sequence[int], batch_size: int, vary: bool
+                  ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
         for idx, images in self.source.batches(indices, batch_size):
-            # The record of the frames as captured feeds the health measures; frames made
-            # darker are prepared again for the model.
+            # The record of the frames as captured feeds the health measures and the
+            # scores; frames made darker are prepared again, for the model to learn from.
             rec = self.conditions.prepare(images)
-            prepared = rec.images
-            if self.exposure > 0:
+            prepared = varied = rec.images
+            if vary:
                 darker = {}
                 for j, i in enumerate(idx):
                     rng = np.random.default_rng([7, int(i)])
@@ -180,8 +185,8 @@ class PreparedSource:
                         gain = 1.0 - self.exposure * rng.random()
                         darker[j] = darker_exposure(images[j], gain, rng)
                 if darker:
-                    prepared = prepared.copy()
-                    prepared[list(darker)] = self.conditions.prepare(
+                    varied = prepared.copy()
+                    varied[list(darker)] = self.conditions.prepare(
                         np.stack(list(darker.values()))).images
             if self.conditions.reference_ is not None and not all(
                     int(i) in self.measures for i in idx):
@@ -191,7 +196,7 @@ class PreparedSource:
             if not all(int(i) in self.appearance for i in idx):
                 for i, a in zip(idx, appearance(images)):
                     self.appearance[int(i)] = a
-            yield idx, prepared
+            yield idx, prepared, varied
 
 
 @dataclass
@@ -202,8 +207,8 @@ class LearnReport:
     version: str
     frames: int
     skipped: list[Skip]
-    threshold: float
-    promised_alpha: float
+    #: The camera's threshold: its value, the rate guaranteed and any extrapolated target.
+    threshold: Threshold
     warnings: list[str] = field(default_factory=list)
     seconds: float = 0.0
     #: Burned-in text boxes masked, (x0, y0, x1, y1) in pixels of the exported frames.
@@ -261,45 +266,49 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     if prepared.measures:  # health limits from every normal frame, not just the sample
         conditions.set_limits({k: np.array([m[k] for m in prepared.measures.values()])
                                for k in ("dark", "bright", "covered", "focus")})
-    center, scale = location_stats(held.maps)
-    cal = frame_scores(anomaly_maps(held.maps, center, scale))
-    cs = cfg.conditions
-    alpha, notes = cfg.calibration.alpha, []
+    cs = cfg.calibration
+    good = [t for i, t in enumerate(times) if i not in source.skipped]
+    alpha, notes = cs.alpha, []
     if cs.alarms_per_day > 0:
         try:
-            alpha, per_day = alarms_to_alpha(cs.alarms_per_day, times)
+            alpha, per_day, days = alarms_to_alpha(cs.alarms_per_day, good)
         except ValueError as exc:
             raise UsageError(f"camera {camera}: alarms_per_day is set but {exc}") from None
         notes.append(f"{cs.alarms_per_day:g} false alarms a day at {per_day:.0f} frames a day "
-                     f"(from capture times): false-alarm rate {alpha:.3g} per frame")
+                     f"(counted over {days} capture day{'s' if days != 1 else ''}): "
+                     f"false-alarm rate {alpha:.3g} per frame")
     # A budget in alarms per day can ask for a rate far below what the normal frames
-    # support: then the tail is extrapolated. A plain alpha keeps the exact conformal promise
-    # (the largest score, promising 1/(n+1), with a warning when frames are too few).
-    threshold_of = (tail_threshold if cs.tail_fit and cs.alarms_per_day > 0
-                    else conformal_threshold)
-    threshold = threshold_of(cal, alpha)
+    # support: then the tail is extrapolated (and only 1/(n+1) is guaranteed). A plain
+    # alpha keeps the exact conformal threshold (the largest score, guaranteeing 1/(n+1),
+    # with a warning when frames are too few).
+    tail = cs.tail_fit and cs.alarms_per_day > 0
+    held_blocks = source.blocks[held.index]
+    try:
+        calibration = calibrate(held.maps, held_blocks, alpha, tail)
+    except ValueError as exc:
+        raise UsageError(f"camera {camera}: cannot calibrate: {exc}") from None
+    threshold = calibration.threshold
+    notes.append(f"threshold from {threshold.n} calibration frames, each scored by a model of "
+                 f"earlier frames only ({used - threshold.n} frames only trained); "
+                 f"{threshold.describe()}")
     warnings = [threshold.warning] if threshold.warning else []
     regimes = None
     if cs.regimes and cs.max_regimes > 1 and len(prepared.appearance) >= len(held.index):
         feats = np.array([prepared.appearance[int(i)] for i in held.index])
-        centres, fscale, labels = find_regimes(feats, MIN_REGIME_FRAMES, cs.max_regimes)
-        if len(centres) > 1:
-            parts = [location_stats(held.maps[labels == r]) for r in range(len(centres))]
-            cals = [frame_scores(anomaly_maps(held.maps[labels == r], c, sc))
-                    for r, (c, sc) in enumerate(parts)]
-            regimes = Regimes(centres=centres, scale=fscale,
-                              centers=np.stack([p[0] for p in parts]),
-                              scales=np.stack([p[1] for p in parts]),
-                              calibration_scores=cals,
-                              thresholds=[threshold_of(c, alpha) for c in cals])
+        prototypes, fscale, _ = find_regimes(feats, MIN_REGIME_FRAMES, cs.max_regimes)
+        if len(prototypes) > 1:
+            labels = assign(feats, prototypes, fscale)  # as frames are assigned at scan time
+            regimes = Regimes(prototypes, fscale,
+                              [calibrate(held.maps[labels == r], held_blocks[labels == r],
+                                         alpha, tail) for r in range(len(prototypes))])
             desc = ", ".join(
-                f"{len(c)} frames (brightness {np.expm1(ce[0] * fscale[0]):.0f}, "
-                f"saturation {ce[1] * fscale[1]:.2f})" for c, ce in zip(cals, centres))
-            notes.append(f"{len(centres)} regimes, each calibrated on its own: {desc}")
-            warnings += [f"regime {r + 1}: {t.warning}"
-                         for r, t in enumerate(regimes.thresholds) if t.warning]
+                f"{c.threshold.n} frames (brightness {np.expm1(p[0] * fscale[0]):.0f}, "
+                f"saturation {p[1] * fscale[1]:.2f})"
+                for c, p in zip(regimes.calibrations, prototypes))
+            notes.append(f"{len(prototypes)} regimes, each calibrated on its own: {desc}")
+            warnings += [f"regime {r + 1}: {c.threshold.warning}"
+                         for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
     warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
-    good = [t for i, t in enumerate(times) if i not in source.skipped]
     facts = VersionFacts(
         created=started, frames=used, frames_skipped=len(source.skipped),
         first_frame_time=min(good), last_frame_time=max(good),
@@ -308,9 +317,8 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                   "conditions": settings_dict(cfg.conditions),
                   "mask": settings_dict(cfg.mask)},
         text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}))
-    baseline = Baseline(camera=camera, version="", model=model, center=center, scale=scale,
-                        calibration_scores=cal, threshold=threshold, size=size,
-                        source_size=source_size, mask=mask, conditions=conditions,
+    baseline = Baseline(camera=camera, version="", model=model, calibration=calibration,
+                        size=size, source_size=source_size, mask=mask, conditions=conditions,
                         regimes=regimes)
     baseline.meta = describe(baseline, facts, inspector.__version__)
     version = store.save(baseline, activate=activate)
@@ -319,8 +327,8 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     if text_boxes:
         notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
                      + ", ".join(str(tuple(b)) for b in text_boxes))
-    return LearnReport(camera, version, used, skipped, threshold.value, threshold.promised,
-                       warnings, seconds, text_boxes=text_boxes, notes=notes)
+    return LearnReport(camera, version, used, skipped, threshold, warnings, seconds,
+                       text_boxes=text_boxes, notes=notes)
 
 
 def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None

@@ -38,7 +38,7 @@ import numpy as np
 
 from inspector.clock import iso_time
 from inspector.core.baseline import Baseline
-from inspector.core.calibration import Threshold
+from inspector.core.calibration import Calibration, Threshold
 from inspector.core.conditions import Conditions
 from inspector.core.models import model_class
 from inspector.core.regimes import Regimes
@@ -118,7 +118,7 @@ def describe(baseline: Baseline, facts: VersionFacts, inspector_version: str) ->
         "model_learned": baseline.model.learned(),
         "frames": facts.frames,
         "frames_skipped": facts.frames_skipped,
-        "calibration_frames": int(len(baseline.calibration_scores)),
+        "calibration_frames": int(len(baseline.calibration.scores)),
         "first_frame_time": facts.first_frame_time.isoformat(),
         "last_frame_time": facts.last_frame_time.isoformat(),
         "source_size": list(baseline.source_size),
@@ -175,8 +175,11 @@ class VersionInfo:
     first: str
     last: str
     threshold: float
+    #: False-alarm rate guaranteed by the calibration frames.
     false_alarm_rate: float
     false_alarms_added: int
+    #: The rate a tail fit extrapolated the threshold to, beyond the guarantee (or None).
+    extrapolated_target: float | None = None
 
 
 class Store:
@@ -229,13 +232,18 @@ class Store:
         """The facts ``inspector baselines`` lists about a version."""
         m = self.metadata(camera, version)
         t = m.get("threshold", {})
+        try:
+            th = Threshold.from_dict(t)
+        except (KeyError, TypeError, ValueError):
+            th = None
         return VersionInfo(version=version, created=m.get("created", ""),
                            model=m.get("model", ""), frames=m.get("frames", 0),
                            first=m.get("first_frame_time", ""),
                            last=m.get("last_frame_time", ""),
                            threshold=t.get("value", float("nan")),
-                           false_alarm_rate=t.get("promised", float("nan")),
-                           false_alarms_added=m.get("false_alarm_frames", 0))
+                           false_alarm_rate=th.guaranteed if th else float("nan"),
+                           false_alarms_added=m.get("false_alarm_frames", 0),
+                           extrapolated_target=th.alpha if th and th.extrapolated else None)
 
     def check(self, camera: str, version: str) -> VersionCheck:
         """Verify a version's files against the checksums in its ``baseline.json``."""
@@ -320,11 +328,12 @@ class Store:
             model = model_class(meta["model"]).load(folder, meta["model_params"])
             reading = "calibration.npz"
             with np.load(folder / "calibration.npz", allow_pickle=False) as z:
-                center, scale = z["center"], z["scale"]
-                cal = z["calibration_scores"]
+                arrays = {k: z[k] for k in ("center", "scale", "calibration_scores")}
                 mask = z["mask"] if "mask" in z.files else None
             reading = "baseline.json"
-            threshold = Threshold.from_dict(meta["threshold"])
+            calibration = Calibration(arrays["center"], arrays["scale"],
+                                      arrays["calibration_scores"],
+                                      Threshold.from_dict(meta["threshold"]))
             conditions = None
             if "conditions" in meta and (folder / "conditions.npz").is_file():
                 reading = "conditions.npz"
@@ -345,8 +354,7 @@ class Store:
             check = VersionCheck(camera, version, "damaged",
                                  f"{reading}: cannot be read ({type(exc).__name__})")
             raise DamagedBaseline(check, self.advice(camera, version)) from None
-        return Baseline(camera=camera, version=version, model=model, center=center,
-                        scale=scale, calibration_scores=cal, threshold=threshold,
+        return Baseline(camera=camera, version=version, model=model, calibration=calibration,
                         size=size, source_size=source_size,
                         mask=mask, meta=meta, conditions=conditions, regimes=regimes)
 
@@ -364,8 +372,8 @@ class Store:
         tmp = Path(tempfile.mkdtemp(dir=folder, prefix=".new-"))
         try:
             baseline.model.save(tmp)
-            arrays = {"center": baseline.center, "scale": baseline.scale,
-                      "calibration_scores": baseline.calibration_scores}
+            c = baseline.calibration
+            arrays = {"center": c.center, "scale": c.scale, "calibration_scores": c.scores}
             if baseline.mask is not None:
                 arrays["mask"] = baseline.mask
             np.savez_compressed(tmp / "calibration.npz", **arrays)

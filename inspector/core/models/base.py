@@ -44,6 +44,16 @@ class FrameSource(Protocol):
         """
         ...
 
+    def training_batches(self, indices: Sequence[int], batch_size: int = 64
+                         ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """Yield ``(index, images, varied)``: as :meth:`batches`, plus the frames as the
+        model should learn them (e.g. with exposure variations added), same shape.
+
+        Varied frames enter the training side only; calibration scores come from
+        ``images``, the frames as they are (as scan frames are).
+        """
+        ...
+
     # A source that records what it sees (frames skipped, notes) and may be read in other
     # processes (a model's ``fit(..., pool=...)``) also has ``spawn()``: a copy with empty
     # records; ``collected()``: its records, picklable; ``absorb(record)``: add a copy's.
@@ -51,7 +61,8 @@ class FrameSource(Protocol):
 
 @dataclass
 class HeldOut:
-    """Raw anomaly maps of normal frames, each from a model that did not see that frame.
+    """Raw anomaly maps of normal frames, each from a model that did not see that frame
+    nor (for the promise to hold under drift) any frame after it.
 
     Attributes
     ----------
@@ -137,3 +148,8 @@ class ArraySource:
         for start in range(0, len(indices), batch_size):
             idx = indices[start:start + batch_size]
             yield idx, self.images[idx]
+
+    def training_batches(self, indices: Sequence[int], batch_size: int = 64
+                         ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        for idx, images in self.batches(indices, batch_size):
+            yield idx, images, images

@@ -8,9 +8,10 @@ principal component analysis", J. R. Statist. Soc. B 61(3), eqs. 7-8):
     W = U_q (Lambda_q - sigma^2 I)^(1/2).
 
 Fitting streams over the frames and keeps only per-location sufficient statistics (count,
-sum, scatter), so memory does not grow with the number of frames. The statistics are
-kept per time block, which makes K-fold cross-fitting cheap: the model for fold k is fitted
-from the totals minus block k, and scores block k (cross-conformal calibration, Vovk 2015).
+sum, scatter), so memory does not grow with the number of frames. The frames are read once,
+in time order: each time block is scored by the model of the blocks before it (fitted from
+the moments so far) before it is added, so every calibration frame comes after the frames
+of its model, as scan frames do (forward chaining; cross-conformal calibration, Vovk 2015).
 
 Scoring uses the Woodbury identity and the matrix determinant lemma: with
 ``M = W^T W + sigma^2 I_q``,
@@ -63,15 +64,16 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2):
 
 # --- pure functions ------------------------------------------------------------------------
 
-def ppca_fit(mean: np.ndarray, cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
+def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
              var_floor: float = 0.0, explained_variance: float = 0.9,
              max_latent: int = 24) -> tuple[np.ndarray, np.ndarray]:
     """Closed-form maximum-likelihood PPCA of each location (Tipping & Bishop 1999).
 
+    The mean of each location is the sample mean; the closed form needs only the
+    covariance.
+
     Parameters
     ----------
-    mean : ndarray, shape (L, d), or None
-        Not needed by the closed form (kept so the call reads like the model it builds).
     cov : ndarray, shape (L, d, d)
         Sample covariance of each location.
     latent : int
@@ -191,19 +193,24 @@ def _nll(X, mean, B, sigma2, logdet, d_obs, observed, unit: float = 1.0):
 class Moments:
     """Streaming sufficient statistics of patch features, per location and per time block.
 
-    Scatter is accumulated about a fixed shift (the first batch's mean) to keep the
-    float64 sums well conditioned.
+    Counts and sums are kept per block; the scatter (L x d x d, the large part) in total,
+    and per block only when ``block_scatter`` is set (needed to leave a block out or to
+    take the blocks before one from moments gathered out of order). Scatter is
+    accumulated about a fixed shift (the first batch's mean) to keep the float64 sums well
+    conditioned, as one batched matrix product per batch: (L, d, n) @ (L, n, d).
     """
 
-    def __init__(self, n_blocks: int, L: int, d: int):
+    def __init__(self, n_blocks: int, L: int, d: int, block_scatter: bool = False):
         self.count = np.zeros(n_blocks)
         self.sum = np.zeros((n_blocks, L, d))
-        self.scatter = np.zeros((n_blocks, L, d, d))
+        self.scatter = np.zeros((n_blocks, L, d, d)) if block_scatter else None
         self.total_scatter = np.zeros((L, d, d))
         self.shift: np.ndarray | None = None
 
     def add(self, block: int, X: np.ndarray) -> None:
         """Add samples ``X`` (n, L, d) to ``block``."""
+        if not len(X):
+            return
         if self.shift is None:
             self.shift = X.mean(axis=0, dtype=np.float64).astype(np.float32)
         Xc = X - self.shift[None]
@@ -211,7 +218,8 @@ class Moments:
         self.sum[block] += Xc.sum(axis=0, dtype=np.float64)
         Xt = np.ascontiguousarray(Xc.transpose(1, 2, 0))  # (L, d, n)
         S = np.matmul(Xt, Xt.transpose(0, 2, 1))
-        self.scatter[block] += S
+        if self.scatter is not None:
+            self.scatter[block] += S
         self.total_scatter += S
 
     def merge(self, other: "Moments") -> "Moments":
@@ -236,23 +244,39 @@ class Moments:
                     S + cross + np.swapaxes(cross, -1, -2)
                     + n[..., None, None, None] * (delta[:, :, None] * delta[:, None, :]))
 
-        s, S = moved(other.count, other.sum, other.scatter)
+        if self.scatter is not None:
+            if other.scatter is None:
+                raise ValueError("cannot merge moments without block scatter into ones with it")
+            s, S = moved(other.count, other.sum, other.scatter)
+            self.scatter += S
+        else:
+            s = other.sum + other.count[:, None, None] * delta
         _, T = moved(np.asarray(other.count.sum()), other.sum.sum(axis=0), other.total_scatter)
         self.count += other.count
         self.sum += s
-        self.scatter += S
         self.total_scatter += T
         return self
 
-    def mean_cov(self, leave_out: int | None = None) -> tuple[np.ndarray, np.ndarray, int]:
-        """Mean (L, d), unbiased covariance (L, d, d) and count, optionally without a block."""
+    def mean_cov(self, leave_out: int | None = None, before: int | None = None
+                 ) -> tuple[np.ndarray, np.ndarray, int]:
+        """Mean (L, d), unbiased covariance (L, d, d) and count of all samples, of all but
+        block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
+        ``block_scatter``)."""
         n = self.count.sum()
         s = self.sum.sum(axis=0)
         S = self.total_scatter
-        if leave_out is not None:
-            n, s, S = n - self.count[leave_out], s - self.sum[leave_out], S - self.scatter[leave_out]
+        if leave_out is not None or before is not None:
+            if self.scatter is None:
+                raise ValueError("a subset of the blocks needs Moments(block_scatter=True)")
+            if leave_out is not None:
+                n, s = n - self.count[leave_out], s - self.sum[leave_out]
+                S = S - self.scatter[leave_out]
+            else:
+                n, s = self.count[:before].sum(), self.sum[:before].sum(axis=0)
+                S = self.scatter[:before].sum(axis=0)
         m = s / n
-        cov = (S - n * m[:, :, None] * m[:, None, :]) / max(n - 1.0, 1.0)
+        cov = S - n * m[:, :, None] * m[:, None, :]
+        cov /= max(n - 1.0, 1.0)
         return self.shift + m, cov, int(n)
 
 
@@ -306,7 +330,17 @@ class PatchPPCA(DensityModel):
     # fitting
 
     def fit(self, source: FrameSource, mask: np.ndarray | None = None, pool=None) -> HeldOut:
-        """Fit on every frame of ``source``; cross-fit one model per time block.
+        """Fit on every frame of ``source``; score each frame once with a model of the
+        frames before it (forward chaining over the time blocks).
+
+        The frames of block k are scored by the model fitted on blocks 0 .. k-1 (its latent
+        size chosen from those frames only); block 0 only trains. Calibration scores thus
+        come, like scan scores, from frames later than every frame their model saw, so the
+        threshold holds for frames that follow the normal set under slow drift (models that
+        interpolate between blocks on both sides would not). Training frames may be varied
+        (``FrameSource.training_batches``); frames are scored as they are. Without a pool
+        this is one pass over the frames in time order: each block is scored by the model
+        of the moments so far, then added to them.
 
         Parameters
         ----------
@@ -317,69 +351,81 @@ class PatchPPCA(DensityModel):
             ``concurrent.futures`` executor, or a Dask cluster's, see
             :class:`inspector.jobs.cluster.ClusterPool`; its ``workers`` attribute, if any,
             says how many run at once). The moments of the time blocks are then accumulated
-            in its workers and added here (:meth:`Moments.merge`), and the held-out blocks
-            scored there. Each job reads a copy of ``source`` (its ``spawn()``, if it has
-            one) whose record (``collected()``: frames skipped, notes) is added back with
-            ``absorb``; the result equals the fit without a pool to float rounding.
+            in its workers and added here (:meth:`Moments.merge`), and the blocks scored
+            there, in a second pass. Each job reads a copy of ``source`` (its ``spawn()``,
+            if it has one) whose record (``collected()``: frames skipped, notes) is added
+            back with ``absorb``; the result equals the fit without a pool to float rounding.
 
         Returns
         -------
         HeldOut
-            Raw maps of every frame from the model fitted without that frame's block.
+            Raw maps of the frames of blocks 1 .. K-1, each from the model fitted on the
+            blocks before its own.
         """
         w, h = source.size
         self.grid_ = grid_shape(h, w, self.patch, self.stride)
         L = self.grid_[0] * self.grid_[1]
         d = feature_size(self.patch, self.colour)
         self.observed_ = observed_features(mask, self.patch, self.stride, self.colour)
+        r = self.patch // self.stride
+        self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
         blocks = np.asarray(source.blocks)
-        labels = np.unique(blocks)
-        order = np.argsort(blocks, kind="stable")
+        labels, block_of = np.unique(blocks, return_inverse=True)
+        order = np.argsort(block_of, kind="stable")
         if pool is None:
-            moments = _block_moments(self, source, order)
+            moments, folds = self._forward_pass(source, order, block_of, len(labels))
         else:
-            moments = Moments(len(labels), L, d)
+            moments = Moments(len(labels), L, d, block_scatter=True)
             for part in _pooled(pool, _block_moments, self, source,
                                 _pieces(order, blocks, labels, pool)):
                 moments.merge(part)
+            jobs = []
+            for k in range(1, len(labels)):
+                if moments.count[:k].sum() < 2 or not moments.count[k]:
+                    continue
+                m_k, c_k, _ = moments.mean_cov(before=k)
+                fold = copy.copy(self)
+                fold._set(m_k, *fold._fit_params(c_k))
+                jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
+            folds = list(_pooled(pool, _held_maps, None, source, jobs))
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
-        # The final model on all frames first: with latent 0 it chooses the size folds share.
         mean, cov, _ = moments.mean_cov()
-        self.q_ = 0
-        final = (mean, *self._fit_params(cov))
-        del cov
-        self._set(*final)
-        # Then one model per time block, fitted without that block, scores that block.
-        folds = []
-        present = [i for i, c in enumerate(moments.count) if c > 0]
-        if len(present) >= 2:
-            for i in present:
-                m_k, c_k, n_k = moments.mean_cov(leave_out=i)
-                if n_k < 2:
-                    continue
-                params = (m_k, *self._fit_params(c_k))
-                idx_k = order[np.isin(blocks[order], labels[i])]
-                if pool is None:
-                    self._set(*params)
-                    folds.append(_held_maps(self, source, idx_k))
-                else:
-                    fold = copy.copy(self)
-                    fold._set(*params)
-                    folds.append((fold, _pieces(idx_k, blocks, labels[i:i + 1], pool)))
-        if pool is not None:
-            jobs = [(fold, piece) for fold, pieces in folds for piece in pieces]
-            folds = list(_pooled(pool, _held_maps, None, source, jobs))
-        self._set(*final)
+        self._set(mean, *self._fit_params(cov))
         held_idx = [i for fold in folds for i, _ in fold]
         held_maps = [m for fold in folds for _, m in fold]
         if held_maps:
             return HeldOut(np.concatenate(held_idx), np.concatenate(held_maps))
         return HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32))
 
+    def _forward_pass(self, source: FrameSource, order: np.ndarray, block_of: np.ndarray,
+                      n_blocks: int) -> tuple[Moments, list]:
+        """One pass in time order: score each block with the model of the moments so far,
+        then add it. Returns the moments and ``[[(positions, raw maps)], ...]``."""
+        moments = Moments(n_blocks, self.grid_[0] * self.grid_[1],
+                          feature_size(self.patch, self.colour))
+        held: list[tuple[np.ndarray, np.ndarray]] = []
+        current, ready = -1, False
+        for idx, images, varied in source.training_batches(order, self.batch_size):
+            b_of = block_of[idx]
+            for b in np.unique(b_of):
+                sel = b_of == b
+                if b != current:  # a new block: fit the model of everything before it
+                    current = b
+                    ready = moments.count.sum() >= 2
+                    if ready:
+                        m_k, c_k, _ = moments.mean_cov()
+                        self._set(m_k, *self._fit_params(c_k))
+                if ready:
+                    held.append((idx[sel], self.score_maps(images[sel])))
+                moments.add(int(b), patch_features(varied[sel], self.patch, self.stride,
+                                                   self.colour))
+        return moments, [held]
+
     def _fit_params(self, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        return ppca_fit(None, cov, self.q_ or self.latent, self.observed_, self.var_floor,
+        """W and sigma^2 from a covariance; the latent size is chosen from it alone."""
+        return ppca_fit(cov, self.latent, self.observed_, self.var_floor,
                         self.explained_variance, self.max_latent)
 
     def _set(self, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray) -> None:
@@ -463,14 +509,15 @@ class PatchPPCA(DensityModel):
 
 
 def _block_moments(model: PatchPPCA, source: FrameSource, indices: np.ndarray) -> Moments:
-    """Moments of the frames at ``indices`` of ``source``, per time block (all blocks)."""
+    """Moments of the frames at ``indices`` of ``source`` as the model learns them
+    (``training_batches``), per time block (all blocks, with their scatter)."""
     blocks = np.asarray(source.blocks)
     labels = np.unique(blocks)
     block_of = {b: i for i, b in enumerate(labels)}
     moments = Moments(len(labels), model.grid_[0] * model.grid_[1],
-                      feature_size(model.patch, model.colour))
-    for idx, images in source.batches(indices, model.batch_size):
-        X = patch_features(images, model.patch, model.stride, model.colour)
+                      feature_size(model.patch, model.colour), block_scatter=True)
+    for idx, _, varied in source.training_batches(indices, model.batch_size):
+        X = patch_features(varied, model.patch, model.stride, model.colour)
         for b in np.unique(blocks[idx]):
             moments.add(block_of[b], X[blocks[idx] == b])
     return moments

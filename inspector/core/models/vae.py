@@ -48,29 +48,25 @@ total ``-log (1/K) sum_k w_k`` is split exactly into cells as
 ``sum_k omega_k c_k(cell) + (log K - H(omega)) / cells``, where ``c_k`` is sample k's per-cell
 share of ``-log w_k`` and ``omega`` the normalised weights.
 
-Held-out frames: the latest ``holdout`` share of every time block (``source.blocks``), a
-contiguous run of frames at the end of each block. Holding out whole late blocks instead
-trains without the last session of the normal set and calibrates on it alone; on the demo
-dock camera that cost image AUROC 0.966 against 0.993, and 13 against 29 of 36 incidents
-caught at the same (zero) false alarms. A run at the end of every block keeps near-copies
-(neighbouring frames) on one side of the split except at the run's two ends, and spreads
-the calibration frames over all the conditions of the normal set. The price: held-out
-runs share their sessions with training frames, so calibration sees less day-to-day
-change than PPCA's whole-block cross-fitting. On the demo aisle camera a scan day spent
-mostly in an exposure state that is rare in the normal frames (the ceiling lights fall
-out of saturation) raised far more false alarms than the rate asked for, with PPCA too
-but less.
+Held-out frames: in time order, ``train | gap | stop | gap | calibration``. The latest
+``holdout`` share of the frames calibrates; a small ``stop`` share before it chooses the
+stopping epoch; a short gap separates each from the frames before it, so neighbouring near
+copies never straddle a boundary. Every calibration frame thus comes after every frame the
+model learnt from or stopped on, as scan frames do, and the threshold holds for frames that
+follow the normal set under slow drift (calibrating on a run at the end of every block,
+with training frames on both sides, did not: there the model interpolated). The price is
+that the model does not train on the latest sessions of the normal set; scan frames are
+further from its training frames than the calibration frames are, so relearn as the scene
+changes.
 
 Training: Adam on the negative ELBO (one reparameterised sample, analytic KL) of the other
 frames, at most ``steps`` batches (so training time does not grow with the number of
 frames), the per-pixel maps at 10 times the network's learning rate (see
 :data:`MAP_LR_SCALE`), halving both after 2 epochs without progress. Each epoch the
-held-out ELBO (fixed noise, so epochs compare fairly) is measured;
+ELBO of the early-stopping frames (fixed noise, so epochs compare fairly) is measured;
 the best weights are kept and training stops after ``patience`` epochs without
-improvement. The held-out frames are then scored by that final model and returned for
-calibration (split conformal; the model is not refitted on them). They also chose the
-stopping epoch, a weak dependence (one number picked out of a few dozen) accepted to keep
-every held-out frame for calibration.
+improvement. The calibration frames are then scored by that final model and returned for
+calibration (split conformal; the model is not refitted on them).
 """
 
 from __future__ import annotations
@@ -380,8 +376,13 @@ class PatchVAE(DensityModel):
     var_floor : float
         Lower bound on the decoder variance in squared [0, 1] units (as PPCA's).
     holdout : float
-        Share of every time block held out (its latest frames) for early stopping and
-        calibration.
+        Share of the frames (the latest, in time order) held out for calibration.
+    stop : float
+        Share of the frames (just before the calibration frames, after a gap) on which the
+        stopping epoch is chosen; neither trained on nor calibrated on.
+    gap : float
+        Share of the frames left out between training, early-stopping and calibration
+        frames (at least one frame each), so neighbouring near copies never straddle them.
     max_frames : int
         Training frames kept in memory (as uint16 planes, 2 bytes per modelled value: 177 MB
         for 1,000 frames at 320x180); more are subsampled evenly in time.
@@ -400,7 +401,8 @@ class PatchVAE(DensityModel):
                  width: int = 32, epochs: int = 100, steps: int = 2000, patience: int = 8,
                  batch_size: int = 8, lr: float = 2e-3, seed: int = 0, threads: int = 1,
                  iw_samples: int = 0, kl_in_map: bool = True, var_floor: float = 1e-4,
-                 holdout: float = 0.2, max_frames: int = 2000, global_latent: int = 4):
+                 holdout: float = 0.2, max_frames: int = 2000, global_latent: int = 4,
+                 stop: float = 0.05, gap: float = 0.02):
         self.patch = patch
         self.stride = stride
         self.colour = colour
@@ -417,6 +419,8 @@ class PatchVAE(DensityModel):
         self.kl_in_map = kl_in_map
         self.var_floor = var_floor
         self.holdout = holdout
+        self.stop = stop
+        self.gap = gap
         self.max_frames = max_frames
         self.global_latent = global_latent
 
@@ -502,25 +506,27 @@ class PatchVAE(DensityModel):
     # fitting
 
     def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:
-        """Train on most of every time block; score the held-out rest for calibration.
+        """Train on the earlier frames; score the latest ones, after a gap, for calibration.
 
         Returns
         -------
         HeldOut
-            Raw maps of the held-out frames (the latest ``holdout`` share of each block),
-            by the final model (the epoch with the best held-out ELBO).
+            Raw maps of the calibration frames (the latest ``holdout`` share of the frames
+            in time order), by the final model (the epoch with the best ELBO on the
+            early-stopping frames, which are neither trained on nor calibrated on).
         """
         started = time.perf_counter()
         self.size_ = tuple(int(v) for v in source.size)
         self._geometry(self.size_)
-        train_idx, held_idx = self._split(np.asarray(source.blocks))
+        train_idx, stop_idx, held_idx = self._split(len(source))
         train_idx = self._subsample(train_idx)
-        train_pos, train_imgs = self._read(source, train_idx)
+        _, train_imgs = self._read(source, train_idx, varied=True)
+        _, stop_imgs = self._read(source, stop_idx)
         held_pos, held_imgs = self._read(source, held_idx)
-        del train_pos
-        if len(train_imgs) < 2 or len(held_imgs) < 1:
-            raise ValueError(f"need at least 2 training and 1 held-out decodable frames, got "
-                             f"{len(train_imgs)} and {len(held_imgs)}")
+        if len(train_imgs) < 2 or len(stop_imgs) < 1 or len(held_imgs) < 2:
+            raise ValueError(f"need at least 2 training, 1 early-stopping and 2 calibration "
+                             f"decodable frames, got {len(train_imgs)}, {len(stop_imgs)} and "
+                             f"{len(held_imgs)}")
         obs = torch.from_numpy(self._observed(mask))
         if not obs.any():
             raise ValueError("the mask ignores every pixel")
@@ -529,35 +535,38 @@ class PatchVAE(DensityModel):
             self.net_ = self._network()
             self._init_from_data(train_imgs, obs)
             self._prepare_scoring()
-            history = self._train(train_imgs, held_imgs, obs)
+            history = self._train(train_imgs, stop_imgs, obs)
             self.net_.eval()
             maps = self._score_packed(held_imgs)
         self.learned_ = {
             "latent": self.q_, "global_latent": int(self.global_latent),
             "latent_cell": self.cell_, "latent_grid": list(self.latent_grid_),
-            "train_frames": int(len(train_imgs)), "heldout_frames": int(len(held_imgs)),
+            "train_frames": int(len(train_imgs)), "stop_frames": int(len(stop_imgs)),
+            "heldout_frames": int(len(held_imgs)),
+            "gap_frames": int(len(source) - len(train_idx) - len(stop_idx) - len(held_idx)),
             "parameters": int(sum(p.numel() for p in self.net_.parameters())),
             "observed_dims": int(obs.sum()), "seconds": round(time.perf_counter() - started, 2),
             **history,
         }
         return HeldOut(held_pos, maps)
 
-    def _split(self, blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Training and held-out positions: the latest ``holdout`` share of every block."""
-        n = len(blocks)
-        if n < 3:
-            raise ValueError(f"need at least 3 frames to fit, got {n}")
+    def _split(self, n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Training, early-stopping and calibration positions, in time order:
+        ``train | gap | stop | gap | calibration``, the calibration frames being the latest
+        ``holdout`` share, the early-stopping ones ``stop`` of them, each gap ``gap``
+        (at least one frame), so that no calibration frame is a near copy of a frame that
+        was trained on or chose the epoch, and every calibration frame comes after them all.
+        """
+        if n < 8:
+            raise ValueError(f"need at least 8 frames to fit, got {n}")
+        held = max(2, int(round(self.holdout * n)))
+        stop = max(1, int(round(self.stop * n)))
+        gap = max(1, int(round(self.gap * n)))
+        train = n - held - stop - 2 * gap
+        if train < 2:
+            raise ValueError(f"{n} frames are too few to train, stop early and calibrate")
         pos = np.arange(n)
-        held = np.zeros(n, bool)
-        for b in np.unique(blocks):
-            members = pos[blocks == b]
-            k = int(round(self.holdout * len(members)))
-            if len(members) >= 2:
-                k = min(max(k, 1), len(members) - 1)
-            held[members[len(members) - k:]] = k > 0
-        if held.all() or not held.any():
-            held = pos >= n - max(1, n // 5)
-        return pos[~held], pos[held]
+        return (pos[:train], pos[train + gap:train + gap + stop], pos[n - held:])
 
     def _subsample(self, idx: np.ndarray) -> np.ndarray:
         if len(idx) <= self.max_frames:
@@ -565,10 +574,14 @@ class PatchVAE(DensityModel):
         keep = np.linspace(0, len(idx) - 1, self.max_frames).round().astype(int)
         return idx[np.unique(keep)]
 
-    def _read(self, source: FrameSource, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Decodable positions and their packed planes (see :meth:`_pack`)."""
+    def _read(self, source: FrameSource, idx: np.ndarray, varied: bool = False
+              ) -> tuple[np.ndarray, np.ndarray]:
+        """Decodable positions and their packed planes (see :meth:`_pack`); ``varied``
+        takes the frames as the model should learn them (``training_batches``)."""
         pos, planes = [], []
-        for p, images in source.batches(idx, 64):
+        batches = (source.training_batches(idx, 64) if varied
+                   else ((p, images, images) for p, images in source.batches(idx, 64)))
+        for p, _, images in batches:
             pos.append(np.asarray(p, int))
             planes.append(self._pack(images))
         if not pos:
