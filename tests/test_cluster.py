@@ -163,9 +163,9 @@ def test_a_baseline_learnt_on_the_cluster_equals_the_local_one(site, client, cap
     here, there = Store(root / "store"), Store(root / "store-learnt")
     for camera in ("gate", "yard"):
         a, b = here.load(camera), there.load(camera)
-        for name in ("center", "scale", "calibration_scores"):
-            np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-5,
-                                       atol=1e-6)
+        for name in ("center", "scale", "scores"):
+            np.testing.assert_allclose(getattr(a.calibration, name),
+                                       getattr(b.calibration, name), rtol=1e-5, atol=1e-6)
         for name in ("mean_", "W_", "sigma2_"):
             np.testing.assert_allclose(getattr(a.model, name), getattr(b.model, name),
                                        rtol=1e-4, atol=1e-6)
