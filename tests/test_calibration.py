@@ -98,11 +98,11 @@ def test_tail_threshold_records_what_is_guaranteed_apart_from_its_target():
     assert t.method == "tail" and t.extrapolated
     assert t.guaranteed == 1 / 201 and t.alpha == 1e-3  # the order-statistic bound, 1/(n+1)
     assert "guaranteed 0.00498" in t.describe() and "extrapolated target 0.001" in t.describe()
-    assert Threshold.from_json(t.to_json()) == t
+    assert Threshold.from_dict(t.to_dict()) == t
     # A baseline saved before the field existed stored the target as "promised".
     old = {"value": t.value, "alpha": 1e-3, "promised": 1e-3, "n": 200, "frames_short": 799,
            "method": "tail"}
-    assert Threshold.from_json(old).guaranteed == 1 / 201
+    assert Threshold.from_dict(old).guaranteed == 1 / 201
 
 
 def test_cross_fitted_scores_never_standardise_a_frame_with_itself():

@@ -85,6 +85,18 @@ class Threshold:
     method: str = "conformal"
 
     @property
+    def extrapolated(self) -> bool:
+        """True when the threshold aims at ``alpha`` by a tail fit, beyond the guarantee."""
+        return self.method == "tail" and self.guaranteed > self.alpha
+
+    def describe(self) -> str:
+        """One phrase: the rate guaranteed and, when extrapolated, the target aimed at."""
+        text = f"false-alarm rate guaranteed {self.guaranteed:.3g}"
+        if self.extrapolated:
+            text += f", extrapolated target {self.alpha:.3g} (not guaranteed)"
+        return text
+
+    @property
     def warning(self) -> str:
         if not self.frames_short:
             return ""
@@ -100,8 +112,9 @@ class Threshold:
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict (the one layout, read back by :meth:`from_dict`)."""
-        return {"value": self.value, "alpha": self.alpha, "guaranteed": self.guaranteed,
-                "n": self.n, "frames_short": self.frames_short, "method": self.method}
+        return {"value": float(self.value), "alpha": float(self.alpha),
+                "guaranteed": float(self.guaranteed), "n": int(self.n),
+                "frames_short": int(self.frames_short), "method": self.method}
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "Threshold":
@@ -125,7 +138,7 @@ def conformal_threshold(scores: np.ndarray, alpha: float) -> Threshold:
     The ceil((n + 1)(1 - alpha))-th smallest calibration score (Vovk, Gammerman & Shafer
     2005): a new normal frame, exchangeable with the calibration frames, exceeds it with
     probability at most ``alpha``. With fewer than 1/alpha - 1 scores that rank does not
-    exist; the largest score is used and only 1/(n + 1) is promised.
+    exist; the largest score is used and only 1/(n + 1) is guaranteed.
 
     Parameters
     ----------
