@@ -180,8 +180,9 @@ def test_one_camera_learnt_with_its_passes_in_the_workers_equals_the_local_one(s
                  client.scheduler.address]) == 0
     assert "gate: baseline v1 (ppca) from 30 frames" in capsys.readouterr().out
     a, b = Store(root / "store").load("gate"), Store(root / "store-one").load("gate")
-    for name in ("center", "scale", "calibration_scores"):
-        np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-4, atol=1e-5)
+    for name in ("center", "scale", "scores"):
+        np.testing.assert_allclose(getattr(a.calibration, name), getattr(b.calibration, name),
+                                   rtol=1e-4, atol=1e-5)
     for name in ("mean_", "sigma2_"):
         np.testing.assert_allclose(getattr(a.model, name), getattr(b.model, name), rtol=1e-4,
                                    atol=1e-6)
@@ -199,12 +200,12 @@ def test_moments_reduced_from_parts_equal_numpy_mean_and_cov():
     rng = np.random.default_rng(4)
     X = (rng.normal(size=(90, 5, 4)) * [1, 2, 3, 4] + 50).astype(np.float32)
     blocks = np.repeat([0, 1, 2], 30)
-    whole = Moments(3, 5, 4)
+    whole = Moments(3, 5, 4, block_scatter=True)
     for b in range(3):
         whole.add(b, X[blocks == b])
-    merged = Moments(3, 5, 4)
+    merged = Moments(3, 5, 4, block_scatter=True)
     for part in (slice(0, 20), slice(20, 55), slice(55, 90)):  # parts cut across blocks
-        m = Moments(3, 5, 4)
+        m = Moments(3, 5, 4, block_scatter=True)
         for b in np.unique(blocks[part]):
             m.add(b, X[part][blocks[part] == b])
         merged.merge(m)
@@ -219,6 +220,11 @@ def test_moments_reduced_from_parts_equal_numpy_mean_and_cov():
         w_mean, w_cov, _ = whole.mean_cov(leave_out=leave)
         np.testing.assert_allclose(mean, w_mean, rtol=1e-6)
         np.testing.assert_allclose(cov, w_cov, rtol=1e-5, atol=1e-6)
+    # The blocks before one (forward chaining), against numpy.cov of those frames.
+    mean, cov, n = merged.mean_cov(before=2)
+    assert n == 60
+    np.testing.assert_allclose(cov[3], np.cov(X[:60, 3].T.astype(np.float64)), rtol=1e-5,
+                               atol=1e-6)
 
 
 def test_scan_leaves_out_frames_already_scored_unless_asked(site, capsys):
