@@ -125,3 +125,34 @@ def test_working_size_keeps_aspect_with_even_sides():
     assert working_size((1080, 1920), 320) == (180, 320)
     w, h = working_size((1280, 1024), 320)
     assert (w, h) == (320, 256) and w % 2 == 0 and h % 2 == 0
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+def test_exif_orientation_is_honoured_as_pillow_does(tmp_path, orientation):
+    # A picture stored turned or flipped, with the EXIF Orientation tag (0x0112) saying so,
+    # as phones and body cameras export them. The upright picture is what Pillow's
+    # ImageOps.exif_transpose makes of the same file (the outside reference).
+    from PIL import ImageOps
+
+    upright_img = cv2.resize(data.astronaut(), (640, 360))  # upright 640x360
+    inverse = {2: Image.Transpose.FLIP_LEFT_RIGHT, 3: Image.Transpose.ROTATE_180,
+               4: Image.Transpose.FLIP_TOP_BOTTOM, 5: Image.Transpose.TRANSPOSE,
+               6: Image.Transpose.ROTATE_90, 7: Image.Transpose.TRANSVERSE,
+               8: Image.Transpose.ROTATE_270}  # stored = inverse of the upright turn
+    stored = Image.fromarray(upright_img)
+    if orientation in inverse:
+        stored = stored.transpose(inverse[orientation])
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    p = tmp_path / f"cam_{orientation}.jpg"
+    stored.save(p, quality=95, exif=exif)
+    with Image.open(p) as im:
+        want = np.asarray(ImageOps.exif_transpose(im).convert("RGB"))
+        assert want.shape == (360, 640, 3) and im.size == stored.size
+    # full decode at the upright size, and a reduced (1/2-scale DCT) decode to 320x180
+    for size in ((640, 360), (320, 180)):
+        frame = read_frame(_ff(p), **READ, size=size, source_size=(640, 360))
+        assert frame.source_size == (640, 360) and not frame.notes
+        ref = cv2.resize(want, size, interpolation=cv2.INTER_AREA)
+        assert frame.image.shape == (size[1], size[0], 3)
+        assert np.abs(frame.image.astype(int) - ref).mean() < 4.0

@@ -393,7 +393,7 @@ def _model_params(cfg: CameraConfig) -> dict:
 
 
 def _common_resolution(files: Sequence[FrameFile]) -> tuple[int, int]:
-    """The most common exported resolution among the frames (read from headers only)."""
+    """The most common exported (upright) resolution among the frames, from headers only."""
     sizes = Counter(size for f in files if (size := image_size(f.path)) is not None)
     if not sizes:  # unreadable ones are recorded when decoded
         raise UsageError("none of the normal frames could be read")

@@ -265,15 +265,57 @@ def _reduced_flag(kind: str, source_size: tuple[int, int], size: tuple[int, int]
     return cv2.IMREAD_COLOR
 
 
-def _header_dims(source) -> tuple[int, int] | None:
-    """(width, height) from an image header (a path or a binary file object), or None when
-    it cannot be read. No pixel is decoded, so no size limit applies here: callers apply
-    their own."""
+#: EXIF Orientation (tag 0x0112) values whose stored pixels are the upright picture turned
+#: by 90 degrees (width and height swapped), and the turn or flip that makes each upright
+#: (EXIF 2.3, sec. 4.6.4 A; the same table as Pillow's ``ImageOps.exif_transpose``).
+_SWAPPED = (5, 6, 7, 8)
+_UPRIGHT = {
+    2: lambda a: a[:, ::-1],
+    3: lambda a: a[::-1, ::-1],
+    4: lambda a: a[::-1],
+    5: lambda a: a.swapaxes(0, 1),
+    6: lambda a: a.swapaxes(0, 1)[:, ::-1],
+    7: lambda a: a.swapaxes(0, 1)[::-1, ::-1],
+    8: lambda a: a.swapaxes(0, 1)[::-1],
+}
+
+
+def upright(image: np.ndarray, orientation: int) -> np.ndarray:
+    """The picture as meant to be seen: stored pixels turned or flipped by their EXIF
+    Orientation tag (1 or unknown: as stored).
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W) or (H, W, C)
+    orientation : int
+        EXIF Orientation, 1..8.
+
+    Returns
+    -------
+    ndarray, contiguous; shape (W, H, ...) for orientations 5 to 8
+    """
+    turn = _UPRIGHT.get(int(orientation))
+    return image if turn is None else np.ascontiguousarray(turn(image))
+
+
+def _header_dims(source) -> tuple[tuple[int, int], int] | None:
+    """Upright (width, height) and EXIF orientation (1 when absent) from an image header (a
+    path or a binary file object), or None when it cannot be read. No pixel is decoded, so
+    no size limit applies here: callers apply their own. A picture stored turned by 90
+    degrees (orientation 5 to 8, as phones and body cameras export them) has width and
+    height swapped."""
     saved = Image.MAX_IMAGE_PIXELS
     Image.MAX_IMAGE_PIXELS = None  # our own cap, with our own message
     try:
         with Image.open(source) as im:
-            return int(im.size[0]), int(im.size[1])
+            size = (int(im.size[0]), int(im.size[1]))
+            try:
+                orientation = int(im.getexif().get(0x0112, 1) or 1)
+            except Exception:  # a broken EXIF block: show the pixels as stored
+                orientation = 1
+            if not 1 <= orientation <= 8:
+                orientation = 1
+            return (size[::-1] if orientation in _SWAPPED else size), orientation
     except Exception:
         return None
     finally:
@@ -281,12 +323,14 @@ def _header_dims(source) -> tuple[int, int] | None:
 
 
 def image_size(path: Path) -> tuple[int, int] | None:
-    """(width, height) of an image file from its header alone; None when unreadable."""
-    return _header_dims(path)
+    """Upright (width, height) of an image file from its header alone; None when unreadable."""
+    found = _header_dims(path)
+    return None if found is None else found[0]
 
 
-def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int]]:
-    """Format and (width, height) from the header alone, refusing oversized or truncated files.
+def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int], int]:
+    """Format, upright (width, height) and EXIF orientation from the header alone,
+    refusing oversized or truncated files (see :func:`_header_dims` for the orientation).
 
     Raises
     ------
@@ -299,9 +343,10 @@ def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int]]:
     kind = sniff(data[:16])
     if kind is None:
         raise FrameError("not an image (content is not JPEG, PNG, BMP or TIFF)")
-    size = _header_dims(io.BytesIO(data))
-    if size is None:
+    found = _header_dims(io.BytesIO(data))
+    if found is None:
         raise FrameError(f"unreadable {kind.upper()} header (corrupt or truncated file)")
+    size, orientation = found
     if size[0] < 1 or size[1] < 1:
         raise FrameError(f"image has no pixels ({size[0]}x{size[1]})")
     if size[0] * size[1] > max_pixels:
@@ -311,7 +356,7 @@ def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int]]:
         raise FrameError("truncated JPEG (no end-of-image marker)")
     if kind == "png" and b"IEND" not in data[-64:]:
         raise FrameError("truncated PNG (no end chunk)")
-    return kind, size
+    return kind, size, orientation
 
 
 def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: Iterable[str],
@@ -351,7 +396,7 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
         raise FrameError("file disappeared before it could be read") from None
     except OSError as exc:
         raise FrameError(f"cannot read file: {exc.strerror or exc}") from None
-    kind, src = header_size(data, max_pixels)
+    kind, src, orientation = header_size(data, max_pixels)
     notes = []
     if size is None:
         size = working_size(src, long_side)
@@ -363,9 +408,14 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
         notes.append(f"resolution {src[0]}x{src[1]} differs from the baseline's "
                      f"{source_size[0]}x{source_size[1]}; resized")
     buf = np.frombuffer(data, dtype=np.uint8)
-    image = cv2.imdecode(buf, _reduced_flag(kind, src, size))
+    # Decode the stored pixels (their own orientation), at reduced scale when the stored
+    # picture still covers the working size turned the same way, then stand them upright.
+    swapped = orientation in _SWAPPED
+    stored, want = ((src[1], src[0]), (size[1], size[0])) if swapped else (src, size)
+    image = cv2.imdecode(buf, _reduced_flag(kind, stored, want) | cv2.IMREAD_IGNORE_ORIENTATION)
     if image is None or image.size == 0:
         raise FrameError(f"cannot decode {kind.upper()} data (corrupt file)")
+    image = upright(image, orientation)
     if image.shape[1] != size[0] or image.shape[0] != size[1]:
         image = cv2.resize(image, size, interpolation=cv2.INTER_AREA)
     image = cv2.cvtColor(image, cv2.COLOR_BGR2RGB)
