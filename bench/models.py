@@ -40,7 +40,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from inspector.config import Config  # noqa: E402
 from inspector.demo.scenario import generate, load_truth  # noqa: E402
 from inspector.jobs.learn import learn_camera  # noqa: E402
-from inspector.storage.frames import discover, iter_frames  # noqa: E402
+from inspector.storage.frames import discover, iter_batches  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 BATCH = 16
@@ -127,11 +127,12 @@ def _scan_set(files, baseline, cfg, truth, scenario):
     fs = cfg.frames
     images, labels, masks = [], [], []
     w, h = baseline.size
-    for f, frame in iter_frames(files, long_side=fs.long_side, max_pixels=fs.max_pixels,
-                                time_formats=fs.time_formats, size=baseline.size,
-                                source_size=baseline.source_size):
-        if isinstance(frame, Exception):
-            continue
+    frames = [frame for batch in iter_batches(
+        files, BATCH, long_side=fs.long_side, max_pixels=fs.max_pixels,
+        time_formats=fs.time_formats, size=baseline.size, source_size=baseline.source_size)
+        for frame in batch.frames]
+    for frame in frames:
+        f = frame.file
         kind = truth[(f.rel, f.camera)]
         images.append(frame.image)
         labels.append(int(kind != "none"))

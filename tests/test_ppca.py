@@ -114,3 +114,20 @@ def test_fast_scoring_path_equals_the_reference_formula():
     np.testing.assert_allclose(model.patch_nll(imgs[:4]), ref, rtol=2e-4, atol=2e-2)
     centered = patch_features(imgs[:4], 8, 4, True, center=model.mean_)
     np.testing.assert_allclose(centered, X - model.mean_[None], atol=1e-6)
+
+
+def test_block_scoring_with_a_mask_equals_the_reference_formula():
+    # Scoring from blocks (mean and mask applied once per block, projections summed over a
+    # patch's blocks) must give ppca_nll's likelihood, masked entries marginalised out.
+    rng = np.random.default_rng(6)
+    base = cv2.GaussianBlur(rng.integers(0, 255, size=(32, 48, 3)).astype(np.float32), (0, 0), 1)
+    imgs = np.clip(base + rng.normal(0, 5, (40, 32, 48, 3)), 0, 255).astype(np.uint8)
+    mask = np.zeros((32, 48), bool)
+    mask[3:13, 5:22] = True  # not aligned with the blocks
+    model = PatchPPCA(patch=8, stride=4, latent=4)
+    model.fit(ArraySource(imgs, folds=3), mask)
+    assert model._blocks is not None and model.observed_ is not None
+    X = patch_features(imgs[:5], 8, 4, colour=True)
+    ref = ppca_nll(X.astype(np.float64), model.mean_.astype(np.float64), model.W_,
+                   model.sigma2_, model.observed_)
+    np.testing.assert_allclose(model.patch_nll(imgs[:5]), ref, rtol=2e-4, atol=2e-2)

@@ -48,6 +48,28 @@ class Scores:
 
 
 @dataclass
+class Evaluation:
+    """What :meth:`Baseline.evaluate` found in a batch of frames.
+
+    Attributes
+    ----------
+    images : ndarray, shape (n, H, W, 3), uint8
+        The frames as given.
+    raw : ndarray, shape (n, h, w), float32
+        The model's raw maps of the prepared frames.
+    measures : dict of str to ndarray, shape (n,), or None
+        Health measures (the first frame's "frozen" not yet compared with the stream).
+    grey : ndarray, shape (n, H, W), float32, or None
+        Grey of the frames as captured (for the next batch's "frozen" measure).
+    """
+
+    images: np.ndarray
+    raw: np.ndarray
+    measures: dict | None = None
+    grey: np.ndarray | None = None
+
+
+@dataclass
 class Baseline:
     """One version of a camera's normal appearance.
 
@@ -121,6 +143,22 @@ class Baseline:
             return np.asarray(images)
         return self.conditions.prepare(images).images
 
+    def evaluate(self, images: np.ndarray) -> "Evaluation":
+        """The work of :meth:`score` that needs no other batch: preparation, health
+        measures and the model's raw maps. Safe to run on several batches at once (e.g.
+        in the decoding threads); :meth:`judge` finishes it in stream order.
+
+        Parameters
+        ----------
+        images : ndarray, shape (n, H, W, 3), uint8
+        """
+        images = np.asarray(images)
+        if self.conditions is None:
+            return Evaluation(images, self.model.score_maps(images))
+        rec = self.conditions.prepare(images)
+        m = self.conditions.measures(rec) if self.conditions.health else None
+        return Evaluation(images, self.model.score_maps(rec.images), m, rec.grey)
+
     def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.
 
@@ -132,19 +170,20 @@ class Baseline:
             (scan and watch): the first is compared with the last of that call for a
             frozen feed.
         """
-        images = np.asarray(images)
+        return self.judge(self.evaluate(images), sequence)
+
+    def judge(self, ev: "Evaluation", sequence: bool = False) -> Scores:
+        """Scores from an :meth:`evaluate` result (``sequence`` as in :meth:`score`; batches
+        of one stream must be judged in order)."""
+        images, raw = ev.images, ev.raw
         health: list = [[] for _ in range(len(images))]
-        if self.conditions is None:
-            prepared = images
-        else:
-            rec = self.conditions.prepare(images)
-            prepared = rec.images
-            if self.conditions.health:
-                m = self.conditions.measures(rec, self._previous if sequence else None)
-                health = self.conditions.conditions(m)
-            if sequence and len(images):
-                self._previous = rec.grey[-1]
-        raw = self.model.score_maps(prepared)
+        if ev.measures is not None:
+            m = ev.measures
+            if sequence and self._previous is not None and len(images):
+                m["frozen"][0] = self.conditions.frozen(ev.grey[:1], self._previous[None])[0]
+            health = self.conditions.conditions(m)
+        if sequence and ev.grey is not None and len(images):
+            self._previous = ev.grey[-1]
         healthy = np.array([not h for h in health], bool)
         groups = self.regimes.calibrations if self.regimes is not None else [self.calibration]
         labels = (self.regimes.assign(images) if self.regimes is not None and len(images)

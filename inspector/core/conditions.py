@@ -37,7 +37,7 @@ from inspector.core.image import (
     correlation,
     grey,
     phase_shift,
-    robust_gain_offset,
+    robust_gains,
     shift_images,
 )
 from inspector.core.estimator import Estimator
@@ -71,7 +71,7 @@ class Prepared:
         Measured (dx, dy) of each frame; frames beyond ``max_shift`` are not moved.
     gains : ndarray, shape (n, 2), float
         Robust (gain, offset) of ``reference ~ gain * aligned + offset``
-        (:func:`~inspector.core.image.robust_gain_offset`); (1, 0) without a reference.
+        (:func:`~inspector.core.image.robust_gains`); (1, 0) without a reference.
     """
 
     images: np.ndarray
@@ -82,6 +82,13 @@ class Prepared:
 
     def __len__(self) -> int:
         return len(self.images)
+
+
+def _channel_max(image: np.ndarray) -> np.ndarray:
+    """Largest channel of each pixel of an (H, W, 3) uint8 image, shape (H, W) (OpenCV:
+    numpy's reduction over a last axis of 3 is slow)."""
+    r, g, b = cv2.split(image)
+    return cv2.max(cv2.max(r, g), b)
 
 
 class Conditions(Estimator):
@@ -165,8 +172,7 @@ class Conditions(Estimator):
         self.reference_ = ref.astype(np.float32)
         self.reference_rgb_ = ref_rgb
         rec = self.prepare(images)
-        self.ref_cells_ = np.median(np.stack([cell_contrast(x) for x in grey(rec.images)]),
-                                    axis=0)
+        self.ref_cells_ = np.median(cell_contrast(grey(rec.images)), axis=0)
         self.ref_detail_ = np.median(self._detail(rec), axis=0)
         self.set_limits(self.measures(rec))
         return self
@@ -221,65 +227,83 @@ class Conditions(Estimator):
         images = np.asarray(images)
         n = len(images)
         g_all = grey(images)
-        aligned = g_all.copy()
         shifts = np.zeros((n, 2))
         gains = np.tile([1.0, 0.0], (n, 1))
         if ref is None or (not self.register and self.lighting == "off" and not self.health):
-            return Prepared(images, g_all, aligned, shifts, gains)
+            return Prepared(images, g_all, g_all, shifts, gains)
         keep = None if self.ignore_ is None else ~self.ignore_
-        out = np.empty_like(images)
-        sigma = max(images.shape[1:3]) / 8.0
-        ones = np.ones(images.shape[1:3], np.float32)
-        ignore = (np.zeros(images.shape[1:3], np.float32) if self.ignore_ is None
-                  else self.ignore_.astype(np.float32))
-        for i, img in enumerate(images):
-            g = g_all[i]
-            fill = None
-            if self.register:
+        aligned = g_all
+        moved: dict[int, tuple[float, float]] = {}  # frames moved back, by their shift
+        if self.register:
+            aligned = g_all.copy()
+            for i, g in enumerate(g_all):
                 dx, dy = phase_shift(g, ref, self.ignore_)
                 if np.hypot(dx, dy) > 0.05:
-                    moved_back = shift_images(g, -dx, -dy)
-                    if correlation(moved_back, ref, keep) <= correlation(g, ref, keep):
+                    back = shift_images(g, -dx, -dy)
+                    if correlation(back, ref, keep) <= correlation(g, ref, keep):
                         dx = dy = 0.0  # no better aligned: a large change fooled the peak
                     else:
-                        aligned[i] = moved_back
+                        aligned[i] = back
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
-                    img = shift_images(img, -dx, -dy)
-                    g = moved_back
-                    m = np.float32([[1, 0, -dx], [0, 1, -dy]])
-                    h, w = g.shape
-                    covered = cv2.warpAffine(ones, m, (w, h), flags=cv2.INTER_LINEAR,
-                                             borderMode=cv2.BORDER_CONSTANT, borderValue=0)
-                    ghost = cv2.warpAffine(ignore, m, (w, h), flags=cv2.INTER_LINEAR,
-                                           borderMode=cv2.BORDER_CONSTANT, borderValue=0)
-                    fill = (covered < 0.999) | (ghost > 0.001)
-            gain, offset = gains[i] = robust_gain_offset(g, ref, keep)
+                    moved[i] = (dx, dy)
+        # the grey the gain is fitted on: moved back where the shift is corrected
+        fitted = g_all
+        if moved:
+            fitted = g_all.copy()
+            idx = list(moved)
+            fitted[idx] = aligned[idx]
+        if self.lighting != "off" or self.health:
+            gains = robust_gains(fitted, ref, keep)
+        out = np.empty_like(images)
+        sigma = max(images.shape[1:3]) / 8.0
+        for i, img in enumerate(images):
+            fill = None
+            if i in moved:
+                dx, dy = moved[i]
+                img = shift_images(img, -dx, -dy)
+                fill = self._uncovered(dx, dy, img.shape[:2])
             if self.lighting == "off":
-                f = img.astype(np.float32)
+                o = img.copy()
             else:
-                f = img.astype(np.float32) * gain + offset
+                gain, offset = gains[i]
                 if self.lighting == "local":
-                    f *= brightness_field(g * gain + offset, ref, sigma)[..., None]
-                if ref_rgb is not None and img.max() >= 250:  # any clipped pixel at all
-                    r, ref_glare = self._reference_terms(ref_rgb)
-                    clipped = img.max(axis=2) >= 250
-                    np.maximum(f, r, out=f, where=clipped[..., None])
+                    # (gain * img + offset) * field = (img + offset / gain) * (gain * field)
+                    field = brightness_field(fitted[i] * gain + offset, ref, sigma, gain, 3)
+                    f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
+                    o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
+                else:
+                    o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
+                brightest = _channel_max(img)
+                if ref_rgb is not None and brightest.max() >= 250:  # any clipped pixel at all
+                    ref_glare = self._reference_glare(ref_rgb)
+                    clipped = brightest >= 250
+                    np.maximum(o, ref_rgb, out=o, where=clipped[..., None])
                     glare = (cv2.dilate(clipped.astype(np.uint8), _NEAR) & ref_glare) > 0
-                    f[glare] = r[glare]
+                    o[glare] = ref_rgb[glare]
             if fill is not None and ref_rgb is not None:
-                f[fill] = ref_rgb[fill]
-            out[i] = np.clip(f + 0.5, 0, 255).astype(np.uint8)
+                o[fill] = ref_rgb[fill]
+            out[i] = o
         return Prepared(out, g_all, aligned, shifts, gains)
 
-    def _reference_terms(self, ref_rgb: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The colour reference as float32 and the dilated mask of its clipped whites,
-        computed once per reference rather than once per frame."""
+    def _uncovered(self, dx: float, dy: float, shape: tuple[int, int]) -> np.ndarray:
+        """Pixels of a frame moved back by (dx, dy) that its content no longer covers: the
+        strip its edge leaves, and where burned-in text (which stays put) would land."""
+        h, w = shape
+        m = np.float32([[1, 0, -dx], [0, 1, -dy]])
+        warp = dict(flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
+        fill = cv2.warpAffine(np.ones((h, w), np.float32), m, (w, h), **warp) < 0.999
+        if self.ignore_ is not None:
+            fill |= cv2.warpAffine(self.ignore_.astype(np.float32), m, (w, h), **warp) > 0.001
+        return fill
+
+    def _reference_glare(self, ref_rgb: np.ndarray) -> np.ndarray:
+        """The dilated mask of the colour reference's clipped whites, (H, W) uint8, computed
+        once per reference rather than once per frame."""
         if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
-            clipped = (np.asarray(ref_rgb).max(axis=2) >= 250).astype(np.uint8)
-            self._ref_terms = (ref_rgb, np.asarray(ref_rgb, np.float32),
-                               cv2.dilate(clipped, _NEAR))
-        return self._ref_terms[1], self._ref_terms[2]
+            clipped = (_channel_max(np.asarray(ref_rgb)) >= 250).astype(np.uint8)
+            self._ref_terms = (ref_rgb, cv2.dilate(clipped, _NEAR))
+        return self._ref_terms[1]
 
     def measures(self, prepared: Prepared, previous: np.ndarray | None = None
                  ) -> dict[str, np.ndarray]:
@@ -300,37 +324,53 @@ class Conditions(Estimator):
         """
         self.check_fitted()
         g = prepared.grey
-        keep = np.ones(g.shape[1:], bool) if self.ignore_ is None else ~self.ignore_
         n = len(g)
-        out = {k: np.zeros(n) for k in ("dark", "bright", "covered", "focus", "frozen")}
-        out["shift"] = np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1])
+        kept = None if self.ignore_ is None else np.flatnonzero(~self.ignore_)
+        flat = g.reshape(n, -1)
+        px = flat if kept is None else flat[:, kept]
+        out = {"dark": np.percentile(px[:, ::4], 99, axis=1),  # a quarter of the pixels is plenty
+               "bright": (px >= 250).mean(axis=1),
+               "covered": np.zeros(n), "focus": np.ones(n),
+               "frozen": np.full(n, np.inf),
+               "shift": np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1])}
         textured = self.ref_cells_ > max(2.0, 0.1 * float(np.median(self.ref_cells_))) \
             if self.ref_cells_ is not None else None
-        usable = textured is not None and bool(textured.any())
-        detail = self._detail(prepared) if usable and self.ref_detail_ is not None else None
-        for i in range(n):
-            px = g[i][keep]
-            out["dark"][i] = np.percentile(px[::4], 99)  # a quarter of the pixels is plenty
-            out["bright"][i] = float(np.mean(px >= 250))
-            if usable and self.reference_ is not None:
-                lost = cell_correlation(prepared.aligned[i], self.reference_) < COVER_CORRELATION
-                out["covered"][i] = float(lost[textured].mean())
-            if detail is not None:
-                ratio = detail[i] / np.maximum(self.ref_detail_, 1e-6)
-                out["focus"][i] = float(np.median(ratio[textured]))
-            else:
-                out["focus"][i] = 1.0
-            before = previous if i == 0 else g[i - 1]
-            out["frozen"][i] = (float(np.abs(g[i] - before)[keep].mean())
-                                if before is not None else np.inf)
+        if textured is not None and textured.any() and n:
+            if self.reference_ is not None:
+                lost = cell_correlation(prepared.aligned, self.reference_) < COVER_CORRELATION
+                out["covered"] = lost[:, textured].mean(axis=1)
+            if self.ref_detail_ is not None:
+                ratio = self._detail(prepared) / np.maximum(self.ref_detail_, 1e-6)
+                out["focus"] = np.median(ratio[:, textured], axis=1)
+        before = g[:-1] if previous is None else np.concatenate([previous[None], g[:-1]])
+        if len(before):
+            out["frozen"][n - len(before):] = self.frozen(g[n - len(before):], before)
         return out
+
+    def frozen(self, grey: np.ndarray, before: np.ndarray) -> np.ndarray:
+        """The "frozen feed" measure: mean absolute difference of each frame's grey to the
+        grey of the frame before it, over the pixels not ignored.
+
+        Parameters
+        ----------
+        grey, before : ndarray, shape (n, H, W), float32
+
+        Returns
+        -------
+        ndarray, shape (n,), float
+        """
+        keep = None if self.ignore_ is None else (~self.ignore_).astype(np.uint8)
+        count = grey[0].size if keep is None else max(int(keep.sum()), 1)
+        return np.array([cv2.norm(g, b, cv2.NORM_L1, keep) / count
+                         for g, b in zip(grey, before)])
 
     @staticmethod
     def _detail(prepared: Prepared) -> np.ndarray:
-        """Cell detail (:func:`cell_detail`) of each captured frame at the reference's gain,
+        """Cell detail (:func:`cell_detail`) of each captured frame at the reference's gain
+        (the Laplacian is linear: the detail of ``gain * g`` is ``gain**2`` times g's),
         shape (n, g, g)."""
-        return np.stack([cell_detail(g * gain)
-                         for g, gain in zip(prepared.grey, prepared.gains[:, 0])])
+        gain2 = (prepared.gains[:, 0] ** 2).astype(np.float32)
+        return cell_detail(prepared.grey) * gain2[:, None, None]
 
     def conditions(self, m: dict[str, np.ndarray]) -> list[list[tuple[str, float, float]]]:
         """Health conditions of each frame from its measures.

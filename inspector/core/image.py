@@ -6,6 +6,8 @@ Pure functions over numpy arrays; :mod:`inspector.core.conditions` builds on the
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import cv2
 import numpy as np
 
@@ -24,58 +26,121 @@ def grey(images: np.ndarray) -> np.ndarray:
     -------
     ndarray, shape (n, H, W), float32 in [0, 255]
     """
-    w = np.array([0.299, 0.587, 0.114], np.float32)
-    return np.asarray(images, np.float32) @ w
+    images = np.asarray(images)
+    n, h, w = images.shape[:3]
+    if not images.size:
+        return np.zeros((n, h, w), np.float32)
+    # OpenCV's conversion of float input is the exact weighted sum, unrounded
+    flat = images.reshape(n * h, w, 3).astype(np.float32, copy=False)
+    return cv2.cvtColor(flat, cv2.COLOR_RGB2GRAY).reshape(n, h, w)
 
 
-def robust_gain_offset(frame: np.ndarray, reference: np.ndarray,
-                       keep: np.ndarray | None = None) -> tuple[float, float]:
-    """Fit ``reference ~ gain * frame + offset`` robustly.
+#: Pixels a robust gain fit samples from a frame (on an even grid; see :func:`robust_gains`).
+GAIN_SAMPLE = 3600
+
+
+def gain_step(shape: tuple[int, int]) -> int:
+    """Step of the sampling grid of :func:`robust_gains` for frames of ``shape`` (H, W):
+    every ``step``-th pixel each way, at least 4, more on frames larger than the default
+    working size so that about :data:`GAIN_SAMPLE` pixels are left."""
+    h, w = shape
+    return max(4, int(round(np.sqrt(h * w / GAIN_SAMPLE))))
+
+
+def _masked_quantiles(v: np.ndarray, ok: np.ndarray, qs) -> np.ndarray:
+    """Quantiles (linear interpolation, numpy's default) of each row of ``v`` over its
+    ``ok`` entries; shape (len(qs), n). Rows with no ok entry give NaN."""
+    k = ok.sum(axis=1)
+    srt = np.sort(np.where(ok, v, np.inf), axis=1)
+    out = np.full((len(qs), len(v)), np.nan)
+    rows = np.flatnonzero(k > 0)
+    if not len(rows):
+        return out
+    srt, k = srt[rows], k[rows]
+    for j, q in enumerate(qs):
+        pos = q * (k - 1)
+        lo = np.floor(pos).astype(int)
+        hi = np.minimum(lo + 1, k - 1)
+        a = np.take_along_axis(srt, lo[:, None], 1)[:, 0]
+        b = np.take_along_axis(srt, hi[:, None], 1)[:, 0]
+        out[j, rows] = a + (b - a) * (pos - lo)
+    return out
+
+
+def robust_gains(frames: np.ndarray, reference: np.ndarray,
+                 keep: np.ndarray | None = None) -> np.ndarray:
+    """Fit ``reference ~ gain * frame + offset`` robustly, for each of a stack of frames.
 
     Starts from matching the 10th-90th percentile range and the medians (unmoved by a
     small bright or dark region), then refits by least squares twice on the pixels whose
     residual lies within 3 x 1.4826 x MAD (iteratively trimmed least squares), so a local
-    change (an incident) does not move the fit.
+    change (an incident) does not move the fit. The fit samples the pixels on an even grid
+    (:func:`gain_step`): a two-parameter fit needs far fewer than the thousands it keeps.
 
     Parameters
     ----------
-    frame, reference : ndarray, shape (H, W), float
+    frames : ndarray, shape (n, H, W), float
+    reference : ndarray, shape (H, W), float
     keep : ndarray, shape (H, W), bool, optional
         Pixels that may be used (e.g. outside masks and text overlays).
 
     Returns
     -------
-    gain, offset : float
-        ``gain`` within [0.1, 10]; (1, 0) when the frame has no usable contrast.
+    ndarray, shape (n, 2), float64
+        ``(gain, offset)`` of each frame, ``gain`` within [0.1, 10]; (1, 0) for a frame with
+        no usable contrast.
     """
-    # Every 4th pixel each way: a two-parameter fit needs far fewer than the thousands of
-    # pixels this leaves, and it runs for every frame scored.
-    x = np.asarray(frame, np.float64)[::4, ::4].ravel()
-    y = np.asarray(reference, np.float64)[::4, ::4].ravel()
+    frames = np.asarray(frames)
+    n = len(frames)
+    step = gain_step(frames.shape[1:3])
+    x = np.asarray(frames[:, ::step, ::step], np.float64).reshape(n, -1)
+    y = np.broadcast_to(np.asarray(reference, np.float64)[::step, ::step].ravel(), x.shape)
     ok = (x > 2) & (x < 253)
     if keep is not None:
-        ok &= np.asarray(keep)[::4, ::4].ravel()
-    x, y = x[ok], y[ok]
-    if len(x) < 16 or x.std() < 1.0:
-        return 1.0, 0.0
-    qx, qy = np.percentile(x, [10, 50, 90]), np.percentile(y, [10, 50, 90])
-    gain = (qy[2] - qy[0]) / max(qx[2] - qx[0], 1.0)
+        ok &= np.asarray(keep)[::step, ::step].ravel()[None]
+    out = np.tile([1.0, 0.0], (n, 1))
+    cnt = ok.sum(axis=1)
+    mx = np.where(ok, x, 0.0).sum(axis=1) / np.maximum(cnt, 1)
+    sd = np.sqrt(np.where(ok, (x - mx[:, None]) ** 2, 0.0).sum(axis=1) / np.maximum(cnt, 1))
+    fit = (cnt >= 16) & (sd >= 1.0)
+    if not fit.any():
+        return out
+    x, y, ok = x[fit], y[fit], ok[fit]
+    qx = _masked_quantiles(x, ok, (0.1, 0.5, 0.9))
+    qy = _masked_quantiles(y, ok, (0.1, 0.5, 0.9))
+    gain = (qy[2] - qy[0]) / np.maximum(qx[2] - qx[0], 1.0)
     offset = qy[1] - gain * qx[1]
+    active = np.ones(len(x), bool)
     for _ in range(2):
-        r = y - (gain * x + offset)
-        mad = 1.4826 * np.median(np.abs(r - np.median(r)))
-        use = np.abs(r - np.median(r)) <= 3.0 * max(mad, 0.5)
-        xs, ys = x[use], y[use]
-        if len(xs) < 16:
+        r = y - (gain[:, None] * x + offset[:, None])
+        med = _masked_quantiles(r, ok, (0.5,))[0]
+        dev = np.abs(r - med[:, None])
+        mad = 1.4826 * _masked_quantiles(dev, ok, (0.5,))[0]
+        use = ok & (dev <= 3.0 * np.maximum(mad, 0.5)[:, None])
+        m = use.sum(axis=1).astype(np.float64)
+        active &= m >= 16
+        m = np.maximum(m, 1.0)
+        mxu = np.where(use, x, 0.0).sum(axis=1) / m
+        myu = np.where(use, y, 0.0).sum(axis=1) / m
+        dx = np.where(use, x - mxu[:, None], 0.0)
+        vx = (dx * dx).sum(axis=1) / m
+        active &= vx >= 1.0
+        cov = (dx * np.where(use, y - myu[:, None], 0.0)).sum(axis=1) / m
+        new_gain = cov / np.maximum(vx, 1e-12)  # least squares line
+        gain = np.where(active, new_gain, gain)
+        offset = np.where(active, myu - new_gain * mxu, offset)
+        if not active.any():
             break
-        mx, my = xs.mean(), ys.mean()
-        vx = float(((xs - mx) ** 2).mean())
-        if vx < 1.0:
-            break
-        gain = float(((xs - mx) * (ys - my)).mean()) / vx  # least squares line
-        offset = my - gain * mx
-    gain = float(np.clip(gain, 0.1, 10.0))
-    return gain, float(offset)
+    out[fit, 0] = np.clip(gain, 0.1, 10.0)
+    out[fit, 1] = offset
+    return out
+
+
+def robust_gain_offset(frame: np.ndarray, reference: np.ndarray,
+                       keep: np.ndarray | None = None) -> tuple[float, float]:
+    """:func:`robust_gains` of one frame (H, W); returns ``(gain, offset)``."""
+    gain, offset = robust_gains(np.asarray(frame)[None], reference, keep)[0]
+    return float(gain), float(offset)
 
 
 def phase_shift(frame: np.ndarray, reference: np.ndarray,
@@ -95,14 +160,21 @@ def phase_shift(frame: np.ndarray, reference: np.ndarray,
         The content of ``frame`` sits ``(dx, dy)`` pixels right and down of where it sits in
         ``reference``.
     """
-    a = np.asarray(reference, np.float32).copy()
-    b = np.asarray(frame, np.float32).copy()
+    a = np.asarray(reference, np.float32)
+    b = np.asarray(frame, np.float32)
     if ignore is not None and ignore.any():
-        a[ignore] = a[~ignore].mean()
-        b[ignore] = b[~ignore].mean()
-    win = cv2.createHanningWindow((a.shape[1], a.shape[0]), cv2.CV_32F)
-    (dx, dy), _ = cv2.phaseCorrelate(a, b, win)
+        keep = (~ignore).astype(np.uint8)
+        a, b = a.copy(), b.copy()
+        np.copyto(a, np.float32(cv2.mean(a, keep)[0]), where=ignore)
+        np.copyto(b, np.float32(cv2.mean(b, keep)[0]), where=ignore)
+    (dx, dy), _ = cv2.phaseCorrelate(a, b, _hanning(a.shape))
     return float(dx), float(dy)
+
+
+@lru_cache(maxsize=8)
+def _hanning(shape: tuple[int, int]) -> np.ndarray:
+    """Hanning window of an (H, W) image, float32 (made once per size)."""
+    return cv2.createHanningWindow((shape[1], shape[0]), cv2.CV_32F)
 
 
 def correlation(a: np.ndarray, b: np.ndarray, keep: np.ndarray | None = None) -> float:
@@ -133,13 +205,24 @@ def shift_images(images: np.ndarray, dx: float, dy: float) -> np.ndarray:
                           borderMode=cv2.BORDER_REFLECT_101)
 
 
-def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float) -> np.ndarray:
+def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
+                     scale: float = 1.0, channels: int = 1) -> np.ndarray:
     """Smooth multiplicative field that brings ``frame``'s local brightness to the
     reference's: ``blur(reference) / blur(frame)``, clipped to [0.25, 4].
 
+    Parameters
+    ----------
+    frame, reference : ndarray, shape (H, W), float
+    sigma : float
+        Blur, in pixels.
+    scale : float
+        Factor applied to the field (at reduced size, before it is enlarged).
+    channels : int
+        Channels of the result (the field repeated, to multiply a colour image).
+
     Returns
     -------
-    ndarray, shape (H, W), float32
+    ndarray, shape (H, W) or (H, W, channels), float32
     """
     frame = np.asarray(frame, np.float32)
     h, w = frame.shape
@@ -149,7 +232,9 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float) -> 
                          sigma / k)
     r = cv2.GaussianBlur(cv2.resize(np.asarray(reference, np.float32), small,
                                     interpolation=cv2.INTER_AREA), (0, 0), sigma / k)
-    field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32)
+    field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32) * np.float32(scale)
+    if channels > 1:
+        field = cv2.merge([field] * channels)
     return cv2.resize(field, (w, h), interpolation=cv2.INTER_LINEAR)
 
 
@@ -162,12 +247,26 @@ def sharpness(g: np.ndarray) -> float:
     return float(lap.var() / max(float(g.var()), 1e-3))
 
 
+@lru_cache(maxsize=16)
+def _cell_membership(n: int, grid: int) -> np.ndarray:
+    """(grid, n) float64 0/1 matrix: which of ``grid`` near-equal parts each of ``n``
+    positions falls in (part k spans ``linspace(0, n, grid + 1)`` truncated)."""
+    edges = np.linspace(0, n, grid + 1).astype(int)
+    part = np.searchsorted(edges, np.arange(n), side="right") - 1
+    return (part[None, :] == np.arange(grid)[:, None]).astype(np.float64)
+
+
 def _cell_sums(x: np.ndarray, grid: int) -> np.ndarray:
-    """Sums of ``x`` (H, W) over the cells of a ``grid`` x ``grid`` split, shape (grid, grid)."""
-    h, w = x.shape
-    ys = np.linspace(0, h, grid + 1).astype(int)[:-1]
-    xs = np.linspace(0, w, grid + 1).astype(int)[:-1]
-    return np.add.reduceat(np.add.reduceat(x, ys, axis=0), xs, axis=1)
+    """Sums of ``x`` (..., H, W) over the cells of a ``grid`` x ``grid`` split of its last
+    two axes, shape (..., grid, grid), float64: two matrix products with 0/1 membership
+    matrices, the first (sums along rows of one cell, a few dozen terms) in ``x``'s own
+    precision when it is float32, the second in float64."""
+    h, w = x.shape[-2:]
+    rows, cols = _cell_membership(h, grid), _cell_membership(w, grid)
+    x = np.asarray(x)
+    if x.dtype != np.float32:
+        x = x.astype(np.float64, copy=False)
+    return rows @ (x @ cols.T.astype(x.dtype)).astype(np.float64)
 
 
 def _cell_counts(shape: tuple[int, int], grid: int) -> np.ndarray:
@@ -178,8 +277,8 @@ def _cell_counts(shape: tuple[int, int], grid: int) -> np.ndarray:
 
 
 def _cell_var(x: np.ndarray, grid: int) -> np.ndarray:
-    x = np.asarray(x, np.float64)
-    n = _cell_counts(x.shape, grid)
+    x = np.asarray(x, np.float32)
+    n = _cell_counts(x.shape[-2:], grid)
     m = _cell_sums(x, grid) / n
     return np.maximum(_cell_sums(x * x, grid) / n - m * m, 0.0)
 
@@ -188,12 +287,17 @@ def cell_detail(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     """Variance of the Laplacian in each cell of a ``grid`` x ``grid`` split (the detail a
     sharp lens resolves there).
 
+    Parameters
+    ----------
+    g : ndarray, shape (H, W) or (n, H, W), float
+
     Returns
     -------
-    ndarray, shape (grid, grid), float32
+    ndarray, shape (grid, grid) or (n, grid, grid), float32
     """
-    lap = cv2.Laplacian(np.asarray(g, np.float32), cv2.CV_32F, ksize=3)
-    return _cell_var(lap, grid).astype(np.float32)
+    g = np.asarray(g, np.float32)
+    lap = np.stack([cv2.Laplacian(x, cv2.CV_32F, ksize=3) for x in g.reshape(-1, *g.shape[-2:])])
+    return _cell_var(lap.reshape(g.shape), grid).astype(np.float32)
 
 
 def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
@@ -212,13 +316,18 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> 
     Blind to gain and offset cell by cell, so night and day frames of the same view both
     correlate with the reference, while a cell behind a hand, a bag or tape does not.
 
+    Parameters
+    ----------
+    g : ndarray, shape (H, W) or (n, H, W), float
+    ref : ndarray, shape (H, W), float
+
     Returns
     -------
-    ndarray, shape (grid, grid), float32 in [-1, 1]
+    ndarray, shape (grid, grid) or (n, grid, grid), float32 in [-1, 1]
     """
-    a = np.asarray(g, np.float64)
-    b = np.asarray(ref, np.float64)
-    n = _cell_counts(a.shape, grid)
+    a = np.asarray(g, np.float32)
+    b = np.asarray(ref, np.float32)
+    n = _cell_counts(a.shape[-2:], grid)
     ma, mb = _cell_sums(a, grid) / n, _cell_sums(b, grid) / n
     cov = _cell_sums(a * b, grid) / n - ma * mb
     va = np.maximum(_cell_sums(a * a, grid) / n - ma * ma, 0.0)

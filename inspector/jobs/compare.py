@@ -14,8 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from inspector.config import Config
-from inspector.errors import FrameError
-from inspector.storage.frames import FrameFile, iter_frames
+from inspector.storage.frames import FrameFile, iter_batches
 from inspector.storage.ledger import read_scored
 from inspector.storage.store import Store
 
@@ -111,24 +110,11 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
     files = [FrameFile(Path(p), Path(p).name, camera) for p in paths]
     for b in baselines:
         got: dict[str, float] = {}
-        batch_idx, batch = [], []
-
-        def flush() -> None:
-            if batch:
-                for p, s in zip(batch_idx, b.score(np.stack(batch)).scores):
-                    got[p] = float(s)
-                batch_idx.clear()
-                batch.clear()
-
-        for f, frame in iter_frames(files, **read_args(b, config)):
-            if isinstance(frame, FrameError):
-                unreadable.add(str(f.path))
-                continue
-            batch_idx.append(str(f.path))
-            batch.append(frame.image)
-            if len(batch) == 32:
-                flush()
-        flush()
+        for batch in iter_batches(files, 32, work=lambda images, b=b: b.score(images).scores,
+                                  **read_args(b, config)):
+            unreadable.update(str(f.path) for f, _ in batch.errors)
+            if batch.frames:
+                got.update(zip((str(f.file.path) for f in batch.frames), map(float, batch.result)))
         scores.append(got)
     common = [str(f.path) for f in files if str(f.path) not in unreadable
               and all(str(f.path) in s for s in scores)]

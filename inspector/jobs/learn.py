@@ -30,14 +30,14 @@ from inspector.core.image import darker_exposure, grey
 from inspector.core.models import model_class
 from inspector.core.regimes import Regimes, appearance, assign, find_regimes
 from inspector.core.textmask import boxes_mask, find_text_boxes
-from inspector.errors import FrameError, UsageError
+from inspector.errors import UsageError
 from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import (
     FrameFile,
     Skip,
     capture_time,
     image_size,
-    iter_frames,
+    iter_batches,
     working_size,
 )
 from inspector.storage.store import Store, VersionFacts, describe
@@ -102,24 +102,17 @@ class FileSource:
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         indices = [int(i) for i in indices]
         pos = {id(self.files[i]): i for i in indices}
-        idx: list[int] = []
-        imgs: list[np.ndarray] = []
         with progress_bar(len(indices), f"{self.camera}: reading") as bar:
-            for f, frame in iter_frames((self.files[i] for i in indices), size=self.size,
-                                        source_size=self.source_size, **self.read_args):
-                bar.update()
-                i = pos[id(f)]
-                if isinstance(frame, FrameError):
-                    self.skipped[i] = str(frame)
-                    continue
-                self.notes.update(frame.notes)
-                idx.append(i)
-                imgs.append(frame.image)
-                if len(idx) == batch_size:
-                    yield np.array(idx), np.stack(imgs)
-                    idx, imgs = [], []
-            if idx:
-                yield np.array(idx), np.stack(imgs)
+            for batch in iter_batches((self.files[i] for i in indices), batch_size,
+                                      size=self.size, source_size=self.source_size,
+                                      **self.read_args):
+                bar.update(len(batch.frames) + len(batch.errors))
+                for f, err in batch.errors:
+                    self.skipped[pos[id(f)]] = str(err)
+                for frame in batch.frames:
+                    self.notes.update(frame.notes)
+                if batch.frames:
+                    yield np.array([pos[id(f.file)] for f in batch.frames]), batch.images
 
 
 class PreparedSource:

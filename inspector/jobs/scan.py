@@ -13,10 +13,9 @@ from pathlib import Path
 import numpy as np
 
 from inspector.config import Config
-from inspector.core.baseline import Baseline
-from inspector.errors import FrameError
+from inspector.core.baseline import Baseline, Evaluation
 from inspector.jobs.progress import progress_bar
-from inspector.storage.frames import Frame, FrameFile, discover, iter_frames
+from inspector.storage.frames import Frame, FrameFile, discover, iter_batches
 from inspector.storage.results import FrameResult, ResultWriter, Skipped
 from inspector.storage.store import DamagedBaseline, Store
 
@@ -68,12 +67,17 @@ def read_args(baseline: Baseline, config: Config) -> dict:
             "source_size": baseline.source_size}
 
 
-def score_frames(baseline: Baseline, frames: Sequence[Frame]) -> list[FrameResult]:
+def score_frames(baseline: Baseline, frames: Sequence[Frame],
+                 evaluation: Evaluation | None = None) -> list[FrameResult]:
     """Score decoded frames of one camera, consecutive in its stream; results in the same
-    order, each with its health conditions."""
+    order, each with its health conditions. ``evaluation`` is the frames'
+    :meth:`~inspector.core.baseline.Baseline.evaluate` when already done (in the decoding
+    threads)."""
     if not frames:
         return []
-    s = baseline.score(np.stack([f.image for f in frames]), sequence=True)
+    if evaluation is None:
+        evaluation = baseline.evaluate(np.stack([f.image for f in frames]))
+    s = baseline.judge(evaluation, sequence=True)
     return [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
                         score=float(s.scores[i]),
                         threshold=float(s.thresholds[i]),
@@ -137,19 +141,18 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                                       for f in cam_files])
                 bar.update(len(cam_files))
                 continue
-            batch: list[Frame] = []
-            for f, frame in iter_frames(cam_files, workers=workers,
-                                        **read_args(baseline, config)):
-                bar.update()
-                if isinstance(frame, FrameError):
-                    writer.write(skipped=[Skipped(f.rel, camera, str(frame))])
-                    continue
-                summary.notes.update(f"{camera}: {n}" for n in frame.notes)
-                batch.append(frame)
-                if len(batch) == BATCH:
-                    writer.write(score_frames(baseline, batch))
-                    batch = []
-            writer.write(score_frames(baseline, batch))
+            # Decoding, preparation, health measures and the model run in the worker
+            # threads, batch by batch; the stream-ordered rest (frozen feed, thresholds)
+            # and the writing here, in order.
+            for batch in iter_batches(cam_files, BATCH, workers=workers,
+                                      work=baseline.evaluate, **read_args(baseline, config)):
+                if batch.errors:
+                    writer.write(skipped=[Skipped(f.rel, camera, str(err))
+                                          for f, err in batch.errors])
+                for frame in batch.frames:
+                    summary.notes.update(f"{camera}: {n}" for n in frame.notes)
+                writer.write(score_frames(baseline, batch.frames, batch.result))
+                bar.update(len(batch.frames) + len(batch.errors))
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]
     summary.skipped = writer.counts["skipped"] + writer.counts["waiting"]

@@ -11,11 +11,13 @@ from __future__ import annotations
 import io
 import os
 import re
-from collections.abc import Iterable, Iterator
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from datetime import datetime
 from functools import lru_cache
+from itertools import islice
 from pathlib import Path
 
 import cv2
@@ -423,29 +425,76 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
     return Frame(file=file, image=image, time=when, source_size=src, notes=notes)
 
 
-def iter_frames(files: Iterable[FrameFile], workers: int = 2, lookahead: int = 16,
-                **read_args) -> Iterator[tuple[FrameFile, Frame | FrameError]]:
-    """Decode frames in a thread pool (OpenCV releases the GIL), yielding in input order.
+@dataclass
+class FrameBatch:
+    """Consecutive files decoded together by :func:`iter_batches`.
 
-    Yields ``(file, frame)`` or ``(file, FrameError)``; keyword arguments go to
-    :func:`read_frame`. At most ``lookahead`` frames are decoded ahead of the consumer.
+    Attributes
+    ----------
+    frames : list of Frame
+        The files that decoded, in input order.
+    errors : list of (FrameFile, FrameError)
+        The files that did not, with the reason.
+    result : object
+        What the batch's ``work`` returned for the stacked images of ``frames`` (None
+        without work or without frames).
     """
-    def one(f: FrameFile) -> Frame | FrameError:
-        try:
-            return read_frame(f, **read_args)
-        except FrameError as exc:
-            return exc
+
+    frames: list[Frame]
+    errors: list[tuple[FrameFile, FrameError]]
+    result: object = None
+
+    @property
+    def images(self) -> np.ndarray:
+        """The decoded frames stacked, shape (n, H, W, 3), uint8."""
+        return np.stack([f.image for f in self.frames])
+
+
+def iter_batches(files: Iterable[FrameFile], batch_size: int, workers: int = 2,
+                 work: Callable[[np.ndarray], object] | None = None,
+                 **read_args) -> Iterator[FrameBatch]:
+    """Decode frames in batches, yielding the batches in input order.
+
+    Each batch of up to ``batch_size`` consecutive files is decoded by one worker thread
+    (OpenCV, numpy and torch release the GIL), which then runs ``work`` on the batch's
+    stacked images (e.g. preparing and scoring them), so the per-frame work of one batch
+    overlaps the decoding of the next. At most ``2 * workers`` batches are in flight.
+    Keyword arguments go to :func:`read_frame`; every batch has the same working size
+    when ``size`` is given.
+
+    Parameters
+    ----------
+    files : iterable of FrameFile
+    batch_size : int
+    workers : int
+        Threads decoding (and working) at once.
+    work : callable, optional
+        ``work(images)`` with images of shape (n, H, W, 3), uint8; must not depend on the
+        other batches (they run concurrently).
+    """
+    def one(chunk: list[FrameFile]) -> FrameBatch:
+        done = FrameBatch([], [])
+        for f in chunk:
+            try:
+                done.frames.append(read_frame(f, **read_args))
+            except FrameError as exc:
+                done.errors.append((f, exc))
+        if work is not None and done.frames:
+            done.result = work(done.images)
+        return done
 
     it = iter(files)
+
+    def chunks() -> Iterator[list[FrameFile]]:
+        while chunk := list(islice(it, max(1, batch_size))):
+            yield chunk
+
+    source = chunks()
     with ThreadPoolExecutor(max_workers=max(1, workers)) as pool:
-        pending = []
-        for f in it:
-            pending.append((f, pool.submit(one, f)))
-            if len(pending) >= lookahead:
-                break
+        pending = deque(pool.submit(one, c) for c in islice(source, 2 * max(1, workers)))
         while pending:
-            f, fut = pending.pop(0)
-            nxt = next(it, None)
+            batch = pending.popleft().result()
+            nxt = next(source, None)
             if nxt is not None:
-                pending.append((nxt, pool.submit(one, nxt)))
-            yield f, fut.result()
+                pending.append(pool.submit(one, nxt))
+            yield batch

@@ -35,6 +35,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from inspector.core.features import (
+    _planes,
     feature_size,
     fold_to_cells,
     grid_shape,
@@ -144,7 +145,7 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
     """
     L, d, q = W.shape
     d_obs = observed.sum(axis=1).astype(np.float64) if observed is not None else np.full(L, float(d))
-    M = np.einsum("ldq,ldr->lqr", W, W) + sigma2[:, None, None] * np.eye(q)
+    M = np.matmul(W.transpose(0, 2, 1), W) + sigma2[:, None, None] * np.eye(q)
     Minv = np.linalg.inv(M)
     chol = np.linalg.cholesky((Minv + Minv.transpose(0, 2, 1)) / 2)
     B = np.matmul(W, chol)
@@ -441,11 +442,14 @@ class PatchPPCA(DensityModel):
         self._logdet, self._d_obs = logdet, d_obs
         r = self.patch // self.stride
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
+        self._blocks = _BlockLayout.build(self)
 
     # scoring
 
     def patch_nll(self, images: np.ndarray) -> np.ndarray:
         """Negative log-likelihood of every patch, shape (n, L), float64."""
+        if self._blocks is not None:
+            return self._blocks.nll(self, images)
         # Residuals in grey levels, the mean subtracted while gathering (the scale is applied
         # to the per-location sums instead of the whole array).
         R = patch_features(images, self.patch, self.stride, self.colour,
@@ -559,6 +563,99 @@ def _collecting(job):
     part = source.spawn() if hasattr(source, "spawn") else source
     result = fn(model, part, indices)
     return result, (part.collected() if hasattr(part, "collected") else None)
+
+
+class _BlockLayout:
+    """Scoring from blocks: the frame cut into ``stride x stride`` blocks (and the matching
+    half-size chroma blocks), each patch being ``r x r`` neighbouring blocks (r = patch /
+    stride).
+
+    The mean and the observed entries of a pixel are the same in every patch that covers it
+    (the per-location mean is the mean of the same pixels), so the mean is subtracted and
+    the mask applied once per block, not once per overlapping patch, and no patch is ever
+    gathered: with ``B`` split by block, a patch's projection is the sum over its ``r x r``
+    blocks of location-batched float32 matrix products ``block @ B_k``, and its squared
+    norm the sum of its blocks' squared norms.
+    """
+
+    def __init__(self, B, mean, observed, grid, r, stride, colour):
+        self.B, self.mean, self.observed = B, mean, observed
+        self.grid, self.r, self.stride, self.colour = grid, r, stride, colour
+
+    @classmethod
+    def build(cls, model: "PatchPPCA") -> "_BlockLayout | None":
+        """The layout of a fitted model, or None when its patches do not split into blocks
+        (or, defensively, when a pixel's mean differs between the patches covering it)."""
+        p, s, colour = model.patch, model.stride, model.colour
+        if p % s or (colour and s % 2):
+            return None
+        r, hs, half = p // s, s // 2, p // 2
+        order = []  # feature index of each block entry, block by block
+        for a in range(r):
+            for b in range(r):
+                order += [(a * s + u) * p + b * s + v for u in range(s) for v in range(s)]
+                if colour:
+                    for c in range(2):
+                        order += [p * p + c * half * half + (a * hs + u) * half + b * hs + v
+                                  for u in range(hs) for v in range(hs)]
+        perm = np.array(order)
+        gh, gw = model.grid_
+        e = len(perm) // (r * r)
+        per_loc = model._mean_grey[:, perm].reshape(gh, gw, r, r, e)
+        seen = (np.ones(per_loc.shape, bool) if model.observed_ is None else
+                model.observed_[:, perm].reshape(gh, gw, r, r, e))
+        mean = np.zeros((gh + r - 1, gw + r - 1, e), np.float32)
+        obs = np.ones(mean.shape, bool)
+        for k in range(r * r):
+            a, b = divmod(k, r)
+            mean[a:a + gh, b:b + gw] = per_loc[:, :, a, b]
+            obs[a:a + gh, b:b + gw] = seen[:, :, a, b]
+        for k in range(r * r):
+            a, b = divmod(k, r)
+            if (np.abs(mean[a:a + gh, b:b + gw] - per_loc[:, :, a, b]).max() > 1e-3
+                    or (obs[a:a + gh, b:b + gw] != seen[:, :, a, b]).any()):
+                return None
+        q = model._B.shape[2]
+        B = [np.ascontiguousarray(model._B[:, perm[k * e:(k + 1) * e], :]).reshape(gh, gw, e, q)
+             for k in range(r * r)]
+        return cls(B, mean, None if obs.all() else obs.astype(np.float32), (gh, gw), r, s,
+                   colour)
+
+    def blocks(self, images: np.ndarray) -> np.ndarray:
+        """Observed residuals of every block in grey levels, shape (bh, bw, n, e) float32."""
+        luma, chroma = _planes(images, self.colour)
+        n = len(luma)
+        s = self.stride
+        bh, bw, e = self.mean.shape
+        out = np.empty((bh, bw, n, e), np.float32)
+        dst = np.reshape(out[..., :s * s], (bh, bw, n, s, s), copy=False)
+        np.copyto(dst, luma[:, :bh * s, :bw * s].reshape(n, bh, s, bw, s).transpose(1, 3, 0, 2, 4))
+        if self.colour:
+            hs = s // 2
+            dst = np.reshape(out[..., s * s:], (bh, bw, n, 2, hs, hs), copy=False)
+            src = chroma[:, :bh * hs, :bw * hs].reshape(n, bh, hs, bw, hs, 2)
+            np.copyto(dst, src.transpose(1, 3, 0, 5, 2, 4))
+        out -= self.mean[:, :, None, :]
+        if self.observed is not None:
+            out *= self.observed[:, :, None, :]
+        return out
+
+    def nll(self, model: "PatchPPCA", images: np.ndarray) -> np.ndarray:
+        """:meth:`PatchPPCA.patch_nll` from blocks, shape (n, L), float64."""
+        blocks = self.blocks(images)
+        norms = np.einsum("ijne,ijne->ijn", blocks, blocks)
+        (gh, gw), r = self.grid, self.r
+        sq = proj = None
+        for k in range(r * r):
+            a, b = divmod(k, r)
+            part = blocks[a:a + gh, b:b + gw]
+            p = np.matmul(part, self.B[k])  # (gh, gw, n, q)
+            sq = norms[a:a + gh, b:b + gw].copy() if sq is None else sq + norms[a:a + gh, b:b + gw]
+            proj = p if proj is None else proj + p
+        lat = np.einsum("ijnq,ijnq->ijn", proj, proj)
+        quad = (sq - lat).reshape(gh * gw, -1) * (1 / 255) ** 2 / model.sigma2_[:, None]
+        nll = 0.5 * (model._d_obs[:, None] * LOG_2PI + model._logdet[:, None] + quad)
+        return nll.T
 
 
 def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: int,
