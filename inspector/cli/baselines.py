@@ -35,8 +35,7 @@ def cmd_baselines(args: argparse.Namespace) -> int:
         if args.compare < 0:
             raise UsageError("--compare must be 0 or more")
         old = store.active_version(camera)
-        if args.activate not in store.versions(camera):
-            store.activate(camera, args.activate)  # raises the one-line error
+        store.check_activatable(camera, args.activate)  # a one-line error if not
         if args.compare:
             say(compare_versions(store, config, camera, old, args.activate, args.compare).text())
         store.activate(camera, args.activate)

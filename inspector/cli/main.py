@@ -13,11 +13,11 @@ import sys
 import traceback
 
 from inspector import __version__
-from inspector.cli import baselines, demo, labels, learn, review, scan, status, watch
+from inspector.cli import baselines, demo, labels, learn, review, scan, status, store, watch
 from inspector.errors import UsageError
 
 #: The commands, in the order a user meets them (and ``--help`` lists them).
-COMMANDS = (learn, scan, watch, review, labels, baselines, status, demo)
+COMMANDS = (learn, scan, watch, review, labels, baselines, status, store, demo)
 
 
 class _Parser(argparse.ArgumentParser):

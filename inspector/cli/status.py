@@ -28,4 +28,8 @@ def cmd_status(args: argparse.Namespace) -> int:
         return 0
     for line in format_table(facts):
         say(line)
+    for cam, f in facts.items():
+        if f.get("damage"):
+            say(f"{cam}: baseline {f['baseline']} is damaged ({f['damage']}): "
+                f"{store.advice(cam, f['baseline'])}")
     return 0

@@ -16,7 +16,7 @@ import numpy as np
 from inspector.config import Config
 from inspector.storage.frames import FrameFile, iter_batches
 from inspector.storage.ledger import read_scored
-from inspector.storage.store import Store
+from inspector.storage.store import DamagedBaseline, Store
 
 #: Recent scored frames a comparison runs on, unless told otherwise.
 COMPARE_FRAMES = 200
@@ -106,7 +106,10 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
                           reason="nothing to compare against: no scored frames of this camera "
                                  "in the store's frame ledger")
     scores, unreadable = [], set()
-    baselines = [store.load(camera, old), store.load(camera, new)]
+    try:
+        baselines = [store.load(camera, old), store.load(camera, new)]
+    except DamagedBaseline as exc:
+        return Comparison(camera, old, new, None, reason=f"nothing compared: {exc}")
     files = [FrameFile(Path(p), Path(p).name, camera) for p in paths]
     for b in baselines:
         got: dict[str, float] = {}

@@ -11,6 +11,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from inspector.storage.database import integrity_problems
 from inspector.storage.ledger import Ledger
 from inspector.storage.store import Store
 
@@ -42,8 +43,9 @@ def latest_health(path: Path) -> dict[str, tuple[str, str]]:
 
 
 def camera_facts(store: Store, health_csv: Path | None = None) -> dict[str, dict[str, Any]]:
-    """Per camera: active baseline version, ledger counts, last frame time and current lag,
-    and the latest camera health condition found in ``health_csv``.
+    """Per camera: active baseline version (with ``damage``, the problem when its files fail
+    their checksums), ledger counts, last frame time and current lag, and the latest camera
+    health condition found in ``health_csv``.
 
     ``lag`` is None when no watcher is running (no heartbeat in the last 15 s), else the
     seconds the oldest complete frame of that camera has waited to be scored (0 when none)
@@ -58,7 +60,12 @@ def camera_facts(store: Store, health_csv: Path | None = None) -> dict[str, dict
             counts = ledger.camera_counts()
             watchers = ledger.watchers()
     for cam in sorted(set(store.cameras()) | {c for c in counts if c}):
-        f = {"camera": cam, "baseline": store.active_version(cam) or "none",
+        active = store.active_version(cam)
+        damage = ""
+        if active is not None and active in store.versions(cam):
+            check = store.check(cam, active)
+            damage = check.problem if check.damaged else ""
+        f = {"camera": cam, "baseline": active or "none", "damage": damage,
              "scored": 0, "flagged": 0, "skipped": 0, "waiting": 0, "last": "",
              "lag": None, "queued": 0, "health": health.get(cam)}
         f.update(counts.get(cam, {}))
@@ -89,7 +96,8 @@ def _health(f: dict[str, Any]) -> str:
 #: (title, cell) per column of the status table.
 COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
     ("camera", lambda f: f["camera"]),
-    ("baseline", lambda f: f["baseline"]),
+    ("baseline", lambda f: f["baseline"] + (f" DAMAGED ({f['damage']})" if f.get("damage")
+                                            else "")),
     ("scored", lambda f: str(f["scored"])),
     ("flagged", lambda f: str(f["flagged"])),
     ("skipped", lambda f: str(f["skipped"])),
@@ -100,9 +108,42 @@ COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
 ]
 
 
-def format_table(facts: dict[str, dict[str, Any]]) -> list[str]:
-    """The status table as text lines, columns aligned."""
-    table = [[t for t, _ in COLUMNS]] + [[cell(f) for _, cell in COLUMNS]
-                                         for f in facts.values()]
-    widths = [max(len(row[i]) for row in table) for i in range(len(COLUMNS))]
+def format_table(facts: dict[str, dict[str, Any]] | list[dict[str, Any]],
+                 columns: list[tuple[str, Callable[[dict[str, Any]], str]]] = COLUMNS
+                 ) -> list[str]:
+    """A table (the status table by default) as text lines, columns aligned."""
+    rows = facts.values() if isinstance(facts, dict) else facts
+    table = [[t for t, _ in columns]] + [[cell(f) for _, cell in columns] for f in rows]
+    widths = [max(len(row[i]) for row in table) for i in range(len(columns))]
     return ["  ".join(v.ljust(w) for v, w in zip(row, widths)).rstrip() for row in table]
+
+
+def check_store(store: Store) -> list[dict[str, Any]]:
+    """Every version of every camera verified (:meth:`Store.verify`) and every SQLite file
+    of the store checked (``PRAGMA integrity_check``), one row each: ``what`` (camera or
+    file), ``version`` ('' for a file), ``active``, ``state`` (ok, unchecked, damaged) and
+    ``problem``."""
+    rows: list[dict[str, Any]] = []
+    for cam in store.cameras():
+        active = store.active_version(cam)
+        for v in store.versions(cam):
+            c = store.verify(cam, v)
+            rows.append({"what": cam, "version": v, "active": v == active, "state": c.state,
+                         "problem": c.problem})
+    for db in sorted(store.root.glob("*.sqlite")) if store.root.is_dir() else []:
+        problems = integrity_problems(db)
+        rows.append({"what": db.name, "version": "", "active": False,
+                     "state": "damaged" if problems else "ok",
+                     "problem": "; ".join(problems[:3])})
+    return rows
+
+
+#: (title, cell) per column of the ``store check`` table.
+CHECK_COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
+    ("camera / file", lambda r: r["what"]),
+    ("version", lambda r: r["version"] or "-"),
+    ("active", lambda r: "yes" if r["active"] else ""),
+    ("state", lambda r: {"damaged": "DAMAGED", "unchecked": "unchecked (saved before "
+                         "checksums were recorded)"}.get(r["state"], r["state"])),
+    ("problem", lambda r: r["problem"]),
+]

@@ -44,6 +44,8 @@ from inspector.core.models import model_class
 from inspector.core.regimes import Regimes
 from inspector.errors import UsageError
 
+#: Files of a version written by the store itself; the others are the model's.
+_STORE_FILES = {"baseline.json", "calibration.npz", "conditions.npz", "regimes.npz"}
 _VERSION_RE = re.compile(r"^v(\d+)$")
 _NAME_RE = re.compile(r"^[^/\\\x00]+$")
 
@@ -291,9 +293,8 @@ class Store:
                     f"{good[-1]}') or learn again")
         return f"learn camera {camera} again ('inspector learn')"
 
-    def activate(self, camera: str, version: str) -> None:
-        """Make ``version`` the camera's active baseline (also for rollback); a damaged
-        version is refused."""
+    def check_activatable(self, camera: str, version: str) -> None:
+        """Raise a one-line UsageError unless ``version`` exists and is not damaged."""
         if version not in self.versions(camera):
             known = ", ".join(self.versions(camera)) or "none"
             raise UsageError(f"camera {camera!r} has no baseline version {version!r} "
@@ -302,7 +303,26 @@ class Store:
         if check.damaged:
             raise UsageError(f"{DamagedBaseline(check)}; not activated: "
                              f"{self.advice(camera, version)}")
+
+    def activate(self, camera: str, version: str) -> None:
+        """Make ``version`` the camera's active baseline (also for rollback); a damaged
+        version is refused."""
+        self.check_activatable(camera, version)
         write_json(self.root / camera / "active.json", {"version": version})
+
+    def verify(self, camera: str, version: str) -> VersionCheck:
+        """:meth:`check`, and for a version saved before checksums were recorded, a full
+        load: a file that cannot be read makes it damaged too (``store check``)."""
+        check = self.check(camera, version)
+        if check.state != "unchecked":
+            return check
+        try:
+            self.load(camera, version)
+        except DamagedBaseline as exc:
+            return exc.check
+        except LookupError as exc:
+            return VersionCheck(camera, version, "damaged", str(exc))
+        return check
 
     def load(self, camera: str, version: str | None = None) -> Baseline:
         """Load a camera's baseline (the active one by default), after checking its files.
@@ -324,7 +344,8 @@ class Store:
         reading = "baseline.json"
         try:
             meta = self.metadata(camera, version)
-            reading = f"{meta['model']} model files"
+            reading = ", ".join(sorted(p.name for p in folder.iterdir()
+                                       if p.name not in _STORE_FILES)) or "model files"
             model = model_class(meta["model"]).load(folder, meta["model_params"])
             reading = "calibration.npz"
             with np.load(folder / "calibration.npz", allow_pickle=False) as z:
