@@ -110,6 +110,9 @@ class ConditionSettings:
     max_shift: float = 0.05
     #: Find burned-in text (clock, date, camera name) at learn time and mask it.
     auto_text_mask: bool = True
+    #: Largest share of the view the automatic text mask may cover; text found beyond it
+    #: is not masked (learn warns). Configured boxes and masks do not count against it.
+    text_mask_cap: float = 0.03
     #: Text boxes to mask as well, [x0, y0, x1, y1] in pixels of the exported frame.
     text_boxes: tuple = ()
     #: Report camera health (lens covered, out of focus, frozen, too dark, overexposed,
@@ -324,6 +327,7 @@ _RANGES: dict[str, tuple[float, float]] = {
     "alpha": (1e-9, 0.5),
     "folds": (2, 50),
     "max_shift": (0.0, 0.5),
+    "text_mask_cap": (0.0, 1.0),
     "max_regimes": (1, 8),
     "exposure_range": (0.0, 0.9),
     "alarms_per_day": (0.0, 1e6),

@@ -73,6 +73,7 @@ def test_false_alarms_fold_into_a_new_version_kept_inactive(run, tmp_path, capsy
     assert r.cli("baselines", camera) == 0
     listing = capsys.readouterr().out.splitlines()
     assert listing[1].split()[:2] == ["v1", "yes"] and listing[2].split()[0] == "v2"
+    assert "masked" in listing[0] and listing[1].split()[-2].endswith("%")
     assert r.cli("baselines", camera, "--activate", "v2") == 0
     assert "is now active (was v1)" in capsys.readouterr().out
     assert json.loads((r.store.root / camera / "active.json").read_text())["version"] == "v2"

@@ -43,16 +43,20 @@ def cmd_baselines(args: argparse.Namespace) -> int:
         return 0
     say(f"{'version':<9}{'active':<8}{'model':<6}{'frames':>7}  {'first frame':<20}"
         f"{'last frame':<20}{'threshold':>10}{'guaranteed rate':>17}{'extrapolated':>14}"
-        f"{'+false alarms':>15}  files")
+        f"{'+false alarms':>15}{'masked':>8}  files")
     for r in rows:
         target = r["extrapolated_target"]
         say(f"{r['version']:<9}{'yes' if r['active'] else '':<8}{r['model']:<6}{r['frames']:>7}  "
             f"{r['first'][:19]:<20}{r['last'][:19]:<20}{r['threshold']:>10.3f}"
             f"{r['false_alarm_rate']:>17.4g}{'-' if target is None else f'{target:.4g}':>14}"
-            f"{r['false_alarms_added']:>15}  {_files(r['check'])}")
+            f"{r['false_alarms_added']:>15}{r['masked']:>8.1%}  {_files(r['check'])}")
     if any(r["extrapolated_target"] is not None for r in rows):
         say("extrapolated: the rate a generalized Pareto tail fit aims at, beyond what the "
             "calibration frames guarantee")
+    for r in rows:
+        if r["active"] and r["text_boxes"]:
+            say(f"{r['version']} masks text boxes (x0, y0, x1, y1 in frame pixels): "
+                + ", ".join(str(tuple(b)) for b in r["text_boxes"]))
     damaged = [r for r in rows if r["check"].damaged and r["active"]]
     if damaged:
         say(f"the active version is damaged: {store.advice(camera, damaged[0]['version'])}")

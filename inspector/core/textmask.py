@@ -8,75 +8,135 @@ import numpy as np
 
 def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
                     ) -> list[tuple[int, int, int, int]]:
-    """Boxes of burned-in text (clock, date, camera name) in a sample of normal frames.
+    """Boxes of burned-in text that changes (a clock, a date) in a sample of normal frames.
 
-    A pixel is a changing stroke when its high-pass content (frame minus a Gaussian blur
-    of 1.5 px) varies over the sample far more than the noise does (8 x the median of that
-    variation, and at least 12 grey levels) while its smooth content varies less (a clock's
-    digits change; the wall behind them does not), and more than its mean high-pass value
-    (strokes come and go; a painted edge whose contrast follows the light does not). Such pixels are joined along rows into
-    lines; a line is kept when it is flat (height at most a tenth of the frame, wider than
-    high) and then extended sideways over the steady strokes next to it (the static part of
-    a date or a camera name).
+    Burned-in text is small, set in rows of character height, and its strokes change in
+    step with capture time while the wall behind them stays. So:
+
+    1. A pixel is a changing stroke when its fine detail (frame minus a Gaussian blur of
+       1.5 px) varies over the sample far more than the noise does (8 x the median of that
+       variation, and at least 12 grey levels), more than its smooth content does (the
+       wall behind stays) and more than its mean fine detail (strokes come and go; an edge
+       whose contrast follows the light does not).
+    2. Changing strokes are joined along rows (gaps up to 2 % of the frame width) into
+       lines.
+    3. A line is text when it is a row of characters: between 3 pixels and a twelfth of the
+       frame high, at least three times as wide as high, with at least three separate stroke
+       columns, strokes filling a fair share of it, and standing alone: the band around
+       it (one line height on every side) holds far fewer changing strokes than the line
+       (moving foliage, water or a jittering textured shelf change everywhere around).
+    4. A text line takes in the changing pieces in its rows up to four heights away (a
+       day digit between still hours), then stroke pieces at least half its height that
+       fit in its rows up to two heights away (the still rest of a date), at most its own
+       width further.
+
+    Text that never changes (a camera name) is left alone: it looks the same in every
+    frame, which the model learns like any steady part of the scene.
 
     Parameters
     ----------
     greys : ndarray, shape (n, H, W), float
-        Normal frames in time order, n >= 3, photometrically normalised.
+        Normal frames in time order, n >= 3, grey levels in [0, 255] (not normalised:
+        burned-in text keeps its colour when the scene's light changes).
     ignore : ndarray, shape (H, W), bool, optional
 
     Returns
     -------
     list of (x0, y0, x1, y1)
-        Pixel boxes at the frames' resolution, end-exclusive.
+        Pixel boxes at the frames' resolution, end-exclusive, smallest first.
     """
     g = np.asarray(greys, np.float32)
     n, h, w = g.shape
     if n < 3:
         return []
-    low = np.stack([cv2.GaussianBlur(x, (0, 0), 1.5) for x in g])
-    high = g - low
-    v_high = high.std(axis=0)
-    v_low = low.std(axis=0)
-    level = float(np.median(v_high))
-    cand = ((v_high > max(8.0 * level, 12.0)) & (v_high > 1.2 * v_low)
-            & (v_high > np.abs(high.mean(axis=0))))
+    # Text stays put on the frame while the scene jitters: a stroke must change both in
+    # the frames as they are and in the frames aligned to the scene (a jittering edge
+    # changes only in the first, a still edge of text that does not change only in the
+    # second).
+    changing, strokes = _changing_strokes(g)
+    cand = changing & _changing_strokes(_aligned(g))[0]
     if ignore is not None:
         cand &= ~ignore
     if cand.sum() < 4:
         return []
-    strokes = np.abs(high).mean(axis=0)
-    stroke_level = float(np.median(strokes))
-    steady = strokes > max(6.0 * stroke_level, 8.0)
+    max_height = max(3, h // 12)
     k = max(3, int(round(0.02 * w)))
     joined = cv2.morphologyEx(cand.astype(np.uint8), cv2.MORPH_CLOSE,
                               cv2.getStructuringElement(cv2.MORPH_RECT, (2 * k + 1, 3)))
     count, _, stats, _ = cv2.connectedComponentsWithStats(joined, connectivity=8)
+    # Pieces of strokes (steady or not), for extending a line over the text that changes
+    # rarely or never (the rest of a date, the separators of a clock).
+    pieces = cv2.connectedComponentsWithStats(strokes.astype(np.uint8), connectivity=8)[2][1:]
     boxes = []
     for i in range(1, count):
-        x, y, bw, bh, area = (int(v) for v in stats[i])
-        if bh > max(0.1 * h, 3) or bw < bh or cand[y:y + bh, x:x + bw].sum() < 4:
+        x, y, bw, bh, _ = (int(v) for v in stats[i])
+        if not 3 <= bh <= max_height or bw < 3 * bh:
             continue
-        gap = max(2 * bh, 3)
-        x0, x1 = x, x + bw
-        band = steady[y:y + bh]
-        while True:
-            left = band[:, max(0, x0 - gap):x0].any(axis=0)
-            if not left.any():
-                break
-            x0 = max(0, x0 - gap) + int(np.argmax(left))
-            if x0 == 0:
-                break
-        while True:
-            right = band[:, x1:min(w, x1 + gap)].any(axis=0)
-            if not right.any():
-                break
-            x1 = x1 + len(right) - int(np.argmax(right[::-1]))
-            if x1 >= w:
-                break
+        inside = cand[y:y + bh, x:x + bw]
+        columns = inside.any(axis=0).astype(np.int8)
+        runs = int((np.diff(np.concatenate([[0], columns])) == 1).sum())
+        if runs < 3 or inside.mean() < 0.08:
+            continue
+        ring = cand[max(0, y - bh):y + 2 * bh, max(0, x - bh):x + bw + bh]
+        around = (ring.sum() - inside.sum()) / max(ring.size - inside.size, 1)
+        if around > 0.2 * inside.mean():
+            continue
+        x0, x1 = _extend_row(stats[1:], x, x + bw, y, y + bh, 4 * bh, w, 2)
+        x0, x1 = _extend_row(pieces, x0, x1, y, y + bh, 2 * bh, x1 - x0, (bh + 1) // 2)
+        # A character's width on each side (a digit that changed too rarely to be seen),
+        # a third of the height above and below.
         pad = max(1, bh // 3)
-        boxes.append((max(0, x0 - pad), max(0, y - pad), min(w, x1 + pad), min(h, y + bh + pad)))
-    return _merge_boxes(boxes)
+        boxes.append((max(0, x0 - bh), max(0, y - pad), min(w, x1 + bh),
+                      min(h, y + bh + pad)))
+    return sorted(_merge_boxes(boxes), key=lambda b: (b[2] - b[0]) * (b[3] - b[1]))
+
+
+def _extend_row(pieces: np.ndarray, x0: int, x1: int, y0: int, y1: int, gap: int,
+                reach: int, least: int) -> tuple[int, int]:
+    """Extend a text line [x0, x1) x [y0, y1) sideways over pieces (rows of
+    ``connectedComponentsWithStats`` stats: x, y, w, h, area) at least ``least`` pixels
+    high that lie within the line's rows (a third of its height of slack) and start
+    within ``gap`` pixels of it; at most ``reach`` pixels on each side."""
+    bh = y1 - y0
+    slack = max(1, bh // 3)
+    fits = ((pieces[:, 1] >= y0 - slack) & (pieces[:, 1] + pieces[:, 3] <= y1 + slack)
+            & (pieces[:, 3] >= least))
+    cand = pieces[fits]
+    lo, hi = x0 - reach, x1 + reach
+    grown = True
+    while grown:
+        grown = False
+        for px, _, pw, _, _ in cand:
+            if px + pw < x0 and px + pw >= x0 - gap and px >= lo:
+                x0, grown = int(px), True
+            elif px > x1 and px <= x1 + gap and px + pw <= hi:
+                x1, grown = int(px + pw), True
+    return x0, x1
+
+
+def _changing_strokes(g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Pixels whose fine detail changes far beyond noise while the smooth content stays;
+    and stroke pixels (fine detail far above the frame's typical level on average)."""
+    low = np.stack([cv2.GaussianBlur(x, (0, 0), 1.5) for x in g])
+    high = g - low
+    v_high = high.std(axis=0)
+    level = float(np.median(v_high))
+    changing = ((v_high > max(8.0 * level, 12.0)) & (v_high > 1.2 * low.std(axis=0))
+                & (v_high > np.abs(high.mean(axis=0))))
+    strength = np.abs(high).mean(axis=0)
+    return changing, strength > max(6.0 * float(np.median(strength)), 8.0)
+
+
+def _aligned(g: np.ndarray) -> np.ndarray:
+    """Frames shifted onto their median frame (phase correlation, sub-pixel)."""
+    ref = np.median(g, axis=0).astype(np.float32)
+    window = cv2.createHanningWindow(ref.shape[::-1], cv2.CV_32F)
+    out = np.empty_like(g)
+    for i, x in enumerate(g):
+        (dx, dy), _ = cv2.phaseCorrelate(ref, np.ascontiguousarray(x, np.float32), window)
+        out[i] = cv2.warpAffine(x, np.float32([[1, 0, -dx], [0, 1, -dy]]), x.shape[::-1],
+                                flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_REFLECT)
+    return out
 
 
 def _merge_boxes(boxes: list[tuple[int, int, int, int]]) -> list[tuple[int, int, int, int]]:
@@ -89,6 +149,37 @@ def _merge_boxes(boxes: list[tuple[int, int, int, int]]) -> list[tuple[int, int,
         else:
             out.append(list(b))
     return [tuple(o) for o in out]  # type: ignore[misc]
+
+
+def cap_boxes(boxes, size: tuple[int, int], cap: float
+              ) -> tuple[list[tuple[int, int, int, int]], list[tuple[int, int, int, int]]]:
+    """Keep boxes, smallest first, while together they cover at most ``cap`` of the view.
+
+    Parameters
+    ----------
+    boxes : sequence of (x0, y0, x1, y1)
+        Pixel boxes, end-exclusive.
+    size : (int, int)
+        Frame (width, height) in the boxes' pixels.
+    cap : float
+        Largest share of the view, in [0, 1].
+
+    Returns
+    -------
+    kept, dropped : list of (x0, y0, x1, y1)
+    """
+    w, h = size
+    covered = np.zeros((h, w), bool)
+    kept, dropped = [], []
+    for b in sorted(boxes, key=lambda b: (b[2] - b[0]) * (b[3] - b[1])):
+        trial = covered.copy()
+        trial[max(0, b[1]):b[3], max(0, b[0]):b[2]] = True
+        if trial.mean() <= cap:
+            covered = trial
+            kept.append(tuple(b))
+        else:
+            dropped.append(tuple(b))
+    return kept, dropped
 
 
 def boxes_mask(boxes, size: tuple[int, int], scale: tuple[float, float] = (1.0, 1.0)

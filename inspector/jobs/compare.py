@@ -135,7 +135,8 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
 def version_rows(store: Store, camera: str) -> list[dict]:
     """One dict per version: version, created, frames, first/last frame time, threshold,
     false-alarm rate guaranteed and any extrapolated target (None when there
-    is none), model, false alarms folded in, active, and ``check`` (see
+    is none), model, false alarms folded in, share of the view masked, text boxes masked,
+    active, and ``check`` (see
     :meth:`inspector.storage.store.Store.check`: ok, unchecked or damaged, with the problem).
     A damaged version whose description cannot be read is listed with blanks."""
     active = store.active_version(camera)
@@ -147,6 +148,7 @@ def version_rows(store: Store, camera: str) -> list[dict]:
         except (OSError, ValueError, AttributeError):
             info = {"version": v, "created": "", "model": "", "frames": 0, "first": "",
                     "last": "", "threshold": float("nan"), "false_alarm_rate": float("nan"),
-                    "false_alarms_added": 0, "extrapolated_target": None}
+                    "false_alarms_added": 0, "extrapolated_target": None,
+                    "masked": float("nan"), "text_boxes": []}
         rows.append({**info, "active": v == active, "check": check})
     return rows

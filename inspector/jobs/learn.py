@@ -29,7 +29,7 @@ from inspector.core.features import rasterize_mask
 from inspector.core.image import darker_exposure, grey
 from inspector.core.models import model_class
 from inspector.core.regimes import Regimes, appearance, assign, find_regimes
-from inspector.core.textmask import boxes_mask, find_text_boxes
+from inspector.core.textmask import boxes_mask, cap_boxes, find_text_boxes
 from inspector.errors import UsageError
 from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import (
@@ -242,7 +242,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                  "time_formats": fs.time_formats}
     source = FileSource(files, blocks, size, source_size, read_args, camera)
     mask = _mask(cfg, source_size, size)
-    conditions, text_boxes, mask = _conditions(cfg, source, mask)
+    conditions, text_boxes, mask, masking = _conditions(cfg, source, mask)
     model = model_class(cfg.model.model)(**_model_params(cfg))
     prepared = PreparedSource(source, conditions,
                               cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
@@ -285,6 +285,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                  f"earlier frames only ({used - threshold.n} frames only trained); "
                  f"{threshold.describe()}")
     warnings = [threshold.warning] if threshold.warning else []
+    warnings += masking.pop("warnings")
     regimes = None
     if cs.regimes and cs.max_regimes > 1 and len(prepared.appearance) >= len(held.index):
         feats = np.array([prepared.appearance[int(i)] for i in held.index])
@@ -309,7 +310,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                   "calibration": settings_dict(cfg.calibration),
                   "conditions": settings_dict(cfg.conditions),
                   "mask": settings_dict(cfg.mask)},
-        text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}))
+        text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}, masked=masking))
     baseline = Baseline(camera=camera, version="", model=model, calibration=calibration,
                         size=size, source_size=source_size, mask=mask, conditions=conditions,
                         regimes=regimes)
@@ -317,6 +318,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     version = store.save(baseline, activate=activate)
     skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
     seconds = (now() - started).total_seconds()
+    notes.append(_masked_note(masking))
     if text_boxes:
         notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
                      + ", ".join(str(tuple(b)) for b in text_boxes))
@@ -325,11 +327,13 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
 
 
 def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
-                ) -> tuple[Conditions, list[tuple[int, int, int, int]], np.ndarray | None]:
+                ) -> tuple[Conditions, list[tuple[int, int, int, int]], np.ndarray | None, dict]:
     """Learn the camera's conditions from a sample of its normal frames.
 
-    Returns the conditions, the text boxes masked (exported pixels) and the model's mask
-    (the user's mask with the text boxes added).
+    Returns the conditions, the text boxes masked (exported pixels), the model's mask
+    (the user's mask with the text boxes added) and what is masked: shares of the view
+    (``share``, ``text_share``, ``configured_share``), the automatic boxes left unmasked
+    by the cap (``over_cap``) and ``warnings``.
     """
     cs = cfg.conditions
     n = len(source)
@@ -340,6 +344,9 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
     sw, sh = source.source_size
     boxes: list[tuple[int, int, int, int]] = [tuple(int(round(v)) for v in b)  # type: ignore
                                               for b in cs.text_boxes]
+    found_boxes: list[tuple[int, int, int, int]] = []
+    over_cap: list[tuple[int, int, int, int]] = []
+    warnings: list[str] = []
     if cs.auto_text_mask and len(images) >= 3:
         long_side = min(max(sw, sh), max(TEXT_LONG_SIDE, w, h))
         big = FileSource([source.files[i] for i in sample], np.zeros(len(sample), int),
@@ -350,17 +357,40 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
         if len(frames) >= 3:
             tw, th = big.size
             found = find_text_boxes(grey(frames))
-            boxes += [(int(x0 * sw / tw), int(y0 * sh / th), int(np.ceil(x1 * sw / tw)),
-                       int(np.ceil(y1 * sh / th))) for x0, y0, x1, y1 in found]
+            found_boxes = [(int(x0 * sw / tw), int(y0 * sh / th), int(np.ceil(x1 * sw / tw)),
+                            int(np.ceil(y1 * sh / th))) for x0, y0, x1, y1 in found]
+            found_boxes, over_cap = cap_boxes(found_boxes, (sw, sh), cs.text_mask_cap)
+            if over_cap:
+                warnings.append(
+                    f"{len(over_cap)} more areas look like burned-in text but are not masked: "
+                    f"the automatic text mask may cover at most {cs.text_mask_cap:.1%} of the "
+                    f"view (text_mask_cap); mask them with text_boxes if they are text: "
+                    + ", ".join(str(tuple(b)) for b in over_cap))
+    configured = mask
+    if boxes:
+        drawn = boxes_mask(boxes, (w, h), (w / sw, h / sh))
+        configured = drawn if configured is None else (configured | drawn)
+    boxes += found_boxes
     if boxes:
         text = boxes_mask(boxes, (w, h), (w / sw, h / sh))
         mask = text if mask is None else (mask | text)
+    auto = boxes_mask(found_boxes, (w, h), (w / sw, h / sh))
+    masking = {"share": float(mask.mean()) if mask is not None else 0.0,
+               "text_share": float(auto.mean()),
+               "configured_share": float(configured.mean()) if configured is not None else 0.0,
+               "over_cap": [list(b) for b in over_cap], "warnings": warnings}
     limits = {"dark": cs.dark_level, "bright": cs.overexposed_share,
               "covered": cs.covered_share, "focus": cs.focus_ratio,
               "frozen": cs.frozen_difference}
     conditions = Conditions(lighting=cs.lighting, register=cs.register,
                             max_shift=cs.max_shift * max(w, h), health=cs.health, limits=limits)
-    return conditions.fit(images, mask), boxes, mask
+    return conditions.fit(images, mask), boxes, mask, masking
+
+
+def _masked_note(masking: dict) -> str:
+    """One line: the share of the view the model does not look at, and why."""
+    return (f"masked: {masking['share']:.1%} of the view (automatic text mask "
+            f"{masking['text_share']:.1%}, configured {masking['configured_share']:.1%})")
 
 
 def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store

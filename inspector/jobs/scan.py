@@ -83,7 +83,7 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
                         threshold=float(s.thresholds[i]),
                         p_value=float(s.p_values[i]), model=baseline.version,
                         flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
-                        health=s.health[i] if s.health else [])
+                        health=s.health[i] if s.health else [], mask=baseline.mask)
             for i, f in enumerate(frames)]
 
 

@@ -10,6 +10,8 @@ COLORMAP = cv2.COLORMAP_INFERNO
 #: Overlays are drawn at least this wide so the caption stays readable.
 MIN_WIDTH = 640
 _OUTLINE = (255, 255, 255)
+#: Colour of the hatching over masked areas (BGR grey).
+_HATCH = (160, 160, 160)
 
 
 def overlay_caption(camera: str, time: str, score: float, threshold: float) -> str:
@@ -19,8 +21,11 @@ def overlay_caption(camera: str, time: str, score: float, threshold: float) -> s
 
 
 def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
-                   caption: str) -> np.ndarray:
+                   caption: str, mask: np.ndarray | None = None) -> np.ndarray:
     """The frame with a translucent heatmap, the flagged region outlined, and a caption.
+
+    Pixels the baseline does not look at (``mask``: burned-in text, configured masks) are
+    dimmed and hatched, so a reviewer sees what could not have been flagged.
 
     Parameters
     ----------
@@ -31,6 +36,8 @@ def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
     threshold : float
         Frame threshold; map regions above it are outlined.
     caption : str
+    mask : ndarray, shape (H, W), bool, optional
+        Ignored pixels at working resolution.
 
     Returns
     -------
@@ -50,7 +57,25 @@ def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
     region = (heat > threshold).astype(np.uint8)
     contours, _ = cv2.findContours(region, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
     cv2.drawContours(out, contours, -1, _OUTLINE, 2, cv2.LINE_AA)
+    if mask is not None and np.any(mask):
+        out = hatch(out, cv2.resize(np.asarray(mask, np.uint8), (w, h),
+                                    interpolation=cv2.INTER_NEAREST) > 0)
     band = np.zeros((28, w, 3), np.uint8)
     cv2.putText(band, caption, (8, 19), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (255, 255, 255), 1,
                 cv2.LINE_AA)
     return np.vstack([out, band])
+
+
+def hatch(image: np.ndarray, mask: np.ndarray, spacing: int = 8) -> np.ndarray:
+    """``image`` (H, W, 3) uint8 with the pixels of ``mask`` (H, W) bool dimmed to half and
+    crossed by diagonal lines every ``spacing`` pixels; the edge of the mask is outlined."""
+    out = image.copy()
+    h, w = mask.shape
+    yy, xx = np.mgrid[0:h, 0:w]
+    lines = ((xx + yy) % spacing) < 2
+    out[mask] = out[mask] // 2
+    out[mask & lines] = _HATCH
+    contours, _ = cv2.findContours(mask.astype(np.uint8), cv2.RETR_EXTERNAL,
+                                   cv2.CHAIN_APPROX_SIMPLE)
+    cv2.drawContours(out, contours, -1, _HATCH, 1, cv2.LINE_AA)
+    return out

@@ -75,6 +75,8 @@ class FrameResult:
         Anomaly map.
     health : list of (condition, measure, limit)
         Camera health conditions of the frame (see :mod:`inspector.core.conditions`).
+    mask : ndarray, shape (H, W), bool, or None
+        Pixels the baseline ignores (shown hatched on the overlay).
     """
 
     frame: str
@@ -88,6 +90,7 @@ class FrameResult:
     image: np.ndarray
     amap: np.ndarray
     health: list = field(default_factory=list)
+    mask: np.ndarray | None = None
 
 
 def repair_tail(path: Path) -> None:
@@ -277,7 +280,7 @@ class ResultWriter:
             path = self.out / "overlays" / r.camera / f"{name}.jpg"
             path.parent.mkdir(parents=True, exist_ok=True)
             caption = overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold)
-            cv2.imwrite(str(path), render_overlay(r.image, r.amap, r.threshold, caption),
+            cv2.imwrite(str(path), render_overlay(r.image, r.amap, r.threshold, caption, r.mask),
                         [cv2.IMWRITE_JPEG_QUALITY, 90])
             overlay = path.as_posix()
         if self.maps is not None:

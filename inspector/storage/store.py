@@ -182,6 +182,10 @@ class VersionInfo:
     false_alarms_added: int
     #: The rate a tail fit extrapolated the threshold to, beyond the guarantee (or None).
     extrapolated_target: float | None = None
+    #: Share of the view the version does not look at (nan: learnt before it was recorded).
+    masked: float = float("nan")
+    #: Burned-in text boxes masked, [x0, y0, x1, y1] in frame pixels.
+    text_boxes: list = field(default_factory=list)
 
 
 class Store:
@@ -245,7 +249,9 @@ class Store:
                            threshold=t.get("value", float("nan")),
                            false_alarm_rate=th.guaranteed if th else float("nan"),
                            false_alarms_added=m.get("false_alarm_frames", 0),
-                           extrapolated_target=th.alpha if th and th.extrapolated else None)
+                           extrapolated_target=th.alpha if th and th.extrapolated else None,
+                           masked=m.get("masked", {}).get("share", float("nan")),
+                           text_boxes=m.get("text_boxes", []))
 
     def check(self, camera: str, version: str) -> VersionCheck:
         """Verify a version's files against the checksums in its ``baseline.json``."""
