@@ -112,7 +112,7 @@ class ConditionSettings:
     auto_text_mask: bool = True
     #: Largest share of the view the automatic text mask may cover; text found beyond it
     #: is not masked (learn warns). Configured boxes and masks do not count against it.
-    text_mask_cap: float = 0.03
+    text_mask_cap: float = 0.05
     #: Text boxes to mask as well, [x0, y0, x1, y1] in pixels of the exported frame.
     text_boxes: tuple = ()
     #: Report camera health (lens covered, out of focus, frozen, too dark, overexposed,

@@ -69,7 +69,7 @@ def test_text_masks_cover_the_clocks_and_almost_nothing_else(photo):
         hgt = y1 - y0
         lines[max(0, y0 - hgt):y1 + hgt, max(0, x0 - 2 * hgt):x1 + 2 * hgt] = True
     assert (mask & ~lines).mean() < 0.002
-    assert mask.mean() < 0.03
+    assert mask.mean() < 0.05
 
 
 def test_no_text_no_mask_on_moving_foliage():

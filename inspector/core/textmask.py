@@ -95,10 +95,10 @@ def _extend_row(pieces: np.ndarray, x0: int, x1: int, y0: int, y1: int, gap: int
                 reach: int, least: int) -> tuple[int, int]:
     """Extend a text line [x0, x1) x [y0, y1) sideways over pieces (rows of
     ``connectedComponentsWithStats`` stats: x, y, w, h, area) at least ``least`` pixels
-    high that lie within the line's rows (a third of its height of slack) and start
+    high that lie within the line's rows (a third of its height and 2 px of slack) and start
     within ``gap`` pixels of it; at most ``reach`` pixels on each side."""
     bh = y1 - y0
-    slack = max(1, bh // 3)
+    slack = bh // 3 + 2  # the fine-detail halo of a stroke (blur of 1.5 px) reaches ~2 px
     fits = ((pieces[:, 1] >= y0 - slack) & (pieces[:, 1] + pieces[:, 3] <= y1 + slack)
             & (pieces[:, 3] >= least))
     cand = pieces[fits]
@@ -107,9 +107,9 @@ def _extend_row(pieces: np.ndarray, x0: int, x1: int, y0: int, y1: int, gap: int
     while grown:
         grown = False
         for px, _, pw, _, _ in cand:
-            if px + pw < x0 and px + pw >= x0 - gap and px >= lo:
+            if px < x0 and px + pw >= x0 - gap and px >= lo:
                 x0, grown = int(px), True
-            elif px > x1 and px <= x1 + gap and px + pw <= hi:
+            if px + pw > x1 and px <= x1 + gap and px + pw <= hi:
                 x1, grown = int(px + pw), True
     return x0, x1
 
