@@ -174,6 +174,15 @@ def test_versions_saved_before_checksums_still_load(site, store, tmp_path):
     assert run(site, store, "store", "check").returncode == 1
 
 
+def test_store_check_lists_what_an_interrupted_learn_left(site, store):
+    (store / "east" / ".new-k2j4x").mkdir()  # as a learn killed while saving leaves it
+    check = run(site, store, "store", "check")
+    assert check.returncode == 0 and "0 damaged" in check.stdout
+    line = next(ln for ln in check.stdout.splitlines() if ".new-k2j4x" in ln)
+    assert "interrupted learn" in line and "safe to delete" in line
+    assert Store(store).versions("east") == ["v1"]
+
+
 def test_store_check_finds_a_damaged_sqlite_file(site, store, tmp_path):
     db = Store(store).database
     con = sqlite3.connect(db)
@@ -192,11 +201,9 @@ def test_store_check_finds_a_damaged_sqlite_file(site, store, tmp_path):
     assert "DAMAGED" in line
 
 
-def test_watch_waits_for_a_damaged_camera_and_picks_it_up_when_a_good_version_is_active(
-        site, store, tmp_path, capsys):
-    assert run(site, store, "learn", str(site / "normal" / "east"), "--camera",
-               "east").returncode == 0  # v2, active
-    damage(store / "east" / "v2" / "ppca.npz", "truncate")
+def watch_until_repaired(site, store: Path, tmp_path: Path, repair) -> tuple[str, list]:
+    """Watch east and west frames in this process; once every east frame waits in the
+    ledger, ``repair()`` the store. Returns what the watcher said and all-scores rows."""
     src, out = tmp_path / "src", tmp_path / "out"
     src.mkdir()
     db = Store(store).database
@@ -218,26 +225,50 @@ def test_watch_waits_for_a_damaged_camera_and_picks_it_up_when_a_good_version_is
         end = time.monotonic() + 60  # a generous limit, not a check
         while waiting_east() < len(NEW) and time.monotonic() < end:
             time.sleep(0.1)
-        Store(store).activate("east", "v1")
+        repair()
         done.set()
 
     t = threading.Thread(target=camera_work)
     t.start()
+    said = io.StringIO()
     try:
-        code = cli.main(["watch", str(src), "--store", str(store), "--config",
-                         str(site / "inspector.toml"), "--out", str(out), "--all-scores",
-                         str(out / "all.csv"), "--idle-exit", "6"])
+        with redirect_stdout(said):
+            code = cli.main(["watch", str(src), "--store", str(store), "--config",
+                             str(site / "inspector.toml"), "--out", str(out),
+                             "--all-scores", str(out / "all.csv"), "--idle-exit", "4"])
     finally:
         t.join()
     assert code == 0 and done.is_set()
-    said = capsys.readouterr().out
-    assert "baseline east v2 is damaged (ppca.npz: " in said and "its frames wait" in said
-    assert "east: baseline v1 is now active" in said
     scored = rows(out / "all.csv")
     assert sorted(x["frame"] for x in scored) == sorted(
         f"{c}/{name(c, i)}" for c in ("east", "west") for i in NEW)
-    assert {x["model"] for x in scored if x["camera"] == "east"} == {"v1"}
     assert rows(out / "skipped.csv") == []
+    return said.getvalue(), scored
+
+
+def test_watch_waits_for_a_damaged_camera_and_picks_it_up_when_a_good_version_is_active(
+        site, store, tmp_path):
+    assert run(site, store, "learn", str(site / "normal" / "east"), "--camera",
+               "east").returncode == 0  # v2, active
+    damage(store / "east" / "v2" / "ppca.npz", "truncate")
+    said, scored = watch_until_repaired(site, store, tmp_path,
+                                        lambda: Store(store).activate("east", "v1"))
+    assert "baseline east v2 is damaged (ppca.npz: " in said and "its frames wait" in said
+    assert "east: baseline v1 is now active" in said
+    assert {x["model"] for x in scored if x["camera"] == "east"} == {"v1"}
+
+
+def test_watch_picks_a_damaged_camera_up_when_its_files_are_put_back(
+        site, store, tmp_path, monkeypatch):
+    from inspector.jobs import watch
+
+    monkeypatch.setattr(watch, "RECHECK_DAMAGED", 0.5)
+    damage(store / "east" / "v1" / "ppca.npz", "flip")
+    good = site / "store" / "east" / "v1" / "ppca.npz"
+    said, scored = watch_until_repaired(
+        site, store, tmp_path, lambda: shutil.copy(good, store / "east" / "v1" / "ppca.npz"))
+    assert said.count("ppca.npz: checksum mismatch") == 1  # said once, not at every check
+    assert "east: baseline v1 is now active" in said
 
 
 def test_learn_killed_at_any_point_leaves_a_store_that_passes_the_check(site, store):

@@ -30,11 +30,12 @@ def cmd_check(args: argparse.Namespace) -> int:
         return 0
     for line in format_table(rows, CHECK_COLUMNS):
         say(line)
-    versions = [r for r in rows if r["version"]]
+    versions = [r for r in rows if r["version"] and r["state"] != "leftover"]
     damaged = [r for r in rows if r["state"] == "damaged"]
     unchecked = sum(r["state"] == "unchecked" for r in rows)
-    say(f"{len(versions)} versions of {len({r['what'] for r in versions})} cameras and "
-        f"{len(rows) - len(versions)} SQLite files checked: {len(damaged)} damaged"
+    files = sum(not r["version"] for r in rows)
+    say(f"{_n(len(versions), 'version')} of {_n(len({r['what'] for r in versions}), 'camera')}"
+        f" and {_n(files, 'SQLite file')} checked: {len(damaged)} damaged"
         + (f", {unchecked} unchecked (saved before checksums were recorded)"
            if unchecked else ""))
     for r in damaged:
@@ -42,3 +43,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             say(f"{r['what']}: the active version {r['version']} is damaged: "
                 f"{store.advice(r['what'], r['version'])}")
     return 1 if damaged else 0
+
+
+def _n(count: int, word: str) -> str:
+    return f"{count} {word}{'' if count == 1 else 's'}"

@@ -122,7 +122,8 @@ def check_store(store: Store) -> list[dict[str, Any]]:
     """Every version of every camera verified (:meth:`Store.verify`) and every SQLite file
     of the store checked (``PRAGMA integrity_check``), one row each: ``what`` (camera or
     file), ``version`` ('' for a file), ``active``, ``state`` (ok, unchecked, damaged) and
-    ``problem``."""
+    ``problem``; also the leftovers of interrupted learns (state ``leftover``, not
+    damage)."""
     rows: list[dict[str, Any]] = []
     for cam in store.cameras():
         active = store.active_version(cam)
@@ -130,6 +131,10 @@ def check_store(store: Store) -> list[dict[str, Any]]:
             c = store.verify(cam, v)
             rows.append({"what": cam, "version": v, "active": v == active, "state": c.state,
                          "problem": c.problem})
+        for p in store.leftovers(cam):
+            rows.append({"what": cam, "version": p.name, "active": False, "state": "leftover",
+                         "problem": "unfinished version of an interrupted learn, never used "
+                                    "(safe to delete)"})
     for db in sorted(store.root.glob("*.sqlite")) if store.root.is_dir() else []:
         problems = integrity_problems(db)
         rows.append({"what": db.name, "version": "", "active": False,

@@ -42,6 +42,10 @@ from inspector.storage.ledger import Ledger
 from inspector.storage.results import ResultWriter, Seen, Skipped
 from inspector.storage.store import DamagedBaseline, Store
 
+#: Seconds between two checks of a damaged active version (its files may be put back from a
+#: backup; a new version or an activation is noticed within seconds anyway).
+RECHECK_DAMAGED = 15.0
+
 
 @dataclass
 class WatchReport(ScanSummary):
@@ -91,6 +95,7 @@ class Watcher:
         #: Cameras whose frames wait, with the version that could not be used (None: none).
         self._failed: dict[str, str | None] = {}
         self._damaged: dict[str, str] = {}  # camera -> message (with advice), while damaged
+        self._rechecked: dict[str, float] = {}  # camera -> monotonic time of the last load
         self._versions: dict[str, str | None] = {}
         self._started = now_iso()
 
@@ -186,8 +191,10 @@ class Watcher:
                 and now - self.files.last_activity >= self.idle_exit)
 
     def _check_baselines(self) -> None:
-        """Load a camera's baseline again after ``learn`` or an activation; score its
-        waiting frames once a usable one is active."""
+        """Load a camera's baseline again after ``learn`` or an activation, or (every
+        :data:`RECHECK_DAMAGED` seconds) a damaged one whose files may have been put
+        back; score its waiting frames once a usable one is active."""
+        now = time.monotonic()
         with self._lock:
             cameras = set(self._versions) | set(self._failed)
         for cam in cameras:
@@ -198,10 +205,15 @@ class Watcher:
             with self._lock:
                 waiting = cam in self._failed
                 failed = self._failed.get(cam)
+                damaged = self._damaged.get(cam)
             changed = cam in self._versions and version != self._versions[cam]
             self._versions[cam] = version
-            if not (changed or (waiting and version is not None and version != failed)):
+            recheck = (damaged is not None and version == failed
+                       and now - self._rechecked.get(cam, 0.0) >= RECHECK_DAMAGED)
+            if not (changed or recheck
+                    or (waiting and version is not None and version != failed)):
                 continue
+            self._rechecked[cam] = now
             self.baselines.forget(cam)
             if version is None:
                 continue
@@ -211,7 +223,10 @@ class Watcher:
                 with self._lock:
                     if cam in self._failed:
                         self._failed[cam] = version
-                self.log(f"{cam}: {exc}; its frames keep waiting")
+                    if isinstance(exc, DamagedBaseline):
+                        self._damaged[cam] = f"{exc}: {exc.advice}"
+                if not (recheck and damaged == f"{exc}: {getattr(exc, 'advice', '')}"):
+                    self.log(f"{cam}: {exc}; its frames keep waiting")
                 continue
             self.log(f"{cam}: baseline {version} is now active")
             with self._lock:

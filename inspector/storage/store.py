@@ -221,6 +221,15 @@ class Store:
                  if (m := _VERSION_RE.match(p.name)) and p.is_dir()]
         return [name for _, name in sorted(found)]
 
+    def leftovers(self, camera: str) -> list[Path]:
+        """Unfinished version folders and temporary files left by an interrupted ``learn``
+        (never listed as versions, never used; safe to delete)."""
+        folder = self.root / check_camera_name(camera)
+        if not folder.is_dir():
+            return []
+        return sorted(p for p in folder.iterdir()
+                      if p.name.startswith(".new-") or p.name.startswith(".tmp-"))
+
     def active_version(self, camera: str) -> str | None:
         path = self.root / check_camera_name(camera) / "active.json"
         try:
