@@ -115,11 +115,11 @@ class ConditionSettings:
     text_mask_cap: float = 0.05
     #: Text boxes to mask as well, [x0, y0, x1, y1] in pixels of the exported frame.
     text_boxes: tuple = ()
-    #: Report camera health (lens covered, out of focus, frozen, too dark, overexposed,
+    #: Report camera health (lens covered, out of focus, frozen, underexposed, overexposed,
     #: moved) in health.csv; frames with a condition are not flagged as anomalies.
     health: bool = True
     #: Health limits before they are widened by what the normal frames show: 99th
-    #: percentile of grey below which a frame is too dark; share of clipped pixels above
+    #: percentile of grey below which a frame is underexposed; share of clipped pixels above
     #: which it is overexposed; share of textured cells lost from view above which the lens is
     #: covered; sharpness relative to normal below which it is out of focus; mean absolute
     #: difference to the previous frame (grey levels) below which the feed is frozen.

@@ -61,7 +61,7 @@ def test_false_alarms_fold_into_a_new_version_kept_inactive(run, tmp_path, capsy
     capsys.readouterr()
     normal = run.root / "frames" / "normal" / camera
     assert r.cli("learn", str(normal), "--camera", camera, "--add-false-alarms",
-                 "--keep-active") == 0
+                 "--no-activate") == 0
     text = capsys.readouterr().out
     assert f"{camera}: adding 2 frames labelled 'false alarm'; 1 of them no longer exist" in text
     assert f"v2 instead of v1 on the last {len(frames)} scored frames" in text

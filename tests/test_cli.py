@@ -84,7 +84,7 @@ def test_scan_writes_the_contract_and_never_touches_source(learnt, capsys):
     assert float(hit["score"]) > float(hit["threshold"])  # the green object is flagged
     for r in flagged:
         assert float(r["score"]) > float(r["threshold"])
-        assert Path(r["overlay"]).is_file() and r["model"] == "v1"
+        assert Path(r["overlay"]).is_file() and r["baseline"] == "v1"
         assert 0 < float(r["p_value"]) <= 1
         assert r["time"].startswith("2026-11-20T08:")  # ISO 8601 capture time from the name
     for r in rows:
@@ -168,3 +168,45 @@ def test_everything_but_the_vae_runs_without_torch(learnt, tmp_path):
                           stdin=subprocess.DEVNULL, cwd=tmp_path)
     assert "codes 0 2" in proc.stdout, proc.stderr
     assert "needs PyTorch" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def _parsers(parser, path=("inspector",)):
+    """(command words, parser) of the parser and every command and subcommand under it."""
+    import argparse
+
+    yield path, parser
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            helped = {a.dest for a in action._choices_actions if a.help}
+            for name, sub in action.choices.items():
+                assert name in helped, f"{' '.join(path)} {name} has no help line"
+                yield from _parsers(sub, (*path, name))
+
+
+def test_help_of_every_command_lists_every_argument_with_help(capsys):
+    """Every option and positional argument of every command says what it is for, and the
+    commands are listed in the order of the work (common practice, no source)."""
+    import argparse
+
+    from inspector.cli.main import build_parser
+
+    seen = 0
+    for path, parser in _parsers(build_parser()):
+        for action in parser._actions:
+            if action.help == argparse.SUPPRESS or isinstance(action, argparse._HelpAction):
+                continue
+            name = "/".join(action.option_strings) or action.metavar or action.dest
+            assert action.help and action.help.strip(), f"{' '.join(path)}: {name} has no help"
+            seen += 1
+        with pytest.raises(SystemExit) as stop:
+            main([*path[1:], "--help"])
+        assert stop.value.code == 0
+        text = capsys.readouterr().out
+        assert text.startswith("usage: " + " ".join(path))
+    assert seen > 30
+    top = build_parser().format_help()
+    order = ["learn", "scan", "watch", "review", "labels", "baselines", "status", "demo"]
+    where = [top.index(f"\n    {name}") for name in order]
+    assert where == sorted(where)
+    for positional in ("CAMERA", "FILE.csv", "SOURCE"):  # named in the issue: each has help
+        assert positional in " ".join(p.format_help() for _, p in _parsers(build_parser()))

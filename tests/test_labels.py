@@ -11,7 +11,7 @@ from sklearn.metrics import precision_score
 
 from inspector.cli.main import main
 from inspector.storage.labels import (
-    COLUMNS,
+    EXPORT_COLUMNS,
     Label,
     connect,
     put,
@@ -91,7 +91,10 @@ def test_labels_commands(tmp_path, capsys):
     assert main(["labels", "export", str(out), "--store", str(store)]) == 0
     with open(out, newline="", encoding="utf-8") as fh:
         rows = list(csv.DictReader(fh))
-    assert tuple(rows[0].keys()) == COLUMNS
+    assert tuple(rows[0].keys()) == EXPORT_COLUMNS
+    # named as in flagged.csv (common practice in this project: one name per thing)
+    assert {"frame", "time", "baseline"} <= set(rows[0]) and "rel" not in rows[0]
+    assert rows[1]["frame"] == "dock/a.jpg"
     assert [(r["camera"], r["label"]) for r in rows] == [
         ("aisle", "false_alarm"), ("dock", "incident"), ("dock", "false_alarm")]
     assert rows[1]["note"] == "parcel, left by the door"

@@ -60,7 +60,7 @@ def test_page_lists_filters_and_shows_an_item(client, run):
     html = client.get(f"/?camera={camera}").get_data(as_text=True)
     assert html.count('class="row') == sum(r[1] == camera for r in rows)
     assert client.get("/?camera=nosuch").get_data(as_text=True).count('class="row') == 0
-    html = client.get("/?sort=newest&label=unlabelled&since=2026-01-01&until=2030-01-01")
+    html = client.get("/?sort=newest&label=to_review&since=2026-01-01&until=2030-01-01")
     assert html.status_code == 200
     for bad in ("since=yesterday", "until=2026-13-01", "sort=random", "label=maybe",
                 "view=x"):
@@ -431,3 +431,51 @@ def test_writes_refused_from_other_sites_and_smaller_hardening(mine):
         with socket.create_connection((host, port), timeout=30) as s:
             s.sendall(b"GET / HTTP/1.1\r\nHost: " + here.encode() + b"\r\n")
             assert s.recv(100) == b""
+
+
+def test_switching_the_active_baseline_from_the_page(mine):
+    """Issue 13 item 5: the versions table switches the active baseline, token-protected
+    like label writes, only for the active version the comparison was shown against."""
+    shutil.copytree(mine.store.root / "dock" / "v1", mine.store.root / "dock" / "v2")
+    app = create_app(mine.out, mine.store, mine.config, token=TOKEN)
+    html = app.test_client().get("/?camera=dock").get_data(as_text=True)
+    assert 'class="activate" hidden data-camera="dock" data-version="v2"' in html
+    with live(app) as (host, port):
+        body = json.dumps({"camera": "dock", "version": "v2", "active": "v1"}).encode()
+        assert request(host, port, "POST", "/api/activate", body,
+                       Content_Type="application/json")[0] == 403
+        assert request(host, port, "POST", "/api/activate", body, **WRITE,
+                       Sec_Fetch_Site="cross-site")[0] == 403
+        stale = json.dumps({"camera": "dock", "version": "v2", "active": ""}).encode()
+        assert request(host, port, "POST", "/api/activate", stale, **WRITE)[0] == 409
+        assert mine.store.active_version("dock") == "v1"
+        status, _, shown = request(host, port, "GET", "/api/compare?camera=dock&version=v2")
+        assert status == 200 and json.loads(shown)["active"] == "v1"
+        status, _, answer = request(host, port, "POST", "/api/activate", body, **WRITE)
+        assert status == 200 and json.loads(answer)["was"] == "v1"
+        assert mine.store.active_version("dock") == "v2"
+        # the same request again: the comparison it rests on is out of date
+        assert request(host, port, "POST", "/api/activate", body, **WRITE)[0] == 409
+        for bad in ({"camera": "dock", "version": "v9", "active": "v2"},
+                    {"camera": "../dock", "version": "v1", "active": "v2"}, {"camera": 3}):
+            assert request(host, port, "POST", "/api/activate", json.dumps(bad).encode(),
+                           **WRITE)[0] == 400
+
+
+def test_results_written_before_the_renames_are_still_read(mine):
+    """Issue 13: folders whose flagged.csv names the baseline column ``model`` and whose
+    events.csv counts in ``frames`` still show and label as before."""
+    for name in ("flagged.csv", "all_scores.csv"):
+        path = mine.out / name
+        lines = path.read_text(encoding="utf-8").splitlines()
+        assert ",baseline," in lines[0]
+        lines[0] = lines[0].replace(",baseline,", ",model,")
+        path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    client = create_app(mine.out, mine.store, mine.config, token=TOKEN).test_client()
+    html = client.get("/?item=f1").get_data(as_text=True)
+    assert "<dt>baseline</dt><dd>v1</dd>" in html
+    assert post_label(client, {"item": "f1", "label": "unsure"}).status_code == 200
+    conn = connect(mine.store.database)
+    assert [x.version for x in read(conn)] == ["v1"]
+    conn.close()
+    assert client.get("/?label=unlabelled").status_code == 200  # an old link still works

@@ -127,7 +127,7 @@ def check_agree(env) -> dict[str, sqlite3.Row]:
     assert set(skipped_csv) == skipped
     for r in csv_rows(env["all"]):  # CSV values are the ledger's
         led = rows[r["frame"]]
-        assert r["model"] == led["version"] and r["time"] == led["capture_time"]
+        assert r["baseline"] == led["version"] and r["time"] == led["capture_time"]
         assert float(r["score"]) == pytest.approx(led["score"], abs=1e-4)
     return rows
 
@@ -177,7 +177,7 @@ def test_scan_records_ledger_and_events(env):
     assert {k for k, r in rows.items() if r["flagged"]} == {f"dock/{name('dock', 2)}",
                                                            f"dock/{name('dock', 3)}"}
     ev = csv_rows(env["out"] / "events.csv")
-    assert [(e["event"], e["frames"], e["peak_frame"]) for e in ev][0][:2] == ("dock-0001", "2")
+    assert [(e["event"], e["flagged_frames"], e["peak_frame"]) for e in ev][0][:2] == ("dock-0001", "2")
     assert cli.main(args) == 0  # a re-scan updates rows, never adds
     assert len(ledger_rows(env)) == 9
 
@@ -195,9 +195,9 @@ def test_catch_up_then_live_with_events(env, capsys):
     rows = check_agree(env)
     assert len(rows) == 20 and all(r["status"] == "scored" for r in rows.values())
     ev = csv_rows(env["out"] / "events.csv")
-    assert list(ev[0]) == ["event", "camera", "start", "end", "frames", "peak_frame",
+    assert list(ev[0]) == ["event", "camera", "start", "end", "flagged_frames", "peak_frame",
                            "peak_score"]
-    assert [(e["camera"], e["frames"]) for e in ev] == [("dock", "3")]
+    assert [(e["camera"], e["flagged_frames"]) for e in ev] == [("dock", "3")]
     for r in csv_rows(env["out"] / "flagged.csv"):
         assert Path(r["overlay"]).is_file()
     # a second run finds nothing new: no frame is scored twice

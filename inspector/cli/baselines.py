@@ -13,9 +13,9 @@ from inspector.storage.store import check_camera_name
 def register(sub) -> None:
     p = sub.add_parser("baselines", help="list a camera's baseline versions, or switch to one "
                                          "(rollback included)")
-    p.add_argument("camera", metavar="CAMERA")
+    p.add_argument("camera", metavar="CAMERA", help="the camera whose baselines to list or switch")
     p.add_argument("--activate", metavar="VERSION",
-                   help="make VERSION (v1, v2, ...) the active baseline")
+                   help="make baseline VERSION (v1, v2, ...) the active one")
     p.add_argument("--compare", type=int, default=COMPARE_FRAMES, metavar="N",
                    help=f"before switching, compare flags on the camera's last N scored frames "
                         f"(default {COMPARE_FRAMES}; 0 skips)")
@@ -41,15 +41,15 @@ def cmd_baselines(args: argparse.Namespace) -> int:
         store.activate(camera, args.activate)
         say(f"{camera}: {args.activate} is now active (was {old or 'none'})")
         return 0
-    say(f"{'version':<9}{'active':<8}{'model':<6}{'frames':>7}  {'first frame':<20}"
+    say(f"{'baseline':<9}{'active':<8}{'model':<6}{'frames':>7}  {'first frame':<20}"
         f"{'last frame':<20}{'threshold':>10}{'guaranteed rate':>17}{'extrapolated':>14}"
-        f"{'+false alarms':>15}{'masked':>8}  files")
+        f"{'false alarms added':>20}{'masked':>8}  files")
     for r in rows:
         target = r["extrapolated_target"]
         say(f"{r['version']:<9}{'yes' if r['active'] else '':<8}{r['model']:<6}{r['frames']:>7}  "
             f"{r['first'][:19]:<20}{r['last'][:19]:<20}{r['threshold']:>10.3f}"
             f"{r['false_alarm_rate']:>17.4g}{'-' if target is None else f'{target:.4g}':>14}"
-            f"{r['false_alarms_added']:>15}{r['masked']:>8.1%}  {_files(r['check'])}")
+            f"{r['false_alarms_added']:>20}{r['masked']:>8.1%}  {_files(r['check'])}")
     if any(r["extrapolated_target"] is not None for r in rows):
         say("extrapolated: the rate a generalized Pareto tail fit aims at, beyond what the "
             "calibration frames guarantee")

@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 
 from inspector.cli.common import report_scan, say
+from inspector.cli.review import PORT
 
 
 def register(sub) -> None:
@@ -17,7 +18,7 @@ def register(sub) -> None:
     p.add_argument("--out", type=Path, default=Path("inspector-demo"),
                    help="folder for the generated frames, store and results "
                         "(default: inspector-demo)")
-    p.add_argument("--seed", type=int, default=0, help="random seed of the scenario")
+    p.add_argument("--seed", type=int, default=0, help="random seed of the scenario (default 0)")
     p.set_defaults(func=cmd_demo)
 
 
@@ -59,4 +60,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         say(f"  {camera}: AUROC {auroc:.3f}, incidents caught {flagged[y].sum()}/{y.sum()}, "
             f"false alarms {flagged[~y].sum()}/{(~y).sum()} normal frames")
     say(f"open the overlays in {out / 'overlays'} to see where each flag is")
+    say("next, go through the flags and label them on the review page:")
+    say(f"  inspector review --out {out}")
+    say(f"  then open http://127.0.0.1:{PORT}/ in a browser on this machine")
     return 0

@@ -12,10 +12,11 @@ from inspector.storage.labels import Label, connect, export_csv, read, summarize
 
 def register(sub) -> None:
     p = sub.add_parser("labels", help="export or summarise review labels")
-    lsub = p.add_subparsers(dest="labels_command", metavar="ACTION", parser_class=type(p))
+    lsub = p.add_subparsers(dest="labels_command", metavar="ACTION", parser_class=type(p),
+                            help="what to do with the labels:")
     lsub.required = True
     e = lsub.add_parser("export", help="write every label to a CSV file")
-    e.add_argument("file", type=Path, metavar="FILE.csv")
+    e.add_argument("file", type=Path, metavar="FILE.csv", help="the CSV file to write")
     e.add_argument("--camera", help="only this camera's labels")
     add_common(e)
     e.set_defaults(func=cmd_export)

@@ -22,9 +22,11 @@ def register(sub) -> None:
     p.add_argument("--model", choices=MODEL_NAMES, help="density model (default from config: ppca)")
     p.add_argument("--add-false-alarms", action="store_true",
                    help="also learn from the frames labelled 'false alarm' in review")
-    p.add_argument("--keep-active", action="store_true",
-                   help="save the new version without activating it (switch later with "
-                        "'inspector baselines CAMERA --activate VERSION')")
+    p.add_argument("--no-activate", action="store_true",
+                   help="save the new baseline without making it the active one (switch later "
+                        "with 'inspector baselines CAMERA --activate VERSION')")
+    p.add_argument("--keep-active", action="store_true", dest="no_activate",
+                   help=argparse.SUPPRESS)  # the old name, still accepted
     p.add_argument("--compare", type=int, default=200, metavar="N",
                    help="show how many flags the new version adds and removes on the camera's "
                         "last N scored frames (default 200; 0 skips)")
@@ -64,7 +66,7 @@ def cmd_learn(args: argparse.Namespace) -> int:
             cam_files, extra = _with_false_alarms(store, camera, cam_files)
         previous[camera] = store.active_version(camera)
         tasks.append({"files": cam_files, "cfg": cfg, "store": store,
-                      "activate": not args.keep_active, "extra": extra})
+                      "activate": not args.no_activate, "extra": extra})
     with cluster(args, config) as client:
         if client is None:
             reports = (learn_camera(**t) for t in tasks)
@@ -98,7 +100,7 @@ def _report(args, config, store, report, cfg, skips, previous: str | None) -> No
 
         say("  " + compare_versions(store, config, camera, previous, report.version,
                                     args.compare).text())
-    if args.keep_active and previous:
+    if args.no_activate and previous:
         say(f"  {previous} stays active; switch with 'inspector baselines {camera} "
             f"--activate {report.version}'")
 

@@ -29,7 +29,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="inspector", description="Flag camera frames that do not look "
                      "like the camera's normal scene.")
     parser.add_argument("--version", action="version", version=f"inspector {__version__}")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser,
+                                help="one of these, in the order of the work:")
     sub.required = True
     for command in COMMANDS:
         command.register(sub)

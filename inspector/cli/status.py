@@ -11,8 +11,8 @@ from inspector.jobs.status import camera_facts, format_table
 
 def register(sub) -> None:
     p = sub.add_parser("status", help="per camera: active baseline, frames scored, flagged, "
-                                      "skipped and waiting, last frame, current lag, latest "
-                                      "camera health condition")
+                                      "skipped and held for lack of a baseline, last frame, "
+                                      "current lag, latest camera health condition")
     add_common(p)
     p.add_argument("--out", type=Path, help="results folder whose health.csv gives the latest "
                                             "camera health condition (default from config)")

@@ -17,7 +17,7 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
-* Health: lens covered, out of focus, frozen feed, too dark, overexposed, camera moved,
+* Health: lens covered, out of focus, frozen feed, underexposed, overexposed, camera moved,
   each a measure with a limit, the limits widened by what the normal frames showed.
 """
 
@@ -142,7 +142,7 @@ class Conditions(Estimator):
         """Learn the reference and the health limits from a sample of normal frames.
 
         Limits start from ``limits`` (``dark``: 99th percentile of grey below which a
-        frame is too dark; ``bright``: share of clipped pixels above which it is
+        frame is underexposed; ``bright``: share of clipped pixels above which it is
         overexposed; ``covered``: share of the reference's textured cells that no longer
         correlate with it; ``focus``: median over textured cells of their detail (variance of the
         Laplacian) relative to normal, below which it is out of focus; ``frozen``: mean absolute
@@ -397,7 +397,7 @@ class Conditions(Estimator):
             if m["frozen"][i] < lim.get("frozen", 0.25):
                 found.append(("frozen feed", m["frozen"][i], lim.get("frozen", 0.25)))
             if dark:
-                found.append(("too dark", m["dark"][i], lim.get("dark", 20.0)))
+                found.append(("underexposed", m["dark"][i], lim.get("dark", 20.0)))
             if m["bright"][i] > lim.get("bright", 0.5):
                 found.append(("overexposed", m["bright"][i], lim.get("bright", 0.5)))
             rows.append([(c, float(v), float(li)) for c, v, li in found])

@@ -27,7 +27,9 @@ from dataclasses import dataclass
 from inspector.config import EventSettings  # the [events] section: k, n, gap
 
 #: Columns of events.csv, in this order.
-EVENT_COLUMNS = ("event", "camera", "start", "end", "frames", "peak_frame", "peak_score")
+#: ``flagged_frames`` counts the flagged frames of the event (called ``frames`` before).
+EVENT_COLUMNS = ("event", "camera", "start", "end", "flagged_frames", "peak_frame",
+                 "peak_score")
 
 
 @dataclass(frozen=True)

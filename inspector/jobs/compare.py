@@ -135,7 +135,7 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
 def version_rows(store: Store, camera: str) -> list[dict]:
     """One dict per version: version, created, frames, first/last frame time, threshold,
     false-alarm rate guaranteed and any extrapolated target (None when there
-    is none), model, false alarms folded in, share of the view masked, text boxes masked,
+    is none), model, false alarms added, share of the view masked, text boxes masked,
     active, and ``check`` (see
     :meth:`inspector.storage.store.Store.check`: ok, unchecked or damaged, with the problem).
     A damaged version whose description cannot be read is listed with blanks."""

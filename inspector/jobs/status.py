@@ -101,7 +101,7 @@ COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
     ("scored", lambda f: str(f["scored"])),
     ("flagged", lambda f: str(f["flagged"])),
     ("skipped", lambda f: str(f["skipped"])),
-    ("waiting", lambda f: str(f["waiting"])),
+    ("no baseline yet", lambda f: str(f["waiting"])),  # not the frames queued (see lag)
     ("last frame", lambda f: f["last"] or "-"),
     ("lag", _lag),
     ("camera health", _health),

@@ -19,7 +19,9 @@ from html import escape
 from pathlib import Path
 from urllib.parse import urlencode
 
+from inspector.storage.labels import LABEL_TEXT as LABEL_WORDS
 from inspector.storage.ledger import read_scored
+from inspector.storage.results import OLD_COLUMNS
 
 #: All-scores files looked for in OUT for the timelines (``scan --all-scores OUT/all_scores.csv``).
 ALL_SCORES_NAMES = ("all_scores.csv", "scores.csv")
@@ -66,12 +68,15 @@ class Item:
 
 @dataclass(frozen=True)
 class Point:
+    """A scored frame on a timeline; ``item`` is what clicking it opens, ``path`` the frame."""
+
     camera: str
     time: datetime
     score: float
     threshold: float
     flagged: bool
     item: str
+    path: str = ""
 
 
 class Results:
@@ -139,7 +144,7 @@ class Results:
                     id=f"f{n}", kind="frame", camera=camera, rel=row["frame"],
                     path=self.path_of(row["frame"]), time=parse_time(row["time"]),
                     score=float(row["score"]), threshold=float(row["threshold"]),
-                    p_value=_float(row.get("p_value")), version=row.get("model") or "",
+                    p_value=_float(row.get("p_value")), version=_baseline(row),
                     overlay=self._overlay(camera, row.get("overlay") or "")))
             except (KeyError, TypeError, ValueError):
                 self.problems.append(f"flagged.csv row {n + 1} is malformed; left out")
@@ -161,7 +166,7 @@ class Results:
                 camera, peak = row["camera"], row["peak_frame"]
                 start, end = parse_time(row["start"]), parse_time(row["end"])
                 score = float(row["peak_score"])
-                count = int(float(row.get("frames") or 1))
+                count = int(float(row.get("flagged_frames") or row.get("frames") or 1))
             except (KeyError, TypeError, ValueError):
                 self.problems.append(f"events.csv row {n + 1} is malformed; left out")
                 continue
@@ -188,14 +193,14 @@ class Results:
         seen: dict[tuple[str, str], Point] = {}
         for f in flagged:
             seen[(f.camera, str(f.path))] = Point(f.camera, f.time, f.score, f.threshold, True,
-                                                  owner.get(str(f.path), f.id))
+                                                  owner.get(str(f.path), f.id), str(f.path))
         extra: list[tuple[str, Path, str, datetime, float, float, str]] = []
         for name in ALL_SCORES_NAMES:
             for row in _rows(self.out / name, None):
                 try:
                     extra.append((row["camera"], self.path_of(row["frame"]), row["frame"],
                                   parse_time(row["time"]), float(row["score"]),
-                                  float(row["threshold"]), row.get("model") or ""))
+                                  float(row["threshold"]), _baseline(row)))
                 except (KeyError, TypeError, ValueError):
                     continue
         extra += self._ledger()
@@ -209,7 +214,7 @@ class Results:
                         score=score, threshold=thr, p_value=math.nan, version=version,
                         flagged=score > thr, members=[str(path)])
             self.items[item.id] = item
-            seen[key] = Point(camera, when, score, thr, score > thr, item.id)
+            seen[key] = Point(camera, when, score, thr, score > thr, item.id, str(path))
         points = sorted(seen.values(), key=lambda p: (p.camera, p.time))
         by_cam: dict[str, list[Point]] = {}
         for p in points:
@@ -260,6 +265,12 @@ def _rows(path: Path, problems: list[str] | None):
             problems.append(f"{path.name} could not be read to the end: {exc}")
 
 
+def _baseline(row: dict) -> str:
+    """The baseline version of a results row (column ``model`` in folders written before the
+    column was named ``baseline``)."""
+    return row.get("baseline") or row.get(OLD_COLUMNS["baseline"]) or ""
+
+
 def _float(text) -> float:
     try:
         return float(text)
@@ -295,7 +306,11 @@ class Filters:
         return urlencode({k: v for k, v in values.items() if v not in ("", None)})
 
 
-LABEL_FILTERS = ("all", "unlabelled", "incident", "false_alarm", "unsure")
+#: The unreviewed state is called "to review" everywhere (filter value ``to_review``).
+UNREVIEWED = "to review"
+LABEL_FILTERS = ("all", "to_review", "incident", "false_alarm", "unsure")
+#: Former filter values still accepted (links saved before a rename).
+_OLD_FILTERS = {"unlabelled": "to_review"}
 SORTS = ("score", "newest")
 VIEWS = ("events", "frames")
 
@@ -313,6 +328,7 @@ def parse_filters(args) -> Filters:
 
     def choice(name, options):
         value = args.get(name) or options[0]
+        value = _OLD_FILTERS.get(value, value) if name == "label" else value
         if value not in options:
             raise ValueError(f"{name} must be one of {', '.join(options)}, not {value!r}")
         return value
@@ -336,9 +352,9 @@ def select(items: list[Item], f: Filters, labels: dict[tuple[str, str], str]) ->
         if f.until and it.time.date() > f.until:
             continue
         lab = labels.get((it.camera, str(it.path)), "")
-        if f.label == "unlabelled" and lab:
+        if f.label == "to_review" and lab:
             continue
-        if f.label not in ("all", "unlabelled") and lab != f.label:
+        if f.label not in ("all", "to_review") and lab != f.label:
             continue
         out.append(it)
     if f.sort == "newest":
@@ -356,11 +372,15 @@ def symlog(v: float) -> float:
 
 
 def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str,
-                 selected: str = "", width: int = 1200, height: int = 120) -> str:
+                 selected: str = "", width: int = 1200, height: int = 120,
+                 labels: dict[tuple[str, str], str] | None = None) -> str:
     """An inline SVG: score over capture time, the threshold line, events shaded.
 
-    Each point links to ``link + point.item`` (the page URL for that frame).
+    Each point links to ``link + point.item`` (the page URL for that frame). A flagged
+    frame is marked by its review label (``labels``: (camera, frame path) -> label): a
+    neutral ring while it is still to review, the label's colour once reviewed.
     """
+    labels = labels or {}
     pad_l, pad_r, pad_t, pad_b = 48, 12, 8, 22
     pw, ph = width - pad_l - pad_r, height - pad_t - pad_b
     pts = [p for p in points if p.camera == camera]
@@ -405,14 +425,19 @@ def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str
         parts.append(f'<polyline class="threshold" points="{coords}"><title>threshold'
                      f'</title></polyline>')
     for p in pts:
-        cls = "pt flagged" if p.flagged else "pt"
+        label = labels.get((p.camera, p.path), "")
+        cls = "pt"
+        if p.flagged or label:
+            cls += f" {label}" if label else " flagged"
         if p.item == selected:
             cls += " selected"
-        r = 4 if p.flagged else 2.5
+        r = 4 if p.flagged or label else 2.5
+        state = (f", {LABEL_WORDS.get(label, label)}" if label
+                 else f", flagged, {UNREVIEWED}" if p.flagged else "")
         parts.append(f'<a href="{escape(link + p.item)}" data-item="{escape(p.item)}">'
                      f'<circle class="{cls}" cx="{x(p.time.timestamp()):.1f}" '
                      f'cy="{y(p.score):.1f}" r="{r}"><title>{p.time:%Y-%m-%d %H:%M:%S}  score '
-                     f'{p.score:.2f}</title></circle></a>')
+                     f'{p.score:.2f}{state}</title></circle></a>')
     for v in _ticks(lo, hi):
         parts.append(f'<text class="tick" x="{pad_l - 4}" y="{y(v) + 4:.1f}" '
                      f'text-anchor="end">{_short(v)}</text>')

@@ -55,7 +55,14 @@ from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.compare import COMPARE_FRAMES, compare_versions, version_rows
 from inspector.jobs.scan import BaselineCache, read_args
-from inspector.review.data import Item, Results, parse_filters, select, timeline_svg
+from inspector.review.data import (
+    UNREVIEWED,
+    Item,
+    Results,
+    parse_filters,
+    select,
+    timeline_svg,
+)
 from inspector.storage.frames import FrameFile, read_frame, sniff
 from inspector.storage.labels import (
     LABEL_TEXT,
@@ -311,9 +318,10 @@ def index():
     page = render_template(
         "index.html", f=f, shown=shown, counts=_counts(cameras, items, label_of),
         cameras=cameras, current=current, detail=_detail(r, current, labels),
-        label_of=label_of, timelines=_timelines(results, f, shown_cams, link, current),
+        label_of=label_of, timelines=_timelines(results, f, shown_cams, link, current, label_of),
         versions=_versions(r.store, shown_cams), token=r.token, nonce=g.nonce,
-        labels=LABELS, label_text=LABEL_TEXT, link=link, results=results, fmt=_fmt)
+        labels=LABELS, label_text=LABEL_TEXT, unreviewed=UNREVIEWED, link=link,
+        results=results, fmt=_fmt)
     return Response(page, mimetype="text/html", headers={"Cache-Control": "no-store"})
 
 
@@ -327,12 +335,14 @@ def _counts(cameras: list[str], items: list[Item], label_of: dict) -> list[dict]
     return counts
 
 
-def _timelines(results: Results, f, cameras: list[str], link: str, current: Item | None):
+def _timelines(results: Results, f, cameras: list[str], link: str, current: Item | None,
+               label_of: dict[tuple[str, str], str]):
     events = [i for i in results.listed if i.kind == "event"]
     points = [p for p in results.points
               if (not f.since or p.time.date() >= f.since)
               and (not f.until or p.time.date() <= f.until)]
-    return [(cam, Markup(timeline_svg(cam, points, events, link, current.id if current else "")))
+    return [(cam, Markup(timeline_svg(cam, points, events, link,
+                                      current.id if current else "", labels=label_of)))
             for cam in cameras]
 
 

@@ -65,6 +65,10 @@ class Label:
 
 
 COLUMNS = tuple(f.name for f in fields(Label))
+#: Columns of ``labels export``: named as in the results files (``frame`` relative to the
+#: scanned folder, ``time`` the capture time, ``baseline`` the version that scored it).
+EXPORT_NAMES = {"rel": "frame", "capture_time": "time", "version": "baseline"}
+EXPORT_COLUMNS = tuple(EXPORT_NAMES.get(c, c) for c in COLUMNS)
 
 
 def connect(database: Path | str) -> sqlite3.Connection:
@@ -112,10 +116,11 @@ def read(conn: sqlite3.Connection, camera: str | None = None,
 
 
 def export_csv(labels: Sequence[Label], file: Path) -> None:
-    """Write labels as CSV with a header row (columns as in table ``labels``)."""
+    """Write labels as CSV with a header row (:data:`EXPORT_COLUMNS`, one per field of
+    :class:`Label`, in its order)."""
     with open(file, "w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
-        w.writerow(COLUMNS)
+        w.writerow(EXPORT_COLUMNS)
         for lab in labels:
             w.writerow(["" if v is None else v for v in astuple(lab)])
 

@@ -47,7 +47,11 @@ if TYPE_CHECKING:
     from inspector.storage.ledger import Ledger
 
 #: Columns of flagged.csv and of the all-scores file, in this order.
-COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "model", "overlay")
+#: ``baseline`` is the baseline version that scored the frame (files written before it was
+#: named so call the column ``model``; readers accept both, see :data:`OLD_COLUMNS`).
+COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "baseline", "overlay")
+#: Former names of columns, for readers of results folders written before a rename.
+OLD_COLUMNS = {"baseline": "model"}
 #: Columns of skipped.csv.
 SKIP_COLUMNS = ("frame", "camera", "reason")
 #: Columns of health.csv: camera health conditions, kept apart from anomalies.
@@ -55,9 +59,9 @@ HEALTH_COLUMNS = ("frame", "camera", "time", "condition", "measure", "limit")
 
 
 def format_row(frame: str, camera: str, time: str, score: float, threshold: float,
-               p_value: float, model: str, overlay: str) -> tuple[str, ...]:
+               p_value: float, baseline: str, overlay: str) -> tuple[str, ...]:
     """A row of flagged.csv / the all-scores file (``time`` already ISO 8601)."""
-    return (frame, camera, time, f"{score:.4f}", f"{threshold:.4f}", f"{p_value:.6g}", model,
+    return (frame, camera, time, f"{score:.4f}", f"{threshold:.4f}", f"{p_value:.6g}", baseline,
             overlay)
 
 

@@ -2,7 +2,7 @@
 (function () {
   "use strict";
   const token = document.querySelector('meta[name="review-token"]').content;
-  const TEXT = {incident: "incident", false_alarm: "false alarm", unsure: "unsure", "": "not yet labelled"};
+  const TEXT = {incident: "incident", false_alarm: "false alarm", unsure: "unsure", "": "to review"};
   const KEYS = {"1": "incident", "2": "false_alarm", "3": "unsure", "0": ""};
 
   function rows() { return Array.from(document.querySelectorAll("#items li.row")); }
@@ -22,39 +22,46 @@
     if (el) { el.textContent = text; el.className = bad ? "bad" : ""; }
   }
 
+  // A write to the server (token-protected); resolves to the JSON answer, or throws an
+  // Error whose message says why it was not done.
+  async function write(url, body) {
+    let resp;
+    try {
+      resp = await fetch(url, {
+        method: "POST",
+        headers: {"Content-Type": "application/json", "X-Review-Token": token},
+        body: JSON.stringify(body),
+      });
+    } catch (err) {
+      throw new Error("the review server did not answer");
+    }
+    let data = {};
+    try { data = await resp.json(); } catch (e) { /* keep the status text */ }
+    if (!resp.ok) throw new Error(data.error || resp.statusText);
+    return data;
+  }
+
+  function paint(badge, label) {
+    badge.textContent = TEXT[label];
+    badge.dataset.label = label;
+    badge.className = "badge b-" + (label || "none");
+  }
+
   async function setLabel(label) {
     const box = document.getElementById("labelling");
     if (!box) return;
     const note = document.getElementById("note").value;
     status("saving…");
-    let resp;
     try {
-      resp = await fetch("/api/label", {
-        method: "POST",
-        headers: {"Content-Type": "application/json", "X-Review-Token": token},
-        body: JSON.stringify({item: box.dataset.item, label: label || null, note: note}),
-      });
+      await write("/api/label", {item: box.dataset.item, label: label || null, note: note});
     } catch (err) {
-      status("not saved: the review server did not answer", true);
-      return;
-    }
-    if (!resp.ok) {
-      let msg = resp.statusText;
-      try { msg = (await resp.json()).error || msg; } catch (e) { /* keep status text */ }
-      status("not saved: " + msg, true);
+      status("not saved: " + err.message, true);
       return;
     }
     box.dataset.label = label;
-    const cur = document.getElementById("current-label");
-    cur.textContent = TEXT[label];
-    cur.className = "t-" + (label || "none");
+    paint(document.getElementById("current-label"), label);
     const row = document.querySelector('#items li[data-item="' + box.dataset.item + '"]');
-    if (row) {
-      const badge = row.querySelector(".badge");
-      badge.textContent = label ? TEXT[label] : "to review";
-      badge.dataset.label = label;
-      badge.className = "badge b-" + (label || "none");
-    }
+    if (row) paint(row.querySelector(".badge"), label);
     status("saved: " + TEXT[label]);
     if (label) setTimeout(function () { go(1); }, 300);
   }
@@ -87,21 +94,43 @@
     const lab = ev.target.closest("button.lab");
     if (lab) { setLabel(lab.dataset.label); return; }
     const cmp = ev.target.closest("button.compare");
-    if (cmp) {
-      const out = cmp.nextElementSibling;
-      out.textContent = " comparing…";
-      cmp.disabled = true;
-      const q = new URLSearchParams({camera: cmp.dataset.camera, version: cmp.dataset.version});
+    if (cmp) { compare(cmp); return; }
+    const act = ev.target.closest("button.activate");
+    if (act) {
+      const out = act.parentElement.querySelector(".compare-out");
+      act.disabled = true;
       try {
-        const resp = await fetch("/api/compare?" + q.toString());
-        const data = await resp.json();
-        out.textContent = " " + (resp.ok ? data.text : data.error);
+        const data = await write("/api/activate", {camera: act.dataset.camera,
+          version: act.dataset.version, active: act.dataset.active || ""});
+        out.textContent = " " + data.active + " is now active (was " + (data.was || "none") +
+          "); reloading…";
+        window.location.reload();
       } catch (err) {
-        out.textContent = " the review server did not answer";
+        out.textContent = " not switched: " + err.message;
+        act.hidden = true;
+        act.disabled = false;
       }
-      cmp.disabled = false;
     }
   });
+
+  // Switching the active baseline: first the comparison, then a confirming button.
+  async function compare(cmp) {
+    const cell = cmp.parentElement;
+    const out = cell.querySelector(".compare-out");
+    const act = cell.querySelector("button.activate");
+    out.textContent = " comparing with the active baseline…";
+    cmp.disabled = true;
+    const q = new URLSearchParams({camera: cmp.dataset.camera, version: cmp.dataset.version});
+    try {
+      const resp = await fetch("/api/compare?" + q.toString());
+      const data = await resp.json();
+      out.textContent = " " + (resp.ok ? data.text : data.error);
+      if (resp.ok) { act.dataset.active = data.active || ""; act.hidden = false; }
+    } catch (err) {
+      out.textContent = " the review server did not answer";
+    }
+    cmp.disabled = false;
+  }
 
   // Filters apply as soon as they change.
   const form = document.getElementById("filters");
