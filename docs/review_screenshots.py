@@ -25,7 +25,7 @@ sys.path.insert(0, str(HERE.parent / "tests"))
 from _review_run import Run, serving  # noqa: E402
 
 from inspector.demo.scenario import generate  # noqa: E402
-from inspector.review.server import LOOPBACK_NAMES, create_app  # noqa: E402
+from inspector.review.server import create_app  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 ARGS = ["--headless", "--disable-gpu", "--no-first-run", "--disable-background-networking",
@@ -59,8 +59,8 @@ def main_() -> int:
     work = Path(sys.argv[1]) if len(sys.argv) > 1 else Path(tempfile.mkdtemp(prefix="review-"))
     run = demo_run(work)
     token = "screenshot"
-    app = create_app(run.out, run.store, run.config, token=token, allowed_hosts=LOOPBACK_NAMES)
-    items = sorted(app.config["REVIEW_RESULTS"].frames, key=lambda i: -i.score)
+    app = create_app(run.out, run.store, run.config, token=token)
+    items = sorted(app.extensions["inspector_review"].results.frames, key=lambda i: -i.score)
     args = ARGS + (["--no-sandbox"] if os.geteuid() == 0 else [])
     logging.getLogger("werkzeug").setLevel(logging.WARNING)
     with serving(app) as url, sync_playwright() as p:

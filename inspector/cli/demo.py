@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 import csv
+import shutil
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +22,15 @@ def register(sub) -> None:
                         "(default: inspector-demo)")
     p.add_argument("--seed", type=int, default=0, help="random seed of the scenario (default 0)")
     p.set_defaults(func=cmd_demo)
+
+
+def _program() -> str:
+    """How to call inspector again: its name when that is on PATH, else the path run."""
+    run = Path(sys.argv[0])
+    on_path = shutil.which("inspector")
+    if run.name != "inspector" or (on_path and Path(on_path).resolve() == run.resolve()):
+        return "inspector"
+    return str(run)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -61,6 +72,6 @@ def cmd_demo(args: argparse.Namespace) -> int:
             f"false alarms {flagged[~y].sum()}/{(~y).sum()} normal frames")
     say(f"open the overlays in {out / 'overlays'} to see where each flag is")
     say("next, go through the flags and label them on the review page:")
-    say(f"  inspector review --out {out}")
+    say(f"  {_program()} review --out {out}")
     say(f"  then open http://127.0.0.1:{PORT}/ in a browser on this machine")
     return 0

@@ -116,9 +116,8 @@ class Hosts:
             wildcard = ipaddress.ip_address(bound).is_unspecified
         except ValueError:
             wildcard = False
-        if not is_loopback(bound):
-            name = socket.gethostname().lower()
-            names |= {name, name.split(".")[0]}
+        name = socket.gethostname().lower()
+        names |= {name, name.split(".")[0]}
         return cls(frozenset(n for n in names if n), wildcard)
 
     def allows(self, header: str) -> bool:
@@ -379,8 +378,11 @@ def image(item_id: str, kind: str):
         abort(404, f"no picture {kind!r}")
     path = r.frame(item)  # every picture of an item starts from its frame in the folder
     if kind == "frame":
-        with open(path, "rb") as fh:
-            mime = _MIME.get(sniff(fh.read(16)) or "", "application/octet-stream")
+        try:
+            with open(path, "rb") as fh:
+                mime = _MIME.get(sniff(fh.read(16)) or "", "application/octet-stream")
+        except OSError:
+            abort(404, NO_FILE)
         return _file_response(send_file(path, mimetype=mime, max_age=3600))
     saved = inside(r.results.out, item.overlay) if kind == "overlay" and item.overlay else None
     if saved is not None:
