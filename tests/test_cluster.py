@@ -248,7 +248,7 @@ def test_scan_leaves_out_frames_already_scored_unless_asked(site, capsys):
     assert main(args + ["--rescore"]) == 0
     said = capsys.readouterr().out
     assert "scored 21 frames" in said and "not scored again" not in said
-    versions = {r["frame"]: r["model"] for r in _rows(root / "out-rescore" / "flagged.csv")}
+    versions = {r["frame"]: r["baseline"] for r in _rows(root / "out-rescore" / "flagged.csv")}
     assert all(v == "v2" for f, v in versions.items() if f.startswith("gate/"))
 
 
