@@ -411,7 +411,7 @@ def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str
         x0, x1 = x(e.start.timestamp()), x(e.end.timestamp())
         parts.append(f'<a href="{escape(link + e.id)}"><rect class="event" x="{x0 - 2:.1f}" '
                      f'y="{pad_t}" width="{max(x1 - x0, 0) + 4:.1f}" height="{ph}">'
-                     f'<title>event {escape(e.event)}: {e.frames} frames, peak '
+                     f'<title>event {escape(e.event)}: {e.frames} flagged frames, peak '
                      f'{e.score:.2f}</title></rect></a>')
     line: list[tuple[float, float]] = []  # thresholds can change with the version: steps
     for p in pts:
