@@ -12,7 +12,8 @@ from inspector.jobs.status import CHECK_COLUMNS, check_store, format_table
 def register(sub) -> None:
     p = sub.add_parser("store", help="check the baseline store (e.g. after moving it to "
                                      "another machine)")
-    ssub = p.add_subparsers(dest="store_command", metavar="ACTION", parser_class=type(p))
+    ssub = p.add_subparsers(dest="store_command", metavar="ACTION", parser_class=type(p),
+                            help="what to do with the store:")
     ssub.required = True
     c = ssub.add_parser("check", help="verify the files of every baseline version and the "
                                       "SQLite files; exit 1 when anything is damaged")
