@@ -456,6 +456,17 @@ def test_switching_the_active_baseline_from_the_page(mine):
         assert mine.store.active_version("dock") == "v2"
         # the same request again: the comparison it rests on is out of date
         assert request(host, port, "POST", "/api/activate", body, **WRITE)[0] == 409
+        # a damaged version is neither compared nor switched to, with the reason
+        shutil.copytree(mine.store.root / "dock" / "v1", mine.store.root / "dock" / "v3")
+        (mine.store.root / "dock" / "v3" / "calibration.npz").write_bytes(b"not an npz")
+        write_ledger(mine.store.database, [(str(p), "dock", 1.0)
+                                           for p in sorted((mine.source / "dock").iterdir())])
+        status, _, why = request(host, port, "GET", "/api/compare?camera=dock&version=v3")
+        assert status == 200 and b"damaged" in why  # said, not a failure
+        damaged = json.dumps({"camera": "dock", "version": "v3", "active": "v2"}).encode()
+        assert request(host, port, "POST", "/api/activate", damaged, **WRITE)[0] == 409
+        assert mine.store.active_version("dock") == "v2"
+        assert request(host, port, "GET", "/?camera=dock")[0] == 200
         for bad in ({"camera": "dock", "version": "v9", "active": "v2"},
                     {"camera": "../dock", "version": "v1", "active": "v2"}, {"camera": 3}):
             assert request(host, port, "POST", "/api/activate", json.dumps(bad).encode(),

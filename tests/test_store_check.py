@@ -255,7 +255,7 @@ def test_watch_waits_for_a_damaged_camera_and_picks_it_up_when_a_good_version_is
                                         lambda: Store(store).activate("east", "v1"))
     assert "baseline east v2 is damaged (ppca.npz: " in said and "its frames wait" in said
     assert "east: baseline v1 is now active" in said
-    assert {x["model"] for x in scored if x["camera"] == "east"} == {"v1"}
+    assert {x["baseline"] for x in scored if x["camera"] == "east"} == {"v1"}
 
 
 def test_watch_picks_a_damaged_camera_up_when_its_files_are_put_back(

@@ -533,7 +533,10 @@ def _comparison(r: Review, camera: str, version: str) -> dict:
     active = r.store.active_version(camera)
     key = (camera, active or "", version)
     if key not in r.compared:
-        c = compare_versions(r.store, r.config, camera, active, version, COMPARE_FRAMES)
+        try:
+            c = compare_versions(r.store, r.config, camera, active, version, COMPARE_FRAMES)
+        except LookupError as exc:  # a damaged version: says what is wrong and what to do
+            abort(409, str(exc))
         ch = c.change
         r.compared[key] = {"camera": camera, "active": active, "version": version,
                            "text": c.text(), "frames": ch.frames if ch else 0,
@@ -556,7 +559,10 @@ def activate():
     if (shown["active"] or "") != seen:
         abort(409, f"the active version of {camera} is now {shown['active'] or 'none'}; "
                    "compare again before switching")
-    r.store.activate(camera, version)
+    try:
+        r.store.activate(camera, version)
+    except UsageError as exc:  # a damaged version is refused
+        abort(409, str(exc))
     r.baselines.forget(camera)
     return jsonify(camera=camera, active=version, was=shown["active"], text=shown["text"])
 
