@@ -43,7 +43,8 @@ def main() -> None:
     ap.add_argument("--frames", type=int, default=200, help="frames to scan (two cameras)")
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--size", default="960x540", help="frame size WxH (default 960x540)")
-    ap.add_argument("--normal", type=int, default=60, help="normal frames per camera to learn from")
+    ap.add_argument("--normal", type=int, default=60,
+                    help="normal frames per camera to learn from")
     ap.add_argument("--config", type=Path, help="TOML config (default: built-in settings)")
     ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
     args = ap.parse_args()
@@ -63,7 +64,8 @@ def run(work: Path, n: int, rounds: int, size: tuple[int, int], normal: int = 60
     t = time.perf_counter()
     scenario = generate(work / "frames", seed=1, normal_per_camera=normal,
                         new_per_camera=max(1, n // 2), incident_fraction=0.05, size=size)
-    print(f"generated {n} + {2 * normal} frames {size[0]}x{size[1]} in {time.perf_counter() - t:.1f} s")
+    print(f"generated {n} + {2 * normal} frames {size[0]}x{size[1]} in "
+          f"{time.perf_counter() - t:.1f} s")
     config = load_config(config_path)
     store = Store(work / "store")
     normal, _ = discover(scenario.normal)

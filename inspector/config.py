@@ -12,6 +12,7 @@ Relative paths in the file are taken from the folder inspector is run in.
 from __future__ import annotations
 
 import dataclasses
+import re
 import sys
 from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
@@ -24,6 +25,8 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
+#: ``[cluster] scheduler`` (or ``--scheduler``) naming worker processes on this machine.
+LOCAL_SCHEDULER = re.compile(r"^local:(\d+)$")
 #: Where the config is looked for when ``--config`` is not given.
 DEFAULT_CONFIG = Path("config") / "inspector.toml"
 
@@ -182,6 +185,35 @@ class EventSettings:
 
 
 @dataclass(frozen=True)
+class ClusterSettings:
+    """The ``[cluster]`` section of the config."""
+
+    #: "" runs on this machine; "local:N" starts N worker processes here; "tcp://host:8786"
+    #: uses a running Dask scheduler.
+    scheduler: str = ""
+    #: Consecutive frames of one camera scored by one task.
+    partition: int = 64
+    #: Times a task that fails is tried again before its frames are skipped (a task lost
+    #: with its worker is run again by Dask up to its ``allowed-failures``, 3 by default).
+    retries: int = 3
+    #: Seconds to wait for the scheduler to answer before giving up.
+    connect_timeout: float = 5.0
+    #: Baselines each worker process keeps loaded (least recently used ones are dropped).
+    cached_baselines: int = 8
+
+    @staticmethod
+    def check(s: "ClusterSettings", where: str) -> None:
+        if s.scheduler and not (LOCAL_SCHEDULER.match(s.scheduler) or "://" in s.scheduler):
+            raise UsageError(f"{where} scheduler = {s.scheduler!r}: expected 'local:N' or an "
+                             "address such as 'tcp://host:8786'")
+        for name, low in (("partition", 1), ("retries", 0), ("cached_baselines", 1)):
+            if getattr(s, name) < low:
+                raise UsageError(f"{where} {name} must be at least {low}")
+        if not s.connect_timeout > 0:
+            raise UsageError(f"{where} connect_timeout must be more than 0")
+
+
+@dataclass(frozen=True)
 class CameraMask:
     #: Polygons in pixel coordinates of the exported frame, each a list of [x, y].
     polygons: tuple[tuple[tuple[float, float], ...], ...] = ()
@@ -210,6 +242,7 @@ class Config:
     conditions: ConditionSettings = field(default_factory=ConditionSettings)
     watch: WatchSettings = field(default_factory=WatchSettings)
     events: EventSettings = field(default_factory=EventSettings)
+    cluster: ClusterSettings = field(default_factory=ClusterSettings)
     #: Raw per-camera tables, validated when read through :meth:`camera`.
     cameras: dict[str, dict[str, Any]] = field(default_factory=dict)
     #: Sections that other parts of the tool own, as read (see :meth:`section`).
@@ -275,7 +308,7 @@ def load_config(path: str | Path | None = None) -> Config:
     _moved_keys(data, src)
     known = {"paths": PathSettings, "frames": FrameSettings, "model": ModelSettings,
              "calibration": CalibrationSettings, "conditions": ConditionSettings,
-             "watch": WatchSettings, "events": EventSettings}
+             "watch": WatchSettings, "events": EventSettings, "cluster": ClusterSettings}
     built = {k: _build(cls, data.pop(k, {}), f"[{k}]", source=src) for k, cls in known.items()}
     cameras = data.pop("cameras", {})
     if not isinstance(cameras, dict) or not all(isinstance(v, dict) for v in cameras.values()):

@@ -22,6 +22,7 @@ pytest.importorskip("distributed")
 
 from inspector.cli.main import main  # noqa: E402
 from inspector.config import load_config  # noqa: E402
+from inspector.errors import UsageError  # noqa: E402
 from inspector.jobs import cluster as jc  # noqa: E402
 from inspector.jobs.scan import BaselineCache  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
@@ -76,7 +77,10 @@ def _same_rows(a: Path, b: Path) -> int:
     """The CSV files hold the same rows (in any order), floats to float tolerance."""
     ra, rb = _rows(a), _rows(b)
     assert len(ra) == len(rb)
-    key = (lambda r: tuple(v for k, v in r.items() if k not in FLOAT_COLUMNS | {"overlay"}))
+
+    def key(r):
+        return tuple(v for k, v in r.items() if k not in FLOAT_COLUMNS | {"overlay"})
+
     for x, y in zip(sorted(ra, key=key), sorted(rb, key=key)):
         assert key(x) == key(y)
         assert bool(x.get("overlay")) == bool(y.get("overlay"))
@@ -263,6 +267,10 @@ def test_an_unreachable_scheduler_is_one_line_and_exit_2(site, capsys):
                           "tcp://127.0.0.1:9") and err.count("\n") == 1
     assert main(["scan", str(root / "new"), "--scheduler", "somewhere"]) == 2
     assert "expected 'local:N'" in capsys.readouterr().err
+    bad = root / "bad-cluster.toml"
+    bad.write_text('[cluster]\npartition = 0\n', encoding="utf-8")
+    with pytest.raises(UsageError, match=r"\[cluster\] partition must be at least 1"):
+        load_config(bad)  # refused when the config is read, not mid-run
 
 
 def test_bench_smoke(tmp_path, small_config):

@@ -24,7 +24,6 @@ written to disk.
 
 from __future__ import annotations
 
-import re
 import threading
 import time
 from collections import Counter, OrderedDict, deque
@@ -36,7 +35,7 @@ from typing import Any
 
 import numpy as np
 
-from inspector.config import Config
+from inspector.config import LOCAL_SCHEDULER, ClusterSettings, Config
 from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.progress import progress_bar
@@ -45,40 +44,11 @@ from inspector.storage.frames import FrameFile, read_frame
 from inspector.storage.results import Skipped
 from inspector.storage.store import Store
 
-_LOCAL = re.compile(r"^local:(\d+)$")
-
-
-@dataclass(frozen=True)
-class ClusterSettings:
-    """The ``[cluster]`` section of the config."""
-
-    #: "" runs on this machine; "local:N" starts N worker processes here; "tcp://host:8786"
-    #: uses a running Dask scheduler.
-    scheduler: str = ""
-    #: Consecutive frames of one camera scored by one task.
-    partition: int = 64
-    #: Times a failed or lost task is tried again before its frames are skipped.
-    retries: int = 3
-    #: Seconds to wait for the scheduler to answer before giving up.
-    connect_timeout: float = 5.0
-    #: Baselines each worker process keeps loaded (least recently used ones are dropped).
-    cached_baselines: int = 8
-
-    @staticmethod
-    def check(s: "ClusterSettings", where: str) -> None:
-        if s.scheduler and not (_LOCAL.match(s.scheduler) or "://" in s.scheduler):
-            raise UsageError(f"{where} scheduler = {s.scheduler!r}: expected 'local:N' or an "
-                             "address such as 'tcp://host:8786'")
-        for name, low in (("partition", 1), ("retries", 0), ("cached_baselines", 1)):
-            if getattr(s, name) < low:
-                raise UsageError(f"{where} {name} must be at least {low}")
-        if not s.connect_timeout > 0:
-            raise UsageError(f"{where} connect_timeout must be more than 0")
 
 
 def cluster_settings(config: Config, scheduler: str | None = None) -> ClusterSettings:
     """The config's ``[cluster]`` settings, with ``scheduler`` (``--scheduler``) over it."""
-    s = config.section("cluster", ClusterSettings)
+    s = config.cluster
     if scheduler is not None:
         s = replace(s, scheduler=scheduler)
     ClusterSettings.check(s, "--scheduler" if scheduler is not None else "[cluster]")
@@ -107,7 +77,7 @@ def connect(settings: ClusterSettings) -> Iterator[Any]:
     except ImportError:
         raise UsageError("--scheduler needs dask and distributed: "
                          "pip install 'inspector[cluster]'") from None
-    local = _LOCAL.match(address)
+    local = LOCAL_SCHEDULER.match(address)
     if local:
         n = int(local.group(1))
         if n < 1:
@@ -302,8 +272,8 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
                 if type(exc).__name__ != "KilledWorker":
                     raise
                 writer.write(skipped=[
-                    Skipped(f.rel, f.camera, f"not scored: the workers scoring it were lost "
-                                             f"{settings.retries + 1} times")
+                    Skipped(f.rel, f.camera, "not scored: every Dask worker that took it "
+                                             "was lost (allowed-failures reached)")
                     for f in part.files])
             else:
                 recorder.replay(writer)
