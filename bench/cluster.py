@@ -9,7 +9,9 @@ this machine, then scans the same frames, ROUNDS times each, alternating between
 
 every scan the whole command's work (decode and score in the workers, CSV rows, overlays,
 ledger rows and events.csv by the one writer here), and prints the median frames/s of each
-and the speed-up of 2 workers over 1. The workers' first baseline loads are in the first
+and the speed-up of 2 workers over 1. Then it times the one writer alone (the scored
+results replayed into a fresh results folder and ledger): the most frames per second one
+driver can take in, however many workers score. The workers' first baseline loads are in the first
 round; the median leaves them out. On a machine with fewer free cores than workers the
 speed-up says so.
 
@@ -32,9 +34,12 @@ sys.path.insert(0, str(ROOT))
 
 from inspector.config import load_config  # noqa: E402
 from inspector.demo.scenario import generate  # noqa: E402
+from inspector.jobs.cluster import partitions, score_part  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
+from inspector.storage.ledger import Ledger  # noqa: E402
+from inspector.storage.results import ResultWriter  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 
@@ -89,9 +94,24 @@ def run(work: Path, n: int, rounds: int, size: tuple[int, int], normal: int = 60
                 rates[name].append(summary.scored / (time.perf_counter() - t))
             print(f"round {r + 1}: " + ", ".join(f"{k} {v[-1]:.1f}" for k, v in rates.items())
                   + " frames/s")
+    # The driver's share alone: every partition's results, scored here beforehand, replayed
+    # into the one writer (CSV rows, overlays, maps of nothing, ledger rows, events.csv).
+    files, _ = discover(scenario.new)
+    root = str(store.root.resolve())
+    records = [score_part(p, root, config, 8)[0] for p in partitions(files, store, 64)]
+    out = work / "out-writer"
+    t = time.perf_counter()
+    with Ledger(work / "writer.sqlite") as ledger, \
+            ResultWriter(out, out / "all.csv", source=scenario.new, store=store.root,
+                         ledger=ledger, events=config.events) as writer:
+        for record in records:
+            record.replay(writer)
+    writer_rate = writer.counts["scored"] / (time.perf_counter() - t)
     med = {k: statistics.median(v) for k, v in rates.items()}
     print(f"median over {rounds} rounds of {summary.scored} frames: "
           + ", ".join(f"{k} {v:.1f} frames/s" for k, v in med.items()))
+    print(f"the one writer alone (results replayed, {writer.counts['flagged']} flagged): "
+          f"{writer_rate:.0f} frames/s, the most one driver takes in")
     print(f"speed-up of 2 workers over 1: {med['2 workers'] / med['1 worker']:.2f} "
           f"(cores {os.cpu_count()}, load average {os.getloadavg()[0]:.1f})")
 
