@@ -166,20 +166,20 @@ class Recorder:
     """
 
     def __init__(self):
-        self.calls: list[tuple[str, tuple]] = []
+        self.calls: list[tuple[list, list, Any]] = []
         self.counts: Counter[str] = Counter()
 
     def write(self, results=(), skipped=(), seen=None) -> list[str]:
         slim = [r if r.flagged else replace(r, image=np.zeros((0, 0, 3), np.uint8))
                 for r in results]
         if slim or skipped:
-            self.calls.append((slim, list(skipped)))
+            self.calls.append((slim, list(skipped), seen))
         return ["" for _ in slim]
 
     def replay(self, writer) -> None:
         """Make the recorded calls on ``writer``, in the order they were made."""
-        for results, skipped in self.calls:
-            writer.write(results, skipped)
+        for results, skipped, seen in self.calls:
+            writer.write(results, skipped, seen)
 
 
 @dataclass
