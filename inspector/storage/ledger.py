@@ -198,12 +198,12 @@ class Ledger:
         return found
 
     def unchanged_scored(self, paths: Sequence[Path | str]) -> dict[str, sqlite3.Row]:
-        """Rows of the frames among ``paths`` scored before whose file still has the size and
-        modification time recorded then (scoring them again gives what the row holds, unless
-        the baseline changed: compare the row's ``version``)."""
+        """Rows of the frames among ``paths`` scored before, with their CSV rows written,
+        whose file still has the size and modification time recorded then (scoring them
+        again gives what the row holds, unless the baseline changed: compare ``version``)."""
         found = {}
         for path, row in self.lookup([str(p) for p in paths]).items():
-            if row["status"] != "scored":
+            if row["status"] != "scored" or not row["written"]:
                 continue
             try:
                 st = os.stat(path)
