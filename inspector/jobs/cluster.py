@@ -321,13 +321,15 @@ def learn_on_cluster(client, tasks: Sequence[dict]) -> Iterator:
     cluster; yields the reports in the order of ``tasks``. An error of one camera (e.g. too
     few frames) is raised when its turn comes.
 
-    Several cameras are learnt at once, one task each. A single camera is learnt here with
-    its model's passes over the frames in the workers (:class:`ClusterPool`): the moments of
-    each time block accumulated there and added here, the held-out blocks scored there.
+    Several cameras are learnt at once, one task each. A single camera whose model can
+    (PPCA) is learnt here with its model's passes over the frames in the workers
+    (:class:`ClusterPool`): the moments of each time block accumulated there and added
+    here, the held-out blocks scored there.
     """
-    from inspector.jobs.learn import learn_camera
+    from inspector.core.models import model_class
+    from inspector.jobs.learn import learn_camera, takes_pool
 
-    if len(tasks) == 1:
+    if len(tasks) == 1 and takes_pool(model_class(tasks[0]["cfg"].model.model)):
         yield learn_camera(**tasks[0], pool=ClusterPool(client))
         return
     futures = [client.submit(learn_camera, pure=False, **t) for t in tasks]

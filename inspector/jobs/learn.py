@@ -248,7 +248,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                               cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
                               else 0.0)
     try:
-        pooled = {"pool": pool} if pool is not None and _takes_pool(model) else {}
+        pooled = {"pool": pool} if pool is not None and takes_pool(model) else {}
         held = model.fit(prepared, mask, **pooled)
     except ValueError as exc:
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
@@ -402,7 +402,8 @@ def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store
                            store)
 
 
-def _takes_pool(model) -> bool:
+def takes_pool(model) -> bool:
+    """Whether a model (or model class) can fit with a pool of workers (``fit(pool=)``)."""
     import inspect
 
     return "pool" in inspect.signature(model.fit).parameters
