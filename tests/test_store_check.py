@@ -24,7 +24,7 @@ from pathlib import Path
 from types import SimpleNamespace
 
 import pytest
-from test_watch import frame_bytes, name
+from test_watch import learnt_site, name
 
 from inspector.cli import main as cli
 from inspector.storage.store import Store
@@ -37,16 +37,7 @@ NEW = range(100, 104)
 def site(tmp_path_factory):
     """Cameras east and west, 20 normal frames each learnt with PPCA (v1), 4 new each."""
     base = tmp_path_factory.mktemp("damage")
-    cfg = base / "inspector.toml"
-    cfg.write_text("[frames]\nlong_side = 64\n[calibration]\nfolds = 2\n"
-                   "[watch]\nsettle = 0.5\n", encoding="utf-8")
-    for part, indices in (("normal", range(20)), ("new", NEW)):
-        for cam in ("east", "west"):
-            (base / part / cam).mkdir(parents=True)
-            for i in indices:
-                (base / part / cam / name(cam, i)).write_bytes(frame_bytes(1000 + i))
-    assert cli.main(["learn", str(base / "normal"), "--store", str(base / "store"),
-                     "--config", str(cfg)]) == 0
+    learnt_site(base, ("east", "west"), "settle = 0.5\n", NEW)
     return base
 
 

@@ -46,21 +46,29 @@ def name(camera: str, i: int) -> str:
     return f"{camera}_20260105_{i // 3600:02d}{i // 60 % 60:02d}{i % 60:02d}.png"
 
 
+def learnt_site(base: Path, cameras, watch: str, new=()) -> Path:
+    """Under ``base``: a small config (64 px frames, 2 folds, ``[watch]`` keys ``watch``),
+    20 normal frames of each camera learnt into ``base/store`` and the frames ``new`` of
+    each camera in ``base/new``. Returns the config file."""
+    cfg = base / "inspector.toml"
+    cfg.write_text(f"[frames]\nlong_side = 64\n[calibration]\nfolds = 2\n[watch]\n{watch}",
+                   encoding="utf-8")
+    for part, indices in (("normal", range(20)), ("new", new)):
+        for cam in cameras:
+            for i in indices:
+                (base / part / cam).mkdir(parents=True, exist_ok=True)
+                (base / part / cam / name(cam, i)).write_bytes(frame_bytes(1000 + i))
+    assert cli.main(["learn", str(base / "normal"), "--store", str(base / "store"),
+                     "--config", str(cfg)]) == 0
+    return cfg
+
+
 @pytest.fixture(scope="module")
 def setup(tmp_path_factory):
     """A store with baselines for cameras dock and aisle, and a small config."""
     base = tmp_path_factory.mktemp("watch")
-    cfg = base / "inspector.toml"
-    cfg.write_text("[frames]\nlong_side = 64\n[calibration]\nfolds = 2\n"
-                   "[watch]\nsettle = 1.0\nworkers = 2\n", encoding="utf-8")
-    normal = base / "normal"
-    for cam in ("dock", "aisle"):
-        (normal / cam).mkdir(parents=True)
-        for i in range(20):
-            (normal / cam / name(cam, i)).write_bytes(frame_bytes(1000 + i))
-    store = base / "store"
-    assert cli.main(["learn", str(normal), "--store", str(store), "--config", str(cfg)]) == 0
-    return {"base": base, "cfg": cfg, "store": store, "normal": normal}
+    cfg = learnt_site(base, ("dock", "aisle"), "settle = 1.0\nworkers = 2\n")
+    return {"base": base, "cfg": cfg, "store": base / "store", "normal": base / "normal"}
 
 
 @pytest.fixture
