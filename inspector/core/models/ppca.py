@@ -302,6 +302,12 @@ class PatchPPCA(DensityModel):
         saturated areas from becoming infinitely sensitive to compression noise.
     batch_size : int
         Frames per batch while fitting and scoring.
+    calibrate_from : float
+        Blocks are scored for calibration only once the frames before them make at least
+        this share of all frames: a model of a fifth of the frames scores new ones far
+        higher than the final model of all of them would, which makes the threshold
+        needlessly high. The default, a half, keeps the newest blocks (at least 40% of the
+        frames with 5 blocks) for calibration.
 
     Attributes
     ----------
@@ -318,7 +324,7 @@ class PatchPPCA(DensityModel):
 
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
-                 batch_size: int = 32):
+                 batch_size: int = 32, calibrate_from: float = 0.5):
         self.patch = patch
         self.stride = stride
         self.colour = colour
@@ -327,6 +333,7 @@ class PatchPPCA(DensityModel):
         self.max_latent = max_latent
         self.var_floor = var_floor
         self.batch_size = batch_size
+        self.calibrate_from = calibrate_from
 
     # fitting
 
@@ -335,7 +342,8 @@ class PatchPPCA(DensityModel):
         frames before it (forward chaining over the time blocks).
 
         The frames of block k are scored by the model fitted on blocks 0 .. k-1 (its latent
-        size chosen from those frames only); block 0 only trains. Calibration scores thus
+        size chosen from those frames only), for the blocks k whose frames before them
+        make at least ``calibrate_from`` of all; earlier blocks only train. Calibration scores thus
         come, like scan scores, from frames later than every frame their model saw, so the
         threshold holds for frames that follow the normal set under slow drift (models that
         interpolate between blocks on both sides would not). Training frames may be varied
@@ -360,7 +368,7 @@ class PatchPPCA(DensityModel):
         Returns
         -------
         HeldOut
-            Raw maps of the frames of blocks 1 .. K-1, each from the model fitted on the
+            Raw maps of the frames of the scored blocks, each from the model fitted on the
             blocks before its own.
         """
         w, h = source.size
@@ -373,15 +381,19 @@ class PatchPPCA(DensityModel):
         blocks = np.asarray(source.blocks)
         labels, block_of = np.unique(blocks, return_inverse=True)
         order = np.argsort(block_of, kind="stable")
+        before = np.cumsum(np.bincount(block_of, minlength=len(labels))) - np.bincount(
+            block_of, minlength=len(labels))
+        first = int(np.argmax(np.r_[before >= self.calibrate_from * len(blocks), True]))
+        first = max(first, 1)
         if pool is None:
-            moments, folds = self._forward_pass(source, order, block_of, len(labels))
+            moments, folds = self._forward_pass(source, order, block_of, len(labels), first)
         else:
             moments = Moments(len(labels), L, d, block_scatter=True)
             for part in _pooled(pool, _block_moments, self, source,
                                 _pieces(order, blocks, labels, pool)):
                 moments.merge(part)
             jobs = []
-            for k in range(1, len(labels)):
+            for k in range(first, len(labels)):
                 if moments.count[:k].sum() < 2 or not moments.count[k]:
                     continue
                 m_k, c_k, _ = moments.mean_cov(before=k)
@@ -401,9 +413,10 @@ class PatchPPCA(DensityModel):
         return HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32))
 
     def _forward_pass(self, source: FrameSource, order: np.ndarray, block_of: np.ndarray,
-                      n_blocks: int) -> tuple[Moments, list]:
-        """One pass in time order: score each block with the model of the moments so far,
-        then add it. Returns the moments and ``[[(positions, raw maps)], ...]``."""
+                      n_blocks: int, first: int) -> tuple[Moments, list]:
+        """One pass in time order: score each block from ``first`` on with the model of the
+        moments so far, then add it. Returns the moments and
+        ``[[(positions, raw maps)], ...]``."""
         moments = Moments(n_blocks, self.grid_[0] * self.grid_[1],
                           feature_size(self.patch, self.colour))
         held: list[tuple[np.ndarray, np.ndarray]] = []
@@ -414,7 +427,7 @@ class PatchPPCA(DensityModel):
                 sel = b_of == b
                 if b != current:  # a new block: fit the model of everything before it
                     current = b
-                    ready = moments.count.sum() >= 2
+                    ready = b >= first and moments.count.sum() >= 2
                     if ready:
                         m_k, c_k, _ = moments.mean_cov()
                         self._set(m_k, *self._fit_params(c_k))
