@@ -71,7 +71,7 @@ def test_model_fit_score_save_load_roundtrip(tmp_path):
     imgs = np.clip(base + rng.normal(0, 4, (40, 32, 48, 3)), 0, 255).astype(np.uint8)
     model = PatchPPCA(patch=8, stride=4, latent=4)
     held = model.fit(ArraySource(imgs, folds=4))
-    # Forward chaining: every frame of the blocks after the first half is held out once,
+    # Forward chaining: every frame of the blocks after the first 40% is held out once,
     # scored by the model of the blocks before it (the same as a model of those frames alone).
     assert sorted(held.index) == list(range(20, 40))
     early = PatchPPCA(patch=8, stride=4, latent=4)

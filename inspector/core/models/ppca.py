@@ -306,8 +306,9 @@ class PatchPPCA(DensityModel):
         Blocks are scored for calibration only once the frames before them make at least
         this share of all frames: a model of a fifth of the frames scores new ones far
         higher than the final model of all of them would, which makes the threshold
-        needlessly high. The default, a half, keeps the newest blocks (at least 40% of the
-        frames with 5 blocks) for calibration.
+        needlessly high (and the per-cell standardisation is only consistent between
+        models of similar quality). The default keeps the newest 60% of the frames with 5
+        blocks, the newest third with 3.
 
     Attributes
     ----------
@@ -324,7 +325,7 @@ class PatchPPCA(DensityModel):
 
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
-                 batch_size: int = 32, calibrate_from: float = 0.5):
+                 batch_size: int = 32, calibrate_from: float = 0.4):
         self.patch = patch
         self.stride = stride
         self.colour = colour
