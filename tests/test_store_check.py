@@ -97,11 +97,11 @@ def scan_two_cameras(site, store: Path, tmp_path: Path, damaged: str, reason: st
 
 
 @pytest.mark.parametrize("file, how, problem", [
-    ("ppca.npz", "truncate", "ppca.npz: "),
+    ("ppca.npz", "truncate", "ppca.npz: cut short ("),
     ("ppca.npz", "flip", "ppca.npz: checksum mismatch"),
     ("ppca.npz", "delete", "ppca.npz: missing"),
     ("calibration.npz", "flip", "calibration.npz: checksum mismatch"),
-    ("conditions.npz", "truncate", "conditions.npz: "),
+    ("conditions.npz", "truncate", "conditions.npz: cut short ("),
     ("baseline.json", "edit", "baseline.json: checksum mismatch"),
     ("baseline.json", "truncate", "baseline.json: not valid JSON"),
     ("baseline.json", "delete", "baseline.json: missing"),

@@ -290,6 +290,8 @@ class Store:
                 return damaged(f"{name}: missing")
             except OSError as exc:
                 return damaged(f"{name}: cannot be read ({exc.strerror or exc})")
+            if isinstance(want.get("bytes"), int) and got["bytes"] < want["bytes"]:
+                return damaged(f"{name}: cut short ({got['bytes']} of {want['bytes']} bytes)")
             if got["bytes"] != want.get("bytes"):
                 return damaged(f"{name}: {got['bytes']} bytes, {want.get('bytes')} recorded")
             if got["sha256"] != want.get("sha256"):
