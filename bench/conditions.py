@@ -85,7 +85,7 @@ def run(root: Path, work: Path, handling: str, long_side: int, alpha: float):
     return k, len(normal), auc, found, len(faults), flagged_faults
 
 
-def main() -> None:
+def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--normal", type=int, default=160)
     ap.add_argument("--new", type=int, default=100)
@@ -96,7 +96,7 @@ def main() -> None:
                     help="nuisances to run (all by default)")
     ap.add_argument("--handling", nargs="*", default=list(HANDLING), choices=list(HANDLING),
                     help="handlings to compare (all by default)")
-    args = ap.parse_args()
+    args = ap.parse_args(argv)
     print(f"{args.normal} normal frames and {args.new} to scan per camera (dock, aisle), "
           f"320x180, long side {args.long_side}, alpha {args.alpha}")
     print("| nuisance | handling | false alarms on normal | 95 % interval | AUROC | "
@@ -119,7 +119,8 @@ def main() -> None:
                 ff_txt = f"{ff}/{faults}" if faults else "-"
                 print(f"| {name} | {handling} | {k}/{n} = {k / n:.3f} | [{lo:.3f}, {hi:.3f}] | "
                       f"{auc:.3f} | {fault_txt} | {ff_txt} |", flush=True)
+    return 0
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main())

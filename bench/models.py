@@ -57,6 +57,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--new", type=int, default=120, help="frames to scan per camera")
     ap.add_argument("--models", default="ppca,vae")
     ap.add_argument("--cameras", default="dock,aisle")
+    ap.add_argument("--long-side", type=int, default=0,
+                    help="working long side (default: the tool's default)")
     ap.add_argument("--no-stamp-mask", action="store_true",
                     help="do not mask the burned-in timestamp (its digits on the scan day "
                          "never occur in the normal frames, so every model flags them)")
@@ -74,6 +76,9 @@ def run(root: Path, args: argparse.Namespace) -> int:
     print(f"scenario: {args.normal} normal + {args.new} new frames per camera "
           f"({time.perf_counter() - t0:.1f} s to render)", file=sys.stderr)
     config = Config()
+    if args.long_side:
+        config = dataclasses.replace(config, frames=dataclasses.replace(
+            config.frames, long_side=args.long_side))
     if not args.no_stamp_mask:
         config = dataclasses.replace(config, cameras={
             cam: {"mask_polygons": [STAMP]} for cam in args.cameras.split(",")})
@@ -158,7 +163,8 @@ def _table(rows: list[dict], args: argparse.Namespace) -> None:
     import os
 
     print(f"\nPPCA vs VAE on the demo scenario (seed {args.seed}, {args.normal} normal and "
-          f"{args.new} new frames per camera, working size 320 long side, timestamp "
+          f"{args.new} new frames per camera, working size "
+          f"{args.long_side or Config().frames.long_side} long side, timestamp "
           f"{'not ' if args.no_stamp_mask else ''}masked; load average "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs)\n")
     head = (f"{'camera':<7}{'model':<6}{'image AUROC':>12}{'pixel AUROC':>12}{'train s':>9}"

@@ -46,12 +46,14 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--normal", type=int, default=120, help="normal frames per camera")
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--size", default="1920x1080", help="exported frame size, WxH")
+    ap.add_argument("--long-side", type=int, default=0,
+                    help="working long side (default: the tool's default)")
     ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
     args = ap.parse_args(argv)
     work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-bench-"))
     size = tuple(int(v) for v in args.size.lower().split("x"))
     try:
-        run(work, args.frames, args.rounds, args.normal, size)
+        run(work, args.frames, args.rounds, args.normal, size, args.long_side)
     finally:
         if not args.keep:
             shutil.rmtree(work, ignore_errors=True)
@@ -59,7 +61,7 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def run(work: Path, n: int, rounds: int, normal: int = 120,
-        size: tuple[int, int] = (1920, 1080)) -> None:
+        size: tuple[int, int] = (1920, 1080), long_side: int = 0) -> None:
     t = time.perf_counter()
     # Mostly normal frames, as in a real stream (overlays are drawn for flagged frames only).
     if not (work / "frames" / "new").is_dir():
@@ -68,11 +70,13 @@ def run(work: Path, n: int, rounds: int, normal: int = 120,
     scenario = SimpleNamespace(normal=work / "frames" / "normal", new=work / "frames" / "new")
     print(f"{n} + {2 * normal} frames of {size[0]}x{size[1]} ready in "
           f"{time.perf_counter() - t:.1f} s")
-    config = load_config(None)
+    cfg = work / "inspector.toml"
+    cfg.write_text(f"[frames]\nlong_side = {long_side}\n" if long_side else "", encoding="utf-8")
+    config = load_config(cfg)
     store = Store(work / "store")
     normal, _ = discover(scenario.normal)
     for report in learn_cameras(normal, config, store):
-        print(f"learnt {report.camera} from {report.frames} full-HD frames in "
+        print(f"learnt {report.camera} from {report.frames} frames in "
               f"{report.seconds:.1f} s")
     files, _ = discover(scenario.new)
     baselines = BaselineCache(store)

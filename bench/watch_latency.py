@@ -38,7 +38,7 @@ from inspector.cli import main as cli  # noqa: E402
 SAMPLES = ROOT / "sample_frames"
 
 
-def main() -> None:
+def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rate", type=float, default=20.0, help="frames per second, all cameras")
     ap.add_argument("--seconds", type=float, default=60.0)
@@ -47,7 +47,7 @@ def main() -> None:
     ap.add_argument("--long-side", type=int, default=0,
                     help="working long side (default: the tool's default)")
     ap.add_argument("--keep", action="store_true", help="keep the temporary folder")
-    args = ap.parse_args()
+    args = ap.parse_args(argv)
 
     tmp = Path(tempfile.mkdtemp(prefix="watch-bench-"))
     try:
@@ -57,6 +57,18 @@ def main() -> None:
             print(f"kept {tmp}")
         else:
             shutil.rmtree(tmp, ignore_errors=True)
+    return 0
+
+
+def peak_rss(pid: int) -> int:
+    """Peak resident memory of a running process in bytes (Linux ``VmHWM``), 0 if unknown."""
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return 0
 
 
 def run(args, tmp: Path) -> None:
@@ -99,12 +111,14 @@ def run(args, tmp: Path) -> None:
     start = time.time()
     clock = datetime(2026, 12, 1, 8, 0, 0)
     next_sample = start
+    peak = 0
     for k in range(total):
         due = start + k / args.rate
         while True:
             now = time.time()
             if now >= next_sample:
                 backlog.append((now - start, len(complete) - count(db)))
+                peak = max(peak, peak_rss(proc.pid))
                 next_sample += 1.0
             if now >= due:
                 break
@@ -117,6 +131,9 @@ def run(args, tmp: Path) -> None:
             fh.write(data)
         complete[rel] = time.time()
     wrote = time.time() - start
+    while proc.poll() is None:  # the watcher's peak memory until it leaves
+        peak = max(peak, peak_rss(proc.pid))
+        time.sleep(0.2)
     proc.wait(timeout=600)
     reader.join(timeout=5)
 
@@ -145,6 +162,8 @@ def run(args, tmp: Path) -> None:
           f"({'meets' if p95 <= target else 'misses'} the target)")
     print(f"backlog (frames written, not yet scored): mean {early:.1f} in the 2nd quarter, "
           f"{late:.1f} in the last quarter; backlog grew: {'yes' if grew else 'no'}")
+    print(f"watcher peak resident memory: {peak / 2**20:.0f} MiB; peak / 1 GiB = "
+          f"{peak / 2**30:.2f} ({'meets' if peak <= 2**30 else 'misses'} the 1 GB target)")
     lag_lines = [ln.strip() for ln in log if "lag:" in ln]
     if lag_lines:
         print(f"watcher logged lag {len(lag_lines)} times, last: {lag_lines[-1]}")
@@ -164,4 +183,4 @@ def count(db: Path) -> int:
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main())
