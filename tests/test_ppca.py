@@ -131,3 +131,16 @@ def test_block_scoring_with_a_mask_equals_the_reference_formula():
     ref = ppca_nll(X.astype(np.float64), model.mean_.astype(np.float64), model.W_,
                    model.sigma2_, model.observed_)
     np.testing.assert_allclose(model.patch_nll(imgs[:5]), ref, rtol=2e-4, atol=2e-2)
+
+
+def test_expected_patches_unchanged_by_the_block_order():
+    # B kept in block order gives back the feature-order B of ppca_precompute
+    from inspector.core.models.ppca import ppca_precompute
+
+    rng = np.random.default_rng(7)
+    imgs = rng.integers(0, 255, size=(20, 16, 24, 3)).astype(np.uint8)
+    model = PatchPPCA(patch=8, stride=4, latent=2)
+    model.fit(ArraySource(imgs, folds=2))
+    B, _, _ = ppca_precompute(model.W_, model.sigma2_, model.observed_)
+    np.testing.assert_allclose(model._b(), B, rtol=1e-5, atol=1e-6)
+    assert model.expected(imgs[:2]).shape == (2, 16, 24, 3)

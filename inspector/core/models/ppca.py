@@ -143,6 +143,7 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
     d_obs : ndarray, shape (L,)
         Number of observed entries.
     """
+    W = np.asarray(W, np.float64)
     L, d, q = W.shape
     d_obs = observed.sum(axis=1).astype(np.float64) if observed is not None else np.full(L, float(d))
     M = np.matmul(W.transpose(0, 2, 1), W) + sigma2[:, None, None] * np.eye(q)
@@ -451,12 +452,18 @@ class PatchPPCA(DensityModel):
 
     def _prepare(self) -> None:
         B, logdet, d_obs = ppca_precompute(self.W_, self.sigma2_, self.observed_)
-        self._B = B.astype(np.float32)
         self._mean_grey = self.mean_ * np.float32(255)
         self._logdet, self._d_obs = logdet, d_obs
         r = self.patch // self.stride
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
-        self._blocks = _BlockLayout.build(self)
+        B = B.astype(np.float32)
+        # One float32 copy of B is kept: in block order when scoring goes by blocks.
+        self._blocks = _BlockLayout.build(self, B)
+        self._B = B if self._blocks is None else None
+
+    def _b(self) -> np.ndarray:
+        """``B`` of :func:`ppca_precompute` in feature order, (L, d, q) float32."""
+        return self._B if self._B is not None else self._blocks.feature_order()
 
     # scoring
 
@@ -468,7 +475,7 @@ class PatchPPCA(DensityModel):
         # to the per-location sums instead of the whole array).
         R = patch_features(images, self.patch, self.stride, self.colour,
                            center=self._mean_grey, scale=1.0)
-        return _nll(R, None, self._B, self.sigma2_, self._logdet, self._d_obs,
+        return _nll(R, None, self._b(), self.sigma2_, self._logdet, self._d_obs,
                     self.observed_, unit=1 / 255)
 
     def score_maps(self, images: np.ndarray) -> np.ndarray:
@@ -492,7 +499,8 @@ class PatchPPCA(DensityModel):
         R = (X - self.mean_[None]).transpose(1, 0, 2)
         if self.observed_ is not None:
             R = R * self.observed_[:, None, :]
-        proj = np.matmul(np.matmul(R, self._B), self._B.transpose(0, 2, 1))  # W M^-1 W^T r
+        B = self._b()
+        proj = np.matmul(np.matmul(R, B), B.transpose(0, 2, 1))  # W M^-1 W^T r
         Xhat = (proj.transpose(1, 0, 2) + self.mean_[None]).astype(np.float32)
         return _unpatch(Xhat, images.shape[1:3], self.grid_, self.patch, self.stride,
                         self.colour)
@@ -516,7 +524,7 @@ class PatchPPCA(DensityModel):
         model = cls(**params)
         with np.load(Path(directory) / "ppca.npz", allow_pickle=False) as z:
             model.mean_ = z["mean"]
-            model.W_ = z["W"].astype(np.float64)
+            model.W_ = z["W"]  # float32 as saved; precomputed in float64
             model.sigma2_ = z["sigma2"]
             model.grid_ = tuple(int(v) for v in z["grid"])
             model.n_frames_ = int(z["n_frames"])
@@ -592,12 +600,18 @@ class _BlockLayout:
     norm the sum of its blocks' squared norms.
     """
 
-    def __init__(self, B, mean, observed, grid, r, stride, colour):
-        self.B, self.mean, self.observed = B, mean, observed
+    def __init__(self, B, perm, mean, observed, grid, r, stride, colour):
+        self.B, self.perm, self.mean, self.observed = B, perm, mean, observed
         self.grid, self.r, self.stride, self.colour = grid, r, stride, colour
 
+    def feature_order(self) -> np.ndarray:
+        """``B`` back in feature order, (L, d, q) float32 (made on demand)."""
+        gh, gw = self.grid
+        blocked = np.concatenate(self.B, axis=2).reshape(gh * gw, len(self.perm), -1)
+        return blocked[:, np.argsort(self.perm), :]
+
     @classmethod
-    def build(cls, model: "PatchPPCA") -> "_BlockLayout | None":
+    def build(cls, model: "PatchPPCA", B: np.ndarray) -> "_BlockLayout | None":
         """The layout of a fitted model, or None when its patches do not split into blocks
         (or, defensively, when a pixel's mean differs between the patches covering it)."""
         p, s, colour = model.patch, model.stride, model.colour
@@ -629,11 +643,11 @@ class _BlockLayout:
             if (np.abs(mean[a:a + gh, b:b + gw] - per_loc[:, :, a, b]).max() > 1e-3
                     or (obs[a:a + gh, b:b + gw] != seen[:, :, a, b]).any()):
                 return None
-        q = model._B.shape[2]
-        B = [np.ascontiguousarray(model._B[:, perm[k * e:(k + 1) * e], :]).reshape(gh, gw, e, q)
-             for k in range(r * r)]
-        return cls(B, mean, None if obs.all() else obs.astype(np.float32), (gh, gw), r, s,
-                   colour)
+        q = B.shape[2]
+        parts = [np.ascontiguousarray(B[:, perm[k * e:(k + 1) * e], :]).reshape(gh, gw, e, q)
+                 for k in range(r * r)]
+        return cls(parts, perm, mean, None if obs.all() else obs.astype(np.float32), (gh, gw),
+                   r, s, colour)
 
     def blocks(self, images: np.ndarray) -> np.ndarray:
         """Observed residuals of every block in grey levels, shape (bh, bw, n, e) float32."""
