@@ -156,3 +156,25 @@ def test_exif_orientation_is_honoured_as_pillow_does(tmp_path, orientation):
         ref = cv2.resize(want, size, interpolation=cv2.INTER_AREA)
         assert frame.image.shape == (size[1], size[0], 3)
         assert np.abs(frame.image.astype(int) - ref).mean() < 4.0
+
+
+def test_batched_iterator_keeps_input_order_and_runs_the_work_per_batch(tmp_path):
+    from inspector.storage.frames import iter_batches
+
+    files = []
+    for i in range(7):
+        p = tmp_path / f"cam_20261130_1200{i:02d}.png"
+        if i == 3:
+            p.write_bytes(b"\x89PNG\r\n\x1a\n" + b"\0" * 20)  # a broken one
+        else:
+            cv2.imwrite(str(p), np.full((18, 32, 3), 30 * i, np.uint8))
+        files.append(_ff(p))
+    batches = list(iter_batches(files, 3, workers=2, size=(32, 18),
+                                work=lambda images: images.mean(axis=(1, 2, 3)), **READ))
+    assert [len(b.frames) + len(b.errors) for b in batches] == [3, 3, 1]
+    assert [f.file.path.name for b in batches for f in b.frames] == \
+        [f.path.name for i, f in enumerate(files) if i != 3]
+    assert [f.path.name for b in batches for f, _ in b.errors] == [files[3].path.name]
+    # the work's result is per batch, in the order of the batch's frames (grey levels 30 i)
+    got = np.concatenate([b.result for b in batches])
+    np.testing.assert_allclose(got, [30.0 * i for i in range(7) if i != 3])
