@@ -269,7 +269,8 @@ class Conditions(Estimator):
                 gain, offset = gains[i]
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field)
-                    field = brightness_field(fitted[i] * gain + offset, ref, sigma, gain, 3)
+                    field = brightness_field(fitted[i], ref, sigma, gain, offset,
+                                             scale=gain, channels=3)
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
@@ -277,12 +278,11 @@ class Conditions(Estimator):
                 brightest = _channel_max(img)
                 if ref_rgb is not None and brightest.max() >= 250:  # any clipped pixel at all
                     ref_glare = self._reference_glare(ref_rgb)
-                    clipped = brightest >= 250
-                    np.maximum(o, ref_rgb, out=o, where=clipped[..., None])
-                    glare = (cv2.dilate(clipped.astype(np.uint8), _NEAR) & ref_glare) > 0
-                    o[glare] = ref_rgb[glare]
+                    clipped = cv2.compare(brightest, 250, cv2.CMP_GE)  # 255 where clipped
+                    cv2.copyTo(cv2.max(o, ref_rgb), clipped, o)
+                    cv2.copyTo(ref_rgb, cv2.dilate(clipped, _NEAR) & ref_glare, o)
             if fill is not None and ref_rgb is not None:
-                o[fill] = ref_rgb[fill]
+                cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
             out[i] = o
         return Prepared(out, g_all, aligned, shifts, gains)
 

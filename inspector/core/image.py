@@ -206,15 +206,20 @@ def shift_images(images: np.ndarray, dx: float, dy: float) -> np.ndarray:
 
 
 def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
-                     scale: float = 1.0, channels: int = 1) -> np.ndarray:
-    """Smooth multiplicative field that brings ``frame``'s local brightness to the
-    reference's: ``blur(reference) / blur(frame)``, clipped to [0.25, 4].
+                     gain: float = 1.0, offset: float = 0.0, scale: float = 1.0,
+                     channels: int = 1) -> np.ndarray:
+    """Smooth multiplicative field that brings the local brightness of ``gain * frame +
+    offset`` to the reference's: ``blur(reference) / blur(gain * frame + offset)``, clipped
+    to [0.25, 4].
 
     Parameters
     ----------
     frame, reference : ndarray, shape (H, W), float
     sigma : float
         Blur, in pixels.
+    gain, offset : float
+        Brightness fit of the frame (applied after the frame is reduced: the reduction is
+        an average, so the result is the same).
     scale : float
         Factor applied to the field (at reduced size, before it is enlarged).
     channels : int
@@ -228,8 +233,10 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     h, w = frame.shape
     k = max(1, int(sigma // 4))  # the field is smooth: blur a 1/k image, then enlarge it
     small = (max(1, w // k), max(1, h // k))
-    f = cv2.GaussianBlur(cv2.resize(frame, small, interpolation=cv2.INTER_AREA), (0, 0),
-                         sigma / k)
+    reduced = cv2.resize(frame, small, interpolation=cv2.INTER_AREA)
+    if gain != 1.0 or offset != 0.0:
+        reduced = reduced * np.float32(gain) + np.float32(offset)
+    f = cv2.GaussianBlur(reduced, (0, 0), sigma / k)
     r = cv2.GaussianBlur(cv2.resize(np.asarray(reference, np.float32), small,
                                     interpolation=cv2.INTER_AREA), (0, 0), sigma / k)
     field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32) * np.float32(scale)
