@@ -61,9 +61,10 @@ def camera_faults(count: int, incidents, seed: int, cam_index: int, extra):
 # --- incidents -------------------------------------------------------------------------
 
 
-def target_area(rng: np.random.Generator, scene: Scene) -> float:
-    """An incident size in pixels, log-uniform over :data:`INCIDENT_AREA` of the frame."""
-    lo, hi = INCIDENT_AREA
+def target_area(rng: np.random.Generator, scene: Scene,
+                area: tuple[float, float] = INCIDENT_AREA) -> float:
+    """An incident size in pixels, log-uniform over ``area`` (fractions of the frame)."""
+    lo, hi = area
     return float(np.exp(rng.uniform(np.log(lo), np.log(hi)))) * scene.height * scene.width
 
 
@@ -80,10 +81,10 @@ def full_mask(scene: Scene, box, local: np.ndarray) -> np.ndarray:
 
 
 def _parcel(rng: np.random.Generator, scene: Scene, out: np.ndarray,
-            cond: Lighting) -> np.ndarray:
+            cond: Lighting, area: tuple[float, float] = INCIDENT_AREA) -> np.ndarray:
     """A box left on the floor, with its shadow; the mask covers box and shadow."""
     H, W = scene.height, scene.width
-    area = target_area(rng, scene)
+    area = target_area(rng, scene, area)
     aspect = rng.uniform(0.7, 1.6)                     # width / silhouette height
     for attempt in range(60):
         tall = math.sqrt(area / 1.3 / aspect)
@@ -160,10 +161,10 @@ _SPILL_COLOURS = (
 
 
 def _spill(rng: np.random.Generator, scene: Scene, out: np.ndarray,
-           cond: Lighting) -> np.ndarray:
+           cond: Lighting, area: tuple[float, float] = INCIDENT_AREA) -> np.ndarray:
     """An irregular, partly translucent liquid blob on the floor."""
     H, W = scene.height, scene.width
-    area = target_area(rng, scene)
+    area = target_area(rng, scene, area)
     aspect = rng.uniform(1.2, 2.2)                     # floors are foreshortened
     ry = math.sqrt(area / (math.pi * aspect))
     rx = aspect * ry

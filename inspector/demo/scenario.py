@@ -34,7 +34,7 @@ import csv
 import math
 import os
 import shutil
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from datetime import date, datetime, timedelta
@@ -43,6 +43,7 @@ from pathlib import Path
 import cv2
 import numpy as np
 
+from inspector.demo import traffic
 from inspector.demo.incidents import HEALTH_NUISANCES, INJECT, camera_faults
 from inspector.demo.scenes import (
     BUILDERS,
@@ -55,11 +56,15 @@ from inspector.demo.scenes import (
 )
 from inspector.errors import UsageError
 
-__all__ = ["CAMERAS", "HEALTH_NUISANCES", "INCIDENTS", "NUISANCES", "Scenario", "generate",
+__all__ = ["BUSY_CAMERAS", "CAMERAS", "HEALTH_NUISANCES", "INCIDENTS", "NUISANCES", "Scenario", "generate",
            "load_truth"]
 
 #: Camera names, in the order they are generated.
 CAMERAS = ("dock", "aisle")
+#: Busy cameras (staff and pallet trucks passing; see :mod:`inspector.demo.traffic`), with
+#: the share of frames that show someone passing: ``walkway`` is the demo's, ``gate`` is
+#: kept for benchmarks (a view the demo never shows).
+BUSY_CAMERAS = {"walkway": 0.45, "gate": 0.5}
 #: Incident kinds injected into frames to scan.
 INCIDENTS = ("parcel", "spill", "lens", "haze")
 #: Keys accepted in ``generate(nuisance=...)``, with what they mean.
@@ -139,7 +144,8 @@ class Scenario:
 def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: int = 240,
              new_per_camera: int = 120, incident_fraction: float = 0.3,
              size: tuple[int, int] = (960, 540),
-             nuisance: Mapping[str, float] | None = None) -> Scenario:
+             nuisance: Mapping[str, float] | None = None,
+             cameras: Sequence[str] = CAMERAS) -> Scenario:
     """Render the Larkspur Parcel Co. demo scenario into ``root``.
 
     Parameters
@@ -166,6 +172,13 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
         robustness. Keys (see :data:`NUISANCES`): ``"jitter_px"``, the standard
         deviation of a random sub-pixel camera shift per frame; ``"gain"``, the largest
         relative random gain change per frame. ``None`` or ``{}`` adds nothing.
+    cameras : sequence of str, optional
+        Cameras to render: any of :data:`CAMERAS` and :data:`BUSY_CAMERAS`. A busy camera
+        records bursts of frames :data:`~inspector.demo.traffic.INTERVAL` seconds apart
+        with people and pallet trucks passing; in its frames to scan, one object per
+        burst (a parcel or a spill) is left on the floor for
+        :data:`~inspector.demo.traffic.LEFT_FRAMES` frames (``incident_fraction`` does not
+        apply to it).
 
     Returns
     -------
@@ -180,6 +193,10 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
     width, height = _check_args(seed, normal_per_camera, new_per_camera, incident_fraction,
                                 size)
     extra = _check_nuisance(nuisance)
+    unknown = [c for c in cameras if c not in CAMERAS and c not in BUSY_CAMERAS]
+    if unknown or not cameras:
+        raise UsageError(f"unknown camera {unknown[0] if unknown else '(none given)'}; known: "
+                         f"{', '.join((*CAMERAS, *BUSY_CAMERAS))}")
     out = Scenario.at(root)
     _prepare(out)
 
@@ -187,7 +204,9 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
     scenes = {}
     jobs: list[_Job] = []
     truth_rows: list[tuple[str, str, str]] = []
-    for cam_index, camera in enumerate(CAMERAS):
+    for cam_index, camera in enumerate(cameras):
+        if camera in BUSY_CAMERAS:  # stable seeds, whatever else is rendered
+            cam_index = 10 + list(BUSY_CAMERAS).index(camera)
         scene_rng = np.random.default_rng([seed, 0, cam_index])
         scenes[camera] = BUILDERS[camera](scene_rng, width, height)
         for split, count in ((0, normal_per_camera), (1, new_per_camera)):
@@ -359,10 +378,16 @@ class _Job:
     moved: tuple[float, float] = (0.0, 0.0)
     #: Infrared night mode: greyscale under an IR lamp.
     ir: bool = False
+    #: Busy cameras: seed of the left object (the same drawing in every frame it stays) and
+    #: the passers-by in this frame.
+    left_seed: tuple[int, ...] | None = None
+    movers: tuple = ()
 
 
 def _plan(camera, cam_index, split, count, seed, incident_fraction, extra, scene,
           out: Scenario) -> list[_Job]:
+    if camera in BUSY_CAMERAS:
+        return _plan_busy(camera, cam_index, split, count, seed, extra, scene, out)
     rng = np.random.default_rng([seed, 1, cam_index, split])
     times = _schedule(rng, count, split)
     weather = LIGHTING[camera](np.random.default_rng([seed, 4, cam_index, split]))
@@ -386,6 +411,42 @@ def _plan(camera, cam_index, split, count, seed, incident_fraction, extra, scene
                          fault=faults[i] if faults else "",
                          exposure=exposure[i] if exposure else (1.0, 0.0),
                          moved=moved[i] if moved else (0.0, 0.0)))
+    return jobs
+
+
+def _plan_busy(camera, cam_index, split, count, seed, extra, scene, out: Scenario
+               ) -> list[_Job]:
+    """A busy camera: bursts of frames with passers-by; objects left in the frames to scan."""
+    rng = np.random.default_rng([seed, 1, cam_index, split])
+    weather = LIGHTING[camera](np.random.default_rng([seed, 4, cam_index, split]))
+    sessions = ([(FIRST_DAY + timedelta(days=d), a, b) for d, a, b in NORMAL_SESSIONS]
+                if split == 0 else [(SCAN_DAY, a, b) for a, b in SCAN_SESSIONS])
+    folder = (out.normal if split == 0 else out.new) / camera
+    jobs: list[_Job] = []
+    bursts = -(-count // traffic.BURST)
+    for b in range(bursts):
+        n = min(traffic.BURST, count - b * traffic.BURST)
+        day, lo, hi = sessions[b % len(sessions)]
+        hour = lo + (hi - lo) * (b // len(sessions) + rng.uniform(0.1, 0.9)) / max(
+            1, -(-bursts // len(sessions)))
+        start = datetime(day.year, day.month, day.day) + timedelta(seconds=round(hour * 3600))
+        movers = traffic.plan_traffic(rng, scene, n, BUSY_CAMERAS[camera])
+        left = range(0)
+        if split == 1 and n >= traffic.LEFT_FRAMES + 4:
+            first = int(rng.integers(2, n - traffic.LEFT_FRAMES - 1))
+            left = range(first, first + traffic.LEFT_FRAMES)
+        kind = ("parcel", "spill")[b % 2]
+        for i in range(n):
+            t = start + timedelta(seconds=traffic.INTERVAL * i)
+            name = f"{camera}_{t:%Y%m%d_%H%M%S}"
+            here = kind if i in left else None
+            jobs.append(_Job(camera=camera, split=split, time=t, incident=here,
+                             conditions=weather.conditions(t, scene, extra.get("gain", 0.0)),
+                             seed=(seed, 2, cam_index, split, b * traffic.BURST + i),
+                             path=folder / f"{name}.jpg",
+                             mask_path=(out.masks / camera / f"{name}.png") if here else None,
+                             left_seed=(seed, 6, cam_index, b) if here else None,
+                             movers=movers[i]))
     return jobs
 
 
@@ -415,8 +476,12 @@ def _render(job: _Job, scene: Scene, bank: list[np.ndarray], jitter_px: float) -
     cond = job.conditions
     out = scene.light(cond.coeffs)
     mask = None
-    if job.incident:
+    if job.left_seed is not None:
+        mask = INJECT[job.incident](np.random.default_rng(list(job.left_seed)), scene, out,
+                                    cond, area=traffic.LEFT_AREA)
+    elif job.incident:
         mask = INJECT[job.incident](rng, scene, out, cond)
+    traffic.draw_movers(scene, out, job.movers, cond)
     H, W = out.shape[:2]
     if jitter_px > 0:
         dx, dy = rng.normal(0.0, jitter_px, 2)

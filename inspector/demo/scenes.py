@@ -498,6 +498,9 @@ def aisle_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
 BUILDERS: dict[str, Callable[[np.random.Generator, int, int], Scene]] = {
     "dock": dock_scene,
     "aisle": aisle_scene,
+    # Busy cameras (see inspector.demo.traffic): the same kinds of place, other views.
+    "walkway": aisle_scene,
+    "gate": dock_scene,
 }
 
 
@@ -592,4 +595,4 @@ class AisleLamps:
         return Lighting(coeffs=coeffs, sigma=2.0, band=band, level=level)
 
 
-LIGHTING = {"dock": DockWeather, "aisle": AisleLamps}
+LIGHTING = {"dock": DockWeather, "aisle": AisleLamps, "walkway": AisleLamps, "gate": DockWeather}
