@@ -214,6 +214,26 @@ class ClusterSettings:
 
 
 @dataclass(frozen=True)
+class PersistenceSettings:
+    """Busy cameras: flag what stays, not what passes (see :mod:`inspector.core.persistence`)."""
+
+    #: "auto" (on for cameras whose normal frames often hold large short-lived anomalies,
+    #: measured at learn time), "on" or "off".
+    mode: str = "auto"
+    #: Frames a region must stay unusual in before it is flagged (at learn time).
+    window: int = 4
+
+    @staticmethod
+    def check(s: "PersistenceSettings", where: str) -> None:
+        if s.mode not in PERSISTENCE_MODES:
+            raise UsageError(f"{where} persistence mode {s.mode!r}: choose one of "
+                             f"{', '.join(PERSISTENCE_MODES)}")
+
+
+PERSISTENCE_MODES = ("auto", "on", "off")
+
+
+@dataclass(frozen=True)
 class CameraMask:
     #: Polygons in pixel coordinates of the exported frame, each a list of [x, y].
     polygons: tuple[tuple[tuple[float, float], ...], ...] = ()
@@ -231,6 +251,7 @@ class CameraConfig:
     calibration: CalibrationSettings
     mask: CameraMask
     conditions: ConditionSettings = field(default_factory=ConditionSettings)
+    persistence: PersistenceSettings = field(default_factory=PersistenceSettings)
 
 
 @dataclass(frozen=True)
@@ -243,6 +264,7 @@ class Config:
     watch: WatchSettings = field(default_factory=WatchSettings)
     events: EventSettings = field(default_factory=EventSettings)
     cluster: ClusterSettings = field(default_factory=ClusterSettings)
+    persistence: PersistenceSettings = field(default_factory=PersistenceSettings)
     #: Raw per-camera tables, validated when read through :meth:`camera`.
     cameras: dict[str, dict[str, Any]] = field(default_factory=dict)
     #: Sections that other parts of the tool own, as read (see :meth:`section`).
@@ -260,6 +282,10 @@ class Config:
         sections = {"frames": self.frames, "model": self.model, "calibration": self.calibration,
                     "conditions": self.conditions}
         out: dict[str, Any] = {}
+        # [persistence] keys read "persistence" and "persistence_window" in a camera table.
+        mine = {k: table.pop(f"persistence{s}") for k, s in (("mode", ""), ("window", "_window"))
+                if f"persistence{s}" in table}
+        out["persistence"] = _build(PersistenceSettings, mine, where, base=self.persistence)
         for key, current in sections.items():
             names = {f.name for f in fields(current)}
             mine = {k: table.pop(k) for k in list(table) if k in names}
@@ -308,7 +334,8 @@ def load_config(path: str | Path | None = None) -> Config:
     _moved_keys(data, src)
     known = {"paths": PathSettings, "frames": FrameSettings, "model": ModelSettings,
              "calibration": CalibrationSettings, "conditions": ConditionSettings,
-             "watch": WatchSettings, "events": EventSettings, "cluster": ClusterSettings}
+             "watch": WatchSettings, "events": EventSettings, "cluster": ClusterSettings,
+             "persistence": PersistenceSettings}
     built = {k: _build(cls, data.pop(k, {}), f"[{k}]", source=src) for k, cls in known.items()}
     cameras = data.pop("cameras", {})
     if not isinstance(cameras, dict) or not all(isinstance(v, dict) for v in cameras.values()):
@@ -369,6 +396,7 @@ _RANGES: dict[str, tuple[float, float]] = {
     "covered_share": (0.0, 1.0),
     "focus_ratio": (0.0, 1.0),
     "frozen_difference": (0.0, 255.0),
+    "window": (1, 60),
 }
 
 

@@ -12,7 +12,8 @@ from inspector.jobs.status import camera_facts, format_table
 def register(sub) -> None:
     p = sub.add_parser("status", help="per camera: active baseline, frames scored, flagged, "
                                       "skipped and held for lack of a baseline, last frame, "
-                                      "current lag, latest camera health condition")
+                                      "current lag, latest camera health condition, "
+                                      "persistence (busy cameras)")
     add_common(p)
     p.add_argument("--out", type=Path, help="results folder whose health.csv gives the latest "
                                             "camera health condition (default from config)")
@@ -22,7 +23,7 @@ def register(sub) -> None:
 def cmd_status(args: argparse.Namespace) -> int:
     config, store = resolve(args)
     out = args.out or Path(config.paths.out)
-    facts = camera_facts(store, out / "health.csv")
+    facts = camera_facts(store, out / "health.csv", config)
     if not facts:
         say(f"no cameras yet in {store.root} (run 'inspector learn' or 'inspector scan')")
         return 0

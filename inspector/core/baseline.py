@@ -12,6 +12,7 @@ from inspector.core.calibration import Calibration, Threshold
 from inspector.core.conditions import Conditions
 from inspector.core.image import grey
 from inspector.core.models.base import DensityModel
+from inspector.core.persistence import Persistence
 from inspector.core.regimes import Regimes
 
 
@@ -104,6 +105,9 @@ class Baseline:
     #: Appearance regimes (day/night, colour/IR) with their own standardisation and
     #: calibration; None when the camera has one (``calibration``).
     regimes: Regimes | None = None
+    #: Persistence calibration (busy cameras; see :mod:`inspector.core.persistence`); None
+    #: for baselines learnt without it.
+    persistence: Persistence | None = None
     #: Grey of the last frame scored with ``sequence=True`` (for "frozen feed").
     _previous: np.ndarray | None = field(default=None, init=False, repr=False, compare=False)
 

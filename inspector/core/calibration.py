@@ -317,7 +317,12 @@ class Calibration:
 
 
 def cross_fit_scores(maps: np.ndarray, blocks: np.ndarray) -> np.ndarray:
-    """Frame scores of held-out raw maps, each block standardised by the others only.
+    """Frame scores of :func:`cross_fit_maps`, shape (n,) float64."""
+    return frame_scores(cross_fit_maps(maps, blocks))
+
+
+def cross_fit_maps(maps: np.ndarray, blocks: np.ndarray) -> np.ndarray:
+    """Anomaly maps of held-out raw maps, each block standardised by the others only.
 
     A frame that helped set its own cell centres and scales would have its largest
     z-score shrunk, and a threshold taken over such scores comes out low (cross-fitting,
@@ -336,7 +341,7 @@ def cross_fit_scores(maps: np.ndarray, blocks: np.ndarray) -> np.ndarray:
 
     Returns
     -------
-    ndarray, shape (n,), float64
+    ndarray, shape (n, h, w), float32
     """
     maps = np.asarray(maps)
     n = len(maps)
@@ -345,11 +350,11 @@ def cross_fit_scores(maps: np.ndarray, blocks: np.ndarray) -> np.ndarray:
     blocks = np.asarray(blocks)
     if len(np.unique(blocks)) < 2:
         blocks = (np.arange(n) * 2) // n
-    out = np.empty(n)
+    out = np.empty(maps.shape, np.float32)
     for b in np.unique(blocks):
         inside = blocks == b
         center, scale = location_stats(maps[~inside])
-        out[inside] = frame_scores(anomaly_maps(maps[inside], center, scale))
+        out[inside] = anomaly_maps(maps[inside], center, scale)
     return out
 
 

@@ -10,6 +10,10 @@ camera's frames in capture-time order:
 * it grows with every further flagged frame, and tolerates up to ``gap`` unflagged frames
   in a row; the ``gap + 1``-th unflagged frame in a row closes it.
 
+An event of a camera that runs with persistence (see :mod:`inspector.core.persistence`)
+also says ``since`` when its region first appeared, which is earlier than its first flagged
+frame (the flag comes once the region has stayed the whole window).
+
 With the defaults (k = 1, n = 1, gap = 1) every flagged frame belongs to an event and
 flagged frames separated by at most one unflagged frame share one. Raising k (say k = 2,
 n = 3) leaves isolated flags out of events (they stay in flagged.csv).
@@ -27,9 +31,10 @@ from dataclasses import dataclass
 from inspector.config import EventSettings  # the [events] section: k, n, gap
 
 #: Columns of events.csv, in this order.
-#: ``flagged_frames`` counts the flagged frames of the event (called ``frames`` before).
+#: ``flagged_frames`` counts the flagged frames of the event (called ``frames`` before);
+#: ``since`` is when a persistent event's region appeared ('' for single-frame flags).
 EVENT_COLUMNS = ("event", "camera", "start", "end", "flagged_frames", "peak_frame",
-                 "peak_score")
+                 "peak_score", "since")
 
 
 @dataclass(frozen=True)
@@ -43,6 +48,9 @@ class FramePoint:
     frame: str
     score: float
     flagged: bool
+    #: Persistence (busy cameras): ISO 8601 time since which the flagged region has stayed;
+    #: '' for single-frame flags.
+    since: str = ""
 
 
 @dataclass(frozen=True)
@@ -54,10 +62,13 @@ class Event:
     frames: int
     peak_frame: str
     peak_score: float
+    #: When the persistent region first appeared (the earliest ``since`` of its frames); ''
+    #: for an event of single-frame flags.
+    since: str = ""
 
     def row(self) -> tuple:
         return (self.event, self.camera, self.start, self.end, self.frames, self.peak_frame,
-                f"{self.peak_score:.4f}")
+                f"{self.peak_score:.4f}", self.since)
 
 
 def group_events(points: Iterable[FramePoint], settings: EventSettings = EventSettings()
@@ -96,8 +107,9 @@ def _camera_events(camera: str, series: list[FramePoint], s: EventSettings) -> l
 
     def close() -> None:
         peak = max(members, key=lambda p: p.score)
+        since = min((p.since for p in members if p.since), default="")
         out.append(Event(f"{camera}-{len(out) + 1:04d}", camera, members[0].time,
-                         members[-1].time, len(members), peak.frame, peak.score))
+                         members[-1].time, len(members), peak.frame, peak.score, since))
 
     for i, p in enumerate(series):
         window.append((i, p))

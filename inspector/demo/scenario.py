@@ -65,6 +65,8 @@ CAMERAS = ("dock", "aisle")
 #: the share of frames that show someone passing: ``walkway`` is the demo's, ``gate`` is
 #: kept for benchmarks (a view the demo never shows).
 BUSY_CAMERAS = {"walkway": 0.45, "gate": 0.5}
+#: The busy camera of the demo.
+BUSY = "walkway"
 #: Incident kinds injected into frames to scan.
 INCIDENTS = ("parcel", "spill", "lens", "haze")
 #: Keys accepted in ``generate(nuisance=...)``, with what they mean.
@@ -145,7 +147,8 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
              new_per_camera: int = 120, incident_fraction: float = 0.3,
              size: tuple[int, int] = (960, 540),
              nuisance: Mapping[str, float] | None = None,
-             cameras: Sequence[str] = CAMERAS) -> Scenario:
+             cameras: Sequence[str] = CAMERAS,
+             busy_frames: tuple[int, int] | None = None) -> Scenario:
     """Render the Larkspur Parcel Co. demo scenario into ``root``.
 
     Parameters
@@ -179,6 +182,9 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
         burst (a parcel or a spill) is left on the floor for
         :data:`~inspector.demo.traffic.LEFT_FRAMES` frames (``incident_fraction`` does not
         apply to it).
+    busy_frames : (int, int), optional
+        Normal frames and frames to scan of each busy camera, when they should differ from
+        ``normal_per_camera`` and ``new_per_camera``.
 
     Returns
     -------
@@ -209,7 +215,10 @@ def generate(root: str | os.PathLike[str], *, seed: int = 0, normal_per_camera: 
             cam_index = 10 + list(BUSY_CAMERAS).index(camera)
         scene_rng = np.random.default_rng([seed, 0, cam_index])
         scenes[camera] = BUILDERS[camera](scene_rng, width, height)
-        for split, count in ((0, normal_per_camera), (1, new_per_camera)):
+        counts = (normal_per_camera, new_per_camera)
+        if camera in BUSY_CAMERAS and busy_frames is not None:
+            counts = busy_frames
+        for split, count in enumerate(counts):
             jobs += _plan(camera, cam_index, split, int(count), seed, incident_fraction, extra,
                           scenes[camera], out)
         (out.normal / camera).mkdir(parents=True, exist_ok=True)
@@ -423,12 +432,15 @@ def _plan_busy(camera, cam_index, split, count, seed, extra, scene, out: Scenari
                 if split == 0 else [(SCAN_DAY, a, b) for a, b in SCAN_SESSIONS])
     folder = (out.normal if split == 0 else out.new) / camera
     jobs: list[_Job] = []
-    bursts = -(-count // traffic.BURST)
+    size = traffic.BURST[split]
+    bursts = -(-count // size)
     for b in range(bursts):
-        n = min(traffic.BURST, count - b * traffic.BURST)
-        day, lo, hi = sessions[b % len(sessions)]
-        hour = lo + (hi - lo) * (b // len(sessions) + rng.uniform(0.1, 0.9)) / max(
-            1, -(-bursts // len(sessions)))
+        n = min(size, count - b * size)
+        k = b * len(sessions) // bursts                 # bursts in time order
+        first = -(-k * bursts // len(sessions))         # first burst of session k
+        per = -(-(k + 1) * bursts // len(sessions)) - first
+        day, lo, hi = sessions[k]
+        hour = lo + (hi - lo) * (b - first + rng.uniform(0.1, 0.9)) / max(per, 1)
         start = datetime(day.year, day.month, day.day) + timedelta(seconds=round(hour * 3600))
         movers = traffic.plan_traffic(rng, scene, n, BUSY_CAMERAS[camera])
         left = range(0)
@@ -442,7 +454,7 @@ def _plan_busy(camera, cam_index, split, count, seed, extra, scene, out: Scenari
             here = kind if i in left else None
             jobs.append(_Job(camera=camera, split=split, time=t, incident=here,
                              conditions=weather.conditions(t, scene, extra.get("gain", 0.0)),
-                             seed=(seed, 2, cam_index, split, b * traffic.BURST + i),
+                             seed=(seed, 2, cam_index, split, b * size + i),
                              path=folder / f"{name}.jpg",
                              mask_path=(out.masks / camera / f"{name}.png") if here else None,
                              left_seed=(seed, 6, cam_index, b) if here else None,

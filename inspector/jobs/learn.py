@@ -23,11 +23,22 @@ import inspector
 from inspector.clock import now
 from inspector.config import CameraConfig, Config, settings_dict
 from inspector.core.baseline import Baseline
-from inspector.core.calibration import Threshold, alarms_to_alpha, calibrate, time_blocks
+from inspector.core.calibration import (
+    Threshold,
+    alarms_to_alpha,
+    calibrate,
+    cross_fit_maps,
+    time_blocks,
+)
 from inspector.core.conditions import Conditions
 from inspector.core.features import rasterize_mask
 from inspector.core.image import darker_exposure, grey
 from inspector.core.models import model_class
+from inspector.core.persistence import (
+    Persistence,
+    calibrate_persistence,
+    persistence_on,
+)
 from inspector.core.regimes import Regimes, appearance, assign, find_regimes
 from inspector.core.textmask import boxes_mask, cap_boxes, find_text_boxes
 from inspector.errors import UsageError
@@ -302,6 +313,8 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
             notes.append(f"{len(prototypes)} regimes, each calibrated on its own: {desc}")
             warnings += [f"regime {r + 1}: {c.threshold.warning}"
                          for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
+    persistence = _persistence(held, held_blocks, regimes, prepared.appearance, times, alpha,
+                               cfg, notes)
     warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
     facts = VersionFacts(
         created=started, frames=used, frames_skipped=len(source.skipped),
@@ -313,7 +326,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
         text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}, masked=masking))
     baseline = Baseline(camera=camera, version="", model=model, calibration=calibration,
                         size=size, source_size=source_size, mask=mask, conditions=conditions,
-                        regimes=regimes)
+                        regimes=regimes, persistence=persistence)
     baseline.meta = describe(baseline, facts, inspector.__version__)
     version = store.save(baseline, activate=activate)
     skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
@@ -391,6 +404,38 @@ def _masked_note(masking: dict) -> str:
     """One line: the share of the view the model does not look at, and why."""
     return (f"masked: {masking['share']:.1%} of the view (automatic text mask "
             f"{masking['text_share']:.1%}, configured {masking['configured_share']:.1%})")
+
+
+# --- persistence (busy cameras; see inspector.core.persistence) ---------------------------
+
+
+def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraConfig,
+                 notes: list[str]) -> Persistence | None:
+    """Calibrate persistence on the held-out maps (cross-fitted, as the single-frame
+    threshold) in capture-time order and say whether the camera is busy (a line in
+    ``notes``); None when the normal frames have no run long enough."""
+    maps = np.empty(held.maps.shape, np.float32)
+    groups = (np.zeros(len(held.index), int) if regimes is None else  # as scored: by regime
+              assign(np.array([looks[int(i)] for i in held.index]), regimes.prototypes,
+                     regimes.feature_scale))
+    for r in np.unique(groups):
+        maps[groups == r] = cross_fit_maps(held.maps[groups == r], held_blocks[groups == r])
+    order = np.argsort(held.index, kind="stable")  # positions are in capture-time order
+    seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
+    try:
+        p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
+                                  cfg.persistence.window)
+    except ValueError as exc:
+        notes.append(f"persistence not calibrated: {exc}")
+        return None
+    mode = cfg.persistence.mode
+    on = persistence_on(p.busy, mode)
+    notes.append(f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
+                 f"frames hold large short-lived anomalies; persistence "
+                 f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}"
+                 + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f})"
+                    if on else ": single-frame flags"))
+    return p
 
 
 def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store

@@ -8,14 +8,23 @@ import time
 from collections import Counter
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
 
 from inspector.config import Config
 from inspector.core.baseline import Baseline, Evaluation
+from inspector.core.calibration import conformal_p_values
+from inspector.core.persistence import StreamState, persistence, persistence_on
 from inspector.jobs.progress import progress_bar
-from inspector.storage.frames import Frame, FrameFile, discover, iter_batches
+from inspector.storage.frames import (
+    Frame,
+    FrameFile,
+    capture_time,
+    discover,
+    iter_batches,
+)
 from inspector.storage.results import FrameResult, ResultWriter, Skipped
 from inspector.storage.store import DamagedBaseline, Store
 
@@ -68,23 +77,81 @@ def read_args(baseline: Baseline, config: Config) -> dict:
 
 
 def score_frames(baseline: Baseline, frames: Sequence[Frame],
-                 evaluation: Evaluation | None = None) -> list[FrameResult]:
+                 evaluation: Evaluation | None = None,
+                 streams: "Streams | None" = None) -> list[FrameResult]:
     """Score decoded frames of one camera, consecutive in its stream; results in the same
     order, each with its health conditions. ``evaluation`` is the frames'
     :meth:`~inspector.core.baseline.Baseline.evaluate` when already done (in the decoding
-    threads)."""
+    threads). With ``streams``, a camera that runs with persistence is flagged by what
+    stays (see :class:`Streams`)."""
     if not frames:
         return []
     if evaluation is None:
         evaluation = baseline.evaluate(np.stack([f.image for f in frames]))
     s = baseline.judge(evaluation, sequence=True)
-    return [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
+    results = [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
                         score=float(s.scores[i]),
                         threshold=float(s.thresholds[i]),
                         p_value=float(s.p_values[i]), model=baseline.version,
                         flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
                         health=s.health[i] if s.health else [], mask=baseline.mask)
-            for i, f in enumerate(frames)]
+               for i, f in enumerate(frames)]
+    if streams is not None:
+        streams.apply(baseline, s.maps, results)
+    return results
+
+
+class Streams:
+    """Each camera's rolling persistence state, for cameras that run with persistence.
+
+    The persistence mode comes from the camera's config (``[persistence] mode``; "auto"
+    follows what ``learn`` measured). A frame of such a camera gets the persistence score,
+    threshold, p-value and map instead of its single-frame ones, and ``since``; frames
+    before the window is full are not flagged and counted in ``filling``. With a ledger,
+    the state survives a restart (watch).
+    """
+
+    def __init__(self, config: Config, ledger=None):
+        self.config = config
+        self.ledger = ledger
+        self._states: dict[str, tuple[str, StreamState]] = {}
+        self._lock = threading.Lock()
+        self.filling: Counter[str] = Counter()
+
+    def on(self, baseline: Baseline) -> bool:
+        """Whether ``baseline``'s camera is flagged by persistence."""
+        p = baseline.persistence
+        return persistence_on(p.busy if p is not None else None,
+                              self.config.camera(baseline.camera).persistence.mode)
+
+    def apply(self, baseline: Baseline, maps: np.ndarray, results: list[FrameResult]) -> None:
+        """Replace single-frame results of consecutive frames by persistence ones, in place."""
+        if not self.on(baseline) or not results:
+            return
+        p = baseline.persistence
+        cam = baseline.camera
+        with self._lock:
+            version, state = self._states.get(cam, ("", None))
+            if not version and self.ledger is not None:
+                version, state = self.ledger.stream(cam) or ("", None)
+            if version != baseline.version:
+                state = None
+            run = persistence(maps, np.array([r.time.timestamp() for r in results]),
+                              p.window, p.max_gap, p.threshold.value, state)
+            self._states[cam] = (baseline.version, run.state)
+            if self.ledger is not None:
+                self.ledger.keep_stream(cam, baseline.version, run.state.arrays())
+        p_values = conformal_p_values(p.calibration_scores, run.scores)
+        for i, r in enumerate(results):
+            r.score, r.threshold, r.p_value = float(run.scores[i]), p.threshold.value, \
+                float(p_values[i])
+            r.amap = run.maps[i]
+            r.flagged = bool(run.filled[i] and run.scores[i] > p.threshold.value
+                             and not r.health)
+            if np.isfinite(run.since[i]):
+                r.since = datetime.fromtimestamp(run.since[i], tz=r.time.tzinfo)
+            if not run.filled[i]:
+                self.filling[cam] += 1
 
 
 @dataclass
@@ -130,6 +197,7 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
     """
     started = time.perf_counter()
     summary = ScanSummary()
+    streams = Streams(config)
     by_camera: dict[str, list[FrameFile]] = {}
     for f in files:
         by_camera.setdefault(f.camera, []).append(f)
@@ -141,6 +209,10 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                                       for f in cam_files])
                 bar.update(len(cam_files))
                 continue
+            if streams.on(baseline):  # a stream goes forward in capture time
+                formats = config.camera(camera).frames.time_formats
+                cam_files = sorted(cam_files, key=lambda f: (capture_time(f.path, formats),
+                                                             f.rel))
             # Decoding, preparation, health measures and the model run in the worker
             # threads, batch by batch; the stream-ordered rest (frozen feed, thresholds)
             # and the writing here, in order.
@@ -151,13 +223,16 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                                           for f, err in batch.errors])
                 for frame in batch.frames:
                     summary.notes.update(f"{camera}: {n}" for n in frame.notes)
-                writer.write(score_frames(baseline, batch.frames, batch.result))
+                writer.write(score_frames(baseline, batch.frames, batch.result, streams))
                 bar.update(len(batch.frames) + len(batch.errors))
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]
     summary.skipped = writer.counts["skipped"] + writer.counts["waiting"]
     summary.health = writer.counts["health"]
     summary.seconds = time.perf_counter() - started
+    for cam, n in streams.filling.items():
+        summary.notes[f"{cam}: first frames of a run, not flagged while the persistence "
+                      f"window fills"] += n
     return summary
 
 

@@ -11,6 +11,8 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from inspector.config import Config
+from inspector.core.persistence import persistence_on
 from inspector.storage.database import integrity_problems
 from inspector.storage.ledger import Ledger
 from inspector.storage.store import Store
@@ -42,10 +44,13 @@ def latest_health(path: Path) -> dict[str, tuple[str, str]]:
     return {cam: (t, cond) for cam, (t, _, cond) in latest.items()}
 
 
-def camera_facts(store: Store, health_csv: Path | None = None) -> dict[str, dict[str, Any]]:
+def camera_facts(store: Store, health_csv: Path | None = None, config: Config | None = None
+                 ) -> dict[str, dict[str, Any]]:
     """Per camera: active baseline version (with ``damage``, the problem when its files fail
-    their checksums), ledger counts, last frame time and current lag, and the latest camera
-    health condition found in ``health_csv``.
+    their checksums), ledger counts, last frame time and current lag, the latest camera
+    health condition found in ``health_csv``, and whether the camera runs with persistence
+    (``persistence``: "on"/"off" with the reason, "-" when its baseline has no persistence
+    calibration).
 
     ``lag`` is None when no watcher is running (no heartbeat in the last 15 s), else the
     seconds the oldest complete frame of that camera has waited to be scored (0 when none)
@@ -67,7 +72,8 @@ def camera_facts(store: Store, health_csv: Path | None = None) -> dict[str, dict
             damage = check.problem if check.damaged else ""
         f = {"camera": cam, "baseline": active or "none", "damage": damage,
              "scored": 0, "flagged": 0, "skipped": 0, "waiting": 0, "last": "",
-             "lag": None, "queued": 0, "health": health.get(cam)}
+             "lag": None, "queued": 0, "health": health.get(cam),
+             "persistence": _persistence(store, cam, config)}
         f.update(counts.get(cam, {}))
         if watchers:
             f["lag"] = 0.0
@@ -78,6 +84,20 @@ def camera_facts(store: Store, health_csv: Path | None = None) -> dict[str, dict
                     f["queued"] += int(c["queued"])
         facts[cam] = f
     return facts
+
+
+def _persistence(store: Store, camera: str, config: Config | None) -> str:
+    version = store.active_version(camera)
+    try:
+        p = store.metadata(camera, version).get("persistence") if version else None
+    except (OSError, ValueError):
+        p = None
+    if not p:
+        return "-"
+    mode = config.camera(camera).persistence.mode if config is not None else "auto"
+    on = persistence_on(bool(p.get("busy")), mode)
+    why = "config" if mode != "auto" else ("busy" if p.get("busy") else "quiet")
+    return f"{'on' if on else 'off'} ({why}{', %d frames' % p['window'] if on else ''})"
 
 
 def _lag(f: dict[str, Any]) -> str:
@@ -105,6 +125,7 @@ COLUMNS: list[tuple[str, Callable[[dict[str, Any]], str]]] = [
     ("last frame", lambda f: f["last"] or "-"),
     ("lag", _lag),
     ("camera health", _health),
+    ("persistence", lambda f: f.get("persistence", "-")),
 ]
 
 

@@ -35,7 +35,7 @@ from pathlib import Path
 from inspector.clock import now_iso
 from inspector.config import WatchSettings
 from inspector.errors import FrameError, UsageError
-from inspector.jobs.scan import BaselineCache, ScanSummary, read_args, score_frames
+from inspector.jobs.scan import BaselineCache, ScanSummary, Streams, read_args, score_frames
 from inspector.jobs.settle import Arrival, Settler, is_done
 from inspector.storage.frames import read_frame
 from inspector.storage.ledger import Ledger
@@ -98,6 +98,8 @@ class Watcher:
         self._rechecked: dict[str, float] = {}  # camera -> monotonic time of the last load
         self._versions: dict[str, str | None] = {}
         self._started = now_iso()
+        #: Persistence state of busy cameras, kept in the ledger across restarts.
+        self.streams = Streams(config, self.ledger)
 
     @property
     def store(self) -> Store:
@@ -333,7 +335,8 @@ class Watcher:
             for frame in frames:
                 with self._lock:
                     self.report.notes.update(f"{camera}: {n}" for n in frame.notes)
-            results += score_frames(baseline, frames)
+            frames.sort(key=lambda f: (f.time, f.file.rel))  # a stream goes forward in time
+            results += score_frames(baseline, frames, streams=self.streams)
         self.writer.write(results, skipped, seen)
         with self._lock:
             for r in results:

@@ -64,6 +64,8 @@ class Item:
     end: datetime | None = None
     frames: int = 1
     members: list[str] = field(default_factory=list)
+    #: Persistent events (busy cameras): when the region first appeared; None otherwise.
+    since: datetime | None = None
 
 
 @dataclass(frozen=True)
@@ -167,6 +169,7 @@ class Results:
                 start, end = parse_time(row["start"]), parse_time(row["end"])
                 score = float(row["peak_score"])
                 count = int(float(row.get("flagged_frames") or row.get("frames") or 1))
+                since = parse_time(row["since"]) if row.get("since") else None
             except (KeyError, TypeError, ValueError):
                 self.problems.append(f"events.csv row {n + 1} is malformed; left out")
                 continue
@@ -182,7 +185,7 @@ class Results:
                 threshold=top.threshold if top else math.nan,
                 p_value=top.p_value if top else math.nan, version=top.version if top else "",
                 overlay=top.overlay if top else "", event=row.get("event") or str(n),
-                start=start, end=end, frames=count, members=members))
+                start=start, end=end, frames=count, members=members, since=since))
         return events
 
     def _read_points(self, flagged: list[Item], events: list[Item]) -> None:
@@ -390,7 +393,7 @@ def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str
         return (f'<svg class="timeline" role="img" aria-label="{title}" viewBox="0 0 {width} 40" '
                 f'width="{width}" height="40"><text x="8" y="24">no scores for '
                 f'{escape(camera)}</text></svg>')
-    t0 = min([p.time for p in pts] + [e.start for e in evs]).timestamp()
+    t0 = min([p.time for p in pts] + [e.since or e.start for e in evs]).timestamp()
     t1 = max([p.time for p in pts] + [e.end for e in evs]).timestamp()
     span = max(t1 - t0, 1.0)
     ys = [symlog(p.score) for p in pts] + [symlog(p.threshold) for p in pts
@@ -407,12 +410,14 @@ def timeline_svg(camera: str, points: list[Point], events: list[Item], link: str
              f'{height}" width="{width}" height="{height}" data-camera="{escape(camera)}">'),
              f'<title>{title}</title>',
              f'<rect x="{pad_l}" y="{pad_t}" width="{pw}" height="{ph}" class="plot"/>']
-    for e in evs:
-        x0, x1 = x(e.start.timestamp()), x(e.end.timestamp())
-        parts.append(f'<a href="{escape(link + e.id)}"><rect class="event" x="{x0 - 2:.1f}" '
+    for e in evs:  # a persistent event spans from when its region appeared, drawn apart
+        x0, x1 = x((e.since or e.start).timestamp()), x(e.end.timestamp())
+        kind, note = ("event persistent", f", stayed since {e.since:%H:%M:%S}") if e.since \
+            else ("event", "")
+        parts.append(f'<a href="{escape(link + e.id)}"><rect class="{kind}" x="{x0 - 2:.1f}" '
                      f'y="{pad_t}" width="{max(x1 - x0, 0) + 4:.1f}" height="{ph}">'
                      f'<title>event {escape(e.event)}: {e.frames} flagged frames, peak '
-                     f'{e.score:.2f}</title></rect></a>')
+                     f'{e.score:.2f}{note}</title></rect></a>')
     line: list[tuple[float, float]] = []  # thresholds can change with the version: steps
     for p in pts:
         if math.isfinite(p.threshold):

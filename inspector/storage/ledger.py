@@ -28,7 +28,12 @@ written  1 once the frame's CSV rows are in the results folder (see
          :mod:`inspector.storage.results`)
 health   the frame's camera health conditions, JSON ``[[condition, measure, limit], ...]``
          (NULL when none), so that its health.csv rows can be written again after a crash
+since    persistence (busy cameras): since when a flagged frame's region has stayed
 ======== ================================================================================
+
+Table ``streams``: each camera's rolling persistence state (the last frames' anomaly maps,
+see :mod:`inspector.core.persistence`) as ``.npz`` bytes, so a restarted watcher goes on
+where it stopped.
 
 Table ``watchers``: one heartbeat row per running watcher (queue lengths and lag), read by
 ``status``. Other parts of the tool add their own tables to the same file; this module
@@ -37,6 +42,7 @@ never drops or rewrites tables it does not own.
 
 from __future__ import annotations
 
+import io
 import json
 import os
 import sqlite3
@@ -46,6 +52,8 @@ from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from inspector.clock import now_iso
 from inspector.core.events import FramePoint
 from inspector.storage.database import TIMEOUT, open_database, transaction
@@ -53,7 +61,7 @@ from inspector.storage.database import TIMEOUT, open_database, transaction
 #: Columns of ``frames`` written by :meth:`Ledger.record` (all but ``id``).
 FRAME_COLUMNS = ("path", "rel", "camera", "size", "mtime", "status", "reason", "score",
                  "threshold", "p_value", "flagged", "version", "capture_time", "overlay",
-                 "seen_at", "scored_at", "written", "health")
+                 "seen_at", "scored_at", "written", "health", "since")
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS frames (
@@ -75,9 +83,16 @@ CREATE TABLE IF NOT EXISTS frames (
     seen_at TEXT,
     scored_at TEXT,
     written INTEGER NOT NULL DEFAULT 1,
-    health TEXT
+    health TEXT,
+    since TEXT
 );
 CREATE INDEX IF NOT EXISTS frames_camera ON frames (camera, status, capture_time);
+CREATE TABLE IF NOT EXISTS streams (
+    camera TEXT PRIMARY KEY,
+    version TEXT,
+    updated TEXT,
+    state BLOB
+);
 CREATE TABLE IF NOT EXISTS watchers (
     source TEXT PRIMARY KEY,
     pid INTEGER,
@@ -139,7 +154,7 @@ class Ledger:
         self.conn.executescript(_SCHEMA)
         with self.lock, self._transaction():  # ledgers made before a column existed
             have = {r[1] for r in self.conn.execute("PRAGMA table_info(frames)")}
-            for name, kind in (("health", "TEXT"),):
+            for name, kind in (("health", "TEXT"), ("since", "TEXT")):
                 if name not in have:
                     self.conn.execute(f"ALTER TABLE frames ADD COLUMN {name} {kind}")
 
@@ -178,6 +193,29 @@ class Ledger:
                 "pid = excluded.pid, started = excluded.started, updated = excluded.updated, "
                 "updated_unix = excluded.updated_unix, state = excluded.state",
                 (source, os.getpid(), started, now_iso(), time.time(), json.dumps(state)))
+
+    def keep_stream(self, camera: str, version: str, arrays: dict[str, Any]) -> None:
+        """Store a camera's rolling persistence state (arrays as ``.npz`` bytes, no pickle)."""
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        with self.lock, self._transaction():
+            self.conn.execute(
+                "INSERT INTO streams (camera, version, updated, state) VALUES (?, ?, ?, ?) "
+                "ON CONFLICT(camera) DO UPDATE SET version = excluded.version, "
+                "updated = excluded.updated, state = excluded.state",
+                (camera, version, now_iso(), buf.getvalue()))
+
+    def stream(self, camera: str):
+        """A camera's stored persistence state: (version, StreamState), or None."""
+        from inspector.core.persistence import StreamState
+
+        with self.lock:
+            row = self.conn.execute("SELECT version, state FROM streams WHERE camera = ?",
+                                    (camera,)).fetchone()
+        if row is None:
+            return None
+        with np.load(io.BytesIO(row[1]), allow_pickle=False) as z:
+            return row[0], StreamState.from_arrays({k: z[k] for k in z.files})
 
     def end_watch(self, source: str) -> None:
         with self.lock, self._transaction():
@@ -226,7 +264,7 @@ class Ledger:
         """Scored frames under ``root`` (of one camera, if given) as the event grouping
         sees them."""
         lo, hi = source_range(root)
-        sql = ("SELECT camera, capture_time, rel, score, flagged FROM frames "
+        sql = ("SELECT camera, capture_time, rel, score, flagged, since FROM frames "
                "WHERE path >= ? AND path < ? AND status = 'scored'")
         params: tuple = (lo, hi)
         if camera is not None:
@@ -235,7 +273,7 @@ class Ledger:
         with self.lock:
             found = self.conn.execute(sql, params).fetchall()
         for r in found:
-            yield FramePoint(r[0], r[1] or "", r[2], float(r[3]), bool(r[4]))
+            yield FramePoint(r[0], r[1] or "", r[2], float(r[3]), bool(r[4]), r[5] or "")
 
     def cameras(self, root: Path | str) -> list[str]:
         """Cameras with scored frames under ``root``."""

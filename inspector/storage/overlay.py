@@ -14,10 +14,18 @@ _OUTLINE = (255, 255, 255)
 _HATCH = (160, 160, 160)
 
 
-def overlay_caption(camera: str, time: str, score: float, threshold: float) -> str:
-    """The caption of every overlay, saved or drawn on the spot (ASCII: drawn by OpenCV)."""
+def overlay_caption(camera: str, time: str, score: float, threshold: float,
+                    stayed: float | None = None) -> str:
+    """The caption of every overlay, saved or drawn on the spot (ASCII: drawn by OpenCV).
+
+    ``stayed``: seconds the flagged region has stayed (persistence, busy cameras)."""
     sign = ">" if score > threshold else "<="
-    return f"{camera}  {time}  score {score:.2f} {sign} threshold {threshold:.2f}"
+    text = f"{camera}  {time}  score {score:.2f} {sign} threshold {threshold:.2f}"
+    if stayed is not None:
+        s = max(stayed, 0.0)
+        text += "  stayed " + (f"{s:.0f} s" if s < 120 else f"{s / 60:.0f} min" if s < 7200
+                               else f"{s / 3600:.1f} h")
+    return text
 
 
 def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,

@@ -65,6 +65,11 @@ def format_row(frame: str, camera: str, time: str, score: float, threshold: floa
             overlay)
 
 
+def since_text(r: "FrameResult") -> str:
+    """ISO 8601 time since which a flagged frame's persistent region has stayed ('' if none)."""
+    return iso_time(r.since) if r.since is not None and r.flagged else ""
+
+
 @dataclass
 class FrameResult:
     """One scored frame.
@@ -95,6 +100,8 @@ class FrameResult:
     amap: np.ndarray
     health: list = field(default_factory=list)
     mask: np.ndarray | None = None
+    #: Persistence (busy cameras): since when the flagged region has stayed, else None.
+    since: datetime | None = None
 
 
 def repair_tail(path: Path) -> None:
@@ -247,7 +254,8 @@ class ResultWriter:
                                 score=r.score, threshold=r.threshold, p_value=r.p_value,
                                 flagged=int(r.flagged), version=r.model, capture_time=t,
                                 overlay=overlay, written=0,
-                                health=json.dumps(r.health) if r.health else None)
+                                health=json.dumps(r.health) if r.health else None,
+                                since=since_text(r))
                            for r, t, overlay in zip(results, times, overlays)]
                 entries += [dict(self._file(s.frame, seen), camera=s.camera, reason=s.reason,
                                  status="waiting" if s.waiting else "skipped",
@@ -261,7 +269,7 @@ class ResultWriter:
                     self.health_rows.row(row)
                     self.counts["health"] += 1
                 self._points.setdefault(r.camera, []).append(
-                    FramePoint(r.camera, t, r.frame, r.score, r.flagged))
+                    FramePoint(r.camera, t, r.frame, r.score, r.flagged, since_text(r)))
                 if self._dirty is not None:
                     self._dirty.add(r.camera)
             for s in skipped:
@@ -283,7 +291,8 @@ class ResultWriter:
             name = self._unique("overlay", r.camera, r.frame)
             path = self.out / "overlays" / r.camera / f"{name}.jpg"
             path.parent.mkdir(parents=True, exist_ok=True)
-            caption = overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold)
+            caption = overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold,
+                                      (r.time - r.since).total_seconds() if r.since else None)
             cv2.imwrite(str(path), render_overlay(r.image, r.amap, r.threshold, caption, r.mask),
                         [cv2.IMWRITE_JPEG_QUALITY, 90])
             overlay = path.as_posix()

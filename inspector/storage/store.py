@@ -41,6 +41,7 @@ from inspector.core.baseline import Baseline
 from inspector.core.calibration import Calibration, Threshold
 from inspector.core.conditions import Conditions
 from inspector.core.models import model_class
+from inspector.core.persistence import Persistence
 from inspector.core.regimes import Regimes
 from inspector.errors import UsageError
 
@@ -368,6 +369,10 @@ class Store:
             with np.load(folder / "calibration.npz", allow_pickle=False) as z:
                 arrays = {k: z[k] for k in ("center", "scale", "calibration_scores")}
                 mask = z["mask"] if "mask" in z.files else None
+                persistence = (Persistence.from_saved(meta["persistence"],
+                                                      z["persistence_scores"])
+                               if meta.get("persistence") and "persistence_scores" in z.files
+                               else None)
             reading = "baseline.json"
             calibration = Calibration(arrays["center"], arrays["scale"],
                                       arrays["calibration_scores"],
@@ -394,7 +399,8 @@ class Store:
             raise DamagedBaseline(check, self.advice(camera, version)) from None
         return Baseline(camera=camera, version=version, model=model, calibration=calibration,
                         size=size, source_size=source_size,
-                        mask=mask, meta=meta, conditions=conditions, regimes=regimes)
+                        mask=mask, meta=meta, conditions=conditions, regimes=regimes,
+                        persistence=persistence)
 
     def save(self, baseline: Baseline, activate: bool = True) -> str:
         """Write ``baseline`` as the camera's next version; returns the version id.
@@ -414,6 +420,9 @@ class Store:
             arrays = {"center": c.center, "scale": c.scale, "calibration_scores": c.scores}
             if baseline.mask is not None:
                 arrays["mask"] = baseline.mask
+            if baseline.persistence is not None:
+                arrays["persistence_scores"] = baseline.persistence.calibration_scores
+                baseline.meta["persistence"] = baseline.persistence.to_json()
             np.savez_compressed(tmp / "calibration.npz", **arrays)
             if baseline.conditions is not None:
                 np.savez_compressed(tmp / "conditions.npz", **baseline.conditions.arrays())

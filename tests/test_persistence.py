@@ -1,0 +1,156 @@
+"""Persistence for busy cameras: the running minimum, its state, calibration, scan and bench."""
+
+from __future__ import annotations
+
+import importlib.util
+import math
+from datetime import datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.ndimage import minimum_filter1d
+
+from inspector.config import Config, PersistenceSettings, load_config
+from inspector.core.events import FramePoint, group_events
+from inspector.core.persistence import (
+    BUSY_SHARE,
+    StreamState,
+    calibrate_persistence,
+    local_maps,
+    persistence,
+    persistence_on,
+)
+from inspector.errors import UsageError
+
+
+def _stream(n=40, h=6, w=8, seed=0):
+    rng = np.random.default_rng(seed)
+    return rng.normal(size=(n, h, w)).astype(np.float32), np.arange(n) * 2.0
+
+
+def test_running_minimum_matches_scipy_erosion_along_time():
+    # Reference: scipy.ndimage.minimum_filter1d, a flat erosion along the time axis; origin
+    # (size - 1) // 2 makes its window the trailing one [t - size + 1, t]. Each map is first
+    # made local: less its median over the cells (numpy.median as the reference).
+    maps, times = _stream()
+    local = maps - np.median(maps, axis=(1, 2), keepdims=True)
+    np.testing.assert_allclose(local_maps(maps), local, atol=1e-6)
+    for window in (1, 2, 3, 5):
+        run = persistence(maps, times, window, max_gap=10.0)
+        ref = minimum_filter1d(local, size=window, axis=0, origin=(window - 1) // 2)
+        full = run.filled
+        assert full.sum() == len(maps) - window + 1
+        np.testing.assert_allclose(run.maps[full], ref[full], atol=1e-6)
+        np.testing.assert_allclose(run.scores, run.maps.reshape(len(maps), -1).max(axis=1))
+
+
+def test_state_carries_the_window_across_calls_and_through_arrays():
+    maps, times = _stream()
+    whole = persistence(maps, times, 3, 10.0, threshold=1.0)
+    first = persistence(maps[:17], times[:17], 3, 10.0, threshold=1.0)
+    saved = StreamState.from_arrays(first.state.arrays())  # as the ledger keeps it
+    second = persistence(maps[17:], times[17:], 3, 10.0, threshold=1.0, state=saved)
+    np.testing.assert_allclose(np.concatenate([first.maps, second.maps]), whole.maps)
+    assert np.array_equal(np.concatenate([first.filled, second.filled]), whole.filled)
+    np.testing.assert_array_equal(np.concatenate([first.since, second.since]), whole.since)
+
+
+def test_gap_and_new_block_start_a_new_window():
+    maps, times = _stream(12)
+    times = times.copy()
+    times[6:] += 1000.0  # a long gap before frame 6
+    run = persistence(maps, times, 3, max_gap=10.0)
+    assert run.filled.tolist() == [False, False] + [True] * 4 + [False, False] + [True] * 4
+    blocks = np.repeat([0, 1], 6)
+    run = persistence(maps, np.arange(12) * 2.0, 3, 10.0, blocks=blocks)
+    assert not run.filled[6] and not run.filled[7] and run.filled[8]
+
+
+def test_since_is_when_the_region_appeared():
+    maps = np.zeros((8, 4, 4), np.float32)
+    maps[3:, 1, 2] = 5.0           # something appears at frame 3 and stays
+    maps[2, 0, 0] = 9.0            # something passes at frame 2
+    times = 100.0 + np.arange(8) * 2.0
+    run = persistence(maps, times, 3, 10.0, threshold=1.0)
+    flagged = run.filled & (run.scores > 1.0)
+    assert flagged.tolist() == [False] * 5 + [True] * 3   # on its third frame (window 3)
+    assert run.since[5:].tolist() == [times[3]] * 3
+    assert np.isnan(run.since[:5]).all()
+
+
+def test_calibrate_tells_busy_from_quiet():
+    rng = np.random.default_rng(1)
+    n, h, w = 300, 12, 16
+    quiet = np.abs(rng.normal(size=(n, h, w))).astype(np.float32)
+    times = np.arange(n) * 2.0
+    blocks = (np.arange(n) * 5) // n
+    p = calibrate_persistence(quiet, times, blocks, alpha=0.01)
+    assert not p.busy and p.transient_share < BUSY_SHARE
+    # Conformal threshold: the ceil((k + 1)(1 - alpha))-th smallest persistence score
+    # (Vovk, Gammerman & Shafer 2005), i.e. numpy's "inverted_cdf" quantile at that rank.
+    k = len(p.calibration_scores)
+    rank = math.ceil((k + 1) * 0.99)
+    assert p.threshold.value == pytest.approx(np.sort(p.calibration_scores)[rank - 1])
+    busy = quiet.copy()
+    for i in range(0, n, 2):  # a large passer-by in every other frame, never twice in place
+        y, x = (i * 7) % (h - 3), (i * 5) % (w - 3)
+        busy[i, y:y + 3, x:x + 3] += 200.0
+    b = calibrate_persistence(busy, times, blocks, alpha=0.01)
+    assert b.busy and b.transient_share > 0.3
+    assert b.threshold.value < 10.0  # passers-by do not set the persistence threshold
+
+
+def test_mode_and_config():
+    assert persistence_on(True) and not persistence_on(False)
+    assert persistence_on(False, "on") and not persistence_on(True, "off")
+    assert not persistence_on(None, "on")            # never without a calibration
+    cfg = Config(cameras={"gate": {"persistence": "on", "persistence_window": 4}})
+    assert cfg.camera("gate").persistence == PersistenceSettings("on", 4)
+    assert cfg.camera("dock").persistence.mode == "auto"
+
+
+def test_bad_persistence_mode_is_a_usage_error(tmp_path):
+    path = tmp_path / "c.toml"
+    path.write_text('[cameras.gate]\npersistence = "sometimes"\n')
+    with pytest.raises(UsageError, match="persistence"):
+        load_config(path)
+
+
+def test_events_carry_since():
+    t0 = datetime(2026, 11, 30, 8, 0, 0)
+    points = [FramePoint("gate", (t0 + timedelta(seconds=2 * i)).isoformat(), f"f{i}", 1.0,
+                         i >= 4, (t0 + timedelta(seconds=4)).isoformat() if i >= 4 else "")
+              for i in range(8)]
+    (event,) = group_events(points)
+    assert event.since == (t0 + timedelta(seconds=4)).isoformat()
+    assert event.row()[-1] == event.since
+
+
+def test_ledger_keeps_a_stream(tmp_path):
+    from inspector.storage.ledger import Ledger
+
+    maps, times = _stream(5)
+    state = persistence(maps, times, 3, 10.0, threshold=0.5).state
+    with Ledger(tmp_path / "db.sqlite") as ledger:
+        assert ledger.stream("gate") is None
+        ledger.keep_stream("gate", "v1", state.arrays())
+    with Ledger(tmp_path / "db.sqlite") as ledger:  # a restart
+        version, again = ledger.stream("gate")
+    assert version == "v1"
+    np.testing.assert_array_equal(again.maps, state.maps)
+    np.testing.assert_array_equal(again.onset, state.onset)
+
+
+def test_bench_busy_smoke(capsys):
+    # A tiny run of bench/busy.py: it learns, scans with persistence on and off and prints
+    # both rows (figures at this size mean nothing).
+    path = Path(__file__).resolve().parents[1] / "bench" / "busy.py"
+    spec = importlib.util.spec_from_file_location("bench_busy", path)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    # Clopper-Pearson upper bound for 0 of n: 1 - (alpha / 2) ** (1 / n) (closed form).
+    assert bench.binomial_interval(0, 30)[1] == pytest.approx(1 - 0.025 ** (1 / 30))
+    assert bench.main(["--normal", "30", "--new", "30", "--size", "128x72"]) == 0
+    out = capsys.readouterr().out
+    assert "\non " in out and "\noff " in out
