@@ -46,7 +46,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
     root = args.out
     say(f"generating the Larkspur Parcel Co. depot scenario in {root / 'frames'} ...")
-    # The busy camera is kept small: 5 bursts of normal frames, 3 to scan (3 left objects).
+    # The busy camera is kept small: 15 short bursts of normal frames, 3 bursts to scan with
+    # one object left in each.
     scenario = generate(root / "frames", seed=args.seed, cameras=(*CAMERAS, BUSY),
                         busy_frames=(150, 90))
     config = load_config(None)
