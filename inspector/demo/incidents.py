@@ -80,6 +80,18 @@ def full_mask(scene: Scene, box, local: np.ndarray) -> np.ndarray:
     return mask
 
 
+def _ellipse(cx: float, cy: float, rx: float, ry: float, reach: float, W: int, H: int):
+    """The box around an ellipse grown ``reach`` times (2 pixels more, clipped to the frame),
+    its (rows, columns) slices, (height, width), pixel coordinates (gy, gx) and each pixel's
+    elliptical distance from the centre (1 on the ellipse)."""
+    box = bbox(np.array([(cx - reach * rx, cy - reach * ry), (cx + reach * rx, cy + reach * ry)]),
+               2, W, H)
+    y0, y1, x0, x1 = box
+    gy, gx = np.mgrid[y0:y1, x0:x1].astype(np.float32)
+    dist = np.sqrt(((gx - cx) / rx) ** 2 + ((gy - cy) / ry) ** 2)
+    return box, (slice(y0, y1), slice(x0, x1)), (y1 - y0, x1 - x0), (gy, gx), dist
+
+
 def _parcel(rng: np.random.Generator, scene: Scene, out: np.ndarray,
             cond: Lighting, area: tuple[float, float] = INCIDENT_AREA) -> np.ndarray:
     """A box left on the floor, with its shadow; the mask covers box and shadow."""
@@ -175,13 +187,7 @@ def _spill(rng: np.random.Generator, scene: Scene, out: np.ndarray,
             break
         if attempt % 10 == 9:
             rx, ry = rx * 0.9, ry * 0.9
-    box = bbox(np.array([(cx - 1.5 * rx, cy - 1.5 * ry), (cx + 1.5 * rx, cy + 1.5 * ry)]),
-                2, W, H)
-    y0, y1, x0, x1 = box
-    ys, xs = slice(y0, y1), slice(x0, x1)
-    h, w = y1 - y0, x1 - x0
-    gy, gx = np.mgrid[y0:y1, x0:x1].astype(np.float32)
-    dist = np.sqrt(((gx - cx) / rx) ** 2 + ((gy - cy) / ry) ** 2)
+    box, (ys, xs), (h, w), (gy, gx), dist = _ellipse(cx, cy, rx, ry, 1.5, W, H)
     field = dist + 0.3 * smooth_noise(rng, (h, w), max(ry * 0.6, 2.0), octaves=3)
     for _ in range(int(rng.integers(1, 5))):           # a few splashes near the rim
         ang = rng.uniform(0, 2 * np.pi)
@@ -222,13 +228,7 @@ def _lens(rng: np.random.Generator, scene: Scene, out: np.ndarray,
         cx, cy = ((along * W, 0.0), (along * W, H), (0.0, along * H), (W, along * H))[where - 4]
     ry = math.sqrt(area / (math.pi * aspect * visible))
     rx = aspect * ry
-    box = bbox(np.array([(cx - 1.4 * rx, cy - 1.4 * ry), (cx + 1.4 * rx, cy + 1.4 * ry)]),
-                2, W, H)
-    y0, y1, x0, x1 = box
-    ys, xs = slice(y0, y1), slice(x0, x1)
-    h, w = y1 - y0, x1 - x0
-    gy, gx = np.mgrid[y0:y1, x0:x1].astype(np.float32)
-    dist = np.sqrt(((gx - cx) / rx) ** 2 + ((gy - cy) / ry) ** 2)
+    box, (ys, xs), (h, w), (gy, gx), dist = _ellipse(cx, cy, rx, ry, 1.4, W, H)
     dist += 0.15 * smooth_noise(rng, (h, w), max(0.5 * min(rx, ry), 2.0), octaves=2)
     kind = ("finger", "sticker", "dirt")[int(rng.integers(3))]
     soft = {"finger": rng.uniform(0.3, 0.5), "sticker": rng.uniform(0.15, 0.3),
@@ -263,13 +263,7 @@ def _haze(rng: np.random.Generator, scene: Scene, out: np.ndarray,
     ry = math.sqrt(1.7 * area / (math.pi * aspect))
     rx = aspect * ry
     cx, cy = rng.uniform(0.15, 0.85) * W, rng.uniform(0.2, 0.85) * H
-    box = bbox(np.array([(cx - 1.6 * rx, cy - 1.6 * ry), (cx + 1.6 * rx, cy + 1.6 * ry)]),
-                2, W, H)
-    y0, y1, x0, x1 = box
-    ys, xs = slice(y0, y1), slice(x0, x1)
-    h, w = y1 - y0, x1 - x0
-    gy, gx = np.mgrid[y0:y1, x0:x1].astype(np.float32)
-    dist = np.sqrt(((gx - cx) / rx) ** 2 + ((gy - cy) / ry) ** 2)
+    box, (ys, xs), (h, w), (gy, gx), dist = _ellipse(cx, cy, rx, ry, 1.6, W, H)
     dist += 0.3 * smooth_noise(rng, (h, w), max(0.7 * ry, 2.0), octaves=2)
     body = smoothstep((1.0 - dist) / 0.6)
     wisps = np.clip(0.65 + 0.35 * smooth_noise(rng, (h, w), max(0.35 * ry, 2.0), octaves=3),

@@ -56,8 +56,8 @@ from inspector.demo.scenes import (
 )
 from inspector.errors import UsageError
 
-__all__ = ["BUSY_CAMERAS", "CAMERAS", "HEALTH_NUISANCES", "INCIDENTS", "NUISANCES", "Scenario", "generate",
-           "load_truth"]
+__all__ = ["BUSY", "BUSY_CAMERAS", "CAMERAS", "HEALTH_NUISANCES", "INCIDENTS", "NUISANCES",
+           "Scenario", "generate", "load_truth"]
 
 #: Camera names, in the order they are generated.
 CAMERAS = ("dock", "aisle")
