@@ -7,16 +7,17 @@ object is unusual at the same place frame after frame.
 
 The persistence map of frame t is, per cell, the minimum of the local anomaly maps of the
 last ``window`` frames of the camera's stream, frame t included: a running minimum, high
-only where every one of those frames was unusual at that cell. A local map is the anomaly
-map (standardised, see :mod:`inspector.core.scoring`) less its median over the frame, so a
-change over the whole view that the normal frames did not show (evening light, say) does
-not read as something left in one place; what is left covers far less than half the view. It is the erosion of the stream's maps along time by a flat structuring
-element of ``window`` frames (grey-scale morphology; Serra 1982, *Image Analysis and
-Mathematical Morphology*, ch. XII; van Herk 1992 for running extrema). Its frame score is
-the maximum, as for single frames (:func:`inspector.core.scoring.frame_scores`), and its
+only where every one of those frames was unusual at that cell (a grey-scale erosion along
+time by a flat element of ``window`` frames; Serra 1982, *Image Analysis and Mathematical
+Morphology*, from memory). A local map is the anomaly map (standardised, see
+:mod:`inspector.core.scoring`) less its median over the frame, so a change over the whole
+view that the normal frames did not show (evening light, say) does not read as something
+left in one place; what is left covers far less than half the view. The frame score is the
+maximum, as for single frames (:func:`inspector.core.scoring.frame_scores`), and the
 threshold is the conformal threshold (:func:`inspector.core.calibration.conformal_threshold`)
-of the persistence scores of held-out normal frames, taken in capture-time order within
-each time block, so the held-out maps come from a model that saw none of the window.
+of the persistence scores of held-out normal frames (the same held-out, cross-fitted maps
+as the single-frame threshold, :func:`inspector.core.calibration.cross_fit_maps`), taken in
+capture-time order within each time block.
 
 A window only spans frames of one stretch of the stream: a gap longer than ``max_gap``
 seconds (or, at learn time, a new time block) starts a new window, and frames scored before
@@ -226,7 +227,8 @@ class Persistence:
     calibration_scores : ndarray, shape (k,)
         Persistence scores of the held-out normal frames with a full window.
     transient_share : float
-        Share of those frames that hold a large short-lived anomaly (see :func:`calibrate_persistence`).
+        Share of those frames that hold a large short-lived anomaly (see
+        :func:`calibrate_persistence`).
     busy : bool
         ``transient_share >= BUSY_SHARE``: persistence is on by default.
     """
