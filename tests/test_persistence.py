@@ -17,6 +17,7 @@ from inspector.core.persistence import (
     BUSY_SHARE,
     StreamState,
     calibrate_persistence,
+    clearly_busy,
     local_maps,
     persistence,
     persistence_on,
@@ -87,6 +88,13 @@ def test_calibrate_tells_busy_from_quiet():
     blocks = (np.arange(n) * 5) // n
     p = calibrate_persistence(quiet, times, blocks, alpha=0.01)
     assert not p.busy and p.transient_share < BUSY_SHARE
+    # Busy only when the share is clearly above BUSY_SHARE: the one-sided exact binomial
+    # p-value, checked against the binomial tail summed directly (scipy.stats.binom.sf).
+    from scipy.stats import binom
+
+    for k, m in ((2, 26), (12, 100), (40, 100)):
+        assert clearly_busy(k, m) == (binom.sf(k - 1, m, BUSY_SHARE) < 0.05)
+    assert not clearly_busy(2, 26) and clearly_busy(40, 100)
     # Conformal threshold: the ceil((k + 1)(1 - alpha))-th smallest persistence score
     # (Vovk, Gammerman & Shafer 2005), i.e. numpy's "inverted_cdf" quantile at that rank.
     k = len(p.calibration_scores)

@@ -48,8 +48,9 @@ GAP_FACTOR = 10.0
 #: ``LARGE`` times that of the quietest quarter of the normal frames (an order of magnitude)
 #: and its persistence score keeps less than 1 / ``LARGE`` of it (gone within the window).
 LARGE = 10.0
-#: A camera whose normal frames hold large short-lived anomalies this often is busy: its
-#: single-frame threshold is then set by what passes (see :func:`calibrate_persistence`).
+#: A camera whose normal frames clearly hold large short-lived anomalies more often than this
+#: is busy: its single-frame threshold is then set by what passes (see
+#: :func:`calibrate_persistence`).
 BUSY_SHARE = 0.05
 
 
@@ -230,7 +231,8 @@ class Persistence:
         Share of those frames that hold a large short-lived anomaly (see
         :func:`calibrate_persistence`).
     busy : bool
-        ``transient_share >= BUSY_SHARE``: persistence is on by default.
+        The share is clearly above ``BUSY_SHARE`` (:func:`clearly_busy`): persistence is on
+        by default.
     """
 
     window: int
@@ -280,9 +282,9 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         the quietest quarter of the frames; this assumes passers-by leave at least a quarter
         of the frames empty) while its persistence score is below 1 / ``LARGE`` of it
         (almost all of it gone within the window). Slow changes (daylight, lamps) stay over
-        the window and do not count. The camera is busy when at least ``BUSY_SHARE`` of the
-        frames hold one: a single-frame threshold at any alpha below that share is then set
-        by what passes.
+        the window and do not count. The camera is busy when clearly more than ``BUSY_SHARE``
+        of the frames hold one (:func:`clearly_busy`): a single-frame threshold at any alpha
+        below that share is then set by what passes.
 
     Raises
     ------
@@ -299,7 +301,20 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     single = frame_scores(np.asarray(maps, np.float32))[run.filled]
     transient = (single > LARGE * np.quantile(single, 0.25)) & (scores < single / LARGE)
     share = float(transient.mean())
-    return Persistence(window, max_gap, threshold, scores, share, share >= BUSY_SHARE)
+    return Persistence(window, max_gap, threshold, scores, share,
+                       clearly_busy(int(transient.sum()), len(transient)))
+
+
+def clearly_busy(transient: int, frames: int, level: float = 0.05) -> bool:
+    """Whether ``transient`` of ``frames`` normal frames show a share above
+    :data:`BUSY_SHARE`: a one-sided exact binomial test at ``level``
+    (``scipy.stats.binomtest``), so a few odd frames of a short stretch do not make a
+    camera busy."""
+    if frames == 0:
+        return False
+    from scipy.stats import binomtest
+
+    return bool(binomtest(transient, frames, BUSY_SHARE, alternative="greater").pvalue < level)
 
 
 def persistence_on(busy: bool | None, mode: str = "auto") -> bool:
