@@ -204,7 +204,7 @@ def test_catch_up_then_live_with_events(env, capsys):
     assert len(rows) == 20 and all(r["status"] == "scored" for r in rows.values())
     ev = csv_rows(env["out"] / "events.csv")
     assert list(ev[0]) == ["event", "camera", "start", "end", "flagged_frames", "peak_frame",
-                           "peak_score"]
+                           "peak_score", "since"]
     assert [(e["camera"], e["flagged_frames"]) for e in ev] == [("dock", "3")]
     for r in csv_rows(env["out"] / "flagged.csv"):
         assert Path(r["overlay"]).is_file()
