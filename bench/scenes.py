@@ -38,6 +38,7 @@ import argparse
 import csv
 import dataclasses
 import os
+import shutil
 import sys
 import tempfile
 import time
@@ -476,6 +477,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", type=Path, default=None, help="keep the frames and results here")
     ap.add_argument("--small", action="store_true", help="a smoke run (one camera, few frames)")
+    ap.add_argument("--reuse", action="store_true",
+                    help="with --out: score the frames rendered there before (same settings)")
     args = ap.parse_args(argv)
     if args.small:
         args.cameras, args.normal, args.scan, args.incidents, args.altered = "yard", 16, 4, 5, 1
@@ -488,11 +491,33 @@ def main(argv: list[str] | None = None) -> int:
     return run(args.out, args)
 
 
+def save_truth(path: Path, truth: dict) -> None:
+    keys = sorted(truth)
+    masks = np.stack([truth[k][1] if truth[k][1] is not None else np.zeros((180, 320), bool)
+                      for k in keys])
+    np.savez_compressed(path, cameras=[k[0] for k in keys], stems=[k[1] for k in keys],
+                        kinds=[truth[k][0] for k in keys], masks=masks)
+
+
+def load_truth(path: Path) -> dict:
+    with np.load(path, allow_pickle=False) as z:
+        return {(str(c), str(s)): (str(k), m if k not in ("none",) + ALTERED else None)
+                for c, s, k, m in zip(z["cameras"], z["stems"], z["kinds"], z["masks"])}
+
+
 def run(root: Path, args: argparse.Namespace) -> int:
     cams = args.cameras.split(",")
     t0 = time.perf_counter()
-    truth = build(root / "frames", cams, args.normal, args.scan, args.incidents, args.altered,
-                  args.seed)
+    if args.reuse and (root / "truth.npz").exists():
+        truth = load_truth(root / "truth.npz")
+        for d in root.glob("out-*"):
+            shutil.rmtree(d)
+        for d in list(root.glob("store-*")) + list(root.glob("altered-*")):
+            shutil.rmtree(d)
+    else:
+        truth = build(root / "frames", cams, args.normal, args.scan, args.incidents,
+                      args.altered, args.seed)
+        save_truth(root / "truth.npz", truth)
     print(f"{len(cams)} cameras: {args.normal} normal, {args.scan} normal + {args.incidents} "
           f"incident frames to scan, {args.altered * len(ALTERED)} altered each "
           f"({time.perf_counter() - t0:.0f} s to render)", file=sys.stderr)

@@ -64,7 +64,8 @@ class ModelSettings:
     #: Patch side and stride in working-resolution pixels (even; stride divides patch).
     patch: int = 8
     stride: int = 4
-    #: Latent size per location; 0 chooses it from ``explained_variance``.
+    #: Latent size per location; 0 chooses it by held-out likelihood (the latest time
+    #: block against the earlier ones), or from ``explained_variance`` with too few blocks.
     latent: int = 0
     explained_variance: float = 0.9
     max_latent: int = 24

@@ -144,3 +144,27 @@ def test_expected_patches_unchanged_by_the_block_order():
     B, _, _ = ppca_precompute(model.W_, model.sigma2_, model.observed_)
     np.testing.assert_allclose(model._b(), B, rtol=1e-5, atol=1e-6)
     assert model.expected(imgs[:2]).shape == (2, 16, 24, 3)
+
+
+def test_heldout_latent_scores_every_size_like_scipy():
+    # Held-out NLL of a PPCA of training samples, for every latent size, from moments only
+    # (heldout_latent) equals the mean of SciPy's Gaussian log-densities of the held-out
+    # samples under C = W W^T + sigma^2 I fitted in closed form (Tipping & Bishop 1999).
+    from inspector.core.models.ppca import heldout_latent
+
+    rng = np.random.default_rng(0)
+    d, q_true = 10, 3
+    A = rng.normal(size=(q_true, d))
+    X = rng.normal(size=(300, q_true)) @ A + 0.3 * rng.normal(size=(300, d)) + 1.0
+    train, test = X[:200], X[200:]
+    mean, cov = train.mean(0), np.cov(train.T)
+    evals, evecs = np.linalg.eigh(cov)
+    evals, evecs = evals[::-1][None], evecs[:, ::-1][None]
+    second = ((test - mean).T @ (test - mean) / len(test))[None]
+    q, nll = heldout_latent(evals, evecs, second, max_latent=8)
+    for k in range(1, 9):
+        W, s2 = ppca_fit(cov[None], k)
+        C = W[0] @ W[0].T + s2[0] * np.eye(d)
+        ref = -multivariate_normal(mean, C).logpdf(test).mean()
+        assert nll[k - 1] == pytest.approx(ref, rel=1e-9)
+    assert q == q_true  # the size the held-out frames support, not the largest

@@ -17,18 +17,21 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
        1.5 px) varies over the sample far more than the noise does (8 x the median of that
        variation, and at least 12 grey levels), more than its smooth content does (the
        wall behind stays) and more than its mean fine detail (strokes come and go; an edge
-       whose contrast follows the light does not).
+       whose contrast follows the light does not), both in the frames as they are and
+       once they are aligned to the scene (text stays put while the scene jitters).
     2. Changing strokes are joined along rows (gaps up to 2 % of the frame width) into
        lines.
     3. A line is text when it is a row of characters: between 3 pixels and a twelfth of the
        frame high, at least three times as wide as high, with at least three separate stroke
-       columns, strokes filling a fair share of it, and standing alone: the band around
+       columns, changing strokes filling at least 15 % of it, and standing alone: the band around
        it (one line height on every side) holds far fewer changing strokes than the line
        (moving foliage, water or a jittering textured shelf change everywhere around).
-    4. A text line takes in the changing pieces in its rows up to four heights away (a
-       day digit between still hours), then stroke pieces at least half its height that
-       fit in its rows up to two heights away (the still rest of a date), at most its own
-       width further.
+    4. A text line takes the rows its strokes fill (changing or not: the whole height of
+       the characters), the changing pieces in its rows up to four heights away (a day
+       digit between still hours), then the columns up to two heights away that have
+       strokes in its rows and almost none just above and below (the still rest of a
+       date; a scene edge or texture runs on above and below), at most its own width
+       further.
 
     Text that never changes (a camera name) is left alone: it looks the same in every
     frame, which the model learns like any steady part of the scene.
@@ -64,9 +67,6 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
     joined = cv2.morphologyEx(cand.astype(np.uint8), cv2.MORPH_CLOSE,
                               cv2.getStructuringElement(cv2.MORPH_RECT, (2 * k + 1, 3)))
     count, _, stats, _ = cv2.connectedComponentsWithStats(joined, connectivity=8)
-    # Pieces of strokes (steady or not), for extending a line over the text that changes
-    # rarely or never (the rest of a date, the separators of a clock).
-    pieces = cv2.connectedComponentsWithStats(strokes.astype(np.uint8), connectivity=8)[2][1:]
     boxes = []
     for i in range(1, count):
         x, y, bw, bh, _ = (int(v) for v in stats[i])
@@ -75,32 +75,51 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
         inside = cand[y:y + bh, x:x + bw]
         columns = inside.any(axis=0).astype(np.int8)
         runs = int((np.diff(np.concatenate([[0], columns])) == 1).sum())
-        if runs < 3 or inside.mean() < 0.08:
+        if runs < 3 or inside.mean() < 0.15:
             continue
         ring = cand[max(0, y - bh):y + 2 * bh, max(0, x - bh):x + bw + bh]
         around = (ring.sum() - inside.sum()) / max(ring.size - inside.size, 1)
         if around > 0.2 * inside.mean():
             continue
-        x0, x1 = _extend_row(stats[1:], x, x + bw, y, y + bh, 4 * bh, w, 2)
-        x0, x1 = _extend_row(pieces, x0, x1, y, y + bh, 2 * bh, x1 - x0, (bh + 1) // 2)
-        # A character's width on each side (a digit that changed too rarely to be seen),
-        # a third of the height above and below.
-        pad = max(1, bh // 3)
-        boxes.append((max(0, x0 - bh), max(0, y - pad), min(w, x1 + bh),
-                      min(h, y + bh + pad)))
+        y0, y1 = _text_rows(strokes, x, x + bw, y, y + bh, max_height)
+        x0, x1 = _extend_row(stats[1:], x, x + bw, y, y + bh, 4 * bh, w)
+        x0, x1 = _extend_columns(strokes, x0, x1, y0, y1)
+        # A character's width on each side (a digit that changed too rarely to be seen).
+        th = y1 - y0
+        boxes.append((max(0, x0 - th), max(0, y0 - 1), min(w, x1 + th), min(h, y1 + 1)))
     return sorted(_merge_boxes(boxes), key=lambda b: (b[2] - b[0]) * (b[3] - b[1]))
 
 
+def _text_rows(strokes: np.ndarray, x0: int, x1: int, y0: int, y1: int, most: int
+               ) -> tuple[int, int]:
+    """The rows [top, bottom) of the characters of a line whose changing strokes fill
+    rows [y0, y1): the rows around it (up to a line height above and below) where strokes
+    cover at least a third of the line's columns as densely as in its densest row; at most
+    ``most`` rows."""
+    bh = y1 - y0
+    top, bottom = max(0, y0 - bh), min(strokes.shape[0], y1 + bh)
+    density = strokes[top:bottom, x0:x1].mean(axis=1)
+    dense = density >= max(density.max() / 3, 1e-9)
+    a, b = y0 - top, y1 - top
+    while a > 0 and dense[a - 1]:
+        a -= 1
+    while b < len(dense) and dense[b]:
+        b += 1
+    if b - a > most:
+        return y0, y1
+    return top + a, top + b
+
+
 def _extend_row(pieces: np.ndarray, x0: int, x1: int, y0: int, y1: int, gap: int,
-                reach: int, least: int) -> tuple[int, int]:
-    """Extend a text line [x0, x1) x [y0, y1) sideways over pieces (rows of
-    ``connectedComponentsWithStats`` stats: x, y, w, h, area) at least ``least`` pixels
-    high that lie within the line's rows (a third of its height and 2 px of slack) and start
-    within ``gap`` pixels of it; at most ``reach`` pixels on each side."""
+                reach: int) -> tuple[int, int]:
+    """Extend a text line [x0, x1) x [y0, y1) sideways over pieces of changing strokes
+    (rows of ``connectedComponentsWithStats`` stats: x, y, w, h, area) at least 2 pixels
+    high that lie within the line's rows (a third of its height and 2 px of slack) and
+    start within ``gap`` pixels of it; at most ``reach`` pixels on each side."""
     bh = y1 - y0
     slack = bh // 3 + 2  # the fine-detail halo of a stroke (blur of 1.5 px) reaches ~2 px
     fits = ((pieces[:, 1] >= y0 - slack) & (pieces[:, 1] + pieces[:, 3] <= y1 + slack)
-            & (pieces[:, 3] >= least))
+            & (pieces[:, 3] >= 2))
     cand = pieces[fits]
     lo, hi = x0 - reach, x1 + reach
     grown = True
@@ -111,6 +130,35 @@ def _extend_row(pieces: np.ndarray, x0: int, x1: int, y0: int, y1: int, gap: int
                 x0, grown = int(px), True
             if px + pw > x1 and px <= x1 + gap and px + pw <= hi:
                 x1, grown = int(px + pw), True
+    return x0, x1
+
+
+def _extend_columns(strokes: np.ndarray, x0: int, x1: int, y0: int, y1: int
+                    ) -> tuple[int, int]:
+    """Extend a text line [x0, x1) x [y0, y1) sideways over text columns: columns with
+    strokes in at least 30 % of the line's rows and almost none in the rows of one line
+    height above and
+    below it (the band of text stands alone; a scene edge or texture runs on), while
+    they come within two line heights of each other; at most the line's width each way."""
+    th = y1 - y0
+    h = strokes.shape[0]
+    band = strokes[y0:y1].mean(axis=0) >= 0.3  # characters fill a good part of a column
+    outside = np.concatenate([strokes[max(0, y0 - th):max(0, y0 - 2)],
+                              strokes[min(h, y1 + 2):min(h, y1 + th)]])
+    quiet = outside.mean(axis=0) < 0.05 if len(outside) else np.ones_like(band)
+    text = band & quiet
+    gap, reach = 2 * th, x1 - x0
+    lo, hi = max(0, x0 - reach), min(len(text), x1 + reach)
+    while True:
+        left = np.nonzero(text[max(lo, x0 - gap):x0])[0]
+        if not len(left):
+            break
+        x0 = max(lo, x0 - gap) + int(left[0])
+    while True:
+        right = np.nonzero(text[x1:min(hi, x1 + gap)])[0]
+        if not len(right):
+            break
+        x1 = x1 + int(right[-1]) + 1
     return x0, x1
 
 

@@ -130,6 +130,59 @@ def choose_latent(evals: np.ndarray, explained: float, max_latent: int) -> int:
     return int(np.clip(np.median(q_loc), 1, max_latent))
 
 
+def heldout_latent(evals: np.ndarray, evecs: np.ndarray, second: np.ndarray, max_latent: int,
+                   var_floor: float = 0.0, weights: np.ndarray | None = None
+                   ) -> tuple[int, np.ndarray]:
+    """Latent size shared by all locations that gives held-out frames the highest
+    likelihood, from moments alone.
+
+    A PPCA fitted in closed form to a covariance with eigenvalues lambda_j and eigenvectors
+    u_j (Tipping & Bishop 1999, eqs. 7-8) has covariance C_q with eigenvalues
+    max(lambda_j, sigma_q^2) for j <= q and sigma_q^2 (the mean of the rest) beyond. The
+    mean negative log-likelihood of held-out samples whose second moment about the model's
+    mean is S is then
+
+        0.5 * (d log 2 pi + log|C_q| + tr(C_q^-1 S)),
+        tr(C_q^-1 S) = sum_j (u_j^T S u_j) / eigenvalue_j(C_q),
+
+    so every q is scored from the projections u_j^T S u_j, without touching a frame.
+
+    Parameters
+    ----------
+    evals : ndarray, shape (L, d)
+        Eigenvalues of each location's training covariance, descending.
+    evecs : ndarray, shape (L, d, d)
+        The matching eigenvectors (columns).
+    second : ndarray, shape (L, d, d)
+        Second moment of the held-out samples about the training mean.
+    max_latent : int
+    var_floor : float
+        Lower bound on sigma^2, as in :func:`ppca_fit`.
+    weights : ndarray, shape (L,), optional
+        Weight of each location (0 leaves it out, e.g. partly masked ones).
+
+    Returns
+    -------
+    q : int
+        In [1, min(max_latent, d - 1)].
+    nll : ndarray, shape (max q,)
+        Held-out NLL per sample summed over locations, for q = 1, 2, ...
+    """
+    L, d = evals.shape
+    proj = (evecs * np.matmul(second, evecs)).sum(axis=1)  # u_j^T S u_j, shape (L, d)
+    w = np.ones(L) if weights is None else np.asarray(weights, np.float64)
+    top = int(min(max_latent, d - 1))
+    tail_sum = evals.sum(axis=1, keepdims=True) - np.cumsum(evals, axis=1)  # after each j
+    nll = np.empty(top)
+    for q in range(1, top + 1):
+        sigma2 = np.maximum(np.maximum(tail_sum[:, q - 1] / (d - q), var_floor), 1e-12)
+        v = np.maximum(evals[:, :q], sigma2[:, None])
+        per_loc = (np.log(v).sum(axis=1) + (d - q) * np.log(sigma2)
+                   + (proj[:, :q] / v).sum(axis=1) + proj[:, q:].sum(axis=1) / sigma2)
+        nll[q - 1] = 0.5 * float((w * (d * LOG_2PI + per_loc)).sum())
+    return int(np.argmin(nll)) + 1, nll
+
+
 def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | None = None
                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-location terms of the Woodbury form of the log-likelihood.
@@ -259,6 +312,16 @@ class Moments:
         self.total_scatter += T
         return self
 
+    def sums(self, before: int | None = None) -> tuple[float, np.ndarray, np.ndarray]:
+        """Count, sum (L, d) and scatter (L, d, d) about ``shift`` of all samples, or of
+        blocks 0 .. ``before`` - 1 (needs ``block_scatter``); copies."""
+        if before is None:
+            return float(self.count.sum()), self.sum.sum(axis=0), self.total_scatter.copy()
+        if self.scatter is None:
+            raise ValueError("a subset of the blocks needs Moments(block_scatter=True)")
+        return (float(self.count[:before].sum()), self.sum[:before].sum(axis=0),
+                self.scatter[:before].sum(axis=0))
+
     def mean_cov(self, leave_out: int | None = None, before: int | None = None
                  ) -> tuple[np.ndarray, np.ndarray, int]:
         """Mean (L, d), unbiased covariance (L, d, d) and count of all samples, of all but
@@ -294,7 +357,10 @@ class PatchPPCA(DensityModel):
     colour : bool
         Luminance plus half-resolution chroma (True) or luminance only.
     latent : int
-        Latent size q; 0 chooses it from ``explained_variance`` (see :func:`choose_latent`).
+        Latent size q; 0 chooses it by held-out likelihood: the size under which the
+        model of the earlier time blocks best predicts the latest one
+        (:func:`heldout_latent`), for every fold and the final model alike; with fewer
+        than three time blocks, from ``explained_variance`` (:func:`choose_latent`).
     explained_variance : float
     max_latent : int
     var_floor : float
@@ -400,14 +466,19 @@ class PatchPPCA(DensityModel):
                     continue
                 m_k, c_k, _ = moments.mean_cov(before=k)
                 fold = copy.copy(self)
-                fold._set(m_k, *fold._fit_params(c_k))
+                q = self._heldout_q(moments.sums(before=k - 1) if k > 1 else None,
+                                    moments.sums(before=k))
+                fold._set(m_k, *fold._fit_params(c_k, q))
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
+            self._last_split = ((moments.sums(before=len(labels) - 1) if len(labels) > 1
+                                 else None), moments.sums())
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
         mean, cov, _ = moments.mean_cov()
-        self._set(mean, *self._fit_params(cov))
+        self._set(mean, *self._fit_params(cov, self._heldout_q(*self._last_split)))
+        del self._last_split
         held_idx = [i for fold in folds for i, _ in fold]
         held_maps = [m for fold in folds for _, m in fold]
         if held_maps:
@@ -423,6 +494,7 @@ class PatchPPCA(DensityModel):
                           feature_size(self.patch, self.colour))
         held: list[tuple[np.ndarray, np.ndarray]] = []
         current, ready = -1, False
+        earlier = None  # sums at the start of the block before the current one
         for idx, images, varied in source.training_batches(order, self.batch_size):
             b_of = block_of[idx]
             for b in np.unique(b_of):
@@ -430,19 +502,53 @@ class PatchPPCA(DensityModel):
                 if b != current:  # a new block: fit the model of everything before it
                     current = b
                     ready = b >= first and moments.count.sum() >= 2
+                    now = moments.sums()
                     if ready:
                         m_k, c_k, _ = moments.mean_cov()
-                        self._set(m_k, *self._fit_params(c_k))
+                        self._set(m_k, *self._fit_params(c_k, self._heldout_q(earlier, now)))
+                    earlier = now
                 if ready:
                     held.append((idx[sel], self.score_maps(images[sel])))
                 moments.add(int(b), patch_features(varied[sel], self.patch, self.stride,
                                                    self.colour))
+        self._last_split = (earlier, moments.sums())
         return moments, [held]
 
-    def _fit_params(self, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """W and sigma^2 from a covariance; the latent size is chosen from it alone."""
-        return ppca_fit(cov, self.latent, self.observed_, self.var_floor,
+    def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
+        """W and sigma^2 from a covariance, with ``latent`` dimensions when given, else
+        ``self.latent``, else chosen by explained variance from the covariance alone."""
+        return ppca_fit(cov, latent or self.latent, self.observed_, self.var_floor,
                         self.explained_variance, self.max_latent)
+
+    def _heldout_q(self, earlier, now) -> int:
+        """Latent size for a model of the samples counted in ``now`` (count, sum, scatter
+        about the moments' shift): the one under which a model of ``earlier`` (the same,
+        one time block fewer) gives that last block the highest likelihood
+        (:func:`heldout_latent`). 0 when the latent size is set, or either part is too
+        small (the explained-variance rule then decides)."""
+        if self.latent or earlier is None:
+            return 0
+        n_a, s_a, S_a = earlier
+        n_t, s_t, S_t = now
+        n_b = n_t - n_a
+        if n_a < 2 or n_b < 1:
+            return 0
+        m_a = s_a / n_a
+        cov_a = (S_a - n_a * m_a[:, :, None] * m_a[:, None, :]) / max(n_a - 1.0, 1.0)
+        # Second moment of the last block about the earlier mean (both about the shift).
+        s_b, S_b = s_t - s_a, S_t - S_a
+        second = (S_b - s_b[:, :, None] * m_a[:, None, :] - m_a[:, :, None] * s_b[:, None, :]
+                  ) / n_b + m_a[:, :, None] * m_a[:, None, :]
+        weights = None
+        if self.observed_ is not None:  # partly masked locations are left out of the choice
+            full = self.observed_.all(axis=1)
+            weights = full.astype(np.float64)
+            cov_a = cov_a * full[:, None, None]
+            second = second * full[:, None, None]
+        evals, evecs = batched_eigh(cov_a)
+        evals = np.clip(evals[:, ::-1], 0.0, None)
+        evecs = np.ascontiguousarray(evecs[:, :, ::-1])
+        return heldout_latent(evals, evecs, second, self.max_latent, self.var_floor, weights)[0]
 
     def _set(self, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray) -> None:
         self.mean_ = mean.astype(np.float32)
@@ -725,4 +831,5 @@ def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: i
     return out
 
 
-__all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "choose_latent", "Moments"]
+__all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "choose_latent",
+           "heldout_latent", "Moments"]
