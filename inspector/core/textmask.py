@@ -84,9 +84,11 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
         y0, y1 = _text_rows(strokes, x, x + bw, y, y + bh, max_height)
         x0, x1 = _extend_row(stats[1:], x, x + bw, y, y + bh, 4 * bh, w)
         x0, x1 = _extend_columns(strokes, x0, x1, y0, y1)
-        # A character's width on each side (a digit that changed too rarely to be seen).
+        # A character's width on each side (a digit that changed too rarely to be seen), a
+        # quarter of its height above and below (the outline and blur of the strokes).
         th = y1 - y0
-        boxes.append((max(0, x0 - th), max(0, y0 - 1), min(w, x1 + th), min(h, y1 + 1)))
+        pad = max(1, th // 4)
+        boxes.append((max(0, x0 - th), max(0, y0 - pad), min(w, x1 + th), min(h, y1 + pad)))
     return sorted(_merge_boxes(boxes), key=lambda b: (b[2] - b[0]) * (b[3] - b[1]))
 
 
