@@ -428,7 +428,13 @@ def _plan_busy(camera, cam_index, split, count, seed, extra, scene, out: Scenari
     """A busy camera: bursts of frames with passers-by; objects left in the frames to scan."""
     rng = np.random.default_rng([seed, 1, cam_index, split])
     weather = LIGHTING[camera](np.random.default_rng([seed, 4, cam_index, split]))
-    sessions = ([(FIRST_DAY + timedelta(days=d), a, b) for d, a, b in NORMAL_SESSIONS]
+    # A busy camera's normal frames are bursts spread over the whole working day of each of
+    # the four days (as when a few days of a camera's recording are kept), so every time
+    # block of them shows every light of the day.
+    day_start = min(a for _, a, _ in NORMAL_SESSIONS)
+    day_end = max(b for _, _, b in NORMAL_SESSIONS)
+    sessions = ([(FIRST_DAY + timedelta(days=d), day_start, day_end)
+                 for d in sorted({d for d, _, _ in NORMAL_SESSIONS})]
                 if split == 0 else [(SCAN_DAY, a, b) for a, b in SCAN_SESSIONS])
     folder = (out.normal if split == 0 else out.new) / camera
     jobs: list[_Job] = []
