@@ -64,10 +64,12 @@ class ModelSettings:
     #: Patch side and stride in working-resolution pixels (even; stride divides patch).
     patch: int = 8
     stride: int = 4
-    #: Latent size per location; 0 chooses it by held-out likelihood (the latest time
-    #: block against the earlier ones), or from ``explained_variance`` with too few blocks.
+    #: Latent size per location; 0 chooses it by ``latent_rule``.
     latent: int = 0
     explained_variance: float = 0.9
+    #: "variance": the smallest size explaining ``explained_variance``; "heldout": the size
+    #: under which the earlier time blocks best predict the latest (PPCA only).
+    latent_rule: str = "variance"
     max_latent: int = 24
 
 
@@ -443,6 +445,8 @@ def _check_model(m: ModelSettings, where: str) -> None:
 
     if m.model not in MODEL_NAMES:
         raise UsageError(f"{where} model = {m.model!r}: choose one of {', '.join(MODEL_NAMES)}")
+    if m.latent_rule not in ("variance", "heldout"):
+        raise UsageError(f"{where} latent_rule = {m.latent_rule!r}: choose variance or heldout")
     if m.patch % 2 or m.stride % 2 or m.patch % m.stride:
         raise UsageError(
             f"{where} patch = {m.patch}, stride = {m.stride}: both must be even and the "

@@ -168,3 +168,11 @@ def test_heldout_latent_scores_every_size_like_scipy():
         ref = -multivariate_normal(mean, C).logpdf(test).mean()
         assert nll[k - 1] == pytest.approx(ref, rel=1e-9)
     assert q == q_true  # the size the held-out frames support, not the largest
+
+
+def test_heldout_rule_picks_a_size_and_is_kept():
+    rng = np.random.default_rng(2)
+    imgs = np.clip(rng.normal(120, 8, (40, 16, 24, 3)), 0, 255).astype(np.uint8)
+    m = PatchPPCA(latent_rule="heldout")
+    m.fit(ArraySource(imgs, folds=4))
+    assert 1 <= m.q_ <= m.max_latent and m.get_params()["latent_rule"] == "heldout"

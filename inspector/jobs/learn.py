@@ -458,7 +458,8 @@ def _model_params(cfg: CameraConfig) -> dict:
     m = cfg.model
     return {"patch": m.patch, "stride": m.stride, "colour": cfg.frames.colour,
             "latent": m.latent, **({"explained_variance": m.explained_variance,
-                                    "max_latent": m.max_latent} if m.model == "ppca" else {})}
+                                    "max_latent": m.max_latent, "latent_rule": m.latent_rule}
+                                   if m.model == "ppca" else {})}
 
 
 def _common_resolution(files: Sequence[FrameFile]) -> tuple[int, int]:

@@ -357,10 +357,12 @@ class PatchPPCA(DensityModel):
     colour : bool
         Luminance plus half-resolution chroma (True) or luminance only.
     latent : int
-        Latent size q; 0 chooses it by held-out likelihood: the size under which the
-        model of the earlier time blocks best predicts the latest one
-        (:func:`heldout_latent`), for every fold and the final model alike; with fewer
-        than three time blocks, from ``explained_variance`` (:func:`choose_latent`).
+        Latent size q; 0 chooses it by ``latent_rule``.
+    latent_rule : {"variance", "heldout"}
+        "variance": the smallest size explaining ``explained_variance`` of the variance
+        (:func:`choose_latent`). "heldout": the size under which the model of the earlier
+        time blocks best predicts the latest one (:func:`heldout_latent`), for every fold
+        and the final model alike (with fewer than three time blocks, "variance").
     explained_variance : float
     max_latent : int
     var_floor : float
@@ -392,12 +394,14 @@ class PatchPPCA(DensityModel):
 
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
-                 batch_size: int = 32, calibrate_from: float = 0.4):
+                 batch_size: int = 32, calibrate_from: float = 0.4,
+                 latent_rule: str = "variance"):
         self.patch = patch
         self.stride = stride
         self.colour = colour
         self.latent = latent
         self.explained_variance = explained_variance
+        self.latent_rule = latent_rule
         self.max_latent = max_latent
         self.var_floor = var_floor
         self.batch_size = batch_size
@@ -526,7 +530,7 @@ class PatchPPCA(DensityModel):
         one time block fewer) gives that last block the highest likelihood
         (:func:`heldout_latent`). 0 when the latent size is set, or either part is too
         small (the explained-variance rule then decides)."""
-        if self.latent or earlier is None:
+        if self.latent or self.latent_rule != "heldout" or earlier is None:
             return 0
         n_a, s_a, S_a = earlier
         n_t, s_t, S_t = now
