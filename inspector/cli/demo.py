@@ -46,10 +46,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
     root = args.out
     say(f"generating the Larkspur Parcel Co. depot scenario in {root / 'frames'} ...")
-    # The busy camera is kept small: 15 short bursts of normal frames, 3 bursts to scan with
-    # one object left in each.
+    # The busy camera: 24 short bursts of normal frames (enough full persistence windows for
+    # a 1 % threshold after the held-out split), 3 bursts to scan with one object left in each.
     scenario = generate(root / "frames", seed=args.seed, cameras=(*CAMERAS, BUSY),
-                        busy_frames=(150, 90))
+                        busy_frames=(240, 90))
     config = load_config(None)
     store = Store(root / "store")
     files, _ = discover(scenario.normal)
