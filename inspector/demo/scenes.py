@@ -231,13 +231,20 @@ def cardboard(rng: np.random.Generator) -> np.ndarray:
     return np.clip(base, 0.02, 0.95)
 
 
-def dock_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
-    """Loading dock: wall with dock door and window, concrete floor, pallets, trolley."""
-    W, H = width, height
+def _canvas(rng: np.random.Generator, W: int, H: int):
+    """A scene's texture fields (pixel grain, medium and coarse, unit variance) and its pixel
+    row and column coordinates, each (H, W) float32."""
     fine = smooth_noise(rng, (H, W), 1.0)
     mid = smooth_noise(rng, (H, W), 0.03 * W, octaves=2)
     coarse = smooth_noise(rng, (H, W), 0.25 * W, octaves=2)
     yy, xx = np.mgrid[0:H, 0:W].astype(np.float32)
+    return fine, mid, coarse, yy, xx
+
+
+def dock_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
+    """Loading dock: wall with dock door and window, concrete floor, pallets, trolley."""
+    W, H = width, height
+    fine, mid, coarse, yy, xx = _canvas(rng, W, H)
     wall_y = 0.34 * H
 
     # Painted block wall with mortar joints.
@@ -370,10 +377,7 @@ def dock_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
 def aisle_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
     """Shelf aisle in perspective: racking with boxes both sides, floor, ceiling lights."""
     W, H = width, height
-    fine = smooth_noise(rng, (H, W), 1.0)
-    mid = smooth_noise(rng, (H, W), 0.03 * W, octaves=2)
-    coarse = smooth_noise(rng, (H, W), 0.25 * W, octaves=2)
-    yy, xx = np.mgrid[0:H, 0:W].astype(np.float32)
+    fine, mid, coarse, yy, xx = _canvas(rng, W, H)
     vpx, vpy = 0.5 * W + rng.uniform(-0.02, 0.02) * W, 0.33 * H
     near_base, near_top, near_x = 1.0 * H, -0.30 * H, 0.10 * W   # left rack at depth z = 1
 
