@@ -86,8 +86,12 @@ def _blocks(n: int) -> np.ndarray:
 def _before_ppca(train: np.ndarray):
     """PPCA as it was: final model first (its latent size shared by the folds), then
     leave-one-block-out models score their block."""
-    from inspector.core.features import feature_size, grid_shape, observed_features, \
-        patch_features
+    from inspector.core.features import (
+        feature_size,
+        grid_shape,
+        observed_features,
+        patch_features,
+    )
 
     model = PatchPPCA(**PPCA)
     blocks = _blocks(len(train))
@@ -117,14 +121,14 @@ def _before_ppca(train: np.ndarray):
 def _before_vae(train: np.ndarray):
     """The VAE as it was: the latest 20% of every block both chose the stopping epoch and
     calibrated."""
-    from inspector.core.models.vae import PatchVAE
+    from inspector.core.models.vae import FrameVAEModel
 
-    class Before(PatchVAE):
+    class Before(FrameVAEModel):
         def fit(self, source, mask=None):
             import torch
 
             from inspector.core.models.base import HeldOut
-            from inspector.core.models.vae import _torch_threads
+            from inspector.core.models.vae_net import _torch_threads
 
             self.size_ = tuple(source.size)
             self._geometry(self.size_)
@@ -181,9 +185,9 @@ def run(model_name: str, path: str, n: int, n_scan: int, alphas, drift: float, s
     if model_name == "ppca":
         model = PatchPPCA(**PPCA)
     else:
-        from inspector.core.models.vae import PatchVAE
+        from inspector.core.models.vae import FrameVAEModel
 
-        model = PatchVAE(**VAE)
+        model = FrameVAEModel(**VAE)
     blocks = _blocks(n)
     held = model.fit(ArraySource(train, blocks))
     raw = model.score_maps(scan)

@@ -176,3 +176,26 @@ def test_heldout_rule_picks_a_size_and_is_kept():
     m = PatchPPCA(latent_rule="heldout")
     m.fit(ArraySource(imgs, folds=4))
     assert 1 <= m.q_ <= m.max_latent and m.get_params()["latent_rule"] == "heldout"
+
+
+def test_masked_fit_is_the_ppca_of_the_observed_features():
+    # The fit path with an ignore mask: a location partly under the mask is the PPCA of its
+    # observed features only (Tipping & Bishop 1999), which scikit-learn's PCA.score_samples
+    # computes from those columns; a fully masked location scores 0.
+    from inspector.core.features import observed_features
+
+    rng = np.random.default_rng(7)
+    base = cv2.GaussianBlur(rng.integers(0, 255, size=(16, 24, 3)).astype(np.float32), (0, 0), 1)
+    imgs = np.clip(base + rng.normal(0, 6, (120, 16, 24, 3)), 0, 255).astype(np.uint8)
+    mask = np.zeros((16, 24), bool)
+    mask[2:6, 1:5] = True    # part of location 0
+    mask[8:16, 16:24] = True  # all of the last location
+    model = PatchPPCA(patch=8, stride=8, colour=False, latent=3, var_floor=0.0)
+    model.fit(ArraySource(imgs[:100], folds=2), mask)
+    obs = observed_features(mask, 8, 8, False)
+    assert not obs[0].all() and obs[0].any() and not obs[-1].any()
+    X = patch_features(imgs, 8, 8, colour=False).astype(np.float64)
+    ref = PCA(n_components=3).fit(X[:100, 0][:, obs[0]]).score_samples(X[100:, 0][:, obs[0]])
+    np.testing.assert_allclose(-model.patch_nll(imgs[100:])[:, 0], ref, rtol=1e-4)
+    maps = model.score_maps(imgs[100:])
+    assert np.all(maps[:, 2:, 4:] == 0)  # cells of the fully masked location

@@ -17,7 +17,7 @@ from scipy import integrate  # noqa: E402
 
 from inspector.core.models.base import ArraySource  # noqa: E402
 from inspector.core.models.ppca import ppca_fit, ppca_nll  # noqa: E402
-from inspector.core.models.vae import PatchVAE, elbo, iwae_bound, log_weights  # noqa: E402
+from inspector.core.models.vae import FrameVAEModel, elbo, iwae_bound, log_weights  # noqa: E402
 
 
 @pytest.fixture(autouse=True)
@@ -48,8 +48,8 @@ def test_linear_vae_elbo_reaches_ppca_maximum_likelihood():
     # a Gaussian decoder of shared variance has the PPCA ML solution as its global optimum,
     # where the ELBO is tight. So the trained ELBO must come within TOL of the PPCA maximum
     # log-likelihood and (being a lower bound on a likelihood that PPCA maximises) never
-    # exceed it. Tolerance: 0.01 nats per point (about 0.1 % of |log-lik|).
-    TOL = 0.01
+    # exceed it.
+    TOL = 0.004  # measured 2.0e-3 with these seeds; twice that
     rng = np.random.default_rng(0)
     n, d, q = 1500, 8, 2
     W = rng.normal(size=(d, q)) * np.array([2.0, 1.0])
@@ -57,6 +57,12 @@ def test_linear_vae_elbo_reaches_ppca_maximum_likelihood():
     mean, cov = X.mean(0), np.cov(X.T, bias=True)  # ML estimates (divide by n)
     Wp, s2 = ppca_fit(cov[None], q)
     max_loglik = float(-ppca_nll(X[:, None, :], mean[None], Wp, s2)[:, 0].mean())
+    # scikit-learn's PCA.score is the mean PPCA log-likelihood at the fit (Tipping & Bishop
+    # 1999), the outside reference for the maximum; it divides the covariance by n - 1,
+    # which moves the value by about 1e-7 relative here.
+    from sklearn.decomposition import PCA
+
+    assert max_loglik == pytest.approx(PCA(n_components=q).fit(X).score(X), rel=1e-6)
 
     torch.manual_seed(0)
     Xt = torch.tensor(X, dtype=torch.float64)
@@ -89,6 +95,7 @@ def test_linear_vae_elbo_reaches_ppca_maximum_likelihood():
         exact = float(_linear_elbo_exact(Xt, enc, enc_lv, dec, dec_lv))
         mc = elbo(Xt, encoder, decoder, samples=400, generator=gen)
     assert exact <= max_loglik + 1e-9
+    print(f"gap to the PPCA maximum: {max_loglik - exact:.2e} nats per point")
     assert max_loglik - exact < TOL
     # The Monte-Carlo ELBO is an unbiased estimate of the closed form (Kingma & Welling 2014).
     se = float(mc.std()) / math.sqrt(n)
@@ -213,7 +220,7 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     mask = np.zeros((h, w), bool)
     mask[:8, :16] = True      # whole map cells (stride 4): these must score exactly 0
     mask[21:30, 33:47] = True  # odd-aligned, so part-masked cells and chroma blocks too
-    model = PatchVAE(**SMALL)
+    model = FrameVAEModel(**SMALL)
     held = model.fit(ArraySource(images, folds=5), mask)
     # 20 frames: 13 train, gap, 1 stops early, gap, the latest 4 calibrate.
     assert list(held.index) == [16, 17, 18, 19]
@@ -226,7 +233,7 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     assert math.isfinite(facts["best_heldout_elbo"])
     json.dumps(facts)
     params = json.loads(json.dumps(model.get_params()))
-    assert PatchVAE(**params).get_params() == model.get_params()
+    assert FrameVAEModel(**params).get_params() == model.get_params()
 
     # Held-out maps equal scoring the same frames afresh (the final model scored them).
     maps = model.score_maps(images)
@@ -234,7 +241,7 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
 
     model.save(tmp_path)
     assert (tmp_path / "vae.pt").is_file()
-    loaded = PatchVAE.load(tmp_path, params)
+    loaded = FrameVAEModel.load(tmp_path, params)
     np.testing.assert_array_equal(loaded.score_maps(images), maps)
     assert loaded.learned() == facts
     rec = loaded.expected(images[:3])
@@ -245,7 +252,7 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     rng = np.random.default_rng(1)
     noisy[:, mask] = rng.integers(0, 256, size=noisy[:, mask].shape, dtype=np.uint8)
     np.testing.assert_array_equal(loaded.score_maps(noisy), maps)
-    iw = PatchVAE.load(tmp_path, {**params, "iw_samples": 4})
+    iw = FrameVAEModel.load(tmp_path, {**params, "iw_samples": 4})
     np.testing.assert_array_equal(iw.score_maps(noisy), iw.score_maps(images))
     # ... and an unmasked change does change the map where it happens.
     hit = images.copy()
@@ -253,7 +260,7 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     assert (loaded.score_maps(hit)[:, 9:11, 2:4] > maps[:, 9:11, 2:4]).all()
 
     # Training ignores masked pixels too: the same fit on the altered frames is identical.
-    again = PatchVAE(**SMALL).fit(ArraySource(noisy, folds=5), mask)
+    again = FrameVAEModel(**SMALL).fit(ArraySource(noisy, folds=5), mask)
     np.testing.assert_array_equal(again.maps, held.maps)
 
 
@@ -262,7 +269,7 @@ def test_importance_weighted_map_sums_to_the_bound():
     # for the normalised weights omega (an identity of the log-sum-exp), so the cells of an
     # IW map add up to the negative importance-weighted bound (Burda et al. 2016, eq. 8).
     images = _frames(n=12)
-    model = PatchVAE(**{**SMALL, "epochs": 1, "iw_samples": 6})
+    model = FrameVAEModel(**{**SMALL, "epochs": 1, "iw_samples": 6})
     model.fit(ArraySource(images, folds=4))
     maps = model.score_maps(images[:5])
     net = model.net_
@@ -275,7 +282,7 @@ def test_importance_weighted_map_sums_to_the_bound():
 
 def test_rejects_frames_of_another_size():
     images = _frames(n=10)
-    model = PatchVAE(**{**SMALL, "epochs": 1})
+    model = FrameVAEModel(**{**SMALL, "epochs": 1})
     model.fit(ArraySource(images, folds=2))
     with pytest.raises(ValueError, match="fitted at 64x48"):
         model.score_maps(np.zeros((1, 32, 64, 3), np.uint8))

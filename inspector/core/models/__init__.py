@@ -13,7 +13,7 @@ from inspector.errors import UsageError
 #: Model name -> (module, class). Modules are imported only when used (torch is optional).
 _REGISTRY = {
     "ppca": ("inspector.core.models.ppca", "PatchPPCA"),
-    "vae": ("inspector.core.models.vae", "PatchVAE"),
+    "vae": ("inspector.core.models.vae", "FrameVAEModel"),
 }
 MODEL_NAMES = tuple(_REGISTRY)
 

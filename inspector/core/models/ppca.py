@@ -45,22 +45,50 @@ from inspector.core.features import (
 from inspector.core.models.base import DensityModel, FrameSource, HeldOut
 
 LOG_2PI = float(np.log(2.0 * np.pi))
+#: Locations per chunk when gathering scatter and forming covariances (bounds temporaries).
+CHUNK = 256
 
 
-def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2):
-    """``numpy.linalg.eigh`` over a stack of small symmetric matrices, faster.
+def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
+                 top: int | None = None, chunk: int = 128):
+    """``numpy.linalg.eigh`` over a stack of small symmetric matrices, faster and leaner.
 
     A multi-threaded BLAS spends most of its time synchronising on matrices this small
     (about 18 times slower than one thread, measured on 96 x 96); so BLAS is held to one
-    thread and the stack is split over ``workers`` Python threads (LAPACK releases the GIL).
+    thread and the stack is cut into chunks of ``chunk`` matrices shared by ``workers``
+    Python threads (LAPACK releases the GIL), each writing into the outputs directly.
+
+    Parameters
+    ----------
+    cov : ndarray, shape (L, d, d)
+    vectors : bool
+    top : int, optional
+        Keep only the eigenvectors of the ``top`` largest eigenvalues (a PPCA of latent
+        size q <= top needs no others): the output is then (L, d, top), not (L, d, d).
+
+    Returns
+    -------
+    evals : ndarray, shape (L, d), float64, ascending
+    evecs : ndarray, shape (L, d, k), float64, k = ``top`` or d (with ``vectors``); the
+        columns in the order of their eigenvalues, the largest last.
     """
-    fn = np.linalg.eigh if vectors else np.linalg.eigvalsh
-    chunks = np.array_split(np.arange(len(cov)), max(1, min(workers, len(cov))))
-    with threadpool_limits(1), ThreadPoolExecutor(len(chunks)) as pool:
-        parts = list(pool.map(lambda idx: fn(cov[idx]), chunks))
-    if not vectors:
-        return np.concatenate(parts)
-    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
+    n, d = len(cov), cov.shape[-1]
+    keep = d if top is None else max(1, min(int(top), d))
+    evals = np.empty((n, d))
+    evecs = np.empty((n, d, keep)) if vectors else None
+    bounds = list(range(0, n, chunk)) + [n]
+
+    def one(k: int) -> None:
+        part = slice(bounds[k], bounds[k + 1])
+        if vectors:
+            w, v = np.linalg.eigh(cov[part].astype(np.float64))
+            evals[part], evecs[part] = w, v[:, :, d - keep:]
+        else:
+            evals[part] = np.linalg.eigvalsh(cov[part].astype(np.float64))
+
+    with threadpool_limits(1), ThreadPoolExecutor(max(1, min(workers, n))) as pool:
+        list(pool.map(one, range(len(bounds) - 1)))
+    return (evals, evecs) if vectors else evals
 
 
 # --- pure functions ------------------------------------------------------------------------
@@ -93,19 +121,19 @@ def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
     sigma2 : ndarray, shape (L,), float64
     """
     L, d, _ = cov.shape
-    cov = np.asarray(cov, dtype=np.float64)
+    cov = np.asarray(cov)
     if observed is not None:
-        o = observed.astype(np.float64)
+        o = observed.astype(cov.dtype)
         cov = cov * o[:, :, None] * o[:, None, :]
         d_obs = observed.sum(axis=1).astype(np.float64)
     else:
         d_obs = np.full(L, float(d))
-    evals, evecs = batched_eigh(cov)  # ascending
+    total = np.trace(cov, axis1=1, axis2=2, dtype=np.float64)
+    evals, evecs = batched_eigh(cov, top=latent or max_latent)  # ascending
     evals = np.clip(evals[:, ::-1], 0.0, None)
     evecs = evecs[:, :, ::-1]
     q = latent or choose_latent(evals, explained_variance, max_latent)
-    q = int(min(q, max(int(d_obs.max()) - 1, 1)))
-    total = np.trace(cov, axis1=1, axis2=2)
+    q = int(min(q, max(int(d_obs.max()) - 1, 1), evecs.shape[2]))
     rest = np.maximum(d_obs - q, 1.0)
     sigma2 = np.maximum((total - evals[:, :q].sum(axis=1)) / rest, var_floor)
     sigma2 = np.maximum(sigma2, 1e-12)
@@ -263,19 +291,24 @@ class Moments:
         self.shift: np.ndarray | None = None
 
     def add(self, block: int, X: np.ndarray) -> None:
-        """Add samples ``X`` (n, L, d) to ``block``."""
+        """Add samples ``X`` (n, L, d) to ``block``.
+
+        The scatter is gathered in chunks of :data:`CHUNK` locations, so the temporaries
+        stay small whatever L and n are.
+        """
         if not len(X):
             return
         if self.shift is None:
             self.shift = X.mean(axis=0, dtype=np.float64).astype(np.float32)
-        Xc = X - self.shift[None]
         self.count[block] += len(X)
-        self.sum[block] += Xc.sum(axis=0, dtype=np.float64)
-        Xt = np.ascontiguousarray(Xc.transpose(1, 2, 0))  # (L, d, n)
-        S = np.matmul(Xt, Xt.transpose(0, 2, 1))
-        if self.scatter is not None:
-            self.scatter[block] += S
-        self.total_scatter += S
+        self.sum[block] += X.sum(axis=0, dtype=np.float64) - len(X) * self.shift
+        for start in range(0, X.shape[1], CHUNK):
+            part = slice(start, start + CHUNK)
+            Xt = (X[:, part] - self.shift[None, part]).transpose(1, 2, 0)  # (l, d, n)
+            S = np.matmul(Xt, Xt.transpose(0, 2, 1))
+            if self.scatter is not None:
+                self.scatter[block, part] += S
+            self.total_scatter[part] += S
 
     def merge(self, other: "Moments") -> "Moments":
         """Add the samples counted in ``other`` (same blocks, L and d), e.g. accumulated in
@@ -324,7 +357,7 @@ class Moments:
 
     def mean_cov(self, leave_out: int | None = None, before: int | None = None
                  ) -> tuple[np.ndarray, np.ndarray, int]:
-        """Mean (L, d), unbiased covariance (L, d, d) and count of all samples, of all but
+        """Mean (L, d), unbiased covariance (L, d, d) float32 and count of all samples, of all but
         block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
         ``block_scatter``)."""
         n = self.count.sum()
@@ -340,8 +373,10 @@ class Moments:
                 n, s = self.count[:before].sum(), self.sum[:before].sum(axis=0)
                 S = self.scatter[:before].sum(axis=0)
         m = s / n
-        cov = S - n * m[:, :, None] * m[:, None, :]
-        cov /= max(n - 1.0, 1.0)
+        cov = np.empty(S.shape, np.float32)  # float32 halves the largest array of a fit
+        for start in range(0, len(S), CHUNK):
+            part = slice(start, start + CHUNK)
+            cov[part] = (S[part] - n * m[part, :, None] * m[part, None, :]) / max(n - 1.0, 1.0)
         return self.shift + m, cov, int(n)
 
 
@@ -394,7 +429,7 @@ class PatchPPCA(DensityModel):
 
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
-                 batch_size: int = 32, calibrate_from: float = 0.4,
+                 batch_size: int = 64, calibrate_from: float = 0.4,
                  latent_rule: str = "variance"):
         self.patch = patch
         self.stride = stride
@@ -627,7 +662,7 @@ class PatchPPCA(DensityModel):
                   "n_frames": np.array(self.n_frames_)}
         if self.observed_ is not None:
             arrays["observed"] = self.observed_
-        np.savez_compressed(Path(directory) / "ppca.npz", **arrays)
+        np.savez(Path(directory) / "ppca.npz", **arrays)  # floats hardly compress
 
     @classmethod
     def load(cls, directory: Path, params: dict[str, Any]) -> "PatchPPCA":

@@ -1,0 +1,128 @@
+"""``learn`` (PPCA) against decoding alone, on full-HD JPEGs of one camera, side by side.
+
+Writes synthetic 1920x1080 JPEG frames of one camera (a photograph bundled with
+scikit-image, enlarged, with sensor noise, a small gain change per frame and a slow change
+of light) to a temporary folder, then for each number of frames N runs, each in a fresh
+process so that peak memory is its own:
+
+* decode: the frames read as ``learn`` reads them (same reader, same reduced-scale decode,
+  same working size), nothing else;
+* learn: ``learn`` with the default settings (conditions, text mask, PPCA, calibration).
+
+and prints both wall times, their ratio (target: <= 3) and learn's peak resident memory
+(target: <= 1 GB, not growing with N).
+
+    python bench/learn_speed.py [--frames 500,2000] [--size 1920x1080] [--keep DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import datetime, timedelta
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+
+def write_frames(folder: Path, n: int, size: tuple[int, int]) -> None:
+    """n JPEG frames (quality 90) of one camera, one a minute, named by capture time."""
+    import cv2
+    import numpy as np
+    from skimage import data
+
+    folder.mkdir(parents=True, exist_ok=True)
+    have = len(list(folder.glob("*.jpg")))
+    w, h = size
+    base = cv2.resize(data.astronaut(), (w, h), interpolation=cv2.INTER_LINEAR)
+    base = base[..., ::-1].astype(np.float32)  # BGR for imwrite
+    ramp = np.linspace(-1, 1, w, dtype=np.float32)[None, :, None]
+    rng = np.random.default_rng(have)
+    noise = rng.normal(0, 3, (8, h, w, 3)).astype(np.float32)  # a few fields, reused
+    t0 = datetime(2026, 11, 2, 6, 0)
+    for i in range(have, n):
+        light = (1 + 0.1 * (i / max(n, 1)) * ramp) * (1 + 0.02 * rng.standard_normal())
+        img = np.clip(base * light + noise[i % len(noise)], 0, 255).astype(np.uint8)
+        t = t0 + timedelta(minutes=i)
+        cv2.imwrite(str(folder / f"cam_{t:%Y%m%d_%H%M%S}.jpg"), img,
+                    [cv2.IMWRITE_JPEG_QUALITY, 90])
+
+
+def _child(mode: str, folder: str, n: int) -> None:
+    """Run in a fresh process: decode or learn the first n frames; print JSON."""
+    import resource
+
+    from inspector.config import load_config
+    from inspector.jobs.learn import FileSource, learn_camera
+    from inspector.storage.frames import discover, working_size
+    from inspector.storage.store import Store
+
+    config = load_config(None)
+    files, _ = discover(Path(folder), camera="cam")
+    files = sorted(files, key=lambda f: f.path.name)[:n]
+    cfg = config.camera("cam")
+    started = time.perf_counter()
+    if mode == "decode":
+        import cv2
+
+        h, w = cv2.imread(str(files[0].path), cv2.IMREAD_REDUCED_COLOR_2).shape[:2]
+        size = working_size((2 * w, 2 * h), cfg.frames.long_side)
+        fs = cfg.frames
+        source = FileSource(files, [0] * len(files), size, (2 * w, 2 * h),
+                            {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
+                             "time_formats": fs.time_formats}, "cam")
+        count = sum(len(idx) for idx, _ in source.batches(range(len(files))))
+    else:
+        with tempfile.TemporaryDirectory() as store:
+            report = learn_camera(files, cfg, Store(store))
+            count = report.frames
+    seconds = time.perf_counter() - started
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux -> MB
+    print(json.dumps({"frames": count, "seconds": seconds, "peak_mb": peak}))
+
+
+def measure(mode: str, folder: Path, n: int) -> dict:
+    out = subprocess.run([sys.executable, __file__, "--child", mode, str(folder), str(n)],
+                         capture_output=True, text=True, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--frames", default="500,2000")
+    ap.add_argument("--size", default="1920x1080", help="exported frame size, WxH")
+    ap.add_argument("--keep", type=Path, help="frame folder to keep and reuse")
+    ap.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child:
+        _child(args.child[0], args.child[1], int(args.child[2]))
+        return
+    counts = [int(v) for v in args.frames.split(",")]
+    size = tuple(int(v) for v in args.size.lower().split("x"))
+    work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-learn-bench-"))
+    try:
+        t = time.perf_counter()
+        write_frames(work / "cam", max(counts), size)
+        print(f"{max(counts)} frames of {size[0]}x{size[1]} ready in "
+              f"{time.perf_counter() - t:.0f} s")
+        print(f"{'frames':>7}{'decode s':>10}{'learn s':>9}{'ratio':>7}{'learn peak MB':>15}"
+              f"{'decode peak MB':>16}")
+        for n in counts:
+            d = measure("decode", work / "cam", n)
+            le = measure("learn", work / "cam", n)
+            print(f"{n:>7}{d['seconds']:>10.1f}{le['seconds']:>9.1f}"
+                  f"{le['seconds'] / d['seconds']:>7.2f}{le['peak_mb']:>15.0f}"
+                  f"{d['peak_mb']:>16.0f}", flush=True)
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
