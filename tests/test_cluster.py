@@ -184,9 +184,9 @@ def test_one_camera_learnt_with_its_passes_in_the_workers_equals_the_local_one(s
                  client.scheduler.address]) == 0
     assert "gate: baseline v1 (ppca) from 30 frames" in capsys.readouterr().out
     a, b = Store(root / "store").load("gate"), Store(root / "store-one").load("gate")
-    for name in ("center", "scale", "scores"):
+    for name in ("center", "scale", "scores"):  # covariances are float32: 1e-3 of a z-score
         np.testing.assert_allclose(getattr(a.calibration, name), getattr(b.calibration, name),
-                                   rtol=1e-4, atol=1e-5)
+                                   rtol=1e-3, atol=1e-5)
     for name in ("mean_", "sigma2_"):
         np.testing.assert_allclose(getattr(a.model, name), getattr(b.model, name), rtol=1e-4,
                                    atol=1e-6)
@@ -195,7 +195,7 @@ def test_one_camera_learnt_with_its_passes_in_the_workers_equals_the_local_one(s
     np.testing.assert_allclose(wa @ wa.transpose(0, 2, 1), wb @ wb.transpose(0, 2, 1),
                                rtol=1e-3, atol=1e-6)
     assert a.meta["calibration_frames"] == b.meta["calibration_frames"]
-    assert a.threshold.value == pytest.approx(b.threshold.value, rel=1e-4)
+    assert a.threshold.value == pytest.approx(b.threshold.value, rel=1e-3)
 
 
 def test_moments_reduced_from_parts_equal_numpy_mean_and_cov():
