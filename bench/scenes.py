@@ -474,6 +474,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--incidents", type=int, default=40, help="incident frames per camera")
     ap.add_argument("--altered", type=int, default=5, help="altered normal frames per kind")
     ap.add_argument("--models", default="ppca")
+    ap.add_argument("--latent-rule", default="variance", choices=["variance", "heldout"],
+                    help="PPCA latent_rule (default: the tool's default)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", type=Path, default=None, help="keep the frames and results here")
     ap.add_argument("--small", action="store_true", help="a smoke run (one camera, few frames)")
@@ -525,7 +527,8 @@ def run(root: Path, args: argparse.Namespace) -> int:
     for model in args.models.split(","):
         t1 = time.perf_counter()
         base = Config()
-        config = dataclasses.replace(base, model=dataclasses.replace(base.model, model=model))
+        config = dataclasses.replace(base, model=dataclasses.replace(
+            base.model, model=model, latent_rule=args.latent_rule))
         store = Store(root / f"store-{model}")
         files, _ = discover(root / "frames" / "normal")
         masked = {}
@@ -542,7 +545,7 @@ def run(root: Path, args: argparse.Namespace) -> int:
         rows = scored(out, out / "maps", "scan", cams, truth, work_size)
         altered = scored(alt_out, alt_out / "maps", "altered", cams, truth, work_size)
         report(rows, altered, masked,
-               f"{model}: default settings, no masks (learn {t2 - t1:.0f} s, scan "
+               f"{model}: default settings (latent_rule {args.latent_rule}), no masks (learn {t2 - t1:.0f} s, scan "
                f"{t3 - t2:.0f} s; seed {args.seed}; load {os.getloadavg()[0]:.1f})")
     return 0
 
