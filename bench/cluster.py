@@ -107,11 +107,14 @@ def run(work: Path, n: int, rounds: int, size: tuple[int, int], normal: int = 60
         for record in records:
             record.replay(writer)
     writer_rate = writer.counts["scored"] / (time.perf_counter() - t)
+    sent = [r.amap.nbytes + r.image.nbytes for rec in records for results, _, _ in rec.calls
+            for r in results]
     med = {k: statistics.median(v) for k, v in rates.items()}
     print(f"median over {rounds} rounds of {summary.scored} frames: "
           + ", ".join(f"{k} {v:.1f} frames/s" for k, v in med.items()))
     print(f"the one writer alone (results replayed, {writer.counts['flagged']} flagged): "
-          f"{writer_rate:.0f} frames/s, the most one driver takes in")
+          f"{writer_rate:.0f} frames/s, the most one driver takes in; arrays sent back "
+          f"{statistics.mean(sent) / 1024:.1f} KiB a frame on average")
     print(f"speed-up of 2 workers over 1: {med['2 workers'] / med['1 worker']:.2f} "
           f"(cores {os.cpu_count()}, load average {os.getloadavg()[0]:.1f})")
 
