@@ -12,7 +12,10 @@ imported when one is named. The split of work:
   partition lost with its worker is computed again by Dask (``retries``) and its record is
   read once, so no frame is lost or written twice.
 * learn: one task per camera (:func:`inspector.jobs.learn.learn_camera`), each saving its
-  version into the store, reports returned in camera order.
+  version into the store, reports returned in camera order. A single camera is learnt with
+  its model's passes over the frames in the workers instead (:class:`ClusterPool`; PPCA:
+  each time block's moments accumulated there and added here, held-out blocks scored
+  there).
 
 Workers load baselines from the store path themselves (the frames and the store must be at
 the same paths on every machine, e.g. a shared mount) and keep the last few in memory, so a
@@ -24,6 +27,7 @@ written to disk.
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
 from collections import Counter, OrderedDict, deque
@@ -43,7 +47,6 @@ from inspector.jobs.scan import ScanSummary, read_args, scan_files
 from inspector.storage.frames import FrameFile, read_frame
 from inspector.storage.results import Skipped
 from inspector.storage.store import Store
-
 
 
 def cluster_settings(config: Config, scheduler: str | None = None) -> ClusterSettings:
@@ -83,7 +86,7 @@ def connect(settings: ClusterSettings) -> Iterator[Any]:
         if n < 1:
             raise UsageError(f"scheduler {address!r}: local needs at least 1 worker")
         with LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                          dashboard_address=":0", silence_logs=40) as cluster, \
+                          dashboard_address=":0", silence_logs=logging.ERROR) as cluster, \
                 Client(cluster) as client:
             yield client
         return
