@@ -541,7 +541,7 @@ class PatchPPCA(DensityModel):
                 if b != current:  # a new block: fit the model of everything before it
                     current = b
                     ready = b >= first and moments.count.sum() >= 2
-                    now = moments.sums()
+                    now = moments.sums() if self._wants_sums() else None
                     if ready:
                         m_k, c_k, _ = moments.mean_cov()
                         self._set(m_k, *self._fit_params(c_k, self._heldout_q(earlier, now)))
@@ -550,7 +550,7 @@ class PatchPPCA(DensityModel):
                     held.append((idx[sel], self.score_maps(images[sel])))
                 moments.add(int(b), patch_features(varied[sel], self.patch, self.stride,
                                                    self.colour))
-        self._last_split = (earlier, moments.sums())
+        self._last_split = (earlier, moments.sums() if self._wants_sums() else None)
         return moments, [held]
 
     def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -558,6 +558,11 @@ class PatchPPCA(DensityModel):
         ``self.latent``, else chosen by explained variance from the covariance alone."""
         return ppca_fit(cov, latent or self.latent, self.observed_, self.var_floor,
                         self.explained_variance, self.max_latent)
+
+    def _wants_sums(self) -> bool:
+        """Whether the latent size is chosen from the moments of the blocks (copies of the
+        scatter, as large as the model's covariances, are kept only then)."""
+        return not self.latent and self.latent_rule == "heldout"
 
     def _heldout_q(self, earlier, now) -> int:
         """Latent size for a model of the samples counted in ``now`` (count, sum, scatter
