@@ -285,3 +285,15 @@ def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
     assert "extrapolated target" in report.notes[1]
     assert any("more normal frames would make it exact" in w for w in report.warnings)
     assert store.load("aisle").threshold.method == "tail"
+
+
+@pytest.mark.xfail(strict=True, reason="issue 10 item 3 not met yet: exposure steps raise the "
+                   "scores of normal frames on a camera with clipped highlights and an unmasked "
+                   "burned-in name (52 of 56 flagged; 18 before calibration moved to real frames)")
+def test_exposure_steps_keep_the_false_alarm_budget_on_a_camera_with_highlights(tmp_path):
+    # The aisle has a clipped ceiling lamp, white labels and a burned-in camera name that
+    # does not follow the exposure; every frame to scan is 15 % brighter or darker than the
+    # normal frames learnt from. Strict: remove the mark when the budget holds.
+    _, out, truth, faults = _learn_and_scan(tmp_path, {"exposure_step": 0.15}, 3,
+                                            camera="aisle")
+    _check_budget_and_detection(out, truth, faults)
