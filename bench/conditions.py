@@ -42,13 +42,14 @@ CASES = {
     "IR greyscale at night": {"ir_night": 1},
 }
 HANDLING = {
-    "off": ('lighting = "off"\nregister = false\nauto_text_mask = false\nhealth = false\n'
-            'regimes = false\n'),
+    "off": 'lighting = "off"\nregister = false\nauto_text_mask = false\nhealth = false\n',
     "global": 'lighting = "global"\n',
     "local (default)": 'lighting = "local"\n',
-    "local + regimes": 'lighting = "local"\nregimes = true\n',
+    "local + regimes": 'lighting = "local"\n',
     "local, exposure_range 0": 'lighting = "local"\nexposure_range = 0.0\n',
 }
+#: Calibration keys of a handling (regimes live in [calibration]).
+REGIMES = {"off": "regimes = false\n", "local + regimes": "regimes = true\n"}
 
 
 def clopper_pearson(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
@@ -61,7 +62,7 @@ def clopper_pearson(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
 def run(root: Path, work: Path, handling: str, long_side: int, alpha: float):
     cfg_path = work / "inspector.toml"
     cfg_path.write_text(f"[frames]\nlong_side = {long_side}\n[calibration]\nalpha = {alpha}\n"
-                        f"[conditions]\n{HANDLING[handling]}", encoding="utf-8")
+                        f"{REGIMES.get(handling, '')}[conditions]\n{HANDLING[handling]}", encoding="utf-8")
     config = load_config(cfg_path)
     store = Store(work / "store")
     files, _ = discover(root / "normal")
