@@ -52,6 +52,12 @@ LARGE = 10.0
 #: is busy: its single-frame threshold is then set by what passes (see
 #: :func:`calibrate_persistence`).
 BUSY_SHARE = 0.05
+#: Longest time, in seconds, a window of consecutive normal frames may span for ``learn`` to
+#: call a camera busy by itself. Passers-by cross a view in seconds to a minute; over tens of
+#: minutes daylight and weather change the scene from one frame to the next as well, so with
+#: frames that far apart a short-lived anomaly no longer tells traffic from a change of light
+#: (mode "on" still applies persistence to such a camera).
+MAX_SPAN = 600.0
 
 
 @dataclass
@@ -242,6 +248,11 @@ class Persistence:
     transient_share: float
     busy: bool
 
+    @property
+    def span(self) -> float:
+        """Seconds a window of typical normal frames spans."""
+        return self.window * self.max_gap / GAP_FACTOR
+
     def to_json(self) -> dict:
         return {"window": self.window, "max_gap": self.max_gap,
                 "transient_share": self.transient_share, "busy": self.busy,
@@ -284,7 +295,8 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         (almost all of it gone within the window). Slow changes (daylight, lamps) stay over
         the window and do not count. The camera is busy when clearly more than ``BUSY_SHARE``
         of the frames hold one (:func:`clearly_busy`): a single-frame threshold at any alpha
-        below that share is then set by what passes.
+        below that share is then set by what passes. A camera whose window of typical frames
+        spans more than ``MAX_SPAN`` seconds is never called busy.
 
     Raises
     ------
@@ -301,8 +313,9 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     single = frame_scores(np.asarray(maps, np.float32))[run.filled]
     transient = (single > LARGE * np.quantile(single, 0.25)) & (scores < single / LARGE)
     share = float(transient.mean())
+    close = window * max_gap / GAP_FACTOR <= MAX_SPAN
     return Persistence(window, max_gap, threshold, scores, share,
-                       clearly_busy(int(transient.sum()), len(transient)))
+                       close and clearly_busy(int(transient.sum()), len(transient)))
 
 
 def clearly_busy(transient: int, frames: int, level: float = 0.05) -> bool:

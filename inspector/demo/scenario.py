@@ -16,8 +16,8 @@ cameras, plus the ground truth needed to score a detector on them:
 
 Every frame gets Gaussian sensor noise, a burned-in timestamp (top-left) and JPEG
 compression at quality 85. Frame names carry the capture time,
-``<camera>_YYYYmmdd_HHMMSS.jpg``. Normal frames come from four days of sessions that
-together cover the day from early morning to late evening; the frames to scan come from a
+``<camera>_YYYYmmdd_HHMMSS.jpg``. Normal frames come from four days, each recorded from early
+morning to late evening; the frames to scan come from a
 later day, and a share of them carries one injected incident (see :data:`INCIDENTS`) with
 a pixel mask of where it is.
 
@@ -91,8 +91,10 @@ HEALTH_TRUTH = "health_truth.csv"
 JPEG_QUALITY = 85
 #: First day of the normal frames; four consecutive days follow, then the scan day.
 FIRST_DAY = date(2026, 11, 26)
-#: Normal sessions: (day offset from FIRST_DAY, start hour, end hour).
-NORMAL_SESSIONS = ((0, 6.5, 10.5), (1, 10.0, 14.0), (2, 13.5, 17.5), (3, 17.0, 22.5))
+#: Normal sessions: (day offset from FIRST_DAY, start hour, end hour). Each of the four days
+#: is recorded from early morning to late evening, as a camera's kept recording would be, so
+#: every stretch of the normal frames shows every light of the day.
+NORMAL_SESSIONS = tuple((d, 6.5, 22.5) for d in range(4))
 #: Day of the frames to scan and its sessions (start hour, end hour).
 SCAN_DAY = date(2026, 11, 30)
 SCAN_SESSIONS = ((7.0, 9.0), (11.5, 13.0), (15.0, 17.0), (20.5, 22.5))

@@ -35,6 +35,7 @@ from inspector.core.features import rasterize_mask
 from inspector.core.image import darker_exposure, grey
 from inspector.core.models import model_class
 from inspector.core.persistence import (
+    MAX_SPAN,
     Persistence,
     calibrate_persistence,
     persistence_on,
@@ -430,8 +431,10 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
         return None
     mode = cfg.persistence.mode
     on = persistence_on(p.busy, mode)
+    apart = (f" (frames {p.span / p.window / 60:.0f} min apart: too far apart to tell passing "
+             f"from staying)" if p.span > MAX_SPAN else "")
     notes.append(f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
-                 f"frames hold large short-lived anomalies; persistence "
+                 f"frames hold large short-lived anomalies{apart}; persistence "
                  f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}"
                  + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f})"
                     if on else ": single-frame flags"))
