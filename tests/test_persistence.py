@@ -15,6 +15,7 @@ from inspector.config import Config, PersistenceSettings, load_config
 from inspector.core.events import FramePoint, group_events
 from inspector.core.persistence import (
     BUSY_SHARE,
+    MAX_SPAN,
     StreamState,
     calibrate_persistence,
     clearly_busy,
@@ -107,6 +108,11 @@ def test_calibrate_tells_busy_from_quiet():
     b = calibrate_persistence(busy, times, blocks, alpha=0.01)
     assert b.busy and b.transient_share > 0.3
     assert b.threshold.value < 10.0  # passers-by do not set the persistence threshold
+    # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
+    # change of light looks as short-lived as traffic; learn does not call the camera busy.
+    sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)
+    assert sparse.span > MAX_SPAN and not sparse.busy
+    assert sparse.transient_share == pytest.approx(b.transient_share)
 
 
 def test_mode_and_config():
