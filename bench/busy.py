@@ -29,6 +29,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import PersistenceSettings, load_config  # noqa: E402
+from inspector.core.calibration import rate_interval  # noqa: E402
 from inspector.demo.scenario import generate, load_truth  # noqa: E402
 from inspector.demo.traffic import busy_results  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
@@ -41,21 +42,11 @@ CAMERA = "gate"
 WITHIN = 5
 
 
-def binomial_interval(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
-    """Clopper-Pearson (exact) interval of a binomial proportion k / n."""
-    from scipy.stats import binomtest
-
-    if n == 0:
-        return 0.0, 1.0
-    ci = binomtest(k, n).proportion_ci(confidence_level=level, method="exact")
-    return float(ci.low), float(ci.high)
-
-
 def evaluate(truth: list[tuple[str, str, str]], flagged: set[str], camera: str) -> dict:
     """:func:`inspector.demo.traffic.busy_results` with the false-alarm interval and the
     median delay."""
     r = busy_results(truth, flagged, camera, WITHIN)
-    r["interval"] = binomial_interval(r["false"], r["quiet"])
+    r["interval"] = rate_interval(r["false"], r["quiet"])
     r["median_delay"] = float(np.median(r["delays"])) if r["delays"] else float("nan")
     return r
 

@@ -31,7 +31,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from inspector.core.calibration import calibrate, conformal_threshold  # noqa: E402
+from inspector.core.calibration import calibrate, conformal_threshold, rate_interval  # noqa: E402
 from inspector.core.models.base import ArraySource  # noqa: E402
 from inspector.core.models.ppca import Moments, PatchPPCA  # noqa: E402
 from inspector.core.scoring import anomaly_maps, frame_scores, location_stats  # noqa: E402
@@ -198,15 +198,6 @@ def run(model_name: str, path: str, n: int, n_scan: int, alphas, drift: float, s
     return out
 
 
-def interval(k: int, total: int) -> tuple[float, float]:
-    """Exact (Clopper-Pearson) 95% interval of a binomial rate (scipy.stats.beta)."""
-    from scipy.stats import beta
-
-    lo = beta.ppf(0.025, k, total - k + 1) if k > 0 else 0.0
-    hi = beta.ppf(0.975, k + 1, total - k) if k < total else 1.0
-    return float(lo), float(hi)
-
-
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--models", default="ppca,vae")
@@ -236,7 +227,7 @@ def main(argv=None) -> None:
                             totals[a][1] += m
                     for a in alphas:
                         k, m = totals[a]
-                        lo, hi = interval(k, m)
+                        lo, hi = rate_interval(k, m)
                         flag = "" if lo <= a else "  above alpha"
                         print(f"{model_name:<6}{'yes' if drift_on else 'no':<7}{n:>6}"
                               f"{path:>8}{a:>7g}{k:>8}{m:>8}{k / m:>8.4f}  "

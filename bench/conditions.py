@@ -4,7 +4,7 @@ For each nuisance the demo generator can add, a scenario is rendered, a baseline
 its normal frames and its frames to scan scored, once with the handling off (no
 registration, no photometric normalisation, no text mask, no health checks, one regime),
 once per lighting mode, and once with "global" but without regimes. Printed per row: the false-alarm rate on normal frames to scan (incident-
-and fault-free) with its 95 % binomial interval (Clopper-Pearson, scipy.stats.beta), the
+and fault-free) with its 95 % binomial interval (Clopper-Pearson, :func:`inspector.core.calibration.rate_interval`), the
 rate asked for, the AUROC of incident frames against those normal frames
 (sklearn.metrics.roc_auc_score), and how many of the frames with a camera fault were
 reported in health.csv with the right condition.
@@ -22,10 +22,10 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from scipy.stats import beta  # noqa: E402
 from sklearn.metrics import roc_auc_score  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
+from inspector.core.calibration import rate_interval  # noqa: E402
 from inspector.demo.scenario import HEALTH_TRUTH, generate  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
@@ -50,13 +50,6 @@ HANDLING = {
 }
 #: Calibration keys of a handling (regimes live in [calibration]).
 REGIMES = {"off": "regimes = false\n", "local + regimes": "regimes = true\n"}
-
-
-def clopper_pearson(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
-    a = (1 - level) / 2
-    lo = beta.ppf(a, k, n - k + 1) if k > 0 else 0.0
-    hi = beta.ppf(1 - a, k + 1, n - k) if k < n else 1.0
-    return float(lo), float(hi)
 
 
 def run(root: Path, work: Path, handling: str, long_side: int, alpha: float):
@@ -115,7 +108,7 @@ def main(argv: list[str] | None = None) -> int:
                 work.mkdir()
                 k, n, auc, found, faults, ff = run(root, work, handling, args.long_side,
                                                    args.alpha)
-                lo, hi = clopper_pearson(k, n)
+                lo, hi = rate_interval(k, n)
                 fault_txt = f"{found}/{faults}" if faults else "-"
                 ff_txt = f"{ff}/{faults}" if faults else "-"
                 print(f"| {name} | {handling} | {k}/{n} = {k / n:.3f} | [{lo:.3f}, {hi:.3f}] | "

@@ -4,6 +4,7 @@ import math
 from datetime import datetime, timedelta
 
 import numpy as np
+import pytest
 from scipy.stats import binom
 
 from inspector.core.calibration import (
@@ -13,6 +14,7 @@ from inspector.core.calibration import (
     conformal_p_values,
     conformal_threshold,
     cross_fit_scores,
+    rate_interval,
     tail_threshold,
     time_blocks,
 )
@@ -137,3 +139,15 @@ def test_cross_fitting_keeps_the_rate_that_in_sample_standardisation_breaks():
     total = trials * fresh
     hi = binom.interval(0.999, total, alpha)[1]  # scipy.stats.binom
     assert honest <= hi < leaky, (honest / total, leaky / total)
+
+
+def test_rate_interval_is_clopper_pearson():
+    # Clopper & Pearson (1934): the exact interval's ends are beta quantiles,
+    # Beta(a/2; k, n-k+1) and Beta(1-a/2; k+1, n-k) (scipy.stats.beta).
+    from scipy.stats import beta
+
+    for k, n in ((1, 140), (7, 140), (70, 140), (140, 140)):
+        lo, hi = rate_interval(k, n)
+        assert lo == pytest.approx(beta.ppf(0.025, k, n - k + 1))
+        assert hi == pytest.approx(beta.ppf(0.975, k + 1, n - k) if k < n else 1.0)
+    assert rate_interval(0, 0) == (0.0, 1.0)

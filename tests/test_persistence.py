@@ -12,6 +12,7 @@ import pytest
 from scipy.ndimage import minimum_filter1d
 
 from inspector.config import Config, PersistenceSettings, load_config
+from inspector.core.calibration import rate_interval
 from inspector.core.events import FramePoint, group_events
 from inspector.core.persistence import (
     BUSY_SHARE,
@@ -164,7 +165,7 @@ def test_bench_busy_smoke(capsys):
     bench = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(bench)
     # Clopper-Pearson upper bound for 0 of n: 1 - (alpha / 2) ** (1 / n) (closed form).
-    assert bench.binomial_interval(0, 30)[1] == pytest.approx(1 - 0.025 ** (1 / 30))
+    assert rate_interval(0, 30)[1] == pytest.approx(1 - 0.025 ** (1 / 30))
     assert bench.main(["--normal", "30", "--new", "30", "--size", "128x72"]) == 0
     out = capsys.readouterr().out
     assert "\non " in out and "\noff " in out

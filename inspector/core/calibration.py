@@ -379,3 +379,21 @@ def calibrate(maps: np.ndarray, blocks: np.ndarray, alpha: float,
     scores = cross_fit_scores(maps, blocks)
     threshold = (tail_threshold if tail else conformal_threshold)(scores, alpha)
     return Calibration(center, scale, scores, threshold)
+
+
+def rate_interval(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
+    """Exact (Clopper-Pearson) interval of a false-alarm rate observed as ``k`` of ``n``.
+
+    Computed by ``scipy.stats.binomtest(k, n).proportion_ci(method="exact")``; (0, 1) when
+    ``n`` is 0. Used to state a realised rate beside the rate asked for.
+
+    Returns
+    -------
+    low, high : float in [0, 1]
+    """
+    from scipy.stats import binomtest
+
+    if n == 0:
+        return 0.0, 1.0
+    ci = binomtest(k, n).proportion_ci(confidence_level=level, method="exact")
+    return float(ci.low), float(ci.high)
