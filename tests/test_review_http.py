@@ -152,6 +152,33 @@ def test_compare_endpoint(mine):
     assert "already the active version" in data["text"]
 
 
+
+def test_compare_reads_no_ledger_frame_outside_the_folder(mine, tmp_path):
+    """Closing note item 1: the comparison scores ledger frames only through the page's
+    boundary check; rows naming a real frame outside the scanned folder (by absolute path,
+    by '..', through a link) are left out and counted, never decoded."""
+    shutil.copytree(mine.store.root / "dock" / "v1", mine.store.root / "dock" / "v2")
+    source = tmp_path / "scanned"
+    shutil.copytree(mine.source, source)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    inside_frames = sorted((source / "dock").iterdir())
+    secret = elsewhere / "secret.jpg"
+    shutil.copy(inside_frames[0], secret)
+    (source / "dock" / "escape.jpg").symlink_to(secret)
+    outside = [secret, source / "dock" / ".." / ".." / "elsewhere" / "secret.jpg",
+               source / "dock" / "escape.jpg"]
+    write_ledger(mine.store.database, [(str(p), "dock", 1.0) for p in inside_frames + outside])
+    client = create_app(mine.out, mine.store, mine.config, token=TOKEN,
+                        source=source).test_client()
+    data = client.get("/api/compare?camera=dock&version=v2").get_json()
+    assert data["frames"] == len(inside_frames), data
+    assert f"{len(outside)} outside the folder left out" in data["text"]
+    shutil.copytree(mine.store.root / "aisle" / "v1", mine.store.root / "aisle" / "v2")
+    write_ledger(mine.store.database, [(str(p), "aisle", 1.0) for p in outside])
+    data = client.get("/api/compare?camera=aisle&version=v2").get_json()
+    assert data["frames"] == 0 and "none of the last 3 scored frames is inside" in data["text"]
+
 TRAVERSALS = [
     "/files/out/../run.json",
     "/files/out/overlays/../run.json",

@@ -8,6 +8,7 @@ showing how many flags the switch adds and removes on the camera's last N scored
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
@@ -80,20 +81,30 @@ class Comparison:
     change: FlagChange | None
     unreadable: int = 0
     reason: str = ""
+    #: Ledger frames not read because they lie outside the folder the caller allows.
+    outside: int = 0
 
     def text(self) -> str:
         if self.change is None:
             return f"{self.camera}: {self.reason}"
         c = self.change
         extra = f", {self.unreadable} could not be read" if self.unreadable else ""
+        if self.outside:
+            extra += f", {self.outside} outside the folder left out"
         return (f"{self.camera}: {self.new} instead of {self.old} on the last {c.frames} "
                 f"scored frames{extra}: {c.old_flags} -> {c.new_flags} flags, "
                 f"{c.added} added, {c.removed} removed")
 
 
 def compare_versions(store: Store, config: Config, camera: str, old: str | None, new: str,
-                     n: int = COMPARE_FRAMES) -> Comparison:
-    """Score the camera's last ``n`` ledger frames with both versions and compare the flags."""
+                     n: int = COMPARE_FRAMES,
+                     within: Callable[[str], Path | None] | None = None) -> Comparison:
+    """Score the camera's last ``n`` ledger frames with both versions and compare the flags.
+
+    ``within`` maps a ledger path to the file that may be read, or None for a frame that
+    must not be (the review page passes its folder boundary check); such frames are left
+    out and counted in ``outside``. Without it every ledger path is read (the command line).
+    """
     from inspector.jobs.scan import read_args
 
     if old is None:
@@ -110,7 +121,13 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
         baselines = [store.load(camera, old), store.load(camera, new)]
     except DamagedBaseline as exc:
         return Comparison(camera, old, new, None, reason=f"nothing compared: {exc}")
-    files = [FrameFile(Path(p), Path(p).name, camera) for p in paths]
+    allowed = [Path(p) if within is None else within(p) for p in paths]
+    outside = sum(p is None for p in allowed)
+    files = [FrameFile(p, p.name, camera) for p in allowed if p is not None]
+    if not files:
+        return Comparison(camera, old, new, None, outside=outside,
+                          reason=f"nothing to compare against: none of the last {len(paths)} "
+                                 "scored frames is inside the scanned folder")
     for b in baselines:
         got: dict[str, float] = {}
         for batch in iter_batches(files, 32, work=lambda images, b=b: b.score(images).scores,
@@ -122,14 +139,14 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
     common = [str(f.path) for f in files if str(f.path) not in unreadable
               and all(str(f.path) in s for s in scores)]
     if not common:
-        return Comparison(camera, old, new, None, unreadable=len(unreadable),
+        return Comparison(camera, old, new, None, unreadable=len(unreadable), outside=outside,
                           reason=f"nothing to compare against: none of the last {len(paths)} "
                                  "scored frames could be read")
     change = compare_flags(np.array([scores[0][p] for p in common]),
                            baselines[0].threshold.value,
                            np.array([scores[1][p] for p in common]),
                            baselines[1].threshold.value)
-    return Comparison(camera, old, new, change, unreadable=len(unreadable))
+    return Comparison(camera, old, new, change, unreadable=len(unreadable), outside=outside)
 
 
 def version_rows(store: Store, camera: str) -> list[dict]:

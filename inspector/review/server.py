@@ -6,7 +6,8 @@ results folder, the store, the token, the loaded baselines) is one :class:`Revie
 Safety (README "Safety of the page" says the same for users):
 
 * every file the page reads (frames, saved overlays, the pictures computed from a frame,
-  ``/files/...``) goes through :func:`inside`: it must resolve, links followed, to a file
+  ``/files/...``, the ledger's frames a baseline comparison scores) goes through
+  :func:`inside`: it must resolve, links followed, to a file
   inside the scanned folder, the results folder or the store; anything else is the same
   one-line 404;
 * the Host header must name this machine (:class:`Hosts`), on every bind, against DNS
@@ -23,6 +24,7 @@ from __future__ import annotations
 import ipaddress
 import json
 import math
+import os
 import secrets
 import socket
 import sys
@@ -194,6 +196,15 @@ class Review:
     def frame(self, item: Item) -> Path:
         """The item's frame file, inside the scanned folder, or a 404."""
         return inside(self.results.source, item.rel) or abort(404, NO_FILE)
+
+    def ledger_frame(self, path: str) -> Path | None:
+        """A frame path from the store's ledger, if it is a file inside the scanned folder
+        (through :func:`inside`, like every file the page reads), else None."""
+        try:
+            rel = os.path.relpath(path, Path(self.results.source).resolve())
+        except ValueError:
+            return None
+        return inside(self.results.source, Path(rel).as_posix())
 
 
 def _review() -> Review:
@@ -534,7 +545,8 @@ def _comparison(r: Review, camera: str, version: str) -> dict:
     key = (camera, active or "", version)
     if key not in r.compared:
         try:
-            c = compare_versions(r.store, r.config, camera, active, version, COMPARE_FRAMES)
+            c = compare_versions(r.store, r.config, camera, active, version, COMPARE_FRAMES,
+                                 within=r.ledger_frame)
         except LookupError as exc:  # a damaged version: says what is wrong and what to do
             abort(409, str(exc))
         ch = c.change
