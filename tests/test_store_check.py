@@ -117,6 +117,18 @@ def test_a_damaged_file_stops_only_its_camera(site, store, tmp_path, file, how, 
     assert "1 damaged" in check.stdout
 
 
+def test_a_scan_with_nothing_new_still_names_a_damaged_camera(site, store, tmp_path):
+    """Closing note item 2: a default scan leaves out frames scored before; when every
+    frame of a camera is left out, its damaged baseline is still named, with what to do."""
+    out = tmp_path / "out"
+    assert run(site, store, "scan", str(site / "new"), "--out", str(out)).returncode == 0
+    damage(store / "east" / "v1" / "ppca.npz", "flip")
+    r = run(site, store, "scan", str(site / "new"), "--out", str(out))
+    assert r.returncode == 0 and "not scored again: 8 frames" in r.stdout, r.stdout
+    said = [ln for ln in r.stdout.splitlines() if ln.startswith("damaged baselines")]
+    assert len(said) == 1 and "baseline east v1 is damaged (ppca.npz: checksum" in said[0]
+    assert "learn camera east again" in said[0] and "west" not in said[0]
+
 def test_the_torch_weights_are_checked_too(site, store, tmp_path):
     assert run(site, store, "learn", str(site / "normal" / "east"), "--camera", "east",
                "--model", "vae").returncode == 0

@@ -96,5 +96,5 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     if all_scores:
         say(f"all scores: {all_scores}")
     if getattr(summary, "damaged", None):
-        say("damaged baselines (their frames were not scored): "
+        say("damaged baselines (no frame of these cameras is scored until this is fixed): "
             + "; ".join(summary.damaged[c] for c in sorted(summary.damaged)))

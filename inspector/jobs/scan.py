@@ -241,7 +241,9 @@ def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, co
     """Discover every frame under ``source`` (camera = first folder level) and score it.
 
     ``rescore=False`` leaves out the frames that ``writer``'s ledger has scored before and
-    whose file is unchanged (counted in the summary). With a ``distributed.Client`` the
+    whose file is unchanged (counted in the summary); a camera all of whose frames are left
+    out still has its active baseline loaded, so that damage to it is reported in
+    ``summary.damaged`` as on any other scan. With a ``distributed.Client`` the
     frames are scored on its Dask cluster (:func:`inspector.jobs.cluster.scan_on_cluster`).
     """
     files, skips = discover(source)
@@ -260,6 +262,8 @@ def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, co
                              total=len(files))
     summary.unchanged = len(done)
     active = {c: baselines.store.active_version(c) for c in {r["camera"] for r in done.values()}}
+    for camera in sorted(active.keys() - {f.camera for f in files}):
+        load_baseline(baselines, camera, summary.damaged)  # all its frames were left out
     summary.unchanged_older = sum(r["version"] != active[r["camera"]] for r in done.values())
     return summary
 
