@@ -153,32 +153,6 @@ def test_compare_endpoint(mine):
 
 
 
-def test_compare_reads_no_ledger_frame_outside_the_folder(mine, tmp_path):
-    """Closing note item 1: the comparison scores ledger frames only through the page's
-    boundary check; rows naming a real frame outside the scanned folder (by absolute path,
-    by '..', through a link) are left out and counted, never decoded."""
-    shutil.copytree(mine.store.root / "dock" / "v1", mine.store.root / "dock" / "v2")
-    source = tmp_path / "scanned"
-    shutil.copytree(mine.source, source)
-    elsewhere = tmp_path / "elsewhere"
-    elsewhere.mkdir()
-    inside_frames = sorted((source / "dock").iterdir())
-    secret = elsewhere / "secret.jpg"
-    shutil.copy(inside_frames[0], secret)
-    (source / "dock" / "escape.jpg").symlink_to(secret)
-    outside = [secret, source / "dock" / ".." / ".." / "elsewhere" / "secret.jpg",
-               source / "dock" / "escape.jpg"]
-    write_ledger(mine.store.database, [(str(p), "dock", 1.0) for p in inside_frames + outside])
-    client = create_app(mine.out, mine.store, mine.config, token=TOKEN,
-                        source=source).test_client()
-    data = client.get("/api/compare?camera=dock&version=v2").get_json()
-    assert data["frames"] == len(inside_frames), data
-    assert f"{len(outside)} outside the folder left out" in data["text"]
-    shutil.copytree(mine.store.root / "aisle" / "v1", mine.store.root / "aisle" / "v2")
-    write_ledger(mine.store.database, [(str(p), "aisle", 1.0) for p in outside])
-    data = client.get("/api/compare?camera=aisle&version=v2").get_json()
-    assert data["frames"] == 0 and "none of the last 3 scored frames is inside" in data["text"]
-
 TRAVERSALS = [
     "/files/out/../run.json",
     "/files/out/overlays/../run.json",
@@ -336,6 +310,28 @@ def test_no_picture_comes_from_outside_the_folders(mine, outside_world):
         for kind in ("frame", "overlay"):
             answers.add(request(host, port, "GET", f"/img/{linked}/{kind}")[2])
         assert len(answers) == 1, answers
+
+
+def test_compare_reads_no_ledger_frame_outside_the_folder(mine, outside_world):
+    """Closing note item 1: the comparison scores ledger frames only through the page's
+    boundary check; rows naming a real frame outside the scanned folder (by absolute path,
+    by '..', through a link) are left out and counted, never decoded."""
+    source, _, secret = outside_world
+    for camera in ("dock", "aisle"):
+        shutil.copytree(mine.store.root / camera / "v1", mine.store.root / camera / "v2")
+    inside_frames = sorted(p for p in (source / "dock").iterdir() if not p.is_symlink())
+    outside = [secret, source / "dock" / ".." / ".." / "elsewhere" / secret.name,
+               source / "dock" / "escape.jpg"]
+    elsewhere = [shutil.copy(secret, secret.with_name(f"aisle{k}.jpg")) for k in range(3)]
+    write_ledger(mine.store.database, [(str(p), "dock", 1.0) for p in inside_frames + outside]
+                 + [(str(p), "aisle", 1.0) for p in elsewhere])
+    client = create_app(mine.out, mine.store, mine.config, token=TOKEN,
+                        source=source).test_client()
+    data = client.get("/api/compare?camera=dock&version=v2").get_json()
+    assert data["frames"] == len(inside_frames), data
+    assert f"{len(outside)} outside the folder left out" in data["text"]
+    data = client.get("/api/compare?camera=aisle&version=v2").get_json()
+    assert data["frames"] == 0 and "none of the last 3 scored frames is inside" in data["text"]
 
 
 def test_host_allow_list_on_every_bind(mine):
