@@ -22,20 +22,16 @@ from __future__ import annotations
 
 import argparse
 import os
-import shutil
 import statistics
 import sys
-import tempfile
 import time
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # bench/, for the shared helper
+from _frames import depot_frames, frame_size, learn_all, work_folder  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
-from inspector.demo.scenario import generate  # noqa: E402
 from inspector.jobs.cluster import partitions, score_part  # noqa: E402
-from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
 from inspector.storage.ledger import Ledger  # noqa: E402
@@ -47,35 +43,26 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--frames", type=int, default=200, help="frames to scan (two cameras)")
     ap.add_argument("--rounds", type=int, default=3)
-    ap.add_argument("--size", default="960x540", help="frame size WxH (default 960x540)")
+    ap.add_argument("--size", default="960x540", type=frame_size,
+                    help="frame size WxH (default 960x540)")
     ap.add_argument("--normal", type=int, default=60,
                     help="normal frames per camera to learn from")
     ap.add_argument("--config", type=Path, help="TOML config (default: built-in settings)")
     ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
     args = ap.parse_args()
-    work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-bench-"))
-    size = tuple(int(v) for v in args.size.lower().split("x"))
-    try:
-        run(work, args.frames, args.rounds, size, args.normal, args.config)
-    finally:
-        if not args.keep:
-            shutil.rmtree(work, ignore_errors=True)
+    with work_folder(args.keep) as work:
+        run(work, args.frames, args.rounds, args.size, args.normal, args.config)
 
 
 def run(work: Path, n: int, rounds: int, size: tuple[int, int], normal: int = 60,
         config_path: Path | None = None) -> None:
     from distributed import Client, LocalCluster
 
-    t = time.perf_counter()
-    scenario = generate(work / "frames", seed=1, normal_per_camera=normal,
-                        new_per_camera=max(1, n // 2), incident_fraction=0.05, size=size)
-    print(f"generated {n} + {2 * normal} frames {size[0]}x{size[1]} in "
-          f"{time.perf_counter() - t:.1f} s")
+    scenario, seconds = depot_frames(work, n, normal, size)
+    print(f"generated {n} + {2 * normal} frames {size[0]}x{size[1]} in {seconds:.1f} s")
     config = load_config(config_path)
     store = Store(work / "store")
-    normal, _ = discover(scenario.normal)
-    for report in learn_cameras(normal, config, store):
-        print(f"learnt {report.camera} from {report.frames} frames in {report.seconds:.1f} s")
+    learn_all(scenario.normal, config, store)
     rates: dict[str, list[float]] = {"in-process": [], "1 worker": [], "2 workers": []}
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
                       dashboard_address=None, silence_logs=40) as cluster, \

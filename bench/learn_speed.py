@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import shutil
 import subprocess
 import sys
 import tempfile
@@ -27,8 +26,8 @@ import time
 from datetime import datetime, timedelta
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # bench/, for the shared helper
+from _frames import frame_size, work_folder  # noqa: E402
 
 
 def write_frames(folder: Path, n: int, size: tuple[int, int]) -> None:
@@ -96,7 +95,8 @@ def measure(mode: str, folder: Path, n: int) -> dict:
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--frames", default="500,2000")
-    ap.add_argument("--size", default="1920x1080", help="exported frame size, WxH")
+    ap.add_argument("--size", default="1920x1080", type=frame_size,
+                    help="exported frame size, WxH")
     ap.add_argument("--keep", type=Path, help="frame folder to keep and reuse")
     ap.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -104,9 +104,8 @@ def main(argv=None) -> None:
         _child(args.child[0], args.child[1], int(args.child[2]))
         return
     counts = [int(v) for v in args.frames.split(",")]
-    size = tuple(int(v) for v in args.size.lower().split("x"))
-    work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-learn-bench-"))
-    try:
+    size = args.size
+    with work_folder(args.keep, prefix="inspector-learn-bench-") as work:
         t = time.perf_counter()
         write_frames(work / "cam", max(counts), size)
         print(f"{max(counts)} frames of {size[0]}x{size[1]} ready in "
@@ -119,9 +118,6 @@ def main(argv=None) -> None:
             print(f"{n:>7}{d['seconds']:>10.1f}{le['seconds']:>9.1f}"
                   f"{le['seconds'] / d['seconds']:>7.2f}{le['peak_mb']:>15.0f}"
                   f"{d['peak_mb']:>16.0f}", flush=True)
-    finally:
-        if not args.keep:
-            shutil.rmtree(work, ignore_errors=True)
 
 
 if __name__ == "__main__":

@@ -21,20 +21,15 @@ from __future__ import annotations
 
 import argparse
 import os
-import shutil
 import statistics
 import sys
-import tempfile
 import time
 from pathlib import Path
-from types import SimpleNamespace
 
-ROOT = Path(__file__).resolve().parents[1]
-sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # bench/, for the shared helper
+from _frames import depot_frames, frame_size, learn_all, work_folder  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
-from inspector.demo.scenario import generate  # noqa: E402
-from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import BATCH, BaselineCache, read_args, run_scan  # noqa: E402
 from inspector.storage.frames import discover, iter_batches  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
@@ -45,39 +40,27 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--frames", type=int, default=200, help="full-HD frames to scan")
     ap.add_argument("--normal", type=int, default=120, help="normal frames per camera")
     ap.add_argument("--rounds", type=int, default=3)
-    ap.add_argument("--size", default="1920x1080", help="exported frame size, WxH")
+    ap.add_argument("--size", default="1920x1080", type=frame_size,
+                    help="exported frame size, WxH")
     ap.add_argument("--long-side", type=int, default=0,
                     help="working long side (default: the tool's default)")
     ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
     args = ap.parse_args(argv)
-    work = args.keep or Path(tempfile.mkdtemp(prefix="inspector-bench-"))
-    size = tuple(int(v) for v in args.size.lower().split("x"))
-    try:
-        run(work, args.frames, args.rounds, args.normal, size, args.long_side)
-    finally:
-        if not args.keep:
-            shutil.rmtree(work, ignore_errors=True)
+    with work_folder(args.keep) as work:
+        run(work, args.frames, args.rounds, args.normal, args.size, args.long_side)
     return 0
 
 
 def run(work: Path, n: int, rounds: int, normal: int = 120,
         size: tuple[int, int] = (1920, 1080), long_side: int = 0) -> None:
-    t = time.perf_counter()
     # Mostly normal frames, as in a real stream (overlays are drawn for flagged frames only).
-    if not (work / "frames" / "new").is_dir():
-        generate(work / "frames", seed=1, normal_per_camera=normal, new_per_camera=n // 2,
-                 incident_fraction=0.05, size=size)
-    scenario = SimpleNamespace(normal=work / "frames" / "normal", new=work / "frames" / "new")
-    print(f"{n} + {2 * normal} frames of {size[0]}x{size[1]} ready in "
-          f"{time.perf_counter() - t:.1f} s")
+    scenario, seconds = depot_frames(work, n, normal, size)
+    print(f"{n} + {2 * normal} frames of {size[0]}x{size[1]} ready in {seconds:.1f} s")
     cfg = work / "inspector.toml"
     cfg.write_text(f"[frames]\nlong_side = {long_side}\n" if long_side else "", encoding="utf-8")
     config = load_config(cfg)
     store = Store(work / "store")
-    normal, _ = discover(scenario.normal)
-    for report in learn_cameras(normal, config, store):
-        print(f"learnt {report.camera} from {report.frames} frames in "
-              f"{report.seconds:.1f} s")
+    learn_all(scenario.normal, config, store)
     files, _ = discover(scenario.new)
     baselines = BaselineCache(store)
     decode_rates, scan_rates, decode_cpu, scan_cpu = [], [], [], []
