@@ -270,8 +270,6 @@ class Config:
     persistence: PersistenceSettings = field(default_factory=PersistenceSettings)
     #: Raw per-camera tables, validated when read through :meth:`camera`.
     cameras: dict[str, dict[str, Any]] = field(default_factory=dict)
-    #: Sections that other parts of the tool own, as read (see :meth:`section`).
-    extra: dict[str, dict[str, Any]] = field(default_factory=dict)
     source: str = "built-in defaults"
 
     def camera(self, name: str) -> CameraConfig:
@@ -296,13 +294,6 @@ class Config:
         if table:
             raise UsageError(f"{self.source}: unknown key {where} {sorted(table)[0]!r}")
         return CameraConfig(name=name, mask=mask, **out)
-
-    def section(self, name: str, cls: type) -> Any:
-        """Build a dataclass ``cls`` from the extra section ``[name]`` (defaults if absent);
-        a section the config knows (e.g. ``watch``) is returned as validated at load."""
-        if name in {f.name for f in fields(self)} and isinstance(getattr(self, name), cls):
-            return getattr(self, name)
-        return _build(cls, dict(self.extra.get(name, {})), f"[{name}]", source=self.source)
 
 
 def load_config(path: str | Path | None = None) -> Config:
@@ -343,12 +334,12 @@ def load_config(path: str | Path | None = None) -> Config:
     cameras = data.pop("cameras", {})
     if not isinstance(cameras, dict) or not all(isinstance(v, dict) for v in cameras.values()):
         raise UsageError(f"{src}: [cameras] must hold one table per camera, e.g. [cameras.dock]")
-    extra = {}
     for key, value in data.items():
         if not isinstance(value, dict):
             raise UsageError(f"{src}: unknown top-level key {key!r}")
-        extra[key] = value
-    config = Config(cameras=cameras, extra=extra, source=src, **built)
+        raise UsageError(f"{src}: unknown section [{key}] (sections: "
+                         f"{', '.join(f'[{k}]' for k in [*known, 'cameras.NAME'])})")
+    config = Config(cameras=cameras, source=src, **built)
     for name in cameras:
         config.camera(name)  # validate now, not in the middle of a run
     return config
