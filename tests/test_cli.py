@@ -1,6 +1,7 @@
 """The command line end to end on generated frames: outputs, skips, exit codes."""
 
 import csv
+import socket
 import subprocess
 import sys
 from pathlib import Path
@@ -132,16 +133,48 @@ def test_learn_one_camera_recursively_and_warn_about_a_small_calibration_set(lea
     (["scan", "{root}/normal", "--out", "{root}/normal/out"], "inside SOURCE"),
     (["learn", "{root}/few", "--camera", "c"], "at least 10 are needed"),
     (["scan", "{root}/normal", "--bogus"], "unrecognized arguments: --bogus"),
+    # a new user's slips: a misspelt section, a file where a folder goes and the reverse
+    (["learn", "{root}/normal", "--config", "{root}/badsection.toml"],
+     "unknown section [calibraton] (sections: [paths], [frames]"),
+    (["scan", "{root}/normal", "--out", "{root}/small.toml"], "is a file; a folder is expected"),
+    (["scan", "{root}/normal", "--out", "{root}/o", "--maps", "{root}/small.toml"],
+     "is a file; a folder is expected"),
+    (["scan", "{root}/normal", "--out", "{root}/o", "--all-scores", "{root}/few"],
+     "is a folder; a file is expected"),
+    (["learn", "{root}/normal", "--store", "{root}/small.toml"], "is not a folder"),
+    (["scan", "{root}/normal", "--store", "{root}/small.toml"], "is not a folder"),
+    (["demo", "--out", "{root}/small.toml"], "the demo needs a folder"),
+    (["demo", "--out", "{root}/d", "--seed", "-1"], "--seed must be 0 or more"),
 ])
 def test_usage_errors_exit_2_with_one_line(learnt, capsys, args, message):
     root, _ = learnt
     (root / "badkey.toml").write_text("[frames]\nsize = 3\n")
     (root / "badval.toml").write_text("[calibration]\nalpha = 2.0\n")
+    (root / "badsection.toml").write_text("[calibraton]\nalpha = 0.02\n")
     write_frames(root / "few", noisy_copies(_scene(0), 3, np.random.default_rng(0)))
-    argv = [a.format(root=root) for a in args] + ["--store", str(root / "store-x")]
+    argv = [a.format(root=root) for a in args]
+    if args[0] != "demo" and "--store" not in args:
+        argv += ["--store", str(root / "store-x")]
     assert main(argv) == 2
-    err = capsys.readouterr().err.strip()
+    said = capsys.readouterr()
+    err = said.err.strip()
     assert message in err and len(err.splitlines()) == 1 and "Traceback" not in err
+    assert "generating" not in said.out  # refused before any work
+
+
+def test_review_on_an_address_it_cannot_listen_on_exits_2_with_one_line(learnt, capsys):
+    root, cfg = learnt
+    assert main(["scan", str(root / "normal"), "--store", str(root / "store"), "--config",
+                 str(cfg), "--out", str(root / "res")]) == 0
+    capsys.readouterr()
+    with socket.socket() as busy:  # the port is taken by another program
+        busy.bind(("127.0.0.1", 0))
+        busy.listen()
+        code = main(["review", "--out", str(root / "res"), "--store", str(root / "store"),
+                     "--config", str(cfg), "--port", str(busy.getsockname()[1])])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and err.startswith("inspector: error: cannot listen on 127.0.0.1:"), err
+    assert len(err.splitlines()) == 1
 
 
 def test_module_entry_point_reports_usage_errors_without_traceback(tmp_path):

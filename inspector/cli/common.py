@@ -55,21 +55,30 @@ def cluster(args: argparse.Namespace, config: Config):
 def resolve(args: argparse.Namespace) -> tuple[Config, Store]:
     """Config and store of a command, with command-line options over the config file."""
     config = load_config(args.config)
-    store = Store(args.store or Path(config.paths.store))
-    return config, store
+    root = Path(args.store or config.paths.store)
+    if root.exists() and not root.is_dir():
+        raise UsageError(f"store {str(root)!r} is not a folder")
+    return config, Store(root)
 
 
-def check_source(source: Path, *outputs: Path | None) -> Path:
-    """SOURCE must be a folder, and no output may land inside it."""
+def check_source(source: Path, *outputs: Path | None, files: tuple[Path | None, ...] = ()
+                 ) -> Path:
+    """SOURCE must be a folder, and no output may land inside it; each output folder
+    (``outputs``) must be a folder or not exist yet, each output file (``files``) must not be
+    a folder."""
     if not source.is_dir():
         raise UsageError(f"SOURCE {str(source)!r} is not a folder")
     root = source.resolve()
-    for out in outputs:
-        if out is not None:
-            o = out.resolve()
-            if o == root or root in o.parents:
-                raise UsageError(f"output {str(out)!r} is inside SOURCE; inspector never writes "
-                                 "into the folder it reads")
+    for out, folder in [(o, True) for o in outputs] + [(f, False) for f in files]:
+        if out is None:
+            continue
+        o = out.resolve()
+        if o == root or root in o.parents:
+            raise UsageError(f"output {str(out)!r} is inside SOURCE; inspector never writes "
+                             "into the folder it reads")
+        if out.exists() and out.is_dir() != folder:
+            raise UsageError(f"output {str(out)!r} is a {'file' if folder else 'folder'}; "
+                             f"a {'folder' if folder else 'file'} is expected there")
     return root
 
 

@@ -12,6 +12,7 @@ import numpy as np
 
 from inspector.cli.common import report_scan, say
 from inspector.cli.review import PORT
+from inspector.errors import UsageError
 
 
 def register(sub) -> None:
@@ -45,6 +46,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
     from inspector.storage.store import Store
 
     root = args.out
+    if root.exists() and not root.is_dir():
+        raise UsageError(f"--out {str(root)!r} is a file; the demo needs a folder")
+    if args.seed < 0:
+        raise UsageError("--seed must be 0 or more")
     say(f"generating the Larkspur Parcel Co. depot scenario in {root / 'frames'} ...")
     # The busy camera: 24 short bursts of normal frames (enough full persistence windows for
     # a 1 % threshold after the held-out split), 3 bursts to scan with one object left in each.

@@ -51,10 +51,6 @@ def cmd_review(args: argparse.Namespace) -> int:
             f"for in {out}")
     if not 0 <= args.port <= 65535:
         raise UsageError("--port must be between 0 and 65535")
-    loopback = is_loopback(args.host)
-    if not loopback:
-        say(f"warning: listening on {args.host}: other machines that reach this address can "
-            "see frames and, with the page's token, write labels")
     token = secrets.token_urlsafe(24)
     app = create_app(out, store, config, token=token,
                      hosts=Hosts.for_bind(args.host, args.allow_host))
@@ -64,6 +60,9 @@ def cmd_review(args: argparse.Namespace) -> int:
     except OSError as exc:
         raise UsageError(f"cannot listen on {args.host}:{args.port}: "
                          f"{exc.strerror or exc}") from None
+    if not is_loopback(args.host):
+        say(f"warning: listening on {args.host}: other machines that reach this address can "
+            "see frames and, with the page's token, write labels")
     host = f"[{args.host}]" if ":" in args.host else args.host
     say(f"review page: http://{host}:{server.server_port}/  (results {out}, store {store.root}; "
         "Ctrl-C stops)")

@@ -35,7 +35,7 @@ def cmd_scan(args: argparse.Namespace) -> int:
 
     config, store = resolve(args)
     out = args.out or Path(config.paths.out)
-    check_source(args.source, out, args.all_scores, args.maps)
+    check_source(args.source, out, args.maps, files=(args.all_scores,))
     with cluster(args, config) as client:
         summary = run_scan(args.source, config, store, out, args.all_scores, args.maps,
                            rescore=args.rescore, client=client)

@@ -51,7 +51,7 @@ def cmd_watch(args: argparse.Namespace) -> int:
     if args.idle_exit is not None and args.idle_exit < 0:
         raise UsageError(f"--idle-exit {args.idle_exit:g}: seconds must not be negative")
     out = args.out or Path(config.paths.out)
-    root = check_source(args.source, out, args.all_scores, args.maps, store.root)
+    root = check_source(args.source, out, args.maps, store.root, files=(args.all_scores,))
 
     def log(text: str) -> None:
         say(f"{now().strftime('%H:%M:%S')} {text}")

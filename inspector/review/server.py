@@ -49,7 +49,12 @@ from flask import (
 from markupsafe import Markup
 from werkzeug.exceptions import HTTPException
 from werkzeug.security import safe_join
-from werkzeug.serving import BaseWSGIServer, WSGIRequestHandler
+from werkzeug.serving import (
+    BaseWSGIServer,
+    WSGIRequestHandler,
+    get_sockaddr,
+    select_address_family,
+)
 from werkzeug.serving import make_server as _werkzeug_server
 
 from inspector.config import Config
@@ -607,7 +612,15 @@ class _Handler(WSGIRequestHandler):
 
 def make_server(app: Flask, host: str, port: int,
                 timeout: float = READ_TIMEOUT) -> BaseWSGIServer:
-    """A threaded server for the page (the caller runs ``serve_forever``)."""
+    """A threaded server for the page (the caller runs ``serve_forever``).
+
+    Raises OSError when ``host:port`` cannot be listened on (an unknown name, a port in
+    use): werkzeug itself would print the reason and exit the process.
+    """
+    family = select_address_family(host, port)
+    with socket.socket(family, socket.SOCK_STREAM) as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        probe.bind(get_sockaddr(host, port, family))
     handler = type("Handler", (_Handler,), {"timeout": timeout})
     return _werkzeug_server(host, port, app, threaded=True, request_handler=handler)
 
