@@ -19,6 +19,18 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 
+def add_options(ap, size: str, normal: int) -> None:
+    """``--frames``, ``--normal``, ``--rounds``, ``--size`` and ``--keep`` of a bench that
+    scans the depot's frames, with its default frame size ``"WxH"`` and normal frames."""
+    ap.add_argument("--frames", type=int, default=200, help="frames to scan (two cameras)")
+    ap.add_argument("--normal", type=int, default=normal,
+                    help="normal frames per camera to learn from")
+    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--size", default=size, type=frame_size,
+                    help=f"exported frame size, WxH (default {size})")
+    ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
+
+
 def frame_size(text: str) -> tuple[int, int]:
     """``"1920x1080"`` -> ``(1920, 1080)`` (width, height), for ``--size``."""
     w, h = (int(v) for v in text.lower().split("x"))

@@ -28,7 +28,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # bench/, for the shared helper
-from _frames import depot_frames, frame_size, learn_all, work_folder  # noqa: E402
+from _frames import add_options, depot_frames, learn_all, work_folder  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
 from inspector.jobs.cluster import partitions, score_part  # noqa: E402
@@ -41,14 +41,8 @@ from inspector.storage.store import Store  # noqa: E402
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--frames", type=int, default=200, help="frames to scan (two cameras)")
-    ap.add_argument("--rounds", type=int, default=3)
-    ap.add_argument("--size", default="960x540", type=frame_size,
-                    help="frame size WxH (default 960x540)")
-    ap.add_argument("--normal", type=int, default=60,
-                    help="normal frames per camera to learn from")
+    add_options(ap, size="960x540", normal=60)
     ap.add_argument("--config", type=Path, help="TOML config (default: built-in settings)")
-    ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
     args = ap.parse_args()
     with work_folder(args.keep) as work:
         run(work, args.frames, args.rounds, args.size, args.normal, args.config)

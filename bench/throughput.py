@@ -27,7 +27,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # bench/, for the shared helper
-from _frames import depot_frames, frame_size, learn_all, work_folder  # noqa: E402
+from _frames import add_options, depot_frames, learn_all, work_folder  # noqa: E402
 
 from inspector.config import load_config  # noqa: E402
 from inspector.jobs.scan import BATCH, BaselineCache, read_args, run_scan  # noqa: E402
@@ -37,14 +37,9 @@ from inspector.storage.store import Store  # noqa: E402
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--frames", type=int, default=200, help="full-HD frames to scan")
-    ap.add_argument("--normal", type=int, default=120, help="normal frames per camera")
-    ap.add_argument("--rounds", type=int, default=3)
-    ap.add_argument("--size", default="1920x1080", type=frame_size,
-                    help="exported frame size, WxH")
+    add_options(ap, size="1920x1080", normal=120)
     ap.add_argument("--long-side", type=int, default=0,
                     help="working long side (default: the tool's default)")
-    ap.add_argument("--keep", type=Path, help="work folder to keep (default: a temp folder)")
     args = ap.parse_args(argv)
     with work_folder(args.keep) as work:
         run(work, args.frames, args.rounds, args.normal, args.size, args.long_side)
