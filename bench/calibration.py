@@ -40,7 +40,7 @@ from inspector.core.scoring import anomaly_maps, frame_scores, location_stats  #
 #: fit in a few minutes.
 SIZE = (32, 48)
 PPCA = {"patch": 8, "stride": 4}
-VAE = {"patch": 8, "stride": 4, "width": 8, "latent": 2, "epochs": 6, "patience": 3,
+VAE = {"patch": 8, "stride": 4, "width": 8, "latent": 2, "epochs": 40, "patience": 3,
        "steps": 200, "batch_size": 16, "threads": 1}
 #: Light change across the frame over the normal frames (fraction of the brightness at the
 #: two sides), continuing at the same pace while scanning.
@@ -148,8 +148,9 @@ def _before_vae(train: np.ndarray):
                 self.net_ = self._network()
                 self._init_from_data(train_imgs, obs)
                 self._prepare_scoring()
-                self._train(train_imgs, held_imgs, obs)
+                self._train(train_imgs, held_imgs, obs, self.steps)
                 self.net_.eval()
+                self.map_center_, self.map_scale_ = 0.0, 1.0  # raw nats, as it was
                 return HeldOut(held_pos, self._score_packed(held_imgs))
 
     model = Before(**VAE)

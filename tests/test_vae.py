@@ -212,9 +212,10 @@ SMALL = dict(width=8, latent=4, epochs=3, patience=5, batch_size=8, threads=1, s
 
 
 def test_patch_vae_fit_save_load_and_mask(tmp_path):
-    # Held-out maps come from the latest frames, after a gap (split conformal, Vovk et al.
-    # 2005: calibration frames are not training frames, and here also not the frames that
-    # chose the epoch); masked pixels are outside the likelihood.
+    # Forward chaining (cross-conformal calibration over time blocks, Vovk 2015, "Cross-
+    # conformal predictors"): each calibration block is scored by a model of the frames
+    # before it only, less a gap, whose stopping epoch was chosen on its own latest frames;
+    # masked pixels are outside the likelihood.
     images = _frames()
     h, w = images.shape[1:3]
     mask = np.zeros((h, w), bool)
@@ -222,23 +223,31 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     mask[21:30, 33:47] = True  # odd-aligned, so part-masked cells and chroma blocks too
     model = FrameVAEModel(**SMALL)
     held = model.fit(ArraySource(images, folds=5), mask)
-    # 20 frames: 13 train, gap, 1 stops early, gap, the latest 4 calibrate.
-    assert list(held.index) == [16, 17, 18, 19]
-    assert held.maps.shape == (4, h // 4, w // 4) and held.maps.dtype == np.float32
+    # 20 frames in 5 blocks of 4; blocks 2-4 (8 or more frames before them) calibrate. The
+    # model of block k learns frames 0 .. 4k-2 less a gap and the latest one (which stops).
+    assert list(held.index) == list(range(8, 20))
+    assert held.maps.shape == (12, h // 4, w // 4) and held.maps.dtype == np.float32
     assert np.isfinite(held.maps).all()
     assert np.all(held.maps[:, :2, :4] == 0)
     facts = model.learned()
-    assert facts["epochs"] == 3 and facts["train_frames"] == 13
+    assert [c["train_frames"] for c in facts["chain"]] == [5, 9, 13]
+    assert facts["epochs"] == 3 and facts["train_frames"] == 17
     assert facts["stop_frames"] == 1 and facts["gap_frames"] == 2
     assert math.isfinite(facts["best_heldout_elbo"])
     json.dumps(facts)
     params = json.loads(json.dumps(model.get_params()))
     assert FrameVAEModel(**params).get_params() == model.get_params()
 
-    # Held-out maps equal scoring the same frames afresh (the final model scored them).
-    maps = model.score_maps(images)
-    np.testing.assert_allclose(maps[held.index], held.maps, rtol=1e-5, atol=1e-3)
+    # A block's calibration maps depend on no frame from its own block on: replacing the
+    # frames of blocks 3 and 4 leaves block 2's maps exactly as they were.
+    later = images.copy()
+    later[12:] = np.random.default_rng(2).integers(0, 256, later[12:].shape, dtype=np.uint8)
+    again = FrameVAEModel(**SMALL).fit(ArraySource(later, folds=5), mask)
+    np.testing.assert_array_equal(again.maps[:4], held.maps[:4])
+    assert not np.array_equal(again.maps[4:], held.maps[4:])
 
+    maps = model.score_maps(images)
+    assert np.isfinite(maps).all()
     model.save(tmp_path)
     assert (tmp_path / "vae.pt").is_file()
     loaded = FrameVAEModel.load(tmp_path, params)
@@ -271,7 +280,7 @@ def test_importance_weighted_map_sums_to_the_bound():
     images = _frames(n=12)
     model = FrameVAEModel(**{**SMALL, "epochs": 1, "iw_samples": 6})
     model.fit(ArraySource(images, folds=4))
-    maps = model.score_maps(images[:5])
+    maps = model.nll_maps(images[:5])
     net = model.net_
     gen = torch.Generator().manual_seed(model.seed + 2)  # the scoring noise, same order
     with torch.no_grad():

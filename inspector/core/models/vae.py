@@ -46,30 +46,35 @@ divergence spread evenly over the map cells it covers. With ``iw_samples = K > 0
 is the importance-weighted bound instead (Burda, Grosse & Salakhutdinov 2016): the frame
 total ``-log (1/K) sum_k w_k`` is split exactly into cells as
 ``sum_k omega_k c_k(cell) + (log K - H(omega)) / cells``, where ``c_k`` is sample k's per-cell
-share of ``-log w_k`` and ``omega`` the normalised weights.
+share of ``-log w_k`` and ``omega`` the normalised weights. :meth:`FrameVAEModel.score_maps`
+centres these per cell and scales them by the model's own early-stopping frames (the scale
+of a VAE's likelihood depends on how far its training went, and calibration scores come
+from several models of a forward chain; see below).
 
-Held-out frames: in time order, ``train | gap | stop | gap | calibration``. The latest
-``holdout`` share of the frames calibrates; a small ``stop`` share before it chooses the
-stopping epoch; a short gap separates each from the frames before it, so neighbouring near
-copies never straddle a boundary. Every calibration frame thus comes after every frame the
-model learnt from or stopped on, as scan frames do (calibrating on a run at the end of every
-block, with training frames on both sides, let the model interpolate: on a slowly drifting
-scene nearly half of the following frames were flagged at alpha 0.05, bench/calibration.py).
-The price is that the model does not train on the latest sessions of the normal set, and
-scan frames are further from its training frames than the calibration frames were: on a
-stationary scene the rate holds, on a drifting one it is still above alpha (the VAE
-extrapolates a change of light less well than PPCA), so relearn as the scene changes. A
-second model refitted on all frames was tried and dropped: its scores are not on the scale
-of the calibrating model's (stationary: 0.10 flagged at alpha 0.05).
+Held-out frames, by forward chaining over the time blocks (as PPCA): one training run over
+a growing window of frames in time order. Each time block from the first one with at least
+``calibrate_from`` of the frames before it is scored by the model as it stood after
+learning the frames before that block, in time order ``train | gap | stop | gap | block``:
+the latest ``stop`` share of its frames chose its stopping epoch, and a short gap separates
+each part from the one before, so neighbouring near copies never straddle a boundary. The
+final model, which scans, learns every frame the same way, going on from the last model of
+the chain. So every calibration frame stands to its model where a scan frame stands to the
+final model, which is what the threshold's promise needs when the scene drifts. Calibrating
+instead on the latest fifth of the frames with a model whose training ended before them
+(and scanning with that model) let scan frames, further from its training frames than the
+calibration frames were, be flagged at 0.11 and 0.33 for alpha 0.05 and 0.1 on a slowly
+drifting scene (bench/calibration.py, n = 300); forward chained, 0.017 and 0.048
+(stationary: 0.044 and 0.094; n = 300, 8 seeds).
 
-Training: Adam on the negative ELBO (one reparameterised sample, analytic KL) of the other
-frames, at most ``steps`` batches (so training time does not grow with the number of
-frames), the per-pixel maps at 10 times the network's learning rate (see
-:data:`MAP_LR_SCALE`), halving both after 2 epochs without progress. Each epoch the
-ELBO of the early-stopping frames (fixed noise, so epochs compare fairly) is measured;
-the best weights are kept and training stops after ``patience`` epochs without
-improvement. The calibration frames are then scored by that final model and returned for
-calibration (split conformal; the model is not refitted on them).
+Training: Adam on the negative ELBO (one reparameterised sample, analytic KL) of the
+training frames, at most ``steps`` batches for the first model of the chain and
+``warm_steps * steps`` for each later one (so training time does not grow with the number
+of frames), the per-pixel maps at 10 times the network's learning rate (see
+:data:`MAP_LR_SCALE`), halving both after 2 epochs without progress; the optimiser's state
+carries over from one model of the chain to the next. Each epoch the ELBO of the
+early-stopping frames (fixed noise, so epochs compare fairly) is measured; the best weights
+are kept (for a later model of the chain, its starting weights count as epoch 0) and
+training stops after ``patience`` epochs without improvement.
 """
 
 from __future__ import annotations
@@ -89,6 +94,7 @@ from tqdm import tqdm
 
 from inspector.core.features import map_shape, to_planes
 from inspector.core.models.base import DensityModel, FrameSource, HeldOut
+from inspector.core.scoring import location_stats
 from inspector.core.models.vae_net import (  # noqa: F401 (re-exported)
     LOG_2PI,
     FrameVAENet,
@@ -154,17 +160,24 @@ class FrameVAEModel(DensityModel):
         Add each latent cell's KL to the map cells it covers (posterior-mean scoring).
     var_floor : float
         Lower bound on the decoder variance in squared [0, 1] units (as PPCA's).
-    holdout : float
-        Share of the frames (the latest, in time order) held out for calibration.
+    calibrate_from : float
+        Time blocks are scored for calibration once the frames before them make at least
+        this share of all frames (as :class:`~inspector.core.models.ppca.PatchPPCA` does):
+        a model of fewer frames than the final one scores new frames higher than it would.
     stop : float
-        Share of the frames (just before the calibration frames, after a gap) on which the
-        stopping epoch is chosen; neither trained on nor calibrated on.
+        Share of a model's frames (its latest, after a gap) on which its stopping epoch is
+        chosen; not trained on.
     gap : float
-        Share of the frames left out between training, early-stopping and calibration
-        frames (at least one frame each), so neighbouring near copies never straddle them.
+        Share of the frames left out between training and early-stopping frames, and
+        between a model's frames and the block it scores (at least one frame each), so
+        neighbouring near copies never straddle them.
+    warm_steps : float
+        Each model of the forward chain after the first goes on from the one before for at
+        most ``warm_steps * steps`` batches (see :meth:`fit`).
     max_frames : int
         Training frames kept in memory (as uint16 planes, 2 bytes per modelled value: 177 MB
-        for 1,000 frames at 320x180); more are subsampled evenly in time.
+        for 1,000 frames at 320x180); more are subsampled evenly in time. The frames the
+        models stop early on and calibrate on (about 60% of all) are kept as well.
 
     Attributes
     ----------
@@ -180,8 +193,9 @@ class FrameVAEModel(DensityModel):
                  width: int = 32, epochs: int = 100, steps: int = 2000, patience: int = 8,
                  batch_size: int = 8, lr: float = 2e-3, seed: int = 0, threads: int = 1,
                  iw_samples: int = 0, kl_in_map: bool = True, var_floor: float = 1e-4,
-                 holdout: float = 0.2, max_frames: int = 2000, global_latent: int = 4,
-                 stop: float = 0.05, gap: float = 0.02):
+                 calibrate_from: float = 0.4, max_frames: int = 2000,
+                 global_latent: int = 4, stop: float = 0.05, gap: float = 0.02,
+                 warm_steps: float = 0.25):
         self.patch = patch
         self.stride = stride
         self.colour = colour
@@ -197,7 +211,8 @@ class FrameVAEModel(DensityModel):
         self.iw_samples = iw_samples
         self.kl_in_map = kl_in_map
         self.var_floor = var_floor
-        self.holdout = holdout
+        self.calibrate_from = calibrate_from
+        self.warm_steps = warm_steps
         self.stop = stop
         self.gap = gap
         self.max_frames = max_frames
@@ -285,82 +300,133 @@ class FrameVAEModel(DensityModel):
     # fitting
 
     def fit(self, source: FrameSource, mask: np.ndarray | None = None) -> HeldOut:
-        """Train on the earlier frames; calibrate on the latest ones, after a gap.
+        """Train on all frames; score each later time block with the model of the frames
+        before it (forward chaining), as scan frames are scored by the final model.
 
-        The model learns the frames before the latest ``holdout`` share (less a gap), but
-        the last ``stop`` share of them (after another gap), on which it chooses its
-        stopping epoch; it then scores the latest share for calibration and is the model
-        that scans. Calibration frames thus follow every frame the model learnt from or
-        stopped on, as scan frames do; but scan frames are further from them than the
-        calibration frames were, so on a scene that drifts the promise weakens with time
-        (measured in bench/calibration.py): relearn as the scene changes.
+        One training run over a growing window of frames in time order. For each time block
+        ``k`` whose earlier frames make at least ``calibrate_from`` of all, the model is
+        trained on the frames before block ``k`` (less a gap): all but their latest ``stop``
+        share, after another gap, on which the stopping epoch is chosen (the first model
+        from fresh weights for at most ``steps`` batches, each later one from the weights
+        and optimiser state of the one before, for at most ``warm_steps * steps``). That
+        model then scores block ``k`` for calibration. The final model, which scans, is
+        trained the same way on every frame (the window ends a gap before the last frame).
+        Every calibration frame thus stands to its model where a scan frame stands to the
+        final model: after a gap, after the frames that chose the stopping epoch, after
+        every training frame, by the same recipe. Scoring the latest frames with a model
+        whose training ended earlier than the final model's let slow drift push scan scores
+        above the calibration scores (bench/calibration.py).
 
         Returns
         -------
         HeldOut
-            Raw maps of the calibration frames (the latest ``holdout`` share of the frames
-            in time order), by the calibrating model.
+            Raw maps of the frames of the calibration blocks, each from the model of the
+            frames before its block.
         """
         started = time.perf_counter()
         self.size_ = tuple(int(v) for v in source.size)
         self._geometry(self.size_)
         n = len(source)
-        held = max(2, int(round(self.holdout * n)))
-        gap = max(1, int(round(self.gap * n)))
-        if n - held - gap < 4:
-            raise ValueError(f"{n} frames are too few to train, stop early and calibrate")
         obs = torch.from_numpy(self._observed(mask))
         if not obs.any():
             raise ValueError("the mask ignores every pixel")
-        held_pos, held_imgs = self._read(source, np.arange(n - held, n))
-        if len(held_imgs) < 2:
-            raise ValueError(f"need at least 2 decodable calibration frames, got "
-                             f"{len(held_imgs)}")
-        facts = self._train_on(source, np.arange(n - held - gap), obs)
-        with _torch_threads(self.threads):
-            maps = self._score_packed(held_imgs)
+        gap = max(1, int(round(self.gap * n)))
+        stages = self._stages(np.asarray(source.blocks), gap)
+        train_all = self._subsample(np.unique(np.concatenate(
+            [self._split(np.arange(end), n)[0] for end, _ in stages])))
+        plain_all = np.unique(np.concatenate(
+            [np.r_[self._split(np.arange(end), n)[1], score] for end, score in stages]))
+        train_pos, train_imgs = self._read(source, train_all, varied=True)
+        plain_pos, plain_imgs = self._read(source, plain_all)
+        held_pos, held_maps, chain = [], [], []
+        self._opt = None
+        try:
+            for end, score in stages:
+                learn, stop = self._split(np.arange(end), n)
+                tr = np.isin(train_pos, learn)
+                stop = np.isin(plain_pos, stop)
+                facts = self._train_stage(train_imgs[tr], plain_imgs[stop], obs)
+                chain.append({k: facts[k] for k in ("train_frames", "stop_frames", "epochs",
+                                                    "steps", "best_epoch")})
+                sel = np.isin(plain_pos, score)
+                if sel.any():
+                    with _torch_threads(self.threads):
+                        held_maps.append(self._standardised(
+                            self._score_packed(plain_imgs[sel])))
+                    held_pos.append(plain_pos[sel])
+        finally:
+            del self._opt
+        if sum(len(p) for p in held_pos) < 2:
+            raise ValueError("need at least 2 decodable calibration frames")
         self.learned_ = {
             "latent": self.q_, "global_latent": int(self.global_latent),
             "latent_cell": self.cell_, "latent_grid": list(self.latent_grid_),
-            "heldout_frames": int(len(held_imgs)), "gap_frames": 2 * gap,
+            "heldout_frames": int(sum(len(p) for p in held_pos)), "gap_frames": 2 * gap,
+            "chain": chain[:-1],
             "parameters": int(sum(p.numel() for p in self.net_.parameters())),
             "observed_dims": int(obs.sum()), "seconds": round(time.perf_counter() - started, 2),
             **facts,
         }
-        return HeldOut(held_pos, maps)
+        return HeldOut(np.concatenate(held_pos), np.concatenate(held_maps))
 
-    def _train_on(self, source: FrameSource, positions: np.ndarray, obs: torch.Tensor
-                  ) -> dict[str, Any]:
-        """Train ``net_`` on ``positions`` of ``source``: all but the latest ``stop`` share
-        (less a gap), which choose the stopping epoch. Returns the facts of training."""
-        train_idx, stop_idx = self._split(positions)
-        train_idx = self._subsample(train_idx)
-        _, train_imgs = self._read(source, train_idx, varied=True)
-        _, stop_imgs = self._read(source, stop_idx)
+    def _stages(self, blocks: np.ndarray, gap: int) -> list[tuple[int, np.ndarray]]:
+        """The forward chain: ``(end, scored)`` per model, in order. The model learns (and
+        stops early on) positions ``< end``; ``scored`` are the positions of the time block
+        it calibrates on, which starts ``gap`` frames after ``end``. The last entry is the
+        final model: every frame, nothing scored."""
+        n = len(blocks)
+        labels, block_of = np.unique(blocks, return_inverse=True)
+        if len(labels) < 2:
+            raise ValueError("need at least 2 time blocks to calibrate on frames that come "
+                             "after the frames of their model")
+        if np.any(np.diff(block_of) < 0):
+            raise ValueError("time blocks must follow the frames' order")
+        starts = np.searchsorted(block_of, np.arange(len(labels)))
+        stages = []
+        for k in range(1, len(labels)):
+            if starts[k] < self.calibrate_from * n and k < len(labels) - 1:
+                continue
+            stages.append((int(starts[k]) - gap, np.flatnonzero(block_of == k)))
+        stages.append((n - gap, np.zeros(0, int)))
+        for end, _ in stages:
+            self._split(np.arange(end), n)  # enough frames to train and stop early?
+        return stages
+
+    def _train_stage(self, train_imgs: np.ndarray, stop_imgs: np.ndarray, obs: torch.Tensor
+                     ) -> dict[str, Any]:
+        """Train ``net_`` on packed frames: from fresh weights (data-initialised) on the first
+        call of a fit, from the current weights and optimiser state after that."""
         if len(train_imgs) < 2 or len(stop_imgs) < 1:
             raise ValueError(f"need at least 2 training and 1 early-stopping decodable "
                              f"frames, got {len(train_imgs)} and {len(stop_imgs)}")
+        warm = self._opt is not None
         with _torch_threads(self.threads), torch.random.fork_rng(devices=[]):
             torch.manual_seed(self.seed)
-            self.net_ = self._network()
-            self._init_from_data(train_imgs, obs)
-            self._prepare_scoring()
-            history = self._train(train_imgs, stop_imgs, obs)
+            if not warm:
+                self.net_ = self._network()
+                self._init_from_data(train_imgs, obs)
+                self._prepare_scoring()
+            steps = max(1, int(round(self.steps * (self.warm_steps if warm else 1.0))))
+            history = self._train(train_imgs, stop_imgs, obs, steps)
             self.net_.eval()
+            self._set_map_scale(self._score_packed(stop_imgs))
         return {"train_frames": int(len(train_imgs)), "stop_frames": int(len(stop_imgs)),
                 **history}
 
-    def _split(self, positions: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Training and early-stopping positions, in time order: ``train | gap | stop``,
-        the early-stopping ones the latest ``stop`` share, the gap ``gap`` (at least one
-        frame each), so that no early-stopping frame is a near copy of a training frame."""
-        n = len(positions)
+    def _split(self, positions: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+        """Training and early-stopping positions, in time order: ``train | gap | stop``.
+
+        The early-stopping ones are the latest ``stop`` share of the ``n`` frames of the fit,
+        the gap ``gap`` of them (at least one frame each), whatever the model of the chain,
+        so that every model's training frames end as far before the frames it scores;
+        no early-stopping frame is a near copy of a training frame.
+        """
         stop = max(1, int(round(self.stop * n)))
         gap = max(1, int(round(self.gap * n)))
-        train = n - stop - gap
+        train = len(positions) - stop - gap
         if train < 2:
-            raise ValueError(f"{n} frames are too few to train and stop early")
-        return positions[:train], positions[n - stop:]
+            raise ValueError(f"{len(positions)} frames are too few to train and stop early")
+        return positions[:train], positions[len(positions) - stop:]
 
     def _subsample(self, idx: np.ndarray) -> np.ndarray:
         if len(idx) <= self.max_frames:
@@ -401,18 +467,29 @@ class FrameVAEModel(DensityModel):
             self.net_.raw_logvar.copy_(torch.log(excess).float())
 
     def _train(self, train_imgs: np.ndarray, held_imgs: np.ndarray,
-               obs: torch.Tensor) -> dict[str, Any]:
+               obs: torch.Tensor, budget: int) -> dict[str, Any]:
+        """At most ``budget`` optimiser steps on ``train_imgs``, keeping the weights of the
+        epoch with the best ELBO on ``held_imgs`` (the starting weights count as epoch 0
+        when training goes on from an earlier stage, see :meth:`fit`)."""
         net = self.net_
         dims = float(obs.sum())
-        maps = [net.background, net.raw_logvar]
-        rest = [p for p in net.parameters() if all(p is not m for m in maps)]
-        opt = torch.optim.Adam([{"params": rest},
-                                {"params": maps, "lr": self.lr * MAP_LR_SCALE}], lr=self.lr)
-        plateau = torch.optim.lr_scheduler.ReduceLROnPlateau(opt, mode="max", factor=0.5,
-                                                             patience=2)
+        if getattr(self, "_opt", None) is None:
+            maps = [net.background, net.raw_logvar]
+            rest = [p for p in net.parameters() if all(p is not m for m in maps)]
+            opt = torch.optim.Adam([{"params": rest},
+                                    {"params": maps, "lr": self.lr * MAP_LR_SCALE}],
+                                   lr=self.lr)
+            plateau = torch.optim.lr_scheduler.ReduceLROnPlateau(opt, mode="max", factor=0.5,
+                                                                 patience=2)
+            best, best_state = -math.inf, None
+        else:
+            opt, plateau = self._opt
+            best = self._heldout_elbo(held_imgs, obs)
+            best_state = copy.deepcopy(net.state_dict())
+        self._opt = (opt, plateau)
         rng = np.random.default_rng(self.seed)
         gen = torch.Generator().manual_seed(self.seed)
-        best, best_state, best_epoch, stale, epoch, steps = -math.inf, None, 0, 0, 0, 0
+        best_epoch, stale, epoch, steps = 0, 0, 0, 0
         train_elbo = math.nan
         bar = tqdm(range(1, self.epochs + 1), desc="vae", unit="epoch", leave=False,
                    file=sys.stderr, disable=not sys.stderr.isatty(), dynamic_ncols=True)
@@ -421,7 +498,7 @@ class FrameVAEModel(DensityModel):
             order = rng.permutation(len(train_imgs))
             total, count = 0.0, 0
             for start in range(0, len(order), self.batch_size):
-                if steps >= max(self.steps, 1):
+                if steps >= budget:
                     break
                 steps += 1
                 x = self._unpack(train_imgs[np.sort(order[start:start + self.batch_size])])
@@ -442,7 +519,7 @@ class FrameVAEModel(DensityModel):
                 stale += 1
             bar.set_postfix_str(f"ELBO nats/frame: train {train_elbo:.1f}, held-out {held:.1f} "
                                 f"(best {best:.1f} @ epoch {best_epoch}); step {steps}")
-            if stale >= self.patience or steps >= self.steps:
+            if stale >= self.patience or steps >= budget:
                 break
         bar.close()
         if best_state is not None:
@@ -521,13 +598,37 @@ class FrameVAEModel(DensityModel):
         rest = (math.log(K) - entropy) / self._live.sum().clamp_min(1.0)
         return maps + rest[:, None, None] * self._live
 
-    def score_maps(self, images: np.ndarray) -> np.ndarray:
-        """Raw anomaly maps in nats per map cell, shape (n, h, w), float32.
+    def nll_maps(self, images: np.ndarray) -> np.ndarray:
+        """Negative log-likelihood maps in nats per map cell, shape (n, h, w), float32.
 
         Fully masked cells score 0 (they carry no evidence).
         """
         images = np.asarray(images)
         return self._score(self._planes(images[i:i + 32]) for i in range(0, len(images), 32))
+
+    def score_maps(self, images: np.ndarray) -> np.ndarray:
+        """Raw anomaly maps, shape (n, h, w), float32: :meth:`nll_maps` less each cell's
+        median over the model's own early-stopping frames, over one robust scale
+        (``map_center_``, ``map_scale_``, see :meth:`_set_map_scale`).
+
+        A VAE's likelihood scale depends on how far its training went, so each model of
+        the forward chain (see :meth:`fit`) is put on the scale of the frames just before
+        the ones it scores; the final model, on those just before the frames it scans.
+        """
+        return self._standardised(self.nll_maps(images))
+
+    def _set_map_scale(self, stop_maps: np.ndarray) -> None:
+        """The model's own standardisation from its early-stopping frames' NLL maps
+        (m, h, w): each cell's median, and one scale for the whole map (the median over
+        cells of :func:`~inspector.core.scoring.location_stats`' robust scales). Per-cell
+        spreads are left to the calibration, which sees many more frames (a per-cell scale
+        from a few dozen frames made the calibration scores' tail heavy and noisy)."""
+        center, scale = location_stats(stop_maps)
+        self.map_center_ = center
+        self.map_scale_ = np.full_like(scale, np.median(scale))
+
+    def _standardised(self, nll: np.ndarray) -> np.ndarray:
+        return ((nll - self.map_center_) / self.map_scale_).astype(np.float32, copy=False)
 
     def _score_packed(self, packed: np.ndarray) -> np.ndarray:
         return self._score(self._unpack(packed[i:i + 32]) for i in range(0, len(packed), 32))
@@ -576,12 +677,16 @@ class FrameVAEModel(DensityModel):
     def save(self, directory: Path) -> None:
         """Write ``vae.pt``: the network's state_dict plus the frame size and learned facts."""
         torch.save({"state_dict": self.net_.state_dict(), "size": list(self.size_),
+                    "map_center": torch.from_numpy(self.map_center_),
+                    "map_scale": torch.from_numpy(self.map_scale_),
                     "learned": json.loads(json.dumps(self.learned_))},
                    Path(directory) / "vae.pt")
 
     @classmethod
     def load(cls, directory: Path, params: dict[str, Any]) -> "FrameVAEModel":
-        model = cls(**params)
+        # Settings that only shaped an older version's fitting (e.g. ``holdout``) are not
+        # needed to score.
+        model = cls(**{k: v for k, v in params.items() if k in cls._param_names()})
         ckpt = torch.load(Path(directory) / "vae.pt", map_location="cpu", weights_only=True)
         model.size_ = tuple(int(v) for v in ckpt["size"])
         model._geometry(model.size_)
@@ -590,6 +695,12 @@ class FrameVAEModel(DensityModel):
         model.net_.eval()
         model._prepare_scoring()
         model.learned_ = dict(ckpt["learned"])
+        if "map_center" in ckpt:
+            model.map_center_ = ckpt["map_center"].numpy()
+            model.map_scale_ = ckpt["map_scale"].numpy()
+        else:  # saved before the per-model standardisation: raw nats
+            model.map_center_ = np.zeros(model.map_shape_, np.float32)
+            model.map_scale_ = np.ones(model.map_shape_, np.float32)
         return model
 
 
