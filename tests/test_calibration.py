@@ -151,3 +151,51 @@ def test_rate_interval_is_clopper_pearson():
         assert lo == pytest.approx(beta.ppf(0.025, k, n - k + 1))
         assert hi == pytest.approx(beta.ppf(0.975, k + 1, n - k) if k < n else 1.0)
     assert rate_interval(0, 0) == (0.0, 1.0)
+
+
+def test_gpd_fit_recovers_scipy_genpareto_parameters():
+    # Hosking & Wallis (1987): probability-weighted moments are consistent for the
+    # generalized Pareto; scipy.stats.genpareto (shape c = xi, scale) draws the sample and
+    # its maximum-likelihood fit is the second opinion. Rows are fitted one by one or at once.
+    from scipy.stats import genpareto
+
+    from inspector.core.calibration import gpd_fit
+
+    rng = np.random.default_rng(7)
+    for xi in (-0.2, 0.0, 0.3):
+        x = genpareto.rvs(xi, scale=2.0, size=20000, random_state=rng)
+        got_xi, got_sigma = gpd_fit(x)
+        mle_xi, _, mle_sigma = genpareto.fit(x, floc=0.0)
+        assert got_xi == pytest.approx(xi, abs=0.03) and got_sigma == pytest.approx(2.0, rel=0.03)
+        assert got_xi == pytest.approx(mle_xi, abs=0.04)
+        assert got_sigma == pytest.approx(mle_sigma, rel=0.04)
+    rows = genpareto.rvs(0.1, size=(5, 40), random_state=rng)
+    xi_b, sigma_b = gpd_fit(rows)
+    np.testing.assert_allclose([gpd_fit(r) for r in rows], np.c_[xi_b, sigma_b], rtol=1e-12)
+
+
+def test_extrapolated_threshold_is_an_upper_confidence_bound_of_the_quantile():
+    # Scores with a generalized Pareto tail (scipy.stats.genpareto, xi = 0.2), 200 of them,
+    # alpha = 1e-3: five times fewer than 1/alpha, so the threshold is extrapolated. The
+    # point estimate (confidence 0.5) lies below the true quantile about half the time and its
+    # realised rate averages more than twice alpha; the 90% bound (parametric bootstrap,
+    # Efron & Tibshirani 1993, ch. 13) covers the true quantile most of the time (measured
+    # 0.79 over these draws: the percentile bound of a skewed estimator falls somewhat short
+    # of its nominal level) and its realised rate stays near alpha.
+    from scipy.stats import genpareto
+
+    rng = np.random.default_rng(8)
+    alpha, truth = 1e-3, genpareto.isf(1e-3, 0.2)
+    point, bound = [], []
+    for i in range(150):
+        s = genpareto.rvs(0.2, size=200, random_state=rng)
+        point.append(tail_threshold(s, alpha, confidence=0.5, seed=i).value)
+        t = tail_threshold(s, alpha, seed=i)
+        assert t.confidence == 0.9 and "at 90% confidence" in t.describe()
+        bound.append(t.value)
+    point, bound = np.array(point), np.array(bound)
+    assert np.all(bound >= point)
+    assert 0.3 <= np.mean(point >= truth) <= 0.7
+    assert np.mean(bound >= truth) >= 0.7
+    assert np.mean(genpareto.sf(point, 0.2)) > 2 * alpha
+    assert np.mean(genpareto.sf(bound, 0.2)) < 1.5 * alpha

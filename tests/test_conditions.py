@@ -53,10 +53,11 @@ def test_tail_threshold_extrapolates_to_the_true_quantile():
     errors = []
     for seed in range(20):
         s = genpareto.rvs(xi, scale=sigma, size=600, random_state=np.random.default_rng(seed))
-        t = tail_threshold(s, alpha)
+        t = tail_threshold(s, alpha, confidence=0.5)  # the point estimate, about
         assert t.method == "tail" and t.frames_short == 9999 - 600
         assert "9399 more normal frames" in t.warning
         errors.append(np.log(t.value / truth))
+        assert tail_threshold(s, alpha).value >= t.value  # the default: an upper bound
     # the order statistic alone could only offer max(s), far below the true quantile
     assert abs(np.median(errors)) < 0.2
 

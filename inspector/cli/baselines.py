@@ -51,8 +51,12 @@ def cmd_baselines(args: argparse.Namespace) -> int:
             f"{r['false_alarm_rate']:>17.4g}{'-' if target is None else f'{target:.4g}':>14}"
             f"{r['false_alarms_added']:>20}{r['masked']:>8.1%}  {_files(r['check'])}")
     if any(r["extrapolated_target"] is not None for r in rows):
+        conf = max(r.get("extrapolated_confidence", 0.0) for r in rows)
         say("extrapolated: the rate a generalized Pareto tail fit aims at, beyond what the "
-            "calibration frames guarantee")
+            "calibration frames guarantee"
+            + (f" (the threshold is the fit's upper {conf:.0%} confidence bound: under the "
+               "fitted tail, the rate stays at or below the target with that confidence)"
+               if conf else ""))
     for r in rows:
         if r["active"] and r["text_boxes"]:
             say(f"{r['version']} masks text boxes (x0, y0, x1, y1 in frame pixels): "

@@ -75,6 +75,10 @@ class Threshold:
     method : str
         "conformal" (an order statistic of the calibration scores) or "tail" (extrapolated
         with a generalized Pareto fit of the largest scores, see :func:`tail_threshold`).
+    confidence : float
+        For an extrapolated threshold, the one-sided confidence with which, under the
+        fitted tail, it keeps the rate at ``alpha`` (an upper bound of the fitted quantile,
+        not a guarantee); 0 when not extrapolated, or learnt before it was recorded.
     """
 
     value: float
@@ -83,6 +87,7 @@ class Threshold:
     n: int
     frames_short: int
     method: str = "conformal"
+    confidence: float = 0.0
 
     @property
     def extrapolated(self) -> bool:
@@ -93,8 +98,13 @@ class Threshold:
         """One phrase: the rate guaranteed and, when extrapolated, the target aimed at."""
         text = f"false-alarm rate guaranteed {self.guaranteed:.3g}"
         if self.extrapolated:
-            text += f", extrapolated target {self.alpha:.3g} (not guaranteed)"
+            text += f", extrapolated target {self.alpha:.3g}{self._at_confidence} (not guaranteed)"
         return text
+
+    @property
+    def _at_confidence(self) -> str:
+        return (f" at {self.confidence:.0%} confidence under the tail fit" if self.confidence
+                else "")
 
     @property
     def warning(self) -> str:
@@ -103,7 +113,8 @@ class Threshold:
         if self.method == "tail":
             return (f"only {self.n} calibration frames for a false-alarm rate of "
                     f"{self.alpha:.3g}: the threshold is extrapolated from a generalized "
-                    f"Pareto fit of the largest scores, not guaranteed (guaranteed: "
+                    f"Pareto fit of the largest scores{self._at_confidence}, not "
+                    f"guaranteed (guaranteed: "
                     f"1/{self.n + 1} = {self.guaranteed:.3g}); about "
                     f"{self.frames_short} more normal frames would make it exact")
         return (f"only {self.n} calibration frames: the false-alarm rate guaranteed is "
@@ -114,7 +125,8 @@ class Threshold:
         """JSON-ready dict (the one layout, read back by :meth:`from_dict`)."""
         return {"value": float(self.value), "alpha": float(self.alpha),
                 "guaranteed": float(self.guaranteed), "n": int(self.n),
-                "frames_short": int(self.frames_short), "method": self.method}
+                "frames_short": int(self.frames_short), "method": self.method,
+                "confidence": float(self.confidence)}
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> "Threshold":
@@ -129,7 +141,7 @@ class Threshold:
         else:
             guaranteed = float(d["promised"])
         return cls(float(d["value"]), float(d["alpha"]), guaranteed, n,
-                   int(d["frames_short"]), method)
+                   int(d["frames_short"]), method, float(d.get("confidence", 0.0)))
 
 
 def conformal_threshold(scores: np.ndarray, alpha: float) -> Threshold:
@@ -164,7 +176,7 @@ TAIL_SHARE = 0.2
 TAIL_MIN, TAIL_MAX = 8, 200
 
 
-def gpd_fit(excesses: np.ndarray) -> tuple[float, float]:
+def gpd_fit(excesses: np.ndarray):
     """Generalized Pareto shape and scale of excesses over a threshold.
 
     Probability-weighted moments (Hosking & Wallis 1987, eqs. 4-5): with
@@ -177,46 +189,71 @@ def gpd_fit(excesses: np.ndarray) -> tuple[float, float]:
 
     Parameters
     ----------
-    excesses : ndarray, shape (m,), m >= 3, non-negative
+    excesses : ndarray, shape (m,) or (b, m), m >= 3, non-negative
+        One sample, or ``b`` samples fitted at once (one per row).
 
     Returns
     -------
-    xi, sigma : float
+    xi, sigma : float, or ndarray of shape (b,) for 2-D input
     """
-    x = np.sort(np.asarray(excesses, dtype=np.float64))
-    m = len(x)
+    x = np.sort(np.asarray(excesses, dtype=np.float64), axis=-1)
+    m = x.shape[-1]
     if m < 3:
         raise ValueError("at least 3 excesses are needed")
-    a0 = float(x.mean())
-    a1 = float(np.mean(x * (m - 1 - np.arange(m)) / (m - 1)))
+    a0 = x.mean(axis=-1)
+    a1 = np.mean(x * (m - 1 - np.arange(m)) / (m - 1), axis=-1)
     denom = a0 - 2.0 * a1
-    if a0 <= 0 or denom <= 0:
-        return 0.0, max(a0, 1e-12)
-    k = a0 / denom - 2.0
-    sigma = 2.0 * a0 * a1 / denom
-    xi = float(np.clip(-k, -0.5, 0.5))
-    return xi, max(float(sigma), 1e-12)
+    ok = (a0 > 0) & (denom > 0)
+    safe = np.where(ok, denom, 1.0)
+    xi = np.where(ok, np.clip(2.0 - a0 / safe, -0.5, 0.5), 0.0)
+    sigma = np.maximum(np.where(ok, 2.0 * a0 * a1 / safe, a0), 1e-12)
+    if x.ndim == 1:
+        return float(xi), float(sigma)
+    return xi, sigma
 
 
-def tail_threshold(scores: np.ndarray, alpha: float) -> Threshold:
+#: One-sided confidence of the bound an extrapolated threshold is set at, and the number of
+#: parametric bootstrap draws that estimate it (see :func:`tail_threshold`).
+TAIL_CONFIDENCE = 0.9
+TAIL_DRAWS = 400
+
+
+def tail_threshold(scores: np.ndarray, alpha: float, confidence: float = TAIL_CONFIDENCE,
+                   draws: int = TAIL_DRAWS, seed: int = 0) -> Threshold:
     """The threshold for false-alarm rate ``alpha``, extrapolated into the tail when needed.
 
     When the calibration set supports ``alpha`` this is :func:`conformal_threshold`. Below
     that (fewer than 1/alpha - 1 scores), the largest ``m`` scores (``TAIL_SHARE`` of them,
     within [TAIL_MIN, TAIL_MAX]) are taken as excesses over the next one, ``u``, fitted with
     a generalized Pareto distribution (peaks over threshold: Pickands 1975; Balkema & de Haan
-    1974), and the threshold is the point where the fitted tail leaves ``alpha``:
-    ``P(S > t) = (m / n) * P(excess > t - u) = alpha``. Never below the largest score.
+    1974); the fitted tail leaves ``alpha`` at ``P(S > t) = (m / n) * P(excess > t - u) =
+    alpha``. That point estimate misses often: on scores with Gumbel or normal tails its
+    realised rate averaged 2.5 to 8 times ``alpha`` (n = 200 to 500; the tail fitted on a few
+    dozen excesses). So the threshold is the upper ``confidence`` bound of that quantile,
+    by parametric bootstrap (Efron & Tibshirani 1993, "An Introduction to the Bootstrap",
+    ch. 6 and 13, percentile interval): ``draws`` samples of ``m`` excesses from the fitted
+    distribution are refitted the same way and the bound is the ``confidence`` quantile of
+    their estimates. It holds under the tail model only, and only approximately (measured
+    coverage of the 90% bound: 0.73 to 0.96 on Gumbel, normal and generalized Pareto
+    scores, n = 100 to 500; realised rate 0.2 to 1.5 times ``alpha``), so it is recorded as
+    a target at that confidence, never as a guarantee. Never below the point estimate nor
+    the largest score.
 
     Parameters
     ----------
     scores : ndarray, shape (n,)
     alpha : float in (0, 1)
+    confidence : float in (0, 1)
+        One-sided confidence of the bound; 0.5 is about the point estimate.
+    draws : int
+        Bootstrap samples.
+    seed : int
+        Seeds the bootstrap (the same scores always give the same threshold).
 
     Returns
     -------
     Threshold
-        ``method = "tail"`` with ``frames_short`` > 0 when extrapolated.
+        ``method = "tail"`` and ``confidence`` set when extrapolated (``frames_short`` > 0).
     """
     base = conformal_threshold(scores, alpha)
     s = np.sort(np.asarray(scores, dtype=np.float64))
@@ -229,9 +266,14 @@ def tail_threshold(scores: np.ndarray, alpha: float) -> Threshold:
     u = s[-m - 1]
     xi, sigma = gpd_fit(s[-m:] - u)
     p = alpha * n / m
-    value = float(u + genpareto.isf(p, xi, loc=0.0, scale=sigma))
-    value = max(value, float(s[-1]))
-    return Threshold(value, alpha, base.guaranteed, n, base.frames_short, "tail")
+    point = float(genpareto.isf(p, xi, loc=0.0, scale=sigma))
+    sims = genpareto.rvs(xi, loc=0.0, scale=sigma, size=(draws, m),
+                         random_state=np.random.default_rng(seed))
+    bx, bs = gpd_fit(sims)
+    bound = float(np.quantile(genpareto.isf(p, bx, loc=0.0, scale=bs), confidence))
+    value = max(u + max(point, bound), float(s[-1]))
+    return Threshold(value, alpha, base.guaranteed, n, base.frames_short, "tail",
+                     float(confidence))
 
 
 def alarms_to_alpha(alarms_per_day: float, times) -> tuple[float, float, int]:

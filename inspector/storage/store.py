@@ -183,6 +183,8 @@ class VersionInfo:
     false_alarms_added: int
     #: The rate a tail fit extrapolated the threshold to, beyond the guarantee (or None).
     extrapolated_target: float | None = None
+    #: The confidence of the extrapolated threshold under its tail fit (0: not recorded).
+    extrapolated_confidence: float = 0.0
     #: Share of the view the version does not look at (nan: learnt before it was recorded).
     masked: float = float("nan")
     #: Burned-in text boxes masked, [x0, y0, x1, y1] in frame pixels.
@@ -260,6 +262,7 @@ class Store:
                            false_alarm_rate=th.guaranteed if th else float("nan"),
                            false_alarms_added=m.get("false_alarm_frames", 0),
                            extrapolated_target=th.alpha if th and th.extrapolated else None,
+                           extrapolated_confidence=th.confidence if th else 0.0,
                            masked=m.get("masked", {}).get("share", float("nan")),
                            text_boxes=m.get("text_boxes", []))
 
