@@ -5,12 +5,22 @@ normal, and what matters is what is left behind: a parcel, a spill, a fallen pal
 passer-by is unusual at one place in one frame and somewhere else in the next; a left
 object is unusual at the same place frame after frame.
 
-The persistence map of frame t is, per cell, the minimum of the local anomaly maps of the
-last ``window`` frames of the camera's stream, frame t included: a running minimum, high
-only where every one of those frames was unusual at that cell (a grey-scale erosion along
-time by a flat element of ``window`` frames; Serra 1982, *Image Analysis and Mathematical
-Morphology*, from memory). A local map is the anomaly map (standardised, see
-:mod:`inspector.core.scoring`) less its median over the frame, so a change over the whole
+The persistence map of frame t is, per cell, a steady level of the local anomaly maps of
+the last ``window`` frames of the camera's stream, frame t included (:func:`steady_level`):
+with the cell's values over the window sorted, x(1) <= ... <= x(w), it is
+x(1) - (x(w-1) - x(1)), the lowest value less the spread of the window once its largest value
+is set aside. It is high only where every one of those frames was unusual at that cell
+(the lowest value: a grey-scale erosion along time by a flat element of ``window`` frames;
+Serra 1982, *Image Analysis and Mathematical Morphology*, from memory) *and* unusual in
+the same way: a thing that stays shows the same content at the cell frame after frame, so
+its anomaly hardly changes, while passers-by who happen to cover a cell in every frame of a
+window are different people, bodies and loads, and their anomaly jumps from frame to frame.
+This is the long-term / short-term split of abandoned-object detection (unusual against the
+normal appearance, unchanged against the last frames; Porikli, Ivanov & Haga 2008, "Robust
+abandoned object detection using dual foregrounds", from memory) taken on the anomaly maps
+themselves. Setting the largest value aside lets one passer-by walk in front of a left
+object within the window without hiding it. A local map is the anomaly map (standardised,
+see :mod:`inspector.core.scoring`) less its median over the frame, so a change over the whole
 view that the normal frames did not show (evening light, say) does not read as something
 left in one place; what is left covers far less than half the view. The frame score is the
 maximum, as for single frames (:func:`inspector.core.scoring.frame_scores`), and the
@@ -106,7 +116,7 @@ class PersistenceResult:
     Attributes
     ----------
     maps : ndarray, shape (n, h, w), float32
-        Persistence maps (running minimum over the window).
+        Persistence maps (:func:`steady_level` over the window).
     scores : ndarray, shape (n,), float64
         Their maxima.
     filled : ndarray, shape (n,), bool
@@ -138,7 +148,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     times : ndarray, shape (n,), float
         Capture times, seconds since the epoch, non-decreasing.
     window : int >= 1
-        Frames in the running minimum.
+        Frames in the window.
     max_gap : float > 0
         Seconds between two frames beyond which a new window starts.
     threshold : float, optional
@@ -175,7 +185,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf.append(maps[i])
         buf_t.append(float(times[i]))
         del buf[:-window], buf_t[:-window]
-        out[i] = np.min(buf, axis=0) if len(buf) > 1 else buf[0]
+        out[i] = steady_level(np.asarray(buf))
         filled[i] = len(buf) == window
         if threshold is not None:
             above = maps[i] > threshold
@@ -193,6 +203,28 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     state_out = StreamState(np.array(kept, np.float32).reshape(len(kept), *maps.shape[1:]),
                             np.array(kept_t, np.float64), onset, block)
     return PersistenceResult(out, frame_scores(out), filled, since, state_out)
+
+
+def steady_level(window_maps: np.ndarray) -> np.ndarray:
+    """Per cell, how unusual a window of local maps is in a steady way.
+
+    With the cell's values over the window sorted, x(1) <= ... <= x(m): the lowest value less
+    the spread of the others once the largest is set aside, x(1) - (x(m-1) - x(1)) (m >= 3;
+    x(1) for m <= 2). See the module notes for why.
+
+    Parameters
+    ----------
+    window_maps : ndarray, shape (m, h, w), float, m >= 1
+
+    Returns
+    -------
+    ndarray, shape (h, w), float32
+    """
+    m = np.asarray(window_maps, np.float32)
+    if len(m) <= 2:
+        return m.min(axis=0)
+    q = np.sort(m, axis=0)
+    return 2.0 * q[0] - q[-2]
 
 
 def local_maps(maps: np.ndarray) -> np.ndarray:
