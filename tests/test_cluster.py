@@ -129,6 +129,39 @@ def test_scan_on_the_cluster_writes_what_a_local_scan_writes(site, client, capsy
     assert sum(len(c) for c in loads.values()) <= 4
 
 
+def test_persistence_on_the_cluster_goes_across_partitions_as_in_one_pass(site, client):
+    # A camera with persistence on: an object left from the 5th frame on, in partitions of 3
+    # frames (its window of 4 spans two or three partitions), written in shuffled name
+    # order so that only capture times give the stream. The reference is the local scan.
+    root, cfg = site
+    busy = cfg.with_name("busy.toml")
+    busy.write_text(cfg.read_text(encoding="utf-8") + '\n[cameras.gate]\npersistence = "on"\n',
+                    encoding="utf-8")
+    rng = np.random.default_rng(5)
+    frames = noisy_copies(_scene(data.chelsea()), 12, rng)
+    frames[4:, 30:60, 40:80] = (20, 200, 40)
+    src = root / "new-busy"
+    for p in write_frames(src / "gate", frames, prefix="gate"):
+        p.rename(p.with_name(f"{rng.integers(1 << 30)}_{p.name}"))  # name order is not time
+    outs = []
+    for name, extra in (("busy-local", []), ("busy-remote", ["--scheduler",
+                                                             client.scheduler.address])):
+        store = root / f"store-{name}"
+        shutil.copytree(root / "store", store)
+        out = root / f"out-{name}"
+        assert main(["scan", str(src), "--store", str(store), "--config", str(busy),
+                     "--out", str(out), "--all-scores", str(out / "all.csv"), *extra]) == 0
+        outs.append(out)
+    assert _same_rows(outs[0] / "all.csv", outs[1] / "all.csv") == 12
+    flagged = _rows(outs[1] / "flagged.csv")
+    assert _same_rows(outs[0] / "flagged.csv", outs[1] / "flagged.csv") == len(flagged) >= 1
+    assert _same_rows(outs[0] / "events.csv", outs[1] / "events.csv") >= 1
+    assert all(r["overlay"] for r in flagged)  # images read again for the overlays
+    # Flagged from the object's 4th frame (the window's), never before it.
+    first = min(r["time"] for r in flagged)
+    assert first.startswith("2026-11-20T08:07")
+
+
 def test_a_worker_killed_mid_scan_loses_and_repeats_no_frame(site, client):
     root, cfg = site
     config = load_config(cfg)

@@ -87,6 +87,26 @@ def test_gap_and_new_block_start_a_new_window():
     assert not run.filled[6] and not run.filled[7] and run.filled[8]
 
 
+def test_a_late_frame_takes_its_place_in_the_stream():
+    # Frame 10 arrives after frame 11 (as across two watch batches). The reference is the
+    # stream in capture-time order: the late frame gets the window it has there, and every
+    # frame after it the same maps; only frame 11, scored before frame 10 was there, differs.
+    maps, times = _stream(20)
+    order = list(range(10)) + [11, 10] + list(range(12, 20))
+    ref = persistence(maps, times, 4, 10.0)
+    got = persistence(maps[order], times[order], 4, 10.0)
+    assert got.late.tolist() == [False] * 11 + [True] + [False] * 8
+    pos = {f: k for k, f in enumerate(order)}
+    for f in [*range(11), *range(12, 20)]:
+        np.testing.assert_allclose(got.maps[pos[f]], ref.maps[f], atol=1e-6)
+        assert got.filled[pos[f]] == ref.filled[f]
+    # A frame far older than anything kept (beyond the gap) is scored alone, not flagged,
+    # and leaves the stream as it was.
+    stale = persistence(np.concatenate([maps, maps[:1]]), np.append(times, -100.0), 4, 10.0)
+    assert stale.late[-1] and not stale.filled[-1]
+    np.testing.assert_allclose(stale.state.maps, ref.state.maps)
+
+
 def test_since_is_when_the_region_appeared():
     maps = np.zeros((8, 4, 4), np.float32)
     maps[3:, 1, 2] = 5.0           # something appears at frame 3 and stays

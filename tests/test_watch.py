@@ -504,3 +504,56 @@ def test_watch_and_events_sections_are_checked_when_the_config_is_loaded(tmp_pat
             load_config(bad)
         assert cli.main(["status", "--config", str(bad), "--store", str(tmp_path)]) == 2
     assert "workers" in capsys.readouterr().err
+
+
+def test_a_busy_camera_flags_what_stays_across_a_restart(env, capsys):
+    # Persistence on for dock (window 4): an object appears at frame 34 and stays. The first
+    # run ends after two of its frames; the stream's window survives the restart in the
+    # ledger, so the object's fourth frame (37) is flagged in the second run, with since =
+    # its first frame. Frame 31 arrives only in the second run, after later frames: it is
+    # scored, counted as late, and does not restart the stream. One worker keeps the order
+    # in which batches are scored fixed.
+    cfg = env["tmp"] / "busy.toml"
+    cfg.write_text(env["cfg"].read_text(encoding="utf-8").replace("workers = 2", "workers = 1")
+                   + '\n[cameras.dock]\npersistence = "on"\n', encoding="utf-8")
+    env = {**env, "cfg": cfg}
+    write_frames(env["src"], "dock", [30, 32, 33, 34, 35], anomalies={34, 35})
+    assert run_watch(env, None, 1.0) == 0
+    assert not csv_rows(env["out"] / "flagged.csv")
+    capsys.readouterr()
+    write_frames(env["src"], "dock", [31, 36, 37], anomalies={36, 37})
+    assert run_watch(env, None, 1.0) == 0
+    said = capsys.readouterr().out
+    assert "1 frames of dock: frames that arrived after later ones" in said
+    check_agree(env)
+    assert [r["frame"] for r in csv_rows(env["out"] / "flagged.csv")] == [
+        f"dock/{name('dock', 37)}"]
+    ev = csv_rows(env["out"] / "events.csv")
+    assert len(ev) == 1 and ev[0]["since"].endswith("00:00:34")
+
+
+def test_a_busy_frame_drawn_on_the_spot_is_scored_as_in_the_stream(env):
+    # The review page draws a missing overlay on the spot: for a camera with persistence it
+    # is the frame scored with the frames before it (jobs.scan.in_stream). The reference is
+    # the scan of the whole stream: the same score, persistence map and since.
+    from inspector.config import load_config
+    from inspector.jobs.scan import BaselineCache, in_stream
+    from inspector.storage.frames import discover
+    from inspector.storage.store import Store
+
+    cfg = env["tmp"] / "busy.toml"
+    cfg.write_text(env["cfg"].read_text(encoding="utf-8")
+                   + '\n[cameras.dock]\npersistence = "on"\n', encoding="utf-8")
+    write_frames(env["src"], "dock", range(30, 40), anomalies=set(range(33, 40)))
+    assert cli.main(["scan", str(env["src"]), "--store", str(env["store"]), "--config",
+                     str(cfg), "--out", str(env["out"]), "--all-scores", str(env["all"])]) == 0
+    scanned = {r["frame"]: r for r in csv_rows(env["all"])}
+    flagged = {r["frame"]: r for r in csv_rows(env["out"] / "flagged.csv")}
+    files = {f.rel: f for f in discover(env["src"])[0]}
+    baseline = BaselineCache(Store(env["store"])).get("dock")
+    for rel in (f"dock/{name('dock', 37)}", f"dock/{name('dock', 32)}"):
+        got = in_stream(baseline, load_config(cfg), files[rel], env["src"] / "dock")
+        assert got.score == pytest.approx(float(scanned[rel]["score"]), abs=1e-3)
+        assert got.flagged == (rel in flagged)
+    assert got.since is None and rel not in flagged  # frame 32: nothing has stayed yet
+    assert in_stream(baseline, load_config(env["cfg"]), files[rel], env["src"] / "dock") is None

@@ -33,7 +33,7 @@ A window only spans frames of one stretch of the stream: a gap longer than ``max
 seconds (or, at learn time, a new time block) starts a new window, and frames scored before
 a window is full are not flagged (they are counted, see :class:`PersistenceResult`). Each
 cell also keeps the capture time since which it has been above the persistence threshold,
-so a flagged region says how long it has stayed.
+so a flagged region says how long it has stayed (the median of its cells' times).
 
 Consecutive persistence scores are dependent; the conformal rate holds for the share of
 flagged normal frames over a long stationary stream, not frame by frame independently.
@@ -122,11 +122,16 @@ class PersistenceResult:
     filled : ndarray, shape (n,), bool
         The frame's window was full (only such frames may be flagged).
     since : ndarray, shape (n,), float64
-        Earliest capture time (seconds since the epoch) since which a cell of the frame's
-        persistent region (persistence map above the threshold) has stayed above it; NaN
-        when there is no such region or no threshold was given.
+        Capture time (seconds since the epoch) since which the frame's persistent region
+        (persistence map above the threshold) has stayed above it: the median over the
+        region's cells of the time since which each cell has been above it in every frame
+        (a median, so a few cells at its edge that noise held above a low threshold before
+        the thing came do not date it back); NaN when there is no such region or no
+        threshold was given.
     state : StreamState
         The state after the last frame.
+    late : ndarray, shape (n,), bool
+        The frame is older than a frame the stream had already taken (it arrived late).
     """
 
     maps: np.ndarray
@@ -134,6 +139,7 @@ class PersistenceResult:
     filled: np.ndarray
     since: np.ndarray
     state: StreamState
+    late: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
 
 
 def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float,
@@ -146,7 +152,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     maps : ndarray, shape (n, h, w), float
         Anomaly maps in capture-time order (made local with :func:`local_maps` here).
     times : ndarray, shape (n,), float
-        Capture times, seconds since the epoch, non-decreasing.
+        Capture times, seconds since the epoch, in the order the frames arrived: normally
+        non-decreasing. A frame older than one taken before it (a late arrival, under
+        ``watch``) is set among the kept frames in capture-time order: its window is the
+        ``window - 1`` frames kept before it, it counts as ``filled`` only when those are
+        there and no gap between them passes ``max_gap``, and it joins the windows of the
+        frames that come after it; the stream is not restarted.
     window : int >= 1
         Frames in the window.
     max_gap : float > 0
@@ -176,14 +187,36 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf, buf_t, onset = [], [], None  # another baseline's map size: start again
     out = np.empty_like(maps)
     filled = np.zeros(n, bool)
+    late = np.zeros(n, bool)
     since = np.full(n, np.nan)
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
-        if buf_t and (times[i] - buf_t[-1] > max_gap or times[i] < buf_t[-1] or b != block):
+        t = float(times[i])
+        if buf_t and t < buf_t[-1] and b == block:
+            # Older than the stream's last frame (it arrived late): it takes its place among
+            # the kept frames, its window being the frames kept before it; the stream's
+            # window and onsets stay those of its latest frame.
+            late[i] = True
+            pos = int(np.searchsorted(buf_t, t, side="right"))
+            win_t = buf_t[:pos][-(window - 1):] + [t] if window > 1 else [t]
+            out[i] = steady_level(np.asarray(buf[:pos][-(window - 1):] + [maps[i]]
+                                             if window > 1 else [maps[i]]))
+            filled[i] = len(win_t) == window and float(np.max(np.diff(win_t), initial=0.0)) \
+                <= max_gap
+            if pos or buf_t[0] - t <= max_gap:
+                buf.insert(pos, maps[i])
+                buf_t.insert(pos, t)
+                del buf[:-window], buf_t[:-window]
+            if threshold is not None and onset is not None:
+                region = out[i] > threshold
+                if region.any() and np.isfinite(onset[region]).any():
+                    since[i] = min(float(np.nanmedian(onset[region])), t)
+            continue
+        if buf_t and (t - buf_t[-1] > max_gap or t < buf_t[-1] or b != block):
             buf, buf_t, onset = [], [], None
         block = b
         buf.append(maps[i])
-        buf_t.append(float(times[i]))
+        buf_t.append(t)
         del buf[:-window], buf_t[:-window]
         out[i] = steady_level(np.asarray(buf))
         filled[i] = len(buf) == window
@@ -191,18 +224,18 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             above = maps[i] > threshold
             if onset is None:
                 onset = np.full(maps.shape[1:], np.nan)
-            onset = np.where(above, np.where(np.isnan(onset), times[i], onset), np.nan)
+            onset = np.where(above, np.where(np.isnan(onset), t, onset), np.nan)
             region = out[i] > threshold
             if region.any():
-                since[i] = float(np.nanmin(onset[region]))
+                since[i] = float(np.median(onset[region]))
     if not n:
         return PersistenceResult(out, np.zeros(0), filled, since,
-                                 state if state is not None else StreamState.empty())
+                                 state if state is not None else StreamState.empty(), late)
     keep = window - 1
     kept, kept_t = (buf[-keep:], buf_t[-keep:]) if keep else ([], [])
     state_out = StreamState(np.array(kept, np.float32).reshape(len(kept), *maps.shape[1:]),
                             np.array(kept_t, np.float64), onset, block)
-    return PersistenceResult(out, frame_scores(out), filled, since, state_out)
+    return PersistenceResult(out, frame_scores(out), filled, since, state_out, late)
 
 
 def steady_level(window_maps: np.ndarray) -> np.ndarray:

@@ -10,7 +10,11 @@ imported when one is named. The split of work:
   the driver replays each partition's record into the one :class:`ResultWriter` (CSV files,
   overlays, maps, ledger) in partition order, whatever order the workers finish in. A
   partition lost with its worker is computed again by Dask (``retries``) and its record is
-  read once, so no frame is lost or written twice.
+  read once, so no frame is lost or written twice. A camera that runs with persistence
+  (:class:`inspector.jobs.scan.Streams`) is cut in capture-time order, its partitions come
+  back with single-frame results, and the driver applies persistence to them as it replays
+  them, in stream order: the window and each region's ``since`` go across partitions as in
+  one pass (the image of a frame that persistence flags is read again for its overlay).
 * learn: one task per camera (:func:`inspector.jobs.learn.learn_camera`), each saving its
   version into the store, reports returned in camera order. A single camera is learnt with
   its model's passes over the frames in the workers instead (:class:`ClusterPool`; PPCA:
@@ -43,7 +47,14 @@ from inspector.config import LOCAL_SCHEDULER, ClusterSettings, Config
 from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.progress import progress_bar
-from inspector.jobs.scan import ScanSummary, read_args, scan_files
+from inspector.jobs.scan import (
+    ScanSummary,
+    Streams,
+    load_baseline,
+    read_args,
+    scan_files,
+    stream_order,
+)
 from inspector.storage.frames import FrameFile, read_frame
 from inspector.storage.results import Skipped
 from inspector.storage.store import Store
@@ -179,9 +190,22 @@ class Recorder:
             self.calls.append((slim, list(skipped), seen))
         return ["" for _ in slim]
 
-    def replay(self, writer) -> None:
-        """Make the recorded calls on ``writer``, in the order they were made."""
+    def replay(self, writer, streams=None, baseline: Baseline | None = None,
+               files: Sequence[FrameFile] = (), config: Config | None = None) -> None:
+        """Make the recorded calls on ``writer``, in the order they were made.
+
+        With ``streams`` and the partition's ``baseline``, its results (single-frame, in
+        stream order) get persistence first (:meth:`Streams.apply`, state carried from the
+        partitions replayed before); a frame it flags whose image was dropped is read again
+        from ``files``."""
+        by_rel = {f.rel: f for f in files}
         for results, skipped, seen in self.calls:
+            mine = [r for r in results if baseline is not None and r.model == baseline.version]
+            if streams is not None and mine and streams.on(baseline):
+                streams.apply(baseline, np.stack([r.amap for r in mine]), mine)
+                for r in mine:
+                    if r.flagged and not r.image.size:
+                        r.image = read_frame(by_rel[r.frame], **read_args(baseline, config)).image
             writer.write(results, skipped, seen)
 
 
@@ -214,21 +238,25 @@ def score_part(part: Part, root: str, config: Config, keep: int
         except FrameError:
             continue
     summary = scan_files(part.files, _Partition(baseline.continue_from(previous)), recorder,
-                         config)
+                         config, persist=False)  # persistence: in the driver's replay
     return recorder, summary.notes, summary.damaged
 
 
 # --- driver side -----------------------------------------------------------------------------
 
-def partitions(files: Sequence[FrameFile], store: Store, size: int) -> list[Part]:
+def partitions(files: Sequence[FrameFile], store: Store, size: int,
+               ordered: Sequence[str] = (), config: Config | None = None) -> list[Part]:
     """Cut frames into tasks: by camera (in order of first appearance, as a local scan goes),
-    then ``size`` consecutive frames of the camera's stream each."""
+    then ``size`` consecutive frames of the camera's stream each; the cameras in ``ordered``
+    (those with persistence) in capture-time order, as a local scan takes them."""
     by_camera: dict[str, list[FrameFile]] = {}
     for f in files:
         by_camera.setdefault(f.camera, []).append(f)
     parts = []
     for camera, cam_files in by_camera.items():
         version = store.active_version(camera)
+        if camera in ordered:
+            cam_files = stream_order(cam_files, config)
         for i in range(0, len(cam_files), size):
             before = cam_files[max(0, i - size):i][::-1]
             parts.append(Part(camera, version, cam_files[i:i + size], before))
@@ -249,7 +277,14 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
     store = baselines.store
     settings = settings or cluster_settings(config)
     started = time.perf_counter()
-    parts = partitions(list(files), store, settings.partition)
+    files = list(files)
+    streams = Streams(config)
+    persisting: dict[str, Baseline] = {}
+    for camera in dict.fromkeys(f.camera for f in files):
+        baseline, _ = load_baseline(baselines, camera, {})
+        if baseline is not None and streams.on(baseline):
+            persisting[camera] = baseline
+    parts = partitions(files, store, settings.partition, list(persisting), config)
     root = str(Path(store.root).resolve())
     ahead = max(4, 3 * sum(client.nthreads().values()))
     notes: Counter[str] = Counter()
@@ -279,13 +314,15 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
                                              "was lost (allowed-failures reached)")
                     for f in part.files])
             else:
-                recorder.replay(writer)
+                recorder.replay(writer, streams, persisting.get(part.camera), part.files,
+                                config)
                 notes.update(part_notes)
                 damaged.update(part_damaged)
             finally:
                 future.release()
             bar.update(len(part.files))
             submit()
+    streams.note(notes)
     return ScanSummary(scored=writer.counts["scored"], flagged=writer.counts["flagged"],
                        skipped=writer.counts["skipped"] + writer.counts["waiting"],
                        health=writer.counts["health"],

@@ -17,6 +17,7 @@ from inspector.config import Config
 from inspector.core.baseline import Baseline, Evaluation
 from inspector.core.calibration import conformal_p_values
 from inspector.core.persistence import StreamState, persistence, persistence_on
+from inspector.errors import FrameError
 from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import (
     Frame,
@@ -24,6 +25,7 @@ from inspector.storage.frames import (
     capture_time,
     discover,
     iter_batches,
+    read_frame,
 )
 from inspector.storage.results import FrameResult, ResultWriter, Skipped
 from inspector.storage.store import DamagedBaseline, Store
@@ -107,8 +109,11 @@ class Streams:
     The persistence mode comes from the camera's config (``[persistence] mode``; "auto"
     follows what ``learn`` measured). A frame of such a camera gets the persistence score,
     threshold, p-value and map instead of its single-frame ones, and ``since``; frames
-    before the window is full are not flagged and counted in ``filling``. With a ledger,
-    the state survives a restart (watch).
+    before the window is full are not flagged and counted in ``filling``. A frame older
+    than one the stream already took (it arrived late, under ``watch``) takes its place
+    among the kept frames (see :func:`inspector.core.persistence.persistence`); one too
+    late for a full window is counted in ``late``. With a ledger, the state survives a
+    restart (watch).
     """
 
     def __init__(self, config: Config, ledger=None):
@@ -117,6 +122,7 @@ class Streams:
         self._states: dict[str, tuple[str, StreamState]] = {}
         self._lock = threading.Lock()
         self.filling: Counter[str] = Counter()
+        self.late: Counter[str] = Counter()
 
     def on(self, baseline: Baseline) -> bool:
         """Whether ``baseline``'s camera is flagged by persistence."""
@@ -151,7 +157,16 @@ class Streams:
             if np.isfinite(run.since[i]):
                 r.since = datetime.fromtimestamp(run.since[i], tz=r.time.tzinfo)
             if not run.filled[i]:
-                self.filling[cam] += 1
+                (self.late if run.late[i] else self.filling)[cam] += 1
+
+    def note(self, notes: Counter) -> None:
+        """Add to a summary's ``notes`` the frames not flagged for want of a full window."""
+        for cam, n in self.filling.items():
+            notes[f"{cam}: first frames of a run, not flagged while the persistence "
+                  f"window fills"] += n
+        for cam, n in self.late.items():
+            notes[f"{cam}: frames that arrived after later ones, too late for a full "
+                  f"persistence window, not flagged"] += n
 
 
 @dataclass
@@ -189,11 +204,14 @@ def load_baseline(baselines: BaselineCache, camera: str, damaged: dict[str, str]
 
 
 def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: ResultWriter,
-               config: Config, workers: int = 2, total: int | None = None) -> ScanSummary:
+               config: Config, workers: int = 2, total: int | None = None,
+               persist: bool = True) -> ScanSummary:
     """Score frame files (any cameras) into ``writer``; nothing is dropped silently.
 
     A camera without a usable baseline (none, or a damaged one) has its frames recorded
-    with the reason; the other cameras are scored as usual.
+    with the reason; the other cameras are scored as usual. ``persist=False`` leaves every
+    frame with its single-frame result (a cluster partition: the driver applies persistence
+    in stream order, see :mod:`inspector.jobs.cluster`).
     """
     started = time.perf_counter()
     summary = ScanSummary()
@@ -210,9 +228,7 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                 bar.update(len(cam_files))
                 continue
             if streams.on(baseline):  # a stream goes forward in capture time
-                formats = config.camera(camera).frames.time_formats
-                cam_files = sorted(cam_files, key=lambda f: (capture_time(f.path, formats),
-                                                             f.rel))
+                cam_files = stream_order(cam_files, config)
             # Decoding, preparation, health measures and the model run in the worker
             # threads, batch by batch; the stream-ordered rest (frozen feed, thresholds)
             # and the writing here, in order.
@@ -223,17 +239,48 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                                           for f, err in batch.errors])
                 for frame in batch.frames:
                     summary.notes.update(f"{camera}: {n}" for n in frame.notes)
-                writer.write(score_frames(baseline, batch.frames, batch.result, streams))
+                writer.write(score_frames(baseline, batch.frames, batch.result,
+                                          streams if persist else None))
                 bar.update(len(batch.frames) + len(batch.errors))
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]
     summary.skipped = writer.counts["skipped"] + writer.counts["waiting"]
     summary.health = writer.counts["health"]
     summary.seconds = time.perf_counter() - started
-    for cam, n in streams.filling.items():
-        summary.notes[f"{cam}: first frames of a run, not flagged while the persistence "
-                      f"window fills"] += n
+    streams.note(summary.notes)
     return summary
+
+
+def in_stream(baseline: Baseline, config: Config, file: FrameFile, folder: Path
+              ) -> FrameResult | None:
+    """One frame scored as a scan of its camera's stream scores it, when the camera runs
+    with persistence: with the frames before it among the frame files under ``folder``
+    (the camera's) filling its window; None for a camera without persistence. For a picture
+    drawn on the spot (the review page). Raises FrameError when ``file`` cannot be read;
+    an earlier frame that cannot be read is left out, as a scan leaves it out."""
+    streams = Streams(config)
+    if not streams.on(baseline):
+        return None
+    here = file.path.resolve()
+    stream = discover(folder, file.camera)[0] if folder.is_dir() else []
+    ordered = stream_order([f for f in stream if f.path.resolve() != here] + [file], config)
+    k = next(i for i, f in enumerate(ordered) if f is file)
+    frames = []
+    for f in ordered[max(0, k - baseline.persistence.window + 1):k]:
+        try:
+            frames.append(read_frame(f, **read_args(baseline, config)))
+        except FrameError:
+            continue
+    frames.append(read_frame(file, **read_args(baseline, config)))
+    return score_frames(baseline.continue_from(None), frames, streams=streams)[-1]
+
+
+def stream_order(files: Sequence[FrameFile], config: Config) -> list[FrameFile]:
+    """One camera's frame files in capture-time order (then by name), as a stream goes."""
+    if not files:
+        return []
+    formats = config.camera(files[0].camera).frames.time_formats
+    return sorted(files, key=lambda f: (capture_time(f.path, formats), f.rel))
 
 
 def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, config: Config,

@@ -135,6 +135,7 @@ class Watcher:
         self.report.seconds = time.perf_counter() - t0
         with self._lock:
             self.report.damaged = dict(self._damaged)
+            self.streams.note(self.report.notes)
         return self.report
 
     def _loop(self) -> None:

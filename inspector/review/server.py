@@ -61,7 +61,7 @@ from inspector.config import Config
 from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.compare import COMPARE_FRAMES, compare_versions, version_rows
-from inspector.jobs.scan import BaselineCache, read_args
+from inspector.jobs.scan import BaselineCache, in_stream, read_args
 from inspector.review.data import (
     UNREVIEWED,
     Item,
@@ -421,10 +421,19 @@ def drawn_picture(r: Review, item: Item, path: Path, kind: str) -> bytes:
     with r.compute:  # one model evaluation at a time on a 2-core machine
         if kind == "expected":
             return _encode(b.model.expected(b.prepare(image_[None]))[0], ".png")
-        s = b.score(image_[None])
-    threshold = float(s.thresholds[0]) if s.thresholds is not None else b.threshold.value
-    caption = overlay_caption(item.camera, iso_time(item.time), float(s.scores[0]), threshold)
-    _ok, buf = cv2.imencode(".jpg", render_overlay(image_, s.maps[0], threshold, caption),
+        # A camera with persistence: its region over the frames before it, as scanned.
+        kept = in_stream(b, r.config, FrameFile(path, item.rel, item.camera),
+                         r.results.source / item.camera)
+        s = b.score(image_[None]) if kept is None else None
+    if kept is not None:
+        amap, score, threshold = kept.amap, kept.score, kept.threshold
+        stayed = (kept.time - kept.since).total_seconds() if kept.since else None
+    else:
+        amap, score = s.maps[0], float(s.scores[0])
+        threshold = float(s.thresholds[0]) if s.thresholds is not None else b.threshold.value
+        stayed = None
+    caption = overlay_caption(item.camera, iso_time(item.time), score, threshold, stayed)
+    _ok, buf = cv2.imencode(".jpg", render_overlay(image_, amap, threshold, caption),
                            [cv2.IMWRITE_JPEG_QUALITY, 90])
     return buf.tobytes()
 
