@@ -14,6 +14,7 @@ and the share of left objects flagged within 5 frames of appearing, with the med
 (frames after the first one the object is in; 0 = flagged when it appears).
 
     python bench/busy.py [--normal 300] [--new 240] [--seeds 1,2,3] [--size 960x540]
+                         [--camera gate]
 """
 
 from __future__ import annotations
@@ -32,7 +33,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import PersistenceSettings, load_config  # noqa: E402
 from inspector.core.calibration import rate_interval  # noqa: E402
-from inspector.demo.scenario import generate, load_truth  # noqa: E402
+from inspector.demo.scenario import BUSY_CAMERAS, generate, load_truth  # noqa: E402
 from inspector.demo.traffic import busy_results  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
@@ -53,9 +54,10 @@ def evaluate(truth: list[tuple[str, str, str]], flagged: set[str], camera: str) 
     return r
 
 
-def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int]) -> dict[str, dict]:
+def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int],
+        camera: str = CAMERA) -> dict[str, dict]:
     scenario = generate(root / "frames", seed=seed, normal_per_camera=normal,
-                        new_per_camera=new, size=size, cameras=(CAMERA,))
+                        new_per_camera=new, size=size, cameras=(camera,))
     config = load_config(None)
     store = Store(root / "store")
     files, _ = discover(scenario.normal)
@@ -70,7 +72,7 @@ def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int]) -> 
         run_scan(scenario.new, cfg, store, results)
         with open(results / "flagged.csv", newline="", encoding="utf-8") as fh:
             flagged = {r["frame"] for r in csv.DictReader(fh)}
-        out[mode] = evaluate(truth, flagged, CAMERA)
+        out[mode] = evaluate(truth, flagged, camera)
     return out
 
 
@@ -96,6 +98,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--new", type=int, default=240)
     ap.add_argument("--seeds", default="1,2,3", help="one scene per seed, comma-separated")
     ap.add_argument("--size", default="960x540")
+    ap.add_argument("--camera", default=CAMERA, choices=sorted(BUSY_CAMERAS),
+                    help="which busy camera of the depot (walkway is the demo's own)")
     args = ap.parse_args(argv)
     size = tuple(int(v) for v in args.size.split("x"))
     seeds = [int(v) for v in args.seeds.split(",")]
@@ -103,8 +107,8 @@ def main(argv: list[str] | None = None) -> int:
     found: dict[int, dict[str, dict]] = {}
     for seed in seeds:
         with tempfile.TemporaryDirectory(prefix="inspector-busy-") as tmp:
-            found[seed] = run(Path(tmp), args.normal, args.new, seed, size)
-    print(f"\nbusy camera {CAMERA!r}, {len(seeds)} scene(s) (seeds {args.seeds}), {args.normal} "
+            found[seed] = run(Path(tmp), args.normal, args.new, seed, size, args.camera)
+    print(f"\nbusy camera {args.camera!r}, {len(seeds)} scene(s) (seeds {args.seeds}), {args.normal} "
           f"normal and {args.new} new frames each, default settings, alpha as configured:")
     print(f"{'persistence':<16} {'traffic-only frames flagged':<36} "
           f"{'left objects flagged within ' + str(WITHIN) + ' frames':<36} median delay")

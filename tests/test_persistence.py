@@ -100,6 +100,13 @@ def test_a_late_frame_takes_its_place_in_the_stream():
     for f in [*range(11), *range(12, 20)]:
         np.testing.assert_allclose(got.maps[pos[f]], ref.maps[f], atol=1e-6)
         assert got.filled[pos[f]] == ref.filled[f]
+    # A whole batch late (frames 0-7 after 8-19, as when two watch workers finish in the
+    # other order): its frames make windows among themselves, as in the ordered stream.
+    order = list(range(8, 20)) + list(range(8))
+    got = persistence(maps[order], times[order], 4, 10.0)
+    assert got.late.tolist() == [False] * 12 + [True] * 8
+    np.testing.assert_allclose(got.maps[12 + 3:], ref.maps[3:8], atol=1e-6)
+    assert got.filled[12 + 3:].all() and not got.filled[12:12 + 3].any()
     # A frame far older than anything kept (beyond the gap) is scored alone, not flagged,
     # and leaves the stream as it was.
     stale = persistence(np.concatenate([maps, maps[:1]]), np.append(times, -100.0), 4, 10.0)

@@ -155,9 +155,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         Capture times, seconds since the epoch, in the order the frames arrived: normally
         non-decreasing. A frame older than one taken before it (a late arrival, under
         ``watch``) is set among the kept frames in capture-time order: its window is the
-        ``window - 1`` frames kept before it, it counts as ``filled`` only when those are
-        there and no gap between them passes ``max_gap``, and it joins the windows of the
-        frames that come after it; the stream is not restarted.
+        ``window - 1`` frames before it, kept or late like it (a late run of frames makes
+        windows of its own), it counts as ``filled`` only when those are there and no gap
+        between them passes ``max_gap``, and it joins the windows of the frames that come
+        after it; the stream is not restarted.
     window : int >= 1
         Frames in the window.
     max_gap : float > 0
@@ -188,21 +189,24 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     out = np.empty_like(maps)
     filled = np.zeros(n, bool)
     late = np.zeros(n, bool)
+    late_buf: list[np.ndarray] = []
+    late_t: list[float] = []
     since = np.full(n, np.nan)
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
         t = float(times[i])
         if buf_t and t < buf_t[-1] and b == block:
-            # Older than the stream's last frame (it arrived late): it takes its place among
-            # the kept frames, its window being the frames kept before it; the stream's
-            # window and onsets stay those of its latest frame.
+            # Older than the stream's last frame (it arrived late): its window is the frames
+            # before it, kept or late like it (a whole late batch makes windows of its own);
+            # it takes its place among the kept frames, and the stream's window and onsets
+            # stay those of its latest frame.
             late[i] = True
             pos = int(np.searchsorted(buf_t, t, side="right"))
-            win_t = buf_t[:pos][-(window - 1):] + [t] if window > 1 else [t]
-            out[i] = steady_level(np.asarray(buf[:pos][-(window - 1):] + [maps[i]]
-                                             if window > 1 else [maps[i]]))
-            filled[i] = len(win_t) == window and float(np.max(np.diff(win_t), initial=0.0)) \
-                <= max_gap
+            if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
+                late_buf, late_t = buf[:pos], buf_t[:pos]
+            late_buf, late_t = (late_buf + [maps[i]])[-window:], (late_t + [t])[-window:]
+            out[i] = steady_level(np.asarray(late_buf))
+            filled[i] = len(late_t) == window and float(np.max(np.diff(late_t))) <= max_gap
             if pos or buf_t[0] - t <= max_gap:
                 buf.insert(pos, maps[i])
                 buf_t.insert(pos, t)
@@ -212,6 +216,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 if region.any() and np.isfinite(onset[region]).any():
                     since[i] = min(float(np.nanmedian(onset[region])), t)
             continue
+        late_buf, late_t = [], []
         if buf_t and (t - buf_t[-1] > max_gap or t < buf_t[-1] or b != block):
             buf, buf_t, onset = [], [], None
         block = b
