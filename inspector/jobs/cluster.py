@@ -45,6 +45,7 @@ import numpy as np
 
 from inspector.config import LOCAL_SCHEDULER, ClusterSettings, Config
 from inspector.core.baseline import Baseline
+from inspector.core.persistence import persistence_on
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.progress import progress_bar
 from inspector.jobs.scan import (
@@ -244,6 +245,18 @@ def score_part(part: Part, root: str, config: Config, keep: int
 
 # --- driver side -----------------------------------------------------------------------------
 
+def persists(store: Store, config: Config, camera: str) -> bool:
+    """Whether the camera's active baseline runs with persistence, from its recorded
+    settings alone (the driver loads only those baselines)."""
+    version = store.active_version(camera)
+    try:
+        saved = store.metadata(camera, version).get("persistence") if version else None
+    except (OSError, ValueError, LookupError):
+        return False
+    return saved is not None and persistence_on(bool(saved.get("busy")),
+                                                config.camera(camera).persistence.mode)
+
+
 def partitions(files: Sequence[FrameFile], store: Store, size: int,
                ordered: Sequence[str] = (), config: Config | None = None) -> list[Part]:
     """Cut frames into tasks: by camera (in order of first appearance, as a local scan goes),
@@ -279,11 +292,12 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
     started = time.perf_counter()
     files = list(files)
     streams = Streams(config)
-    persisting: dict[str, Baseline] = {}
+    persisting: dict[str, Baseline] = {}  # loaded here only for cameras with persistence
     for camera in dict.fromkeys(f.camera for f in files):
-        baseline, _ = load_baseline(baselines, camera, {})
-        if baseline is not None and streams.on(baseline):
-            persisting[camera] = baseline
+        if persists(store, config, camera):
+            baseline, _ = load_baseline(baselines, camera, {})
+            if baseline is not None and streams.on(baseline):
+                persisting[camera] = baseline
     parts = partitions(files, store, settings.partition, list(persisting), config)
     root = str(Path(store.root).resolve())
     ahead = max(4, 3 * sum(client.nthreads().values()))
