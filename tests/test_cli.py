@@ -162,6 +162,24 @@ def test_usage_errors_exit_2_with_one_line(learnt, capsys, args, message):
     assert "generating" not in said.out  # refused before any work
 
 
+def test_scan_says_what_a_new_user_got_wrong(learnt, capsys):
+    """One camera's folder given as SOURCE, a store without the baselines, an empty folder:
+    each run ends with one line saying so and what to do (the frames are in skipped.csv)."""
+    root, cfg = learnt
+    (root / "nothing").mkdir(exist_ok=True)
+    said = {}
+    for name, source, store in (("loose", "normal/gate", "store"),
+                                ("unlearnt", "normal", "store-empty"),
+                                ("empty", "nothing", "store")):
+        assert main(["scan", str(root / source), "--store", str(root / store), "--config",
+                     str(cfg), "--out", str(root / f"out-{name}")]) == 0
+        said[name] = capsys.readouterr().out
+    assert "outside any camera folder: 40 files directly in SOURCE" in said["loose"]
+    assert "no baseline for gate, yard (80 frames not scored" in said["unlearnt"]
+    assert "no frames found under" in said["empty"]
+    assert "no baseline" not in said["loose"] + said["empty"]
+
+
 def test_review_on_an_address_it_cannot_listen_on_exits_2_with_one_line(learnt, capsys):
     root, cfg = learnt
     assert main(["scan", str(root / "normal"), "--store", str(root / "store"), "--config",

@@ -107,3 +107,12 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     if getattr(summary, "damaged", None):
         say("damaged baselines (no frame of these cameras is scored until this is fixed): "
             + "; ".join(summary.damaged[c] for c in sorted(summary.damaged)))
+    waiting = getattr(summary, "no_baseline", {})
+    missing = sorted(set(waiting) - set(getattr(summary, "damaged", {})))
+    if missing:
+        say(f"no baseline for {', '.join(missing)} ({sum(waiting[c] for c in missing)} frames "
+            "not scored, in skipped.csv): learn first ('inspector learn'), or name the store "
+            "that has the baselines with --store")
+    if getattr(summary, "loose", 0):
+        say(f"outside any camera folder: {summary.loose} files directly in SOURCE (frames go "
+            "in SOURCE/<camera>/...; if SOURCE is one camera's folder, scan the folder above it)")

@@ -13,6 +13,7 @@ from inspector.cli.common import (
     cluster,
     report_scan,
     resolve,
+    say,
 )
 
 
@@ -40,4 +41,6 @@ def cmd_scan(args: argparse.Namespace) -> int:
         summary = run_scan(args.source, config, store, out, args.all_scores, args.maps,
                            rescore=args.rescore, client=client)
     report_scan(summary, out, args.all_scores)
+    if not (summary.scored or summary.skipped or summary.unchanged):
+        say(f"no frames found under {str(args.source)!r} (one subfolder per camera)")
     return 0

@@ -184,6 +184,10 @@ class ScanSummary:
     unchanged_older: int = 0
     #: Cameras whose active baseline is damaged: the message, with what to do.
     damaged: dict[str, str] = field(default_factory=dict)
+    #: Frames not scored for want of a usable baseline, per camera (damaged ones included).
+    no_baseline: dict[str, int] = field(default_factory=dict)
+    #: Files directly in SOURCE, outside any camera folder.
+    loose: int = 0
 
     @property
     def rate(self) -> float:
@@ -311,6 +315,8 @@ def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, co
     active = {c: baselines.store.active_version(c) for c in {r["camera"] for r in done.values()}}
     for camera in sorted(active.keys() - {f.camera for f in files}):
         load_baseline(baselines, camera, summary.damaged)  # all its frames were left out
+    summary.no_baseline = dict(writer.waiting)
+    summary.loose = sum(not s.camera for s in skips)
     summary.unchanged_older = sum(r["version"] != active[r["camera"]] for r in done.values())
     return summary
 

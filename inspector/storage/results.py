@@ -23,6 +23,7 @@ import io
 import json
 import os
 import threading
+from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
@@ -234,6 +235,8 @@ class ResultWriter:
         self.all_scores = _Csv(Path(all_scores), COLUMNS, append) if all_scores else None
         self._names: set[tuple[str, str]] = set()
         self.counts = {"scored": 0, "flagged": 0, "skipped": 0, "waiting": 0, "health": 0}
+        #: Frames recorded as waiting for a usable baseline, per camera.
+        self.waiting: Counter = Counter()
 
     # --- writing ---------------------------------------------------------------------------
 
@@ -276,6 +279,8 @@ class ResultWriter:
                 if self._csv_skip(s):
                     self.skipped.row((s.frame, s.camera, s.reason))
                 self.counts["waiting" if s.waiting else "skipped"] += 1
+                if s.waiting:
+                    self.waiting[s.camera] += 1
             if self.ledger is not None:
                 self.ledger.mark_written(e["path"] for e in entries if e["written"] == 0)
         return overlays
