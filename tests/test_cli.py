@@ -180,6 +180,19 @@ def test_scan_says_what_a_new_user_got_wrong(learnt, capsys):
     assert "no baseline" not in said["loose"] + said["empty"]
 
 
+def test_learn_checks_every_camera_before_learning_any(learnt, capsys):
+    root, _ = learnt
+    cfg = root / "badmask.toml"
+    cfg.write_text('[frames]\nlong_side = 64\n[cameras.yard]\nmask_image = "nothere.png"\n',
+                   encoding="utf-8")
+    store = root / "store-badmask"
+    assert main(["learn", str(root / "normal"), "--store", str(store), "--config",
+                 str(cfg)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "[cameras.yard] mask_image 'nothere.png' is not a readable image" in err
+    assert not (store / "gate").exists()  # gate, listed first, was not learnt meanwhile
+
+
 def test_review_on_an_address_it_cannot_listen_on_exits_2_with_one_line(learnt, capsys):
     root, cfg = learnt
     assert main(["scan", str(root / "normal"), "--store", str(root / "store"), "--config",

@@ -36,7 +36,7 @@ def register(sub) -> None:
 
 
 def cmd_learn(args: argparse.Namespace) -> int:
-    from inspector.jobs.learn import learn_camera
+    from inspector.jobs.learn import check_camera, learn_camera
 
     config, store = resolve(args)
     check_source(args.source, store.root)
@@ -64,6 +64,7 @@ def cmd_learn(args: argparse.Namespace) -> int:
         extra: dict = {}
         if args.add_false_alarms:
             cam_files, extra = _with_false_alarms(store, camera, cam_files)
+        check_camera(cam_files, cfg)  # every camera's mistakes before any learning
         previous[camera] = store.active_version(camera)
         tasks.append({"files": cam_files, "cfg": cfg, "store": store,
                       "activate": not args.no_activate, "extra": extra})

@@ -240,9 +240,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     started = now()
     fs = cfg.frames
     camera = cfg.name
-    if len(files) < MIN_FRAMES:
-        raise UsageError(f"camera {camera}: {len(files)} normal frames found, at least "
-                         f"{MIN_FRAMES} are needed to learn a baseline")
+    check_camera(files, cfg)
     times = [capture_time(f.path, fs.time_formats) for f in files]
     order = np.argsort([t.timestamp() for t in times], kind="stable")
     files = [files[i] for i in order]
@@ -473,15 +471,29 @@ def _common_resolution(files: Sequence[FrameFile]) -> tuple[int, int]:
     return sizes.most_common(1)[0][0]
 
 
-def _mask(cfg: CameraConfig, source_size: tuple[int, int], size: tuple[int, int]):
-    image = None
-    if cfg.mask.image:
-        path = Path(cfg.mask.image)
-        image = None
-        if path.is_file():
-            import cv2
+def check_camera(files: Sequence[FrameFile], cfg: CameraConfig) -> None:
+    """Raise the UsageError :func:`learn_camera` would raise before any work: too few
+    frames, or a mask image that cannot be read (``learn`` checks every camera first)."""
+    if len(files) < MIN_FRAMES:
+        raise UsageError(f"camera {cfg.name}: {len(files)} normal frames found, at least "
+                         f"{MIN_FRAMES} are needed to learn a baseline")
+    _mask_image(cfg)
 
-            image = cv2.imread(str(path), cv2.IMREAD_GRAYSCALE)
-        if image is None:
-            raise UsageError(f"[cameras.{cfg.name}] mask_image {str(path)!r} is not a readable image")
-    return rasterize_mask(cfg.mask.polygons, image, source_size, size)
+
+def _mask_image(cfg: CameraConfig) -> np.ndarray | None:
+    """The camera's configured mask image (grey), None when there is none."""
+    if not cfg.mask.image:
+        return None
+    path = Path(cfg.mask.image)
+    image = None
+    if path.is_file():
+        import cv2
+
+        image = cv2.imread(str(path), cv2.IMREAD_GRAYSCALE)
+    if image is None:
+        raise UsageError(f"[cameras.{cfg.name}] mask_image {str(path)!r} is not a readable image")
+    return image
+
+
+def _mask(cfg: CameraConfig, source_size: tuple[int, int], size: tuple[int, int]):
+    return rasterize_mask(cfg.mask.polygons, _mask_image(cfg), source_size, size)
