@@ -53,6 +53,7 @@ from sklearn.metrics import roc_auc_score
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import Config  # noqa: E402
+from inspector.core.calibration import rate_interval  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
@@ -446,6 +447,13 @@ def report(rows, altered, masked: dict[str, str], title: str) -> dict:
         line(c, [r for r in rows if r["camera"] == c], [a for a in altered if a["camera"] == c],
              masked.get(c, ""))
     line("pooled", rows, altered)
+    normal = [r for r in rows if r["kind"] == "none"]
+    k = sum(r["flagged"] for r in normal)
+    low, high = rate_interval(k, len(normal))
+    figures["pooled"]["false_alarms"] = (k, len(normal))
+    print(f"\nfalse alarms on normal frames: {k}/{len(normal)} = {k / max(len(normal), 1):.2%} "
+          f"(95 % interval {low:.2%}-{high:.2%}; asked for alpha {Config().calibration.alpha:.0%}, "
+          f"target 0.3-1.5 %)")
     print(f"\n{'kind':<9}{'image AUROC':>12}{'TPR':>7}   (each kind against the same normal frames)")
     normal = [r for r in rows if r["kind"] == "none"]
     for k in KINDS:
@@ -470,7 +478,9 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--cameras", default="yard,counter,pad")
     ap.add_argument("--normal", type=int, default=120, help="normal training frames per camera")
-    ap.add_argument("--scan", type=int, default=60, help="normal frames to scan per camera")
+    ap.add_argument("--scan", type=int, default=300,
+                    help="normal frames to scan per camera (the false-alarm rate at alpha "
+                         "1 %% needs several hundred pooled to be told from 0 or 2 %%)")
     ap.add_argument("--incidents", type=int, default=40, help="incident frames per camera")
     ap.add_argument("--altered", type=int, default=5, help="altered normal frames per kind")
     ap.add_argument("--models", default="ppca")

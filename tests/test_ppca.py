@@ -100,6 +100,26 @@ def test_patch_features_layout_luma_then_half_resolution_chroma():
     np.testing.assert_allclose(X[0, 1, :64], 0.0, atol=1 / 255)
 
 
+def _scipy_nll(model, X):
+    """-log N(x_o; mu_o, C_oo) per sample and location from SciPy, with the model's
+    covariance in feature units: C = D^-1 (W W^T + sigma^2 I) D^-1, D weighing the chroma
+    entries by ``chroma_weight_`` (scipy.stats.multivariate_normal)."""
+    d = X.shape[2]
+    D = np.ones(d)
+    D[64:] = model.chroma_weight_
+    out = np.empty(X.shape[:2])
+    for loc in range(X.shape[1]):
+        W = model.W_[loc].astype(np.float64)
+        C = (W @ W.T + model.sigma2_[loc] * np.eye(d)) / np.outer(D, D)
+        o = np.ones(d, bool) if model.observed_ is None else model.observed_[loc]
+        if not o.any():  # a fully masked location has no density to compare
+            out[:, loc] = np.nan
+            continue
+        out[:, loc] = -multivariate_normal(model.mean_[loc][o].astype(np.float64),
+                                           C[np.ix_(o, o)]).logpdf(X[:, loc][:, o])
+    return out
+
+
 def test_fast_scoring_path_equals_the_reference_formula():
     # The scoring path gathers residuals in grey levels with the mean subtracted on the way;
     # it must give the likelihood of ppca_nll (checked above against scikit-learn and SciPy).
@@ -109,9 +129,8 @@ def test_fast_scoring_path_equals_the_reference_formula():
     model = PatchPPCA(patch=8, stride=4, latent=3)
     model.fit(ArraySource(imgs, folds=3))
     X = patch_features(imgs[:4], 8, 4, colour=True)
-    ref = ppca_nll(X.astype(np.float64), model.mean_.astype(np.float64), model.W_,
-                   model.sigma2_)
-    np.testing.assert_allclose(model.patch_nll(imgs[:4]), ref, rtol=2e-4, atol=2e-2)
+    np.testing.assert_allclose(model.patch_nll(imgs[:4]), _scipy_nll(model, X),
+                               rtol=2e-4, atol=2e-2)
     centered = patch_features(imgs[:4], 8, 4, True, center=model.mean_)
     np.testing.assert_allclose(centered, X - model.mean_[None], atol=1e-6)
 
@@ -128,9 +147,10 @@ def test_block_scoring_with_a_mask_equals_the_reference_formula():
     model.fit(ArraySource(imgs, folds=3), mask)
     assert model._blocks is not None and model.observed_ is not None
     X = patch_features(imgs[:5], 8, 4, colour=True)
-    ref = ppca_nll(X.astype(np.float64), model.mean_.astype(np.float64), model.W_,
-                   model.sigma2_, model.observed_)
-    np.testing.assert_allclose(model.patch_nll(imgs[:5]), ref, rtol=2e-4, atol=2e-2)
+    ref = _scipy_nll(model, X)
+    seen = np.isfinite(ref[0])
+    np.testing.assert_allclose(model.patch_nll(imgs[:5])[:, seen], ref[:, seen],
+                               rtol=2e-4, atol=2e-2)
 
 
 def test_expected_patches_unchanged_by_the_block_order():
@@ -199,3 +219,34 @@ def test_masked_fit_is_the_ppca_of_the_observed_features():
     np.testing.assert_allclose(-model.patch_nll(imgs[100:])[:, 0], ref, rtol=1e-4)
     maps = model.score_maps(imgs[100:])
     assert np.all(maps[:, 2:, 4:] == 0)  # cells of the fully masked location
+
+
+def test_chroma_weight_recovers_group_noise_like_factor_analysis():
+    # Samples from C = W W^T + diag(s_l I, s_c I): luminance noise 16 times the chroma noise.
+    # scikit-learn's FactorAnalysis (per-entry noise by maximum likelihood) gives the noise of
+    # each group; the one-step weight must agree with it and with the truth (c = 4), and the
+    # weighted model must give held-out samples a higher likelihood than plain PPCA (SciPy).
+    from sklearn.decomposition import FactorAnalysis
+
+    from inspector.core.models.ppca import chroma_weight, weigh_chroma
+
+    rng = np.random.default_rng(11)
+    n_luma, d, q = 16, 24, 2
+    W = rng.normal(size=(d, q))
+    noise = np.r_[np.full(n_luma, 0.16), np.full(d - n_luma, 0.01)]
+    X = rng.normal(size=(6000, q)) @ W.T + rng.normal(size=(6000, d)) * np.sqrt(noise)
+    train, test = X[:3000], X[3000:]
+    cov = np.cov(train.T)[None]
+    c = chroma_weight(cov, n_luma, latent=q)
+    fa = FactorAnalysis(n_components=q, random_state=0).fit(train).noise_variance_
+    c_fa = np.sqrt(fa[:n_luma].mean() / fa[n_luma:].mean())
+    assert c == pytest.approx(4.0, rel=0.1) and c == pytest.approx(c_fa, rel=0.1)
+    mean = train.mean(0)
+    D = np.r_[np.ones(n_luma), np.full(d - n_luma, c)]
+    Ww, s2w = ppca_fit(weigh_chroma(cov.copy(), n_luma, c), q)
+    weighted = (Ww[0] @ Ww[0].T + s2w[0] * np.eye(d)) / np.outer(D, D)
+    Wp, s2p = ppca_fit(cov, q)
+    plain = Wp[0] @ Wp[0].T + s2p[0] * np.eye(d)
+    ll = [multivariate_normal(mean, C).logpdf(test).mean() for C in (weighted, plain)]
+    assert ll[0] > ll[1] + 1.0
+    assert chroma_weight(cov[:, :n_luma, :n_luma], n_luma, latent=q) == 1.0  # no chroma

@@ -45,6 +45,10 @@ from inspector.core.features import (
 from inspector.core.models.base import DensityModel, FrameSource, HeldOut
 
 LOG_2PI = float(np.log(2.0 * np.pi))
+#: Pixels averaged into one chroma entry of a patch feature (a 2x2 block, 4:2:0 layout of
+#: :mod:`inspector.core.features`): the variance floor of a chroma entry is a quarter of a
+#: luminance entry's.
+CHROMA_PIXELS = 4
 #: Locations per chunk when gathering scatter and forming covariances (bounds temporaries).
 CHUNK = 256
 
@@ -156,6 +160,89 @@ def choose_latent(evals: np.ndarray, explained: float, max_latent: int) -> int:
     frac = np.cumsum(evals, axis=1) / np.maximum(evals.sum(axis=1, keepdims=True), 1e-20)
     q_loc = (frac < explained).sum(axis=1) + 1
     return int(np.clip(np.median(q_loc), 1, max_latent))
+
+
+def chroma_weight(cov: np.ndarray, n_luma: int, latent: int,
+                  observed: np.ndarray | None = None, var_floor: float = 0.0,
+                  explained_variance: float = 0.9, max_latent: int = 24,
+                  every: int = 8, max_steps: int = 10, tol: float = 1e-3) -> float:
+    """Scale of the chroma entries under which one isotropic noise fits luma and chroma.
+
+    PPCA gives every entry the same noise variance sigma^2, the mean of the discarded
+    eigenvalues. Luminance left over by the latent dimensions (fine texture under jitter,
+    compression) is far larger than what is left of the chroma, so sigma^2 is set by the
+    luminance and a change of colour is judged against luminance noise. The model used
+    instead has one noise variance per channel group, ``C = W W^T + diag(s_l I, s_c I)``
+    (a factor analysis whose noise is tied within each group; Rubin & Thayer 1982, "EM
+    algorithms for ML factor analysis", Psychometrika 47(1)). With the chroma entries
+    multiplied by ``c = sqrt(s_l / s_c)`` it is again a PPCA, fitted in closed form. ``c``
+    is found by alternating from equal noise: fit the PPCA to the weighted covariance, take
+    each group's mean residual variance ``diag(S - W W^T)``, floored at the noise that never
+    vanishes (``var_floor`` bounds the noise of one pixel; a chroma entry is the mean of
+    :data:`CHROMA_PIXELS` pixels, so its floor is ``var_floor / CHROMA_PIXELS``, and with
+    no other evidence ``c = sqrt(CHROMA_PIXELS)``), and multiply ``c`` by the square
+    root of their ratio, the median over locations (every ``every``-th fully observed
+    one), until it changes by less than ``tol``: one weight for the camera.
+
+    Parameters
+    ----------
+    cov : ndarray, shape (L, d, d)
+        Sample covariance of each location, luminance entries first.
+    n_luma : int
+        Number of luminance entries; the other d - n_luma are chroma.
+    latent, observed, var_floor, explained_variance, max_latent
+        As in :func:`ppca_fit`.
+    every : int
+        Step between the locations used (the weight is one median for the camera).
+    max_steps : int
+    tol : float
+        Relative change of ``c`` at which the alternation stops.
+
+    Returns
+    -------
+    float
+        ``c`` > 0; 1 when there is no chroma.
+    """
+    L, d, _ = cov.shape
+    if n_luma >= d:
+        return 1.0
+    use = np.arange(L) if observed is None else np.flatnonzero(observed.all(axis=1))
+    use = use[::max(1, int(every))]
+    if not len(use):
+        return 1.0
+    part = np.asarray(cov[use], np.float64)
+    floor = max(float(var_floor), 1e-12)
+    c = 1.0
+    for _ in range(max_steps):
+        weighted = weigh_chroma(part.copy(), n_luma, c)
+        W, _ = ppca_fit(weighted, latent, None, var_floor, explained_variance, max_latent)
+        rest = np.diagonal(weighted, axis1=1, axis2=2) - (W * W).sum(axis=2)
+        luma = np.maximum(rest[:, :n_luma].mean(axis=1), floor)
+        chroma = np.maximum(rest[:, n_luma:].mean(axis=1), floor * c * c / CHROMA_PIXELS)
+        step = float(np.sqrt(np.median(luma / chroma)))
+        c *= step
+        if abs(step - 1.0) < tol:
+            break
+    return c
+
+
+def weigh_chroma(cov: np.ndarray, n_luma: int, c: float) -> np.ndarray:
+    """``D cov D`` with ``D = diag(1, .., 1, c, .., c)`` (chroma entries scaled by ``c``),
+    in place (no copy of the largest array of a fit).
+
+    Parameters
+    ----------
+    cov : ndarray, shape (..., d, d), float, writable
+
+    Returns
+    -------
+    ndarray
+        ``cov``.
+    """
+    if c != 1.0:
+        cov[..., n_luma:, :] *= c
+        cov[..., :, n_luma:] *= c
+    return cov
 
 
 def heldout_latent(evals: np.ndarray, evecs: np.ndarray, second: np.ndarray, max_latent: int,
@@ -400,6 +487,11 @@ class PatchPPCA(DensityModel):
         and the final model alike (with fewer than three time blocks, "variance").
     explained_variance : float
     max_latent : int
+    chroma_noise : {"own", "shared"}
+        "own": chroma entries have their own noise variance, set from the training frames
+        (:func:`chroma_weight`), so a change of colour is judged against colour noise, not
+        against the larger luminance noise; "shared": one noise variance for all entries
+        (plain PPCA).
     var_floor : float
         Lower bound on each location's noise variance sigma^2, in squared [0, 1] intensity
         units. The default 1e-4 (a standard deviation of about 2.5 grey levels) keeps flat or
@@ -419,6 +511,11 @@ class PatchPPCA(DensityModel):
     mean_ : ndarray, shape (L, d)
     W_ : ndarray, shape (L, d, q)
     sigma2_ : ndarray, shape (L,)
+        Noise variance in the weighted units (chroma entries multiplied by
+        ``chroma_weight_``).
+    chroma_weight_ : float
+        Factor applied to the chroma entries of the residual before the PPCA (1 for
+        "shared" noise or without colour).
     observed_ : ndarray, shape (L, d), bool, or None
     grid_ : (int, int)
         Patch grid (rows, columns); L = rows * columns.
@@ -430,13 +527,14 @@ class PatchPPCA(DensityModel):
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
                  batch_size: int = 64, calibrate_from: float = 0.4,
-                 latent_rule: str = "variance"):
+                 latent_rule: str = "variance", chroma_noise: str = "own"):
         self.patch = patch
         self.stride = stride
         self.colour = colour
         self.latent = latent
         self.explained_variance = explained_variance
         self.latent_rule = latent_rule
+        self.chroma_noise = chroma_noise
         self.max_latent = max_latent
         self.var_floor = var_floor
         self.batch_size = batch_size
@@ -478,6 +576,8 @@ class PatchPPCA(DensityModel):
             Raw maps of the frames of the scored blocks, each from the model fitted on the
             blocks before its own.
         """
+        if self.chroma_noise not in ("own", "shared"):
+            raise ValueError(f"chroma_noise must be 'own' or 'shared', not {self.chroma_noise!r}")
         w, h = source.size
         self.grid_ = grid_shape(h, w, self.patch, self.stride)
         L = self.grid_[0] * self.grid_[1]
@@ -555,9 +655,19 @@ class PatchPPCA(DensityModel):
 
     def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
         """W and sigma^2 from a covariance, with ``latent`` dimensions when given, else
-        ``self.latent``, else chosen by explained variance from the covariance alone."""
+        ``self.latent``, else chosen by explained variance from the covariance alone.
+        Sets ``chroma_weight_`` from ``cov`` and weighs ``cov`` with it (in place)."""
+        self.chroma_weight_ = self._chroma_weight(cov)
+        cov = weigh_chroma(cov, self.patch * self.patch, self.chroma_weight_)
         return ppca_fit(cov, latent or self.latent, self.observed_, self.var_floor,
                         self.explained_variance, self.max_latent)
+
+    def _chroma_weight(self, cov: np.ndarray) -> float:
+        """:func:`chroma_weight` of a covariance, or 1 ("shared" noise, no colour)."""
+        if self.chroma_noise != "own" or not self.colour:
+            return 1.0
+        return chroma_weight(cov, self.patch * self.patch, self.latent, self.observed_,
+                             self.var_floor, self.explained_variance, self.max_latent)
 
     def _wants_sums(self) -> bool:
         """Whether the latent size is chosen from the moments of the blocks (copies of the
@@ -589,6 +699,9 @@ class PatchPPCA(DensityModel):
             weights = full.astype(np.float64)
             cov_a = cov_a * full[:, None, None]
             second = second * full[:, None, None]
+        c = self._chroma_weight(cov_a)
+        cov_a = weigh_chroma(cov_a, self.patch * self.patch, c)
+        second = weigh_chroma(second, self.patch * self.patch, c)
         evals, evecs = batched_eigh(cov_a)
         evals = np.clip(evals[:, ::-1], 0.0, None)
         evecs = np.ascontiguousarray(evecs[:, :, ::-1])
@@ -603,7 +716,14 @@ class PatchPPCA(DensityModel):
     def _prepare(self) -> None:
         B, logdet, d_obs = ppca_precompute(self.W_, self.sigma2_, self.observed_)
         self._mean_grey = self.mean_ * np.float32(255)
-        self._logdet, self._d_obs = logdet, d_obs
+        # The density of the unweighted features: the weighting's Jacobian c^(chroma
+        # entries observed) enters log|C| (Jacobian of a linear change of variables).
+        c = float(getattr(self, "chroma_weight_", 1.0))
+        p2 = self.patch * self.patch
+        n_chroma = (self.observed_[:, p2:].sum(axis=1) if self.observed_ is not None
+                    else np.full(len(d_obs), d_obs.max() - p2 if self.colour else 0))
+        self._logdet = logdet - 2.0 * np.log(c) * n_chroma
+        self._d_obs = d_obs
         r = self.patch // self.stride
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
         B = B.astype(np.float32)
@@ -625,8 +745,17 @@ class PatchPPCA(DensityModel):
         # to the per-location sums instead of the whole array).
         R = patch_features(images, self.patch, self.stride, self.colour,
                            center=self._mean_grey, scale=1.0)
+        self._weigh(R)
         return _nll(R, None, self._b(), self.sigma2_, self._logdet, self._d_obs,
                     self.observed_, unit=1 / 255)
+
+    def _weigh(self, R: np.ndarray, inverse: bool = False) -> np.ndarray:
+        """Chroma entries of features ``R`` (..., d) multiplied (divided, ``inverse``) by
+        ``chroma_weight_``, in place; returns ``R``."""
+        c = float(getattr(self, "chroma_weight_", 1.0))
+        if c != 1.0:
+            R[..., self.patch * self.patch:] *= np.float32(1.0 / c if inverse else c)
+        return R
 
     def score_maps(self, images: np.ndarray) -> np.ndarray:
         """Raw anomaly maps: patch NLL averaged onto cells, shape (n, h, w), float32.
@@ -646,17 +775,19 @@ class PatchPPCA(DensityModel):
         what the scene looks like at that place, pulled toward normal appearance.
         """
         X = patch_features(images, self.patch, self.stride, self.colour)
-        R = (X - self.mean_[None]).transpose(1, 0, 2)
+        R = self._weigh(X - self.mean_[None]).transpose(1, 0, 2)
         if self.observed_ is not None:
             R = R * self.observed_[:, None, :]
         B = self._b()
-        proj = np.matmul(np.matmul(R, B), B.transpose(0, 2, 1))  # W M^-1 W^T r
+        proj = self._weigh(np.matmul(np.matmul(R, B), B.transpose(0, 2, 1)),  # W M^-1 W^T r
+                           inverse=True)
         Xhat = (proj.transpose(1, 0, 2) + self.mean_[None]).astype(np.float32)
         return _unpatch(Xhat, images.shape[1:3], self.grid_, self.patch, self.stride,
                         self.colour)
 
     def learned(self) -> dict[str, Any]:
         return {"latent": self.q_, "grid": list(self.grid_), "frames": self.n_frames_,
+                "chroma_weight": round(float(getattr(self, "chroma_weight_", 1.0)), 4),
                 "masked_locations": int((self._d_obs == 0).sum())}
 
     # persistence
@@ -664,7 +795,8 @@ class PatchPPCA(DensityModel):
     def save(self, directory: Path) -> None:
         arrays = {"mean": self.mean_, "W": self.W_.astype(np.float32),
                   "sigma2": self.sigma2_, "grid": np.array(self.grid_),
-                  "n_frames": np.array(self.n_frames_)}
+                  "n_frames": np.array(self.n_frames_),
+                  "chroma_weight": np.array(float(getattr(self, "chroma_weight_", 1.0)))}
         if self.observed_ is not None:
             arrays["observed"] = self.observed_
         np.savez(Path(directory) / "ppca.npz", **arrays)  # floats hardly compress
@@ -679,6 +811,8 @@ class PatchPPCA(DensityModel):
             model.grid_ = tuple(int(v) for v in z["grid"])
             model.n_frames_ = int(z["n_frames"])
             model.observed_ = z["observed"] if "observed" in z.files else None
+            model.chroma_weight_ = (float(z["chroma_weight"]) if "chroma_weight" in z.files
+                                    else 1.0)
         model.q_ = model.W_.shape[2]
         model._prepare()
         return model
@@ -750,8 +884,9 @@ class _BlockLayout:
     norm the sum of its blocks' squared norms.
     """
 
-    def __init__(self, B, perm, mean, observed, grid, r, stride, colour):
+    def __init__(self, B, perm, mean, observed, grid, r, stride, colour, chroma_weight=1.0):
         self.B, self.perm, self.mean, self.observed = B, perm, mean, observed
+        self.chroma_weight = float(chroma_weight)
         self.grid, self.r, self.stride, self.colour = grid, r, stride, colour
 
     def feature_order(self) -> np.ndarray:
@@ -797,7 +932,7 @@ class _BlockLayout:
         parts = [np.ascontiguousarray(B[:, perm[k * e:(k + 1) * e], :]).reshape(gh, gw, e, q)
                  for k in range(r * r)]
         return cls(parts, perm, mean, None if obs.all() else obs.astype(np.float32), (gh, gw),
-                   r, s, colour)
+                   r, s, colour, getattr(model, "chroma_weight_", 1.0))
 
     def blocks(self, images: np.ndarray) -> np.ndarray:
         """Observed residuals of every block in grey levels, shape (bh, bw, n, e) float32."""
@@ -814,6 +949,8 @@ class _BlockLayout:
             src = chroma[:, :bh * hs, :bw * hs].reshape(n, bh, hs, bw, hs, 2)
             np.copyto(dst, src.transpose(1, 3, 0, 5, 2, 4))
         out -= self.mean[:, :, None, :]
+        if self.chroma_weight != 1.0:
+            out[..., s * s:] *= np.float32(self.chroma_weight)
         if self.observed is not None:
             out *= self.observed[:, :, None, :]
         return out
@@ -876,4 +1013,4 @@ def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: i
 
 
 __all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "choose_latent",
-           "heldout_latent", "Moments"]
+           "heldout_latent", "chroma_weight", "weigh_chroma", "Moments"]
