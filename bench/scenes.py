@@ -484,8 +484,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--incidents", type=int, default=40, help="incident frames per camera")
     ap.add_argument("--altered", type=int, default=5, help="altered normal frames per kind")
     ap.add_argument("--models", default="ppca")
-    ap.add_argument("--latent-rule", default="variance", choices=["variance", "heldout"],
-                    help="PPCA latent_rule (default: the tool's default)")
+    ap.add_argument("--latent-rule", default=Config().model.latent_rule,
+                    choices=["variance", "heldout"], help="PPCA latent_rule (default: the tool's)")
+    ap.add_argument("--chroma-noise", default=Config().model.chroma_noise,
+                    choices=["shared", "own"], help="PPCA chroma_noise (default: the tool's)")
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--out", type=Path, default=None, help="keep the frames and results here")
     ap.add_argument("--small", action="store_true", help="a smoke run (one camera, few frames)")
@@ -538,7 +540,8 @@ def run(root: Path, args: argparse.Namespace) -> int:
         t1 = time.perf_counter()
         base = Config()
         config = dataclasses.replace(base, model=dataclasses.replace(
-            base.model, model=model, latent_rule=args.latent_rule))
+            base.model, model=model, latent_rule=args.latent_rule,
+            chroma_noise=args.chroma_noise))
         store = Store(root / f"store-{model}")
         files, _ = discover(root / "frames" / "normal")
         masked = {}
@@ -555,7 +558,8 @@ def run(root: Path, args: argparse.Namespace) -> int:
         rows = scored(out, out / "maps", "scan", cams, truth, work_size)
         altered = scored(alt_out, alt_out / "maps", "altered", cams, truth, work_size)
         report(rows, altered, masked,
-               f"{model}: default settings (latent_rule {args.latent_rule}), no masks (learn {t2 - t1:.0f} s, scan "
+               f"{model}: default settings (latent_rule {args.latent_rule}, chroma_noise "
+               f"{args.chroma_noise}), no masks (learn {t2 - t1:.0f} s, scan "
                f"{t3 - t2:.0f} s; seed {args.seed}; load {os.getloadavg()[0]:.1f})")
     return 0
 

@@ -71,6 +71,10 @@ class ModelSettings:
     #: under which the earlier time blocks best predict the latest (PPCA only).
     latent_rule: str = "variance"
     max_latent: int = 24
+    #: "shared": one noise variance for luminance and chroma (plain PPCA); "own": chroma
+    #: has its own, fitted from the normal frames, so a change of colour is judged against
+    #: colour noise (PPCA only).
+    chroma_noise: str = "shared"
 
 
 @dataclass(frozen=True)
@@ -438,6 +442,8 @@ def _check_model(m: ModelSettings, where: str) -> None:
         raise UsageError(f"{where} model = {m.model!r}: choose one of {', '.join(MODEL_NAMES)}")
     if m.latent_rule not in ("variance", "heldout"):
         raise UsageError(f"{where} latent_rule = {m.latent_rule!r}: choose variance or heldout")
+    if m.chroma_noise not in ("shared", "own"):
+        raise UsageError(f"{where} chroma_noise = {m.chroma_noise!r}: choose shared or own")
     if m.patch % 2 or m.stride % 2 or m.patch % m.stride:
         raise UsageError(
             f"{where} patch = {m.patch}, stride = {m.stride}: both must be even and the "

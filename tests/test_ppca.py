@@ -126,9 +126,10 @@ def test_fast_scoring_path_equals_the_reference_formula():
     rng = np.random.default_rng(5)
     base = cv2.GaussianBlur(rng.integers(0, 255, size=(24, 40, 3)).astype(np.float32), (0, 0), 1)
     imgs = np.clip(base + rng.normal(0, 5, (30, 24, 40, 3)), 0, 255).astype(np.uint8)
-    model = PatchPPCA(patch=8, stride=4, latent=3)
+    model = PatchPPCA(patch=8, stride=4, latent=3, chroma_noise="own")
     model.fit(ArraySource(imgs, folds=3))
     X = patch_features(imgs[:4], 8, 4, colour=True)
+    assert model.chroma_weight_ != 1.0  # the weighted path is the one checked
     np.testing.assert_allclose(model.patch_nll(imgs[:4]), _scipy_nll(model, X),
                                rtol=2e-4, atol=2e-2)
     centered = patch_features(imgs[:4], 8, 4, True, center=model.mean_)
@@ -143,7 +144,7 @@ def test_block_scoring_with_a_mask_equals_the_reference_formula():
     imgs = np.clip(base + rng.normal(0, 5, (40, 32, 48, 3)), 0, 255).astype(np.uint8)
     mask = np.zeros((32, 48), bool)
     mask[3:13, 5:22] = True  # not aligned with the blocks
-    model = PatchPPCA(patch=8, stride=4, latent=4)
+    model = PatchPPCA(patch=8, stride=4, latent=4, chroma_noise="own")
     model.fit(ArraySource(imgs, folds=3), mask)
     assert model._blocks is not None and model.observed_ is not None
     X = patch_features(imgs[:5], 8, 4, colour=True)

@@ -459,7 +459,8 @@ def _model_params(cfg: CameraConfig) -> dict:
     m = cfg.model
     return {"patch": m.patch, "stride": m.stride, "colour": cfg.frames.colour,
             "latent": m.latent, **({"explained_variance": m.explained_variance,
-                                    "max_latent": m.max_latent, "latent_rule": m.latent_rule}
+                                    "max_latent": m.max_latent, "latent_rule": m.latent_rule,
+                                    "chroma_noise": m.chroma_noise}
                                    if m.model == "ppca" else {})}
 
 

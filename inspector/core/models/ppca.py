@@ -49,6 +49,10 @@ LOG_2PI = float(np.log(2.0 * np.pi))
 #: :mod:`inspector.core.features`): the variance floor of a chroma entry is a quarter of a
 #: luminance entry's.
 CHROMA_PIXELS = 4
+#: The held-out latent size (one for all locations) is chosen from every this-many-th
+#: location: the summed held-out likelihood of a regular sample of the locations, at an
+#: eighth of the eigendecompositions and of the copies of the moments it needs.
+HELDOUT_EVERY = 8
 #: Locations per chunk when gathering scatter and forming covariances (bounds temporaries).
 CHUNK = 256
 
@@ -432,15 +436,19 @@ class Moments:
         self.total_scatter += T
         return self
 
-    def sums(self, before: int | None = None) -> tuple[float, np.ndarray, np.ndarray]:
-        """Count, sum (L, d) and scatter (L, d, d) about ``shift`` of all samples, or of
-        blocks 0 .. ``before`` - 1 (needs ``block_scatter``); copies."""
+    def sums(self, before: int | None = None, every: int = 1
+             ) -> tuple[float, np.ndarray, np.ndarray]:
+        """Count, sum (L', d) and scatter (L', d, d) about ``shift`` of all samples, or of
+        blocks 0 .. ``before`` - 1 (needs ``block_scatter``), at every ``every``-th location
+        (L' = ceil(L / every)); copies."""
+        loc = slice(None, None, max(1, int(every)))
         if before is None:
-            return float(self.count.sum()), self.sum.sum(axis=0), self.total_scatter.copy()
+            return (float(self.count.sum()), self.sum[:, loc].sum(axis=0),
+                    self.total_scatter[loc].copy())
         if self.scatter is None:
             raise ValueError("a subset of the blocks needs Moments(block_scatter=True)")
-        return (float(self.count[:before].sum()), self.sum[:before].sum(axis=0),
-                self.scatter[:before].sum(axis=0))
+        return (float(self.count[:before].sum()), self.sum[:before, loc].sum(axis=0),
+                self.scatter[:before, loc].sum(axis=0))
 
     def mean_cov(self, leave_out: int | None = None, before: int | None = None
                  ) -> tuple[np.ndarray, np.ndarray, int]:
@@ -527,7 +535,7 @@ class PatchPPCA(DensityModel):
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
                  batch_size: int = 64, calibrate_from: float = 0.4,
-                 latent_rule: str = "variance", chroma_noise: str = "own"):
+                 latent_rule: str = "variance", chroma_noise: str = "shared"):
         self.patch = patch
         self.stride = stride
         self.colour = colour
@@ -605,13 +613,14 @@ class PatchPPCA(DensityModel):
                     continue
                 m_k, c_k, _ = moments.mean_cov(before=k)
                 fold = copy.copy(self)
-                q = self._heldout_q(moments.sums(before=k - 1) if k > 1 else None,
-                                    moments.sums(before=k))
+                q = self._heldout_q(moments.sums(k - 1, HELDOUT_EVERY) if k > 1 else None,
+                                    moments.sums(k, HELDOUT_EVERY))
                 fold._set(m_k, *fold._fit_params(c_k, q))
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
-            self._last_split = ((moments.sums(before=len(labels) - 1) if len(labels) > 1
-                                 else None), moments.sums())
+            self._last_split = ((moments.sums(len(labels) - 1, HELDOUT_EVERY)
+                                 if len(labels) > 1 else None),
+                                moments.sums(every=HELDOUT_EVERY))
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
@@ -641,7 +650,7 @@ class PatchPPCA(DensityModel):
                 if b != current:  # a new block: fit the model of everything before it
                     current = b
                     ready = b >= first and moments.count.sum() >= 2
-                    now = moments.sums() if self._wants_sums() else None
+                    now = moments.sums(every=HELDOUT_EVERY) if self._wants_sums() else None
                     if ready:
                         m_k, c_k, _ = moments.mean_cov()
                         self._set(m_k, *self._fit_params(c_k, self._heldout_q(earlier, now)))
@@ -650,7 +659,8 @@ class PatchPPCA(DensityModel):
                     held.append((idx[sel], self.score_maps(images[sel])))
                 moments.add(int(b), patch_features(varied[sel], self.patch, self.stride,
                                                    self.colour))
-        self._last_split = (earlier, moments.sums() if self._wants_sums() else None)
+        self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
+                            if self._wants_sums() else None)
         return moments, [held]
 
     def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -662,12 +672,17 @@ class PatchPPCA(DensityModel):
         return ppca_fit(cov, latent or self.latent, self.observed_, self.var_floor,
                         self.explained_variance, self.max_latent)
 
-    def _chroma_weight(self, cov: np.ndarray) -> float:
-        """:func:`chroma_weight` of a covariance, or 1 ("shared" noise, no colour)."""
+    def _chroma_weight(self, cov: np.ndarray, every: int = 8) -> float:
+        """:func:`chroma_weight` of a covariance (of every ``HELDOUT_EVERY``-th location when
+        ``every`` is 1), or 1 ("shared" noise, no colour)."""
         if self.chroma_noise != "own" or not self.colour:
             return 1.0
-        return chroma_weight(cov, self.patch * self.patch, self.latent, self.observed_,
-                             self.var_floor, self.explained_variance, self.max_latent)
+        observed = self.observed_
+        if observed is not None and every == 1:
+            observed = observed[::HELDOUT_EVERY]
+        return chroma_weight(cov, self.patch * self.patch, self.latent, observed,
+                             self.var_floor, self.explained_variance, self.max_latent,
+                             every=every)
 
     def _wants_sums(self) -> bool:
         """Whether the latent size is chosen from the moments of the blocks (copies of the
@@ -695,11 +710,11 @@ class PatchPPCA(DensityModel):
                   ) / n_b + m_a[:, :, None] * m_a[:, None, :]
         weights = None
         if self.observed_ is not None:  # partly masked locations are left out of the choice
-            full = self.observed_.all(axis=1)
+            full = self.observed_[::HELDOUT_EVERY].all(axis=1)
             weights = full.astype(np.float64)
             cov_a = cov_a * full[:, None, None]
             second = second * full[:, None, None]
-        c = self._chroma_weight(cov_a)
+        c = self._chroma_weight(cov_a, every=1)
         cov_a = weigh_chroma(cov_a, self.patch * self.patch, c)
         second = weigh_chroma(second, self.patch * self.patch, c)
         evals, evecs = batched_eigh(cov_a)
