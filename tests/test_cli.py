@@ -145,6 +145,7 @@ def test_learn_one_camera_recursively_and_warn_about_a_small_calibration_set(lea
     (["scan", "{root}/normal", "--store", "{root}/small.toml"], "is not a folder"),
     (["demo", "--out", "{root}/small.toml"], "the demo needs a folder"),
     (["demo", "--out", "{root}/d", "--seed", "-1"], "--seed must be 0 or more"),
+    (["status", "--out", "{root}/nowhere"], "--out '{root}/nowhere' is not a folder"),
 ])
 def test_usage_errors_exit_2_with_one_line(learnt, capsys, args, message):
     root, _ = learnt
@@ -158,6 +159,7 @@ def test_usage_errors_exit_2_with_one_line(learnt, capsys, args, message):
     assert main(argv) == 2
     said = capsys.readouterr()
     err = said.err.strip()
+    message = message.format(root=root)
     assert message in err and len(err.splitlines()) == 1 and "Traceback" not in err
     assert "generating" not in said.out  # refused before any work
 

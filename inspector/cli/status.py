@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 
 from inspector.cli.common import add_common, resolve, say
+from inspector.errors import UsageError
 from inspector.jobs.status import camera_facts, format_table
 
 
@@ -22,6 +23,9 @@ def register(sub) -> None:
 
 def cmd_status(args: argparse.Namespace) -> int:
     config, store = resolve(args)
+    if args.out is not None and not args.out.is_dir():
+        raise UsageError(f"--out {str(args.out)!r} is not a folder (a results folder written "
+                         "by 'inspector scan' or 'inspector watch')")
     out = args.out or Path(config.paths.out)
     facts = camera_facts(store, out / "health.csv", config)
     if not facts:
