@@ -1,7 +1,8 @@
 """Benchmark: a busy camera scanned with persistence on and off, side by side, in one run.
 
-The camera is the depot's ``gate`` (:data:`inspector.demo.scenario.BUSY_CAMERAS`): a view the
-demo never shows, with people and pallet trucks passing in about half of the frames, normal
+The camera is the depot's ``gate`` (:data:`inspector.demo.scenario.BUSY_CAMERAS`), or with
+``--camera yard`` a gravel yard whose ground is a photograph bundled with scikit-image: views
+the demo never shows, with people and pallet trucks passing in about half of the frames, normal
 and new alike, and in the frames to scan one object per burst (a parcel or a spill) left on
 the floor for 15 frames. The baseline is learnt once with default settings; the frames to
 scan are then scored with ``[persistence] mode`` "on" and "off". Each seed draws another

@@ -210,6 +210,8 @@ def test_bench_busy_smoke(capsys):
     spec.loader.exec_module(bench)
     # Clopper-Pearson upper bound for 0 of n: 1 - (alpha / 2) ** (1 / n) (closed form).
     assert rate_interval(0, 30)[1] == pytest.approx(1 - 0.025 ** (1 / 30))
-    assert bench.main(["--normal", "30", "--new", "30", "--size", "128x72", "--seeds", "1"]) == 0
+    # The yard camera: ground from scikit-image's bundled gravel photograph.
+    assert bench.main(["--normal", "30", "--new", "30", "--size", "128x72", "--seeds", "1",
+                       "--camera", "yard"]) == 0
     out = capsys.readouterr().out
-    assert "\non seed 1 " in out and "\noff seed 1 " in out
+    assert "\non seed 1 " in out and "\noff seed 1 " in out and "'yard'" in out

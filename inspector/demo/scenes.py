@@ -499,12 +499,49 @@ def aisle_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
     return finish_scene("aisle", albedo, (lamps, fill), floor, fine, mid)
 
 
+def yard_scene(rng: np.random.Generator, width: int, height: int) -> Scene:
+    """Gravel yard behind the depot: a fence along the top, gravel ground from a photograph
+    (``skimage.data.gravel``, bundled with scikit-image, so only when it is installed: a
+    bench camera, not one of the demo's), floodlights on poles.
+
+    The photograph gives the ground a texture unlike the drawn floors of the other views:
+    dense, irregular stones whose normal appearance varies from cell to cell.
+    """
+    from skimage import data  # noqa: PLC0415 - test dependency, only for this camera
+
+    W, H = width, height
+    fine, mid, coarse, yy, xx = _canvas(rng, W, H)
+    fence_y = 0.22 * H
+    grey = data.gravel().astype(np.float32) / 255.0          # (512, 512) photograph
+    x0 = int(rng.integers(0, grey.shape[1] // 4))
+    y0 = int(rng.integers(0, grey.shape[0] // 4))
+    crop = grey[y0:y0 + 3 * grey.shape[0] // 4, x0:x0 + 3 * grey.shape[1] // 4]
+    ground = cv2.resize(crop, (W, H), interpolation=cv2.INTER_AREA)
+    tint = np.array((0.52, 0.56, 0.60), np.float32) * rng.uniform(0.9, 1.1)
+    albedo = (0.55 + 0.9 * (ground - ground.mean()))[..., None] * tint
+    albedo *= (1.0 + 0.04 * coarse)[..., None]
+    # Fence: vertical boards over a dark gap, along the top of the view.
+    boards = ((xx % max(0.03 * W, 4.0)) > 0.004 * W).astype(np.float32)
+    fence = np.array((0.30, 0.42, 0.50), np.float32) * (0.55 + 0.45 * boards)[..., None]
+    fence *= (1.0 + 0.03 * mid)[..., None]
+    albedo = np.where((yy < fence_y)[..., None], fence, albedo).astype(np.float32)
+
+    sky = (0.55 + 0.25 * (1.0 - yy / H) + 0.05 * coarse).astype(np.float32)
+    sigma = 0.16 * W
+    lamps = (0.2 + 0.8 * (gauss(xx, yy, 0.25 * W, 0.55 * H, sigma)
+                          + gauss(xx, yy, 0.75 * W, 0.60 * H, sigma))).astype(np.float32)
+    fill = np.ones((H, W), np.float32)
+    floor = (yy > fence_y + 0.03 * H) & (yy < H - 2)
+    return finish_scene("yard", albedo, (sky, lamps, fill), floor, fine, mid)
+
+
 BUILDERS: dict[str, Callable[[np.random.Generator, int, int], Scene]] = {
     "dock": dock_scene,
     "aisle": aisle_scene,
     # Busy cameras (see inspector.demo.traffic): the same kinds of place, other views.
     "walkway": aisle_scene,
     "gate": dock_scene,
+    "yard": yard_scene,
 }
 
 
@@ -599,4 +636,5 @@ class AisleLamps:
         return Lighting(coeffs=coeffs, sigma=2.0, band=band, level=level)
 
 
-LIGHTING = {"dock": DockWeather, "aisle": AisleLamps, "walkway": AisleLamps, "gate": DockWeather}
+LIGHTING = {"dock": DockWeather, "aisle": AisleLamps, "walkway": AisleLamps, "gate": DockWeather,
+            "yard": DockWeather}
