@@ -288,13 +288,17 @@ class Conditions(Estimator):
 
     def _uncovered(self, dx: float, dy: float, shape: tuple[int, int]) -> np.ndarray:
         """Pixels of a frame moved back by (dx, dy) that its content no longer covers: the
-        strip its edge leaves, and where burned-in text (which stays put) would land."""
+        strip its edge leaves (pixel x takes the content at x + dx: uncovered unless both
+        pixels it interpolates from lie inside), and where burned-in text (which stays
+        put) would land."""
         h, w = shape
-        m = np.float32([[1, 0, -dx], [0, 1, -dy]])
-        warp = dict(flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT, borderValue=0)
-        fill = cv2.warpAffine(np.ones((h, w), np.float32), m, (w, h), **warp) < 0.999
+        x, y = np.arange(w) + dx, np.arange(h) + dy
+        fill = ((y < 0) | (y > h - 1))[:, None] | ((x < 0) | (x > w - 1))[None, :]
         if self.ignore_ is not None:
-            fill |= cv2.warpAffine(self.ignore_.astype(np.float32), m, (w, h), **warp) > 0.001
+            m = np.float32([[1, 0, -dx], [0, 1, -dy]])
+            fill |= cv2.warpAffine(self.ignore_.astype(np.float32), m, (w, h),
+                                   flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
+                                   borderValue=0) > 0.001
         return fill
 
     def _reference_glare(self, ref_rgb: np.ndarray) -> np.ndarray:
@@ -327,9 +331,13 @@ class Conditions(Estimator):
         n = len(g)
         kept = None if self.ignore_ is None else np.flatnonzero(~self.ignore_)
         flat = g.reshape(n, -1)
-        px = flat if kept is None else flat[:, kept]
-        out = {"dark": np.percentile(px[:, ::4], 99, axis=1),  # a quarter of the pixels is plenty
-               "bright": (px >= 250).mean(axis=1),
+        quarter = flat[:, ::4] if kept is None else flat[:, kept[::4]]  # a quarter is plenty
+        clipped = flat >= 250
+        if kept is not None:
+            clipped &= ~self.ignore_.reshape(1, -1)
+        count = max(flat.shape[1] if kept is None else len(kept), 1)
+        out = {"dark": np.percentile(quarter, 99, axis=1),
+               "bright": clipped.sum(axis=1) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),
                "shift": np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1])}

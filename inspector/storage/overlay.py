@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import cv2
 import numpy as np
 
@@ -78,12 +80,18 @@ def hatch(image: np.ndarray, mask: np.ndarray, spacing: int = 8) -> np.ndarray:
     """``image`` (H, W, 3) uint8 with the pixels of ``mask`` (H, W) bool dimmed to half and
     crossed by diagonal lines every ``spacing`` pixels; the edge of the mask is outlined."""
     out = image.copy()
-    h, w = mask.shape
-    yy, xx = np.mgrid[0:h, 0:w]
-    lines = ((xx + yy) % spacing) < 2
-    out[mask] = out[mask] // 2
-    out[mask & lines] = _HATCH
-    contours, _ = cv2.findContours(mask.astype(np.uint8), cv2.RETR_EXTERNAL,
-                                   cv2.CHAIN_APPROX_SIMPLE)
+    m = mask.astype(np.uint8)
+    cv2.copyTo(out // 2, m, out)
+    cv2.copyTo(np.broadcast_to(np.array(_HATCH, np.uint8), out.shape),
+               m & _lines(mask.shape, spacing), out)
+    contours, _ = cv2.findContours(m, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
     cv2.drawContours(out, contours, -1, _HATCH, 1, cv2.LINE_AA)
     return out
+
+
+@lru_cache(maxsize=8)
+def _lines(shape: tuple[int, int], spacing: int) -> np.ndarray:
+    """(H, W) uint8, 1 on the diagonal hatching lines (made once per overlay size)."""
+    h, w = shape
+    yy, xx = np.mgrid[0:h, 0:w]
+    return (((xx + yy) % spacing) < 2).astype(np.uint8)

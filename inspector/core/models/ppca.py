@@ -306,10 +306,15 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-location terms of the Woodbury form of the log-likelihood.
 
+    With the Cholesky factor ``M = C C^T`` of ``M = W^T W + sigma^2 I``, ``B = W C^-T``
+    gives ``B B^T = W M^-1 W^T`` and ``log|M| = 2 sum log diag C``: one factorisation per
+    location instead of an inverse, a second factorisation and a determinant. The
+    matrices are small (q x q), so BLAS is held to one thread (as in :func:`batched_eigh`).
+
     Returns
     -------
     B : ndarray, shape (L, d, q)
-        ``W chol(M^-1)``, so that ``r^T W M^-1 W^T r = |B^T r|^2``.
+        Such that ``r^T W M^-1 W^T r = |B^T r|^2``.
     logdet : ndarray, shape (L,)
         ``log|C|`` of the (observed) covariance, by the matrix determinant lemma.
     d_obs : ndarray, shape (L,)
@@ -318,11 +323,12 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
     W = np.asarray(W, np.float64)
     L, d, q = W.shape
     d_obs = observed.sum(axis=1).astype(np.float64) if observed is not None else np.full(L, float(d))
-    M = np.matmul(W.transpose(0, 2, 1), W) + sigma2[:, None, None] * np.eye(q)
-    Minv = np.linalg.inv(M)
-    chol = np.linalg.cholesky((Minv + Minv.transpose(0, 2, 1)) / 2)
-    B = np.matmul(W, chol)
-    logdet = (d_obs - q) * np.log(sigma2) + np.linalg.slogdet(M)[1]
+    with threadpool_limits(1):
+        M = np.matmul(W.transpose(0, 2, 1), W) + sigma2[:, None, None] * np.eye(q)
+        chol = np.linalg.cholesky(M)
+        B = np.matmul(W, np.linalg.inv(chol).transpose(0, 2, 1))
+    logdet = (d_obs - q) * np.log(sigma2) + 2.0 * np.log(
+        np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
     return B, logdet, d_obs
 
 
