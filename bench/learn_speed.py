@@ -9,8 +9,9 @@ process so that peak memory is its own:
   same working size), nothing else;
 * learn: ``learn`` with the default settings (conditions, text mask, PPCA, calibration).
 
-and prints both wall times, their ratio (target: <= 3) and learn's peak resident memory
-(target: <= 1 GB, not growing with N).
+and prints both wall times, their ratio (target: <= 3), the ratio of their CPU seconds
+(steadier than wall time on a shared machine), learn's peak resident memory (target:
+<= 1 GB, not growing with N) and the load average.
 
     python bench/learn_speed.py [--frames 500,2000] [--size 1920x1080] [--keep DIR]
 """
@@ -19,6 +20,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -55,8 +57,6 @@ def write_frames(folder: Path, n: int, size: tuple[int, int]) -> None:
 
 def _child(mode: str, folder: str, n: int) -> None:
     """Run in a fresh process: decode or learn the first n frames; print JSON."""
-    import resource
-
     from inspector.config import load_config
     from inspector.jobs.learn import FileSource, learn_camera
     from inspector.storage.frames import discover, working_size
@@ -66,7 +66,7 @@ def _child(mode: str, folder: str, n: int) -> None:
     files, _ = discover(Path(folder), camera="cam")
     files = sorted(files, key=lambda f: f.path.name)[:n]
     cfg = config.camera("cam")
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     if mode == "decode":
         import cv2
 
@@ -81,9 +81,22 @@ def _child(mode: str, folder: str, n: int) -> None:
         with tempfile.TemporaryDirectory() as store:
             report = learn_camera(files, cfg, Store(store))
             count = report.frames
-    seconds = time.perf_counter() - started
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux -> MB
-    print(json.dumps({"frames": count, "seconds": seconds, "peak_mb": peak}))
+    seconds, cpu = time.perf_counter() - started, time.process_time() - cpu
+    peak = peak_mb()
+    print(json.dumps({"frames": count, "seconds": seconds, "cpu": cpu, "peak_mb": peak}))
+
+
+def peak_mb() -> float:
+    """Peak resident memory of this process in MB: VmHWM of its own address space. Not
+    ``getrusage``'s ru_maxrss: on Linux that survives exec, so a child started by a large
+    parent reports at least the parent's size at the fork."""
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024  # kB -> MB
+    import resource  # not Linux: the best there is
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def measure(mode: str, folder: Path, n: int) -> dict:
@@ -110,14 +123,15 @@ def main(argv=None) -> None:
         write_frames(work / "cam", max(counts), size)
         print(f"{max(counts)} frames of {size[0]}x{size[1]} ready in "
               f"{time.perf_counter() - t:.0f} s")
-        print(f"{'frames':>7}{'decode s':>10}{'learn s':>9}{'ratio':>7}{'learn peak MB':>15}"
-              f"{'decode peak MB':>16}")
+        print(f"{'frames':>7}{'decode s':>10}{'learn s':>9}{'ratio':>7}{'CPU ratio':>10}"
+              f"{'learn peak MB':>15}{'decode peak MB':>16}{'load':>6}")
         for n in counts:
             d = measure("decode", work / "cam", n)
             le = measure("learn", work / "cam", n)
             print(f"{n:>7}{d['seconds']:>10.1f}{le['seconds']:>9.1f}"
-                  f"{le['seconds'] / d['seconds']:>7.2f}{le['peak_mb']:>15.0f}"
-                  f"{d['peak_mb']:>16.0f}", flush=True)
+                  f"{le['seconds'] / d['seconds']:>7.2f}{le['cpu'] / d['cpu']:>10.2f}"
+                  f"{le['peak_mb']:>15.0f}{d['peak_mb']:>16.0f}{os.getloadavg()[0]:>6.1f}",
+                  flush=True)
 
 
 if __name__ == "__main__":

@@ -86,3 +86,20 @@ def test_preparation_record_feeds_the_health_measures():
     m = c.measures(rec)
     assert np.allclose(m["shift"], np.hypot(*rec.shifts.T))
     assert not any(c.conditions(m))  # normal frames: no health condition
+
+
+def test_known_shifts_are_not_measured_again():
+    # a darker copy of a frame (as learn varies its training frames) sits where the frame
+    # sits: prepared with the frame's measured shift, it is moved back by that shift
+    # exactly, as the captured frame was (same shift, same aligned grey at its gain)
+    frames = _frames()
+    c = Conditions().fit(frames)
+    rec = c.prepare(frames[1:3])
+    darker = (frames[1:3] * 0.8).astype(np.uint8)
+    again = c.prepare(darker, rec.shifts)
+    assert np.array_equal(again.shifts, rec.shifts)
+    for k in range(2):
+        dx, dy = rec.shifts[k]
+        assert np.allclose(again.aligned[k], shift_images(again.grey[k], -dx, -dy))
+    # and the prepared darker copy looks like the prepared frame (gain normalised away)
+    assert np.abs(again.images.astype(int) - rec.images.astype(int)).mean() < 3.0

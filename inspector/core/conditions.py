@@ -191,7 +191,7 @@ class Conditions(Estimator):
         }
 
     # -- per frame -----------------------------------------------------------------------
-    def prepare(self, images: np.ndarray) -> Prepared:
+    def prepare(self, images: np.ndarray, shifts: np.ndarray | None = None) -> Prepared:
         """Align and normalise frames to the learnt reference.
 
         A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
@@ -207,6 +207,9 @@ class Conditions(Estimator):
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
+        shifts : ndarray, shape (n, 2), optional
+            The frames' shifts when already measured (``Prepared.shifts`` of the frames
+            these were made from, e.g. made darker): registration is not measured again.
 
         Returns
         -------
@@ -219,10 +222,10 @@ class Conditions(Estimator):
             Before :meth:`fit`.
         """
         self.check_fitted()
-        return self._prepare(images, self.reference_, self.reference_rgb_)
+        return self._prepare(images, self.reference_, self.reference_rgb_, shifts)
 
     def _prepare(self, images: np.ndarray, ref: np.ndarray | None,
-                 ref_rgb: np.ndarray | None) -> Prepared:
+                 ref_rgb: np.ndarray | None, known: np.ndarray | None = None) -> Prepared:
         """:meth:`prepare` against a given reference (also while learning it)."""
         images = np.asarray(images)
         n = len(images)
@@ -237,13 +240,18 @@ class Conditions(Estimator):
         if self.register:
             aligned = g_all.copy()
             for i, g in enumerate(g_all):
-                dx, dy = phase_shift(g, ref, self.ignore_)
-                if np.hypot(dx, dy) > 0.05:
-                    back = shift_images(g, -dx, -dy)
-                    if correlation(back, ref, keep) <= correlation(g, ref, keep):
-                        dx = dy = 0.0  # no better aligned: a large change fooled the peak
-                    else:
-                        aligned[i] = back
+                if known is not None:  # measured before: moved back as measured
+                    dx, dy = known[i]
+                    if np.hypot(dx, dy) > 0.05:
+                        aligned[i] = shift_images(g, -dx, -dy)
+                else:
+                    dx, dy = phase_shift(g, ref, self.ignore_)
+                    if np.hypot(dx, dy) > 0.05:
+                        back = shift_images(g, -dx, -dy)
+                        if correlation(back, ref, keep) <= correlation(g, ref, keep):
+                            dx = dy = 0.0  # no better aligned: a large change fooled the peak
+                        else:
+                            aligned[i] = back
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
                     moved[i] = (dx, dy)

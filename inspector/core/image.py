@@ -376,5 +376,7 @@ def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator) ->
     """
     sigma = noise_sigma(grey(image[None])[0])
     extra = sigma * np.sqrt(max(0.0, 1.0 - gain * gain))
-    out = image.astype(np.float32) * gain + rng.normal(0.0, extra, image.shape)
-    return np.clip(out + 0.5, 0, 255).astype(np.uint8)
+    out = rng.standard_normal(image.shape, dtype=np.float32)  # single precision: faster
+    out *= np.float32(extra)
+    out += image.astype(np.float32) * np.float32(gain) + np.float32(0.5)
+    return np.clip(out, 0, 255).astype(np.uint8)
