@@ -200,6 +200,9 @@ def test_catch_up_then_live_with_events(env, capsys):
         write_frames(env["src"], "aisle", range(10), pause=0.02)
 
     assert run_watch(env, writer) == 0
+    # the baselines of the cameras present are loaded before watching starts (only dock
+    # has a folder yet), so the first frames do not queue behind the loading
+    assert "1 baseline loaded" in capsys.readouterr().out
     rows = check_agree(env)
     assert len(rows) == 20 and all(r["status"] == "scored" for r in rows.values())
     ev = csv_rows(env["out"] / "events.csv")
@@ -557,3 +560,34 @@ def test_a_busy_frame_drawn_on_the_spot_is_scored_as_in_the_stream(env):
         assert got.flagged == (rel in flagged)
     assert got.since is None and rel not in flagged  # frame 32: nothing has stayed yet
     assert in_stream(baseline, load_config(env["cfg"]), files[rel], env["src"] / "dock") is None
+
+
+def test_a_slow_baseline_load_holds_up_only_its_own_camera():
+    # while one camera's baseline loads (16 cameras start at once), frames of cameras
+    # already loaded are scored: the cache serialises loads per baseline, not globally
+    # (common practice, no source)
+    from inspector.jobs.scan import BaselineCache
+
+    started, release = threading.Event(), threading.Event()
+
+    class SlowStore:
+        def load(self, camera, version=None):
+            if camera == "slow":
+                started.set()
+                release.wait(60)
+            return f"baseline of {camera}"
+
+    cache = BaselineCache(SlowStore())
+    assert cache.get("quick") == "baseline of quick"
+    slow = threading.Thread(target=cache.get, args=("slow",))
+    slow.start()
+    assert started.wait(60)
+    got: list[str] = []
+    quick = threading.Thread(target=lambda: got.append(cache.get("quick")))
+    quick.start()
+    quick.join(60)
+    answered_meanwhile = got == ["baseline of quick"] and not release.is_set()
+    release.set()
+    slow.join(60)
+    assert answered_meanwhile
+    assert cache.get("slow") == "baseline of slow"

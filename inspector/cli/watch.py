@@ -77,7 +77,9 @@ def _run(watcher: Watcher, settings: WatchSettings, log) -> WatchReport:
     old = {s: signal.signal(s, stop) for s in (signal.SIGINT, signal.SIGTERM)}
     try:
         mode = f"polling every {settings.poll:g} s" if settings.poll else "file events"
-        log(f"watching {watcher.root} ({mode}, settle {settings.settle:g} s); "
+        loaded, seconds = watcher.preload()
+        log(f"watching {watcher.root} ({mode}, settle {settings.settle:g} s; {loaded} "
+            f"baseline{'s' if loaded != 1 else ''} loaded in {seconds:.1f} s); "
             "stop with Ctrl-C")
         return watcher.run()
     finally:

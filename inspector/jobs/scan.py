@@ -40,24 +40,36 @@ class BaselineCache:
 
     ``get`` raises LookupError ("no baseline for camera X") for a camera without one, and
     :class:`inspector.storage.store.DamagedBaseline` (a LookupError) for a damaged
-    version; the answer is kept until ``forget``.
+    version; the answer is kept until ``forget``. Safe to use from several threads: a
+    baseline being loaded holds up only the callers that want that same baseline, never
+    the scoring of cameras already loaded.
     """
 
     def __init__(self, store: Store):
         self.store = store
         self._loaded: dict[tuple[str, str | None], Baseline | LookupError] = {}
-        self._lock = threading.Lock()  # watch scores from several threads: load once
+        self._lock = threading.Lock()  # guards the two dicts and the generation
+        self._loading: dict[tuple[str, str | None], threading.Lock] = {}
+        self._generation = 0  # moves on at every forget: a load begun before is not kept
 
     def get(self, camera: str, version: str | None = None) -> Baseline:
         """The camera's active baseline, or the given version of it."""
         key = (camera, version)
         with self._lock:
-            if key not in self._loaded:
-                try:
-                    self._loaded[key] = self.store.load(camera, version)
-                except LookupError as exc:
-                    self._loaded[key] = exc
-            found = self._loaded[key]
+            found = self._loaded.get(key)
+            gate = self._loading.setdefault(key, threading.Lock()) if found is None else None
+        if gate is not None:
+            with gate:  # one load of a baseline at a time; others wait for it, not for all
+                with self._lock:
+                    found, generation = self._loaded.get(key), self._generation
+                if found is None:
+                    try:
+                        found = self.store.load(camera, version)
+                    except LookupError as exc:
+                        found = exc
+                    with self._lock:
+                        if generation == self._generation:
+                            self._loaded[key] = found
         if isinstance(found, LookupError):
             raise found
         return found
@@ -66,6 +78,7 @@ class BaselineCache:
         """Load again on next use (after ``learn`` or an activation); all cameras when
         none is named."""
         with self._lock:
+            self._generation += 1
             for key in [k for k in self._loaded if camera is None or k[0] == camera]:
                 del self._loaded[key]
 
