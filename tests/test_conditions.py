@@ -20,6 +20,8 @@ from inspector.core.image import (
     darker_exposure,
     noise_sigma,
     phase_shift,
+    phase_shifts,
+    phase_spectrum,
     robust_gain_offset,
     sharpness,
 )
@@ -91,6 +93,24 @@ def test_phase_shift_recovers_a_sub_pixel_shift():
     moved = ndimage.shift(ref, (1.6, -2.3), order=3, mode="reflect")  # scipy.ndimage.shift
     dx, dy = phase_shift(moved, ref)
     assert dx == pytest.approx(-2.3, abs=0.3) and dy == pytest.approx(1.6, abs=0.3)
+
+
+def test_phase_shifts_with_a_stored_spectrum_agree_with_opencv():
+    # cv2.phaseCorrelate (Hann window, normalised cross-power, 5 x 5 weighted centroid) is
+    # the outside reference; the reference's spectrum is computed once for all frames
+    ref = _camera_image()[:180, :240]  # even sizes whose DFTs OpenCV does not pad
+    moves = [(1.6, -2.3), (0.0, 0.4), (-3.2, 1.1), (5.5, -0.7)]
+    frames = np.stack([ndimage.shift(ref, m, order=3, mode="reflect") for m in moves])
+    window = cv2.createHanningWindow((ref.shape[1], ref.shape[0]), cv2.CV_32F)
+    want = np.array([cv2.phaseCorrelate(ref, f, window)[0] for f in frames])
+    got = phase_shifts(frames, phase_spectrum(ref))
+    assert np.abs(got - want).max() < 0.01
+    ignore = np.zeros(ref.shape, bool)
+    ignore[:12, :60] = True  # burned-in text: filled with the image mean on both sides
+    filled = [np.where(ignore, np.float32(x[~ignore].mean()), x) for x in (ref, *frames)]
+    want = np.array([cv2.phaseCorrelate(filled[0], f, window)[0] for f in filled[1:]])
+    got = phase_shifts(frames, phase_spectrum(ref, ignore), ignore)
+    assert np.abs(got - want).max() < 0.01
 
 
 def test_robust_gain_offset_ignores_a_local_incident():

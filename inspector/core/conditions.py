@@ -36,7 +36,8 @@ from inspector.core.image import (
     cell_detail,
     correlation,
     grey,
-    phase_shift,
+    phase_shifts,
+    phase_spectrum,
     robust_gains,
     shift_images,
 )
@@ -136,6 +137,8 @@ class Conditions(Estimator):
         self.limits = limits
         #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
         self._ref_terms: tuple | None = None
+        #: (grey reference, its spectrum for registration), made once.
+        self._spectrum: tuple | None = None
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None) -> "Conditions":
@@ -160,7 +163,7 @@ class Conditions(Estimator):
         self.ignore_ = ignore
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = None
+        self._ref_terms = self._spectrum = None
         if not len(images):
             return self
         ref = np.median(grey(images), axis=0)
@@ -239,13 +242,15 @@ class Conditions(Estimator):
         moved: dict[int, tuple[float, float]] = {}  # frames moved back, by their shift
         if self.register:
             aligned = g_all.copy()
+            if known is None:
+                found = phase_shifts(g_all, self._phase_spectrum(ref), self.ignore_)
             for i, g in enumerate(g_all):
                 if known is not None:  # measured before: moved back as measured
                     dx, dy = known[i]
                     if np.hypot(dx, dy) > 0.05:
                         aligned[i] = shift_images(g, -dx, -dy)
                 else:
-                    dx, dy = phase_shift(g, ref, self.ignore_)
+                    dx, dy = found[i]
                     if np.hypot(dx, dy) > 0.05:
                         back = shift_images(g, -dx, -dy)
                         if correlation(back, ref, keep) <= correlation(g, ref, keep):
@@ -308,6 +313,12 @@ class Conditions(Estimator):
                                    flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_CONSTANT,
                                    borderValue=0) > 0.001
         return fill
+
+    def _phase_spectrum(self, ref: np.ndarray) -> np.ndarray:
+        """:func:`phase_spectrum` of the reference, computed once per reference."""
+        if self._spectrum is None or self._spectrum[0] is not ref:
+            self._spectrum = (ref, phase_spectrum(ref, self.ignore_))
+        return self._spectrum[1]
 
     def _reference_glare(self, ref_rgb: np.ndarray) -> np.ndarray:
         """The dilated mask of the colour reference's clipped whites, (H, W) uint8, computed

@@ -10,6 +10,7 @@ from functools import lru_cache
 
 import cv2
 import numpy as np
+import scipy.fft as sfft
 
 #: Side of the grid of cells used by the "lens covered" measure.
 COVER_GRID = 8
@@ -143,31 +144,98 @@ def robust_gain_offset(frame: np.ndarray, reference: np.ndarray,
     return float(gain), float(offset)
 
 
-def phase_shift(frame: np.ndarray, reference: np.ndarray,
-                ignore: np.ndarray | None = None) -> tuple[float, float]:
-    """Sub-pixel translation of ``frame`` relative to ``reference`` by phase correlation.
+def _dft_size(n: int) -> int:
+    """Smallest even size >= n whose DFT is fast (2^a 3^b 5^c, as OpenCV pads to)."""
+    m = cv2.getOptimalDFTSize(n)
+    while m % 2:
+        m = cv2.getOptimalDFTSize(m + 1)
+    return m
+
+
+def _filled(image: np.ndarray, ignore: np.ndarray | None) -> np.ndarray:
+    """An (H, W) float32 image with its ``ignore`` pixels set to the mean of the others."""
+    if ignore is None or not ignore.any():
+        return image
+    return np.where(ignore, np.float32(cv2.mean(image, (~ignore).astype(np.uint8))[0]), image)
+
+
+def phase_spectrum(reference: np.ndarray, ignore: np.ndarray | None = None) -> np.ndarray:
+    """The windowed spectrum of a registration reference, for :func:`phase_shifts`
+    (computed once per reference, not once per frame).
 
     Parameters
     ----------
-    frame, reference : ndarray, shape (H, W), float
+    reference : ndarray, shape (H, W), float
+    ignore : ndarray, shape (H, W), bool, optional
+        As in :func:`phase_shifts`.
+
+    Returns
+    -------
+    ndarray, shape (H', W' // 2 + 1), complex64
+        Real-input DFT of the Hann-windowed reference, zero-padded to (H', W'), the even
+        sizes >= (H, W) with fast DFTs.
+    """
+    ref = np.asarray(reference, np.float32)
+    h, w = ref.shape
+    ref = _filled(ref, ignore) * _hanning((h, w))
+    return sfft.rfft2(ref, s=(_dft_size(h), _dft_size(w)), workers=1).astype(np.complex64)
+
+
+def phase_shifts(frames: np.ndarray, spectrum: np.ndarray,
+                 ignore: np.ndarray | None = None) -> np.ndarray:
+    """Sub-pixel translation of frames relative to a reference, by phase correlation.
+
+    Phase correlation (Kuglin & Hines 1975, "The phase correlation image alignment
+    method"): the inverse DFT of the normalised cross-power spectrum of the Hann-windowed
+    frame and reference peaks at their relative shift; the sub-pixel position is the
+    weighted centroid of the 5 x 5 values around the peak. This is what
+    ``cv2.phaseCorrelate`` computes (checked against it in the tests), with the
+    reference's spectrum computed once (:func:`phase_spectrum`) and real-input DFTs; a
+    frame at a time, so that its arrays stay in the processor's cache.
+
+    Parameters
+    ----------
+    frames : ndarray, shape (n, H, W), float
+    spectrum : ndarray
+        :func:`phase_spectrum` of the reference, with the same ``ignore``.
     ignore : ndarray, shape (H, W), bool, optional
         Pixels filled with the image mean first (burned-in text does not move with the
         camera and would pull the estimate towards zero).
 
     Returns
     -------
-    dx, dy : float
-        The content of ``frame`` sits ``(dx, dy)`` pixels right and down of where it sits in
-        ``reference``.
+    ndarray, shape (n, 2), float64
+        ``(dx, dy)`` of each frame: its content sits that many pixels right and down of
+        where it sits in the reference.
     """
-    a = np.asarray(reference, np.float32)
-    b = np.asarray(frame, np.float32)
-    if ignore is not None and ignore.any():
-        keep = (~ignore).astype(np.uint8)
-        a, b = a.copy(), b.copy()
-        np.copyto(a, np.float32(cv2.mean(a, keep)[0]), where=ignore)
-        np.copyto(b, np.float32(cv2.mean(b, keep)[0]), where=ignore)
-    (dx, dy), _ = cv2.phaseCorrelate(a, b, _hanning(a.shape))
+    frames = np.asarray(frames, np.float32)
+    n, h, w = frames.shape
+    size = (_dft_size(h), _dft_size(w))
+    rows, cols = size
+    window = _hanning((h, w))
+    step = np.arange(-2, 3)
+    out = np.zeros((n, 2))
+    for i, frame in enumerate(frames):
+        cross = np.conj(sfft.rfft2(_filled(frame, ignore) * window, s=size, workers=1))
+        cross *= spectrum
+        cross *= np.float32(1) / np.maximum(np.abs(cross), np.float32(1e-20))
+        surface = sfft.irfft2(cross, s=size, workers=1)  # peaks at minus the shift
+        py, px = divmod(int(surface.argmax()), cols)
+        box = surface[np.ix_((py + step) % rows, (px + step) % cols)].astype(np.float64)
+        total = box.sum() + np.finfo(float).eps
+        cy = py + box.sum(axis=1) @ step / total
+        cx = px + box.sum(axis=0) @ step / total
+        # lags beyond half the size are negative ones, wrapped round
+        out[i] = -((cx + cols / 2) % cols - cols / 2), -((cy + rows / 2) % rows - rows / 2)
+    return out
+
+
+def phase_shift(frame: np.ndarray, reference: np.ndarray,
+                ignore: np.ndarray | None = None) -> tuple[float, float]:
+    """:func:`phase_shifts` of one frame (H, W) against ``reference`` (H, W); returns
+    ``(dx, dy)``."""
+    dx, dy = phase_shifts(np.asarray(frame)[None], phase_spectrum(reference, ignore),
+                          ignore)[0]
     return float(dx), float(dy)
 
 
