@@ -134,6 +134,7 @@ class Watcher:
     def run(self) -> WatchReport:
         """Watch until :attr:`stop` is set (signal) or the idle time passes."""
         t0 = time.perf_counter()
+        self.files.last_activity = time.monotonic()  # idle from now (not while loading)
         self._heartbeat(time.monotonic())
         frames, added = self.writer.reconcile()
         if frames:
