@@ -12,9 +12,8 @@ same sample finds burned-in text overlays, which are masked, and sets the health
 
 from __future__ import annotations
 
-from collections import Counter, deque
+from collections import Counter
 from collections.abc import Iterator, Sequence
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -61,10 +60,6 @@ MIN_FRAMES = 10
 CONDITION_SAMPLE = 48
 #: Fewest normal frames a regime (see :mod:`inspector.core.regimes`) may be calibrated on.
 MIN_REGIME_FRAMES = 30
-#: Threads preparing frames for the model while it learns from the batch before, and how
-#: many batches they may prepare ahead of it (memory: a batch of 64 frames at the default
-#: working size is about 11 MB, a few copies of it while prepared).
-PREPARE_WORKERS, PREPARE_AHEAD = 2, 1
 #: Long side at which burned-in text is looked for (small text vanishes at working size).
 TEXT_LONG_SIDE = 640
 
@@ -182,47 +177,32 @@ class PreparedSource:
 
     def _prepared(self, indices: Sequence[int], batch_size: int, vary: bool
                   ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """Batches prepared in worker threads (OpenCV and numpy release the GIL), in
-        order, while the caller works on the batch before: at most ``PREPARE_AHEAD``
-        batches are prepared ahead of it."""
-        with ThreadPoolExecutor(PREPARE_WORKERS) as pool:
-            pending: deque = deque()
-            for idx, images in self.source.batches(indices, batch_size):
-                pending.append(pool.submit(self._prepare_batch, idx, images, vary))
-                if len(pending) > PREPARE_AHEAD:
-                    yield pending.popleft().result()
-            while pending:
-                yield pending.popleft().result()
-
-    def _prepare_batch(self, idx: np.ndarray, images: np.ndarray, vary: bool
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """One batch: prepared frames, the frames to learn from (some made darker when
-        ``vary``), and the batch's health measures and appearance recorded."""
-        # The record of the frames as captured feeds the health measures and the
-        # scores; frames made darker are prepared again, for the model to learn from.
-        rec = self.conditions.prepare(images)
-        prepared = varied = rec.images
-        if vary:
-            darker = {}
-            for j, i in enumerate(idx):
-                rng = np.random.default_rng([7, int(i)])
-                if rng.random() < 0.5:
-                    gain = 1.0 - self.exposure * rng.random()
-                    darker[j] = darker_exposure(images[j], gain, rng)
-            if darker:  # a darker copy of a frame sits where the frame sits
-                varied = prepared.copy()
-                rows = list(darker)
-                varied[rows] = self.conditions.prepare(np.stack(list(darker.values())),
-                                                       rec.shifts[rows]).images
-        if self.conditions.reference_ is not None and not all(
-                int(i) in self.measures for i in idx):
-            m = self.conditions.measures(rec)
-            for j, i in enumerate(idx):
-                self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
-        if not all(int(i) in self.appearance for i in idx):
-            for i, a in zip(idx, appearance(images)):
-                self.appearance[int(i)] = a
-        return idx, prepared, varied
+        for idx, images in self.source.batches(indices, batch_size):
+            # The record of the frames as captured feeds the health measures and the
+            # scores; frames made darker are prepared again, for the model to learn from.
+            rec = self.conditions.prepare(images)
+            prepared = varied = rec.images
+            if vary:
+                darker = {}
+                for j, i in enumerate(idx):
+                    rng = np.random.default_rng([7, int(i)])
+                    if rng.random() < 0.5:
+                        gain = 1.0 - self.exposure * rng.random()
+                        darker[j] = darker_exposure(images[j], gain, rng)
+                if darker:  # a darker copy of a frame sits where the frame sits
+                    varied = prepared.copy()
+                    rows = list(darker)
+                    varied[rows] = self.conditions.prepare(np.stack(list(darker.values())),
+                                                           rec.shifts[rows]).images
+            if self.conditions.reference_ is not None and not all(
+                    int(i) in self.measures for i in idx):
+                m = self.conditions.measures(rec)
+                for j, i in enumerate(idx):
+                    self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
+            if not all(int(i) in self.appearance for i in idx):
+                for i, a in zip(idx, appearance(images)):
+                    self.appearance[int(i)] = a
+            yield idx, prepared, varied
 
 
 @dataclass
