@@ -54,10 +54,11 @@ def test_realised_false_alarm_rate_is_alpha_on_later_frames(model, drift):
 def test_calibration_bench_smoke():
     proc = subprocess.run([sys.executable, str(ROOT / "bench" / "calibration.py"),
                            "--models", "ppca", "--n", "40", "--seeds", "1", "--alpha", "0.1",
-                           "--drift", "1"], capture_output=True, text=True, timeout=300,
+                           "--drift", "1", "--tail-trials", "2"], capture_output=True, text=True, timeout=300,
                           check=False)
     assert proc.returncode == 0, proc.stderr
     assert "before" in proc.stdout and "after" in proc.stdout
+    assert "90% bound" in proc.stdout
 
 
 def test_learn_speed_bench_smoke(tmp_path):
