@@ -40,6 +40,7 @@ from inspector.core.image import (
     phase_spectrum,
     robust_gains,
     shift_images,
+    trusted,
 )
 from inspector.core.estimator import Estimator
 
@@ -49,6 +50,12 @@ LIGHTING_MODES = ("global", "local", "off")
 DEFAULT_LIMITS = {"dark": 20.0, "bright": 0.5, "covered": 0.5, "focus": 0.35, "frozen": 0.25}
 #: Neighbourhood of a clipped pixel whose brightness is not trusted (see ``prepare``).
 _NEAR = np.ones((3, 3), np.uint8)
+#: Where the reference is clipped white (and next to it), a frame at most this share darker
+#: reads as the same glare and takes the reference's colour: the normal frames saw nothing
+#: but the clip there, and an exposure step moves a normalised pixel by a few percent; a lamp
+#: switched off or an object in front of it is far darker and stays (common practice, no
+#: source).
+GLARE_TOLERANCE = 0.1
 #: A textured cell whose correlation with the reference falls below this is lost from view.
 COVER_CORRELATION = 0.2
 
@@ -201,11 +208,14 @@ class Conditions(Estimator):
         the places where burned-in text (which does not move with the camera) would land are
         filled from the colour reference. A pixel clipped white in the frame (>= 250) only
         bounds its true value from below, so after the gain it is raised to the reference
-        when that is brighter (never lowered: a white parcel stays white). Where the frame
-        is clipped next to where the reference is clipped too (a lamp, a sunlit window),
-        the pixels do not follow a gain at all (their edges mix clipped and unclipped
-        light) and take the reference's colour. Black clipping is left alone: at night most
-        dark pixels are near 0 and follow no gain either, but they are all alike.
+        when that is brighter (never lowered: a white parcel stays white); so are its
+        neighbours, which mix clipped light into their average at the working size. Where
+        the reference is clipped (a lamp, a sunlit window) and next to it, the normal frames
+        showed nothing but the clip, whatever this frame's exposure: the pixels take the
+        reference's colour unless the frame is clearly darker there
+        (:data:`GLARE_TOLERANCE`; a lamp gone out stays visible). Black clipping is left
+        alone: at night most dark pixels are near 0 and follow no gain either, but they are
+        all alike.
 
         Parameters
         ----------
@@ -270,6 +280,8 @@ class Conditions(Estimator):
             gains = robust_gains(fitted, ref, keep)
         out = np.empty_like(images)
         sigma = max(images.shape[1:3]) / 8.0
+        if self.lighting == "local":
+            ref_trusted = trusted(ref) if keep is None else (trusted(ref) & keep)
         for i, img in enumerate(images):
             fill = None
             if i in moved:
@@ -283,17 +295,21 @@ class Conditions(Estimator):
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field)
                     field = brightness_field(fitted[i], ref, sigma, gain, offset,
-                                             scale=gain, channels=3)
+                                             scale=gain, channels=3,
+                                             keep=trusted(fitted[i]) & ref_trusted)
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
-                brightest = _channel_max(img)
-                if ref_rgb is not None and brightest.max() >= 250:  # any clipped pixel at all
-                    ref_glare = self._reference_glare(ref_rgb)
-                    clipped = cv2.compare(brightest, 250, cv2.CMP_GE)  # 255 where clipped
-                    cv2.copyTo(cv2.max(o, ref_rgb), clipped, o)
-                    cv2.copyTo(ref_rgb, cv2.dilate(clipped, _NEAR) & ref_glare, o)
+                if ref_rgb is not None:
+                    brightest = _channel_max(img)
+                    if brightest.max() >= 250:  # any clipped pixel at all
+                        clipped = cv2.compare(brightest, 250, cv2.CMP_GE)  # 255 where clipped
+                        cv2.copyTo(cv2.max(o, ref_rgb), cv2.dilate(clipped, _NEAR), o)
+                    glare, floor = self._reference_glare(ref_rgb)
+                    if glare is not None:
+                        cv2.copyTo(ref_rgb, glare & cv2.compare(_channel_max(o), floor,
+                                                                cv2.CMP_GE), o)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
             out[i] = o
@@ -320,13 +336,18 @@ class Conditions(Estimator):
             self._spectrum = (ref, phase_spectrum(ref, self.ignore_))
         return self._spectrum[1]
 
-    def _reference_glare(self, ref_rgb: np.ndarray) -> np.ndarray:
-        """The dilated mask of the colour reference's clipped whites, (H, W) uint8, computed
+    def _reference_glare(self, ref_rgb: np.ndarray) -> tuple[np.ndarray | None, np.ndarray]:
+        """The dilated mask of the colour reference's clipped whites, (H, W) uint8 (None
+        when it has none), and the brightest channel a frame must keep there to read as
+        that glare, (H, W) uint8 (:data:`GLARE_TOLERANCE` below the reference's); computed
         once per reference rather than once per frame."""
         if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
-            clipped = (_channel_max(np.asarray(ref_rgb)) >= 250).astype(np.uint8)
-            self._ref_terms = (ref_rgb, cv2.dilate(clipped, _NEAR))
-        return self._ref_terms[1]
+            brightest = _channel_max(np.asarray(ref_rgb))
+            clipped = (brightest >= 250).astype(np.uint8)
+            glare = cv2.dilate(clipped, _NEAR) if clipped.any() else None
+            floor = (brightest.astype(np.float32) * (1.0 - GLARE_TOLERANCE)).astype(np.uint8)
+            self._ref_terms = (ref_rgb, glare, floor)
+        return self._ref_terms[1], self._ref_terms[2]
 
     def measures(self, prepared: Prepared, previous: np.ndarray | None = None
                  ) -> dict[str, np.ndarray]:

@@ -48,6 +48,18 @@ def gain_step(shape: tuple[int, int]) -> int:
     return max(4, int(round(np.sqrt(h * w / GAIN_SAMPLE))))
 
 
+#: Grey levels strictly between these are trusted; at or beyond them a pixel may be clipped
+#: black or white, and then only bounds its true brightness.
+CLIP_LOW, CLIP_HIGH = 2.0, 253.0
+
+
+def trusted(g: np.ndarray) -> np.ndarray:
+    """Pixels of a grey image (float, [0, 255]) that are not clipped black or white,
+    bool of the same shape."""
+    g = np.asarray(g)
+    return (g > CLIP_LOW) & (g < CLIP_HIGH)
+
+
 def _masked_quantiles(v: np.ndarray, ok: np.ndarray, qs) -> np.ndarray:
     """Quantiles (linear interpolation, numpy's default) of each row of ``v`` over its
     ``ok`` entries; shape (len(qs), n). Rows with no ok entry give NaN."""
@@ -96,7 +108,7 @@ def robust_gains(frames: np.ndarray, reference: np.ndarray,
     step = gain_step(frames.shape[1:3])
     x = np.asarray(frames[:, ::step, ::step], np.float64).reshape(n, -1)
     y = np.broadcast_to(np.asarray(reference, np.float64)[::step, ::step].ravel(), x.shape)
-    ok = (x > 2) & (x < 253)
+    ok = trusted(x) & trusted(y)
     if keep is not None:
         ok &= np.asarray(keep)[::step, ::step].ravel()[None]
     out = np.tile([1.0, 0.0], (n, 1))
@@ -277,10 +289,16 @@ def shift_images(images: np.ndarray, dx: float, dy: float) -> np.ndarray:
 
 def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
                      gain: float = 1.0, offset: float = 0.0, scale: float = 1.0,
-                     channels: int = 1) -> np.ndarray:
+                     channels: int = 1, keep: np.ndarray | None = None) -> np.ndarray:
     """Smooth multiplicative field that brings the local brightness of ``gain * frame +
     offset`` to the reference's: ``blur(reference) / blur(gain * frame + offset)``, clipped
     to [0.25, 4].
+
+    With ``keep``, both blurs are normalised convolutions over the kept pixels only
+    (``blur(keep * x) / blur(keep)``, Knutsson & Westin 1993, "Normalized and differential
+    convolution"): a pixel clipped white or black in the frame or the reference only bounds
+    its true value, and a lamp that stays clipped at 255 while the frame darkens would
+    otherwise read as a region brighter than the reference and darken its surroundings.
 
     Parameters
     ----------
@@ -294,6 +312,8 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         Factor applied to the field (at reduced size, before it is enlarged).
     channels : int
         Channels of the result (the field repeated, to multiply a colour image).
+    keep : ndarray, shape (H, W), bool, optional
+        Pixels whose brightness is trusted (all when None).
 
     Returns
     -------
@@ -303,13 +323,26 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     h, w = frame.shape
     k = max(1, int(sigma // 4))  # the field is smooth: blur a 1/k image, then enlarge it
     small = (max(1, w // k), max(1, h // k))
+    ref = np.asarray(reference, np.float32)
+    weight = None
+    if keep is not None and not keep.all():
+        wfull = np.asarray(keep, np.float32)
+        frame, ref = frame * wfull, ref * wfull
+        weight = cv2.GaussianBlur(cv2.resize(wfull, small, interpolation=cv2.INTER_AREA),
+                                  (0, 0), sigma / k)
     reduced = cv2.resize(frame, small, interpolation=cv2.INTER_AREA)
-    if gain != 1.0 or offset != 0.0:
-        reduced = reduced * np.float32(gain) + np.float32(offset)
     f = cv2.GaussianBlur(reduced, (0, 0), sigma / k)
-    r = cv2.GaussianBlur(cv2.resize(np.asarray(reference, np.float32), small,
-                                    interpolation=cv2.INTER_AREA), (0, 0), sigma / k)
-    field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32) * np.float32(scale)
+    r = cv2.GaussianBlur(cv2.resize(ref, small, interpolation=cv2.INTER_AREA), (0, 0), sigma / k)
+    if weight is not None:
+        seen = weight > 1e-3  # elsewhere nothing trusted is near: no correction
+        f = np.where(seen, f / np.maximum(weight, np.float32(1e-3)), 0.0)
+        r = np.where(seen, r / np.maximum(weight, np.float32(1e-3)), 0.0)
+    if gain != 1.0 or offset != 0.0:
+        f = f * np.float32(gain) + np.float32(offset)
+    field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32)
+    if weight is not None:
+        field[~seen] = 1.0
+    field *= np.float32(scale)
     if channels > 1:
         field = cv2.merge([field] * channels)
     return cv2.resize(field, (w, h), interpolation=cv2.INTER_LINEAR)

@@ -29,12 +29,14 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
     4. A text line takes the rows its strokes fill (changing or not: the whole height of
        the characters), the changing pieces in its rows up to four heights away (a day
        digit between still hours), then the columns up to two heights away that have
-       strokes in its rows and almost none just above and below (the still rest of a
+       strokes in its rows and at most half as many just above and below (the still rest of a
        date; a scene edge or texture runs on above and below), at most its own width
        further.
 
-    Text that never changes (a camera name) is left alone: it looks the same in every
-    frame, which the model learns like any steady part of the scene.
+    Text that never changes and stands apart from any changing line (a camera name in
+    another corner) is not found: it looks the same in every frame, which the model learns
+    like any steady part of the scene, but it does not follow the exposure either. A name
+    on the clock's line is part of that line (step 4).
 
     Parameters
     ----------
@@ -138,16 +140,21 @@ def _extend_row(pieces: np.ndarray, x0: int, x1: int, y0: int, y1: int, gap: int
 def _extend_columns(strokes: np.ndarray, x0: int, x1: int, y0: int, y1: int
                     ) -> tuple[int, int]:
     """Extend a text line [x0, x1) x [y0, y1) sideways over text columns: columns with
-    strokes in at least 30 % of the line's rows and almost none in the rows of one line
-    height above and
-    below it (the band of text stands alone; a scene edge or texture runs on), while
+    strokes in at least 30 % of the line's rows and at most half as dense in the rows of
+    one line height above and below it (the band of text stands out; a scene edge or
+    texture runs on), while
     they come within two line heights of each other; at most the line's width each way."""
     th = y1 - y0
     h = strokes.shape[0]
-    band = strokes[y0:y1].mean(axis=0) >= 0.3  # characters fill a good part of a column
+    density = strokes[y0:y1].mean(axis=0)
+    band = density >= 0.3  # characters fill a good part of a column
     outside = np.concatenate([strokes[max(0, y0 - th):max(0, y0 - 2)],
                               strokes[min(h, y1 + 2):min(h, y1 + th)]])
-    quiet = outside.mean(axis=0) < 0.05 if len(outside) else np.ones_like(band)
+    # A scene edge or texture runs on above and below as densely as in the line's rows;
+    # a column of characters is at least twice as dense in them as just outside (a shelf
+    # edge passing under a camera name leaves it as text).
+    quiet = (outside.mean(axis=0) < np.maximum(0.05, density / 2) if len(outside)
+             else np.ones_like(band))
     text = band & quiet
     gap, reach = 2 * th, x1 - x0
     lo, hi = max(0, x0 - reach), min(len(text), x1 + reach)
