@@ -67,9 +67,10 @@ class ModelSettings:
     #: Latent size per location; 0 chooses it by ``latent_rule``.
     latent: int = 0
     explained_variance: float = 0.9
-    #: "variance": the smallest size explaining ``explained_variance``; "heldout": the size
-    #: under which the earlier time blocks best predict the latest (PPCA only).
-    latent_rule: str = "variance"
+    #: "heldout": the size under which the earlier time blocks best predict the latest
+    #: (held-out likelihood; PPCA only); "variance": the smallest size explaining
+    #: ``explained_variance`` (also used with fewer than three time blocks).
+    latent_rule: str = "heldout"
     max_latent: int = 24
     #: "shared": one noise variance for luminance and chroma (plain PPCA); "own": chroma
     #: has its own, fitted from the normal frames, so a change of colour is judged against

@@ -494,11 +494,14 @@ class PatchPPCA(DensityModel):
         Luminance plus half-resolution chroma (True) or luminance only.
     latent : int
         Latent size q; 0 chooses it by ``latent_rule``.
-    latent_rule : {"variance", "heldout"}
-        "variance": the smallest size explaining ``explained_variance`` of the variance
-        (:func:`choose_latent`). "heldout": the size under which the model of the earlier
-        time blocks best predicts the latest one (:func:`heldout_latent`), for every fold
-        and the final model alike (with fewer than three time blocks, "variance").
+    latent_rule : {"heldout", "variance"}
+        "heldout" (default): the size under which the model of the earlier time blocks best
+        predicts the latest one (:func:`heldout_latent`), for every fold and the final model
+        alike (with fewer than three time blocks, "variance"). It gives moving parts of a
+        scene (foliage, screens) the latent dimensions their normal looks need, and a static
+        scene under noise few. "variance": the smallest size explaining
+        ``explained_variance`` of the variance (:func:`choose_latent`), which picks one
+        dimension on lighting-dominated scenes and many on noise.
     explained_variance : float
     max_latent : int
     chroma_noise : {"own", "shared"}
@@ -541,7 +544,7 @@ class PatchPPCA(DensityModel):
     def __init__(self, patch: int = 8, stride: int = 4, colour: bool = True, latent: int = 0,
                  explained_variance: float = 0.9, max_latent: int = 24, var_floor: float = 1e-4,
                  batch_size: int = 64, calibrate_from: float = 0.4,
-                 latent_rule: str = "variance", chroma_noise: str = "shared"):
+                 latent_rule: str = "heldout", chroma_noise: str = "shared"):
         self.patch = patch
         self.stride = stride
         self.colour = colour
