@@ -609,6 +609,10 @@ class PatchPPCA(DensityModel):
             block_of, minlength=len(labels))
         first = int(np.argmax(np.r_[before >= self.calibrate_from * len(blocks), True]))
         first = max(first, 1)
+        # With fewer than three time blocks a fold model has no earlier block to choose its
+        # latent size with: every model (folds and final alike) then uses "variance", so the
+        # calibration maps come from models chosen by the same rule as the final one.
+        self._few_blocks = len(labels) < 3
         if pool is None:
             moments, folds = self._forward_pass(source, order, block_of, len(labels), first)
         else:
@@ -635,7 +639,7 @@ class PatchPPCA(DensityModel):
         self.n_frames_ = int(moments.count.sum())
         mean, cov, _ = moments.mean_cov()
         self._set(mean, *self._fit_params(cov, self._heldout_q(*self._last_split)))
-        del self._last_split
+        del self._last_split, self._few_blocks
         held_idx = [i for fold in folds for i, _ in fold]
         held_maps = [m for fold in folds for _, m in fold]
         if held_maps:
@@ -704,7 +708,8 @@ class PatchPPCA(DensityModel):
         one time block fewer) gives that last block the highest likelihood
         (:func:`heldout_latent`). 0 when the latent size is set, or either part is too
         small (the explained-variance rule then decides)."""
-        if self.latent or self.latent_rule != "heldout" or earlier is None:
+        if (self.latent or self.latent_rule != "heldout" or earlier is None
+                or getattr(self, "_few_blocks", False)):
             return 0
         n_a, s_a, S_a = earlier
         n_t, s_t, S_t = now
