@@ -591,3 +591,74 @@ def test_a_slow_baseline_load_holds_up_only_its_own_camera():
     slow.join(60)
     assert answered_meanwhile
     assert cache.get("slow") == "baseline of slow"
+
+
+def test_a_cameras_batches_are_scored_one_at_a_time_in_order(tmp_path):
+    """Two workers: one camera's batches never run at once and go in the order its frames
+    came, frames queued meanwhile join its next batch, and another camera's batch runs
+    beside it. Scoring is replaced by a stand-in that waits for the test's signal; the
+    test waits on events only, never on time (common practice, no source)."""
+    import queue
+    from types import SimpleNamespace
+
+    from inspector.config import Config, WatchSettings
+    from inspector.jobs.settle import Arrival
+    from inspector.jobs.watch import Watcher
+    from inspector.storage.frames import FrameFile
+    from inspector.storage.ledger import Ledger
+
+    started: queue.Queue = queue.Queue()
+    release = {first: threading.Event() for first in ("a1", "b1", "a4")}
+    running: Counter = Counter()
+    seen_running: list[tuple[int, int]] = []  # at each start: (same camera, all cameras)
+    guard = threading.Lock()
+
+    def process(batch):
+        cam = batch[0].camera
+        names = [Path(it.path).name for it in batch]
+        with guard:
+            running[cam] += 1
+            seen_running.append((running[cam], sum(running.values())))
+        started.put((cam, names))
+        release[names[0]].wait(60)
+        with guard:
+            running[cam] -= 1
+
+    with Ledger(tmp_path / "ledger.sqlite") as ledger:
+        w = Watcher(tmp_path, None, Config(), SimpleNamespace(ledger=ledger),
+                    WatchSettings(workers=2), log=lambda text: None)
+        w._process = process
+
+        def arrive(cam: str, *names: str) -> None:
+            for n in names:
+                path = tmp_path / cam / n
+                w.files.ready.append(Arrival(str(path), 1, 1.0, "", 0.0,
+                                             FrameFile(path, f"{cam}/{n}", cam)))
+            w._feed()
+
+        arrive("a", "a1", "a2")
+        workers = [threading.Thread(target=w._worker, daemon=True) for _ in range(2)]
+        for t in workers:
+            t.start()
+        try:
+            assert started.get(timeout=60) == ("a", ["a1", "a2"])
+            arrive("a", "a4", "a3")  # queued while a's batch runs
+            arrive("b", "b1")
+            # b's batch starts while a's first batch is still in hand ...
+            assert started.get(timeout=60) == ("b", ["b1"])
+            with w._lock:  # ... and a's new frames wait for it
+                assert [Path(it.path).name for it in w._work] == ["a4", "a3"]
+            release["b1"].set()
+            release["a1"].set()
+            # both join a's next batch (the scorer puts them in capture-time order)
+            assert started.get(timeout=60) == ("a", ["a4", "a3"])
+            release["a4"].set()
+        finally:
+            for e in release.values():
+                e.set()
+            w.stop.set()
+            for t in workers:
+                t.join(timeout=60)
+        assert [same for same, _ in seen_running] == [1, 1, 1]  # never two of a camera
+        assert seen_running[1] == (1, 2)  # a and b at once
+        assert not w._inflight and not w._scoring

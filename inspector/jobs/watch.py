@@ -6,9 +6,17 @@ How a frame goes through the watcher::
                   |                                                 [event thread]
                   ready (unbounded; nothing is dropped)  ->  work queue (bounded)
                                                               |
-                  workers: decode, score (one loaded baseline per camera), then the
+                  workers: take one camera's queued frames as a batch (see below);
+                  decode, score (one loaded baseline per camera), then the
                   one writer (inspector.storage.results.ResultWriter): overlay, ledger
                   rows, CSV and health rows, rows marked written
+
+One batch per camera at a time: a worker takes the queued frames (up to ``batch``) of the
+camera whose frame has waited longest among the cameras no other worker is scoring; frames
+of that camera queued meanwhile wait and join its next batch, which is scored in
+capture-time order once the first is written. A camera's stream therefore goes forward in
+time (persistence windows need that, see :class:`inspector.jobs.scan.Streams`), while other
+cameras' batches run on the other workers.
 
 Exactly once: a frame is done when its ledger row holds status scored/skipped for the
 file's current size and modification time; such files are never read again. The writer
@@ -25,9 +33,9 @@ recorded as ``waiting`` and scored as soon as a good baseline is active for that
 from __future__ import annotations
 
 import os
-import queue
 import threading
 import time
+from collections import deque
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -90,9 +98,13 @@ class Watcher:
         self.report = WatchReport()
         self.files = Settler(root, self.ledger, settings.settle, settings.poll,
                              self._in_hand, log)
-        self._work: queue.Queue[Arrival] = queue.Queue(maxsize=settings.queue)
+        self._lock = threading.Lock()  # inflight, work queue, report, waiting cameras
+        #: Frames handed to the workers, oldest first (at most ``settings.queue``).
+        self._work: deque[Arrival] = deque()
+        #: Signalled when frames are queued or a camera's batch is done.
+        self._turn = threading.Condition(self._lock)
+        self._scoring: set[str] = set()  # cameras with a batch in a worker's hands
         self._inflight: dict[str, Arrival] = {}  # queued or being scored, by path
-        self._lock = threading.Lock()  # inflight, report, waiting cameras
         #: Cameras whose frames wait, with the version that could not be used (None: none).
         self._failed: dict[str, str | None] = {}
         self._damaged: dict[str, str] = {}  # camera -> message (with advice), while damaged
@@ -204,12 +216,11 @@ class Watcher:
                         ready.popleft()
                         continue
                     return  # an older version is in hand: keep order, try again later
-            try:
-                self._work.put_nowait(item)
-            except queue.Full:
-                return
-            with self._lock:
+                if len(self._work) >= self.settings.queue:
+                    return
+                self._work.append(item)
                 self._inflight[item.path] = item
+                self._turn.notify()
             ready.popleft()
 
     def _idle(self, now: float) -> bool:
@@ -298,17 +309,32 @@ class Watcher:
 
     # --- the workers --------------------------------------------------------------------
 
+    def _take(self) -> list[Arrival]:
+        """The next batch: the queued frames (up to ``settings.batch``, oldest first) of
+        the camera whose frame has waited longest among those not being scored; empty if
+        there is none. Marks that camera as being scored. Call with :attr:`_lock` held."""
+        camera = next((it.camera for it in self._work if it.camera not in self._scoring),
+                      None)
+        if camera is None:
+            return []
+        batch: list[Arrival] = []
+        rest: deque[Arrival] = deque()
+        for it in self._work:
+            (batch if it.camera == camera and len(batch) < self.settings.batch
+             else rest).append(it)
+        self._work = rest
+        self._scoring.add(camera)
+        return batch
+
     def _worker(self) -> None:
         while not self.stop.is_set():
-            try:
-                batch = [self._work.get(timeout=0.2)]
-            except queue.Empty:
-                continue
-            while len(batch) < self.settings.batch:
-                try:
-                    batch.append(self._work.get_nowait())
-                except queue.Empty:
-                    break
+            with self._turn:
+                batch = self._take()
+                if not batch:
+                    self._turn.wait(timeout=0.2)  # woken by _feed or a finished batch
+                    continue
+                if self._work:
+                    self._turn.notify()  # another camera's frames may be waiting
             try:
                 self._process(batch)
             except Exception as exc:  # noqa: BLE001 - a failure must not stop the watch
@@ -319,6 +345,8 @@ class Watcher:
                     for it in batch:
                         if self._inflight.get(it.path) is it:
                             del self._inflight[it.path]
+                    self._scoring.discard(batch[0].camera)
+                    self._turn.notify_all()  # the camera's next batch may go
                 self.files.last_activity = time.monotonic()
 
     def _process(self, batch: list[Arrival]) -> None:
