@@ -107,3 +107,22 @@ def test_labels_commands(tmp_path, capsys):
     assert "no labels yet" in capsys.readouterr().out
     assert main(["labels", "export", str(tmp_path / "nowhere" / "x.csv"),
                  "--store", str(store)]) == 2
+
+
+def test_labels_export_dash_writes_standard_output(tmp_path, capsys, monkeypatch):
+    # "-" as a file name means standard output (common practice, no source); the count goes
+    # to standard error so that standard output is the CSV alone.
+    store = tmp_path / "store"
+    conn = connect(store / "inspector.sqlite")
+    put(conn, [lab("dock", "a.jpg", "incident"), lab("aisle", "c.jpg", "false_alarm")])
+    conn.close()
+    monkeypatch.chdir(tmp_path)
+    capsys.readouterr()
+    assert main(["labels", "export", "-", "--store", str(store)]) == 0
+    assert not (tmp_path / "-").exists()
+    captured = capsys.readouterr()
+    rows = list(csv.DictReader(captured.out.splitlines()))
+    assert tuple(rows[0].keys()) == EXPORT_COLUMNS
+    assert [(r["camera"], r["label"]) for r in rows] == [
+        ("aisle", "false_alarm"), ("dock", "incident")]
+    assert "wrote 2 labels" in captured.err

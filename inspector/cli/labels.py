@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from inspector.cli.common import add_common, resolve, say
@@ -16,7 +17,8 @@ def register(sub) -> None:
                             help="what to do with the labels:")
     lsub.required = True
     e = lsub.add_parser("export", help="write every label to a CSV file")
-    e.add_argument("file", type=Path, metavar="FILE.csv", help="the CSV file to write")
+    e.add_argument("file", type=Path, metavar="FILE.csv",
+                   help="the CSV file to write; '-' writes to standard output")
     e.add_argument("--camera", help="only this camera's labels")
     add_common(e)
     e.set_defaults(func=cmd_export)
@@ -38,9 +40,16 @@ def _labels_of(args: argparse.Namespace, camera: str | None = None) -> list[Labe
 
 
 def cmd_export(args: argparse.Namespace) -> int:
-    if args.file.is_dir() or not args.file.parent.is_dir():
+    to_stdout = str(args.file) == "-"  # common practice, no source: "-" is standard output
+    if not to_stdout and (args.file.is_dir() or not args.file.parent.is_dir()):
         raise UsageError(f"cannot write {str(args.file)!r}: not a file in an existing folder")
     labels = _labels_of(args, args.camera)
+    if to_stdout:
+        export_csv(labels, sys.stdout)
+        sys.stdout.flush()
+        # the count goes to standard error so that standard output is only the CSV
+        print(f"wrote {len(labels)} labels to standard output", file=sys.stderr, flush=True)
+        return 0
     export_csv(labels, args.file)
     say(f"wrote {len(labels)} labels to {args.file}")
     return 0

@@ -16,6 +16,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import astuple, dataclass, fields
 from datetime import datetime
 from pathlib import Path
+from typing import TextIO
 
 from inspector.clock import now_iso as now  # noqa: F401 - the labels' timestamp
 from inspector.storage.database import open_database, transaction
@@ -115,14 +116,21 @@ def read(conn: sqlite3.Connection, camera: str | None = None,
     return [Label(*row) for row in conn.execute(sql, args)]
 
 
-def export_csv(labels: Sequence[Label], file: Path) -> None:
+def export_csv(labels: Sequence[Label], file: Path | TextIO) -> None:
     """Write labels as CSV with a header row (:data:`EXPORT_COLUMNS`, one per field of
-    :class:`Label`, in its order)."""
+    :class:`Label`, in its order) to a file path, or to an open text stream (left open)."""
+    if not isinstance(file, (str, Path)):
+        _write_labels(labels, file)
+        return
     with open(file, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(EXPORT_COLUMNS)
-        for lab in labels:
-            w.writerow(["" if v is None else v for v in astuple(lab)])
+        _write_labels(labels, fh)
+
+
+def _write_labels(labels: Sequence[Label], fh: TextIO) -> None:
+    w = csv.writer(fh)
+    w.writerow(EXPORT_COLUMNS)
+    for lab in labels:
+        w.writerow(["" if v is None else v for v in astuple(lab)])
 
 
 @dataclass(frozen=True)
