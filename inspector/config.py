@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from inspector.errors import UsageError
+from inspector.names import CAMERA_NAME_RULE, is_camera_name
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -344,6 +345,9 @@ def load_config(path: str | Path | None = None) -> Config:
             raise UsageError(f"{src}: unknown top-level key {key!r}")
         raise UsageError(f"{src}: unknown section [{key}] (sections: "
                          f"{', '.join(f'[{k}]' for k in [*known, 'cameras.NAME'])})")
+    for name in cameras:
+        if not is_camera_name(name):
+            raise UsageError(f'{src}: [cameras."{name}"] cannot be a camera ({CAMERA_NAME_RULE})')
     config = Config(cameras=cameras, source=src, **built)
     for name in cameras:
         config.camera(name)  # validate now, not in the middle of a run

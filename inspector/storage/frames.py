@@ -25,6 +25,7 @@ import numpy as np
 from PIL import Image
 
 from inspector.errors import FrameError
+from inspector.names import is_ignored_name  # noqa: F401 - also imported from here
 
 # Corrupt files are reported as skips, not as decoder chatter on stderr.
 try:
@@ -40,7 +41,6 @@ _SIGNATURES = (
     (b"II*\x00", "tiff"),
     (b"MM\x00*", "tiff"),
 )
-_PARTIAL_SUFFIXES = (".part", ".tmp", ".partial", ".crdownload")
 #: Two aspect ratios closer than this (relative) count as the same.
 ASPECT_TOLERANCE = 0.02
 
@@ -75,12 +75,6 @@ class Skip:
     rel: str
     camera: str
     reason: str
-
-
-def is_ignored_name(name: str) -> bool:
-    """True for hidden files and names of downloads still being written (never frames yet)."""
-    low = name.lower()
-    return name.startswith((".", "~")) or low.endswith(_PARTIAL_SUFFIXES)
 
 
 def sniff(head: bytes) -> str | None:

@@ -44,17 +44,18 @@ from inspector.core.models import model_class
 from inspector.core.persistence import Persistence
 from inspector.core.regimes import Regimes
 from inspector.errors import UsageError
+from inspector.names import CAMERA_NAME_RULE, is_camera_name
 
 #: Files of a version written by the store itself; the others are the model's.
 _STORE_FILES = {"baseline.json", "calibration.npz", "conditions.npz", "regimes.npz"}
 _VERSION_RE = re.compile(r"^v(\d+)$")
-_NAME_RE = re.compile(r"^[^/\\\x00]+$")
 
 
 def check_camera_name(name: str) -> str:
-    """Camera names become folder names: refuse ones that could escape the store."""
-    if not name or not _NAME_RE.match(name) or name in (".", "..") or name.startswith("."):
-        raise UsageError(f"invalid camera name {name!r}")
+    """Camera names become folder names: refuse ones that could escape the store or that no
+    camera folder can have (:func:`inspector.names.is_camera_name`)."""
+    if not is_camera_name(name):
+        raise UsageError(f"invalid camera name {name!r} ({CAMERA_NAME_RULE})")
     return name
 
 
@@ -212,7 +213,7 @@ class Store:
         if not self.root.is_dir():
             return []
         return sorted(p.name for p in self.root.iterdir()
-                      if p.is_dir() and not p.name.startswith(".") and self.versions(p.name))
+                      if p.is_dir() and is_camera_name(p.name) and self.versions(p.name))
 
     def versions(self, camera: str) -> list[str]:
         """Version ids of a camera, oldest first (damaged ones included: a version folder
