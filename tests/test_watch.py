@@ -25,6 +25,7 @@ import pytest
 from inspector.cli import main as cli
 from inspector.core.events import EventSettings, FramePoint, group_events
 from inspector.errors import UsageError
+from inspector.storage.frames import discover
 
 ROOT = Path(__file__).resolve().parents[1]
 W, H = 64, 48
@@ -347,6 +348,27 @@ def test_bad_files_during_watch_are_recorded(env):
     reasons = {k: r["reason"] for k, r in rows.items() if r["status"] == "skipped"}
     assert set(reasons) == {"dock/notes.jpg", "dock/empty.png", "dock/cut.png", "loose.png"}
     assert "truncated" in reasons["dock/cut.png"] and "camera folder" in reasons["loose.png"]
+    assert sum(r["status"] == "scored" for r in rows.values()) == 4
+
+
+def test_a_link_that_points_to_nothing_is_recorded_as_scan_records_it(env):
+    # scan records a dangling symbolic link in skipped.csv (storage/frames.discover); watch
+    # records it too, with the same reason, whether it was there at start or came later.
+    d = env["src"] / "dock"
+    d.mkdir()
+    (d / "before.png").symlink_to(env["tmp"] / "gone.png")  # outside the folder
+
+    def writer():
+        write_frames(env["src"], "dock", range(2))
+        (d / "later.png").symlink_to(d / "nothing.png")  # inside the folder, to nothing
+        write_frames(env["src"], "dock", range(2, 4))
+
+    assert run_watch(env, writer) == 0
+    rows = check_agree(env)
+    reasons = {k: r["reason"] for k, r in rows.items() if r["status"] == "skipped"}
+    assert reasons == {s.rel: s.reason for s in discover(env["src"])[1]}
+    assert reasons == {"dock/before.png": "link leads outside the scanned folder",
+                       "dock/later.png": "link points to nothing"}
     assert sum(r["status"] == "scored" for r in rows.values()) == 4
 
 

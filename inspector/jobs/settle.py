@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import os
 import queue
+import stat
 import time
 from collections import deque
 from collections.abc import Callable
@@ -58,6 +59,20 @@ class _Pending:
     size: int
     mtime: float
     changed: float  # monotonic time of the last change seen
+
+
+def file_stat(path: str) -> os.stat_result:
+    """``os.stat(path)``; for a symbolic link that points to nothing, the link's own
+    ``os.lstat``, so that it is collected like any file and recorded as skipped with the
+    reason :func:`~inspector.storage.frames.frame_file` gives (as ``scan`` does), never
+    dropped. Raises OSError when there is nothing at ``path``."""
+    try:
+        return os.stat(path)
+    except FileNotFoundError:
+        st = os.lstat(path)
+        if not stat.S_ISLNK(st.st_mode):
+            raise
+        return st
 
 
 def is_done(row, size, mtime) -> bool:
@@ -184,11 +199,11 @@ class Settler:
         if any(is_ignored_name(part) for part in rel.split(os.sep)):
             return
         try:
-            st = os.stat(path)
+            st = file_stat(path)
         except OSError:
             self._pending.pop(path, None)
             return
-        if not os.path.isfile(path):
+        if not (stat.S_ISREG(st.st_mode) or stat.S_ISLNK(st.st_mode)):
             return
         self.last_activity = time.monotonic()
         if renamed:  # renamed into place: the writer is done with it
@@ -210,7 +225,7 @@ class Settler:
         for path in due:
             p = self._pending[path]
             try:
-                st = os.stat(path)
+                st = file_stat(path)
             except OSError:
                 del self._pending[path]
                 self._complete(path, p.size, p.mtime, gone="deleted before it could be read")
@@ -249,7 +264,7 @@ class Settler:
             if path in self._pending:
                 continue
             try:
-                st = os.stat(path)
+                st = file_stat(path)
             except OSError:
                 continue
             if is_done(rows.get(path), st.st_size, st.st_mtime):

@@ -153,6 +153,8 @@ def frame_file(path: Path, root: Path, camera: str | None = None) -> FrameFile |
         with open(path, "rb") as fh:
             head = fh.read(16)
     except FileNotFoundError:
+        if path.is_symlink():
+            return Skip(rel, cam, "link points to nothing")
         return Skip(rel, cam, "file disappeared before it could be read")
     except OSError as exc:
         return Skip(rel, cam, f"cannot read file: {exc.strerror or exc}")
