@@ -158,7 +158,9 @@ def _note(name: str, learned: dict) -> str:
     if name == "vae":
         return (f"epochs {learned.get('epochs')} (best {learned.get('best_epoch')}), "
                 f"held-out ELBO {learned.get('best_heldout_elbo_per_dim', float('nan')):.3f}"
-                f" nats/dim, {learned.get('parameters')} weights")
+                f" nats/dim, {learned.get('parameters')} weights; chain steps (best epoch) "
+                + ", ".join(f"{c['steps']} ({c['best_epoch']})"
+                            for c in learned.get("chain", []) + [learned]))
     return f"latent {learned.get('latent')}"
 
 

@@ -208,7 +208,8 @@ def _frames(n=20, h=48, w=64, seed=0):
     return np.clip(np.stack(out), 0, 255).astype(np.uint8)
 
 
-SMALL = dict(width=8, latent=4, epochs=3, patience=5, batch_size=8, threads=1, seed=0)
+SMALL = dict(width=8, latent=4, epochs=3, steps=24, patience=5, batch_size=8, threads=1,
+             seed=0)
 
 
 def test_patch_vae_fit_save_load_and_mask(tmp_path):
@@ -231,7 +232,11 @@ def test_patch_vae_fit_save_load_and_mask(tmp_path):
     assert np.all(held.maps[:, :2, :4] == 0)
     facts = model.learned()
     assert [c["train_frames"] for c in facts["chain"]] == [5, 9, 13]
-    assert facts["epochs"] == 3 and facts["train_frames"] == 17
+    assert facts["train_frames"] == 17
+    # ``steps`` alone bounds training: the first model (5 frames, 1 batch a pass) takes all
+    # 24 steps in 3 epochs of 8 batches, each later one its 0.25 * 24 = 6 warm steps.
+    assert [(c["steps"], c["epochs"]) for c in facts["chain"]] == [(24, 3), (6, 1), (6, 1)]
+    assert facts["steps"] == 6 and facts["epochs"] == 1
     assert facts["stop_frames"] == 1 and facts["gap_frames"] == 2
     assert math.isfinite(facts["best_heldout_elbo"])
     json.dumps(facts)
