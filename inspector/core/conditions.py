@@ -40,7 +40,6 @@ from inspector.core.image import (
     phase_spectrum,
     robust_gains,
     shift_images,
-    trusted,
 )
 from inspector.core.estimator import Estimator
 
@@ -280,8 +279,6 @@ class Conditions(Estimator):
             gains = robust_gains(fitted, ref, keep)
         out = np.empty_like(images)
         sigma = max(images.shape[1:3]) / 8.0
-        if self.lighting == "local":
-            ref_trusted = trusted(ref) if keep is None else (trusted(ref) & keep)
         for i, img in enumerate(images):
             fill = None
             if i in moved:
@@ -294,9 +291,10 @@ class Conditions(Estimator):
                 gain, offset = gains[i]
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field)
+                    # (brightness_field's keep= is not used: leaving clipped pixels out of the
+                    # field made bench/scenes.py's altered counter frames 0/15 -> 4/15 flagged)
                     field = brightness_field(fitted[i], ref, sigma, gain, offset,
-                                             scale=gain, channels=3,
-                                             keep=trusted(fitted[i]) & ref_trusted)
+                                             scale=gain, channels=3)
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:

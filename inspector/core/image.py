@@ -108,7 +108,9 @@ def robust_gains(frames: np.ndarray, reference: np.ndarray,
     step = gain_step(frames.shape[1:3])
     x = np.asarray(frames[:, ::step, ::step], np.float64).reshape(n, -1)
     y = np.broadcast_to(np.asarray(reference, np.float64)[::step, ::step].ravel(), x.shape)
-    ok = trusted(x) & trusted(y)
+    # Clipped in the frame only: leaving out the reference's clipped pixels too made the
+    # altered frames of bench/scenes.py worse (counter 0/15 -> 4/15 flagged).
+    ok = trusted(x)
     if keep is not None:
         ok &= np.asarray(keep)[::step, ::step].ravel()[None]
     out = np.tile([1.0, 0.0], (n, 1))
