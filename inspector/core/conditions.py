@@ -254,18 +254,16 @@ class Conditions(Estimator):
             if known is None:
                 found = phase_shifts(g_all, self._phase_spectrum(ref), self.ignore_)
             for i, g in enumerate(g_all):
-                if known is not None:  # measured before: moved back as measured
-                    dx, dy = known[i]
-                    if np.hypot(dx, dy) > 0.05:
-                        aligned[i] = shift_images(g, -dx, -dy)
-                else:
-                    dx, dy = found[i]
-                    if np.hypot(dx, dy) > 0.05:
-                        back = shift_images(g, -dx, -dy)
-                        if correlation(back, ref, keep) <= correlation(g, ref, keep):
-                            dx = dy = 0.0  # no better aligned: a large change fooled the peak
-                        else:
-                            aligned[i] = back
+                dx, dy = found[i] if known is None else known[i]
+                if np.hypot(dx, dy) > 0.05:
+                    back = shift_images(g, -dx, -dy)
+                    # a shift measured before is taken as measured; a new one only when the
+                    # frame is better aligned (a large change can fool the peak)
+                    if known is None and (correlation(back, ref, keep)
+                                          <= correlation(g, ref, keep)):
+                        dx = dy = 0.0
+                    else:
+                        aligned[i] = back
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
                     moved[i] = (dx, dy)

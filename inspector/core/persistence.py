@@ -217,7 +217,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                     since[i] = min(float(np.nanmedian(onset[region])), t)
             continue
         late_buf, late_t = [], []
-        if buf_t and (t - buf_t[-1] > max_gap or t < buf_t[-1] or b != block):
+        if buf_t and (t - buf_t[-1] > max_gap or b != block):  # (late frames: above)
             buf, buf_t, onset = [], [], None
         block = b
         buf.append(maps[i])
