@@ -186,6 +186,38 @@ def test_clipped_lamp_takes_the_reference_at_any_exposure_unless_it_goes_out():
     assert c.prepare(off[None]).images[0][lamp].mean() < 100
 
 
+def test_clipped_pixel_masks_agree_with_the_brightest_channel():
+    # The masks of clipped pixels and of the reference's glare are found with cv2.inRange
+    # (one pass over the colour frame); they must select what the plain definition selects,
+    # the brightest channel >= 250 (and >= the glare floor), written here with numpy.
+    ref, normal = _with_lamp()
+    normal = normal.copy()
+    normal[:, 100:110, 20:40, 0] = 252  # a clipped red patch beside the lamp in every frame
+    c = Conditions(lighting="local", register=False, health=False).fit(normal)
+    rng = np.random.default_rng(5)
+    frames = [np.clip(normal[0] * g + rng.normal(0, 3, normal[0].shape), 0, 255).astype(np.uint8)
+              for g in (0.6, 0.9, 1.0, 1.3)]
+    frames[2][60:70, 60:90] = (255, 10, 10)   # clipped in one channel only
+    frames[1][80:90, 20:30] = (100, 250, 100)  # at the limit: clipped
+    frames[1][80:90, 40:50] = (249, 249, 249)  # just below it: not clipped
+    frames[2][:, :4] = 0                       # black, floor 0 under the glare test below
+    got = c.prepare(np.stack(frames)).images
+    ref_rgb = c.reference_rgb_
+    brightest_ref = ref_rgb.max(axis=2)
+    glare = cv2.dilate((brightest_ref >= 250).astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
+    floor = (brightest_ref.astype(np.float32) * 0.9).astype(np.uint8)
+    for frame, out in zip(frames, got):
+        rec = Conditions(lighting="local", register=False, health=False)
+        rec.__dict__.update({k: v for k, v in c.__dict__.items() if k != "_ref_terms"})
+        rec.reference_rgb_ = None  # the normalised frame before any clip handling
+        o = rec.prepare(frame[None]).images[0]
+        clipped = frame.max(axis=2) >= 250
+        near = cv2.dilate(clipped.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
+        o[near] = np.maximum(o, ref_rgb)[near]
+        o[glare & (o.max(axis=2) >= floor)] = ref_rgb[glare & (o.max(axis=2) >= floor)]
+        np.testing.assert_array_equal(out, o)
+
+
 def test_text_boxes_found_around_a_running_clock():
     rng = np.random.default_rng(0)
     base = skdata.astronaut()[::2, ::2].astype(np.float32).mean(axis=2)  # bundled image

@@ -251,3 +251,19 @@ def test_chroma_weight_recovers_group_noise_like_factor_analysis():
     ll = [multivariate_normal(mean, C).logpdf(test).mean() for C in (weighted, plain)]
     assert ll[0] > ll[1] + 1.0
     assert chroma_weight(cov[:, :n_luma, :n_luma], n_luma, latent=q) == 1.0  # no chroma
+
+
+def test_planes_are_the_ycrcb_planes_with_exact_2x2_chroma_means():
+    # ITU-R BT.601 YCrCb as OpenCV converts it (the JPEG convention); the chroma planes are
+    # the exact means of 2 x 2 blocks, written here with numpy on a bundled photograph.
+    from skimage import data as skdata
+
+    from inspector.core.features import _planes
+
+    img = skdata.astronaut()[:64, :96]
+    images = np.stack([img, img[::-1], img[:, ::-1]])
+    luma, chroma = _planes(images, True)
+    ycc = np.stack([cv2.cvtColor(x, cv2.COLOR_RGB2YCrCb) for x in images])
+    np.testing.assert_array_equal(luma, ycc[..., 0])
+    want = ycc[..., 1:].astype(np.float64).reshape(3, 32, 2, 48, 2, 2).mean(axis=(2, 4))
+    np.testing.assert_array_equal(chroma, want.astype(np.float32))

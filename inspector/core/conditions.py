@@ -55,6 +55,8 @@ _NEAR = np.ones((3, 3), np.uint8)
 #: switched off or an object in front of it is far darker and stays (common practice, no
 #: source).
 GLARE_TOLERANCE = 0.1
+#: ``cv2.inRange`` bounds of a pixel none of whose channels is clipped white (>= 250).
+_BLACK, _UNCLIPPED = (0, 0, 0), (249, 249, 249)
 #: A textured cell whose correlation with the reference falls below this is lost from view.
 COVER_CORRELATION = 0.2
 
@@ -298,14 +300,14 @@ class Conditions(Estimator):
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
                 if ref_rgb is not None:
-                    brightest = _channel_max(img)
-                    if brightest.max() >= 250:  # any clipped pixel at all
-                        clipped = cv2.compare(brightest, 250, cv2.CMP_GE)  # 255 where clipped
+                    unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
+                    if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
+                        clipped = cv2.bitwise_not(unclipped)
                         cv2.copyTo(cv2.max(o, ref_rgb), cv2.dilate(clipped, _NEAR), o)
-                    glare, floor = self._reference_glare(ref_rgb)
-                    if glare is not None:
-                        cv2.copyTo(ref_rgb, glare & cv2.compare(_channel_max(o), floor,
-                                                                cv2.CMP_GE), o)
+                    glare, below = self._reference_glare(ref_rgb)
+                    if glare is not None:  # glare pixels whose brightest channel is >= floor
+                        cv2.copyTo(ref_rgb, cv2.bitwise_and(
+                            glare, cv2.bitwise_not(cv2.inRange(o, *below))), o)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
             out[i] = o
@@ -332,17 +334,23 @@ class Conditions(Estimator):
             self._spectrum = (ref, phase_spectrum(ref, self.ignore_))
         return self._spectrum[1]
 
-    def _reference_glare(self, ref_rgb: np.ndarray) -> tuple[np.ndarray | None, np.ndarray]:
+    def _reference_glare(self, ref_rgb: np.ndarray
+                         ) -> tuple[np.ndarray | None, tuple[np.ndarray, np.ndarray]]:
         """The dilated mask of the colour reference's clipped whites, (H, W) uint8 (None
-        when it has none), and the brightest channel a frame must keep there to read as
-        that glare, (H, W) uint8 (:data:`GLARE_TOLERANCE` below the reference's); computed
-        once per reference rather than once per frame."""
+        when it has none), and the bounds of ``cv2.inRange`` that are met where a frame's
+        brightest channel is below what it must keep there to read as that glare
+        (:data:`GLARE_TOLERANCE` below the reference's): every channel <= floor - 1, and
+        never where the floor is 0 (lower bound 1 > upper bound 0); each (H, W, 3) uint8.
+        Computed once per reference rather than once per frame."""
         if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
             brightest = _channel_max(np.asarray(ref_rgb))
             clipped = (brightest >= 250).astype(np.uint8)
             glare = cv2.dilate(clipped, _NEAR) if clipped.any() else None
             floor = (brightest.astype(np.float32) * (1.0 - GLARE_TOLERANCE)).astype(np.uint8)
-            self._ref_terms = (ref_rgb, glare, floor)
+            lower = (floor == 0).astype(np.uint8)
+            upper = np.where(floor == 0, 0, floor.astype(np.int16) - 1).astype(np.uint8)
+            below = (cv2.merge([lower] * 3), cv2.merge([upper] * 3))
+            self._ref_terms = (ref_rgb, glare, below)
         return self._ref_terms[1], self._ref_terms[2]
 
     def measures(self, prepared: Prepared, previous: np.ndarray | None = None

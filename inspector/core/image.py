@@ -229,10 +229,21 @@ def phase_shifts(frames: np.ndarray, spectrum: np.ndarray,
     window = _hanning((h, w))
     step = np.arange(-2, 3)
     out = np.zeros((n, 2))
+    # the ignored pixels take the mean of the others (as _filled), set after windowing
+    where = None if ignore is None or not ignore.any() else np.flatnonzero(ignore)
+    keep = None if where is None else (~ignore).astype(np.uint8)
+    windowed = np.empty((h, w), np.float32)
+    mag = np.empty(spectrum.shape, np.float32)
     for i, frame in enumerate(frames):
-        cross = np.conj(sfft.rfft2(_filled(frame, ignore) * window, s=size, workers=1))
+        np.multiply(frame, window, out=windowed)
+        if where is not None:
+            windowed.flat[where] = np.float32(cv2.mean(frame, keep)[0]) * window.flat[where]
+        cross = sfft.rfft2(windowed, s=size, workers=1)
+        np.conjugate(cross, out=cross)
         cross *= spectrum
-        cross *= np.float32(1) / np.maximum(np.abs(cross), np.float32(1e-20))
+        np.abs(cross, out=mag)
+        np.maximum(mag, np.float32(1e-20), out=mag)
+        cross /= mag
         surface = sfft.irfft2(cross, s=size, workers=1)  # peaks at minus the shift
         py, px = divmod(int(surface.argmax()), cols)
         box = surface[np.ix_((py + step) % rows, (px + step) % cols)].astype(np.float64)

@@ -917,6 +917,9 @@ class _BlockLayout:
         self.B, self.perm, self.mean, self.observed = B, perm, mean, observed
         self.chroma_weight = float(chroma_weight)
         self.grid, self.r, self.stride, self.colour = grid, r, stride, colour
+        # the blocks with an unobserved entry (the only ones the mask changes)
+        self._partial = (None if observed is None else
+                         np.nonzero((observed < 1).any(axis=-1)))
 
     def feature_order(self) -> np.ndarray:
         """``B`` back in feature order, (L, d, q) float32 (made on demand)."""
@@ -978,10 +981,11 @@ class _BlockLayout:
             src = chroma[:, :bh * hs, :bw * hs].reshape(n, bh, hs, bw, hs, 2)
             np.copyto(dst, src.transpose(1, 3, 0, 5, 2, 4))
         out -= self.mean[:, :, None, :]
-        if self.chroma_weight != 1.0:
+        if self.colour and self.chroma_weight != 1.0:
             out[..., s * s:] *= np.float32(self.chroma_weight)
-        if self.observed is not None:
-            out *= self.observed[:, :, None, :]
+        if self._partial is not None:
+            rows, cols = self._partial
+            out[rows, cols] *= self.observed[rows, cols][:, None, :]
         return out
 
     def nll(self, model: "PatchPPCA", images: np.ndarray) -> np.ndarray:
