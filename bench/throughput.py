@@ -14,7 +14,13 @@ and prints frames/s of both and their ratio (target: >= 0.8 on 2 cores), by wall
 and per CPU second of this process. Alternating rounds in one run keeps the ratio fair on
 a shared, noisy machine.
 
-    python bench/throughput.py [--frames 200] [--rounds 3]
+With ``--stages``, one more scan runs with a CPU timer around each stage (per thread,
+``time.thread_time``) and prints where a frame's CPU goes: decoding, preparation
+(registration, gain fit, brightness field, ...), health measures, the model, judging,
+writing, baseline loading and discovery. The timers cost a little CPU themselves, so the
+stage table comes from its own scan, not from the rounds above.
+
+    python bench/throughput.py [--frames 200] [--rounds 3] [--stages]
 """
 
 from __future__ import annotations
@@ -23,7 +29,10 @@ import argparse
 import os
 import statistics
 import sys
+import threading
 import time
+from collections import defaultdict
+from contextlib import contextmanager
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))  # bench/, for the shared helper
@@ -40,14 +49,18 @@ def main(argv: list[str] | None = None) -> int:
     add_options(ap, size="1920x1080", normal=120)
     ap.add_argument("--long-side", type=int, default=0,
                     help="working long side (default: the tool's default)")
+    ap.add_argument("--stages", action="store_true",
+                    help="also print the CPU of each stage of a scan, per frame")
     args = ap.parse_args(argv)
     with work_folder(args.keep) as work:
-        run(work, args.frames, args.rounds, args.normal, args.size, args.long_side)
+        run(work, args.frames, args.rounds, args.normal, args.size, args.long_side,
+            args.stages)
     return 0
 
 
 def run(work: Path, n: int, rounds: int, normal: int = 120,
-        size: tuple[int, int] = (1920, 1080), long_side: int = 0) -> None:
+        size: tuple[int, int] = (1920, 1080), long_side: int = 0,
+        stages: bool = False) -> None:
     # Mostly normal frames, as in a real stream (overlays are drawn for flagged frames only).
     scenario, seconds = depot_frames(work, n, normal, size)
     print(f"{n} + {2 * normal} frames of {size[0]}x{size[1]} ready in {seconds:.1f} s")
@@ -86,6 +99,85 @@ def run(work: Path, n: int, rounds: int, normal: int = 120,
     # this process are steadier, so both ratios are printed.
     print(f"per CPU second: decode {med(decode_cpu):.1f}, scan {med(scan_cpu):.1f} frames, "
           f"ratio {med(scan_cpu) / med(decode_cpu):.2f}; load average {os.getloadavg()[0]:.1f}")
+    if stages:
+        stage_table(scenario.new, config, store, work / "out-stages")
+
+
+#: Stages timed by ``--stages``: (label, depth, object, attribute). The attribute is
+#: replaced for the duration of one scan by a wrapper adding its CPU to the label; a stage
+#: at depth d runs inside the stage above it at depth d - 1.
+def _stages():
+    import inspector.core.conditions as conditions
+    import inspector.jobs.scan as scan
+    import inspector.storage.frames as frames
+    from inspector.core.baseline import Baseline
+    from inspector.core.conditions import Conditions
+    from inspector.core.models.ppca import PatchPPCA
+    from inspector.storage.results import ResultWriter
+
+    return [
+        ("discovery of the files", 0, scan, "discover"),
+        ("baseline loading", 0, scan, "load_baseline"),
+        ("decoding (read_frame)", 0, frames, "read_frame"),
+        ("evaluate (worker threads)", 0, Baseline, "evaluate"),
+        ("preparation", 1, Conditions, "prepare"),
+        ("grey", 2, conditions, "grey"),
+        ("registration (phase correlation)", 2, conditions, "phase_shifts"),
+        ("shift check (correlation)", 2, conditions, "correlation"),
+        ("robust gain fit", 2, conditions, "robust_gains"),
+        ("brightness field", 2, conditions, "brightness_field"),
+        ("health measures", 1, Conditions, "measures"),
+        ("covered (cell correlation)", 2, conditions, "cell_correlation"),
+        ("focus (cell detail)", 2, conditions, "cell_detail"),
+        ("PPCA maps", 1, PatchPPCA, "score_maps"),
+        ("judging (thresholds, p-values)", 0, Baseline, "judge"),
+        ("writing (CSV, ledger, overlays)", 0, ResultWriter, "write"),
+        ("overlays of flagged frames", 1, ResultWriter, "_save_files"),
+    ]
+
+
+@contextmanager
+def _timed(stages, spent):
+    lock = threading.Lock()
+    saved = []
+    for label, _, owner, name in stages:
+        original = getattr(owner, name)
+        saved.append((owner, name, original))
+
+        def timed(*args, _f=original, _label=label, **kwargs):
+            t = time.thread_time()
+            try:
+                return _f(*args, **kwargs)
+            finally:
+                with lock:
+                    spent[_label] += time.thread_time() - t
+
+        setattr(owner, name, timed)
+    try:
+        yield
+    finally:
+        for owner, name, original in reversed(saved):
+            setattr(owner, name, original)
+
+
+def stage_table(source: Path, config, store: Store, out: Path) -> None:
+    """One more scan of ``source`` with each stage timed; prints CPU ms per frame."""
+    stages = _stages()
+    spent: dict[str, float] = defaultdict(float)
+    with _timed(stages, spent):
+        c = time.process_time()
+        summary = run_scan(source, config, store, out, out / "all.csv")
+        total = time.process_time() - c
+    n = max(summary.scored, 1)
+    print(f"CPU per frame by stage ({summary.scored} frames, one scan; a stage's figure "
+          f"includes the stages indented under it):")
+    print(f"  {'whole scan (process CPU)':40s} {1000 * total / n:6.2f} ms")
+    top = 0.0
+    for label, depth, _, _ in stages:
+        if depth == 0:
+            top += spent[label]
+        print(f"  {'  ' * depth + label:40s} {1000 * spent[label] / n:6.2f} ms")
+    print(f"  {'other (threads, queues, stacking, ...)':40s} {1000 * (total - top) / n:6.2f} ms")
 
 
 if __name__ == "__main__":

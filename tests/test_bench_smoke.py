@@ -22,9 +22,10 @@ def _script(name: str):
 def test_throughput_bench_runs(tmp_path, capsys):
     rc = _script("throughput").main(["--frames", "6", "--normal", "12", "--rounds", "1",
                                      "--size", "640x360", "--long-side", "96",
-                                     "--keep", str(tmp_path)])
+                                     "--keep", str(tmp_path), "--stages"])
     out = capsys.readouterr().out
     assert rc == 0 and "ratio scan/decode" in out and "per CPU second" in out
+    assert "registration (phase correlation)" in out and "baseline loading" in out
 
 
 def test_conditions_bench_runs(capsys):

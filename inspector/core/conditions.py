@@ -381,7 +381,7 @@ class Conditions(Estimator):
             clipped &= ~self.ignore_.reshape(1, -1)
         count = max(flat.shape[1] if kept is None else len(kept), 1)
         out = {"dark": np.percentile(quarter, 99, axis=1),
-               "bright": clipped.sum(axis=1) / count,
+               "bright": np.count_nonzero(clipped, axis=1) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),
                "shift": np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1])}

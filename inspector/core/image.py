@@ -419,8 +419,10 @@ def cell_detail(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     ndarray, shape (grid, grid) or (n, grid, grid), float32
     """
     g = np.asarray(g, np.float32)
-    lap = np.stack([cv2.Laplacian(x, cv2.CV_32F, ksize=3) for x in g.reshape(-1, *g.shape[-2:])])
-    return _cell_var(lap.reshape(g.shape), grid).astype(np.float32)
+    lap = np.empty(g.shape, np.float32)
+    for x, out in zip(g.reshape(-1, *g.shape[-2:]), lap.reshape(-1, *g.shape[-2:])):
+        cv2.Laplacian(x, cv2.CV_32F, dst=out, ksize=3)
+    return _cell_var(lap, grid).astype(np.float32)
 
 
 def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
