@@ -946,9 +946,9 @@ class _BlockLayout:
         perm = np.array(order)
         gh, gw = model.grid_
         e = len(perm) // (r * r)
-        per_loc = model._mean_grey[:, perm].reshape(gh, gw, r, r, e)
+        per_loc = np.take(model._mean_grey, perm, axis=1).reshape(gh, gw, r, r, e)
         seen = (np.ones(per_loc.shape, bool) if model.observed_ is None else
-                model.observed_[:, perm].reshape(gh, gw, r, r, e))
+                np.take(model.observed_, perm, axis=1).reshape(gh, gw, r, r, e))
         mean = np.zeros((gh + r - 1, gw + r - 1, e), np.float32)
         obs = np.ones(mean.shape, bool)
         for k in range(r * r):
@@ -961,7 +961,8 @@ class _BlockLayout:
                     or (obs[a:a + gh, b:b + gw] != seen[:, :, a, b]).any()):
                 return None
         q = B.shape[2]
-        parts = [np.ascontiguousarray(B[:, perm[k * e:(k + 1) * e], :]).reshape(gh, gw, e, q)
+        # (np.take gathers along an axis several times faster than fancy indexing)
+        parts = [np.take(B, perm[k * e:(k + 1) * e], axis=1).reshape(gh, gw, e, q)
                  for k in range(r * r)]
         return cls(parts, perm, mean, None if obs.all() else obs.astype(np.float32), (gh, gw),
                    r, s, colour, getattr(model, "chroma_weight_", 1.0))
