@@ -17,10 +17,12 @@ from inspector.core.events import FramePoint, group_events
 from inspector.core.persistence import (
     BUSY_SHARE,
     MAX_SPAN,
+    Persistence,
     StreamState,
     calibrate_persistence,
     clearly_busy,
     local_maps,
+    past_level,
     persistence,
     persistence_on,
     steady_level,
@@ -52,6 +54,61 @@ def test_steady_level_matches_scipy_rank_filters_along_time():
         assert full.sum() == len(maps) - window + 1
         np.testing.assert_allclose(run.maps[full], ref[full], atol=1e-5)
         np.testing.assert_allclose(run.scores, run.maps.reshape(len(maps), -1).max(axis=1))
+
+
+def test_step_from_the_frames_before_matches_scipy_rank_filters():
+    # Reference: scipy.ndimage.rank_filter along time for the steady level (as above) and for
+    # the second largest of the ``past`` frames before the window (origin shifted so that the
+    # filter covers [t - window - past + 1, t - window]); the local maps divided by their
+    # cells' robust spread, scipy.stats.median_abs_deviation(scale="normal"), floored at 1.
+    from scipy.stats import median_abs_deviation
+
+    maps, times = _stream(30)
+    maps[10:] *= 3.0  # a disturbed stretch: its robust spread is about 3
+    local = maps - np.median(maps, axis=(1, 2), keepdims=True)
+    spread = np.maximum(median_abs_deviation(local.reshape(30, -1), axis=1, scale="normal"), 1)
+    local = local / spread[:, None, None]
+    np.testing.assert_allclose(local_maps(maps, robust=True), local, atol=1e-5)
+    window, past = 3, 4
+    run = persistence(maps, times, window, 10.0, past=past, robust=True)
+    low = minimum_filter1d(local, size=window, axis=0, origin=(window - 1) // 2)
+    second = rank_filter(local, rank=window - 2, size=(window, 1, 1),
+                         origin=((window - 1) // 2, 0, 0))
+    level = 2 * low - second
+    before = np.full_like(local, np.nan)
+    before[window + past - 1:] = rank_filter(local, rank=past - 2, size=(past, 1, 1),
+                                             origin=((past - 1) // 2, 0, 0))[past - 1:-window]
+    full = np.arange(30) >= window + past - 1
+    assert run.stepped.tolist() == (np.arange(30) >= window).tolist()
+    np.testing.assert_allclose(run.maps[full], (level - np.maximum(before, 0))[full], atol=1e-4)
+    np.testing.assert_allclose(run.levels[window - 1:],
+                               level[window - 1:].reshape(30 - window + 1, -1).max(axis=1),
+                               atol=1e-4)
+    # One past frame: its own value; never below the normal level 0.
+    one = np.array([[[-3.0, 5.0]]], np.float32)
+    assert past_level(one).tolist() == [[0.0, 5.0]]
+
+
+def test_what_was_there_before_is_not_counted_and_what_appears_stays_flagged():
+    # A patch already there when the stretch begins (sun through a window) against a thing
+    # that appears at frame 8 and stays to frame 19 (a parcel): with the frames before the
+    # window as reference the patch scores nothing once they are there, the parcel is flagged
+    # on its window-th frame and, its reference kept while it is above, as long as it stays;
+    # once it is taken away nothing is flagged.
+    n = 26
+    maps = np.zeros((n, 6, 8), np.float32)
+    maps[:, 0, 0] = 50.0 + np.arange(n) * 0.1      # the patch, slowly brighter
+    maps[8:20, 4, 5] = 30.0                         # the parcel
+    times = np.arange(n) * 2.0
+    run = persistence(maps, times, 4, 10.0, threshold=5.0, past=4, start_threshold=60.0)
+    flagged = run.filled & (run.scores > np.where(run.stepped, 5.0, 60.0))
+    assert flagged.tolist() == [False] * 11 + [True] * 9 + [False] * 6
+    assert run.maps[11:, 0, 0].max() < 1.0           # the patch: no step
+    assert run.levels[3] > 49.0 and not run.stepped[3]  # first full window: the level itself
+    assert (run.since[11:20] == times[8]).all()
+    # Without keeping the reference, the parcel goes into it and stops being flagged.
+    loose = persistence(maps, times, 4, 10.0, past=4)
+    assert (loose.scores[11:20] > 5.0).sum() < 9
 
 
 def test_what_stays_outscores_what_passes():
@@ -153,6 +210,18 @@ def test_calibrate_tells_busy_from_quiet():
     b = calibrate_persistence(busy, times, blocks, alpha=0.01)
     assert b.busy and b.transient_share > 0.3
     assert b.threshold.value < 10.0  # passers-by do not set the persistence threshold
+    # Flags come from the step from the frames before the window; the first frame of a
+    # stretch, with none before it, is held to the steady level of every window.
+    assert b.past == 4 and b.robust and b.start_threshold is not None
+    assert len(b.start_scores) == len(b.calibration_scores) + 5  # one per block has no past
+    rank = math.ceil((len(b.start_scores) + 1) * 0.99)
+    assert b.start_threshold.value == pytest.approx(np.sort(b.start_scores)[rank - 1])
+    again = Persistence.from_saved(b.to_json(), b.calibration_scores, b.start_scores)
+    assert again.to_json() == b.to_json()
+    old = Persistence.from_saved({k: v for k, v in b.to_json().items()
+                                  if k not in ("past", "robust", "start_threshold")},
+                                 b.calibration_scores)  # saved before the step
+    assert old.past == 0 and not old.robust and old.start_threshold is None
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

@@ -45,7 +45,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from inspector.core.calibration import Threshold, conformal_threshold
+from inspector.core.calibration import Threshold, conformal_p_values, conformal_threshold
 from inspector.core.scoring import frame_scores
 
 #: Frames a region must stay unusual in before it is flagged (the flag comes on the
@@ -85,12 +85,16 @@ class StreamState:
         threshold (NaN where it is not).
     block : int
         Time block of the last frame (calibration only; -1 otherwise).
+    held : ndarray, shape (h, w), float32, or None
+        Per cell above its threshold in the last frame, the reference it keeps (NaN where
+        none is held); see :func:`persistence` (``past``).
     """
 
     maps: np.ndarray
     times: np.ndarray
     onset: np.ndarray | None = None
     block: int = -1
+    held: np.ndarray | None = None
 
     @classmethod
     def empty(cls) -> "StreamState":
@@ -101,12 +105,14 @@ class StreamState:
         out = {"maps": self.maps, "times": self.times, "block": np.array(self.block)}
         if self.onset is not None:
             out["onset"] = self.onset
+        if self.held is not None:
+            out["held"] = self.held
         return out
 
     @classmethod
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> "StreamState":
         return cls(np.asarray(arrays["maps"], np.float32), np.asarray(arrays["times"], float),
-                   arrays.get("onset"), int(arrays.get("block", -1)))
+                   arrays.get("onset"), int(arrays.get("block", -1)), arrays.get("held"))
 
 
 @dataclass
@@ -132,6 +138,12 @@ class PersistenceResult:
         The state after the last frame.
     late : ndarray, shape (n,), bool
         The frame is older than a frame the stream had already taken (it arrived late).
+    stepped : ndarray, shape (n,), bool
+        The map is measured from a reference: frames before the window were there (see
+        ``past`` in :func:`persistence`).
+    levels : ndarray, shape (n,), float64
+        Maxima of the steady levels before the reference is taken off (the scores when
+        ``past`` is 0).
     """
 
     maps: np.ndarray
@@ -140,11 +152,14 @@ class PersistenceResult:
     since: np.ndarray
     state: StreamState
     late: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
+    stepped: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
+    levels: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
 
 def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float,
                 threshold: float | None = None, state: StreamState | None = None,
-                blocks: np.ndarray | None = None) -> PersistenceResult:
+                blocks: np.ndarray | None = None, past: int = 0, robust: bool = False,
+                start_threshold: float | None = None) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -169,6 +184,19 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         State after the previous call for the same stream (None: a new stream).
     blocks : ndarray, shape (n,), int, optional
         Time blocks (learn time): a new block starts a new window.
+    past : int >= 0
+        Frames just before the window whose level at each cell is the cell's reference
+        (:func:`past_level`): the persistence map is the window's steady level less the
+        reference, so what was already there before the window (a patch of sun, a lamp's
+        pool) is not counted, and what appeared and stayed is. A frame with at least one such
+        frame in its stretch of the stream has ``stepped`` set. 0: no reference (the steady
+        level itself).
+    robust : bool
+        Divide each local map by its cells' robust spread (see :func:`local_maps`).
+    start_threshold : float, optional
+        Threshold of frames without a frame before the window (``stepped`` unset); default
+        ``threshold``. Cells above their frame's threshold keep their reference while they
+        stay above it (held), so a thing that stays is not taken into its own reference.
 
     Returns
     -------
@@ -176,18 +204,22 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     """
     if window < 1:
         raise ValueError(f"window must be at least 1, got {window}")
-    maps = local_maps(maps)
+    maps = local_maps(maps, robust)
     times = np.asarray(times, np.float64)
     n = len(maps)
+    keep = window + past  # frames a map needs: the window and the frames before it
     st = state if state is not None and len(state.maps) else None
     buf = list(st.maps) if st is not None else []
     buf_t = list(st.times) if st is not None else []
     onset = st.onset if st is not None and st.onset is not None else None
+    held = st.held if st is not None and st.held is not None else None
     block = st.block if st is not None else -1
     if buf and buf[0].shape != maps.shape[1:]:
-        buf, buf_t, onset = [], [], None  # another baseline's map size: start again
+        buf, buf_t, onset, held = [], [], None, None  # another baseline's map size
     out = np.empty_like(maps)
+    levels = np.zeros(n)
     filled = np.zeros(n, bool)
+    stepped = np.zeros(n, bool)
     late = np.zeros(n, bool)
     late_buf: list[np.ndarray] = []
     late_t: list[float] = []
@@ -204,13 +236,16 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             pos = int(np.searchsorted(buf_t, t, side="right"))
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
                 late_buf, late_t = buf[:pos], buf_t[:pos]
-            late_buf, late_t = (late_buf + [maps[i]])[-window:], (late_t + [t])[-window:]
-            out[i] = steady_level(np.asarray(late_buf))
-            filled[i] = len(late_t) == window and float(np.max(np.diff(late_t))) <= max_gap
+            late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
+            level, out[i] = _step(late_buf, window)
+            levels[i] = float(level.max())
+            stepped[i] = past > 0 and len(late_buf) > window
+            filled[i] = (len(late_t) >= window
+                         and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
             if pos or buf_t[0] - t <= max_gap:
                 buf.insert(pos, maps[i])
                 buf_t.insert(pos, t)
-                del buf[:-window], buf_t[:-window]
+                del buf[:-keep], buf_t[:-keep]
             if threshold is not None and onset is not None:
                 region = out[i] > threshold
                 if region.any() and np.isfinite(onset[region]).any():
@@ -218,29 +253,76 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             continue
         late_buf, late_t = [], []
         if buf_t and (t - buf_t[-1] > max_gap or b != block):  # (late frames: above)
-            buf, buf_t, onset = [], [], None
+            buf, buf_t, onset, held = [], [], None, None
         block = b
         buf.append(maps[i])
         buf_t.append(t)
-        del buf[:-window], buf_t[:-window]
-        out[i] = steady_level(np.asarray(buf))
-        filled[i] = len(buf) == window
+        del buf[:-keep], buf_t[:-keep]
+        level, out[i] = _step(buf, window, held)
+        levels[i] = float(level.max())
+        stepped[i] = past > 0 and len(buf) > window
+        filled[i] = len(buf) >= window
         if threshold is not None:
-            above = maps[i] > threshold
+            limit = threshold if stepped[i] or start_threshold is None else start_threshold
+            above = maps[i] > limit
             if onset is None:
                 onset = np.full(maps.shape[1:], np.nan)
             onset = np.where(above, np.where(np.isnan(onset), t, onset), np.nan)
-            region = out[i] > threshold
+            region = out[i] > limit
             if region.any():
                 since[i] = float(np.median(onset[region]))
+            if past:  # cells above keep the reference they had (NaN: not held)
+                reference = level - out[i]
+                held = np.where(region & filled[i] & stepped[i], reference,
+                                np.nan).astype(np.float32)
     if not n:
         return PersistenceResult(out, np.zeros(0), filled, since,
-                                 state if state is not None else StreamState.empty(), late)
-    keep = window - 1
-    kept, kept_t = (buf[-keep:], buf_t[-keep:]) if keep else ([], [])
+                                 state if state is not None else StreamState.empty(), late,
+                                 stepped, levels)
+    kept, kept_t = (buf[-(keep - 1):], buf_t[-(keep - 1):]) if keep > 1 else ([], [])
     state_out = StreamState(np.array(kept, np.float32).reshape(len(kept), *maps.shape[1:]),
-                            np.array(kept_t, np.float64), onset, block)
-    return PersistenceResult(out, frame_scores(out), filled, since, state_out, late)
+                            np.array(kept_t, np.float64), onset, block, held)
+    return PersistenceResult(out, frame_scores(out), filled, since, state_out, late, stepped,
+                             levels)
+
+
+def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None
+          ) -> tuple[np.ndarray, np.ndarray]:
+    """Steady level of the last ``window`` of ``frames`` and that level less the reference
+    from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
+    reference from ``held`` (NaN where not held). Shapes (h, w), float32."""
+    level = steady_level(np.asarray(frames[-window:]))
+    before = frames[:-window]
+    reference = past_level(np.asarray(before)) if before else np.zeros_like(level)
+    if held is not None:
+        reference = np.where(np.isnan(held), reference, held)
+    return level, (level - reference).astype(np.float32)
+
+
+def past_level(past_maps: np.ndarray) -> np.ndarray:
+    """Per cell, the level of the frames just before a window: the reference a change is
+    measured from.
+
+    With the cell's values over those frames sorted, x(1) <= ... <= x(m): the second
+    largest, x(m-1) (x(1) when m = 1), and never below 0, the normal level of a local
+    map. The largest is set aside so that one passer-by in those frames does not hide what
+    appears after them; taking a high value otherwise (rather than the lowest) keeps a
+    region whose anomaly varies from frame to frame (a dark, noisy corner after the lamps go
+    off) from reading as a change. With :func:`steady_level` it makes the long-term /
+    short-term split of abandoned-object detection (Porikli, Ivanov & Haga 2008, from
+    memory): the window is compared with the frames just before it at the same place, so a
+    slow change of light covering a region, already there before the window, is not counted.
+
+    Parameters
+    ----------
+    past_maps : ndarray, shape (m, h, w), float, m >= 1
+
+    Returns
+    -------
+    ndarray, shape (h, w), float32, >= 0
+    """
+    q = np.sort(np.asarray(past_maps, np.float32), axis=0)
+    return np.maximum(q[-2] if len(q) >= 2 else q[0], 0.0)
 
 
 def steady_level(window_maps: np.ndarray) -> np.ndarray:
@@ -265,12 +347,21 @@ def steady_level(window_maps: np.ndarray) -> np.ndarray:
     return 2.0 * q[0] - q[-2]
 
 
-def local_maps(maps: np.ndarray) -> np.ndarray:
+def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
     """Anomaly maps less their median over the frame's cells.
 
     Parameters
     ----------
     maps : ndarray, shape (n, h, w), float
+    robust : bool
+        Also divide each map by its cells' robust spread when that is above the spread of
+        standardised normal cells: the median absolute deviation from the median times
+        1.4826, which estimates a normal standard deviation (Rousseeuw & Croux 1993,
+        "Alternatives to the median absolute deviation", JASA 88; as
+        ``scipy.stats.median_abs_deviation(scale="normal")``), floored at 1. A frame whose
+        whole view is disturbed (dark and noisy after the lamps go off, say) counts a cell
+        by how far it stands out from the rest of that frame; a frame where a thing covers
+        a small part of the view keeps its scale.
 
     Returns
     -------
@@ -279,7 +370,13 @@ def local_maps(maps: np.ndarray) -> np.ndarray:
     maps = np.asarray(maps, np.float32)
     if not len(maps):
         return maps
-    return maps - np.median(maps.reshape(len(maps), -1), axis=1).astype(np.float32)[:, None, None]
+    flat = maps.reshape(len(maps), -1)
+    centre = np.median(flat, axis=1).astype(np.float32)
+    out = maps - centre[:, None, None]
+    if robust:
+        spread = 1.4826 * np.median(np.abs(flat - centre[:, None]), axis=1)
+        out = out / np.maximum(spread, 1.0).astype(np.float32)[:, None, None]
+    return out
 
 
 def frame_interval(times: np.ndarray) -> float:
@@ -309,6 +406,17 @@ class Persistence:
     busy : bool
         The share is clearly above ``BUSY_SHARE`` (:func:`clearly_busy`): persistence is on
         by default.
+    past : int
+        Frames before the window the reference comes from (``past`` of
+        :func:`persistence`; 0 for baselines learnt before there was one).
+    robust : bool
+        Local maps scaled by their robust spread (``robust`` of :func:`persistence`).
+    start_threshold : Threshold or None
+        Threshold of frames with no frame before their window in their stretch of the
+        stream (the first of a run): the conformal threshold of the steady levels of every
+        held-out window. None: ``threshold`` for every frame.
+    start_scores : ndarray, shape (k,), or None
+        Its calibration scores.
     """
 
     window: int
@@ -317,6 +425,30 @@ class Persistence:
     calibration_scores: np.ndarray = field(repr=False)
     transient_share: float
     busy: bool
+    past: int = 0
+    robust: bool = False
+    start_threshold: Threshold | None = None
+    start_scores: np.ndarray | None = field(default=None, repr=False)
+
+    def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None
+            ) -> PersistenceResult:
+        """:func:`persistence` of a camera's frames with these settings and thresholds."""
+        return persistence(maps, times, self.window, self.max_gap, self.threshold.value,
+                           state, past=self.past, robust=self.robust,
+                           start_threshold=(self.start_threshold.value
+                                            if self.start_threshold is not None else None))
+
+    def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
+        """Threshold of each frame of ``run`` and its conformal p-value against the matching
+        calibration scores, shapes (n,)."""
+        stepped = run.stepped if self.start_threshold is not None else np.ones(len(run.scores),
+                                                                               bool)
+        thresholds = np.where(stepped, self.threshold.value,
+                              self.start_threshold.value if self.start_threshold else 0.0)
+        p = conformal_p_values(self.calibration_scores, run.scores)
+        if self.start_threshold is not None and self.start_scores is not None:
+            p = np.where(stepped, p, conformal_p_values(self.start_scores, run.scores))
+        return thresholds, p
 
     @property
     def span(self) -> float:
@@ -324,16 +456,24 @@ class Persistence:
         return self.window * self.max_gap / GAP_FACTOR
 
     def to_json(self) -> dict:
-        return {"window": self.window, "max_gap": self.max_gap,
-                "transient_share": self.transient_share, "busy": self.busy,
-                "threshold": self.threshold.to_dict()}
+        out = {"window": self.window, "max_gap": self.max_gap,
+               "transient_share": self.transient_share, "busy": self.busy,
+               "threshold": self.threshold.to_dict(), "past": self.past,
+               "robust": self.robust}
+        if self.start_threshold is not None:
+            out["start_threshold"] = self.start_threshold.to_dict()
+        return out
 
     @classmethod
-    def from_saved(cls, meta: dict, calibration_scores: np.ndarray) -> "Persistence":
+    def from_saved(cls, meta: dict, calibration_scores: np.ndarray,
+                   start_scores: np.ndarray | None = None) -> "Persistence":
+        start = meta.get("start_threshold")
         return cls(int(meta["window"]), float(meta["max_gap"]),
                    Threshold.from_dict(meta["threshold"]),
                    np.asarray(calibration_scores, np.float64), float(meta["transient_share"]),
-                   bool(meta["busy"]))
+                   bool(meta["busy"]), int(meta.get("past", 0)), bool(meta.get("robust", False)),
+                   Threshold.from_dict(start) if start else None,
+                   None if start_scores is None else np.asarray(start_scores, np.float64))
 
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
@@ -379,13 +519,22 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         raise ValueError(f"no run of {window} consecutive normal frames within "
                          f"{max_gap:.0f} s of each other")
     scores = run.scores[run.filled]
-    threshold = conformal_threshold(scores, alpha)
     single = frame_scores(np.asarray(maps, np.float32))[run.filled]
     transient = (single > LARGE * np.quantile(single, 0.25)) & (scores < single / LARGE)
     share = float(transient.mean())
     close = window * max_gap / GAP_FACTOR <= MAX_SPAN
-    return Persistence(window, max_gap, threshold, scores, share,
-                       close and clearly_busy(int(transient.sum()), len(transient)))
+    busy = close and clearly_busy(int(transient.sum()), len(transient))
+    # Flags come from the step from the frames just before the window, on robust local maps;
+    # frames with no frame before their window are held to the steady level of any window.
+    step = persistence(maps, times, window, max_gap, blocks=blocks, past=window, robust=True)
+    starts = step.levels[step.filled]
+    stepped = step.filled & step.stepped
+    if not stepped.any():
+        return Persistence(window, max_gap, conformal_threshold(starts, alpha), starts, share,
+                           busy, 0, True)
+    return Persistence(window, max_gap, conformal_threshold(step.scores[stepped], alpha),
+                       step.scores[stepped], share, busy, window, True,
+                       conformal_threshold(starts, alpha), starts)
 
 
 def clearly_busy(transient: int, frames: int, level: float = 0.05) -> bool:

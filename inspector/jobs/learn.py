@@ -435,7 +435,10 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     notes.append(f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
                  f"frames hold large short-lived anomalies{apart}; persistence "
                  f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}"
-                 + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f})"
+                 + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f}"
+                    + (f" on the change from the {p.past} frames before, "
+                       f"{p.start_threshold.value:.3f} for the first frames of a run"
+                       if p.start_threshold is not None else "") + ")"
                     if on else ": single-frame flags"))
     return p
 

@@ -15,8 +15,7 @@ import numpy as np
 
 from inspector.config import Config
 from inspector.core.baseline import Baseline, Evaluation
-from inspector.core.calibration import conformal_p_values
-from inspector.core.persistence import StreamState, persistence, persistence_on
+from inspector.core.persistence import StreamState, persistence_on
 from inspector.errors import FrameError
 from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import (
@@ -155,18 +154,16 @@ class Streams:
                 version, state = self.ledger.stream(cam) or ("", None)
             if version != baseline.version:
                 state = None
-            run = persistence(maps, np.array([r.time.timestamp() for r in results]),
-                              p.window, p.max_gap, p.threshold.value, state)
+            run = p.run(maps, np.array([r.time.timestamp() for r in results]), state)
             self._states[cam] = (baseline.version, run.state)
             if self.ledger is not None:
                 self.ledger.keep_stream(cam, baseline.version, run.state.arrays())
-        p_values = conformal_p_values(p.calibration_scores, run.scores)
+        thresholds, p_values = p.judged(run)
         for i, r in enumerate(results):
-            r.score, r.threshold, r.p_value = float(run.scores[i]), p.threshold.value, \
+            r.score, r.threshold, r.p_value = float(run.scores[i]), float(thresholds[i]), \
                 float(p_values[i])
             r.amap = run.maps[i]
-            r.flagged = bool(run.filled[i] and run.scores[i] > p.threshold.value
-                             and not r.health)
+            r.flagged = bool(run.filled[i] and run.scores[i] > thresholds[i] and not r.health)
             if np.isfinite(run.since[i]):
                 r.since = datetime.fromtimestamp(run.since[i], tz=r.time.tzinfo)
             if not run.filled[i]:
@@ -283,7 +280,8 @@ def in_stream(baseline: Baseline, config: Config, file: FrameFile, folder: Path
     ordered = stream_order([f for f in stream if f.path.resolve() != here] + [file], config)
     k = next(i for i, f in enumerate(ordered) if f is file)
     frames = []
-    for f in ordered[max(0, k - baseline.persistence.window + 1):k]:
+    p = baseline.persistence
+    for f in ordered[max(0, k - p.window - p.past + 1):k]:
         try:
             frames.append(read_frame(f, **read_args(baseline, config)))
         except FrameError:

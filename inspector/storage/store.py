@@ -373,8 +373,10 @@ class Store:
             with np.load(folder / "calibration.npz", allow_pickle=False) as z:
                 arrays = {k: z[k] for k in ("center", "scale", "calibration_scores")}
                 mask = z["mask"] if "mask" in z.files else None
-                persistence = (Persistence.from_saved(meta["persistence"],
-                                                      z["persistence_scores"])
+                persistence = (Persistence.from_saved(
+                    meta["persistence"], z["persistence_scores"],
+                    z["persistence_start_scores"] if "persistence_start_scores" in z.files
+                    else None)
                                if meta.get("persistence") and "persistence_scores" in z.files
                                else None)
             reading = "baseline.json"
@@ -426,6 +428,8 @@ class Store:
                 arrays["mask"] = baseline.mask
             if baseline.persistence is not None:
                 arrays["persistence_scores"] = baseline.persistence.calibration_scores
+                if baseline.persistence.start_scores is not None:
+                    arrays["persistence_start_scores"] = baseline.persistence.start_scores
                 baseline.meta["persistence"] = baseline.persistence.to_json()
             np.savez_compressed(tmp / "calibration.npz", **arrays)
             if baseline.conditions is not None:
