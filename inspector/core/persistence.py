@@ -22,12 +22,29 @@ themselves. Setting the largest value aside lets one passer-by walk in front of 
 object within the window without hiding it. A local map is the anomaly map (standardised,
 see :mod:`inspector.core.scoring`) less its median over the frame, so a change over the whole
 view that the normal frames did not show (evening light, say) does not read as something
-left in one place; what is left covers far less than half the view. The frame score is the
-maximum, as for single frames (:func:`inspector.core.scoring.frame_scores`), and the
-threshold is the conformal threshold (:func:`inspector.core.calibration.conformal_threshold`)
-of the persistence scores of held-out normal frames (the same held-out, cross-fitted maps
-as the single-frame threshold, :func:`inspector.core.calibration.cross_fit_maps`), taken in
-capture-time order within each time block.
+left in one place; what is left covers far less than half the view.
+
+A steady level alone cannot tell a parcel from light that stays unusual at one place for a
+whole stretch of frames (morning sun through a window, a corner after the lamps go off):
+both stay. What tells them apart is when they came. So the persistence map is the steady
+level less a reference, the level of the same cell in the ``past`` frames just before the
+window (:func:`past_level`): a thing left shows as a step, unusual now and not just before;
+light that was already there before the window, or grows over minutes, does not. A cell
+above its threshold keeps its reference while it stays above (held), so a thing left stays
+flagged as long as it stays and is not taken into its own reference. The local maps are
+also divided by their cells' robust spread (``robust``), so that a frame whose whole view
+is disturbed counts a cell by how far it stands out from the rest of that frame. The frame
+of a stretch with no frame before its window (the first full window) has no reference: it
+is held to the steady level's threshold instead (``start_threshold``).
+
+The frame score is the maximum, as for single frames
+(:func:`inspector.core.scoring.frame_scores`), and each threshold is the conformal threshold
+(:func:`inspector.core.calibration.conformal_threshold`) of the persistence scores of
+held-out normal frames (the same held-out, cross-fitted maps as the single-frame threshold,
+:func:`inspector.core.calibration.cross_fit_maps`), taken in capture-time order within each
+time block: the step's of windows with frames before them, the steady level's of every
+window. The calibration holds no cell (no threshold is known yet); holding only keeps a
+region flagged after a flag, so a false alarm lasts as long as what raised it stays.
 
 A window only spans frames of one stretch of the stream: a gap longer than ``max_gap``
 seconds (or, at learn time, a new time block) starts a new window, and frames scored before
