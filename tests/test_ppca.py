@@ -267,3 +267,27 @@ def test_planes_are_the_ycrcb_planes_with_exact_2x2_chroma_means():
     np.testing.assert_array_equal(luma, ycc[..., 0])
     want = ycc[..., 1:].astype(np.float64).reshape(3, 32, 2, 48, 2, 2).mean(axis=(2, 4))
     np.testing.assert_array_equal(chroma, want.astype(np.float32))
+
+
+@pytest.mark.parametrize("q", [1, 2, 6])
+def test_top_eigenpairs_alone_give_the_same_model_as_sklearn_pca(q):
+    # With the latent size given, only the top q eigenpairs are computed (LAPACK dsyevr
+    # over an index range, for q <= d / 8): the model must equal scikit-learn's PCA of the
+    # same frames (Tipping & Bishop 1999 in get_covariance) and the pairs SciPy's full eigh.
+    from scipy.linalg import eigh
+
+    from inspector.core.models.ppca import batched_eigh
+
+    X = _data(n=300, d=48, seed=q)
+    cov = np.cov(X.T)
+    vals, vecs = batched_eigh(np.stack([cov, 2 * cov]), top=q, all_values=False)
+    ref_vals, ref_vecs = eigh(cov)
+    np.testing.assert_allclose(vals[0], ref_vals[-q:], rtol=1e-10)
+    np.testing.assert_allclose(vals[1], 2 * ref_vals[-q:], rtol=1e-10)
+    # Eigenvectors up to sign: the projector onto them.
+    np.testing.assert_allclose(vecs[0] @ vecs[0].T, ref_vecs[:, -q:] @ ref_vecs[:, -q:].T,
+                               atol=1e-9)
+    W, s2 = ppca_fit(cov[None], q)
+    C = W[0] @ W[0].T + s2[0] * np.eye(48)
+    np.testing.assert_allclose(C, PCA(n_components=q).fit(X).get_covariance(),
+                               rtol=1e-9, atol=1e-12)

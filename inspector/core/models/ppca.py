@@ -55,16 +55,26 @@ CHROMA_PIXELS = 4
 HELDOUT_EVERY = 8
 #: Locations per chunk when gathering scatter and forming covariances (bounds temporaries).
 CHUNK = 256
+#: Absolute tolerance of the bisection in :func:`batched_eigh` (twice the safe minimum, as
+#: LAPACK advises for the most accurate eigenvalues).
+ABSTOL = 2 * float(np.finfo(np.float64).tiny)
 
 
 def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
-                 top: int | None = None, chunk: int = 128):
+                 top: int | None = None, chunk: int = 128, all_values: bool = True):
     """``numpy.linalg.eigh`` over a stack of small symmetric matrices, faster and leaner.
 
     A multi-threaded BLAS spends most of its time synchronising on matrices this small
     (about 18 times slower than one thread, measured on 96 x 96); so BLAS is held to one
     thread and the stack is cut into chunks of ``chunk`` matrices shared by ``workers``
     Python threads (LAPACK releases the GIL), each writing into the outputs directly.
+
+    With ``all_values`` False and few wanted pairs (``top`` <= d / 8) only those are
+    computed, by LAPACK's ``dsyevr`` over an index range (reduction to tridiagonal form,
+    then bisection and inverse iteration for the wanted pairs alone): as exact as the full
+    decomposition, at 0.19 ms instead of 0.63 ms for the top pair of a 96 x 96 matrix
+    (0.34 ms for five; no gain beyond about twelve: measured on patch covariances, one
+    thread).
 
     Parameters
     ----------
@@ -73,26 +83,41 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
     top : int, optional
         Keep only the eigenvectors of the ``top`` largest eigenvalues (a PPCA of latent
         size q <= top needs no others): the output is then (L, d, top), not (L, d, d).
+    all_values : bool
+        False: return only the ``top`` largest eigenvalues (needs ``top``).
 
     Returns
     -------
-    evals : ndarray, shape (L, d), float64, ascending
+    evals : ndarray, shape (L, d), or (L, top) without ``all_values``; float64, ascending
     evecs : ndarray, shape (L, d, k), float64, k = ``top`` or d (with ``vectors``); the
         columns in the order of their eigenvalues, the largest last.
     """
     n, d = len(cov), cov.shape[-1]
     keep = d if top is None else max(1, min(int(top), d))
-    evals = np.empty((n, d))
+    subset = not all_values and 8 * keep <= d
+    evals = np.empty((n, d if all_values else keep))
     evecs = np.empty((n, d, keep)) if vectors else None
     bounds = list(range(0, n, chunk)) + [n]
 
     def one(k: int) -> None:
         part = slice(bounds[k], bounds[k + 1])
-        if vectors:
+        if subset:
+            from scipy.linalg import lapack
+
+            for i in range(bounds[k], bounds[k + 1]):
+                w, v, m, _, info = lapack.dsyevr(np.asarray(cov[i], np.float64),
+                                                 compute_v=vectors, range="I",
+                                                 il=d - keep + 1, iu=d, abstol=ABSTOL)
+                if info or m != keep:
+                    raise np.linalg.LinAlgError(f"dsyevr failed to converge ({info})")
+                evals[i] = w[:keep]
+                if vectors:
+                    evecs[i] = v[:, :keep]
+        elif vectors:
             w, v = np.linalg.eigh(cov[part].astype(np.float64))
-            evals[part], evecs[part] = w, v[:, :, d - keep:]
+            evals[part], evecs[part] = w[:, d - evals.shape[1]:], v[:, :, d - keep:]
         else:
-            evals[part] = np.linalg.eigvalsh(cov[part].astype(np.float64))
+            evals[part] = np.linalg.eigvalsh(cov[part].astype(np.float64))[:, d - evals.shape[1]:]
 
     with threadpool_limits(1), ThreadPoolExecutor(max(1, min(workers, n))) as pool:
         list(pool.map(one, range(len(bounds) - 1)))
@@ -137,7 +162,8 @@ def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
     else:
         d_obs = np.full(L, float(d))
     total = np.trace(cov, axis1=1, axis2=2, dtype=np.float64)
-    evals, evecs = batched_eigh(cov, top=latent or max_latent)  # ascending
+    # With the latent size given, the top q pairs and the trace are all the fit needs.
+    evals, evecs = batched_eigh(cov, top=latent or max_latent, all_values=not latent)
     evals = np.clip(evals[:, ::-1], 0.0, None)
     evecs = evecs[:, :, ::-1]
     q = latent or choose_latent(evals, explained_variance, max_latent)
@@ -624,10 +650,10 @@ class PatchPPCA(DensityModel):
             for k in range(first, len(labels)):
                 if moments.count[:k].sum() < 2 or not moments.count[k]:
                     continue
-                m_k, c_k, _ = moments.mean_cov(before=k)
                 fold = copy.copy(self)
                 q = self._heldout_q(moments.sums(k - 1, HELDOUT_EVERY) if k > 1 else None,
                                     moments.sums(k, HELDOUT_EVERY))
+                m_k, c_k, _ = moments.mean_cov(before=k)
                 fold._set(m_k, *fold._fit_params(c_k, q))
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
@@ -637,9 +663,10 @@ class PatchPPCA(DensityModel):
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
-        mean, cov, _ = moments.mean_cov()
-        self._set(mean, *self._fit_params(cov, self._heldout_q(*self._last_split)))
+        q = self._heldout_q(*self._last_split)
         del self._last_split, self._few_blocks
+        mean, cov, _ = moments.mean_cov()
+        self._set(mean, *self._fit_params(cov, q))
         held_idx = [i for fold in folds for i, _ in fold]
         held_maps = [m for fold in folds for _, m in fold]
         if held_maps:
@@ -664,9 +691,10 @@ class PatchPPCA(DensityModel):
                     current = b
                     ready = b >= first and moments.count.sum() >= 2
                     now = moments.sums(every=HELDOUT_EVERY) if self._wants_sums() else None
-                    if ready:
+                    if ready:  # the latent size first: its temporaries and the
+                        q = self._heldout_q(earlier, now)  # covariances never coexist
                         m_k, c_k, _ = moments.mean_cov()
-                        self._set(m_k, *self._fit_params(c_k, self._heldout_q(earlier, now)))
+                        self._set(m_k, *self._fit_params(c_k, q))
                     earlier = now
                 if ready:
                     held.append((idx[sel], self.score_maps(images[sel])))
