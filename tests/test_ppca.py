@@ -291,3 +291,52 @@ def test_top_eigenpairs_alone_give_the_same_model_as_sklearn_pca(q):
     C = W[0] @ W[0].T + s2[0] * np.eye(48)
     np.testing.assert_allclose(C, PCA(n_components=q).fit(X).get_covariance(),
                                rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.parametrize("colour", [True, False])
+def test_moments_kept_per_block_equal_numpy_cov_of_the_patches(colour):
+    # Overlapping patches share blocks: moments kept per block (sums and products of
+    # neighbouring blocks) must give each location the covariance numpy.cov gives its patch
+    # features, for all frames, with a time block left out, for the blocks before one, at
+    # every k-th location, and when moments of two parts of the frames are merged
+    # (numpy.cov as the reference).
+    from skimage import data
+
+    rng = np.random.default_rng(4)
+    scene = cv2.resize(data.astronaut(), (40, 24), interpolation=cv2.INTER_AREA).astype(float)
+    imgs = np.clip(scene * rng.uniform(0.8, 1.2, (60, 1, 1, 1))
+                   + rng.normal(0, 6, (60, 24, 40, 3)), 0, 255).astype(np.uint8)
+    model = PatchPPCA(patch=8, stride=4, colour=colour)
+    model.grid_, model.map_shape_ = (5, 9), (6, 10)
+    X = patch_features(imgs, 8, 4, colour).astype(np.float64)  # (60, 45, d)
+    whole = model._new_moments(3, block_scatter=True)
+    assert whole.r == 2  # the blocked layout is the one tested
+    parts = [model._new_moments(3, block_scatter=True) for _ in range(2)]
+    for b in range(3):
+        frames = imgs[b * 20:(b + 1) * 20]
+        whole.add(b, model._samples(frames))
+        parts[0].add(b, model._samples(frames[:7]))  # a different shift in each part
+        parts[1].add(b, model._samples(frames[7:] // 2 + 60))
+    merged = parts[0].merge(parts[1])
+    reference = np.concatenate([np.r_[X[b * 20:b * 20 + 7]] for b in range(3)])
+
+    def check(got, samples):
+        mean, cov, n = got
+        assert n == len(samples)
+        np.testing.assert_allclose(mean, samples.mean(0), rtol=1e-5, atol=1e-6)
+        for loc in range(samples.shape[1]):
+            np.testing.assert_allclose(cov[loc], np.cov(samples[:, loc].T), rtol=1e-4,
+                                       atol=1e-6)
+
+    check(whole.mean_cov(), X)
+    check(whole.mean_cov(leave_out=1), np.r_[X[:20], X[40:]])
+    check(whole.mean_cov(before=2), X[:40])
+    halves = patch_features(np.concatenate([imgs[b * 20 + 7:(b + 1) * 20] // 2 + 60
+                                            for b in range(3)]), 8, 4, colour)
+    check(merged.mean_cov(), np.r_[reference, halves.astype(np.float64)])
+    n, s, S = whole.sums(before=2, every=4)
+    assert n == 40
+    centred = X[:40, ::4] - whole._location_sums(whole.shift, np.arange(0, 45, 4))
+    np.testing.assert_allclose(s, centred.sum(0), rtol=1e-4, atol=1e-4)
+    np.testing.assert_allclose(S, np.einsum("nld,nle->lde", centred, centred), rtol=1e-4,
+                               atol=1e-4)

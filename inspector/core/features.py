@@ -126,6 +126,71 @@ def patch_features(images: np.ndarray, patch: int, stride: int, colour: bool,
     return out.reshape(n, gh * gw, d)
 
 
+def block_order(patch: int, stride: int, colour: bool) -> np.ndarray | None:
+    """How a patch feature vector splits into ``stride x stride`` blocks.
+
+    A patch of side ``patch = r * stride`` is ``r x r`` neighbouring blocks, each holding
+    ``stride x stride`` luminance pixels (and the two ``stride/2 x stride/2`` chroma
+    squares under them): every entry of the feature vector belongs to exactly one block,
+    and a pixel's entry is the same in every patch that covers it.
+
+    Returns
+    -------
+    ndarray, shape (d,), int, or None
+        The feature index of each block entry, block by block (row-major over the r x r
+        blocks, each block's entries in the order of :func:`block_features`); None when the
+        patches do not split into blocks (``stride`` does not divide ``patch``, or odd
+        ``stride`` with colour).
+    """
+    if patch % stride or (colour and stride % 2):
+        return None
+    r, s, hs, half = patch // stride, stride, stride // 2, patch // 2
+    order = []
+    for a in range(r):
+        for b in range(r):
+            order += [(a * s + u) * patch + b * s + v for u in range(s) for v in range(s)]
+            if colour:
+                for c in range(2):
+                    order += [patch * patch + c * half * half + (a * hs + u) * half + b * hs + v
+                              for u in range(hs) for v in range(hs)]
+    return np.array(order)
+
+
+def block_features(images: np.ndarray, stride: int, colour: bool, shape: tuple[int, int]
+                   ) -> np.ndarray:
+    """The entries of every ``stride x stride`` block of every frame, in grey levels.
+
+    Parameters
+    ----------
+    images : ndarray, shape (n, H, W, 3), uint8
+    stride : int
+        Block side (even with colour).
+    colour : bool
+    shape : (int, int)
+        Blocks (rows, columns) to take from the top left, at most H // stride, W // stride.
+
+    Returns
+    -------
+    ndarray, shape (rows, columns, n, e), float32 in [0, 255]
+        Each block's luminance (row-major) then, with colour, its Cr and Cb squares at half
+        resolution; e = stride^2 (+ stride^2 / 2). The order of :func:`block_order`.
+    """
+    luma, chroma = _planes(images, colour)
+    n = len(luma)
+    s = stride
+    bh, bw = shape
+    e = s * s + (s * s // 2 if colour else 0)
+    out = np.empty((bh, bw, n, e), np.float32)
+    dst = np.reshape(out[..., :s * s], (bh, bw, n, s, s), copy=False)
+    np.copyto(dst, luma[:, :bh * s, :bw * s].reshape(n, bh, s, bw, s).transpose(1, 3, 0, 2, 4))
+    if colour:
+        hs = s // 2
+        dst = np.reshape(out[..., s * s:], (bh, bw, n, 2, hs, hs), copy=False)
+        src = chroma[:, :bh * hs, :bw * hs].reshape(n, bh, hs, bw, hs, 2)
+        np.copyto(dst, src.transpose(1, 3, 0, 5, 2, 4))
+    return out
+
+
 def _windows(planes: np.ndarray, size: int, step: int, gh: int, gw: int) -> np.ndarray:
     view = sliding_window_view(planes, (size, size), axis=(1, 2))[:, ::step, ::step]
     return view[:, :gh, :gw]

@@ -35,7 +35,8 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from inspector.core.features import (
-    _planes,
+    block_features,
+    block_order,
     feature_size,
     fold_to_cells,
     grid_shape,
@@ -399,47 +400,102 @@ def _nll(X, mean, B, sigma2, logdet, d_obs, observed, unit: float = 1.0):
 class Moments:
     """Streaming sufficient statistics of patch features, per location and per time block.
 
-    Counts and sums are kept per block; the scatter (L x d x d, the large part) in total,
-    and per block only when ``block_scatter`` is set (needed to leave a block out or to
-    take the blocks before one from moments gathered out of order). Scatter is
-    accumulated about a fixed shift (the first batch's mean) to keep the float64 sums well
-    conditioned, as one batched matrix product per batch: (L, d, n) @ (L, n, d).
+    Counts and sums are kept per block; the scatter (the large part) in total, and per
+    block only when ``block_scatter`` is set (needed to leave a block out or to take the
+    blocks before one from moments gathered out of order). Scatter is accumulated about a
+    fixed shift (the first batch's mean) to keep the float64 sums well conditioned, as
+    batched float32 matrix products per batch.
+
+    Neighbouring patches overlap. With ``tiles`` (patch side ``r`` times the stride, see
+    :func:`inspector.core.features.block_order`) the samples are given per ``stride x
+    stride`` block (e entries each, d = r^2 e) and the statistics kept per block: its sum
+    and its products with itself and with the neighbours a patch spans (offsets (0, 0),
+    (0, 1), (1, -1), (1, 0), (1, 1) for r = 2). A location's scatter is the r^2 x r^2
+    tiles of these products (assembled when asked for), so a batch costs 5 e^2 instead of
+    r^4 e^2 products per location (a third) and the scatter takes a third of the memory.
+    Without ``tiles`` each location is its own block (r = 1, e = d).
+
+    Parameters
+    ----------
+    n_blocks : int
+        Time blocks.
+    L, d : int
+        Locations and feature size.
+    block_scatter : bool
+    tiles : (grid, r, order), optional
+        The location grid (rows, columns), r, and the feature index of each block entry
+        (:func:`inspector.core.features.block_order`).
     """
 
-    def __init__(self, n_blocks: int, L: int, d: int, block_scatter: bool = False):
+    def __init__(self, n_blocks: int, L: int, d: int, block_scatter: bool = False,
+                 tiles: tuple[tuple[int, int], int, np.ndarray] | None = None):
+        if tiles is None:
+            tiles = ((L, 1), 1, np.arange(d))
+        (gh, gw), r, order = tiles
+        if gh * gw != L or len(order) != d or d % (r * r):
+            raise ValueError("tiles do not match the locations and feature size")
+        self.L, self.d, self.grid, self.r = L, d, (gh, gw), r
+        self.e = d // (r * r)
+        self.units = (gh + r - 1, gw + r - 1)
+        self.inverse = np.argsort(order)  # block-order position of each feature entry
+        self.offsets = [(a, b) for a in range(r) for b in range(1 - r, r) if a or b >= 0]
+        shape = (len(self.offsets),) + self.units + (self.e, self.e)
         self.count = np.zeros(n_blocks)
-        self.sum = np.zeros((n_blocks, L, d))
-        self.scatter = np.zeros((n_blocks, L, d, d)) if block_scatter else None
-        self.total_scatter = np.zeros((L, d, d))
+        self.sum = np.zeros((n_blocks,) + self.units + (self.e,))
+        self.scatter = np.zeros((n_blocks,) + shape) if block_scatter else None
+        self.total_scatter = np.zeros(shape)
         self.shift: np.ndarray | None = None
+        self._where = None
+
+    def _pairs(self, o: int, rows: int | None = None, height: int | None = None
+               ) -> tuple[tuple, tuple]:
+        """Index of the blocks u and of their partners u + offset ``o``: of all blocks, or
+        of the first ``rows`` rows of a stack of ``height`` rows of blocks."""
+        a, b = self.offsets[o]
+        uh, uw = self.units
+        height = uh if height is None else height
+        r0, r1 = 0, min(height if rows is None else rows, height - a)
+        c0, c1 = max(0, -b), uw - max(0, b)
+        return (slice(r0, r1), slice(c0, c1)), (slice(r0 + a, r1 + a), slice(c0 + b, c1 + b))
 
     def add(self, block: int, X: np.ndarray) -> None:
-        """Add samples ``X`` (n, L, d) to ``block``.
+        """Add samples ``X`` to ``block``: features (n, L, d), or with ``tiles`` block
+        entries (rows, columns, n, e) of the block grid (:func:`block_features` order).
 
-        The scatter is gathered in chunks of :data:`CHUNK` locations, so the temporaries
-        stay small whatever L and n are.
+        The products are formed a few rows of blocks (:data:`CHUNK` locations' worth) at a
+        time, so the temporaries stay small whatever L and n are.
         """
-        if not len(X):
+        U = X.transpose(1, 0, 2)[:, None] if self.r == 1 and X.ndim == 3 else X
+        if U.shape[:2] != self.units or U.shape[3] != self.e:
+            raise ValueError(f"samples of shape {X.shape} do not match the moments")
+        n = U.shape[2]
+        if not n:
             return
         if self.shift is None:
-            self.shift = X.mean(axis=0, dtype=np.float64).astype(np.float32)
-        self.count[block] += len(X)
-        self.sum[block] += X.sum(axis=0, dtype=np.float64) - len(X) * self.shift
-        for start in range(0, X.shape[1], CHUNK):
-            part = slice(start, start + CHUNK)
-            Xt = (X[:, part] - self.shift[None, part]).transpose(1, 2, 0)  # (l, d, n)
-            S = np.matmul(Xt, Xt.transpose(0, 2, 1))
-            if self.scatter is not None:
-                self.scatter[block, part] += S
-            self.total_scatter[part] += S
+            self.shift = U.mean(axis=2, dtype=np.float64).astype(np.float32)
+        self.count[block] += n
+        self.sum[block] += U.sum(axis=2, dtype=np.float64) - n * self.shift
+        step = max(1, CHUNK * self.r ** 4 // self.units[1])
+        for start in range(0, self.units[0], step):
+            rows = slice(start, start + step + self.r - 1)  # with the partners' rows
+            part = U[rows] - self.shift[rows, :, None, :]
+            for o in range(len(self.offsets)):
+                (ri, ci), (rj, cj) = self._pairs(o, step, len(part))
+                if ri.stop <= ri.start:
+                    continue
+                S = np.matmul(part[ri, ci].swapaxes(-1, -2), part[rj, cj])
+                ri = slice(ri.start + start, ri.stop + start)
+                if self.scatter is not None:
+                    self.scatter[block, o, ri, ci] += S
+                self.total_scatter[o, ri, ci] += S
 
     def merge(self, other: "Moments") -> "Moments":
-        """Add the samples counted in ``other`` (same blocks, L and d), e.g. accumulated in
-        another process; returns self.
+        """Add the samples counted in ``other`` (same blocks, L, d and tiles), e.g.
+        accumulated in another process; returns self.
 
         ``other``'s sums about its own shift b are moved to this one's shift a exactly: with
-        delta = b - a, sum_a = sum_b + n delta and
-        scatter_a = scatter_b + sum_b delta^T + delta sum_b^T + n delta delta^T
+        delta = b - a, sum_a = sum_b + n delta and, for the products of blocks u and v,
+        scatter_a = scatter_b + sum_b(u) delta(v)^T + delta(u) sum_b(v)^T + n delta(u) delta(v)^T
         (the parallel form of the scatter update, Chan, Golub & LeVeque 1979, "Updating
         formulae and a pairwise algorithm for computing sample variances").
         """
@@ -447,13 +503,21 @@ class Moments:
             return self
         if self.shift is None:
             self.shift = other.shift.copy()
-        delta = (other.shift.astype(np.float64) - self.shift)  # (L, d)
+        delta = other.shift.astype(np.float64) - self.shift  # (rows, columns, e)
 
         def moved(n, s, S):
-            cross = s[..., :, None] * delta[..., None, :]
-            return (s + n[..., None, None] * delta,
-                    S + cross + np.swapaxes(cross, -1, -2)
-                    + n[..., None, None, None] * (delta[:, :, None] * delta[:, None, :]))
+            """Sums and products about this shift, from ``n`` samples with sums ``s``
+            (..., rows, columns, e) and products ``S`` (..., offsets, rows, columns, e, e)
+            about the other's."""
+            S = S.copy()
+            nn = np.asarray(n)[..., None, None, None, None]
+            for o in range(len(self.offsets)):
+                (ri, ci), (rj, cj) = self._pairs(o)
+                su, sv, du, dv = s[..., ri, ci, :], s[..., rj, cj, :], delta[ri, ci], delta[rj, cj]
+                S[..., o, ri, ci, :, :] += (su[..., :, None] * dv[..., None, :]
+                                            + du[..., :, None] * sv[..., None, :]
+                                            + nn * (du[:, :, :, None] * dv[:, :, None, :]))
+            return s + np.asarray(n)[..., None, None, None] * delta, S
 
         if self.scatter is not None:
             if other.scatter is None:
@@ -461,50 +525,89 @@ class Moments:
             s, S = moved(other.count, other.sum, other.scatter)
             self.scatter += S
         else:
-            s = other.sum + other.count[:, None, None] * delta
-        _, T = moved(np.asarray(other.count.sum()), other.sum.sum(axis=0), other.total_scatter)
+            s = other.sum + other.count[:, None, None, None] * delta
+        _, T = moved(other.count.sum(), other.sum.sum(axis=0), other.total_scatter)
         self.count += other.count
         self.sum += s
         self.total_scatter += T
         return self
+
+    def _index(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Where a location's sums and scatter are in the flattened per-block arrays: the
+        location's base offsets (for sums, for products) and each entry's (or entry pair's)
+        offset from them. Entry pair (f, f') of a location is entry (t, t') of the product
+        of its blocks k and k' holding f and f', stored under the block the offset starts
+        from (transposed when that is k')."""
+        if getattr(self, "_where", None) is None:
+            r, e = self.r, self.e
+            uh, uw = self.units
+            gi, gj = np.divmod(np.arange(self.L), self.grid[1])
+            index = {o: k for k, o in enumerate(self.offsets)}
+            k, t = np.divmod(self.inverse, e)  # block and entry of each feature
+            a, b = np.divmod(k, r)
+            sums = (a * uw + b) * e + t
+            da, db = a[None, :] - a[:, None], b[None, :] - b[:, None]
+            pairs = np.empty((self.d, self.d), np.int64)
+            for (oa, ob), o in index.items():
+                here = (da == oa) & (db == ob)
+                back = (da == -oa) & (db == -ob)
+                f1, f2 = np.nonzero(here)
+                pairs[f1, f2] = (((o * uh + a[f1]) * uw + b[f1]) * e + t[f1]) * e + t[f2]
+                f1, f2 = np.nonzero(back & ~here)
+                pairs[f1, f2] = (((o * uh + a[f2]) * uw + b[f2]) * e + t[f2]) * e + t[f1]
+            base = gi * uw + gj
+            self._where = (base * e, sums, base * e * e, pairs)
+        return self._where
+
+    def _location_sums(self, s: np.ndarray, locs: np.ndarray) -> np.ndarray:
+        """Per-location vectors (len(locs), d) from per-block ones (rows, columns, e)."""
+        base, sums, _, _ = self._index()
+        return np.ascontiguousarray(s).reshape(-1)[base[locs, None] + sums]
+
+    def _location_scatter(self, S: np.ndarray, locs: np.ndarray) -> np.ndarray:
+        """Per-location scatter (len(locs), d, d) float64 from block products ``S``
+        (offsets, rows, columns, e, e), gathered in one pass (see :meth:`_index`)."""
+        _, _, base, pairs = self._index()
+        return np.ascontiguousarray(S).reshape(-1)[base[locs, None, None] + pairs]
+
+    def _subset(self, leave_out: int | None = None, before: int | None = None):
+        """Count, per-block sums and block products of all samples, of all but block
+        ``leave_out``, or of blocks 0 .. ``before`` - 1."""
+        if leave_out is None and before is None:
+            return self.count.sum(), self.sum.sum(axis=0), self.total_scatter
+        if self.scatter is None:
+            raise ValueError("a subset of the blocks needs Moments(block_scatter=True)")
+        if leave_out is not None:
+            return (self.count.sum() - self.count[leave_out],
+                    self.sum.sum(axis=0) - self.sum[leave_out],
+                    self.total_scatter - self.scatter[leave_out])
+        return (self.count[:before].sum(), self.sum[:before].sum(axis=0),
+                self.scatter[:before].sum(axis=0))
 
     def sums(self, before: int | None = None, every: int = 1
              ) -> tuple[float, np.ndarray, np.ndarray]:
         """Count, sum (L', d) and scatter (L', d, d) about ``shift`` of all samples, or of
         blocks 0 .. ``before`` - 1 (needs ``block_scatter``), at every ``every``-th location
         (L' = ceil(L / every)); copies."""
-        loc = slice(None, None, max(1, int(every)))
-        if before is None:
-            return (float(self.count.sum()), self.sum[:, loc].sum(axis=0),
-                    self.total_scatter[loc].copy())
-        if self.scatter is None:
-            raise ValueError("a subset of the blocks needs Moments(block_scatter=True)")
-        return (float(self.count[:before].sum()), self.sum[:before, loc].sum(axis=0),
-                self.scatter[:before, loc].sum(axis=0))
+        n, s, S = self._subset(before=before)
+        locs = np.arange(0, self.L, max(1, int(every)))
+        return float(n), self._location_sums(s, locs), self._location_scatter(S, locs)
 
     def mean_cov(self, leave_out: int | None = None, before: int | None = None
                  ) -> tuple[np.ndarray, np.ndarray, int]:
         """Mean (L, d), unbiased covariance (L, d, d) float32 and count of all samples, of all but
         block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
         ``block_scatter``)."""
-        n = self.count.sum()
-        s = self.sum.sum(axis=0)
-        S = self.total_scatter
-        if leave_out is not None or before is not None:
-            if self.scatter is None:
-                raise ValueError("a subset of the blocks needs Moments(block_scatter=True)")
-            if leave_out is not None:
-                n, s = n - self.count[leave_out], s - self.sum[leave_out]
-                S = S - self.scatter[leave_out]
-            else:
-                n, s = self.count[:before].sum(), self.sum[:before].sum(axis=0)
-                S = self.scatter[:before].sum(axis=0)
-        m = s / n
-        cov = np.empty(S.shape, np.float32)  # float32 halves the largest array of a fit
-        for start in range(0, len(S), CHUNK):
+        n, s, S = self._subset(leave_out, before)
+        locs = np.arange(self.L)
+        m = self._location_sums(s, locs) / n
+        cov = np.empty((self.L, self.d, self.d), np.float32)  # float32 halves the largest array
+        for start in range(0, self.L, CHUNK):
             part = slice(start, start + CHUNK)
-            cov[part] = (S[part] - n * m[part, :, None] * m[part, None, :]) / max(n - 1.0, 1.0)
-        return self.shift + m, cov, int(n)
+            scatter = self._location_scatter(S, locs[part])
+            scatter -= n * m[part, :, None] * m[part, None, :]
+            np.multiply(scatter, 1.0 / max(n - 1.0, 1.0), out=cov[part], casting="same_kind")
+        return self._location_sums(self.shift, locs) + m, cov, int(n)
 
 
 # --- the model -----------------------------------------------------------------------------
@@ -623,8 +726,6 @@ class PatchPPCA(DensityModel):
             raise ValueError(f"chroma_noise must be 'own' or 'shared', not {self.chroma_noise!r}")
         w, h = source.size
         self.grid_ = grid_shape(h, w, self.patch, self.stride)
-        L = self.grid_[0] * self.grid_[1]
-        d = feature_size(self.patch, self.colour)
         self.observed_ = observed_features(mask, self.patch, self.stride, self.colour)
         r = self.patch // self.stride
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
@@ -642,7 +743,7 @@ class PatchPPCA(DensityModel):
         if pool is None:
             moments, folds = self._forward_pass(source, order, block_of, len(labels), first)
         else:
-            moments = Moments(len(labels), L, d, block_scatter=True)
+            moments = self._new_moments(len(labels), block_scatter=True)
             for part in _pooled(pool, _block_moments, self, source,
                                 _pieces(order, blocks, labels, pool)):
                 moments.merge(part)
@@ -678,8 +779,7 @@ class PatchPPCA(DensityModel):
         """One pass in time order: score each block from ``first`` on with the model of the
         moments so far, then add it. Returns the moments and
         ``[[(positions, raw maps)], ...]``."""
-        moments = Moments(n_blocks, self.grid_[0] * self.grid_[1],
-                          feature_size(self.patch, self.colour))
+        moments = self._new_moments(n_blocks)
         held: list[tuple[np.ndarray, np.ndarray]] = []
         current, ready = -1, False
         earlier = None  # sums at the start of the block before the current one
@@ -698,11 +798,28 @@ class PatchPPCA(DensityModel):
                     earlier = now
                 if ready:
                     held.append((idx[sel], self.score_maps(images[sel])))
-                moments.add(int(b), patch_features(varied[sel], self.patch, self.stride,
-                                                   self.colour))
+                moments.add(int(b), self._samples(varied[sel]))
         self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
                             if self._wants_sums() else None)
         return moments, [held]
+
+    def _new_moments(self, n_blocks: int, block_scatter: bool = False) -> Moments:
+        """Empty moments of this model's locations, kept per block of the frame when its
+        patches split into blocks (:func:`block_order`)."""
+        order = block_order(self.patch, self.stride, self.colour)
+        tiles = None if order is None else (self.grid_, self.patch // self.stride, order)
+        return Moments(n_blocks, self.grid_[0] * self.grid_[1],
+                       feature_size(self.patch, self.colour), block_scatter, tiles)
+
+    def _samples(self, images: np.ndarray) -> np.ndarray:
+        """Frames (n, H, W, 3) uint8 as :meth:`Moments.add` of :meth:`_new_moments` takes
+        them: block entries, or patch features when patches do not split into blocks;
+        float32 in [0, 1]."""
+        if block_order(self.patch, self.stride, self.colour) is None:
+            return patch_features(images, self.patch, self.stride, self.colour)
+        X = block_features(images, self.stride, self.colour, self.map_shape_)
+        X *= np.float32(1 / 255)
+        return X
 
     def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
         """W and sigma^2 from a covariance, with ``latent`` dimensions when given, else
@@ -881,12 +998,10 @@ def _block_moments(model: PatchPPCA, source: FrameSource, indices: np.ndarray) -
     blocks = np.asarray(source.blocks)
     labels = np.unique(blocks)
     block_of = {b: i for i, b in enumerate(labels)}
-    moments = Moments(len(labels), model.grid_[0] * model.grid_[1],
-                      feature_size(model.patch, model.colour), block_scatter=True)
+    moments = model._new_moments(len(labels), block_scatter=True)
     for idx, _, varied in source.training_batches(indices, model.batch_size):
-        X = patch_features(varied, model.patch, model.stride, model.colour)
         for b in np.unique(blocks[idx]):
-            moments.add(block_of[b], X[blocks[idx] == b])
+            moments.add(block_of[b], model._samples(varied[blocks[idx] == b]))
     return moments
 
 
@@ -959,19 +1074,10 @@ class _BlockLayout:
     def build(cls, model: "PatchPPCA", B: np.ndarray) -> "_BlockLayout | None":
         """The layout of a fitted model, or None when its patches do not split into blocks
         (or, defensively, when a pixel's mean differs between the patches covering it)."""
-        p, s, colour = model.patch, model.stride, model.colour
-        if p % s or (colour and s % 2):
+        perm = block_order(model.patch, model.stride, model.colour)
+        if perm is None:
             return None
-        r, hs, half = p // s, s // 2, p // 2
-        order = []  # feature index of each block entry, block by block
-        for a in range(r):
-            for b in range(r):
-                order += [(a * s + u) * p + b * s + v for u in range(s) for v in range(s)]
-                if colour:
-                    for c in range(2):
-                        order += [p * p + c * half * half + (a * hs + u) * half + b * hs + v
-                                  for u in range(hs) for v in range(hs)]
-        perm = np.array(order)
+        r, s, colour = model.patch // model.stride, model.stride, model.colour
         gh, gw = model.grid_
         e = len(perm) // (r * r)
         per_loc = np.take(model._mean_grey, perm, axis=1).reshape(gh, gw, r, r, e)
@@ -997,18 +1103,8 @@ class _BlockLayout:
 
     def blocks(self, images: np.ndarray) -> np.ndarray:
         """Observed residuals of every block in grey levels, shape (bh, bw, n, e) float32."""
-        luma, chroma = _planes(images, self.colour)
-        n = len(luma)
+        out = block_features(images, self.stride, self.colour, self.mean.shape[:2])
         s = self.stride
-        bh, bw, e = self.mean.shape
-        out = np.empty((bh, bw, n, e), np.float32)
-        dst = np.reshape(out[..., :s * s], (bh, bw, n, s, s), copy=False)
-        np.copyto(dst, luma[:, :bh * s, :bw * s].reshape(n, bh, s, bw, s).transpose(1, 3, 0, 2, 4))
-        if self.colour:
-            hs = s // 2
-            dst = np.reshape(out[..., s * s:], (bh, bw, n, 2, hs, hs), copy=False)
-            src = chroma[:, :bh * hs, :bw * hs].reshape(n, bh, hs, bw, hs, 2)
-            np.copyto(dst, src.transpose(1, 3, 0, 5, 2, 4))
         out -= self.mean[:, :, None, :]
         if self.colour and self.chroma_weight != 1.0:
             out[..., s * s:] *= np.float32(self.chroma_weight)
