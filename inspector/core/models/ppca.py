@@ -599,15 +599,20 @@ class Moments:
         block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
         ``block_scatter``)."""
         n, s, S = self._subset(leave_out, before)
+        # About the samples' mean at the level of the blocks (a third of the entries the
+        # locations' scatter has): S(u, v) - n m(u) m(v)^T for each pair of blocks kept.
+        m = s / n
+        S = S.copy() if S is self.total_scatter else S
+        for o in range(len(self.offsets)):
+            (ri, ci), (rj, cj) = self._pairs(o)
+            S[o, ri, ci] -= n * (m[ri, ci, :, None] * m[rj, cj, None, :])
         locs = np.arange(self.L)
-        m = self._location_sums(s, locs) / n
         cov = np.empty((self.L, self.d, self.d), np.float32)  # float32 halves the largest array
         for start in range(0, self.L, CHUNK):
             part = slice(start, start + CHUNK)
-            scatter = self._location_scatter(S, locs[part])
-            scatter -= n * m[part, :, None] * m[part, None, :]
-            np.multiply(scatter, 1.0 / max(n - 1.0, 1.0), out=cov[part], casting="same_kind")
-        return self._location_sums(self.shift, locs) + m, cov, int(n)
+            np.multiply(self._location_scatter(S, locs[part]), 1.0 / max(n - 1.0, 1.0),
+                        out=cov[part], casting="same_kind")
+        return self._location_sums(self.shift + m, locs), cov, int(n)
 
 
 # --- the model -----------------------------------------------------------------------------
@@ -862,11 +867,19 @@ class PatchPPCA(DensityModel):
         if n_a < 2 or n_b < 1:
             return 0
         m_a = s_a / n_a
-        cov_a = (S_a - n_a * m_a[:, :, None] * m_a[:, None, :]) / max(n_a - 1.0, 1.0)
-        # Second moment of the last block about the earlier mean (both about the shift).
-        s_b, S_b = s_t - s_a, S_t - S_a
-        second = (S_b - s_b[:, :, None] * m_a[:, None, :] - m_a[:, :, None] * s_b[:, None, :]
-                  ) / n_b + m_a[:, :, None] * m_a[:, None, :]
+        outer = m_a[:, :, None] * m_a[:, None, :]
+        cov_a = S_a - n_a * outer
+        cov_a *= 1.0 / max(n_a - 1.0, 1.0)
+        # Second moment of the last block about the earlier mean (both about the shift):
+        # (S_b - s_b m^T - m s_b^T) / n_b + m m^T, in place (few copies of large arrays).
+        second = S_t - S_a
+        cross = (s_t - s_a)[:, :, None] * m_a[:, None, :]
+        second -= cross
+        second -= cross.swapaxes(1, 2)
+        del cross
+        second *= 1.0 / n_b
+        second += outer
+        del outer
         weights = None
         if self.observed_ is not None:  # partly masked locations are left out of the choice
             full = self.observed_[::HELDOUT_EVERY].all(axis=1)
