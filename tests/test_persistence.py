@@ -84,6 +84,14 @@ def test_step_from_the_frames_before_matches_scipy_rank_filters():
     np.testing.assert_allclose(run.levels[window - 1:],
                                level[window - 1:].reshape(30 - window + 1, -1).max(axis=1),
                                atol=1e-4)
+    # The spread over the 3 x 3 cells around: scipy.ndimage.maximum_filter of the spread map.
+    from scipy.ndimage import maximum_filter
+
+    win = local[10:13]
+    spread = np.sort(win, axis=0)[-2] - win.min(axis=0)
+    np.testing.assert_allclose(steady_level(win, around=3),
+                               win.min(axis=0) - maximum_filter(spread, size=3, mode="nearest"),
+                               atol=1e-5)
     # One past frame: its own value; never below the normal level 0.
     one = np.array([[[-3.0, 5.0]]], np.float32)
     assert past_level(one).tolist() == [[0.0, 5.0]]
@@ -120,6 +128,15 @@ def test_what_stays_outscores_what_passes():
     level = steady_level(cells - np.median(cells.reshape(4, -1), axis=1)[:, None, None])
     assert level[0, 0] == pytest.approx(2 * 79.0 - 81.0)
     assert level[1, 3] < 0 < level[0, 0]
+    # A passer-by steady at one cell for the window, whose edges cross the cells beside it,
+    # against a thing left, steady with its edges: only the second keeps its level once the
+    # spread is taken around the cell.
+    cells = np.zeros((4, 5, 10), np.float32)
+    cells[:, 2, 2] = [300.0, 310.0, 305.0, 302.0]           # passer-by, steady at its centre
+    cells[:, 1:4, 1] = np.array([0.0, 350.0, 0.0, 380.0])[:, None]  # its edge comes and goes
+    cells[:, 1:4, 6:9] = 100.0 + np.arange(4)[:, None, None]       # the thing left
+    level = steady_level(cells, around=3)
+    assert level[2, 2] < 0 < 95.0 < level[2, 7]
 
 
 def test_state_carries_the_window_across_calls_and_through_arrays():
@@ -217,11 +234,11 @@ def test_calibrate_tells_busy_from_quiet():
     rank = math.ceil((len(b.start_scores) + 1) * 0.99)
     assert b.start_threshold.value == pytest.approx(np.sort(b.start_scores)[rank - 1])
     again = Persistence.from_saved(b.to_json(), b.calibration_scores, b.start_scores)
-    assert again.to_json() == b.to_json()
+    assert again.to_json() == b.to_json() and again.around == 3
     old = Persistence.from_saved({k: v for k, v in b.to_json().items()
-                                  if k not in ("past", "robust", "start_threshold")},
+                                  if k not in ("past", "robust", "start_threshold", "around")},
                                  b.calibration_scores)  # saved before the step
-    assert old.past == 0 and not old.robust and old.start_threshold is None
+    assert old.past == 0 and not old.robust and old.start_threshold is None and old.around == 1
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

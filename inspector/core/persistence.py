@@ -19,7 +19,10 @@ This is the long-term / short-term split of abandoned-object detection (unusual 
 normal appearance, unchanged against the last frames; Porikli, Ivanov & Haga 2008, "Robust
 abandoned object detection using dual foregrounds", from memory) taken on the anomaly maps
 themselves. Setting the largest value aside lets one passer-by walk in front of a left
-object within the window without hiding it. A local map is the anomaly map (standardised,
+object within the window without hiding it. The spread is taken as the largest among the
+cell and the cells touching it (``around``): a thing left is steady at its edges too, while a
+passer-by long enough to cover one cell in every frame (a pallet truck and its load) moves
+its edges across the cells beside it. A local map is the anomaly map (standardised,
 see :mod:`inspector.core.scoring`) less its median over the frame, so a change over the whole
 view that the normal frames did not show (evening light, say) does not read as something
 left in one place; what is left covers far less than half the view.
@@ -69,6 +72,9 @@ from inspector.core.scoring import frame_scores
 #: ``WINDOW``-th frame it is seen in). A slow vehicle with a load can cover its own length
 #: only after two or three frames; four frames let it move on.
 WINDOW = 4
+#: Cells on a side of the neighbourhood over which a steady level takes its spread (see
+#: :func:`steady_level`): the cell and the ones touching it.
+AROUND = 3
 #: A gap between frames longer than this many typical frame intervals starts a new window.
 GAP_FACTOR = 10.0
 #: A normal frame holds a large short-lived anomaly when its single-frame score is more than
@@ -176,7 +182,7 @@ class PersistenceResult:
 def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float,
                 threshold: float | None = None, state: StreamState | None = None,
                 blocks: np.ndarray | None = None, past: int = 0, robust: bool = False,
-                start_threshold: float | None = None) -> PersistenceResult:
+                start_threshold: float | None = None, around: int = 1) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -214,6 +220,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         Threshold of frames without a frame before the window (``stepped`` unset); default
         ``threshold``. Cells above their frame's threshold keep their reference while they
         stay above it (held), so a thing that stays is not taken into its own reference.
+    around : int >= 1, odd
+        Cells on a side of the neighbourhood whose largest spread the steady level takes
+        (:func:`steady_level`).
 
     Returns
     -------
@@ -254,7 +263,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
                 late_buf, late_t = buf[:pos], buf_t[:pos]
             late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
-            level, out[i] = _step(late_buf, window)
+            level, out[i] = _step(late_buf, window, around=around)
             levels[i] = float(level.max())
             stepped[i] = past > 0 and len(late_buf) > window
             filled[i] = (len(late_t) >= window
@@ -275,7 +284,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf.append(maps[i])
         buf_t.append(t)
         del buf[:-keep], buf_t[:-keep]
-        level, out[i] = _step(buf, window, held)
+        level, out[i] = _step(buf, window, held, around)
         levels[i] = float(level.max())
         stepped[i] = past > 0 and len(buf) > window
         filled[i] = len(buf) >= window
@@ -303,12 +312,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                              levels)
 
 
-def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None
-          ) -> tuple[np.ndarray, np.ndarray]:
+def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
+          around: int = 1) -> tuple[np.ndarray, np.ndarray]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
     reference from ``held`` (NaN where not held). Shapes (h, w), float32."""
-    level = steady_level(np.asarray(frames[-window:]))
+    level = steady_level(np.asarray(frames[-window:]), around)
     before = frames[:-window]
     reference = past_level(np.asarray(before)) if before else np.zeros_like(level)
     if held is not None:
@@ -342,16 +351,21 @@ def past_level(past_maps: np.ndarray) -> np.ndarray:
     return np.maximum(q[-2] if len(q) >= 2 else q[0], 0.0)
 
 
-def steady_level(window_maps: np.ndarray) -> np.ndarray:
+def steady_level(window_maps: np.ndarray, around: int = 1) -> np.ndarray:
     """Per cell, how unusual a window of local maps is in a steady way.
 
     With the cell's values over the window sorted, x(1) <= ... <= x(m): the lowest value less
     the spread of the others once the largest is set aside, x(1) - (x(m-1) - x(1)) (m >= 3;
-    x(1) for m <= 2). See the module notes for why.
+    x(1) for m <= 2). See the module notes for why. With ``around`` > 1 the spread is the
+    largest among the ``around`` x ``around`` cells centred on the cell (a grey-scale
+    dilation of the spread map, Serra 1982, from memory; edges repeat the nearest cell): a
+    thing left is steady at its place and around it, edges included, while a passer-by who
+    covers a cell in every frame of the window moves its edges across the cells beside it.
 
     Parameters
     ----------
     window_maps : ndarray, shape (m, h, w), float, m >= 1
+    around : int >= 1, odd
 
     Returns
     -------
@@ -361,7 +375,12 @@ def steady_level(window_maps: np.ndarray) -> np.ndarray:
     if len(m) <= 2:
         return m.min(axis=0)
     q = np.sort(m, axis=0)
-    return 2.0 * q[0] - q[-2]
+    spread = q[-2] - q[0]
+    if around > 1:
+        from scipy.ndimage import maximum_filter
+
+        spread = maximum_filter(spread, size=around, mode="nearest")
+    return q[0] - spread
 
 
 def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
@@ -434,6 +453,9 @@ class Persistence:
         held-out window. None: ``threshold`` for every frame.
     start_scores : ndarray, shape (k,), or None
         Its calibration scores.
+    around : int
+        Neighbourhood of the steady level's spread (``around`` of :func:`persistence`; 1
+        for baselines learnt before it).
     """
 
     window: int
@@ -446,6 +468,7 @@ class Persistence:
     robust: bool = False
     start_threshold: Threshold | None = None
     start_scores: np.ndarray | None = field(default=None, repr=False)
+    around: int = 1
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None
             ) -> PersistenceResult:
@@ -453,7 +476,8 @@ class Persistence:
         return persistence(maps, times, self.window, self.max_gap, self.threshold.value,
                            state, past=self.past, robust=self.robust,
                            start_threshold=(self.start_threshold.value
-                                            if self.start_threshold is not None else None))
+                                            if self.start_threshold is not None else None),
+                           around=self.around)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -476,7 +500,7 @@ class Persistence:
         out = {"window": self.window, "max_gap": self.max_gap,
                "transient_share": self.transient_share, "busy": self.busy,
                "threshold": self.threshold.to_dict(), "past": self.past,
-               "robust": self.robust}
+               "robust": self.robust, "around": self.around}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -490,7 +514,8 @@ class Persistence:
                    np.asarray(calibration_scores, np.float64), float(meta["transient_share"]),
                    bool(meta["busy"]), int(meta.get("past", 0)), bool(meta.get("robust", False)),
                    Threshold.from_dict(start) if start else None,
-                   None if start_scores is None else np.asarray(start_scores, np.float64))
+                   None if start_scores is None else np.asarray(start_scores, np.float64),
+                   int(meta.get("around", 1)))
 
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
@@ -543,15 +568,16 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     busy = close and clearly_busy(int(transient.sum()), len(transient))
     # Flags come from the step from the frames just before the window, on robust local maps;
     # frames with no frame before their window are held to the steady level of any window.
-    step = persistence(maps, times, window, max_gap, blocks=blocks, past=window, robust=True)
+    step = persistence(maps, times, window, max_gap, blocks=blocks, past=window, robust=True,
+                       around=AROUND)
     starts = step.levels[step.filled]
     stepped = step.filled & step.stepped
     if not stepped.any():
         return Persistence(window, max_gap, conformal_threshold(starts, alpha), starts, share,
-                           busy, 0, True)
+                           busy, 0, True, around=AROUND)
     return Persistence(window, max_gap, conformal_threshold(step.scores[stepped], alpha),
                        step.scores[stepped], share, busy, window, True,
-                       conformal_threshold(starts, alpha), starts)
+                       conformal_threshold(starts, alpha), starts, AROUND)
 
 
 def clearly_busy(transient: int, frames: int, level: float = 0.05) -> bool:
