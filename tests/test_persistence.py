@@ -167,13 +167,16 @@ def test_a_late_frame_takes_its_place_in_the_stream():
     # frame after it the same maps; only frame 11, scored before frame 10 was there, differs.
     maps, times = _stream(20)
     order = list(range(10)) + [11, 10] + list(range(12, 20))
-    ref = persistence(maps, times, 4, 10.0)
-    got = persistence(maps[order], times[order], 4, 10.0)
-    assert got.late.tolist() == [False] * 11 + [True] + [False] * 8
     pos = {f: k for k, f in enumerate(order)}
-    for f in [*range(11), *range(12, 20)]:
-        np.testing.assert_allclose(got.maps[pos[f]], ref.maps[f], atol=1e-6)
-        assert got.filled[pos[f]] == ref.filled[f]
+    for step in ({}, {"past": 4, "robust": True, "around": 3}):  # also from frames before
+        ref = persistence(maps, times, 4, 10.0, **step)
+        got = persistence(maps[order], times[order], 4, 10.0, **step)
+        assert got.late.tolist() == [False] * 11 + [True] + [False] * 8
+        for f in [*range(11), *range(12, 20)]:
+            np.testing.assert_allclose(got.maps[pos[f]], ref.maps[f], atol=1e-5)
+            assert got.filled[pos[f]] == ref.filled[f]
+            assert got.stepped[pos[f]] == ref.stepped[f]
+    ref = persistence(maps, times, 4, 10.0)
     # A whole batch late (frames 0-7 after 8-19, as when two watch workers finish in the
     # other order): its frames make windows among themselves, as in the ordered stream.
     order = list(range(8, 20)) + list(range(8))
