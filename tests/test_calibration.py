@@ -14,6 +14,8 @@ from inspector.core.calibration import (
     conformal_p_values,
     conformal_threshold,
     cross_fit_scores,
+    frames_needed,
+    newest_blocks,
     rate_interval,
     tail_threshold,
     time_blocks,
@@ -116,7 +118,7 @@ def test_cross_fitted_scores_never_standardise_a_frame_with_itself():
         c, s = location_stats(maps[blocks != b])
         np.testing.assert_allclose(got[blocks == b],
                                    frame_scores(anomaly_maps(maps[blocks == b], c, s)))
-    cal = calibrate(maps, blocks, 0.1)
+    cal = calibrate(maps, blocks, 0.02)  # 49 frames needed: every block calibrates
     np.testing.assert_array_equal(cal.scores, got)
     np.testing.assert_array_equal(cal.center, location_stats(maps)[0])
 
@@ -199,3 +201,34 @@ def test_extrapolated_threshold_is_an_upper_confidence_bound_of_the_quantile():
     assert np.mean(bound >= truth) >= 0.7
     assert np.mean(genpareto.sf(point, 0.2)) > 2 * alpha
     assert np.mean(genpareto.sf(bound, 0.2)) < 1.5 * alpha
+
+
+def test_newest_blocks_reach_the_conformal_rank_and_keep_its_exact_rate():
+    # The rank ceil((n + 1)(1 - alpha)) exists from n = ceil(1/alpha - 1) scores on (Vovk,
+    # Gammerman & Shafer 2005); the k-th smallest of n exchangeable continuous scores leaves
+    # a new one above it with probability 1 - k/(n + 1), the mean of 1 - Beta(k, n + 1 - k)
+    # (order statistics of uniforms, scipy.stats.beta). Older blocks scored by models of
+    # fewer frames score higher (here: twice the spread); the newest blocks, exchangeable
+    # with the new scores, must give that exact rate, all blocks a far lower one.
+    from scipy.stats import beta
+
+    assert [frames_needed(a) for a in (0.01, 0.05, 0.1, 0.3)] == [99, 19, 9, 3]
+    alpha, per_block, trials, fresh = 0.05, 12, 3000, 40
+    blocks = np.repeat([2, 3, 4], per_block)
+    keep = newest_blocks(blocks, alpha)
+    np.testing.assert_array_equal(keep, blocks >= 3)  # 24 frames reach the 19 needed
+    assert newest_blocks(blocks, 0.01).all()           # 99 needed: all there are
+    assert newest_blocks(blocks[::-1], alpha).sum() == 24  # labels, not positions, tell age
+    rng = np.random.default_rng(8)
+    scores = rng.gumbel(size=(trials, len(blocks))) * np.where(blocks == 2, 2.0, 1.0)
+    new = rng.gumbel(size=(trials, fresh))
+    n = int(keep.sum())
+    k = math.ceil((n + 1) * (1 - alpha))
+    rate = {}
+    for name, sel in (("newest", keep), ("all", np.ones(len(blocks), bool))):
+        t = np.array([conformal_threshold(s[sel], alpha).value for s in scores])
+        rate[name] = float((new > t[:, None]).mean())
+    expected = 1 - beta(k, n + 1 - k).mean()  # = 1 / 25
+    sd = math.sqrt(beta(k, n + 1 - k).var() / trials + expected / (trials * fresh))
+    assert abs(rate["newest"] - expected) < 4 * sd, (rate, expected)
+    assert rate["all"] < expected - 8 * sd, (rate, expected)
