@@ -219,6 +219,8 @@ def test_newest_blocks_reach_the_conformal_rank_and_keep_its_exact_rate():
     np.testing.assert_array_equal(keep, blocks >= 3)  # 24 frames reach the 19 needed
     assert newest_blocks(blocks, 0.01).all()           # 99 needed: all there are
     assert newest_blocks(blocks[::-1], alpha).sum() == 24  # labels, not positions, tell age
+    assert newest_blocks(blocks, 0.3).sum() == 24      # 3 needed, but two blocks at least
+    assert newest_blocks(np.zeros(5, int), 0.3).all()  # one block: all of it
     rng = np.random.default_rng(8)
     scores = rng.gumbel(size=(trials, len(blocks))) * np.where(blocks == 2, 2.0, 1.0)
     new = rng.gumbel(size=(trials, fresh))

@@ -423,7 +423,9 @@ def newest_blocks(blocks: np.ndarray, alpha: float) -> np.ndarray:
     conformal threshold for ``alpha`` needs: ``n >= ceil(1 / alpha) - 1`` scores, for the
     rank ``ceil((n + 1)(1 - alpha))`` to exist (Vovk, Gammerman & Shafer 2005; see
     :func:`conformal_threshold`). Older blocks then add no rank the threshold needs, only
-    scores from models further from the final one.
+    scores from models further from the final one. At least two blocks are kept (when there
+    are two), so that each is standardised by another block's maps
+    (:func:`cross_fit_maps`), not by half of its own.
 
     Parameters
     ----------
@@ -439,9 +441,9 @@ def newest_blocks(blocks: np.ndarray, alpha: float) -> np.ndarray:
     blocks = np.asarray(blocks)
     needed = frames_needed(alpha)
     keep = np.zeros(len(blocks), bool)
-    for b in np.unique(blocks)[::-1]:
+    for i, b in enumerate(np.unique(blocks)[::-1]):
         keep |= blocks == b
-        if keep.sum() >= needed:
+        if i >= 1 and keep.sum() >= needed:
             return keep
     return np.ones(len(blocks), bool)
 
