@@ -6,7 +6,7 @@ import pytest
 from scipy.stats import multivariate_normal
 from sklearn.decomposition import PCA
 
-from inspector.core.features import feature_size, patch_features
+from inspector.core.features import feature_size, observed_features, patch_features
 from inspector.core.models.base import ArraySource
 from inspector.core.models.ppca import Moments, PatchPPCA, ppca_fit, ppca_nll
 
@@ -340,3 +340,41 @@ def test_moments_kept_per_block_equal_numpy_cov_of_the_patches(colour):
     np.testing.assert_allclose(s, centred.sum(0), rtol=1e-4, atol=1e-4)
     np.testing.assert_allclose(S, np.einsum("nld,nle->lde", centred, centred), rtol=1e-4,
                                atol=1e-4)
+
+
+def test_fit_chunk_by_chunk_equals_scikit_learn_and_the_whole_fit():
+    # With the latent size known, locations are fitted a chunk at a time from the moments
+    # (their covariances never all formed): each location's model must be scikit-learn's
+    # PCA of its patch features (Tipping & Bishop 1999 in get_covariance), and with a mask
+    # and chroma noise of its own, the fit of all covariances at once.
+    from skimage import data
+
+    rng = np.random.default_rng(5)
+    scene = cv2.resize(data.coffee(), (80, 48), interpolation=cv2.INTER_AREA).astype(float)
+    imgs = np.clip(scene * rng.uniform(0.8, 1.2, (120, 1, 1, 1))
+                   + rng.normal(0, 6, (120, 48, 80, 3)), 0, 255).astype(np.uint8)
+    model = PatchPPCA(patch=8, stride=4, var_floor=0.0)
+    model.grid_, model.map_shape_, model.observed_ = (11, 19), (12, 20), None  # 2 chunks
+    moments = model._new_moments(1)
+    moments.add(0, model._samples(imgs))
+    mean, W, s2 = model._fit_moments(moments, 3)
+    X = patch_features(imgs, 8, 4, colour=True).astype(np.float64)
+    for loc in (0, 100, 150, 208):
+        C = W[loc] @ W[loc].T + s2[loc] * np.eye(96)
+        np.testing.assert_allclose(C, PCA(n_components=3).fit(X[:, loc]).get_covariance(),
+                                   rtol=1e-4, atol=1e-9)
+    np.testing.assert_allclose(mean, X.mean(0), rtol=1e-5, atol=1e-6)
+    mask = np.zeros((48, 80), bool)
+    mask[:20] = True  # the top rows of locations wholly masked
+    mask[30:40, 10:30] = True
+    masked = PatchPPCA(patch=8, stride=4, chroma_noise="own")
+    masked.grid_, masked.map_shape_ = (11, 19), (12, 20)
+    masked.observed_ = observed_features(mask, 8, 4, True)
+    _, W1, s1 = masked._fit_moments(moments, 4)
+    c1 = masked.chroma_weight_
+    _, cov, _ = moments.mean_cov()
+    W2, s2 = masked._fit_params(cov.astype(np.float64), 4)
+    assert c1 == pytest.approx(masked.chroma_weight_, rel=1e-6) and c1 != 1.0
+    np.testing.assert_allclose(np.einsum("lik,ljk->lij", W1, W1),
+                               np.einsum("lik,ljk->lij", W2, W2), rtol=1e-5, atol=1e-8)
+    np.testing.assert_allclose(s1, s2, rtol=1e-6)  # (the whole fit's are float32)

@@ -129,7 +129,8 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
 
 def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
              var_floor: float = 0.0, explained_variance: float = 0.9,
-             max_latent: int = 24) -> tuple[np.ndarray, np.ndarray]:
+             max_latent: int = 24, most_observed: int | None = None
+             ) -> tuple[np.ndarray, np.ndarray]:
     """Closed-form maximum-likelihood PPCA of each location (Tipping & Bishop 1999).
 
     The mean of each location is the sample mean; the closed form needs only the
@@ -148,6 +149,10 @@ def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
         Lower bound on sigma^2 (sensor and compression noise never vanish).
     explained_variance, max_latent
         Used when ``latent`` is 0.
+    most_observed : int, optional
+        The latent size is at most one less than the most entries any location observes:
+        that number over all locations of the model when ``cov`` holds only some of them
+        (fitted part by part); by default from ``observed``.
 
     Returns
     -------
@@ -168,7 +173,8 @@ def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
     evals = np.clip(evals[:, ::-1], 0.0, None)
     evecs = evecs[:, :, ::-1]
     q = latent or choose_latent(evals, explained_variance, max_latent)
-    q = int(min(q, max(int(d_obs.max()) - 1, 1), evecs.shape[2]))
+    most = int(d_obs.max()) if most_observed is None else int(most_observed)
+    q = int(min(q, max(most - 1, 1), evecs.shape[2]))
     rest = np.maximum(d_obs - q, 1.0)
     sigma2 = np.maximum((total - evals[:, :q].sum(axis=1)) / rest, var_floor)
     sigma2 = np.maximum(sigma2, 1e-12)
@@ -593,11 +599,19 @@ class Moments:
         locs = np.arange(0, self.L, max(1, int(every)))
         return float(n), self._location_sums(s, locs), self._location_scatter(S, locs)
 
-    def mean_cov(self, leave_out: int | None = None, before: int | None = None
-                 ) -> tuple[np.ndarray, np.ndarray, int]:
-        """Mean (L, d), unbiased covariance (L, d, d) float32 and count of all samples, of all but
-        block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
-        ``block_scatter``)."""
+    def covariances(self, leave_out: int | None = None, before: int | None = None):
+        """Mean and count of all samples, of all but block ``leave_out``, or of blocks 0 ..
+        ``before`` - 1 (the last two need ``block_scatter``), and a function giving the
+        unbiased covariance of any of the locations from them.
+
+        Returns
+        -------
+        mean : ndarray, shape (L, d), float64
+        covariance : callable
+            ``covariance(locs)`` with locations ``locs`` (k,), int: ndarray (k, d, d),
+            float64, a new array.
+        n : int
+        """
         n, s, S = self._subset(leave_out, before)
         # About the samples' mean at the level of the blocks (a third of the entries the
         # locations' scatter has): S(u, v) - n m(u) m(v)^T for each pair of blocks kept.
@@ -606,13 +620,24 @@ class Moments:
         for o in range(len(self.offsets)):
             (ri, ci), (rj, cj) = self._pairs(o)
             S[o, ri, ci] -= n * (m[ri, ci, :, None] * m[rj, cj, None, :])
-        locs = np.arange(self.L)
+
+        def covariance(locs: np.ndarray) -> np.ndarray:
+            out = self._location_scatter(S, np.asarray(locs))
+            out *= 1.0 / max(n - 1.0, 1.0)
+            return out
+
+        return self._location_sums(self.shift + m, np.arange(self.L)), covariance, int(n)
+
+    def mean_cov(self, leave_out: int | None = None, before: int | None = None
+                 ) -> tuple[np.ndarray, np.ndarray, int]:
+        """Mean (L, d), unbiased covariance (L, d, d) float32 and count of all samples, of all but
+        block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
+        ``block_scatter``); see :meth:`covariances`."""
+        mean, covariance, n = self.covariances(leave_out, before)
         cov = np.empty((self.L, self.d, self.d), np.float32)  # float32 halves the largest array
         for start in range(0, self.L, CHUNK):
-            part = slice(start, start + CHUNK)
-            np.multiply(self._location_scatter(S, locs[part]), 1.0 / max(n - 1.0, 1.0),
-                        out=cov[part], casting="same_kind")
-        return self._location_sums(self.shift + m, locs), cov, int(n)
+            cov[start:start + CHUNK] = covariance(np.arange(start, min(start + CHUNK, self.L)))
+        return mean, cov, n
 
 
 # --- the model -----------------------------------------------------------------------------
@@ -759,8 +784,7 @@ class PatchPPCA(DensityModel):
                 fold = copy.copy(self)
                 q = self._heldout_q(moments.sums(k - 1, HELDOUT_EVERY) if k > 1 else None,
                                     moments.sums(k, HELDOUT_EVERY))
-                m_k, c_k, _ = moments.mean_cov(before=k)
-                fold._set(m_k, *fold._fit_params(c_k, q))
+                fold._set(*fold._fit_moments(moments, q, before=k))
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
             self._last_split = ((moments.sums(len(labels) - 1, HELDOUT_EVERY)
@@ -771,8 +795,7 @@ class PatchPPCA(DensityModel):
         self.n_frames_ = int(moments.count.sum())
         q = self._heldout_q(*self._last_split)
         del self._last_split, self._few_blocks
-        mean, cov, _ = moments.mean_cov()
-        self._set(mean, *self._fit_params(cov, q))
+        self._set(*self._fit_moments(moments, q))
         held_idx = [i for fold in folds for i, _ in fold]
         held_maps = [m for fold in folds for _, m in fold]
         if held_maps:
@@ -798,8 +821,7 @@ class PatchPPCA(DensityModel):
                     now = moments.sums(every=HELDOUT_EVERY) if self._wants_sums() else None
                     if ready:  # the latent size first: its temporaries and the
                         q = self._heldout_q(earlier, now)  # covariances never coexist
-                        m_k, c_k, _ = moments.mean_cov()
-                        self._set(m_k, *self._fit_params(c_k, q))
+                        self._set(*self._fit_moments(moments, q))
                     earlier = now
                 if ready:
                     held.append((idx[sel], self.score_maps(images[sel])))
@@ -825,6 +847,46 @@ class PatchPPCA(DensityModel):
         X = block_features(images, self.stride, self.colour, self.map_shape_)
         X *= np.float32(1 / 255)
         return X
+
+    def _fit_moments(self, moments: Moments, latent: int = 0, **subset
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Mean, W and sigma^2 of the samples counted in ``moments`` (``subset``: the
+        blocks of :meth:`Moments.covariances`), with ``latent`` dimensions when given, else
+        as :meth:`_fit_params` chooses. Sets ``chroma_weight_``.
+
+        With the latent size known, each location's fit needs only its own covariance:
+        they are formed and fitted a chunk of locations at a time in two threads, so the
+        covariances of all locations (the largest array of a fit) never exist at once.
+        """
+        q = latent or self.latent
+        if not q:  # the explained-variance rule looks at every location's spectrum first
+            mean, cov, _ = moments.mean_cov(**subset)
+            return (mean, *self._fit_params(cov, 0))
+        mean, covariance, _ = moments.covariances(**subset)
+        L, d = mean.shape
+        observed = self.observed_
+        self.chroma_weight_ = 1.0
+        if self.chroma_noise == "own" and self.colour:  # every 8th fully observed location
+            use = np.arange(L) if observed is None else np.flatnonzero(observed.all(axis=1))
+            use = use[::HELDOUT_EVERY]
+            self.chroma_weight_ = chroma_weight(
+                covariance(use), self.patch * self.patch, self.latent, None, self.var_floor,
+                self.explained_variance, self.max_latent, every=1) if len(use) else 1.0
+        most = d if observed is None else int(observed.sum(axis=1).max())
+        q = int(min(q, max(most - 1, 1), d))
+        W, sigma2 = np.empty((L, d, q)), np.empty(L)
+
+        def one(start: int) -> None:
+            part = slice(start, min(start + CHUNK // 2, L))
+            cov = weigh_chroma(covariance(np.arange(part.start, part.stop)),
+                               self.patch * self.patch, self.chroma_weight_)
+            W[part], sigma2[part] = ppca_fit(
+                cov, q, None if observed is None else observed[part], self.var_floor,
+                self.explained_variance, self.max_latent, most_observed=most)
+
+        with threadpool_limits(1), ThreadPoolExecutor(2) as pool:  # see batched_eigh
+            list(pool.map(one, range(0, L, CHUNK // 2)))
+        return mean, W, sigma2
 
     def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
         """W and sigma^2 from a covariance, with ``latent`` dimensions when given, else
