@@ -103,3 +103,30 @@ def test_known_shifts_are_not_measured_again():
         assert np.allclose(again.aligned[k], shift_images(again.grey[k], -dx, -dy))
     # and the prepared darker copy looks like the prepared frame (gain normalised away)
     assert np.abs(again.images.astype(int) - rec.images.astype(int)).mean() < 3.0
+
+
+def test_learn_prepares_batches_ahead_as_it_would_at_once(monkeypatch):
+    # learn prepares each batch in a worker thread, a few frames at a time: the frames,
+    # their darker training copies and health measures (the frozen-feed measure included,
+    # which compares a frame with the one before) are those of Conditions.prepare and
+    # Conditions.measures on the whole batch at once
+    import inspector.jobs.learn as learn
+    from inspector.core.models.base import ArraySource
+
+    frames = np.concatenate([_frames()] * 3)
+    c = Conditions().fit(frames[:6])
+    whole = learn.PreparedSource(ArraySource(frames), c, exposure=0.4)
+    monkeypatch.setattr(learn, "PREPARE_PART", len(frames))
+    at_once = list(whole.training_batches(range(len(frames)), 5))
+    parts = learn.PreparedSource(ArraySource(frames), c, exposure=0.4)
+    monkeypatch.setattr(learn, "PREPARE_PART", 2)
+    in_parts = list(parts.training_batches(range(len(frames)), 5))
+    assert len(at_once) == len(in_parts) == -(-len(frames) // 5)
+    for (i1, p1, v1), (i2, p2, v2) in zip(at_once, in_parts):
+        assert np.array_equal(i1, i2) and np.array_equal(p1, p2) and np.array_equal(v1, v2)
+        assert np.array_equal(p1, c.prepare(frames[i1]).images)
+    assert (np.concatenate([v for _, _, v in at_once]) !=
+            np.concatenate([p for _, p, _ in at_once])).any()  # some frames were made darker
+    assert whole.measures == parts.measures
+    m = c.measures(c.prepare(frames[:5]))
+    assert [whole.measures[i]["frozen"] for i in range(5)] == list(m["frozen"])

@@ -12,8 +12,9 @@ same sample finds burned-in text overlays, which are masked, and sets the health
 
 from __future__ import annotations
 
-from collections import Counter
+from collections import Counter, deque
 from collections.abc import Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -60,6 +61,9 @@ MIN_FRAMES = 10
 CONDITION_SAMPLE = 48
 #: Fewest normal frames a regime (see :mod:`inspector.core.regimes`) may be calibrated on.
 MIN_REGIME_FRAMES = 30
+#: Frames prepared at once within a batch (bounds the temporaries of preparation: about
+#: 1.1 MB a frame at 320 x 180).
+PREPARE_PART = 16
 #: Long side at which burned-in text is looked for (small text vanishes at working size).
 TEXT_LONG_SIDE = 640
 
@@ -177,32 +181,55 @@ class PreparedSource:
 
     def _prepared(self, indices: Sequence[int], batch_size: int, vary: bool
                   ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        for idx, images in self.source.batches(indices, batch_size):
+        """Batches prepared in order, each in a worker thread while the caller works on the
+        one before (OpenCV and numpy release the GIL): one batch ahead at most."""
+        with ThreadPoolExecutor(1) as pool:
+            pending: deque = deque()
+            for idx, images in self.source.batches(indices, batch_size):
+                pending.append(pool.submit(self._prepare_batch, idx, images, vary))
+                if len(pending) > 1:
+                    yield pending.popleft().result()
+            while pending:
+                yield pending.popleft().result()
+
+    def _prepare_batch(self, idx: np.ndarray, images: np.ndarray, vary: bool
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """One batch: the prepared frames, the frames to learn from (some made darker when
+        ``vary``), and the batch's health measures and appearance recorded. Prepared
+        :data:`PREPARE_PART` frames at a time (the same frames as at once; fewer
+        temporaries)."""
+        prepared = np.empty_like(images)
+        varied = np.empty_like(images) if vary else prepared
+        measure = self.conditions.reference_ is not None and not all(
+            int(i) in self.measures for i in idx)
+        previous = None  # grey of the frame before the part (for the frozen-feed measure)
+        for start in range(0, len(idx), PREPARE_PART):
+            part = slice(start, start + PREPARE_PART)
             # The record of the frames as captured feeds the health measures and the
             # scores; frames made darker are prepared again, for the model to learn from.
-            rec = self.conditions.prepare(images)
-            prepared = varied = rec.images
+            rec = self.conditions.prepare(images[part])
+            prepared[part] = rec.images
             if vary:
+                varied[part] = rec.images
                 darker = {}
-                for j, i in enumerate(idx):
+                for j, i in enumerate(idx[part]):
                     rng = np.random.default_rng([7, int(i)])
                     if rng.random() < 0.5:
                         gain = 1.0 - self.exposure * rng.random()
-                        darker[j] = darker_exposure(images[j], gain, rng)
+                        darker[j] = darker_exposure(images[start + j], gain, rng)
                 if darker:  # a darker copy of a frame sits where the frame sits
-                    varied = prepared.copy()
                     rows = list(darker)
-                    varied[rows] = self.conditions.prepare(np.stack(list(darker.values())),
-                                                           rec.shifts[rows]).images
-            if self.conditions.reference_ is not None and not all(
-                    int(i) in self.measures for i in idx):
-                m = self.conditions.measures(rec)
-                for j, i in enumerate(idx):
+                    varied[[start + j for j in rows]] = self.conditions.prepare(
+                        np.stack(list(darker.values())), rec.shifts[rows]).images
+            if measure:
+                m = self.conditions.measures(rec, previous)
+                for j, i in enumerate(idx[part]):
                     self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
-            if not all(int(i) in self.appearance for i in idx):
-                for i, a in zip(idx, appearance(images)):
-                    self.appearance[int(i)] = a
-            yield idx, prepared, varied
+            previous = rec.grey[-1]
+        if not all(int(i) in self.appearance for i in idx):
+            for i, a in zip(idx, appearance(images)):
+                self.appearance[int(i)] = a
+        return idx, prepared, varied
 
 
 @dataclass
