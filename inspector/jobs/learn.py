@@ -64,6 +64,8 @@ MIN_REGIME_FRAMES = 30
 #: Frames prepared at once within a batch (bounds the temporaries of preparation: about
 #: 1.1 MB a frame at 320 x 180).
 PREPARE_PART = 16
+#: Threads preparing batches of frames while the model learns from the ones before.
+PREPARE_WORKERS = 2
 #: Long side at which burned-in text is looked for (small text vanishes at working size).
 TEXT_LONG_SIDE = 640
 
@@ -181,13 +183,14 @@ class PreparedSource:
 
     def _prepared(self, indices: Sequence[int], batch_size: int, vary: bool
                   ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """Batches prepared in order, each in a worker thread while the caller works on the
-        one before (OpenCV and numpy release the GIL): one batch ahead at most."""
-        with ThreadPoolExecutor(1) as pool:
+        """Batches prepared in order, in :data:`PREPARE_WORKERS` threads while the caller
+        works on the batch before (OpenCV and numpy release the GIL): as many batches
+        ahead of it at most."""
+        with ThreadPoolExecutor(PREPARE_WORKERS) as pool:
             pending: deque = deque()
             for idx, images in self.source.batches(indices, batch_size):
                 pending.append(pool.submit(self._prepare_batch, idx, images, vary))
-                if len(pending) > 1:
+                if len(pending) > PREPARE_WORKERS:
                     yield pending.popleft().result()
             while pending:
                 yield pending.popleft().result()
