@@ -8,7 +8,7 @@ import numpy as np
 
 def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
                     ) -> list[tuple[int, int, int, int]]:
-    """Boxes of burned-in text that changes (a clock, a date) in a sample of normal frames.
+    """Boxes of burned-in text (a clock, a date, a camera name) in a sample of normal frames.
 
     Burned-in text is small, set in rows of character height, and its strokes change in
     step with capture time while the wall behind them stays. So:
@@ -18,14 +18,16 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
        variation, and at least 12 grey levels), more than its smooth content does (the
        wall behind stays) and more than its mean fine detail (strokes come and go; an edge
        whose contrast follows the light does not), both in the frames as they are and
-       once they are aligned to the scene (text stays put while the scene jitters).
+       once they are aligned to the scene (text stays put while the scene jitters); or
+       when it is still text that does not move with the scene (see below).
     2. Changing strokes are joined along rows (gaps up to 2 % of the frame width) into
        lines.
     3. A line is text when it is a row of characters: between 3 pixels and a twelfth of the
        frame high, at least three times as wide as high, with at least three separate stroke
-       columns, changing strokes filling at least 15 % of it, and standing alone: the band around
-       it (one line height on every side) holds far fewer changing strokes than the line
-       (moving foliage, water or a jittering textured shelf change everywhere around).
+       columns (or strokes along its median row), changing strokes filling at least 15 % of
+       it, and standing alone: the band around it (one line height on every side) holds
+       far fewer changing strokes than the line (moving foliage, water or a jittering
+       textured shelf change everywhere around).
     4. A text line takes the rows its strokes fill (changing or not: the whole height of
        the characters), the changing pieces in its rows up to four heights away (a day
        digit between still hours), then the columns up to two heights away that have
@@ -33,10 +35,14 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
        date; a scene edge or texture runs on above and below), at most its own width
        further.
 
-    Text that never changes and stands apart from any changing line (a camera name in
-    another corner) is not found: it looks the same in every frame, which the model learns
-    like any steady part of the scene, but it does not follow the exposure either. A name
-    on the clock's line is part of that line (step 4).
+    Text that never changes (a camera name in another corner) is found in step 1 when the
+    camera jitters: it stays put on the frame while the scene moves, so its fine detail
+    varies several times more once the frames are aligned to the scene than in the frames
+    as they are (a scene edge varies less once aligned, moving foliage alike in both).
+    Aligned and moved back at scan time, it would land a little off its place on every
+    jittered frame, and it does not follow the exposure either. On a steady camera it is
+    not found (and it moves with nothing); a name on the clock's line is part of that line
+    (step 4).
 
     Parameters
     ----------
@@ -58,12 +64,31 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
     # the frames as they are and in the frames aligned to the scene (a jittering edge
     # changes only in the first, a still edge of text that does not change only in the
     # second).
-    changing, strokes = _changing_strokes(g)
-    cand = changing & _changing_strokes(_aligned(g))[0]
-    if ignore is not None:
-        cand &= ~ignore
-    if cand.sum() < 4:
-        return []
+    changing, strokes, spread = _changing_strokes(g)
+    changing_aligned, _, spread_aligned = _changing_strokes(_aligned(g))
+    # Text that never changes (a camera name) stays put while the scene jitters, so
+    # aligning the frames to the scene moves it: its fine detail varies several times more
+    # in the aligned frames than in the frames as they are (a scene edge varies less once
+    # aligned, moving foliage as much; without jitter there is nothing to find, and the
+    # text then moves with nothing either). Its lines are found after the changing ones,
+    # outside them (the still part of a date is in the clock's line already).
+    level = float(np.median(spread_aligned))
+    still = (spread_aligned > 3.0 * spread) & (spread_aligned > max(8.0 * level, 12.0))
+    boxes: list[tuple[int, int, int, int]] = []
+    for cand in (changing & changing_aligned, still):
+        if ignore is not None:
+            cand &= ~ignore
+        if boxes:
+            cand &= ~boxes_mask(boxes, (w, h))
+        if cand.sum() >= 4:
+            boxes += _line_boxes(cand, strokes)
+    return sorted(_merge_boxes(boxes), key=lambda b: (b[2] - b[0]) * (b[3] - b[1]))
+
+
+def _line_boxes(cand: np.ndarray, strokes: np.ndarray) -> list[tuple[int, int, int, int]]:
+    """Steps 2-4 of :func:`find_text_boxes` on candidate stroke pixels ``cand`` (H, W)
+    bool, with the stroke pixels ``strokes`` (H, W) bool; boxes (x0, y0, x1, y1)."""
+    h, w = cand.shape
     max_height = max(3, h // 12)
     k = max(3, int(round(0.02 * w)))
     joined = cv2.morphologyEx(cand.astype(np.uint8), cv2.MORPH_CLOSE,
@@ -75,8 +100,12 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
         if not 3 <= bh <= max_height or bw < 3 * bh:
             continue
         inside = cand[y:y + bh, x:x + bw]
-        columns = inside.any(axis=0).astype(np.int8)
-        runs = int((np.diff(np.concatenate([[0], columns])) == 1).sum())
+        # separate strokes: across the columns, or along the line's typical row (the
+        # outlines of small still characters fill every column; a row crosses them)
+        starts = np.diff(np.concatenate([np.zeros((bh + 1, 1), np.int8),
+                                         np.vstack([inside.any(axis=0), inside])
+                                         .astype(np.int8)], axis=1), axis=1) == 1
+        runs = max(int(starts[0].sum()), int(np.median(starts[1:].sum(axis=1))))
         if runs < 3 or inside.mean() < 0.15:
             continue
         ring = cand[max(0, y - bh):y + 2 * bh, max(0, x - bh):x + bw + bh]
@@ -91,7 +120,7 @@ def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
         th = y1 - y0
         pad = max(1, th // 4)
         boxes.append((max(0, x0 - th), max(0, y0 - pad), min(w, x1 + th), min(h, y1 + pad)))
-    return sorted(_merge_boxes(boxes), key=lambda b: (b[2] - b[0]) * (b[3] - b[1]))
+    return boxes
 
 
 def _text_rows(strokes: np.ndarray, x0: int, x1: int, y0: int, y1: int, most: int
@@ -171,9 +200,10 @@ def _extend_columns(strokes: np.ndarray, x0: int, x1: int, y0: int, y1: int
     return x0, x1
 
 
-def _changing_strokes(g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _changing_strokes(g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Pixels whose fine detail changes far beyond noise while the smooth content stays;
-    and stroke pixels (fine detail far above the frame's typical level on average)."""
+    stroke pixels (fine detail far above the frame's typical level on average); and the
+    standard deviation over the frames of each pixel's fine detail, float32 (H, W)."""
     low = np.stack([cv2.GaussianBlur(x, (0, 0), 1.5) for x in g])
     high = g - low
     v_high = high.std(axis=0)
@@ -181,7 +211,7 @@ def _changing_strokes(g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     changing = ((v_high > max(8.0 * level, 12.0)) & (v_high > 1.2 * low.std(axis=0))
                 & (v_high > np.abs(high.mean(axis=0))))
     strength = np.abs(high).mean(axis=0)
-    return changing, strength > max(6.0 * float(np.median(strength)), 8.0)
+    return changing, strength > max(6.0 * float(np.median(strength)), 8.0), v_high
 
 
 def _aligned(g: np.ndarray) -> np.ndarray:
