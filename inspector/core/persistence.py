@@ -519,7 +519,9 @@ class Persistence:
 
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
-                          alpha: float, window: int = WINDOW) -> Persistence:
+                          alpha: float, window: int = WINDOW,
+                          scanned: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+                          ) -> Persistence:
     """Calibrate persistence on held-out normal maps, and measure how busy the camera is.
 
     Parameters
@@ -535,6 +537,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     alpha : float in (0, 1)
         False-alarm rate asked for.
     window : int
+    scanned : (maps, times, blocks), optional
+        The held-out frames that set the thresholds, with their maps standardised as scan
+        maps are (by the blocks the single-frame calibration keeps, see
+        :func:`inspector.core.calibration.newest_blocks`); default: ``maps``, ``times``,
+        ``blocks``. How busy the camera is is measured on all of ``maps``.
 
     Returns
     -------
@@ -568,8 +575,12 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     busy = close and clearly_busy(int(transient.sum()), len(transient))
     # Flags come from the step from the frames just before the window, on robust local maps;
     # frames with no frame before their window are held to the steady level of any window.
-    step = persistence(maps, times, window, max_gap, blocks=blocks, past=window, robust=True,
-                       around=AROUND)
+    s_maps, s_times, s_blocks = scanned if scanned is not None else (maps, times, blocks)
+    step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=window,
+                       robust=True, around=AROUND)
+    if not step.filled.any():
+        raise ValueError(f"no run of {window} consecutive calibrating frames within "
+                         f"{max_gap:.0f} s of each other")
     starts = step.levels[step.filled]
     stepped = step.filled & step.stepped
     if not stepped.any():

@@ -29,6 +29,7 @@ from inspector.core.calibration import (
     alarms_to_alpha,
     calibrate,
     cross_fit_maps,
+    newest_blocks,
     time_blocks,
 )
 from inspector.core.conditions import Conditions
@@ -448,13 +449,24 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     groups = (np.zeros(len(held.index), int) if regimes is None else  # as scored: by regime
               assign(np.array([looks[int(i)] for i in held.index]), regimes.prototypes,
                      regimes.feature_scale))
+    # Thresholds from the blocks the single-frame calibration keeps, standardised among
+    # themselves as scan maps are; how busy the camera is from all held-out frames.
+    kept = np.zeros(len(held.index), bool)
+    kept_maps = np.empty(held.maps.shape, np.float32)
     for r in np.unique(groups):
-        maps[groups == r] = cross_fit_maps(held.maps[groups == r], held_blocks[groups == r])
+        mine = np.flatnonzero(groups == r)
+        maps[mine] = cross_fit_maps(held.maps[mine], held_blocks[mine])
+        sel = mine[newest_blocks(held_blocks[mine], alpha)]
+        kept[sel] = True
+        kept_maps[sel] = cross_fit_maps(held.maps[sel], held_blocks[sel])
     order = np.argsort(held.index, kind="stable")  # positions are in capture-time order
     seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
+    ko = order[kept[order]]
+    scanned = (kept_maps[ko], np.array([times[int(i)].timestamp() for i in held.index[ko]]),
+               held_blocks[ko])
     try:
         p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
-                                  cfg.persistence.window)
+                                  cfg.persistence.window, scanned)
     except ValueError as exc:
         notes.append(f"persistence not calibrated: {exc}")
         return None
