@@ -482,13 +482,13 @@ class Persistence:
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
         calibration scores, shapes (n,)."""
-        stepped = run.stepped if self.start_threshold is not None else np.ones(len(run.scores),
-                                                                               bool)
-        thresholds = np.where(stepped, self.threshold.value,
-                              self.start_threshold.value if self.start_threshold else 0.0)
+        thresholds = np.full(len(run.scores), self.threshold.value)
         p = conformal_p_values(self.calibration_scores, run.scores)
-        if self.start_threshold is not None and self.start_scores is not None:
-            p = np.where(stepped, p, conformal_p_values(self.start_scores, run.scores))
+        if self.start_threshold is not None:  # the first frames of a run: their own
+            first = ~run.stepped
+            thresholds[first] = self.start_threshold.value
+            if self.start_scores is not None:
+                p = np.where(first, conformal_p_values(self.start_scores, run.scores), p)
         return thresholds, p
 
     @property

@@ -462,8 +462,7 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     order = np.argsort(held.index, kind="stable")  # positions are in capture-time order
     seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
     ko = order[kept[order]]
-    scanned = (kept_maps[ko], np.array([times[int(i)].timestamp() for i in held.index[ko]]),
-               held_blocks[ko])
+    scanned = (kept_maps[ko], seconds[kept[order]], held_blocks[ko])
     try:
         p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
                                   cfg.persistence.window, scanned)

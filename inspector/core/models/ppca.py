@@ -544,7 +544,7 @@ class Moments:
         offset from them. Entry pair (f, f') of a location is entry (t, t') of the product
         of its blocks k and k' holding f and f', stored under the block the offset starts
         from (transposed when that is k')."""
-        if getattr(self, "_where", None) is None:
+        if self._where is None:
             r, e = self.r, self.e
             uh, uw = self.units
             gi, gj = np.divmod(np.arange(self.L), self.grid[1])
