@@ -304,3 +304,18 @@ def test_bench_busy_smoke(capsys):
                        "--camera", "yard"]) == 0
     out = capsys.readouterr().out
     assert "\non seed 1 " in out and "\noff seed 1 " in out and "'yard'" in out
+
+
+def test_a_late_frame_first_of_its_run_takes_the_start_threshold():
+    # A late frame with no frame before its window (not stepped) is judged against the start
+    # threshold, and so is the region its ``since`` dates. The stream (frames 4-9) has the
+    # cell above the step threshold since frame 8; the late frame 3 reaches only that.
+    maps = np.zeros((10, 4, 4), np.float32)
+    maps[:, 1, 2] = 5.0                         # there from the first frame on
+    times = 100.0 + np.arange(10) * 2.0
+    order = [4, 5, 6, 7, 8, 9, 0, 1, 2, 3]      # frames 0-3 arrive after 4-9
+    for start, dated in ((50.0, False), (2.0, True)):
+        run = persistence(maps[order], times[order], 4, 10.0, threshold=1.0, past=4,
+                          start_threshold=start)
+        assert run.late[-1] and run.filled[-1] and not run.stepped[-1]
+        assert np.isfinite(run.since[-1]) == dated

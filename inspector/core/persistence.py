@@ -273,7 +273,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 buf_t.insert(pos, t)
                 del buf[:-keep], buf_t[:-keep]
             if threshold is not None and onset is not None:
-                region = out[i] > threshold
+                region = out[i] > _limit(threshold, start_threshold, stepped[i])
                 if region.any() and np.isfinite(onset[region]).any():
                     since[i] = min(float(np.nanmedian(onset[region])), t)
             continue
@@ -289,7 +289,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         stepped[i] = past > 0 and len(buf) > window
         filled[i] = len(buf) >= window
         if threshold is not None:
-            limit = threshold if stepped[i] or start_threshold is None else start_threshold
+            limit = _limit(threshold, start_threshold, stepped[i])
             above = maps[i] > limit
             if onset is None:
                 onset = np.full(maps.shape[1:], np.nan)
@@ -310,6 +310,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                             np.array(kept_t, np.float64), onset, block, held)
     return PersistenceResult(out, frame_scores(out), filled, since, state_out, late, stepped,
                              levels)
+
+
+def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> float:
+    """The threshold a frame's persistence map is held to: ``threshold`` when it is measured
+    from a reference (``stepped``), else ``start_threshold`` when there is one."""
+    return threshold if stepped or start_threshold is None else start_threshold
 
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
