@@ -16,7 +16,7 @@ from sklearn.metrics import roc_auc_score
 
 from inspector.config import load_config
 from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
-from inspector.core.conditions import Conditions
+from inspector.core.conditions import Conditions, _percentile_rows
 from inspector.core.image import (
     brightness_field,
     darker_exposure,
@@ -114,6 +114,16 @@ def test_phase_shifts_with_a_stored_spectrum_agree_with_opencv():
     want = np.array([cv2.phaseCorrelate(filled[0], f, window)[0] for f in filled[1:]])
     got = phase_shifts(frames, phase_spectrum(ref, ignore), ignore)
     assert np.abs(got - want).max() < 0.01
+
+
+def test_row_percentile_is_numpys():
+    # numpy.percentile (linear interpolation) is the reference, to the last bit, on grey
+    # levels (the bundled camera photograph) and on rows too short to interpolate
+    rows = _camera_image().reshape(8, -1)[:, ::7]
+    for x in (rows, rows[:, :2], rows[:, :1], np.round(rows[:, :101] / 16)):
+        for q in (99, 50, 10):
+            got, want = _percentile_rows(x, q), np.percentile(x, q, axis=1)
+            assert got.dtype == want.dtype and np.array_equal(got, want)
 
 
 def test_robust_gain_offset_ignores_a_local_incident():

@@ -100,6 +100,24 @@ def _channel_max(image: np.ndarray) -> np.ndarray:
     return cv2.max(cv2.max(r, g), b)
 
 
+def _percentile_rows(x: np.ndarray, q: float) -> np.ndarray:
+    """``np.percentile(x, q, axis=1)`` (linear interpolation) of an (n, m) array, the same
+    numbers, several times faster: one partition at the lower order statistic (numpy's
+    partition at two is much slower), the next one being the smallest value above it."""
+    m = x.shape[1]
+    if not m or not len(x):
+        return np.percentile(x, q, axis=1)
+    pos = q / 100 * (m - 1)
+    lo = int(np.floor(pos))
+    part = np.partition(x, lo, axis=1)
+    a = part[:, lo]
+    b = part[:, lo + 1:].min(axis=1) if lo + 1 < m else a
+    t = pos - lo
+    d = b - a
+    # numpy's lerp: from the nearer end
+    return np.where(t >= 0.5, b - d * (1 - t), a + d * t).astype(x.dtype, copy=False)
+
+
 class Conditions(Estimator):
     """A camera's normal conditions, learnt with its baseline, applied to every frame.
 
@@ -380,7 +398,7 @@ class Conditions(Estimator):
         if kept is not None:
             clipped &= ~self.ignore_.reshape(1, -1)
         count = max(flat.shape[1] if kept is None else len(kept), 1)
-        out = {"dark": np.percentile(quarter, 99, axis=1),
+        out = {"dark": _percentile_rows(quarter, 99),
                "bright": np.count_nonzero(clipped, axis=1) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),

@@ -231,19 +231,24 @@ def phase_shifts(frames: np.ndarray, spectrum: np.ndarray,
     out = np.zeros((n, 2))
     # the ignored pixels take the mean of the others (as _filled), set after windowing
     where = None if ignore is None or not ignore.any() else np.flatnonzero(ignore)
-    keep = None if where is None else (~ignore).astype(np.uint8)
+    if where is not None:
+        at, kept = window.ravel()[where], max(h * w - len(where), 1)
     windowed = np.empty((h, w), np.float32)
     mag = np.empty(spectrum.shape, np.float32)
     for i, frame in enumerate(frames):
         np.multiply(frame, window, out=windowed)
         if where is not None:
-            windowed.flat[where] = np.float32(cv2.mean(frame, keep)[0]) * window.flat[where]
+            mean = (cv2.sumElems(frame)[0] - frame.ravel()[where].sum(dtype=np.float64)) / kept
+            np.put(windowed, where, np.float32(mean) * at)
         cross = sfft.rfft2(windowed, s=size, workers=1)
         np.conjugate(cross, out=cross)
         cross *= spectrum
         np.abs(cross, out=mag)
         np.maximum(mag, np.float32(1e-20), out=mag)
-        cross /= mag
+        np.reciprocal(mag, out=mag)
+        parts = cross.view(np.float32)  # real and imaginary parts, interleaved
+        parts[:, 0::2] *= mag
+        parts[:, 1::2] *= mag
         surface = sfft.irfft2(cross, s=size, workers=1)  # peaks at minus the shift
         py, px = divmod(int(surface.argmax()), cols)
         box = surface[np.ix_((py + step) % rows, (px + step) % cols)].astype(np.float64)

@@ -211,10 +211,26 @@ def load_baseline(baselines: BaselineCache, camera: str, damaged: dict[str, str]
     try:
         return baselines.get(camera), ""
     except DamagedBaseline as exc:
-        damaged[camera] = f"{exc}: {exc.advice}"
+        damaged[camera] = _damage_note(exc)
         return None, str(exc)
     except LookupError as exc:
         return None, str(exc)
+
+
+def check_baseline(store: Store, camera: str, damaged: dict[str, str]) -> None:
+    """Put the camera's active baseline into ``damaged`` as :func:`load_baseline` would when
+    it is damaged, from its checksums alone (:meth:`Store.verify`: a version saved before
+    checksums is loaded), for a camera none of whose frames is scored."""
+    version = store.active_version(camera)
+    if version is not None:
+        check = store.verify(camera, version)
+        if check.damaged:
+            damaged[camera] = _damage_note(DamagedBaseline(check, store.advice(camera, version)))
+
+
+def _damage_note(exc: DamagedBaseline) -> str:
+    """A damaged baseline as a scan's summary names it: what is wrong and what to do."""
+    return f"{exc}: {exc.advice}"
 
 
 def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: ResultWriter,
@@ -304,8 +320,8 @@ def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, co
 
     ``rescore=False`` leaves out the frames that ``writer``'s ledger has scored before and
     whose file is unchanged (counted in the summary); a camera all of whose frames are left
-    out still has its active baseline loaded, so that damage to it is reported in
-    ``summary.damaged`` as on any other scan. With a ``distributed.Client`` the
+    out still has its active baseline checked (not loaded), so that damage to it is
+    reported in ``summary.damaged`` as on any other scan. With a ``distributed.Client`` the
     frames are scored on its Dask cluster (:func:`inspector.jobs.cluster.scan_on_cluster`).
     """
     files, skips = discover(source)
@@ -325,7 +341,7 @@ def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, co
     summary.unchanged = len(done)
     active = {c: baselines.store.active_version(c) for c in {r["camera"] for r in done.values()}}
     for camera in sorted(active.keys() - {f.camera for f in files}):
-        load_baseline(baselines, camera, summary.damaged)  # all its frames were left out
+        check_baseline(baselines.store, camera, summary.damaged)  # all its frames left out
     summary.no_baseline = dict(writer.waiting)
     summary.loose = sum(not s.camera for s in skips)
     summary.unchanged_older = sum(r["version"] != active[r["camera"]] for r in done.values())
