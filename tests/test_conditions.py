@@ -20,6 +20,8 @@ from inspector.core.conditions import Conditions, _percentile_rows
 from inspector.core.image import (
     brightness_field,
     darker_exposure,
+    grey,
+    noise_bank,
     noise_sigma,
     phase_shift,
     phase_shifts,
@@ -152,6 +154,12 @@ def test_noise_estimate_and_darker_exposure_keep_the_sensor_noise():
     dark = darker_exposure(img, 0.7, rng)
     assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)
     assert noise_sigma(dark[..., 0].astype(np.float32)) == pytest.approx(4.0, rel=0.15)
+    # the same with the noise read from a bank of draws at a random offset
+    bank = noise_bank(img.size)
+    dark = darker_exposure(img, 0.7, rng, grey(img[None])[0], bank)
+    assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)
+    assert noise_sigma(dark[..., 0].astype(np.float32)) == pytest.approx(4.0, rel=0.15)
+    assert not np.array_equal(dark, darker_exposure(img, 0.7, rng, None, bank))
 
 
 def _with_lamp():

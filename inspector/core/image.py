@@ -480,7 +480,27 @@ def noise_sigma(g: np.ndarray) -> float:
     return float(1.4826 * np.median(np.abs(r)) / 6.0)
 
 
-def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator) -> np.ndarray:
+def noise_bank(values: int, seed=7) -> np.ndarray:
+    """Standard normal values for :func:`darker_exposure` to read its noise from.
+
+    Parameters
+    ----------
+    values : int
+        Values a frame needs (H * W * 3); the bank holds at least four times as many, and
+        at least 2^20, so that frames rarely read the same stretch.
+    seed : int or sequence of int
+        For :func:`numpy.random.default_rng`: the same seed gives the same bank.
+
+    Returns
+    -------
+    ndarray, shape (m,), float32
+    """
+    return np.random.default_rng(seed).standard_normal(max(1 << 20, 4 * int(values)),
+                                                       dtype=np.float32)
+
+
+def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator,
+                    g: np.ndarray | None = None, bank: np.ndarray | None = None) -> np.ndarray:
     """The frame as a shorter exposure would have caught it: the signal times ``gain``
     (<= 1) with the sensor noise unchanged, i.e. ``gain * image`` plus fresh noise of
     variance ``sigma^2 (1 - gain^2)`` (sigma from :func:`noise_sigma`). Normalised back to
@@ -490,14 +510,30 @@ def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator) ->
     ----------
     image : ndarray, shape (H, W, 3), uint8
     gain : float in (0, 1]
+    rng : numpy.random.Generator
+    g : ndarray, shape (H, W), float32, optional
+        :func:`grey` of ``image`` when already computed.
+    bank : ndarray, shape (m,), float32, optional
+        Standard normal values (:func:`noise_bank`, m >= H * W * 3): the noise is the
+        stretch of them starting at an offset drawn from ``rng``, instead of a fresh draw
+        (a copy, not a draw: about 0.1 instead of 1.7 ms for a 320 x 180 frame). The values
+        of one frame are distinct draws, and two frames share a value at the same place
+        only when their offsets are equal.
 
     Returns
     -------
     ndarray, shape (H, W, 3), uint8
+        Rounded to the nearest grey level and clipped to [0, 255].
     """
-    sigma = noise_sigma(grey(image[None])[0])
+    image = np.asarray(image)
+    sigma = noise_sigma(grey(image[None])[0] if g is None else g)
     extra = sigma * np.sqrt(max(0.0, 1.0 - gain * gain))
-    out = rng.standard_normal(image.shape, dtype=np.float32)  # single precision: faster
-    out *= np.float32(extra)
-    out += image.astype(np.float32) * np.float32(gain) + np.float32(0.5)
-    return np.clip(out, 0, 255).astype(np.uint8)
+    if bank is None:
+        noise = rng.standard_normal(image.shape, dtype=np.float32)  # single precision: faster
+    else:
+        if len(bank) < image.size:
+            raise ValueError(f"a noise bank of {len(bank)} values is too small for a frame "
+                             f"of {image.size}")
+        start = int(rng.integers(0, len(bank) - image.size + 1))
+        noise = bank[start:start + image.size].reshape(image.shape)
+    return cv2.addWeighted(image, float(gain), noise, float(extra), 0.0, dtype=cv2.CV_8U)

@@ -34,7 +34,7 @@ from inspector.core.calibration import (
 )
 from inspector.core.conditions import Conditions
 from inspector.core.features import rasterize_mask
-from inspector.core.image import darker_exposure, grey
+from inspector.core.image import darker_exposure, grey, noise_bank
 from inspector.core.models import model_class
 from inspector.core.persistence import (
     MAX_SPAN,
@@ -142,7 +142,9 @@ class PreparedSource:
     that fraction with the sensor noise unchanged
     (:func:`inspector.core.image.darker_exposure`), so the model learns the extra noise a
     normalised darker frame carries. These varied frames are learnt from only: calibration
-    scores come from the frames as they are, as scan scores do.
+    scores come from the frames as they are, as scan scores do. Their extra noise is read
+    from one bank of normal draws (:func:`inspector.core.image.noise_bank`, the same for
+    every copy of the source) at a random offset per frame.
     """
 
     def __init__(self, source, conditions: Conditions, exposure: float = 0.0):
@@ -155,6 +157,7 @@ class PreparedSource:
         self.measures: dict[int, dict[str, float]] = {}
         #: Global appearance of every frame, by position (for the regimes).
         self.appearance: dict[int, np.ndarray] = {}
+        self._bank: np.ndarray | None = None  # drawn when first needed (not sent to workers)
 
     def __len__(self) -> int:
         return len(self.source)
@@ -196,6 +199,12 @@ class PreparedSource:
             while pending:
                 yield pending.popleft().result()
 
+    def _noise(self) -> np.ndarray:
+        """The noise bank of the darker copies (the same values in every thread and copy)."""
+        if self._bank is None:
+            self._bank = noise_bank(3 * self.size[0] * self.size[1])
+        return self._bank
+
     def _prepare_batch(self, idx: np.ndarray, images: np.ndarray, vary: bool
                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """One batch: the prepared frames, the frames to learn from (some made darker when
@@ -220,7 +229,8 @@ class PreparedSource:
                     rng = np.random.default_rng([7, int(i)])
                     if rng.random() < 0.5:
                         gain = 1.0 - self.exposure * rng.random()
-                        darker[j] = darker_exposure(images[start + j], gain, rng)
+                        darker[j] = darker_exposure(images[start + j], gain, rng, rec.grey[j],
+                                                    self._noise())
                 if darker:  # a darker copy of a frame sits where the frame sits
                     rows = list(darker)
                     varied[[start + j for j in rows]] = self.conditions.prepare(
