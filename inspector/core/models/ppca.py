@@ -823,9 +823,13 @@ class PatchPPCA(DensityModel):
                         q = self._heldout_q(earlier, now)  # covariances never coexist
                         self._set(*self._fit_moments(moments, q))
                     earlier = now
+                part, learnt = (images, varied) if sel.all() else (images[sel], varied[sel])
+                # the block entries of the frames as they are: scored, and learnt from
+                # where the frame was not varied
+                entries = self._entries(part)
                 if ready:
-                    held.append((idx[sel], self.score_maps(images[sel])))
-                moments.add(int(b), self._samples(varied[sel]))
+                    held.append((idx[sel], self.score_maps(part, entries)))
+                moments.add(int(b), self._samples(learnt, part, entries))
         self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
                             if self._wants_sums() else None)
         return moments, [held]
@@ -838,13 +842,34 @@ class PatchPPCA(DensityModel):
         return Moments(n_blocks, self.grid_[0] * self.grid_[1],
                        feature_size(self.patch, self.colour), block_scatter, tiles)
 
-    def _samples(self, images: np.ndarray) -> np.ndarray:
+    def _entries(self, images: np.ndarray) -> np.ndarray | None:
+        """Block entries (rows, columns, n, e) float32 in grey levels of frames (n, H, W, 3)
+        uint8 (:func:`block_features` over the cell map), or None when the patches do not
+        split into blocks."""
+        if block_order(self.patch, self.stride, self.colour) is None:
+            return None
+        return block_features(images, self.stride, self.colour, self.map_shape_)
+
+    def _samples(self, varied: np.ndarray, images: np.ndarray | None = None,
+                 entries: np.ndarray | None = None) -> np.ndarray:
         """Frames (n, H, W, 3) uint8 as :meth:`Moments.add` of :meth:`_new_moments` takes
         them: block entries, or patch features when patches do not split into blocks;
-        float32 in [0, 1]."""
+        float32 in [0, 1].
+
+        ``entries``: :meth:`_entries` of ``images``, taken (and changed in place) for the
+        frames of ``varied`` equal to those of ``images``; the others' are gathered.
+        """
         if block_order(self.patch, self.stride, self.colour) is None:
-            return patch_features(images, self.patch, self.stride, self.colour)
-        X = block_features(images, self.stride, self.colour, self.map_shape_)
+            return patch_features(varied, self.patch, self.stride, self.colour)
+        if entries is None:
+            X = self._entries(varied)
+        else:
+            X = entries
+            if varied is not images:
+                other = [k for k in range(len(varied))
+                         if not np.array_equal(varied[k], images[k])]
+                if other:
+                    X[:, :, other] = self._entries(varied[other])
         X *= np.float32(1 / 255)
         return X
 
@@ -986,10 +1011,11 @@ class PatchPPCA(DensityModel):
 
     # scoring
 
-    def patch_nll(self, images: np.ndarray) -> np.ndarray:
-        """Negative log-likelihood of every patch, shape (n, L), float64."""
+    def patch_nll(self, images: np.ndarray, entries: np.ndarray | None = None) -> np.ndarray:
+        """Negative log-likelihood of every patch, shape (n, L), float64 (``entries``: the
+        frames' :meth:`_entries` when already gathered; not changed)."""
         if self._blocks is not None:
-            return self._blocks.nll(self, images)
+            return self._blocks.nll(self, images, entries)
         # Residuals in grey levels, the mean subtracted while gathering (the scale is applied
         # to the per-location sums instead of the whole array).
         R = patch_features(images, self.patch, self.stride, self.colour,
@@ -1006,12 +1032,13 @@ class PatchPPCA(DensityModel):
             R[..., self.patch * self.patch:] *= np.float32(1.0 / c if inverse else c)
         return R
 
-    def score_maps(self, images: np.ndarray) -> np.ndarray:
+    def score_maps(self, images: np.ndarray, entries: np.ndarray | None = None) -> np.ndarray:
         """Raw anomaly maps: patch NLL averaged onto cells, shape (n, h, w), float32.
 
-        Fully masked locations score 0 (they carry no evidence).
+        Fully masked locations score 0 (they carry no evidence). ``entries``: as in
+        :meth:`patch_nll`.
         """
-        nll = self.patch_nll(images)
+        nll = self.patch_nll(images, entries)
         if self.observed_ is not None:
             nll[:, self._d_obs == 0] = 0.0
         return fold_to_cells(nll, self.grid_, self.patch, self.stride)
@@ -1176,11 +1203,15 @@ class _BlockLayout:
         return cls(parts, perm, mean, None if obs.all() else obs.astype(np.float32), (gh, gw),
                    r, s, colour, getattr(model, "chroma_weight_", 1.0))
 
-    def blocks(self, images: np.ndarray) -> np.ndarray:
-        """Observed residuals of every block in grey levels, shape (bh, bw, n, e) float32."""
-        out = block_features(images, self.stride, self.colour, self.mean.shape[:2])
+    def blocks(self, images: np.ndarray, entries: np.ndarray | None = None) -> np.ndarray:
+        """Observed residuals of every block in grey levels, shape (bh, bw, n, e) float32
+        (from the frames' :func:`block_features` ``entries`` when given; not changed)."""
+        if entries is None:
+            out = block_features(images, self.stride, self.colour, self.mean.shape[:2])
+            out -= self.mean[:, :, None, :]
+        else:
+            out = entries - self.mean[:, :, None, :]
         s = self.stride
-        out -= self.mean[:, :, None, :]
         if self.colour and self.chroma_weight != 1.0:
             out[..., s * s:] *= np.float32(self.chroma_weight)
         if self._partial is not None:
@@ -1188,9 +1219,10 @@ class _BlockLayout:
             out[rows, cols] *= self.observed[rows, cols][:, None, :]
         return out
 
-    def nll(self, model: "PatchPPCA", images: np.ndarray) -> np.ndarray:
+    def nll(self, model: "PatchPPCA", images: np.ndarray, entries: np.ndarray | None = None
+            ) -> np.ndarray:
         """:meth:`PatchPPCA.patch_nll` from blocks, shape (n, L), float64."""
-        blocks = self.blocks(images)
+        blocks = self.blocks(images, entries)
         norms = np.einsum("ijne,ijne->ijn", blocks, blocks)
         (gh, gw), r = self.grid, self.r
         sq = proj = None
