@@ -243,8 +243,7 @@ def chroma_weight(cov: np.ndarray, n_luma: int, latent: int,
     L, d, _ = cov.shape
     if n_luma >= d:
         return 1.0
-    use = np.arange(L) if observed is None else np.flatnonzero(observed.all(axis=1))
-    use = use[::max(1, int(every))]
+    use = chroma_locations(L, observed, every)
     if not len(use):
         return 1.0
     part = np.asarray(cov[use], np.float64)
@@ -261,6 +260,24 @@ def chroma_weight(cov: np.ndarray, n_luma: int, latent: int,
         if abs(step - 1.0) < tol:
             break
     return c
+
+
+def chroma_locations(L: int, observed: np.ndarray | None, every: int) -> np.ndarray:
+    """The locations :func:`chroma_weight` takes its median over: every ``every``-th of the
+    fully observed ones.
+
+    Parameters
+    ----------
+    L : int
+    observed : ndarray, shape (L, d), bool, or None (all observed)
+    every : int
+
+    Returns
+    -------
+    ndarray, shape (k,), int
+    """
+    use = np.arange(L) if observed is None else np.flatnonzero(observed.all(axis=1))
+    return use[::max(1, int(every))]
 
 
 def weigh_chroma(cov: np.ndarray, n_luma: int, c: float) -> np.ndarray:
@@ -890,49 +907,43 @@ class PatchPPCA(DensityModel):
         mean, covariance, _ = moments.covariances(**subset)
         L, d = mean.shape
         observed = self.observed_
-        self.chroma_weight_ = 1.0
-        if self.chroma_noise == "own" and self.colour:  # every 8th fully observed location
-            use = np.arange(L) if observed is None else np.flatnonzero(observed.all(axis=1))
-            use = use[::HELDOUT_EVERY]
-            self.chroma_weight_ = chroma_weight(
-                covariance(use), self.patch * self.patch, self.latent, None, self.var_floor,
-                self.explained_variance, self.max_latent, every=1) if len(use) else 1.0
+        self.chroma_weight_ = self._chroma_weight(covariance, L, observed)
         most = d if observed is None else int(observed.sum(axis=1).max())
-        q = int(min(q, max(most - 1, 1), d))
-        W, sigma2 = np.empty((L, d, q)), np.empty(L)
 
-        def one(start: int) -> None:
+        def one(start: int) -> tuple[np.ndarray, np.ndarray]:
             part = slice(start, min(start + CHUNK // 2, L))
             cov = weigh_chroma(covariance(np.arange(part.start, part.stop)),
                                self.patch * self.patch, self.chroma_weight_)
-            W[part], sigma2[part] = ppca_fit(
-                cov, q, None if observed is None else observed[part], self.var_floor,
-                self.explained_variance, self.max_latent, most_observed=most)
+            return ppca_fit(cov, q, None if observed is None else observed[part],
+                            self.var_floor, self.explained_variance, self.max_latent,
+                            most_observed=most)
 
         with threadpool_limits(1), ThreadPoolExecutor(2) as pool:  # see batched_eigh
-            list(pool.map(one, range(0, L, CHUNK // 2)))
-        return mean, W, sigma2
+            fits = list(pool.map(one, range(0, L, CHUNK // 2)))
+        return (mean, np.concatenate([W for W, _ in fits]),
+                np.concatenate([sigma2 for _, sigma2 in fits]))
 
     def _fit_params(self, cov: np.ndarray, latent: int = 0) -> tuple[np.ndarray, np.ndarray]:
         """W and sigma^2 from a covariance, with ``latent`` dimensions when given, else
         ``self.latent``, else chosen by explained variance from the covariance alone.
         Sets ``chroma_weight_`` from ``cov`` and weighs ``cov`` with it (in place)."""
-        self.chroma_weight_ = self._chroma_weight(cov)
+        self.chroma_weight_ = self._chroma_weight(cov.__getitem__, len(cov), self.observed_)
         cov = weigh_chroma(cov, self.patch * self.patch, self.chroma_weight_)
         return ppca_fit(cov, latent or self.latent, self.observed_, self.var_floor,
                         self.explained_variance, self.max_latent)
 
-    def _chroma_weight(self, cov: np.ndarray, every: int = 8) -> float:
-        """:func:`chroma_weight` of a covariance (of every ``HELDOUT_EVERY``-th location when
-        ``every`` is 1), or 1 ("shared" noise, no colour)."""
+    def _chroma_weight(self, covariance, L: int, observed: np.ndarray | None,
+                       every: int = HELDOUT_EVERY) -> float:
+        """:func:`chroma_weight` of ``L`` locations whose covariances ``covariance(locs)``
+        gives (only those of :func:`chroma_locations` are formed), with their ``observed``
+        entries; 1 for "shared" noise or without colour."""
         if self.chroma_noise != "own" or not self.colour:
             return 1.0
-        observed = self.observed_
-        if observed is not None and every == 1:
-            observed = observed[::HELDOUT_EVERY]
-        return chroma_weight(cov, self.patch * self.patch, self.latent, observed,
-                             self.var_floor, self.explained_variance, self.max_latent,
-                             every=every)
+        use = chroma_locations(L, observed, every)
+        if not len(use):
+            return 1.0
+        return chroma_weight(covariance(use), self.patch * self.patch, self.latent, None,
+                             self.var_floor, self.explained_variance, self.max_latent, every=1)
 
     def _wants_sums(self) -> bool:
         """Whether the latent size is chosen from the moments of the blocks (copies of the
@@ -973,7 +984,8 @@ class PatchPPCA(DensityModel):
             weights = full.astype(np.float64)
             cov_a = cov_a * full[:, None, None]
             second = second * full[:, None, None]
-        c = self._chroma_weight(cov_a, every=1)
+        c = self._chroma_weight(cov_a.__getitem__, len(cov_a), None if self.observed_ is None
+                                else self.observed_[::HELDOUT_EVERY], every=1)
         cov_a = weigh_chroma(cov_a, self.patch * self.patch, c)
         second = weigh_chroma(second, self.patch * self.patch, c)
         evals, evecs = batched_eigh(cov_a)
@@ -1278,4 +1290,4 @@ def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: i
 
 
 __all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "choose_latent",
-           "heldout_latent", "chroma_weight", "weigh_chroma", "Moments"]
+           "heldout_latent", "chroma_weight", "chroma_locations", "weigh_chroma", "Moments"]
