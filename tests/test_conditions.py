@@ -21,6 +21,7 @@ from inspector.core.image import (
     brightness_field,
     darker_exposure,
     grey,
+    median,
     noise_bank,
     noise_sigma,
     phase_shift,
@@ -150,6 +151,8 @@ def test_noise_estimate_and_darker_exposure_keep_the_sensor_noise():
     noisy = smooth + rng.normal(0, 4.0, smooth.shape)
     # white noise of sigma 4 on smooth content (Immerkaer 1996: the filter cancels it)
     assert noise_sigma(noisy) == pytest.approx(4.0, rel=0.1)
+    for values in (noisy, noisy[1:, 1:], noisy[:, :7].astype(np.float32)):  # even, odd counts
+        assert median(values) == np.median(values)  # the same number as numpy's
     img = np.clip(np.repeat(noisy[..., None], 3, axis=2), 0, 255).astype(np.uint8)
     dark = darker_exposure(img, 0.7, rng)
     assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)

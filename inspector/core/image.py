@@ -477,7 +477,29 @@ def noise_sigma(g: np.ndarray) -> float:
     """
     kernel = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], np.float32)
     r = cv2.filter2D(np.asarray(g, np.float32), -1, kernel)[1:-1, 1:-1]
-    return float(1.4826 * np.median(np.abs(r)) / 6.0)
+    return float(1.4826 * median(np.abs(r)) / 6.0)
+
+
+def median(values: np.ndarray) -> float:
+    """``numpy.median`` of all the values, the same number, from one selection.
+
+    For an even count numpy selects the two middle values together, which is several times
+    slower than selecting one (about 0.5 against 0.06 ms for 57,000 values, numpy 2.4); the
+    other middle value is the largest of the lower part.
+
+    Parameters
+    ----------
+    values : ndarray, any shape, float, no NaN
+    """
+    x = np.ravel(values)
+    n = len(x)
+    if n == 0:
+        return float(np.median(x))
+    k = n // 2
+    part = np.partition(x, k)
+    if n % 2:
+        return float(part[k])
+    return float(np.mean(np.array([part[:k].max(), part[k]], dtype=x.dtype)))
 
 
 def noise_bank(values: int, seed=7) -> np.ndarray:
