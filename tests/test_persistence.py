@@ -215,7 +215,7 @@ def test_calibrate_tells_busy_from_quiet():
     # p-value, checked against the binomial tail summed directly (scipy.stats.binom.sf).
     from scipy.stats import binom
 
-    for k, m in ((2, 26), (12, 100), (40, 100)):
+    for k, m in ((0, 10), (2, 26), (12, 100), (40, 100)):
         assert clearly_busy(k, m) == (binom.sf(k - 1, m, BUSY_SHARE) < 0.05)
     assert not clearly_busy(2, 26) and clearly_busy(40, 100)
     # Conformal threshold: the ceil((k + 1)(1 - alpha))-th smallest persistence score

@@ -835,7 +835,9 @@ class PatchPPCA(DensityModel):
                 if b != current:  # a new block: fit the model of everything before it
                     current = b
                     ready = b >= first and moments.count.sum() >= 2
-                    now = moments.sums(every=HELDOUT_EVERY) if self._wants_sums() else None
+                    # (the sums are needed from the block before the first scored one)
+                    now = (moments.sums(every=HELDOUT_EVERY)
+                           if self._wants_sums() and b >= first - 1 else None)
                     if ready:  # the latent size first: its temporaries and the
                         q = self._heldout_q(earlier, now)  # covariances never coexist
                         self._set(*self._fit_moments(moments, q))
