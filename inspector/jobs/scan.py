@@ -164,7 +164,7 @@ class Streams:
                 float(p_values[i])
             r.amap = run.maps[i]
             r.flagged = bool(run.filled[i] and run.scores[i] > thresholds[i] and not r.health)
-            if np.isfinite(run.since[i]):
+            if r.flagged and np.isfinite(run.since[i]):  # (FrameResult.since: flagged only)
                 r.since = datetime.fromtimestamp(run.since[i], tz=r.time.tzinfo)
             if not run.filled[i]:
                 (self.late if run.late[i] else self.filling)[cam] += 1
