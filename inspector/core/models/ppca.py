@@ -843,12 +843,12 @@ class PatchPPCA(DensityModel):
                         self._set(*self._fit_moments(moments, q))
                     earlier = now
                 part, learnt = (images, varied) if sel.all() else (images[sel], varied[sel])
-                # the block entries of the frames as they are: scored, and learnt from
-                # where the frame was not varied
-                entries = self._entries(part)
-                if ready:
+                if ready:  # the block entries of the frames as they are: scored, and
+                    entries = self._entries(part)  # learnt from where not varied
                     held.append((idx[sel], self.score_maps(part, entries)))
-                moments.add(int(b), self._samples(learnt, part, entries))
+                    moments.add(int(b), self._samples(learnt, part, entries))
+                else:
+                    moments.add(int(b), self._samples(learnt))
         self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
                             if self._wants_sums() else None)
         return moments, [held]
