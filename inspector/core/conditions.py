@@ -38,8 +38,10 @@ from inspector.core.image import (
     grey,
     phase_shifts,
     phase_spectrum,
+    refine_shift,
     robust_gains,
     shift_images,
+    shift_terms,
 )
 from inspector.core.estimator import Estimator
 
@@ -163,7 +165,7 @@ class Conditions(Estimator):
         self.limits = limits
         #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
         self._ref_terms: tuple | None = None
-        #: (grey reference, its spectrum for registration), made once.
+        #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
 
     # -- learning ------------------------------------------------------------------------
@@ -272,9 +274,12 @@ class Conditions(Estimator):
         if self.register:
             aligned = g_all.copy()
             if known is None:
-                found = phase_shifts(g_all, self._phase_spectrum(ref), self.ignore_)
+                spectrum, terms = self._registration(ref)
+                found = phase_shifts(g_all, spectrum, self.ignore_)
             for i, g in enumerate(g_all):
                 dx, dy = found[i] if known is None else known[i]
+                if known is None:
+                    dx, dy = refine_shift(g, terms, dx, dy)
                 if np.hypot(dx, dy) > 0.05:
                     back = shift_images(g, -dx, -dy)
                     # a shift measured before is taken as measured; a new one only when the
@@ -346,11 +351,13 @@ class Conditions(Estimator):
                                    borderValue=0) > 0.001
         return fill
 
-    def _phase_spectrum(self, ref: np.ndarray) -> np.ndarray:
-        """:func:`phase_spectrum` of the reference, computed once per reference."""
+    def _registration(self, ref: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:func:`phase_spectrum` and :func:`shift_terms` of the reference, computed once
+        per reference."""
         if self._spectrum is None or self._spectrum[0] is not ref:
-            self._spectrum = (ref, phase_spectrum(ref, self.ignore_))
-        return self._spectrum[1]
+            self._spectrum = (ref, phase_spectrum(ref, self.ignore_),
+                              shift_terms(ref, self.ignore_))
+        return self._spectrum[1], self._spectrum[2]
 
     def _reference_glare(self, ref_rgb: np.ndarray
                          ) -> tuple[np.ndarray | None, tuple[np.ndarray, np.ndarray]]:
