@@ -5,9 +5,11 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 
 * Registration: each frame is aligned to the baseline's reference by phase correlation
   (Kuglin & Hines 1975, "The phase correlation image alignment method"; sub-pixel peak as
-  in ``cv2.phaseCorrelate``), kept only when it makes the frame correlate better with the
-  reference (a large incident can fool the peak). A shift beyond ``max_shift`` is not corrected: the camera
-  has been moved, which is a health condition, not an anomaly.
+  in ``cv2.phaseCorrelate``), the fraction of a pixel refined by Lucas-Kanade steps (the
+  peak's centroid is drawn towards whole pixels, see :func:`refine_shift`), kept only when
+  it makes the frame correlate better with the reference (a large incident can fool the
+  peak). A shift beyond ``max_shift`` is not corrected: the camera has been moved, which is
+  a health condition, not an anomaly.
 * Photometric normalisation: a robust fit ``reference ~ gain * frame + offset`` over the
   frame's pixels (percentile matching, then least squares refitted twice on the pixels
   whose residual is within 3 robust standard deviations, so a local incident does not pull
