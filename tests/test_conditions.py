@@ -16,14 +16,14 @@ from sklearn.metrics import roc_auc_score
 
 from inspector.config import load_config
 from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
-from inspector.core.conditions import Conditions, _percentile_rows
+from inspector.core.conditions import Conditions
 from inspector.core.image import (
     brightness_field,
     darker_exposure,
     grey,
-    median,
     noise_bank,
     noise_sigma,
+    percentile_rows,
     phase_shift,
     phase_shifts,
     phase_spectrum,
@@ -127,7 +127,7 @@ def test_row_percentile_is_numpys():
     rows = _camera_image().reshape(8, -1)[:, ::7]
     for x in (rows, rows[:, :2], rows[:, :1], np.round(rows[:, :101] / 16)):
         for q in (99, 50, 10):
-            got, want = _percentile_rows(x, q), np.percentile(x, q, axis=1)
+            got, want = percentile_rows(x, q), np.percentile(x, q, axis=1)
             assert got.dtype == want.dtype and np.array_equal(got, want)
 
 
@@ -179,8 +179,6 @@ def test_noise_estimate_and_darker_exposure_keep_the_sensor_noise():
     noisy = smooth + rng.normal(0, 4.0, smooth.shape)
     # white noise of sigma 4 on smooth content (Immerkaer 1996: the filter cancels it)
     assert noise_sigma(noisy) == pytest.approx(4.0, rel=0.1)
-    for values in (noisy, noisy[1:, 1:], noisy[:, :7].astype(np.float32)):  # even, odd counts
-        assert median(values) == np.median(values)  # the same number as numpy's
     img = np.clip(np.repeat(noisy[..., None], 3, axis=2), 0, 255).astype(np.uint8)
     dark = darker_exposure(img, 0.7, rng)
     assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)

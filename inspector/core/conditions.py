@@ -38,6 +38,7 @@ from inspector.core.image import (
     cell_detail,
     correlation,
     grey,
+    percentile_rows,
     phase_shifts,
     phase_spectrum,
     refine_shift,
@@ -102,24 +103,6 @@ def _channel_max(image: np.ndarray) -> np.ndarray:
     numpy's reduction over a last axis of 3 is slow)."""
     r, g, b = cv2.split(image)
     return cv2.max(cv2.max(r, g), b)
-
-
-def _percentile_rows(x: np.ndarray, q: float) -> np.ndarray:
-    """``np.percentile(x, q, axis=1)`` (linear interpolation) of an (n, m) array, the same
-    numbers, several times faster: one partition at the lower order statistic (numpy's
-    partition at two is much slower), the next one being the smallest value above it."""
-    m = x.shape[1]
-    if not m or not len(x):
-        return np.percentile(x, q, axis=1)
-    pos = q / 100 * (m - 1)
-    lo = int(np.floor(pos))
-    part = np.partition(x, lo, axis=1)
-    a = part[:, lo]
-    b = part[:, lo + 1:].min(axis=1) if lo + 1 < m else a
-    t = pos - lo
-    d = b - a
-    # numpy's lerp: from the nearer end
-    return np.where(t >= 0.5, b - d * (1 - t), a + d * t).astype(x.dtype, copy=False)
 
 
 class Conditions(Estimator):
@@ -407,7 +390,7 @@ class Conditions(Estimator):
         if kept is not None:
             clipped &= ~self.ignore_.reshape(1, -1)
         count = max(flat.shape[1] if kept is None else len(kept), 1)
-        out = {"dark": _percentile_rows(quarter, 99),
+        out = {"dark": percentile_rows(quarter, 99),
                "bright": np.count_nonzero(clipped, axis=1) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),

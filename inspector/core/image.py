@@ -551,6 +551,34 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> 
     return np.where(den > 1e-9, cov / np.maximum(den, 1e-9), 0.0).astype(np.float32)
 
 
+def percentile_rows(x: np.ndarray, q: float) -> np.ndarray:
+    """``np.percentile(x, q, axis=1)`` (linear interpolation) of an (n, m) array, the same
+    numbers, several times faster: one partition at the lower order statistic (numpy's
+    partition at two is much slower), the next one being the smallest value above it.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n, m), float, no NaN
+    q : float in [0, 100]
+
+    Returns
+    -------
+    ndarray, shape (n,), dtype of ``x``
+    """
+    m = x.shape[1]
+    if not m or not len(x):
+        return np.percentile(x, q, axis=1)
+    pos = q / 100 * (m - 1)
+    lo = int(np.floor(pos))
+    part = np.partition(x, lo, axis=1)
+    a = part[:, lo]
+    b = part[:, lo + 1:].min(axis=1) if lo + 1 < m else a
+    t = pos - lo
+    d = b - a
+    # numpy's lerp: from the nearer end
+    return np.where(t >= 0.5, b - d * (1 - t), a + d * t).astype(x.dtype, copy=False)
+
+
 def noise_sigma(g: np.ndarray) -> float:
     """Standard deviation of white noise in an image.
 
@@ -562,29 +590,7 @@ def noise_sigma(g: np.ndarray) -> float:
     """
     kernel = np.array([[1, -2, 1], [-2, 4, -2], [1, -2, 1]], np.float32)
     r = cv2.filter2D(np.asarray(g, np.float32), -1, kernel)[1:-1, 1:-1]
-    return float(1.4826 * median(np.abs(r)) / 6.0)
-
-
-def median(values: np.ndarray) -> float:
-    """``numpy.median`` of all the values, the same number, from one selection.
-
-    For an even count numpy selects the two middle values together, which is several times
-    slower than selecting one (about 0.5 against 0.06 ms for 57,000 values, numpy 2.4); the
-    other middle value is the largest of the lower part.
-
-    Parameters
-    ----------
-    values : ndarray, any shape, float, no NaN
-    """
-    x = np.ravel(values)
-    n = len(x)
-    if n == 0:
-        return float(np.median(x))
-    k = n // 2
-    part = np.partition(x, k)
-    if n % 2:
-        return float(part[k])
-    return float(np.mean(np.array([part[:k].max(), part[k]], dtype=x.dtype)))
+    return float(1.4826 * percentile_rows(np.abs(r).reshape(1, -1), 50)[0] / 6.0)
 
 
 def noise_bank(values: int, seed=7) -> np.ndarray:
