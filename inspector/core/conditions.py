@@ -15,7 +15,9 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
   whose residual is within 3 robust standard deviations, so a local incident does not pull
   the fit), applied to
   every channel ("global"); "local" also divides out a smooth brightness field (a Gaussian
-  blur of an eighth of the long side), for lights that change one side of a scene only.
+  blur of an eighth of the long side), for lights that change one side of a scene only,
+  one field per colour channel once the reference's colours are known, so that light of
+  another colour over part of the view (floodlights coming on) is taken out as well.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
@@ -244,8 +246,10 @@ class Conditions(Estimator):
         return self._prepare(images, self.reference_, self.reference_rgb_, shifts)
 
     def _prepare(self, images: np.ndarray, ref: np.ndarray | None,
-                 ref_rgb: np.ndarray | None, known: np.ndarray | None = None) -> Prepared:
-        """:meth:`prepare` against a given reference (also while learning it)."""
+                 ref_rgb: np.ndarray | None, known: np.ndarray | None = None,
+                 restore: bool = True) -> Prepared:
+        """:meth:`prepare` against a given reference (also while learning it); without
+        ``restore``, clipped pixels and the reference's glare are left as normalised."""
         images = np.asarray(images)
         n = len(images)
         g_all = grey(images)
@@ -301,13 +305,19 @@ class Conditions(Estimator):
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field)
                     # (brightness_field's keep= is not used: leaving clipped pixels out of the
                     # field made bench/scenes.py's altered counter frames 0/15 -> 4/15 flagged)
-                    field = brightness_field(fitted[i], ref, sigma, gain, offset,
-                                             scale=gain, channels=3)
+                    # one field per colour channel once the reference's colours are known:
+                    # light of another colour over part of the view (floodlights coming on,
+                    # low sun beside lamps) changes the channels by different factors
+                    field = (cv2.merge([brightness_field(img[..., c], ref_rgb[..., c], sigma,
+                                                         gain, offset, scale=gain)
+                                        for c in range(3)]) if ref_rgb is not None else
+                             brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
+                                              channels=3))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
-                if ref_rgb is not None:
+                if ref_rgb is not None and restore:
                     unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
                     if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
                         clipped = cv2.bitwise_not(unclipped)
