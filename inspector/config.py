@@ -107,8 +107,8 @@ class ConditionSettings:
     """How camera conditions are handled (see :mod:`inspector.core.conditions`)."""
 
     #: Photometric normalisation against the baseline: "global" (a robust gain and offset
-    #: per frame), "local" (that, then a smooth brightness field, for lights that change
-    #: one part of the scene more than another) or "off".
+    #: per frame), "local" (that, then a smooth brightness field per colour channel, for
+    #: lights, of any colour, that change one part of the scene more than another) or "off".
     lighting: str = "local"
     #: Exposure changes the baseline should take in its stride: half the normal frames are
     #: also learnt as if caught up to this fraction darker (same sensor noise), so the
