@@ -395,7 +395,8 @@ class Conditions(Estimator):
         n = len(g)
         kept = None if self.ignore_ is None else np.flatnonzero(~self.ignore_)
         flat = g.reshape(n, -1)
-        quarter = flat[:, ::4] if kept is None else flat[:, kept[::4]]  # a quarter is plenty
+        # a quarter of the pixels is plenty (np.take: faster than fancy indexing)
+        quarter = flat[:, ::4] if kept is None else np.take(flat, kept[::4], axis=1)
         clipped = flat >= 250
         if kept is not None:
             clipped &= ~self.ignore_.reshape(1, -1)
