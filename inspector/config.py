@@ -111,9 +111,9 @@ class ConditionSettings:
     #: lights, of any colour, that change one part of the scene more than another) or "off".
     lighting: str = "local"
     #: Exposure changes the baseline should take in its stride: half the normal frames are
-    #: also learnt as if caught up to this fraction darker (same sensor noise), so the
-    #: extra noise of a darker frame brought back to the reference is not an anomaly.
-    #: 0 turns it off. Needs lighting normalisation.
+    #: learnt and calibrated on as if caught up to this fraction darker or brighter (same
+    #: sensor noise, highlights clipped), so a frame after an exposure step brought back
+    #: to the reference is not an anomaly. 0 turns it off. Needs lighting normalisation.
     exposure_range: float = 0.2
     #: Align each frame to the baseline's reference (phase correlation) before scoring.
     register: bool = True

@@ -16,10 +16,10 @@ from sklearn.metrics import roc_auc_score
 
 from inspector.config import load_config
 from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
-from inspector.core.conditions import Conditions
+from inspector.core.conditions import Conditions, smooth_chroma
 from inspector.core.image import (
     brightness_field,
-    darker_exposure,
+    exposure_copy,
     grey,
     noise_bank,
     noise_sigma,
@@ -172,7 +172,7 @@ def test_sharpness_drops_when_out_of_focus():
     assert sharpness(ref * 0.4) == pytest.approx(sharpness(ref), rel=1e-3)  # blind to gain
 
 
-def test_noise_estimate_and_darker_exposure_keep_the_sensor_noise():
+def test_noise_estimate_and_exposure_copies_keep_the_sensor_noise():
     rng = np.random.default_rng(0)
     yy, xx = np.mgrid[0:200, 0:300]
     smooth = 60 + 0.3 * xx + 20 * np.sin(yy / 15.0)
@@ -180,15 +180,53 @@ def test_noise_estimate_and_darker_exposure_keep_the_sensor_noise():
     # white noise of sigma 4 on smooth content (Immerkaer 1996: the filter cancels it)
     assert noise_sigma(noisy) == pytest.approx(4.0, rel=0.1)
     img = np.clip(np.repeat(noisy[..., None], 3, axis=2), 0, 255).astype(np.uint8)
-    dark = darker_exposure(img, 0.7, rng)
+    dark = exposure_copy(img, 0.7, rng)
     assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)
     assert noise_sigma(dark[..., 0].astype(np.float32)) == pytest.approx(4.0, rel=0.15)
     # the same with the noise read from a bank of draws at a random offset
     bank = noise_bank(img.size)
-    dark = darker_exposure(img, 0.7, rng, grey(img[None])[0], bank)
+    dark = exposure_copy(img, 0.7, rng, grey(img[None])[0], bank)
     assert dark.mean() == pytest.approx(0.7 * img.mean(), rel=0.02)
     assert noise_sigma(dark[..., 0].astype(np.float32)) == pytest.approx(4.0, rel=0.15)
-    assert not np.array_equal(dark, darker_exposure(img, 0.7, rng, None, bank))
+    assert not np.array_equal(dark, exposure_copy(img, 0.7, rng, None, bank))
+    # a longer exposure scales signal and noise alike and clips at the sensor's 255
+    # (common practice, no source)
+    bright = exposure_copy(img, 2.5, rng)
+    assert np.abs(bright.astype(int) - np.clip(np.rint(img * 2.5), 0, 255)).max() <= 1
+    assert (bright == 255).mean() > 0.2
+
+
+def test_chroma_smoothing_keeps_luma_and_colour_and_evens_out_compression():
+    # The scikit-image astronaut photograph (colourful), and the same view 15 % brighter,
+    # each JPEG-encoded by OpenCV (quality 85, 4:2:0) and decoded at half size as frames
+    # are read: the brighter frame's chroma, brought back by the gain, differs from the
+    # first by its re-quantised detail. Smoothed, the two agree better; the luma stays and
+    # a colour change of 12 x 12 pixels (a spill) keeps most of its size.
+    photo = cv2.resize(skdata.astronaut(), (256, 256), interpolation=cv2.INTER_AREA)
+
+    def as_read(rgb):
+        ok, buf = cv2.imencode(".jpg", rgb[..., ::-1], [cv2.IMWRITE_JPEG_QUALITY, 85])
+        return cv2.imdecode(buf, cv2.IMREAD_REDUCED_COLOR_2)[..., ::-1]
+
+    def chroma(rgb):
+        return cv2.cvtColor(np.ascontiguousarray(rgb), cv2.COLOR_RGB2YCrCb)[..., 1:].astype(float)
+
+    a = as_read(photo)
+    b = as_read(np.clip(photo * 1.15, 0, 255).astype(np.uint8))
+    keep = (photo * 1.15 < 250).all(axis=2)[::2, ::2]  # where the brighter one did not clip
+    before = np.abs((chroma(b) - 128) / 1.15 - (chroma(a) - 128))[keep].mean()
+    after = np.abs((chroma(smooth_chroma(b)) - 128) / 1.15
+                   - (chroma(smooth_chroma(a)) - 128))[keep].mean()
+    assert after < 0.65 * before  # measured 1.07 -> 0.57 levels
+    luma = cv2.cvtColor(np.ascontiguousarray(a), cv2.COLOR_RGB2GRAY).astype(int)
+    moved = np.abs(cv2.cvtColor(smooth_chroma(a), cv2.COLOR_RGB2GRAY) - luma)
+    assert np.percentile(moved, 99) <= 1
+    spill = a.copy()
+    spill[40:52, 60:72] = np.clip(spill[40:52, 60:72] * [1.0, 0.8, 0.6], 0, 255)
+    change = np.abs(chroma(smooth_chroma(spill)) - chroma(smooth_chroma(a))).sum(axis=2)
+    unsmoothed = np.abs(chroma(spill) - chroma(a)).sum(axis=2)
+    assert change[40:52, 60:72].sum() > 0.8 * unsmoothed[40:52, 60:72].sum()
+    assert change[38:54, 58:74].sum() > 0.99 * change.sum()  # no further than 2 pixels
 
 
 def _with_lamp():
@@ -253,10 +291,36 @@ def test_clipped_lamp_takes_the_reference_at_any_exposure_unless_it_goes_out():
     assert c.prepare(off[None]).images[0][lamp].mean() < 100
 
 
-def test_clipped_pixel_masks_agree_with_the_brightest_channel():
+def test_a_darker_copy_of_a_clipped_frame_keeps_its_clip_treatment():
+    # The scikit-image camera photograph with a bright patch (240) that normal frames
+    # show; a frame 20 % brighter clips it at 255, and a training copy of that frame 20 %
+    # darker shows a flat 204 there, darker than the patch's light. Prepared with the
+    # frame's clip mask, the copy is raised to the reference there as the frame was.
+    ref = skdata.camera()[::2, ::2].astype(np.float32) * 0.7 + 20
+    ref[100:130, 60:120] = 240.0
+    rng = np.random.default_rng(4)
+    normal = np.stack([np.repeat(np.clip(ref + rng.normal(0, 1.5, ref.shape), 0, 255)[..., None],
+                                 3, axis=2) for _ in range(8)]).astype(np.uint8)
+    c = Conditions(lighting="local", register=False, health=False).fit(normal)
+    frame = np.clip(normal[0] * 1.2, 0, 255).astype(np.uint8)
+    copy = exposure_copy(frame, 0.8, rng)
+    rec = c.prepare(frame[None])
+    patch = np.s_[104:126, 64:116]
+    assert rec.clipped is not None and (rec.clipped[0][patch] == 255).all()
+    alone = c.prepare(copy[None], rec.shifts).images[0].astype(float)
+    treated = c.prepare(copy[None], rec.shifts, rec.clipped).images[0].astype(float)
+    assert 240 - alone[patch].mean() > 10
+    assert abs(240 - treated[patch].mean()) < 2
+
+
+def test_clipped_pixel_masks_agree_with_the_brightest_channel(monkeypatch):
     # The masks of clipped pixels and of the reference's glare are found with cv2.inRange
     # (one pass over the colour frame); they must select what the plain definition selects,
     # the brightest channel >= 250 (and >= the glare floor), written here with numpy.
+    # (The chroma smoothing that follows is tested on its own.)
+    import inspector.core.conditions as conditions
+
+    monkeypatch.setattr(conditions, "smooth_chroma", lambda image: image)
     ref, normal = _with_lamp()
     normal = normal.copy()
     normal[:, 100:110, 20:40, 0] = 252  # a clipped red patch beside the lamp in every frame
@@ -450,15 +514,11 @@ def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
     assert store.load("aisle").threshold.method == "tail"
 
 
-@pytest.mark.xfail(strict=True, reason="issue 10 item 3 not met yet: exposure steps raise the "
-                   "scores of normal frames on a camera with clipped highlights and colourful "
-                   "JPEG-compressed shelves (54 of 56 flagged with the held-out latent size; "
-                   "47 with the explained-variance one after the camera name was masked, 52 "
-                   "before)")
 def test_exposure_steps_keep_the_false_alarm_budget_on_a_camera_with_highlights(tmp_path):
     # The aisle has a clipped ceiling lamp, white labels and a burned-in camera name that
     # does not follow the exposure; every frame to scan is 15 % brighter or darker than the
-    # normal frames learnt from. Strict: remove the mark when the budget holds.
+    # normal frames learnt from (54 of 56 flagged before learn saw copies at other
+    # exposures, calibrated on them too, and chroma was smoothed).
     _, out, truth, faults = _learn_and_scan(tmp_path, {"exposure_step": 0.15}, 3,
                                             camera="aisle")
     _check_budget_and_detection(out, truth, faults)

@@ -18,6 +18,8 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
   blur of an eighth of the long side), for lights that change one side of a scene only,
   one field per colour channel once the reference's colours are known, so that light of
   another colour over part of the view (floodlights coming on) is taken out as well.
+  The chroma of every prepared frame is smoothed (:func:`smooth_chroma`): compression
+  rounds its fine detail anew at each exposure.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
@@ -66,6 +68,8 @@ GLARE_TOLERANCE = 0.1
 _BLACK, _UNCLIPPED = (0, 0, 0), (249, 249, 249)
 #: A textured cell whose correlation with the reference falls below this is lost from view.
 COVER_CORRELATION = 0.2
+#: Blur (working pixels) of the chroma of prepared frames (see :func:`smooth_chroma`).
+CHROMA_SIGMA = 1.0
 
 
 @dataclass
@@ -88,6 +92,9 @@ class Prepared:
     gains : ndarray, shape (n, 2), float
         Robust (gain, offset) of ``reference ~ gain * aligned + offset``
         (:func:`~inspector.core.image.robust_gains`); (1, 0) without a reference.
+    clipped : ndarray, shape (n, H, W), uint8, or None
+        Pixels (of the frames as aligned) clipped white, or next to a clipped one (255),
+        whose brightness was only bounded; None when no frame has any.
     """
 
     images: np.ndarray
@@ -95,6 +102,7 @@ class Prepared:
     aligned: np.ndarray
     shifts: np.ndarray
     gains: np.ndarray
+    clipped: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.images)
@@ -105,6 +113,35 @@ def _channel_max(image: np.ndarray) -> np.ndarray:
     numpy's reduction over a last axis of 3 is slow)."""
     r, g, b = cv2.split(image)
     return cv2.max(cv2.max(r, g), b)
+
+
+def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
+    """An RGB frame with its chroma blurred and its luma kept.
+
+    Compressed frames carry their colour at half resolution and quantise its detail far
+    more coarsely than their brightness (JPEG 4:2:0 with the chroma table; ITU-T T.81
+    annex K). Normal frames of a still scene round that detail the same way every time, so
+    the model learns it as fixed, while a frame at another exposure rounds it anew: at
+    the edges of saturated colours its chroma moves by several levels, more than the
+    luma's noise (the demo aisle re-exposed by 15 % and JPEG-encoded again by OpenCV:
+    chroma 2.3 levels RMS from the original, 1 at half resolution; luma 0.5). Cr and Cb
+    (ITU-R BT.601, as in JPEG) are blurred with a Gaussian of ``sigma`` pixels; the luma is
+    kept (up to rounding, and where a blurred colour leaves the RGB cube and is clipped).
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8
+    sigma : float
+        Standard deviation of the blur, in pixels.
+
+    Returns
+    -------
+    ndarray, shape (H, W, 3), uint8
+    """
+    ycc = cv2.cvtColor(image, cv2.COLOR_RGB2YCrCb)
+    blurred = cv2.GaussianBlur(ycc, (0, 0), sigma)
+    cv2.mixChannels([ycc], [blurred], [0, 0])  # the luma back
+    return cv2.cvtColor(blurred, cv2.COLOR_YCrCb2RGB)
 
 
 class Conditions(Estimator):
@@ -209,7 +246,8 @@ class Conditions(Estimator):
         }
 
     # -- per frame -----------------------------------------------------------------------
-    def prepare(self, images: np.ndarray, shifts: np.ndarray | None = None) -> Prepared:
+    def prepare(self, images: np.ndarray, shifts: np.ndarray | None = None,
+                clipped: np.ndarray | None = None) -> Prepared:
         """Align and normalise frames to the learnt reference.
 
         A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
@@ -231,6 +269,10 @@ class Conditions(Estimator):
         shifts : ndarray, shape (n, 2), optional
             The frames' shifts when already measured (``Prepared.shifts`` of the frames
             these were made from, e.g. made darker): registration is not measured again.
+        clipped : ndarray, shape (n, H, W), uint8, optional
+            ``Prepared.clipped`` of the frames these were made from: treated as clipped
+            too (a darker copy of a clipped pixel shows a flat level that only bounds its
+            light, as the pixel did).
 
         Returns
         -------
@@ -243,11 +285,12 @@ class Conditions(Estimator):
             Before :meth:`fit`.
         """
         self.check_fitted()
-        return self._prepare(images, self.reference_, self.reference_rgb_, shifts)
+        return self._prepare(images, self.reference_, self.reference_rgb_, shifts,
+                             was_clipped=clipped)
 
     def _prepare(self, images: np.ndarray, ref: np.ndarray | None,
                  ref_rgb: np.ndarray | None, known: np.ndarray | None = None,
-                 restore: bool = True) -> Prepared:
+                 restore: bool = True, was_clipped: np.ndarray | None = None) -> Prepared:
         """:meth:`prepare` against a given reference (also while learning it); without
         ``restore``, clipped pixels and the reference's glare are left as normalised."""
         images = np.asarray(images)
@@ -290,46 +333,65 @@ class Conditions(Estimator):
         if self.lighting != "off" or self.health:
             gains = robust_gains(fitted, ref, keep)
         out = np.empty_like(images)
+        clipped: np.ndarray | None = None
         sigma = max(images.shape[1:3]) / 8.0
         for i, img in enumerate(images):
             fill = None
+            # clipped white pixels of the frame as captured (255 where a channel is >= 250),
+            # moved with the frame (moving back interpolates, which takes a thin clipped
+            # line below the clip level), then with their neighbours
+            near = None
+            if self.lighting != "off":
+                unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
+                if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
+                    near = cv2.bitwise_not(unclipped)
             if i in moved:
                 dx, dy = moved[i]
                 img = shift_images(img, -dx, -dy)
                 fill = self._uncovered(dx, dy, img.shape[:2])
+                if near is not None:
+                    near = cv2.compare(shift_images(near, -dx, -dy), 0, cv2.CMP_GT)
+            if near is not None:
+                near = cv2.dilate(near, _NEAR)
+            if was_clipped is not None and self.lighting != "off":
+                near = was_clipped[i] if near is None else cv2.max(near, was_clipped[i])
+            if near is not None:
+                if clipped is None:
+                    clipped = np.zeros(images.shape[:3], np.uint8)
+                clipped[i] = near
             if self.lighting == "off":
                 o = img.copy()
             else:
                 gain, offset = gains[i]
                 if self.lighting == "local":
-                    # (gain * img + offset) * field = (img + offset / gain) * (gain * field)
-                    # (brightness_field's keep= is not used: leaving clipped pixels out of the
-                    # field made bench/scenes.py's altered counter frames 0/15 -> 4/15 flagged)
-                    # one field per colour channel once the reference's colours are known:
+                    # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
+                    # the field compares the pixels the frame did not clip: a clipped one
+                    # only bounds its light (a clipped sky of a brighter frame reads darker
+                    # than the reference's and would brighten everything near it); one
+                    # field per colour channel once the reference's colours are known:
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
+                    seen = None if near is None else near == 0
                     field = (cv2.merge([brightness_field(img[..., c], ref_rgb[..., c], sigma,
-                                                         gain, offset, scale=gain)
+                                                         gain, offset, scale=gain, keep=seen)
                                         for c in range(3)]) if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
-                                              channels=3))
+                                              channels=3, keep=seen))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
                 if ref_rgb is not None and restore:
-                    unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
-                    if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
-                        clipped = cv2.bitwise_not(unclipped)
-                        cv2.copyTo(cv2.max(o, ref_rgb), cv2.dilate(clipped, _NEAR), o)
+                    if near is not None:
+                        cv2.copyTo(cv2.max(o, ref_rgb), near, o)
                     glare, below = self._reference_glare(ref_rgb)
                     if glare is not None:  # glare pixels whose brightest channel is >= floor
                         cv2.copyTo(ref_rgb, cv2.bitwise_and(
                             glare, cv2.bitwise_not(cv2.inRange(o, *below))), o)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
-            out[i] = o
-        return Prepared(out, g_all, aligned, shifts, gains)
+            out[i] = smooth_chroma(o)
+        return Prepared(out, g_all, aligned, shifts, gains, clipped)
 
     def _uncovered(self, dx: float, dy: float, shape: tuple[int, int]) -> np.ndarray:
         """Pixels of a frame moved back by (dx, dy) that its content no longer covers: the

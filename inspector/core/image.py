@@ -594,7 +594,7 @@ def noise_sigma(g: np.ndarray) -> float:
 
 
 def noise_bank(values: int, seed=7) -> np.ndarray:
-    """Standard normal values for :func:`darker_exposure` to read its noise from.
+    """Standard normal values for :func:`exposure_copy` to read its noise from.
 
     Parameters
     ----------
@@ -612,17 +612,21 @@ def noise_bank(values: int, seed=7) -> np.ndarray:
                                                        dtype=np.float32)
 
 
-def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator,
-                    g: np.ndarray | None = None, bank: np.ndarray | None = None) -> np.ndarray:
-    """The frame as a shorter exposure would have caught it: the signal times ``gain``
-    (<= 1) with the sensor noise unchanged, i.e. ``gain * image`` plus fresh noise of
-    variance ``sigma^2 (1 - gain^2)`` (sigma from :func:`noise_sigma`). Normalised back to
-    the reference, such a frame is noisier than the original, as real darker frames are.
+def exposure_copy(image: np.ndarray, gain: float, rng: np.random.Generator,
+                  g: np.ndarray | None = None, bank: np.ndarray | None = None) -> np.ndarray:
+    """The frame as another exposure would have caught it: the signal times ``gain`` with
+    the sensor noise unchanged, clipped at 0 and 255 as the sensor clips.
+
+    A shorter exposure (``gain`` < 1) is ``gain * image`` plus fresh noise of variance
+    ``sigma^2 (1 - gain^2)`` (sigma from :func:`noise_sigma`): normalised back to the
+    reference it is noisier than the original, as real darker frames are. A longer one
+    (``gain`` >= 1) is ``gain * image``, whose noise is then ``gain`` times the sensor's (a
+    little more than a real brighter frame has), with its highlights clipped at 255.
 
     Parameters
     ----------
     image : ndarray, shape (H, W, 3), uint8
-    gain : float in (0, 1]
+    gain : float > 0
     rng : numpy.random.Generator
     g : ndarray, shape (H, W), float32, optional
         :func:`grey` of ``image`` when already computed.
@@ -639,8 +643,10 @@ def darker_exposure(image: np.ndarray, gain: float, rng: np.random.Generator,
         Rounded to the nearest grey level and clipped to [0, 255].
     """
     image = np.asarray(image)
+    if gain >= 1.0:
+        return cv2.convertScaleAbs(image, alpha=float(gain))  # rounds, saturates at 255
     sigma = noise_sigma(grey(image[None])[0] if g is None else g)
-    extra = sigma * np.sqrt(max(0.0, 1.0 - gain * gain))
+    extra = sigma * np.sqrt(1.0 - gain * gain)
     if bank is None:
         noise = rng.standard_normal(image.shape, dtype=np.float32)  # single precision: faster
     else:

@@ -34,7 +34,7 @@ from inspector.core.calibration import (
 )
 from inspector.core.conditions import Conditions
 from inspector.core.features import rasterize_mask
-from inspector.core.image import darker_exposure, grey, noise_bank
+from inspector.core.image import exposure_copy, grey, noise_bank
 from inspector.core.models import model_class
 from inspector.core.persistence import (
     MAX_SPAN,
@@ -137,14 +137,19 @@ class FileSource:
 class PreparedSource:
     """A :class:`FrameSource` whose frames pass through :meth:`Conditions.prepare` first.
 
-    With ``exposure`` > 0, :meth:`training_batches` also gives every other frame (chosen at
-    random, the same on every pass) as if caught at a shorter exposure, darker by up to
-    that fraction with the sensor noise unchanged
-    (:func:`inspector.core.image.darker_exposure`), so the model learns the extra noise a
-    normalised darker frame carries. These varied frames are learnt from only: calibration
-    scores come from the frames as they are, as scan scores do. Their extra noise is read
-    from one bank of normal draws (:func:`inspector.core.image.noise_bank`, the same for
-    every copy of the source) at a random offset per frame.
+    With ``exposure`` > 0, every other frame (chosen at random, the same on every pass) is
+    given as if caught at another exposure, darker or brighter by up to that fraction, with
+    the sensor noise unchanged and highlights clipped as the sensor clips
+    (:func:`inspector.core.image.exposure_copy`); both to learn from
+    (:meth:`training_batches`) and to be scored for calibration (:meth:`batches`). A normal
+    frame after an exposure step is normal, and differs from the frames learnt from by more
+    than noise: its compressed colour detail is quantised anew (bench/conditions.py's
+    exposure steps raised the scores of every stepped frame even with the extra noise
+    learnt), so the threshold must hold for such frames too. The health measures and
+    appearances are those of the frames as captured.
+    Their extra noise is read from one bank of normal draws
+    (:func:`inspector.core.image.noise_bank`, the same for every copy of the source) at a
+    random offset per frame.
     """
 
     def __init__(self, source, conditions: Conditions, exposure: float = 0.0):
@@ -178,22 +183,22 @@ class PreparedSource:
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        for idx, prepared, _ in self._prepared(indices, batch_size, vary=False):
-            yield idx, prepared
+        yield from self._prepared(indices, batch_size)
 
     def training_batches(self, indices: Sequence[int], batch_size: int = 64
                          ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        yield from self._prepared(indices, batch_size, vary=self.exposure > 0)
+        for idx, prepared in self._prepared(indices, batch_size):
+            yield idx, prepared, prepared  # the frames scored are the frames learnt
 
-    def _prepared(self, indices: Sequence[int], batch_size: int, vary: bool
-                  ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    def _prepared(self, indices: Sequence[int], batch_size: int
+                  ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """Batches prepared in order, in :data:`PREPARE_WORKERS` threads while the caller
         works on the batch before (OpenCV and numpy release the GIL): as many batches
         ahead of it at most."""
         with ThreadPoolExecutor(PREPARE_WORKERS) as pool:
             pending: deque = deque()
             for idx, images in self.source.batches(indices, batch_size):
-                pending.append(pool.submit(self._prepare_batch, idx, images, vary))
+                pending.append(pool.submit(self._prepare_batch, idx, images))
                 if len(pending) > PREPARE_WORKERS:
                     yield pending.popleft().result()
             while pending:
@@ -205,36 +210,33 @@ class PreparedSource:
             self._bank = noise_bank(3 * self.size[0] * self.size[1])
         return self._bank
 
-    def _prepare_batch(self, idx: np.ndarray, images: np.ndarray, vary: bool
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """One batch: the prepared frames, the frames to learn from (some made darker when
-        ``vary``), and the batch's health measures and appearance recorded. Prepared
-        :data:`PREPARE_PART` frames at a time (the same frames as at once; fewer
-        temporaries)."""
+    def _prepare_batch(self, idx: np.ndarray, images: np.ndarray
+                       ) -> tuple[np.ndarray, np.ndarray]:
+        """One batch prepared (every other frame at another exposure when ``exposure`` >
+        0), its health measures and appearance recorded. Prepared :data:`PREPARE_PART`
+        frames at a time (the same frames as at once; fewer temporaries)."""
         prepared = np.empty_like(images)
-        varied = np.empty_like(images) if vary else prepared
         measure = self.conditions.reference_ is not None and not all(
             int(i) in self.measures for i in idx)
         previous = None  # grey of the frame before the part (for the frozen-feed measure)
         for start in range(0, len(idx), PREPARE_PART):
             part = slice(start, start + PREPARE_PART)
-            # The record of the frames as captured feeds the health measures and the
-            # scores; frames made darker are prepared again, for the model to learn from.
+            # The record of the frames as captured feeds the health measures; the copies
+            # at another exposure are prepared again, where their frames sit.
             rec = self.conditions.prepare(images[part])
             prepared[part] = rec.images
-            if vary:
-                varied[part] = rec.images
-                darker = {}
-                for j, i in enumerate(idx[part]):
-                    rng = np.random.default_rng([7, int(i)])
-                    if rng.random() < 0.5:
-                        gain = 1.0 - self.exposure * rng.random()
-                        darker[j] = darker_exposure(images[start + j], gain, rng, rec.grey[j],
-                                                    self._noise())
-                if darker:  # a darker copy of a frame sits where the frame sits
-                    rows = list(darker)
-                    varied[[start + j for j in rows]] = self.conditions.prepare(
-                        np.stack(list(darker.values())), rec.shifts[rows]).images
+            copies = {}
+            for j, i in enumerate(idx[part]):
+                rng = np.random.default_rng([7, int(i)])
+                if self.exposure > 0 and rng.random() < 0.5:
+                    gain = 1.0 + self.exposure * (2.0 * rng.random() - 1.0)
+                    copies[j] = exposure_copy(images[start + j], gain, rng, rec.grey[j],
+                                              self._noise())
+            if copies:
+                rows = list(copies)
+                prepared[[start + j for j in rows]] = self.conditions.prepare(
+                    np.stack(list(copies.values())), rec.shifts[rows],
+                    None if rec.clipped is None else rec.clipped[rows]).images
             if measure:
                 m = self.conditions.measures(rec, previous)
                 for j, i in enumerate(idx[part]):
@@ -243,7 +245,7 @@ class PreparedSource:
         if not all(int(i) in self.appearance for i in idx):
             for i, a in zip(idx, appearance(images)):
                 self.appearance[int(i)] = a
-        return idx, prepared, varied
+        return idx, prepared
 
 
 @dataclass

@@ -49,8 +49,9 @@ class FrameSource(Protocol):
         """Yield ``(index, images, varied)``: as :meth:`batches`, plus the frames as the
         model should learn them (e.g. with exposure variations added), same shape.
 
-        Varied frames enter the training side only; calibration scores come from
-        ``images``, the frames as they are (as scan frames are).
+        Calibration scores come from ``images``; a source whose variations are frames
+        the camera may really give (``jobs.learn.PreparedSource``: other exposures) gives
+        the varied frames as ``images`` too, so the threshold holds for them.
         """
         ...
 
