@@ -140,8 +140,8 @@ class PreparedSource:
     With ``exposure`` > 0, every other frame (chosen at random, the same on every pass) is
     given as if caught at another exposure, darker or brighter by up to that fraction, with
     the sensor noise unchanged and highlights clipped as the sensor clips
-    (:func:`inspector.core.image.exposure_copy`); both to learn from
-    (:meth:`training_batches`) and to be scored for calibration (:meth:`batches`). A normal
+    (:func:`inspector.core.image.exposure_copy`); the model learns from them and scores them
+    for calibration alike (one stream, :meth:`batches`). A normal
     frame after an exposure step is normal, and differs from the frames learnt from by more
     than noise: its compressed colour detail is quantised anew (bench/conditions.py's
     exposure steps raised the scores of every stepped frame even with the extra noise
@@ -184,11 +184,6 @@ class PreparedSource:
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         yield from self._prepared(indices, batch_size)
-
-    def training_batches(self, indices: Sequence[int], batch_size: int = 64
-                         ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        for idx, prepared in self._prepared(indices, batch_size):
-            yield idx, prepared, prepared  # the frames scored are the frames learnt
 
     def _prepared(self, indices: Sequence[int], batch_size: int
                   ) -> Iterator[tuple[np.ndarray, np.ndarray]]:

@@ -44,17 +44,6 @@ class FrameSource(Protocol):
         """
         ...
 
-    def training_batches(self, indices: Sequence[int], batch_size: int = 64
-                         ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """Yield ``(index, images, varied)``: as :meth:`batches`, plus the frames as the
-        model should learn them (e.g. with exposure variations added), same shape.
-
-        Calibration scores come from ``images``; a source whose variations are frames
-        the camera may really give (``jobs.learn.PreparedSource``: other exposures) gives
-        the varied frames as ``images`` too, so the threshold holds for them.
-        """
-        ...
-
     # A source that records what it sees (frames skipped, notes) and may be read in other
     # processes (a model's ``fit(..., pool=...)``) also has ``spawn()``: a copy with empty
     # records; ``collected()``: its records, picklable; ``absorb(record)``: add a copy's.
@@ -149,8 +138,3 @@ class ArraySource:
         for start in range(0, len(indices), batch_size):
             idx = indices[start:start + batch_size]
             yield idx, self.images[idx]
-
-    def training_batches(self, indices: Sequence[int], batch_size: int = 64
-                         ) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        for idx, images in self.batches(indices, batch_size):
-            yield idx, images, images

@@ -744,8 +744,7 @@ class PatchPPCA(DensityModel):
         make at least ``calibrate_from`` of all; earlier blocks only train. Calibration scores thus
         come, like scan scores, from frames later than every frame their model saw, so the
         threshold holds for frames that follow the normal set under slow drift (models that
-        interpolate between blocks on both sides would not). Training frames may be varied
-        (``FrameSource.training_batches``); frames are scored as they are. Without a pool
+        interpolate between blocks on both sides would not). Without a pool
         this is one pass over the frames in time order: each block is scored by the model
         of the moments so far, then added to them.
 
@@ -828,7 +827,7 @@ class PatchPPCA(DensityModel):
         held: list[tuple[np.ndarray, np.ndarray]] = []
         current, ready = -1, False
         earlier = None  # sums at the start of the block before the current one
-        for idx, images, varied in source.training_batches(order, self.batch_size):
+        for idx, images in source.batches(order, self.batch_size):
             b_of = block_of[idx]
             for b in np.unique(b_of):
                 sel = b_of == b
@@ -842,13 +841,13 @@ class PatchPPCA(DensityModel):
                         q = self._heldout_q(earlier, now)  # covariances never coexist
                         self._set(*self._fit_moments(moments, q))
                     earlier = now
-                part, learnt = (images, varied) if sel.all() else (images[sel], varied[sel])
-                if ready:  # the block entries of the frames as they are: scored, and
-                    entries = self._entries(part)  # learnt from where not varied
+                part = images if sel.all() else images[sel]
+                if ready:  # the block entries gathered once: scored, then learnt from
+                    entries = self._entries(part)
                     held.append((idx[sel], self.score_maps(part, entries)))
-                    moments.add(int(b), self._samples(learnt, part, entries))
+                    moments.add(int(b), self._samples(part, entries))
                 else:
-                    moments.add(int(b), self._samples(learnt))
+                    moments.add(int(b), self._samples(part))
         self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
                             if self._wants_sums() else None)
         return moments, [held]
@@ -869,26 +868,16 @@ class PatchPPCA(DensityModel):
             return None
         return block_features(images, self.stride, self.colour, self.map_shape_)
 
-    def _samples(self, varied: np.ndarray, images: np.ndarray | None = None,
-                 entries: np.ndarray | None = None) -> np.ndarray:
+    def _samples(self, images: np.ndarray, entries: np.ndarray | None = None) -> np.ndarray:
         """Frames (n, H, W, 3) uint8 as :meth:`Moments.add` of :meth:`_new_moments` takes
         them: block entries, or patch features when patches do not split into blocks;
         float32 in [0, 1].
 
-        ``entries``: :meth:`_entries` of ``images``, taken (and changed in place) for the
-        frames of ``varied`` equal to those of ``images``; the others' are gathered.
+        ``entries``: :meth:`_entries` of ``images`` when already gathered (changed in place).
         """
         if block_order(self.patch, self.stride, self.colour) is None:
-            return patch_features(varied, self.patch, self.stride, self.colour)
-        if entries is None:
-            X = self._entries(varied)
-        else:
-            X = entries
-            if varied is not images:
-                other = [k for k in range(len(varied))
-                         if not np.array_equal(varied[k], images[k])]
-                if other:
-                    X[:, :, other] = self._entries(varied[other])
+            return patch_features(images, self.patch, self.stride, self.colour)
+        X = self._entries(images) if entries is None else entries
         X *= np.float32(1 / 255)
         return X
 
@@ -1109,15 +1098,15 @@ class PatchPPCA(DensityModel):
 
 
 def _block_moments(model: PatchPPCA, source: FrameSource, indices: np.ndarray) -> Moments:
-    """Moments of the frames at ``indices`` of ``source`` as the model learns them
-    (``training_batches``), per time block (all blocks, with their scatter)."""
+    """Moments of the frames at ``indices`` of ``source``, per time block (all blocks, with
+    their scatter)."""
     blocks = np.asarray(source.blocks)
     labels = np.unique(blocks)
     block_of = {b: i for i, b in enumerate(labels)}
     moments = model._new_moments(len(labels), block_scatter=True)
-    for idx, _, varied in source.training_batches(indices, model.batch_size):
+    for idx, images in source.batches(indices, model.batch_size):
         for b in np.unique(blocks[idx]):
-            moments.add(block_of[b], model._samples(varied[blocks[idx] == b]))
+            moments.add(block_of[b], model._samples(images[blocks[idx] == b]))
     return moments
 
 

@@ -342,7 +342,7 @@ class FrameVAEModel(DensityModel):
             [self._split(np.arange(end), n)[0] for end, _ in stages])))
         plain_all = np.unique(np.concatenate(
             [np.r_[self._split(np.arange(end), n)[1], score] for end, score in stages]))
-        train_pos, train_imgs = self._read(source, train_all, varied=True)
+        train_pos, train_imgs = self._read(source, train_all)
         plain_pos, plain_imgs = self._read(source, plain_all)
         held_pos, held_maps, chain = [], [], []
         self._opt = None
@@ -440,14 +440,10 @@ class FrameVAEModel(DensityModel):
         keep = np.linspace(0, len(idx) - 1, self.max_frames).round().astype(int)
         return idx[np.unique(keep)]
 
-    def _read(self, source: FrameSource, idx: np.ndarray, varied: bool = False
-              ) -> tuple[np.ndarray, np.ndarray]:
-        """Decodable positions and their packed planes (see :meth:`_pack`); ``varied``
-        takes the frames as the model should learn them (``training_batches``)."""
+    def _read(self, source: FrameSource, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Decodable positions and their packed planes (see :meth:`_pack`)."""
         pos, planes = [], []
-        batches = (source.training_batches(idx, 64) if varied
-                   else ((p, images, images) for p, images in source.batches(idx, 64)))
-        for p, _, images in batches:
+        for p, images in source.batches(idx, 64):
             pos.append(np.asarray(p, int))
             planes.append(self._pack(images))
         if not pos:
