@@ -510,6 +510,8 @@ def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
     # What is guaranteed is recorded apart from the extrapolated target: 1/(n+1).
     assert meta["threshold"]["guaranteed"] == pytest.approx(1 / (meta["calibration_frames"] + 1))
     assert "extrapolated target" in report.notes[1]
+    # the promise names the exposure copies among its calibration frames (exposure_range 0.2)
+    assert "re-exposed up to +-20%" in report.notes[1]
     assert any("more normal frames would make it exact" in w for w in report.warnings)
     assert store.load("aisle").threshold.method == "tail"
 

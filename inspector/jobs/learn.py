@@ -332,7 +332,10 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     threshold = calibration.threshold
     notes.append(f"threshold from {threshold.n} calibration frames, each scored by a model of "
                  f"earlier frames only ({used - threshold.n} frames only trained); "
-                 f"{threshold.describe()}")
+                 f"{threshold.describe()}" + (
+                     f" (about half of them re-exposed up to +-{prepared.exposure:.0%}: for "
+                     f"frames exactly as captured at most twice that rate)"
+                     if prepared.exposure > 0 else ""))
     warnings = [threshold.warning] if threshold.warning else []
     warnings += masking.pop("warnings")
     regimes = None
