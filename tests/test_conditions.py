@@ -256,6 +256,21 @@ def test_brightness_field_leaves_out_clipped_pixels():
     np.testing.assert_allclose(without[near], 1.0, atol=0.01)
 
 
+def test_brightness_field_of_a_colour_pair_is_the_field_of_each_channel():
+    # The bundled scikit-image coffee photograph against a re-lit copy (red x1.2 on the
+    # left), with and without clipped pixels left out: the colour call gives, channel by
+    # channel, exactly the field of that channel alone (the docstring's promise).
+    ref = skdata.coffee()[::4, ::4]                                       # (100, 150, 3) RGB
+    ramp = np.clip(1.2 - np.linspace(0, 1, ref.shape[1]), 0, 1)[None, :, None]
+    lit = np.clip(ref * (1 + ramp * np.array([0.2, 0.0, 0.0])), 0, 255).astype(np.uint8)
+    for keep in (None, (lit < 250).all(axis=2)):
+        both = brightness_field(lit, ref, 12.0, 1.1, -3.0, scale=1.1, keep=keep)
+        for c in range(3):
+            one = brightness_field(lit[..., c].astype(np.float32), ref[..., c], 12.0, 1.1,
+                                   -3.0, scale=1.1, keep=keep)
+            np.testing.assert_array_equal(both[..., c], one)
+
+
 def test_local_lighting_takes_out_light_of_another_colour_over_part_of_the_view():
     # Constructed: the bundled scikit-image coffee photograph lit on its left by a warm lamp
     # (red x1.3, blue x0.8, fading smoothly to nothing on the right). One field per channel

@@ -372,9 +372,8 @@ class Conditions(Estimator):
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
                     seen = None if near is None else near == 0
-                    field = (cv2.merge([brightness_field(img[..., c], ref_rgb[..., c], sigma,
-                                                         gain, offset, scale=gain, keep=seen)
-                                        for c in range(3)]) if ref_rgb is not None else
+                    field = (brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain,
+                                              keep=seen) if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
                                               channels=3, keep=seen))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)

@@ -395,7 +395,7 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
                      channels: int = 1, keep: np.ndarray | None = None) -> np.ndarray:
     """Smooth multiplicative field that brings the local brightness of ``gain * frame +
     offset`` to the reference's: ``blur(reference) / blur(gain * frame + offset)``, clipped
-    to [0.25, 4].
+    to [0.25, 4]; one field per channel of a colour frame.
 
     With ``keep``, both blurs are normalised convolutions over the kept pixels only
     (``blur(keep * x) / blur(keep)``, Knutsson & Westin 1993, "Normalized and differential
@@ -405,7 +405,8 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
 
     Parameters
     ----------
-    frame, reference : ndarray, shape (H, W), float
+    frame, reference : ndarray, shape (H, W) or (H, W, C), float or uint8
+        Both of the same shape; a (H, W, C) pair gives the field of each channel.
     sigma : float
         Blur, in pixels.
     gain, offset : float
@@ -414,28 +415,43 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     scale : float
         Factor applied to the field (at reduced size, before it is enlarged).
     channels : int
-        Channels of the result (the field repeated, to multiply a colour image).
+        Channels of the result of an (H, W) pair (the field repeated, to multiply a colour
+        image).
     keep : ndarray, shape (H, W), bool, optional
-        Pixels whose brightness is trusted (all when None).
+        Pixels whose brightness is trusted (all when None), the same for every channel.
 
     Returns
     -------
-    ndarray, shape (H, W) or (H, W, channels), float32
+    ndarray, shape (H, W), (H, W, channels) or (H, W, C), float32
     """
-    frame = np.asarray(frame, np.float32)
-    h, w = frame.shape
+    frame, ref = np.asarray(frame), np.asarray(reference)
+    h, w = frame.shape[:2]
     k = max(1, int(sigma // 4))  # the field is smooth: blur a 1/k image, then enlarge it
     small = (max(1, w // k), max(1, h // k))
-    ref = np.asarray(reference, np.float32)
     weight = None
     if keep is not None and not keep.all():
         wfull = np.asarray(keep, np.float32)
-        frame, ref = frame * wfull, ref * wfull
+        if frame.dtype == ref.dtype == np.uint8:  # keep * x: x where kept, else 0
+            on = np.ascontiguousarray(keep, bool).view(np.uint8)
+            frame, ref = cv2.bitwise_and(frame, frame, mask=on), cv2.bitwise_and(ref, ref, mask=on)
+        else:
+            x = wfull if frame.ndim == 2 else wfull[..., None]
+            frame, ref = np.asarray(frame, np.float32) * x, np.asarray(ref, np.float32) * x
         weight = cv2.GaussianBlur(cv2.resize(wfull, small, interpolation=cv2.INTER_AREA),
                                   (0, 0), sigma / k)
-    reduced = cv2.resize(frame, small, interpolation=cv2.INTER_AREA)
-    f = cv2.GaussianBlur(reduced, (0, 0), sigma / k)
-    r = cv2.GaussianBlur(cv2.resize(ref, small, interpolation=cv2.INTER_AREA), (0, 0), sigma / k)
+        if frame.ndim == 3:
+            weight = weight[..., None]
+    frame, ref = np.asarray(frame, np.float32), np.asarray(ref, np.float32)
+
+    def blur(x: np.ndarray) -> np.ndarray:
+        # a channel at a time: OpenCV's blur of a multi-channel image rounds otherwise (its
+        # area reduction does not)
+        if x.ndim == 2:
+            return cv2.GaussianBlur(x, (0, 0), sigma / k)
+        return cv2.merge([cv2.GaussianBlur(c, (0, 0), sigma / k) for c in cv2.split(x)])
+
+    f = blur(cv2.resize(frame, small, interpolation=cv2.INTER_AREA))
+    r = blur(cv2.resize(ref, small, interpolation=cv2.INTER_AREA))
     if weight is not None:
         seen = weight > 1e-3  # elsewhere nothing trusted is near: no correction
         f = np.where(seen, f / np.maximum(weight, np.float32(1e-3)), 0.0)
@@ -444,8 +460,11 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         f = f * np.float32(gain) + np.float32(offset)
     field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32)
     if weight is not None:
-        field[~seen] = 1.0
+        field[~np.broadcast_to(seen, field.shape)] = 1.0
     field *= np.float32(scale)
+    if field.ndim == 3:  # a channel at a time (as the blur)
+        return cv2.merge([cv2.resize(c, (w, h), interpolation=cv2.INTER_LINEAR)
+                          for c in cv2.split(field)])
     if channels > 1:
         field = cv2.merge([field] * channels)
     return cv2.resize(field, (w, h), interpolation=cv2.INTER_LINEAR)
