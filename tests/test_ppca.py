@@ -50,6 +50,26 @@ def test_masked_likelihood_is_the_exact_marginal():
     np.testing.assert_allclose(-ppca_nll(X2[:, None, :], mean[None], W, s2, observed)[:, 0], ll)
 
 
+def test_noise_scaled_likelihood_matches_scipy_with_the_inflated_covariance():
+    # A frame known to carry s times the model's noise variance: the Mahalanobis term is
+    # SciPy's Gaussian with C_s = W W^T + s sigma^2 I, the normalising term the model's own
+    # (the likelihood less the entropy the extra noise adds: (log|C_s| - log|C|) / 2).
+    X = _data(n=50, d=12)
+    mean, cov = X.mean(0), np.cov(X.T)
+    W, s2 = ppca_fit(cov[None], 3)
+    observed = np.ones((1, 12), bool)
+    observed[0, [2, 7]] = False
+    o = observed[0]
+    s = np.linspace(1.0, 4.0, len(X))
+    nll = ppca_nll(X[:, None, :], mean[None], W, s2, observed, noise=s)[:, 0]
+    C = (W[0] @ W[0].T + s2[0] * np.eye(12))[np.ix_(o, o)]
+    for x, si, got in zip(X, s, nll):
+        Cs = C + (si - 1.0) * s2[0] * np.eye(o.sum())
+        entropy = 0.5 * (np.linalg.slogdet(Cs)[1] - np.linalg.slogdet(C)[1])
+        ref = -multivariate_normal(mean[o], Cs).logpdf(x[o]) - entropy
+        np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-9)
+
+
 def test_streaming_moments_match_numpy_cov_with_a_block_left_out():
     rng = np.random.default_rng(1)
     X = rng.normal(size=(90, 4, 6)).astype(np.float32) + 5
@@ -100,23 +120,26 @@ def test_patch_features_layout_luma_then_half_resolution_chroma():
     np.testing.assert_allclose(X[0, 1, :64], 0.0, atol=1 / 255)
 
 
-def _scipy_nll(model, X):
+def _scipy_nll(model, X, s=1.0, locs=None):
     """-log N(x_o; mu_o, C_oo) per sample and location from SciPy, with the model's
     covariance in feature units: C = D^-1 (W W^T + sigma^2 I) D^-1, D weighing the chroma
-    entries by ``chroma_weight_`` (scipy.stats.multivariate_normal)."""
+    entries by ``chroma_weight_`` (scipy.stats.multivariate_normal); with ``s``, of
+    C_s = D^-1 (W W^T + s sigma^2 I) D^-1 less (log|C_s| - log|C|) / 2 (see ppca_nll)."""
     d = X.shape[2]
     D = np.ones(d)
     D[64:] = model.chroma_weight_
-    out = np.empty(X.shape[:2])
-    for loc in range(X.shape[1]):
+    out = np.full(X.shape[:2], np.nan)
+    for loc in range(X.shape[1]) if locs is None else locs:
         W = model.W_[loc].astype(np.float64)
         C = (W @ W.T + model.sigma2_[loc] * np.eye(d)) / np.outer(D, D)
         o = np.ones(d, bool) if model.observed_ is None else model.observed_[loc]
         if not o.any():  # a fully masked location has no density to compare
-            out[:, loc] = np.nan
             continue
+        Cs = C + (s - 1.0) * model.sigma2_[loc] * np.diag(1.0 / D ** 2)
+        entropy = 0.5 * (np.linalg.slogdet(Cs[np.ix_(o, o)])[1]
+                         - np.linalg.slogdet(C[np.ix_(o, o)])[1])
         out[:, loc] = -multivariate_normal(model.mean_[loc][o].astype(np.float64),
-                                           C[np.ix_(o, o)]).logpdf(X[:, loc][:, o])
+                                           Cs[np.ix_(o, o)]).logpdf(X[:, loc][:, o]) - entropy
     return out
 
 
@@ -152,6 +175,11 @@ def test_block_scoring_with_a_mask_equals_the_reference_formula():
     seen = np.isfinite(ref[0])
     np.testing.assert_allclose(model.patch_nll(imgs[:5])[:, seen], ref[:, seen],
                                rtol=2e-4, atol=2e-2)
+    # frames with 2.5 times the model's noise variance (Conditions.noise_scale), at a few
+    # locations, partly masked ones among them
+    some = np.flatnonzero(seen)[::8]
+    np.testing.assert_allclose(model.patch_nll(imgs[:5], noise=np.full(5, 2.5))[:, some],
+                               _scipy_nll(model, X, 2.5, some)[:, some], rtol=2e-4, atol=2e-2)
 
 
 def test_expected_patches_unchanged_by_the_block_order():

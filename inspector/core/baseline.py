@@ -161,7 +161,8 @@ class Baseline:
             return Evaluation(images, self.model.score_maps(images))
         rec = self.conditions.prepare(images)
         m = self.conditions.measures(rec) if self.conditions.health else None
-        return Evaluation(images, self.model.score_maps(rec.images), m, rec.grey)
+        raw = self.model.score_maps(rec.images, noise=self.conditions.noise_scale(rec))
+        return Evaluation(images, raw, m, rec.grey)
 
     def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.

@@ -23,6 +23,9 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
+* Noise: a frame brought to the reference with a larger gain than any normal frame needed
+  carries its sensor and compression noise amplified beyond what the model learnt; the
+  models are told by how much (:meth:`Conditions.noise_scale`).
 * Health: lens covered, out of focus, frozen feed, underexposed, overexposed, camera moved,
   each a measure with a limit, the limits widened by what the normal frames showed.
 """
@@ -176,6 +179,9 @@ class Conditions(Estimator):
         reference's gain.
     limits_ : dict of str to float
         Health limits in force (see :meth:`fit`).
+    gain_max_ : float or None
+        Largest gain (:attr:`Prepared.gains`) of the normal frames as captured (see
+        :meth:`noise_scale`); None when unknown.
     """
 
     def __init__(self, lighting: str = "local", register: bool = True, max_shift: float = 8.0,
@@ -214,6 +220,7 @@ class Conditions(Estimator):
         images = np.asarray(images)
         self.ignore_ = ignore
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
+        self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
         self._ref_terms = self._spectrum = None
         if not len(images):
@@ -234,8 +241,11 @@ class Conditions(Estimator):
 
     def set_limits(self, m: dict[str, np.ndarray]) -> None:
         """Health limits from ``limits`` widened by the measures ``m`` of normal frames
-        (see :meth:`fit`); call again with the measures of all normal frames when known."""
+        (see :meth:`fit`), and ``gain_max_`` from their ``gain`` when given; call again with
+        the measures of all normal frames when known."""
         self.check_fitted()
+        if "gain" in m and len(m["gain"]):
+            self.gain_max_ = float(np.max(m["gain"]))
         d = {**DEFAULT_LIMITS, **(self.limits or {})}
         self.limits_ = {
             "dark": float(min(d["dark"], 0.7 * np.min(m["dark"]))),
@@ -449,7 +459,8 @@ class Conditions(Estimator):
         Returns
         -------
         dict of str to ndarray, shape (n,)
-            ``dark``, ``bright``, ``covered``, ``focus``, ``frozen``, ``shift``.
+            ``dark``, ``bright``, ``covered``, ``focus``, ``frozen``, ``shift``, and
+            ``gain`` (of the brightness fit, :attr:`Prepared.gains`).
         """
         self.check_fitted()
         g = prepared.grey
@@ -466,7 +477,8 @@ class Conditions(Estimator):
                "bright": np.count_nonzero(clipped, axis=1) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),
-               "shift": np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1])}
+               "shift": np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1]),
+               "gain": prepared.gains[:, 0].astype(np.float64)}
         textured = self.ref_cells_ > max(2.0, 0.1 * float(np.median(self.ref_cells_))) \
             if self.ref_cells_ is not None else None
         if textured is not None and textured.any() and n:
@@ -480,6 +492,32 @@ class Conditions(Estimator):
         if len(before):
             out["frozen"][n - len(before):] = self.frozen(g[n - len(before):], before)
         return out
+
+    def noise_scale(self, prepared: Prepared) -> np.ndarray:
+        """By how much each frame's noise variance exceeds what the model learnt.
+
+        Normalisation multiplies a frame by its gain g (:attr:`Prepared.gains`), and with it
+        the sensor and compression noise the frame was captured with: a frame exposed 40 %
+        darker is brought back with about twice the gain of a normal one, and its noise
+        variance with four times theirs. The model learnt frames as captured at gains up to
+        ``gain_max_`` (the exposure copies add sensor noise but not the compression of a
+        real exposure), so a frame at a larger gain has its noise variance scaled by
+        ``(g / gain_max_)^2`` (white noise times g has variance g^2 sigma^2); frames at
+        gains the model learnt, and frames not normalised (``lighting = "off"``), by 1.
+
+        Parameters
+        ----------
+        prepared : Prepared
+
+        Returns
+        -------
+        ndarray, shape (n,), float64, >= 1
+        """
+        self.check_fitted()
+        scale = np.ones(len(prepared))
+        if self.lighting == "off" or not self.gain_max_:
+            return scale
+        return np.maximum(scale, (prepared.gains[:, 0] / self.gain_max_) ** 2)
 
     def frozen(self, grey: np.ndarray, before: np.ndarray) -> np.ndarray:
         """The "frozen feed" measure: mean absolute difference of each frame's grey to the
@@ -543,11 +581,11 @@ class Conditions(Estimator):
 
     def to_json(self) -> dict[str, Any]:
         """Settings and the health limits in force, JSON-ready (``limits`` are the learnt
-        ones, ``limits_asked`` the constructor's)."""
+        ones, ``limits_asked`` the constructor's; ``gain_max``: see :meth:`noise_scale`)."""
         self.check_fitted()
         return {"lighting": self.lighting, "register": self.register,
                 "max_shift": self.max_shift, "health": self.health, "limits": self.limits_,
-                "limits_asked": self.limits}
+                "limits_asked": self.limits, "gain_max": self.gain_max_}
 
     def arrays(self) -> dict[str, np.ndarray]:
         """Learned arrays by their saved names (None ones left out)."""
@@ -565,4 +603,6 @@ class Conditions(Estimator):
         for k in cls._ARRAYS:
             setattr(c, k + "_", arrays.get(k))
         c.limits_ = limits
+        gain_max = meta.get("gain_max")  # None in baselines learnt before it was kept
+        c.gain_max_ = None if gain_max is None else float(gain_max)
         return c

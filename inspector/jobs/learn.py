@@ -307,7 +307,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                          f"read, at least {MIN_FRAMES} are needed to learn a baseline")
     if prepared.measures:  # health limits from every normal frame, not just the sample
         conditions.set_limits({k: np.array([m[k] for m in prepared.measures.values()])
-                               for k in ("dark", "bright", "covered", "focus")})
+                               for k in ("dark", "bright", "covered", "focus", "gain")})
     cs = cfg.calibration
     good = [t for i, t in enumerate(times) if i not in source.skipped]
     alpha, notes = cs.alpha, []

@@ -87,8 +87,14 @@ class DensityModel(Estimator, ABC):
         """
 
     @abstractmethod
-    def score_maps(self, images: np.ndarray) -> np.ndarray:
-        """Raw anomaly maps, shape (n, h, w) float32, of RGB frames (n, H, W, 3) uint8."""
+    def score_maps(self, images: np.ndarray, noise: np.ndarray | None = None) -> np.ndarray:
+        """Raw anomaly maps, shape (n, h, w) float32, of RGB frames (n, H, W, 3) uint8.
+
+        ``noise``: shape (n,), the factor >= 1 by which each frame's noise variance exceeds
+        what the model learnt (:meth:`~inspector.core.conditions.Conditions.noise_scale`);
+        the model's noise variance is multiplied by it in the likelihood, whose
+        normalising term is kept (see :func:`~inspector.core.models.ppca.ppca_nll`).
+        """
 
     @abstractmethod
     def expected(self, images: np.ndarray) -> np.ndarray:

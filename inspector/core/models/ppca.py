@@ -356,15 +356,19 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-location terms of the Woodbury form of the log-likelihood.
 
-    With the Cholesky factor ``M = C C^T`` of ``M = W^T W + sigma^2 I``, ``B = W C^-T``
-    gives ``B B^T = W M^-1 W^T`` and ``log|M| = 2 sum log diag C``: one factorisation per
-    location instead of an inverse, a second factorisation and a determinant. The
+    ``W`` is first turned onto the principal axes of ``W W^T`` (``W V`` with ``W^T W =
+    V diag(g) V^T``, which leaves ``W W^T`` and so the density unchanged); then ``M = W^T W
+    + sigma^2 I = diag(g + sigma^2)`` and ``B = W V diag(g + sigma^2)^(-1/2)`` gives
+    ``B B^T = W M^-1 W^T`` and ``log|M| = sum log(g + sigma^2)``: one small symmetric
+    eigendecomposition per location instead of an inverse, a second factorisation and a
+    determinant. The columns of ``B`` are orthogonal, ``|b_j|^2 = g_j / (g_j + sigma^2)``,
+    which is what scoring with a larger noise variance needs (see :func:`noise_quad`). The
     matrices are small (q x q), so BLAS is held to one thread (as in :func:`batched_eigh`).
 
     Returns
     -------
     B : ndarray, shape (L, d, q)
-        Such that ``r^T W M^-1 W^T r = |B^T r|^2``.
+        Such that ``r^T W M^-1 W^T r = |B^T r|^2``; orthogonal columns.
     logdet : ndarray, shape (L,)
         ``log|C|`` of the (observed) covariance, by the matrix determinant lemma.
     d_obs : ndarray, shape (L,)
@@ -374,16 +378,57 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
     L, d, q = W.shape
     d_obs = observed.sum(axis=1).astype(np.float64) if observed is not None else np.full(L, float(d))
     with threadpool_limits(1):
-        M = np.matmul(W.transpose(0, 2, 1), W) + sigma2[:, None, None] * np.eye(q)
-        chol = np.linalg.cholesky(M)
-        B = np.matmul(W, np.linalg.inv(chol).transpose(0, 2, 1))
-    logdet = (d_obs - q) * np.log(sigma2) + 2.0 * np.log(
-        np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+        g, V = np.linalg.eigh(np.matmul(W.transpose(0, 2, 1), W))
+        g = np.clip(g, 0.0, None) + sigma2[:, None]  # eigenvalues of M
+        B = np.matmul(W, V) / np.sqrt(g)[:, None, :]
+    logdet = (d_obs - q) * np.log(sigma2) + np.log(g).sum(axis=1)
     return B, logdet, d_obs
 
 
+def noise_quad(sq: np.ndarray, proj: np.ndarray, sigma2: np.ndarray, kept: np.ndarray,
+               noise: np.ndarray | None = None) -> np.ndarray:
+    """Mahalanobis term ``r^T C^-1 r`` of each location and frame, from the Woodbury parts,
+    with each frame's noise variance ``sigma^2`` multiplied by ``noise`` >= 1.
+
+    A frame brought to the reference with a larger gain than any the model learnt carries
+    its sensor and compression noise amplified by it (see
+    :meth:`inspector.core.conditions.Conditions.noise_scale`): its covariance is
+    ``C_s = W W^T + s sigma^2 I``. With ``B`` of orthogonal columns (:func:`ppca_precompute`),
+    ``kept_j = 1 - |b_j|^2 = sigma^2 / lambda_j`` (lambda_j = |w_j|^2 + sigma^2, the
+    covariance along axis j) and ``p = B^T r``, the Woodbury identity gives
+
+        r^T C_s^-1 r = (|r|^2 - sum_j p_j^2 / (1 + (s - 1) kept_j)) / (s sigma^2),
+
+    which is the plain ``(|r|^2 - |p|^2) / sigma^2`` at s = 1.
+
+    Parameters
+    ----------
+    sq : ndarray, shape (L, n)
+        ``|r|^2`` in the model's units.
+    proj : ndarray, shape (L, n, q)
+        ``B^T r`` in the same units.
+    sigma2 : ndarray, shape (L,)
+    kept : ndarray, shape (L, q)
+        ``1 - |b_j|^2`` of each location's columns of ``B``.
+    noise : ndarray, shape (n,), optional
+        ``s`` of each frame (1: none added).
+
+    Returns
+    -------
+    ndarray, shape (L, n), float64
+    """
+    if noise is None or not np.any(np.asarray(noise) > 1.0):
+        lat = np.einsum("lnq,lnq->ln", proj, proj)
+        return (sq - lat) / sigma2[:, None]
+    s = np.asarray(noise, np.float64)
+    weight = 1.0 / (1.0 + (s[None, :, None] - 1.0) * kept[:, None, :])
+    lat = np.einsum("lnq,lnq,lnq->ln", proj, proj, weight)
+    return (sq - lat) / (sigma2[:, None] * s[None, :])
+
+
 def ppca_nll(X: np.ndarray, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray,
-             observed: np.ndarray | None = None) -> np.ndarray:
+             observed: np.ndarray | None = None, noise: np.ndarray | None = None
+             ) -> np.ndarray:
     """Negative log-likelihood of samples under per-location PPCA, in nats.
 
     Parameters
@@ -394,6 +439,12 @@ def ppca_nll(X: np.ndarray, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray,
     sigma2 : ndarray, shape (L,)
     observed : ndarray, shape (L, d), bool, optional
         Entries left out are marginalised out (not zero-filled).
+    noise : ndarray, shape (n,), optional
+        Factor >= 1 on each sample's noise variance (see :func:`noise_quad`). The
+        Mahalanobis term is that of ``W W^T + s sigma^2 I`` while the normalising term
+        stays the model's ``log|C|``: ``-log N(x; mu, C_s) - (log|C_s| - log|C|) / 2``, the
+        likelihood less the entropy the known extra noise adds, so that a sample whose only
+        difference is that noise scores on average as a sample of the model does.
 
     Returns
     -------
@@ -403,21 +454,30 @@ def ppca_nll(X: np.ndarray, mean: np.ndarray, W: np.ndarray, sigma2: np.ndarray,
     if observed is not None:
         W = W * observed[:, :, None]
     B, logdet, d_obs = ppca_precompute(W, sigma2, observed)
-    return _nll(X, mean, B, sigma2, logdet, d_obs, observed)
+    return _nll(X, mean, B, sigma2, logdet, d_obs, observed, noise=noise)
 
 
-def _nll(X, mean, B, sigma2, logdet, d_obs, observed, unit: float = 1.0):
+def _nll(X, mean, B, sigma2, logdet, d_obs, observed, unit: float = 1.0, noise=None,
+         kept=None):
     """NLL from features ``X`` (``mean`` is subtracted unless None, i.e. already done);
     ``unit`` is the size of one feature step in the units of the model (1/255 when X is in
-    grey levels)."""
+    grey levels); ``noise`` as in :func:`ppca_nll`, ``kept`` as in :func:`noise_quad`
+    (from ``B`` when not given)."""
     R = np.asarray(X) if mean is None else np.asarray(X) - mean[None]
     if observed is not None:
         R = R * observed[None]
-    sq = np.einsum("nld,nld->nl", R, R)
+    sq = np.einsum("nld,nld->ln", R, R)
     proj = np.matmul(R.transpose(1, 0, 2), B.astype(R.dtype, copy=False))  # (L, n, q)
-    lat = np.einsum("lnq,lnq->nl", proj, proj)
-    quad = (sq - lat) * (unit * unit) / sigma2[None]
+    if kept is None:
+        kept = _kept(B)
+    quad = noise_quad(sq, proj, sigma2, kept, noise).T * (unit * unit)
     return 0.5 * (d_obs * LOG_2PI + logdet + quad)
+
+
+def _kept(B: np.ndarray) -> np.ndarray:
+    """``1 - |b_j|^2`` of each location's columns of ``B`` (L, d, q), shape (L, q) float64
+    (see :func:`noise_quad`)."""
+    return np.clip(1.0 - (np.asarray(B, np.float64) ** 2).sum(axis=1), 0.0, 1.0)
 
 
 class Moments:
@@ -1001,6 +1061,7 @@ class PatchPPCA(DensityModel):
                     else np.full(len(d_obs), d_obs.max() - p2 if self.colour else 0))
         self._logdet = logdet - 2.0 * np.log(c) * n_chroma
         self._d_obs = d_obs
+        self._kept = _kept(B)
         r = self.patch // self.stride
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
         B = B.astype(np.float32)
@@ -1014,18 +1075,20 @@ class PatchPPCA(DensityModel):
 
     # scoring
 
-    def patch_nll(self, images: np.ndarray, entries: np.ndarray | None = None) -> np.ndarray:
+    def patch_nll(self, images: np.ndarray, entries: np.ndarray | None = None,
+                  noise: np.ndarray | None = None) -> np.ndarray:
         """Negative log-likelihood of every patch, shape (n, L), float64 (``entries``: the
-        frames' :meth:`_entries` when already gathered; not changed)."""
+        frames' :meth:`_entries` when already gathered; not changed; ``noise``: as in
+        :meth:`score_maps`)."""
         if self._blocks is not None:
-            return self._blocks.nll(self, images, entries)
+            return self._blocks.nll(self, images, entries, noise)
         # Residuals in grey levels, the mean subtracted while gathering (the scale is applied
         # to the per-location sums instead of the whole array).
         R = patch_features(images, self.patch, self.stride, self.colour,
                            center=self._mean_grey, scale=1.0)
         self._weigh(R)
         return _nll(R, None, self._b(), self.sigma2_, self._logdet, self._d_obs,
-                    self.observed_, unit=1 / 255)
+                    self.observed_, unit=1 / 255, noise=noise, kept=self._kept)
 
     def _weigh(self, R: np.ndarray, inverse: bool = False) -> np.ndarray:
         """Chroma entries of features ``R`` (..., d) multiplied (divided, ``inverse``) by
@@ -1035,13 +1098,15 @@ class PatchPPCA(DensityModel):
             R[..., self.patch * self.patch:] *= np.float32(1.0 / c if inverse else c)
         return R
 
-    def score_maps(self, images: np.ndarray, entries: np.ndarray | None = None) -> np.ndarray:
+    def score_maps(self, images: np.ndarray, entries: np.ndarray | None = None,
+                   noise: np.ndarray | None = None) -> np.ndarray:
         """Raw anomaly maps: patch NLL averaged onto cells, shape (n, h, w), float32.
 
         Fully masked locations score 0 (they carry no evidence). ``entries``: as in
-        :meth:`patch_nll`.
+        :meth:`patch_nll`. ``noise``: shape (n,), the factor >= 1 by which each frame's
+        noise variance exceeds what the model learnt (:func:`ppca_nll`).
         """
-        nll = self.patch_nll(images, entries)
+        nll = self.patch_nll(images, entries, noise)
         if self.observed_ is not None:
             nll[:, self._d_obs == 0] = 0.0
         return fold_to_cells(nll, self.grid_, self.patch, self.stride)
@@ -1222,8 +1287,8 @@ class _BlockLayout:
             out[rows, cols] *= self.observed[rows, cols][:, None, :]
         return out
 
-    def nll(self, model: "PatchPPCA", images: np.ndarray, entries: np.ndarray | None = None
-            ) -> np.ndarray:
+    def nll(self, model: "PatchPPCA", images: np.ndarray, entries: np.ndarray | None = None,
+            noise: np.ndarray | None = None) -> np.ndarray:
         """:meth:`PatchPPCA.patch_nll` from blocks, shape (n, L), float64."""
         blocks = self.blocks(images, entries)
         norms = np.einsum("ijne,ijne->ijn", blocks, blocks)
@@ -1235,8 +1300,9 @@ class _BlockLayout:
             p = np.matmul(part, self.B[k])  # (gh, gw, n, q)
             sq = norms[a:a + gh, b:b + gw].copy() if sq is None else sq + norms[a:a + gh, b:b + gw]
             proj = p if proj is None else proj + p
-        lat = np.einsum("ijnq,ijnq->ijn", proj, proj)
-        quad = (sq - lat).reshape(gh * gw, -1) * (1 / 255) ** 2 / model.sigma2_[:, None]
+        L = gh * gw
+        quad = noise_quad(sq.reshape(L, -1), proj.reshape(L, -1, proj.shape[-1]),
+                          model.sigma2_, model._kept, noise) * (1 / 255) ** 2
         nll = 0.5 * (model._d_obs[:, None] * LOG_2PI + model._logdet[:, None] + quad)
         return nll.T
 
@@ -1280,5 +1346,5 @@ def _unpatch(X: np.ndarray, hw: tuple[int, int], grid: tuple[int, int], patch: i
     return out
 
 
-__all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "choose_latent",
+__all__ = ["PatchPPCA", "ppca_fit", "ppca_nll", "ppca_precompute", "noise_quad", "choose_latent",
            "heldout_latent", "chroma_weight", "chroma_locations", "weigh_chroma", "Moments"]

@@ -592,14 +592,17 @@ class FrameVAEModel(DensityModel):
         self._live = (seen[0, :mh, :mw] > 0).float()
 
     @torch.no_grad()
-    def _score_batch(self, x: torch.Tensor, gen: torch.Generator | None) -> torch.Tensor:
+    def _score_batch(self, x: torch.Tensor, gen: torch.Generator | None,
+                     scale: torch.Tensor | None = None) -> torch.Tensor:
+        """Raw NLL maps of a batch of planes; ``scale`` (n, 1, 1, 1): each frame's factor
+        on the decoder's variance (see :meth:`score_maps`)."""
         net = self.net_
         obs = net.observed
         mu, logvar = net.encode(x)
         if self.iw_samples <= 0:
             mean, dec_logvar = net.decode(mu)
             kl = kl_standard_normal(mu, logvar) if self.kl_in_map else None
-            return self._to_cells(gaussian_nll(x, mean, dec_logvar, obs), kl)
+            return self._to_cells(gaussian_nll(x, mean, dec_logvar, obs, scale), kl)
         K = int(self.iw_samples)
         std = torch.exp(0.5 * logvar)
         shares, neg_logw = [], []
@@ -607,7 +610,7 @@ class FrameVAEModel(DensityModel):
         for eps in noise:
             z = mu + std * eps
             mean, dec_logvar = net.decode(z)
-            rec = gaussian_nll(x, mean, dec_logvar, obs)
+            rec = gaussian_nll(x, mean, dec_logvar, obs, scale)
             ratio = 0.5 * (z ** 2 - logvar - eps ** 2)  # log q(z|x) - log p(z), per entry
             neg_logw.append(_per_item(rec) + _per_item(ratio))
             shares.append(self._to_cells(rec, ratio))
@@ -618,15 +621,17 @@ class FrameVAEModel(DensityModel):
         rest = (math.log(K) - entropy) / self._live.sum().clamp_min(1.0)
         return maps + rest[:, None, None] * self._live
 
-    def nll_maps(self, images: np.ndarray) -> np.ndarray:
+    def nll_maps(self, images: np.ndarray, noise: np.ndarray | None = None) -> np.ndarray:
         """Negative log-likelihood maps in nats per map cell, shape (n, h, w), float32.
 
-        Fully masked cells score 0 (they carry no evidence).
+        Fully masked cells score 0 (they carry no evidence). ``noise``: as in
+        :meth:`score_maps`.
         """
         images = np.asarray(images)
-        return self._score(self._planes(images[i:i + 32]) for i in range(0, len(images), 32))
+        return self._score((self._planes(images[i:i + 32]) for i in range(0, len(images), 32)),
+                           noise)
 
-    def score_maps(self, images: np.ndarray) -> np.ndarray:
+    def score_maps(self, images: np.ndarray, noise: np.ndarray | None = None) -> np.ndarray:
         """Raw anomaly maps, shape (n, h, w), float32: :meth:`nll_maps` less each cell's
         median over the model's own early-stopping frames, over one robust scale
         (``map_center_``, ``map_scale_``, see :meth:`_set_map_scale`).
@@ -634,8 +639,12 @@ class FrameVAEModel(DensityModel):
         A VAE's likelihood scale depends on how far its training went, so each model of
         the forward chain (see :meth:`fit`) is put on the scale of the frames just before
         the ones it scores; the final model, on those just before the frames it scans.
+
+        ``noise``: shape (n,), the factor >= 1 by which each frame's noise variance exceeds
+        what the model learnt; the decoder's variance is multiplied by it in the squared
+        term, its normalising term kept (:func:`gaussian_nll` with ``scale``).
         """
-        return self._standardised(self.nll_maps(images))
+        return self._standardised(self.nll_maps(images, noise))
 
     def _set_map_scale(self, stop_maps: np.ndarray) -> None:
         """The model's own standardisation from its early-stopping frames' NLL maps
@@ -653,13 +662,21 @@ class FrameVAEModel(DensityModel):
     def _score_packed(self, packed: np.ndarray) -> np.ndarray:
         return self._score(self._unpack(packed[i:i + 32]) for i in range(0, len(packed), 32))
 
-    def _score(self, batches) -> np.ndarray:
+    def _score(self, batches, noise: np.ndarray | None = None) -> np.ndarray:
+        """Raw NLL maps of batches of planes, in order; ``noise``: (n,) over all of them
+        (see :meth:`score_maps`)."""
         self.net_.eval()
         out = []
         gen = torch.Generator().manual_seed(self.seed + 2) if self.iw_samples > 0 else None
+        scale = None
+        if noise is not None and np.any(np.asarray(noise) > 1.0):
+            scale = torch.as_tensor(np.asarray(noise, np.float32)).reshape(-1, 1, 1, 1)
+        done = 0
         with _torch_threads(self.threads):
             for x in batches:
-                out.append(self._score_batch(x, gen).numpy())
+                part = None if scale is None else scale[done:done + len(x)]
+                out.append(self._score_batch(x, gen, part).numpy())
+                done += len(x)
         if not out:
             return np.zeros((0,) + self.map_shape_, np.float32)
         return np.concatenate(out).astype(np.float32, copy=False)

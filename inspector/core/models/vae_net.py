@@ -25,12 +25,18 @@ Decoder = Callable[[torch.Tensor], tuple[torch.Tensor, torch.Tensor]]
 # --- pure functions: any Gaussian encoder / Gaussian decoder pair ---------------------------
 
 def gaussian_nll(x: torch.Tensor, mean: torch.Tensor, logvar: torch.Tensor,
-                 weight: torch.Tensor | None = None) -> torch.Tensor:
+                 weight: torch.Tensor | None = None, scale: torch.Tensor | None = None
+                 ) -> torch.Tensor:
     """Elementwise ``-log N(x; mean, exp(logvar))`` in nats (broadcasting).
 
-    ``weight`` (0 or 1, broadcastable) leaves entries out of the likelihood.
+    ``weight`` (0 or 1, broadcastable) leaves entries out of the likelihood. ``scale``
+    (>= 1, broadcastable) multiplies the variance of the squared term while the
+    normalising term keeps ``logvar``: ``-log N(x; mean, s v) - log(s) / 2``, the
+    likelihood of a sample known to carry s times the noise, less the entropy that noise
+    adds (as :func:`inspector.core.models.ppca.ppca_nll` with ``noise``).
     """
-    nll = 0.5 * (LOG_2PI + logvar + (x - mean) ** 2 * torch.exp(-logvar))
+    inv = torch.exp(-logvar) if scale is None else torch.exp(-logvar) / scale
+    nll = 0.5 * (LOG_2PI + logvar + (x - mean) ** 2 * inv)
     nll = nll.expand(torch.broadcast_shapes(x.shape, nll.shape))
     return nll * weight if weight is not None else nll
 
