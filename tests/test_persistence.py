@@ -25,6 +25,7 @@ from inspector.core.persistence import (
     past_level,
     persistence,
     persistence_on,
+    robust_spread,
     steady_level,
 )
 from inspector.errors import UsageError
@@ -95,6 +96,28 @@ def test_step_from_the_frames_before_matches_scipy_rank_filters():
     # One past frame: its own value; never below the normal level 0.
     one = np.array([[[-3.0, 5.0]]], np.float32)
     assert past_level(one).tolist() == [[0.0, 5.0]]
+
+
+def test_a_window_shares_one_spread_so_a_wide_frame_does_not_break_what_stays():
+    # Reference: scipy.stats.median_abs_deviation(scale="normal") for each frame's robust
+    # spread; robust="window" divides the window and the frames before it by the median of
+    # the window frames' spreads (floored at 1), then takes the same step as unscaled maps.
+    from scipy.stats import median_abs_deviation
+
+    maps, times = _stream(12, 10, 12)
+    maps[8:] += 40.0 * (np.arange(10 * 12).reshape(10, 12) % 5 == 0)  # a thing appears
+    maps[9] += 3.0 * _stream(1, 10, 12, seed=1)[0][0]  # one frame disturbed all over
+    local = maps - np.median(maps, axis=(1, 2), keepdims=True)
+    spreads = median_abs_deviation(local.reshape(12, -1), axis=1, scale="normal")
+    np.testing.assert_allclose(robust_spread(local), spreads, rtol=1e-5)
+    run = persistence(maps, times, 4, 10.0, past=4, robust="window")
+    scale = max(np.median(spreads[8:12]), 1.0)
+    plain = persistence(local / scale, times, 4, 10.0, past=4)
+    np.testing.assert_allclose(run.maps[11], plain.maps[11], atol=1e-4)
+    # Each frame by its own spread (robust=True) shrinks the thing in the disturbed frame,
+    # which then reads as unsteady; one spread for the window keeps its level.
+    own = persistence(maps, times, 4, 10.0, past=4, robust=True)
+    assert own.scores[11] < 0.6 * run.scores[11]
 
 
 def test_what_was_there_before_is_not_counted_and_what_appears_stays_flagged():

@@ -34,9 +34,13 @@ level less a reference, the level of the same cell in the ``past`` frames just b
 window (:func:`past_level`): a thing left shows as a step, unusual now and not just before;
 light that was already there before the window, or grows over minutes, does not. A cell
 above its threshold keeps its reference while it stays above (held), so a thing left stays
-flagged as long as it stays and is not taken into its own reference. The local maps are
-also divided by their cells' robust spread (``robust``), so that a frame whose whole view
-is disturbed counts a cell by how far it stands out from the rest of that frame. The frame
+flagged as long as it stays and is not taken into its own reference. The local maps of a
+window and of the frames before it are also divided by one robust spread, the median of
+the window frames' spreads over their cells (``robust``), so that a stretch whose whole
+view is disturbed (dark and noisy after the lamps go off) counts a cell by how far it
+stands out from the rest of the view, while one frame of the window that a large
+passer-by disturbs all over does not shrink a thing left in that frame alone (which would
+read as unsteady; baselines learnt before divided each frame by its own spread). The frame
 of a stretch with no frame before its window (the first full window) has no reference: it
 is held to the steady level's threshold instead (``start_threshold``).
 
@@ -181,7 +185,7 @@ class PersistenceResult:
 
 def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float,
                 threshold: float | None = None, state: StreamState | None = None,
-                blocks: np.ndarray | None = None, past: int = 0, robust: bool = False,
+                blocks: np.ndarray | None = None, past: int = 0, robust: bool | str = False,
                 start_threshold: float | None = None, around: int = 1) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
@@ -214,8 +218,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         pool) is not counted, and what appeared and stayed is. A frame with at least one such
         frame in its stretch of the stream has ``stepped`` set. 0: no reference (the steady
         level itself).
-    robust : bool
-        Divide each local map by its cells' robust spread (see :func:`local_maps`).
+    robust : bool or "window"
+        True: divide each local map by its cells' robust spread (see :func:`local_maps`).
+        "window": divide the local maps of a window and of the frames before it by one
+        spread, the median of the robust spreads of the window's frames
+        (:func:`robust_spread`), so that a thing that stays keeps its level while a large
+        passer-by widens the spread of one frame of the window. False: neither.
     start_threshold : float, optional
         Threshold of frames without a frame before the window (``stepped`` unset); default
         ``threshold``. Cells above their frame's threshold keep their reference while they
@@ -230,7 +238,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     """
     if window < 1:
         raise ValueError(f"window must be at least 1, got {window}")
-    maps = local_maps(maps, robust)
+    maps = local_maps(maps, robust is True)
+    scaled = robust == "window"
     times = np.asarray(times, np.float64)
     n = len(maps)
     keep = window + past  # frames a map needs: the window and the frames before it
@@ -263,7 +272,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
                 late_buf, late_t = buf[:pos], buf_t[:pos]
             late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
-            level, out[i] = _step(late_buf, window, around=around)
+            level, out[i], _ = _step(late_buf, window, around=around, scaled=scaled)
             levels[i] = float(level.max())
             stepped[i] = past > 0 and len(late_buf) > window
             filled[i] = (len(late_t) >= window
@@ -284,13 +293,13 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf.append(maps[i])
         buf_t.append(t)
         del buf[:-keep], buf_t[:-keep]
-        level, out[i] = _step(buf, window, held, around)
+        level, out[i], scale = _step(buf, window, held, around, scaled)
         levels[i] = float(level.max())
         stepped[i] = past > 0 and len(buf) > window
         filled[i] = len(buf) >= window
         if threshold is not None:
             limit = _limit(threshold, start_threshold, stepped[i])
-            above = maps[i] > limit
+            above = maps[i] > limit * scale
             if onset is None:
                 onset = np.full(maps.shape[1:], np.nan)
             onset = np.where(above, np.where(np.isnan(onset), t, onset), np.nan)
@@ -319,16 +328,21 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
 
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
-          around: int = 1) -> tuple[np.ndarray, np.ndarray]:
+          around: int = 1, scaled: bool = False) -> tuple[np.ndarray, np.ndarray, float]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
-    reference from ``held`` (NaN where not held). Shapes (h, w), float32."""
-    level = steady_level(np.asarray(frames[-window:]), around)
+    reference from ``held`` (NaN where not held), shapes (h, w), float32; and the scale the
+    frames were divided by: with ``scaled``, the median of the window frames' robust spreads
+    floored at 1 (:func:`robust_spread`), else 1."""
+    win = np.asarray(frames[-window:], np.float32)
+    scale = max(float(np.median(robust_spread(win))), 1.0) if scaled else 1.0
+    level = steady_level(win / np.float32(scale), around)
     before = frames[:-window]
-    reference = past_level(np.asarray(before)) if before else np.zeros_like(level)
+    reference = (past_level(np.asarray(before, np.float32) / np.float32(scale)) if before
+                 else np.zeros_like(level))
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
-    return level, (level - reference).astype(np.float32)
+    return level, (level - reference).astype(np.float32), scale
 
 
 def past_level(past_maps: np.ndarray) -> np.ndarray:
@@ -396,11 +410,8 @@ def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
     ----------
     maps : ndarray, shape (n, h, w), float
     robust : bool
-        Also divide each map by its cells' robust spread when that is above the spread of
-        standardised normal cells: the median absolute deviation from the median times
-        1.4826, which estimates a normal standard deviation (Rousseeuw & Croux 1993,
-        "Alternatives to the median absolute deviation", JASA 88; as
-        ``scipy.stats.median_abs_deviation(scale="normal")``), floored at 1. A frame whose
+        Also divide each map by its cells' robust spread (:func:`robust_spread`) when that
+        is above the spread of standardised normal cells, i.e. floored at 1. A frame whose
         whole view is disturbed (dark and noisy after the lamps go off, say) counts a cell
         by how far it stands out from the rest of that frame; a frame where a thing covers
         a small part of the view keeps its scale.
@@ -416,9 +427,27 @@ def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
     centre = np.median(flat, axis=1).astype(np.float32)
     out = maps - centre[:, None, None]
     if robust:
-        spread = 1.4826 * np.median(np.abs(flat - centre[:, None]), axis=1)
-        out = out / np.maximum(spread, 1.0).astype(np.float32)[:, None, None]
+        out = out / np.maximum(robust_spread(out), 1.0).astype(np.float32)[:, None, None]
     return out
+
+
+def robust_spread(maps: np.ndarray) -> np.ndarray:
+    """Robust spread of each map's cells: the median absolute deviation from the median
+    times 1.4826, which estimates a normal standard deviation (Rousseeuw & Croux 1993,
+    "Alternatives to the median absolute deviation", JASA 88; as
+    ``scipy.stats.median_abs_deviation(scale="normal")``).
+
+    Parameters
+    ----------
+    maps : ndarray, shape (n, h, w), float
+
+    Returns
+    -------
+    ndarray, shape (n,), float64
+    """
+    flat = np.asarray(maps, np.float32).reshape(len(maps), -1)
+    centre = np.median(flat, axis=1)
+    return 1.4826 * np.median(np.abs(flat - centre[:, None]), axis=1).astype(np.float64)
 
 
 def frame_interval(times: np.ndarray) -> float:
@@ -451,8 +480,9 @@ class Persistence:
     past : int
         Frames before the window the reference comes from (``past`` of
         :func:`persistence`; 0 for baselines learnt before there was one).
-    robust : bool
-        Local maps scaled by their robust spread (``robust`` of :func:`persistence`).
+    robust : bool or "window"
+        Local maps scaled by their robust spread, each by its own (True, baselines learnt
+        before "window") or a window's by one (``robust`` of :func:`persistence`).
     start_threshold : Threshold or None
         Threshold of frames with no frame before their window in their stretch of the
         stream (the first of a run): the conformal threshold of the steady levels of every
@@ -471,7 +501,7 @@ class Persistence:
     transient_share: float
     busy: bool
     past: int = 0
-    robust: bool = False
+    robust: bool | str = False
     start_threshold: Threshold | None = None
     start_scores: np.ndarray | None = field(default=None, repr=False)
     around: int = 1
@@ -518,10 +548,15 @@ class Persistence:
         return cls(int(meta["window"]), float(meta["max_gap"]),
                    Threshold.from_dict(meta["threshold"]),
                    np.asarray(calibration_scores, np.float64), float(meta["transient_share"]),
-                   bool(meta["busy"]), int(meta.get("past", 0)), bool(meta.get("robust", False)),
+                   bool(meta["busy"]), int(meta.get("past", 0)), _robust(meta.get("robust", False)),
                    Threshold.from_dict(start) if start else None,
                    None if start_scores is None else np.asarray(start_scores, np.float64),
                    int(meta.get("around", 1)))
+
+
+def _robust(saved) -> bool | str:
+    """``robust`` as saved in a baseline's JSON: "window", or a bool."""
+    return "window" if saved == "window" else bool(saved)
 
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
@@ -579,11 +614,12 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     share = float(transient.mean())
     close = window * max_gap / GAP_FACTOR <= MAX_SPAN
     busy = close and clearly_busy(int(transient.sum()), len(transient))
-    # Flags come from the step from the frames just before the window, on robust local maps;
-    # frames with no frame before their window are held to the steady level of any window.
+    # Flags come from the step from the frames just before the window, on local maps scaled
+    # by the window's robust spread; frames with no frame before their window are held to
+    # the steady level of any window.
     s_maps, s_times, s_blocks = scanned if scanned is not None else (maps, times, blocks)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=window,
-                       robust=True, around=AROUND)
+                       robust="window", around=AROUND)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -591,9 +627,9 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     stepped = step.filled & step.stepped
     if not stepped.any():
         return Persistence(window, max_gap, conformal_threshold(starts, alpha), starts, share,
-                           busy, 0, True, around=AROUND)
+                           busy, 0, "window", around=AROUND)
     return Persistence(window, max_gap, conformal_threshold(step.scores[stepped], alpha),
-                       step.scores[stepped], share, busy, window, True,
+                       step.scores[stepped], share, busy, window, "window",
                        conformal_threshold(starts, alpha), starts, AROUND)
 
 
