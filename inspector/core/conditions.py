@@ -142,9 +142,12 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
     ndarray, shape (H, W, 3), uint8
     """
     ycc = cv2.cvtColor(image, cv2.COLOR_RGB2YCrCb)
-    blurred = cv2.GaussianBlur(ycc, (0, 0), sigma)
-    cv2.mixChannels([ycc], [blurred], [0, 0])  # the luma back
-    return cv2.cvtColor(blurred, cv2.COLOR_YCrCb2RGB)
+    chroma = np.empty(ycc.shape[:2] + (2,), np.uint8)
+    cv2.mixChannels([ycc], [chroma], [1, 0, 2, 1])
+    # only Cr and Cb are blurred (OpenCV blurs 8-bit images in exact fixed point, channel
+    # by channel: the same numbers as blurring all three)
+    cv2.mixChannels([cv2.GaussianBlur(chroma, (0, 0), sigma)], [ycc], [0, 1, 1, 2])
+    return cv2.cvtColor(ycc, cv2.COLOR_YCrCb2RGB)
 
 
 class Conditions(Estimator):
@@ -314,7 +317,6 @@ class Conditions(Estimator):
         aligned = g_all
         moved: dict[int, tuple[float, float]] = {}  # frames moved back, by their shift
         if self.register:
-            aligned = g_all.copy()
             if known is None:
                 spectrum, terms = self._registration(ref)
                 found = phase_shifts(g_all, spectrum, self.ignore_)
@@ -330,6 +332,8 @@ class Conditions(Estimator):
                                           <= correlation(g, ref, keep)):
                         dx = dy = 0.0
                     else:
+                        if aligned is g_all:  # copied only when a frame moves
+                            aligned = g_all.copy()
                         aligned[i] = back
                 shifts[i] = dx, dy
                 if 0.05 < np.hypot(dx, dy) <= self.max_shift:
