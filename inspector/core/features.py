@@ -39,8 +39,8 @@ def feature_size(patch: int, colour: bool) -> int:
 
 
 def _planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray | None]:
-    """Luma (n, H, W) uint8 and chroma 2x2 means (n, H/2, W/2, 2) float32 in [0, 255]
-    (strided views, not contiguous arrays)."""
+    """Luma (n, H, W) uint8 (a strided view) and chroma 2x2 means (n, H/2, W/2, 2) float32
+    in [0, 255]."""
     images = np.asarray(images)
     if images.ndim != 4 or images.shape[-1] != 3 or images.dtype != np.uint8:
         raise ValueError(f"expected (n, H, W, 3) uint8 frames, got {images.shape} {images.dtype}")
@@ -49,11 +49,16 @@ def _planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray | 
     if not colour:
         return cv2.cvtColor(flat, cv2.COLOR_RGB2GRAY).reshape(n, h, w), None
     ycc = cv2.cvtColor(flat, cv2.COLOR_RGB2YCrCb)
-    # An exact 2x2 mean: area interpolation by a factor of two, in float (no rounding), of
-    # all three channels at once (faster than splitting them first; the luma mean is not
-    # used). Rows pair up within each frame because H is even. Both results are views.
-    half = cv2.resize(ycc.astype(np.float32), (w // 2, n * h // 2), interpolation=cv2.INTER_AREA)
-    return ycc[..., 0].reshape(n, h, w), half[..., 1:].reshape(n, h // 2, w // 2, 2)
+    # An exact 2x2 mean of Cr and Cb: area interpolation by a factor of two, in float (no
+    # rounding), a frame at a time (its float copy stays in the processor's cache; OpenCV
+    # copies the two channels out far faster than a strided numpy copy).
+    half = np.empty((n, h // 2, w // 2, 2), np.float32)
+    crcb, buf = np.empty((h, w, 2), np.uint8), np.empty((h, w, 2), np.float32)
+    for k in range(n):
+        cv2.mixChannels([ycc[k * h:(k + 1) * h]], [crcb], [1, 0, 2, 1])
+        np.copyto(buf, crcb)
+        cv2.resize(buf, (w // 2, h // 2), dst=half[k], interpolation=cv2.INTER_AREA)
+    return ycc[..., 0].reshape(n, h, w), half
 
 
 def to_planes(images: np.ndarray, colour: bool) -> tuple[np.ndarray, np.ndarray | None]:

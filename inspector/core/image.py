@@ -29,11 +29,16 @@ def grey(images: np.ndarray) -> np.ndarray:
     """
     images = np.asarray(images)
     n, h, w = images.shape[:3]
+    out = np.zeros((n, h, w), np.float32)
     if not images.size:
-        return np.zeros((n, h, w), np.float32)
-    # OpenCV's conversion of float input is the exact weighted sum, unrounded
-    flat = images.reshape(n * h, w, 3).astype(np.float32, copy=False)
-    return cv2.cvtColor(flat, cv2.COLOR_RGB2GRAY).reshape(n, h, w)
+        return out
+    # OpenCV's conversion of float input is the exact weighted sum, unrounded; a frame at
+    # a time, so that its float copy stays in the processor's cache
+    buf = np.empty((h, w, 3), np.float32)
+    for image, o in zip(images, out):
+        np.copyto(buf, image)
+        cv2.cvtColor(buf, cv2.COLOR_RGB2GRAY, dst=o)
+    return out
 
 
 #: Pixels a robust gain fit samples from a frame (on an even grid; see :func:`robust_gains`).
