@@ -108,6 +108,7 @@ def run(work: Path, n: int, rounds: int, normal: int = 120,
 #: at depth d runs inside the stage above it at depth d - 1.
 def _stages():
     import inspector.core.conditions as conditions
+    import inspector.core.models.ppca as ppca
     import inspector.jobs.scan as scan
     import inspector.storage.frames as frames
     from inspector.core.baseline import Baseline
@@ -123,13 +124,16 @@ def _stages():
         ("preparation", 1, Conditions, "prepare"),
         ("grey", 2, conditions, "grey"),
         ("registration (phase correlation)", 2, conditions, "phase_shifts"),
+        ("registration (Lucas-Kanade steps)", 2, conditions, "refine_shift"),
         ("shift check (correlation)", 2, conditions, "correlation"),
         ("robust gain fit", 2, conditions, "robust_gains"),
         ("brightness field", 2, conditions, "brightness_field"),
+        ("chroma smoothing", 2, conditions, "smooth_chroma"),
         ("health measures", 1, Conditions, "measures"),
         ("covered (cell correlation)", 2, conditions, "cell_correlation"),
         ("focus (cell detail)", 2, conditions, "cell_detail"),
         ("PPCA maps", 1, PatchPPCA, "score_maps"),
+        ("block entries (YCrCb, gathering)", 2, ppca, "block_features"),
         ("judging (thresholds, p-values)", 0, Baseline, "judge"),
         ("writing (CSV, ledger, overlays)", 0, ResultWriter, "write"),
         ("overlays of flagged frames", 1, ResultWriter, "_save_files"),
