@@ -322,6 +322,12 @@ def test_a_darker_copy_of_a_clipped_frame_keeps_its_clip_treatment():
     rec = c.prepare(frame[None])
     patch = np.s_[104:126, 64:116]
     assert rec.clipped is not None and (rec.clipped[0][patch] == 255).all()
+    # measured, not rendered (as learn does for a frame it replaces by a copy): the same
+    # record, the frame left as given
+    only = c.prepare(frame[None], render=np.array([False]))
+    np.testing.assert_array_equal(only.clipped, rec.clipped)
+    np.testing.assert_array_equal(only.gains, rec.gains)
+    np.testing.assert_array_equal(only.images[0], frame)
     alone = c.prepare(copy[None], rec.shifts).images[0].astype(float)
     treated = c.prepare(copy[None], rec.shifts, rec.clipped).images[0].astype(float)
     assert 240 - alone[patch].mean() > 10

@@ -260,7 +260,8 @@ class Conditions(Estimator):
 
     # -- per frame -----------------------------------------------------------------------
     def prepare(self, images: np.ndarray, shifts: np.ndarray | None = None,
-                clipped: np.ndarray | None = None) -> Prepared:
+                clipped: np.ndarray | None = None, render: np.ndarray | None = None
+                ) -> Prepared:
         """Align and normalise frames to the learnt reference.
 
         A frame shifted by ``(dx, dy)`` is moved back; the strip its edge leaves uncovered and
@@ -286,6 +287,11 @@ class Conditions(Estimator):
             ``Prepared.clipped`` of the frames these were made from: treated as clipped
             too (a darker copy of a clipped pixel shows a flat level that only bounds its
             light, as the pixel did).
+        render : ndarray, shape (n,), bool, optional
+            Frames to align and normalise (default all). The others are measured only (grey,
+            shift, gain, clipped pixels) and left in ``images`` as given: a frame whose
+            measures are wanted but whose pixels will be replaced, e.g. by a copy at another
+            exposure prepared with this frame's ``shifts`` and ``clipped``.
 
         Returns
         -------
@@ -299,11 +305,12 @@ class Conditions(Estimator):
         """
         self.check_fitted()
         return self._prepare(images, self.reference_, self.reference_rgb_, shifts,
-                             was_clipped=clipped)
+                             was_clipped=clipped, render=render)
 
     def _prepare(self, images: np.ndarray, ref: np.ndarray | None,
                  ref_rgb: np.ndarray | None, known: np.ndarray | None = None,
-                 restore: bool = True, was_clipped: np.ndarray | None = None) -> Prepared:
+                 restore: bool = True, was_clipped: np.ndarray | None = None,
+                 render: np.ndarray | None = None) -> Prepared:
         """:meth:`prepare` against a given reference (also while learning it); without
         ``restore``, clipped pixels and the reference's glare are left as normalised."""
         images = np.asarray(images)
@@ -373,6 +380,9 @@ class Conditions(Estimator):
                 if clipped is None:
                     clipped = np.zeros(images.shape[:3], np.uint8)
                 clipped[i] = near
+            if render is not None and not render[i]:  # measured only
+                out[i] = images[i]
+                continue
             if self.lighting == "off":
                 o = img.copy()
             else:

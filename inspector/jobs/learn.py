@@ -216,17 +216,20 @@ class PreparedSource:
         previous = None  # grey of the frame before the part (for the frozen-feed measure)
         for start in range(0, len(idx), PREPARE_PART):
             part = slice(start, start + PREPARE_PART)
-            # The record of the frames as captured feeds the health measures; the copies
-            # at another exposure are prepared again, where their frames sit.
-            rec = self.conditions.prepare(images[part])
-            prepared[part] = rec.images
-            copies = {}
+            draws = {}  # frames given at another exposure: their gain and random stream
             for j, i in enumerate(idx[part]):
                 rng = np.random.default_rng([7, int(i)])
                 if self.exposure > 0 and rng.random() < 0.5:
-                    gain = 1.0 + self.exposure * (2.0 * rng.random() - 1.0)
-                    copies[j] = exposure_copy(images[start + j], gain, rng, rec.grey[j],
-                                              self._noise())
+                    draws[j] = (1.0 + self.exposure * (2.0 * rng.random() - 1.0), rng)
+            # The record of the frames as captured feeds the health measures (those given
+            # at another exposure are measured, not rendered); the copies are prepared with
+            # their frames' shifts and clipped pixels.
+            render = np.ones(len(idx[part]), bool)
+            render[list(draws)] = False
+            rec = self.conditions.prepare(images[part], render=render)
+            prepared[part] = rec.images
+            copies = {j: exposure_copy(images[start + j], gain, rng, rec.grey[j], self._noise())
+                      for j, (gain, rng) in draws.items()}
             if copies:
                 rows = list(copies)
                 prepared[[start + j for j in rows]] = self.conditions.prepare(
