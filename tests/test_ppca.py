@@ -227,6 +227,24 @@ def test_heldout_rule_picks_a_size_and_is_kept():
     assert 1 <= m.q_ <= m.max_latent and m.get_params()["latent_rule"] == "heldout"
 
 
+def test_blocks_calibration_drops_are_not_scored():
+    # With alpha 0.1 the conformal threshold needs ceil(1 / alpha - 1) = 9 scores (Vovk,
+    # Gammerman & Shafer 2005): of the scored blocks 2, 3, 4 (8 frames each) newest_blocks
+    # keeps 3 and 4, so block 2 is only trained on; the rest is the plain fit's.
+    from inspector.core.calibration import newest_blocks
+
+    rng = np.random.default_rng(2)
+    imgs = np.clip(rng.normal(120, 8, (40, 16, 24, 3)), 0, 255).astype(np.uint8)
+    plain, lean = PatchPPCA(batch_size=8), PatchPPCA(batch_size=8)
+    held = plain.fit(ArraySource(imgs))
+    some = lean.fit(ArraySource(imgs), alpha=0.1)
+    keep = newest_blocks(held.index // 8, 0.1)
+    assert set(held.index // 8) == {2, 3, 4} and set(some.index // 8) == {3, 4}
+    np.testing.assert_array_equal(some.index, held.index[keep])
+    np.testing.assert_array_equal(some.maps, held.maps[keep])
+    np.testing.assert_array_equal(lean.W_, plain.W_)
+
+
 def test_masked_fit_is_the_ppca_of_the_observed_features():
     # The fit path with an ignore mask: a location partly under the mask is the PPCA of its
     # observed features only (Tipping & Bishop 1999), which scikit-learn's PCA.score_samples

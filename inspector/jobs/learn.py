@@ -300,8 +300,10 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                               cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
                               else 0.0)
     try:
-        pooled = {"pool": pool} if pool is not None and takes_pool(model) else {}
-        held = model.fit(prepared, mask, **pooled)
+        extra_args = {"pool": pool} if pool is not None and takes_pool(model) else {}
+        if takes(model, "alpha"):  # held-out maps calibration would drop are not made
+            extra_args["alpha"] = _planned_alpha(cfg, times)
+        held = model.fit(prepared, mask, **extra_args)
     except ValueError as exc:
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
     used = len(files) - len(source.skipped)
@@ -463,7 +465,8 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
               assign(np.array([looks[int(i)] for i in held.index]), regimes.prototypes,
                      regimes.feature_scale))
     # Thresholds from the blocks the single-frame calibration keeps, standardised among
-    # themselves as scan maps are; how busy the camera is from all held-out frames.
+    # themselves as scan maps are; how busy the camera is from all held-out frames (the
+    # model scores only the blocks calibration keeps, unless regimes may need others).
     kept = np.zeros(len(held.index), bool)
     kept_maps = np.empty(held.maps.shape, np.float32)
     for r in np.unique(groups):
@@ -508,9 +511,31 @@ def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store
 
 def takes_pool(model) -> bool:
     """Whether a model (or model class) can fit with a pool of workers (``fit(pool=)``)."""
+    return takes(model, "pool")
+
+
+def takes(model, name: str) -> bool:
+    """Whether a model's (or model class's) ``fit`` takes the keyword ``name``."""
     import inspect
 
-    return "pool" in inspect.signature(model.fit).parameters
+    return name in inspect.signature(model.fit).parameters
+
+
+def _planned_alpha(cfg: CameraConfig, times) -> float | None:
+    """The false-alarm rate the held-out maps will be calibrated for, known before any
+    frame is read (None: all held-out blocks are wanted). With an alarm budget, the rate
+    of all the frames' capture times: frames that fail to decode only make the rate of the
+    rest larger, which needs fewer calibration frames. Regimes calibrate each on its own
+    share of the frames, which may need every block."""
+    cs = cfg.calibration
+    if cs.regimes and cs.max_regimes > 1:
+        return None
+    if cs.alarms_per_day <= 0:
+        return cs.alpha
+    try:
+        return alarms_to_alpha(cs.alarms_per_day, times)[0]
+    except ValueError:  # (reported after the fit)
+        return None
 
 
 def _model_params(cfg: CameraConfig) -> dict:

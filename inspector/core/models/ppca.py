@@ -34,6 +34,7 @@ from typing import Any
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from inspector.core.calibration import newest_blocks
 from inspector.core.features import (
     block_features,
     block_order,
@@ -795,7 +796,8 @@ class PatchPPCA(DensityModel):
 
     # fitting
 
-    def fit(self, source: FrameSource, mask: np.ndarray | None = None, pool=None) -> HeldOut:
+    def fit(self, source: FrameSource, mask: np.ndarray | None = None, pool=None,
+            alpha: float | None = None) -> HeldOut:
         """Fit on every frame of ``source``; score each frame once with a model of the
         frames before it (forward chaining over the time blocks).
 
@@ -821,6 +823,12 @@ class PatchPPCA(DensityModel):
             there, in a second pass. Each job reads a copy of ``source`` (its ``spawn()``,
             if it has one) whose record (``collected()``: frames skipped, notes) is added
             back with ``absorb``; the result equals the fit without a pool to float rounding.
+        alpha : float, optional
+            The false-alarm rate the held-out maps will calibrate for: blocks older than
+            the newest ones :func:`inspector.core.calibration.newest_blocks` keeps for it
+            (counted from the frames given, before decoding) are only trained on, not
+            scored, since calibration would drop their maps; their fold models are not
+            fitted. None: every block from ``calibrate_from`` on is scored.
 
         Returns
         -------
@@ -842,6 +850,10 @@ class PatchPPCA(DensityModel):
             block_of, minlength=len(labels))
         first = int(np.argmax(np.r_[before >= self.calibrate_from * len(blocks), True]))
         first = max(first, 1)
+        if alpha is not None and first < len(labels):
+            later = block_of >= first
+            kept = newest_blocks(block_of[later], alpha)
+            first = int(block_of[later][kept].min())
         # With fewer than three time blocks a fold model has no earlier block to choose its
         # latent size with: every model (folds and final alike) then uses "variance", so the
         # calibration maps come from models chosen by the same rule as the final one.
