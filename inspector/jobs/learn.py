@@ -149,13 +149,15 @@ class PreparedSource:
     appearances are those of the frames as captured.
     Their extra noise is read from one bank of normal draws
     (:func:`inspector.core.image.noise_bank`, the same for every copy of the source) at a
-    random offset per frame.
+    random offset per frame. ``looks``: record each frame's appearance (for the regimes).
     """
 
-    def __init__(self, source, conditions: Conditions, exposure: float = 0.0):
+    def __init__(self, source, conditions: Conditions, exposure: float = 0.0,
+                 looks: bool = True):
         self.source = source
         self.conditions = conditions
         self.exposure = exposure
+        self.looks = looks
         self.blocks = source.blocks
         self.size = source.size
         #: Health measures of every frame prepared, by position (for the health limits).
@@ -169,7 +171,7 @@ class PreparedSource:
 
     def spawn(self) -> "PreparedSource":
         """The same frames with empty records (to read some of them elsewhere)."""
-        return PreparedSource(self.source.spawn(), self.conditions, self.exposure)
+        return PreparedSource(self.source.spawn(), self.conditions, self.exposure, self.looks)
 
     def collected(self) -> dict:
         return {"source": self.source.collected(), "measures": dict(self.measures),
@@ -240,7 +242,7 @@ class PreparedSource:
                 for j, i in enumerate(idx[part]):
                     self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
             previous = rec.grey[-1]
-        if not all(int(i) in self.appearance for i in idx):
+        if self.looks and not all(int(i) in self.appearance for i in idx):
             for i, a in zip(idx, appearance(images)):
                 self.appearance[int(i)] = a
         return idx, prepared
@@ -298,7 +300,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     model = model_class(cfg.model.model)(**_model_params(cfg))
     prepared = PreparedSource(source, conditions,
                               cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
-                              else 0.0)
+                              else 0.0, looks=cfg.calibration.regimes)
     try:
         extra_args = {"pool": pool} if pool is not None and takes_pool(model) else {}
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
