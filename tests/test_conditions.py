@@ -291,6 +291,26 @@ def test_local_lighting_takes_out_light_of_another_colour_over_part_of_the_view(
     assert err < 4.0
 
 
+def test_noise_scale_of_a_frame_darker_than_every_normal_one():
+    # Normal frames of the bundled coffee photograph at gains 0.9-1.1, one frame at half the
+    # exposure: brought back with about twice the gain, its white noise has (g / g_max)^2
+    # times the variance of the noisiest normal frame (Var(aX) = a^2 Var(X)); the normal
+    # frames keep 1, and so does everything without normalisation.
+    ref = skdata.coffee()[::4, ::4].astype(np.float32) * 0.8 + 10
+    rng = np.random.default_rng(5)
+    normal = np.stack([np.clip(ref * a + rng.normal(0, 1.5, ref.shape), 0, 255)
+                       for a in (0.9, 1.0, 1.1, 1.0)]).astype(np.uint8)
+    c = Conditions(lighting="local", register=False, health=False).fit(normal)
+    rec = c.prepare(normal)
+    assert c.gain_max_ == pytest.approx(rec.gains[:, 0].max())
+    np.testing.assert_array_equal(c.noise_scale(rec), 1.0)
+    dark = c.prepare((normal[1] * 0.5).astype(np.uint8)[None])
+    assert dark.gains[0, 0] == pytest.approx(2.0, rel=0.05)
+    assert c.noise_scale(dark)[0] == pytest.approx((dark.gains[0, 0] / c.gain_max_) ** 2)
+    off = Conditions(lighting="off", register=False, health=True).fit(normal)
+    assert off.noise_scale(off.prepare((normal[1] * 0.5).astype(np.uint8)[None]))[0] == 1.0
+
+
 def test_clipped_lamp_takes_the_reference_at_any_exposure_unless_it_goes_out():
     ref, normal = _with_lamp()
     c = Conditions(lighting="local", register=False, health=False).fit(normal)
@@ -533,6 +553,9 @@ def test_alarm_budget_per_day_extrapolates_with_a_warning(tmp_path):
     assert "extrapolated target" in report.notes[1]
     # the promise names the exposure copies among its calibration frames (exposure_range 0.2)
     assert "re-exposed up to +-20%" in report.notes[1]
+    # and says how frames darker than every normal one are judged (Conditions.noise_scale)
+    gain_max = store.load("aisle").conditions.gain_max_
+    assert f"gain above {gain_max:.2f}" in report.notes[2]
     assert any("more normal frames would make it exact" in w for w in report.warnings)
     assert store.load("aisle").threshold.method == "tail"
 

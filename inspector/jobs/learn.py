@@ -343,6 +343,10 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                      f" (about half of them re-exposed up to +-{prepared.exposure:.0%}: for "
                      f"frames exactly as captured at most twice that rate)"
                      if prepared.exposure > 0 else ""))
+    if conditions.lighting != "off" and conditions.gain_max_:  # see Conditions.noise_scale
+        notes.append(f"frames darker than every normal frame (brought back with a gain above "
+                     f"{conditions.gain_max_:.2f}) are scored with their sensor noise amplified "
+                     f"by that gain: less sharply, and outside the guaranteed rate")
     warnings = [threshold.warning] if threshold.warning else []
     warnings += masking.pop("warnings")
     regimes = None
