@@ -258,13 +258,24 @@ def test_calibrate_tells_busy_from_quiet():
     assert b.past == 4 and b.robust and b.start_threshold is not None
     assert len(b.start_scores) == len(b.calibration_scores) + 5  # one per block has no past
     rank = math.ceil((len(b.start_scores) + 1) * 0.99)
-    assert b.start_threshold.value == pytest.approx(np.sort(b.start_scores)[rank - 1])
+    # Each threshold is that order statistic, raised to the floor when below it: the 99th
+    # percentile (numpy.quantile) of the steady levels of every cell of every full window.
+    levels = persistence(busy, times, b.window, b.max_gap, blocks=blocks, robust="window",
+                         around=3)
+    assert b.floor == pytest.approx(np.quantile(levels.maps[levels.filled], 0.99))
+    assert b.start_threshold.value == pytest.approx(
+        max(np.sort(b.start_scores)[rank - 1], b.floor))
+    rank = math.ceil((len(b.calibration_scores) + 1) * 0.99)
+    assert b.threshold.value == pytest.approx(
+        max(np.sort(b.calibration_scores)[rank - 1], b.floor))
     again = Persistence.from_saved(b.to_json(), b.calibration_scores, b.start_scores)
     assert again.to_json() == b.to_json() and again.around == 3
     old = Persistence.from_saved({k: v for k, v in b.to_json().items()
-                                  if k not in ("past", "robust", "start_threshold", "around")},
+                                  if k not in ("past", "robust", "start_threshold", "around",
+                                               "floor")},
                                  b.calibration_scores)  # saved before the step
     assert old.past == 0 and not old.robust and old.start_threshold is None and old.around == 1
+    assert old.floor == 0.0
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

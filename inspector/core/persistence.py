@@ -65,7 +65,7 @@ flagged normal frames over a long stationary stream, not frame by frame independ
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -492,6 +492,10 @@ class Persistence:
     around : int
         Neighbourhood of the steady level's spread (``around`` of :func:`persistence`; 1
         for baselines learnt before it).
+    floor : float
+        Neither threshold is below this: the steady level that the cells of held-out
+        normal windows pass in a share ``alpha`` of cells and windows (see
+        :func:`calibrate_persistence`); 0 for baselines learnt before it.
     """
 
     window: int
@@ -505,6 +509,7 @@ class Persistence:
     start_threshold: Threshold | None = None
     start_scores: np.ndarray | None = field(default=None, repr=False)
     around: int = 1
+    floor: float = 0.0
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None
             ) -> PersistenceResult:
@@ -536,7 +541,7 @@ class Persistence:
         out = {"window": self.window, "max_gap": self.max_gap,
                "transient_share": self.transient_share, "busy": self.busy,
                "threshold": self.threshold.to_dict(), "past": self.past,
-               "robust": self.robust, "around": self.around}
+               "robust": self.robust, "around": self.around, "floor": self.floor}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -551,7 +556,7 @@ class Persistence:
                    bool(meta["busy"]), int(meta.get("past", 0)), _robust(meta.get("robust", False)),
                    Threshold.from_dict(start) if start else None,
                    None if start_scores is None else np.asarray(start_scores, np.float64),
-                   int(meta.get("around", 1)))
+                   int(meta.get("around", 1)), float(meta.get("floor", 0.0)))
 
 
 def _robust(saved) -> bool | str:
@@ -587,7 +592,10 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     Returns
     -------
     Persistence
-        The conformal threshold of the persistence scores of frames with a full window. A
+        The conformal threshold of the persistence scores of frames with a full window,
+        raised to ``floor`` when below it: the (1 - ``alpha``) quantile of the steady levels
+        of every cell of every held-out window (a thing left must stand above what normal
+        cells steadily show, not only above the largest step of a few dozen windows). A
         frame holds a large short-lived anomaly when its single-frame score is above
         ``LARGE`` x the first quartile of the single-frame scores (an order of magnitude above
         the quietest quarter of the frames; this assumes passers-by leave at least a quarter
@@ -625,12 +633,27 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
                          f"{max_gap:.0f} s of each other")
     starts = step.levels[step.filled]
     stepped = step.filled & step.stepped
+    # A cell counts as unusual now only above the steady level that normal cells pass in
+    # alpha of cells and windows (the reference is never below 0, so a step above it leaves
+    # its cell there): a step smaller than that, though larger than every step of the few
+    # held-out windows, is within what normal cells show.
+    levels = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, robust="window",
+                         around=AROUND)
+    floor = float(np.quantile(levels.maps[levels.filled], 1.0 - alpha))
     if not stepped.any():
-        return Persistence(window, max_gap, conformal_threshold(starts, alpha), starts, share,
-                           busy, 0, "window", around=AROUND)
-    return Persistence(window, max_gap, conformal_threshold(step.scores[stepped], alpha),
+        return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
+                           starts, share, busy, 0, "window", around=AROUND, floor=floor)
+    return Persistence(window, max_gap,
+                       _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, window, "window",
-                       conformal_threshold(starts, alpha), starts, AROUND)
+                       _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
+                       floor)
+
+
+def _floored(threshold: Threshold, floor: float) -> Threshold:
+    """``threshold`` raised to ``floor`` when below it (a higher threshold keeps the rate it
+    guarantees)."""
+    return replace(threshold, value=max(threshold.value, floor))
 
 
 def clearly_busy(transient: int, frames: int, level: float = 0.05) -> bool:

@@ -501,7 +501,9 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
                  + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f}"
                     + (f" on the change from the {p.past} frames before, "
                        f"{p.start_threshold.value:.3f} for the first frames of a run"
-                       if p.start_threshold is not None else "") + ")"
+                       if p.start_threshold is not None else "")
+                    + f"; at least {p.floor:.3f}, the steady level {alpha:.3g} of normal "
+                      f"cells pass)"
                     if on else ": single-frame flags"))
     return p
 
