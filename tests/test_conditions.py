@@ -29,6 +29,7 @@ from inspector.core.image import (
     phase_spectrum,
     refine_shift,
     robust_gain_offset,
+    robust_gains,
     sharpness,
     shift_terms,
     trusted,
@@ -163,6 +164,21 @@ def test_robust_gain_offset_ignores_a_local_incident():
     frame[40:90, 40:90] = 255.0 - frame[40:90, 40:90] * 0.2   # a bright object
     gain, offset = robust_gain_offset(np.clip(frame, 0, 255), ref)
     assert gain == pytest.approx(0.6, rel=0.05) and offset == pytest.approx(20.0, abs=4.0)
+
+
+def test_robust_gains_leave_out_pixels_with_a_clipped_channel():
+    # scikit-image's coffee made 1.6 times brighter, clipped at 255 as a sensor clips: its red
+    # saucer and cup clip in red only (two thirds of the view), so their grey stays below
+    # the clip yet reads too dark; the gain applied (1 / 1.6) is the reference
+    photo = cv2.resize(skdata.coffee(), (320, 214), interpolation=cv2.INTER_AREA)
+    ref = grey(photo[None])[0]
+    bright = np.clip(photo.astype(np.float32) * 1.6, 0, 255).astype(np.uint8)
+    g = grey(bright[None])
+    near = cv2.dilate((bright.max(axis=2) >= 250).astype(np.uint8), np.ones((3, 3), np.uint8))
+    biased, _ = robust_gains(g, ref)[0]
+    gain, offset = robust_gains(g, ref, bounded=near[None] > 0)[0]
+    assert abs(biased - 1 / 1.6) > 0.05
+    assert gain == pytest.approx(1 / 1.6, rel=0.01) and abs(offset) < 2.0
 
 
 def test_sharpness_drops_when_out_of_focus():
@@ -373,17 +389,22 @@ def test_clipped_pixel_masks_agree_with_the_brightest_channel(monkeypatch):
     frames[1][80:90, 20:30] = (100, 250, 100)  # at the limit: clipped
     frames[1][80:90, 40:50] = (249, 249, 249)  # just below it: not clipped
     frames[2][:, :4] = 0                       # black, floor 0 under the glare test below
-    got = c.prepare(np.stack(frames)).images
+    rec = c.prepare(np.stack(frames))
+    got = rec.images
     ref_rgb = c.reference_rgb_
     brightest_ref = ref_rgb.max(axis=2)
     glare = cv2.dilate((brightest_ref >= 250).astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
     floor = (brightest_ref.astype(np.float32) * 0.9).astype(np.uint8)
-    for frame, out in zip(frames, got):
+    for frame, out, (gain, offset) in zip(frames, got, rec.gains):
         # the normalised frame before any clip handling
         o = c._prepare(frame[None], c.reference_, ref_rgb, restore=False).images[0]
         clipped = frame.max(axis=2) >= 250
         near = cv2.dilate(clipped.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
         o[near] = np.maximum(o, ref_rgb)[near]
+        # channels the frame's exposure saturates where the reference is, within 10 %
+        expected = ref_rgb >= 250 * gain + offset
+        lift = expected & (o >= 0.9 * ref_rgb.astype(np.float32))
+        o[lift] = np.maximum(o, ref_rgb)[lift]
         o[glare & (o.max(axis=2) >= floor)] = ref_rgb[glare & (o.max(axis=2) >= floor)]
         np.testing.assert_array_equal(out, o)
 

@@ -20,6 +20,13 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
   another colour over part of the view (floodlights coming on) is taken out as well.
   The chroma of every prepared frame is smoothed (:func:`smooth_chroma`): compression
   rounds its fine detail anew at each exposure.
+* Clipping: a pixel with a colour channel clipped white (and its neighbours) only bounds
+  its light. It is left out of the gain fit (its grey reads too dark) and, channel by
+  channel, out of the brightness fields (its unclipped channels still count where the
+  reference says this exposure saturates the clipped ones), and is raised to the
+  reference where that is brighter. A channel the reference says this exposure saturates
+  is raised to the reference too when it is at most :data:`GLARE_TOLERANCE` darker: a
+  working pixel averages several sensor pixels, and fine bright detail clips below it.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
@@ -150,6 +157,52 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
     return cv2.cvtColor(ycc, cv2.COLOR_YCrCb2RGB)
 
 
+def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
+                expected: np.ndarray | None) -> list[np.ndarray | None]:
+    """Pixels whose light each colour channel's brightness field may compare, one (H, W)
+    bool per channel (None: all).
+
+    A pixel with a clipped channel (``near``) only bounds its light and is left out of
+    every channel's field, unless each channel it clipped is one the reference says this
+    exposure saturates there (``expected``): the clip is then the exposure's, and its other
+    channels are measured light, kept for their own fields (a red saucer that clips in red
+    still tells green and blue how bright it is). A channel expected to saturate is left out
+    of its own field wherever it is.
+
+    Parameters
+    ----------
+    near : ndarray, shape (H, W), uint8, or None
+        255 where a channel is clipped or next to a clipped one.
+    channels : ndarray, shape (H, W, 3), uint8, or None
+        The same, channel by channel.
+    expected : ndarray, shape (H, W, 3), bool, or None
+        Channels the reference says this frame's exposure saturates.
+    """
+    if expected is None:
+        seen = None if near is None else near == 0
+        return [seen] * 3
+    keep = [~expected[..., c] for c in range(3)]
+    if near is not None:
+        clipped = channels > 0
+        explained = ~(clipped & ~expected).any(axis=2)  # every clipped channel expected
+        use = (near == 0) | explained
+        keep = [k & use & ~clipped[..., c] for c, k in enumerate(keep)]
+    return keep
+
+
+def _fields(img: np.ndarray, ref_rgb: np.ndarray, sigma: float, gain: float, offset: float,
+            kept: list[np.ndarray | None]) -> np.ndarray:
+    """The brightness field of each colour channel (:func:`brightness_field`), (H, W, 3)
+    float32, each channel comparing its own ``kept`` pixels (:func:`_field_keep`); the
+    three at once when they compare the same ones."""
+    if kept[0] is kept[1] is kept[2]:
+        return brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain, keep=kept[0])
+    return cv2.merge([brightness_field(np.ascontiguousarray(img[..., c]),
+                                       np.ascontiguousarray(ref_rgb[..., c]), sigma, gain,
+                                       offset, scale=gain, keep=kept[c])
+                      for c in range(3)])
+
+
 class Conditions(Estimator):
     """A camera's normal conditions, learnt with its baseline, applied to every frame.
 
@@ -198,6 +251,8 @@ class Conditions(Estimator):
         self.limits = limits
         #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
         self._ref_terms: tuple | None = None
+        #: (colour reference, its brightest level), made once.
+        self._top: tuple | None = None
         #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
 
@@ -225,7 +280,7 @@ class Conditions(Estimator):
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = self._spectrum = None
+        self._ref_terms = self._spectrum = self._top = None
         if not len(images):
             return self
         ref = np.median(grey(images), axis=0)
@@ -351,31 +406,30 @@ class Conditions(Estimator):
             fitted = g_all.copy()
             idx = list(moved)
             fitted[idx] = aligned[idx]
+        # clipped white pixels of each frame as captured (255 where a channel is >= 250),
+        # moved with the frame (moving back interpolates, which takes a thin clipped line
+        # below the clip level), then with their neighbours; they only bound their light
+        nears = [self._near_clipped(img, moved.get(i),
+                                    None if was_clipped is None else was_clipped[i])
+                 for i, img in enumerate(images)]
         if self.lighting != "off" or self.health:
-            gains = robust_gains(fitted, ref, keep)
+            bounded = None
+            if any(m is not None for m, _ in nears):
+                bounded = np.zeros(images.shape[:3], bool)
+                for i, (m, _) in enumerate(nears):
+                    if m is not None:
+                        bounded[i] = m > 0
+            gains = robust_gains(fitted, ref, keep, bounded)
         out = np.empty_like(images)
         clipped: np.ndarray | None = None
         sigma = max(images.shape[1:3]) / 8.0
         for i, img in enumerate(images):
             fill = None
-            # clipped white pixels of the frame as captured (255 where a channel is >= 250),
-            # moved with the frame (moving back interpolates, which takes a thin clipped
-            # line below the clip level), then with their neighbours
-            near = None
-            if self.lighting != "off":
-                unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
-                if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
-                    near = cv2.bitwise_not(unclipped)
+            near, channels = nears[i]
             if i in moved:
                 dx, dy = moved[i]
                 img = shift_images(img, -dx, -dy)
                 fill = self._uncovered(dx, dy, img.shape[:2])
-                if near is not None:
-                    near = cv2.compare(shift_images(near, -dx, -dy), 0, cv2.CMP_GT)
-            if near is not None:
-                near = cv2.dilate(near, _NEAR)
-            if was_clipped is not None and self.lighting != "off":
-                near = was_clipped[i] if near is None else cv2.max(near, was_clipped[i])
             if near is not None:
                 if clipped is None:
                     clipped = np.zeros(images.shape[:3], np.uint8)
@@ -387,6 +441,8 @@ class Conditions(Estimator):
                 o = img.copy()
             else:
                 gain, offset = gains[i]
+                expected = (None if ref_rgb is None else
+                            self._saturating(ref_rgb, gain, offset))
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
                     # the field compares the pixels the frame did not clip: a clipped one
@@ -396,8 +452,9 @@ class Conditions(Estimator):
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
                     seen = None if near is None else near == 0
-                    field = (brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain,
-                                              keep=seen) if ref_rgb is not None else
+                    kept = _field_keep(near, channels, expected)
+                    field = (_fields(img, ref_rgb, sigma, gain, offset, kept)
+                             if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
                                               channels=3, keep=seen))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
@@ -407,6 +464,12 @@ class Conditions(Estimator):
                 if ref_rgb is not None and restore:
                     if near is not None:
                         cv2.copyTo(cv2.max(o, ref_rgb), near, o)
+                    if expected is not None:
+                        # a channel this exposure saturates, a little darker than the
+                        # reference: saturated below the working resolution (a working
+                        # pixel averages several sensor pixels, some clipped)
+                        raise_ = expected & (o >= ref_rgb * np.float32(1.0 - GLARE_TOLERANCE))
+                        o = np.where(raise_, np.maximum(o, ref_rgb), o)
                     glare, below = self._reference_glare(ref_rgb)
                     if glare is not None:  # glare pixels whose brightest channel is >= floor
                         cv2.copyTo(ref_rgb, cv2.bitwise_and(
@@ -415,6 +478,53 @@ class Conditions(Estimator):
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
             out[i] = smooth_chroma(o)
         return Prepared(out, g_all, aligned, shifts, gains, clipped)
+
+    def _saturating(self, ref_rgb: np.ndarray, gain: float, offset: float
+                    ) -> np.ndarray | None:
+        """Channels of each pixel that a frame of this ``gain`` and ``offset`` (as fitted by
+        :func:`robust_gains`, ``reference ~ gain * frame + offset``) would clip white if it
+        showed the reference: the reference's level there is at least what 250 in the
+        frame becomes, (H, W, 3) bool; None where there are none (no reference level
+        reaches it)."""
+        level = 250.0 * gain + offset
+        _, top = self._brightest(ref_rgb)
+        if level > top:
+            return None
+        return ref_rgb >= np.float32(level)
+
+    def _brightest(self, ref_rgb: np.ndarray) -> tuple[np.ndarray, float]:
+        """The colour reference and its brightest level, computed once per reference."""
+        if self._top is None or self._top[0] is not ref_rgb:
+            self._top = (ref_rgb, float(ref_rgb.max()))
+        return self._top
+
+    def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
+                      was: np.ndarray | None) -> tuple[np.ndarray | None, np.ndarray | None]:
+        """Pixels of one frame (H, W, 3) uint8 that only bound their light, as aligned.
+
+        Returns ``(near, channels)``: ``near`` (H, W) uint8 is 255 where a channel is
+        clipped white (>= 250) there or next to it, with ``was`` (the clipped pixels of the
+        frame a copy was made from) added; ``channels`` (H, W, 3) uint8 the same channel
+        by channel (``was`` in every channel: which of its channels clipped is not known).
+        (None, None) when there are none or lighting is off. ``shift``: the (dx, dy) the
+        frame is moved back by, if any.
+        """
+        if self.lighting == "off":
+            return None, None
+        near = channels = None
+        unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
+        if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
+            channels = cv2.compare(img, _UNCLIPPED, cv2.CMP_GT)
+            if shift is not None:
+                channels = cv2.compare(shift_images(channels, -shift[0], -shift[1]), 0,
+                                       cv2.CMP_GT)
+            channels = cv2.dilate(channels, _NEAR)
+            near = _channel_max(channels)
+        if was is not None:
+            near = was if near is None else cv2.max(near, was)
+            every = cv2.merge([was] * 3)
+            channels = every if channels is None else cv2.max(channels, every)
+        return near, channels
 
     def _uncovered(self, dx: float, dy: float, shape: tuple[int, int]) -> np.ndarray:
         """Pixels of a frame moved back by (dx, dy) that its content no longer covers: the

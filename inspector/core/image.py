@@ -86,7 +86,8 @@ def _masked_quantiles(v: np.ndarray, ok: np.ndarray, qs) -> np.ndarray:
 
 
 def robust_gains(frames: np.ndarray, reference: np.ndarray,
-                 keep: np.ndarray | None = None) -> np.ndarray:
+                 keep: np.ndarray | None = None,
+                 bounded: np.ndarray | None = None) -> np.ndarray:
     """Fit ``reference ~ gain * frame + offset`` robustly, for each of a stack of frames.
 
     Starts from matching the 10th-90th percentile range and the medians (unmoved by a
@@ -101,6 +102,10 @@ def robust_gains(frames: np.ndarray, reference: np.ndarray,
     reference : ndarray, shape (H, W), float
     keep : ndarray, shape (H, W), bool, optional
         Pixels that may be used (e.g. outside masks and text overlays).
+    bounded : ndarray, shape (n, H, W), bool, optional
+        Pixels of each frame whose grey only bounds its light (a colour channel clipped
+        there, or next to it): left out like grey clipped black or white, unless fewer than
+        16 of the frame's sampled pixels would be left.
 
     Returns
     -------
@@ -118,6 +123,10 @@ def robust_gains(frames: np.ndarray, reference: np.ndarray,
     ok = trusted(x)
     if keep is not None:
         ok &= np.asarray(keep)[::step, ::step].ravel()[None]
+    if bounded is not None:
+        unbounded = ok & ~np.asarray(bounded)[:, ::step, ::step].reshape(n, -1)
+        enough = unbounded.sum(axis=1) >= 16
+        ok[enough] = unbounded[enough]
     out = np.tile([1.0, 0.0], (n, 1))
     cnt = ok.sum(axis=1)
     mx = np.where(ok, x, 0.0).sum(axis=1) / np.maximum(cnt, 1)
