@@ -19,6 +19,7 @@ from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
 from inspector.core.conditions import Conditions, smooth_chroma
 from inspector.core.image import (
     brightness_field,
+    clip_loss,
     exposure_copy,
     grey,
     noise_bank,
@@ -32,6 +33,7 @@ from inspector.core.image import (
     robust_gains,
     sharpness,
     shift_terms,
+    subpixel_levels,
     trusted,
 )
 from inspector.core.regimes import appearance, find_regimes
@@ -179,6 +181,25 @@ def test_robust_gains_leave_out_pixels_with_a_clipped_channel():
     gain, offset = robust_gains(g, ref, bounded=near[None] > 0)[0]
     assert abs(biased - 1 / 1.6) > 0.05
     assert gain == pytest.approx(1 / 1.6, rel=0.01) and abs(offset) < 2.0
+
+
+def test_clip_loss_predicts_clipping_finer_than_a_working_pixel():
+    # scikit-image's coffee at 4 x the working size made 1.6 x brighter and clipped at 255
+    # there, as a sensor clips, then area-reduced by OpenCV: the working pixels below the
+    # clip read what the censored mean over their finer pixels predicts, not 1.6 x their
+    # value at the normal exposure
+    big = cv2.resize(skdata.coffee(), (640, 424), interpolation=cv2.INTER_AREA)
+    size = (160, 106)
+    spread = subpixel_levels([big], size)
+    work = cv2.resize(big, size, interpolation=cv2.INTER_AREA).astype(np.float32)
+    real = cv2.resize(np.clip(big.astype(np.float32) * 1.6, 0, 255), size,
+                      interpolation=cv2.INTER_AREA)
+    naive = np.minimum(work * 1.6, 255)
+    predicted = work * 1.6 - clip_loss(work * 1.6, spread * 1.6)
+    below = real < 250
+    assert np.abs(naive - real)[below].max() > 40
+    assert np.abs(predicted - real)[below].max() < 6
+    assert np.abs(predicted - real)[below].mean() < 0.5 * np.abs(naive - real)[below].mean()
 
 
 def test_sharpness_drops_when_out_of_focus():
@@ -389,22 +410,17 @@ def test_clipped_pixel_masks_agree_with_the_brightest_channel(monkeypatch):
     frames[1][80:90, 20:30] = (100, 250, 100)  # at the limit: clipped
     frames[1][80:90, 40:50] = (249, 249, 249)  # just below it: not clipped
     frames[2][:, :4] = 0                       # black, floor 0 under the glare test below
-    rec = c.prepare(np.stack(frames))
-    got = rec.images
+    got = c.prepare(np.stack(frames)).images
     ref_rgb = c.reference_rgb_
     brightest_ref = ref_rgb.max(axis=2)
     glare = cv2.dilate((brightest_ref >= 250).astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
     floor = (brightest_ref.astype(np.float32) * 0.9).astype(np.uint8)
-    for frame, out, (gain, offset) in zip(frames, got, rec.gains):
+    for frame, out in zip(frames, got):
         # the normalised frame before any clip handling
         o = c._prepare(frame[None], c.reference_, ref_rgb, restore=False).images[0]
         clipped = frame.max(axis=2) >= 250
         near = cv2.dilate(clipped.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
         o[near] = np.maximum(o, ref_rgb)[near]
-        # channels the frame's exposure saturates where the reference is, within 10 %
-        expected = ref_rgb >= 250 * gain + offset
-        lift = expected & (o >= 0.9 * ref_rgb.astype(np.float32))
-        o[lift] = np.maximum(o, ref_rgb)[lift]
         o[glare & (o.max(axis=2) >= floor)] = ref_rgb[glare & (o.max(axis=2) >= floor)]
         np.testing.assert_array_equal(out, o)
 

@@ -24,9 +24,11 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
   its light. It is left out of the gain fit (its grey reads too dark) and, channel by
   channel, out of the brightness fields (its unclipped channels still count where the
   reference says this exposure saturates the clipped ones), and is raised to the
-  reference where that is brighter. A channel the reference says this exposure saturates
-  is raised to the reference too when it is at most :data:`GLARE_TOLERANCE` darker: a
-  working pixel averages several sensor pixels, and fine bright detail clips below it.
+  reference where that is brighter. A frame brighter than the reference also clips finer
+  than its working pixels (a sunlit tiled roof whose working pixels stay below the clip
+  level): what that costs each pixel is predicted from the reference and how light
+  spreads within the pixel, measured at learn time on frames as exported (a censored
+  mean, Tobin 1958), and given back.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
@@ -50,6 +52,7 @@ from inspector.core.image import (
     cell_contrast,
     cell_correlation,
     cell_detail,
+    clip_loss,
     correlation,
     grey,
     percentile_rows,
@@ -238,6 +241,8 @@ class Conditions(Estimator):
     gain_max_ : float or None
         Largest gain (:attr:`Prepared.gains`) of the normal frames as captured (see
         :meth:`noise_scale`); None when unknown.
+    fine_ : ndarray, shape (H, W, 3, levels), float16, or None
+        How light spreads within each working pixel (see :meth:`fit`).
     """
 
     def __init__(self, lighting: str = "local", register: bool = True, max_shift: float = 8.0,
@@ -253,11 +258,14 @@ class Conditions(Estimator):
         self._ref_terms: tuple | None = None
         #: (colour reference, its brightest level), made once.
         self._top: tuple | None = None
+        #: (colour reference, it as float32, the spread as float32, its top level), made once.
+        self._fine: tuple | None = None
         #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
 
     # -- learning ------------------------------------------------------------------------
-    def fit(self, images: np.ndarray, ignore: np.ndarray | None = None) -> "Conditions":
+    def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
+            fine: np.ndarray | None = None) -> "Conditions":
         """Learn the reference and the health limits from a sample of normal frames.
 
         Limits start from ``limits`` (``dark``: 99th percentile of grey below which a
@@ -274,13 +282,18 @@ class Conditions(Estimator):
         images : ndarray, shape (n, H, W, 3), uint8
             Normal frames in time order (none: nothing is learnt, frames pass through).
         ignore : ndarray, shape (H, W), bool, optional
+        fine : ndarray, shape (H, W, 3, levels), float, optional
+            :func:`~inspector.core.image.subpixel_levels` of the camera's frames as
+            exported: frames brighter than the reference then get back the light their
+            finer pixels lost to clipping (see :meth:`prepare`).
         """
         images = np.asarray(images)
         self.ignore_ = ignore
+        self.fine_ = None if fine is None else np.asarray(fine, np.float16)
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = self._spectrum = self._top = None
+        self._ref_terms = self._spectrum = self._top = self._fine = None
         if not len(images):
             return self
         ref = np.median(grey(images), axis=0)
@@ -443,6 +456,9 @@ class Conditions(Estimator):
                 gain, offset = gains[i]
                 expected = (None if ref_rgb is None else
                             self._saturating(ref_rgb, gain, offset))
+                lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near)
+                if lost is not None:
+                    img = cv2.add(img, lost, dtype=cv2.CV_32F)
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
                     # the field compares the pixels the frame did not clip: a clipped one
@@ -464,12 +480,6 @@ class Conditions(Estimator):
                 if ref_rgb is not None and restore:
                     if near is not None:
                         cv2.copyTo(cv2.max(o, ref_rgb), near, o)
-                    if expected is not None:
-                        # a channel this exposure saturates, a little darker than the
-                        # reference: saturated below the working resolution (a working
-                        # pixel averages several sensor pixels, some clipped)
-                        raise_ = expected & (o >= ref_rgb * np.float32(1.0 - GLARE_TOLERANCE))
-                        o = np.where(raise_, np.maximum(o, ref_rgb), o)
                     glare, below = self._reference_glare(ref_rgb)
                     if glare is not None:  # glare pixels whose brightest channel is >= floor
                         cv2.copyTo(ref_rgb, cv2.bitwise_and(
@@ -497,6 +507,45 @@ class Conditions(Estimator):
         if self._top is None or self._top[0] is not ref_rgb:
             self._top = (ref_rgb, float(ref_rgb.max()))
         return self._top
+
+    def _lost(self, ref_rgb: np.ndarray, gain: float, offset: float,
+              near: np.ndarray | None) -> np.ndarray | None:
+        """Light a frame of this ``gain`` and ``offset`` is expected to have lost to
+        clipping finer than its working pixels, in its own levels, (H, W, 3) float32; None
+        without :attr:`fine_` or where it is nowhere more than a hundredth of a level.
+
+        Had the frame shown the reference, a working pixel would average finer pixels
+        ``(reference + spread - offset) / gain`` (``spread`` from :attr:`fine_`, measured
+        at about the reference's exposure), each clipped at 255, and read lower by their
+        :func:`~inspector.core.image.clip_loss`; the reference itself lost that at its
+        own exposure (gain 1). A brighter frame loses more where detail is fine and bright,
+        and gets the difference back here, so that it reads as the reference would; a
+        frame at the reference's exposure gets nothing. Pixels clipped or next to a clipped
+        one (``near``) get nothing either: they are bounded, and raised to the reference
+        afterwards.
+        """
+        if self.fine_ is None:
+            return None
+        if self._fine is None or self._fine[0] is not ref_rgb:
+            r = ref_rgb.astype(np.float32)
+            spread = np.asarray(self.fine_, np.float32)
+            self._fine = (ref_rgb, r, spread, float((r + spread[..., -1]).max()),
+                          clip_loss(r, spread))
+        _, r, spread, top, own = self._fine
+        if (top - offset) / gain < 255.0:  # no finer pixel reaches the clip
+            return None
+        g = np.float32(gain)
+        mean = (r - np.float32(offset)) / g
+        reach = mean + spread[..., -1] / g >= np.float32(255.0)
+        if near is not None:
+            reach &= (near == 0)[..., None]
+        if not reach.any():
+            return None
+        lost = np.zeros(r.shape, np.float32)
+        # what this exposure loses beyond what the reference's own exposure lost
+        lost[reach] = np.maximum(clip_loss(mean[reach], spread[reach] / g) - own[reach] / g,
+                                 0.0)
+        return lost if float(lost.max()) > 0.01 else None
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
                       was: np.ndarray | None) -> tuple[np.ndarray | None, np.ndarray | None]:
@@ -701,7 +750,7 @@ class Conditions(Estimator):
 
     # -- persistence ---------------------------------------------------------------------
     #: Learned arrays as saved (``conditions.npz`` keys; attribute = key + "_").
-    _ARRAYS = ("reference", "reference_rgb", "ignore", "ref_cells", "ref_detail")
+    _ARRAYS = ("reference", "reference_rgb", "ignore", "ref_cells", "ref_detail", "fine")
 
     def to_json(self) -> dict[str, Any]:
         """Settings and the health limits in force, JSON-ready (``limits`` are the learnt

@@ -612,6 +612,82 @@ def percentile_rows(x: np.ndarray, q: float) -> np.ndarray:
     return np.where(t >= 0.5, b - d * (1 - t), a + d * t).astype(x.dtype, copy=False)
 
 
+#: Levels the light within a working pixel is summarised by (:func:`subpixel_levels`).
+FINE_LEVELS = 8
+
+
+def subpixel_levels(frames, size: tuple[int, int], levels: int = FINE_LEVELS
+                    ) -> np.ndarray | None:
+    """How light spreads within each working pixel: the pixels of larger frames that area
+    reduction averages into it, sorted, at ``levels`` evenly spaced quantiles (the middle
+    of each of ``levels`` equal shares), less their mean; per colour channel, the median
+    over the frames.
+
+    A working pixel whose mean is below the clip level can still hold clipped pixels when
+    its detail is fine and bright (roof tiles in sunlight, foliage): what it loses to the
+    clip depends on this spread (:func:`clip_loss`), which the working size no longer
+    shows.
+
+    Parameters
+    ----------
+    frames : iterable of ndarray, shape (h, w, 3), uint8
+        Frames of one camera, at least twice the working size each way (exported frames).
+    size : (int, int)
+        Working (width, height).
+    levels : int
+
+    Returns
+    -------
+    ndarray, shape (height, width, 3, levels), float32, ascending along the last axis;
+    None without frames or when they are less than twice the working size.
+    """
+    w, h = size
+    pos = (np.arange(levels) + 0.5) / levels
+    found = []
+    for f in frames:
+        f = np.asarray(f)
+        k = min(f.shape[1] // w, f.shape[0] // h)
+        if k < 2:
+            return None
+        x = cv2.resize(f, (k * w, k * h), interpolation=cv2.INTER_AREA).astype(np.float32)
+        block = x.reshape(h, k, w, k, 3).transpose(0, 2, 4, 1, 3).reshape(h, w, 3, k * k)
+        block.sort(axis=-1)
+        at = pos * (k * k) - 0.5  # the middle of each share, between sorted pixels
+        lo = np.clip(np.floor(at).astype(int), 0, k * k - 1)
+        hi = np.minimum(lo + 1, k * k - 1)
+        t = np.clip(at - lo, 0.0, 1.0).astype(np.float32)
+        q = block[..., lo] * (1 - t) + block[..., hi] * t
+        found.append(q - block.mean(axis=-1, keepdims=True))
+    if not found:
+        return None
+    return np.median(np.stack(found), axis=0).astype(np.float32)
+
+
+def clip_loss(mean: np.ndarray, spread: np.ndarray, level: float = 255.0) -> np.ndarray:
+    """Light a pixel loses when the finer pixels it averages are clipped at ``level``: the
+    mean of ``max(mean + d - level, 0)`` over its spread ``d``.
+
+    The mean of a clipped variable ``min(X, level)`` is the mean of ``X`` less this
+    (censored mean; Tobin 1958, "Estimation of relationships for limited dependent
+    variables", Econometrica 26(1)), here with ``X`` taking the pixel's quantiles of
+    :func:`subpixel_levels` with equal weight.
+
+    Parameters
+    ----------
+    mean : ndarray, shape (...), float
+        The pixels' unclipped means.
+    spread : ndarray, shape (..., levels), float
+        Their quantiles less their means, in the same units.
+    level : float
+
+    Returns
+    -------
+    ndarray, shape (...), float32, >= 0
+    """
+    x = np.asarray(mean, np.float32)[..., None] + np.asarray(spread, np.float32)
+    return np.maximum(x - np.float32(level), 0.0).mean(axis=-1).astype(np.float32)
+
+
 def noise_sigma(g: np.ndarray) -> float:
     """Standard deviation of white noise in an image.
 

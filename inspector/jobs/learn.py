@@ -34,7 +34,7 @@ from inspector.core.calibration import (
 )
 from inspector.core.conditions import Conditions
 from inspector.core.features import rasterize_mask
-from inspector.core.image import exposure_copy, grey, noise_bank
+from inspector.core.image import exposure_copy, grey, noise_bank, subpixel_levels
 from inspector.core.models import model_class
 from inspector.core.persistence import (
     MAX_SPAN,
@@ -69,6 +69,9 @@ PREPARE_PART = 16
 PREPARE_WORKERS = 2
 #: Long side at which burned-in text is looked for (small text vanishes at working size).
 TEXT_LONG_SIDE = 640
+#: Frames of the condition sample decoded as exported to measure how light spreads within
+#: each working pixel (:func:`inspector.core.image.subpixel_levels`).
+FINE_SAMPLE = 8
 
 
 class FileSource:
@@ -449,7 +452,16 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
               "frozen": cs.frozen_difference}
     conditions = Conditions(lighting=cs.lighting, register=cs.register,
                             max_shift=cs.max_shift * max(w, h), health=cs.health, limits=limits)
-    return conditions.fit(images, mask), boxes, mask, masking
+    fine = None
+    if cs.lighting != "off" and sw >= 2 * w and sh >= 2 * h and len(sample):
+        # a few sample frames as exported: how light spreads within each working pixel
+        picks = sample[np.unique(np.linspace(0, len(sample) - 1, min(FINE_SAMPLE, len(sample)))
+                                 .round().astype(int))]
+        exported = FileSource([source.files[i] for i in picks], np.zeros(len(picks), int),
+                              (sw, sh), source.source_size, source.read_args, source.camera)
+        fine = subpixel_levels((f for _, b in exported.batches(range(len(picks)), 2)
+                                for f in b), (w, h))
+    return conditions.fit(images, mask, fine), boxes, mask, masking
 
 
 def _masked_note(masking: dict) -> str:
