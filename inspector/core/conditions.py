@@ -456,7 +456,8 @@ class Conditions(Estimator):
                 gain, offset = gains[i]
                 expected = (None if ref_rgb is None else
                             self._saturating(ref_rgb, gain, offset))
-                lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near)
+                lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near,
+                                                               img)
                 if lost is not None:
                     img = cv2.add(img, lost, dtype=cv2.CV_32F)
                 if self.lighting == "local":
@@ -509,7 +510,7 @@ class Conditions(Estimator):
         return self._top
 
     def _lost(self, ref_rgb: np.ndarray, gain: float, offset: float,
-              near: np.ndarray | None) -> np.ndarray | None:
+              near: np.ndarray | None, img: np.ndarray | None = None) -> np.ndarray | None:
         """Light a frame of this ``gain`` and ``offset`` is expected to have lost to
         clipping finer than its working pixels, in its own levels, (H, W, 3) float32; None
         without :attr:`fine_` or where it is nowhere more than a hundredth of a level.
@@ -522,7 +523,9 @@ class Conditions(Estimator):
         and gets the difference back here, so that it reads as the reference would; a
         frame at the reference's exposure gets nothing. Pixels clipped or next to a clipped
         one (``near``) get nothing either: they are bounded, and raised to the reference
-        afterwards.
+        afterwards; nor does a channel of ``img`` (the frame, (H, W, 3), as aligned) darker
+        than the pixel's own darkest finer level would be: that is not this clip but
+        something else (a dark object), left as seen.
         """
         if self.fine_ is None:
             return None
@@ -539,6 +542,8 @@ class Conditions(Estimator):
         reach = mean + spread[..., -1] / g >= np.float32(255.0)
         if near is not None:
             reach &= (near == 0)[..., None]
+        if img is not None:  # darker than its own darkest finer level: not this clip
+            reach &= img >= mean + spread[..., 0] / g
         if not reach.any():
             return None
         lost = np.zeros(r.shape, np.float32)
