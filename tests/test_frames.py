@@ -178,3 +178,24 @@ def test_batched_iterator_keeps_input_order_and_runs_the_work_per_batch(tmp_path
     # the work's result is per batch, in the order of the batch's frames (grey levels 30 i)
     got = np.concatenate([b.result for b in batches])
     np.testing.assert_allclose(got, [30.0 * i for i in range(7) if i != 3])
+
+
+def test_learn_counts_each_frame_note_once(tmp_path, small_config):
+    # Two of twelve normal frames exported at twice the size (same aspect, resized): the
+    # learn warning counts two, though every frame is also in the conditions sample.
+    from conftest import noisy_copies, write_frames
+
+    from inspector.config import load_config
+    from inspector.jobs.learn import learn_camera
+    from inspector.storage.frames import discover
+    from inspector.storage.store import Store
+
+    rng = np.random.default_rng(1)
+    base = rng.integers(40, 200, (64, 96, 3)).astype(np.float32)
+    frames = list(noisy_copies(base, 12, rng))
+    frames[3] = cv2.resize(frames[3], (192, 128))
+    frames[7] = cv2.resize(frames[7], (192, 128))
+    write_frames(tmp_path / "normal", frames)
+    files, _ = discover(tmp_path / "normal", camera="cam")
+    report = learn_camera(files, load_config(small_config).camera("cam"), Store(tmp_path / "s"))
+    assert [w for w in report.warnings if "resized" in w][0].startswith("2 frames: ")

@@ -406,7 +406,8 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
     cs = cfg.conditions
     n = len(source)
     sample = np.unique(np.linspace(0, n - 1, min(CONDITION_SAMPLE, n)).round().astype(int))
-    images = np.concatenate([b for _, b in source.batches(sample)] or
+    # (a copy of the source: the main pass records the sample frames' skips and notes)
+    images = np.concatenate([b for _, b in source.spawn().batches(sample)] or
                             [np.zeros((0, source.size[1], source.size[0], 3), np.uint8)])
     w, h = source.size
     sw, sh = source.source_size
