@@ -532,24 +532,37 @@ class Conditions(Estimator):
         if self._fine is None or self._fine[0] is not ref_rgb:
             r = ref_rgb.astype(np.float32)
             spread = np.asarray(self.fine_, np.float32)
-            self._fine = (ref_rgb, r, spread, float((r + spread[..., -1]).max()),
-                          clip_loss(r, spread))
-        _, r, spread, top, own = self._fine
-        if (top - offset) / gain < 255.0:  # no finer pixel reaches the clip
+            # candidates by the highest level of their finer pixels, in falling order: a
+            # frame's loss is computed on the few that can reach the clip, not on all
+            high = (r + spread[..., -1]).ravel()
+            order = np.argsort(-high, kind="stable")
+            self._fine = (ref_rgb, r.reshape(-1), spread.reshape(-1, spread.shape[-1]),
+                          -high[order], order, clip_loss(r, spread).reshape(-1))
+        _, r, spread, neg_high, order, own = self._fine
+        g, o = np.float32(gain), np.float32(offset)
+        # a frame whose 255 reads at least 255 in the reference's levels loses no more than
+        # the reference did (level by level, max(x - 255 g - offset, 0) <= max(x - 255, 0))
+        if 255.0 * gain + offset >= 255.0:
             return None
-        g = np.float32(gain)
-        mean = (r - np.float32(offset)) / g
-        reach = mean + spread[..., -1] / g >= np.float32(255.0)
+        # reach below needs r + spread_max - offset >= 255 gain; a hundredth of a level of
+        # slack keeps float32 rounding from dropping a candidate the full test would keep
+        idx = order[:np.searchsorted(neg_high, -(255.0 * gain + offset - 0.01), "right")]
+        if not len(idx):
+            return None
+        mean = (r[idx] - o) / g
+        s = spread[idx]
+        reach = mean + s[:, -1] / g >= np.float32(255.0)
         if near is not None:
-            reach &= (near == 0)[..., None]
+            reach &= near.reshape(-1)[idx // 3] == 0
         if img is not None:  # darker than its own darkest finer level: not this clip
-            reach &= img >= mean + spread[..., 0] / g
+            reach &= img.reshape(-1)[idx] >= mean + s[:, 0] / g
         if not reach.any():
             return None
         lost = np.zeros(r.shape, np.float32)
         # what this exposure loses beyond what the reference's own exposure lost
-        lost[reach] = np.maximum(clip_loss(mean[reach], spread[reach] / g) - own[reach] / g,
-                                 0.0)
+        lost[idx[reach]] = np.maximum(
+            clip_loss(mean[reach], s[reach] / g) - own[idx[reach]] / g, 0.0)
+        lost = lost.reshape(ref_rgb.shape)
         return lost if float(lost.max()) > 0.01 else None
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
