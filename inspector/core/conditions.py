@@ -187,7 +187,8 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
     keep = [~expected[..., c] for c in range(3)]
     if near is not None:
         clipped = channels > 0
-        explained = ~(clipped & ~expected).any(axis=2)  # every clipped channel expected
+        odd = clipped & ~expected  # a clipped channel the exposure does not explain
+        explained = ~(odd[..., 0] | odd[..., 1] | odd[..., 2])  # (any over 3: slow)
         use = (near == 0) | explained
         keep = [k & use & ~clipped[..., c] for c, k in enumerate(keep)]
     return keep
