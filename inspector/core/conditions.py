@@ -255,11 +255,12 @@ class Conditions(Estimator):
         self.max_shift = max_shift
         self.health = health
         self.limits = limits
-        #: (colour reference, it as float32, dilated mask of its clipped whites), made once.
+        #: (colour reference, dilated mask of its glare, inRange bounds below the glare,
+        #: its brightest level), made once (:meth:`_reference_glare`).
         self._ref_terms: tuple | None = None
-        #: (colour reference, its brightest level), made once.
-        self._top: tuple | None = None
-        #: (colour reference, it as float32, the spread as float32, its top level), made once.
+        #: (colour reference, it and :attr:`fine_` flattened as float32, the negated highest
+        #: finer levels in falling order and their order, the reference's own clip loss),
+        #: made once (:meth:`_lost`).
         self._fine: tuple | None = None
         #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
@@ -294,7 +295,7 @@ class Conditions(Estimator):
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = self._spectrum = self._top = self._fine = None
+        self._ref_terms = self._spectrum = self._fine = None
         if not len(images):
             return self
         ref = np.median(grey(images), axis=0)
@@ -469,12 +470,11 @@ class Conditions(Estimator):
                     # field per colour channel once the reference's colours are known:
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
-                    seen = None if near is None else near == 0
-                    kept = _field_keep(near, channels, expected)
+                    kept = _field_keep(near, channels, expected)  # all alike without ref_rgb
                     field = (_fields(img, ref_rgb, sigma, gain, offset, kept)
                              if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
-                                              channels=3, keep=seen))
+                                              channels=3, keep=kept[0]))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
@@ -499,16 +499,10 @@ class Conditions(Estimator):
         frame becomes, (H, W, 3) bool; None where there are none (no reference level
         reaches it)."""
         level = 250.0 * gain + offset
-        _, top = self._brightest(ref_rgb)
-        if level > top:
+        self._reference_glare(ref_rgb)  # the reference's terms, its brightest level with them
+        if level > self._ref_terms[3]:
             return None
         return ref_rgb >= np.float32(level)
-
-    def _brightest(self, ref_rgb: np.ndarray) -> tuple[np.ndarray, float]:
-        """The colour reference and its brightest level, computed once per reference."""
-        if self._top is None or self._top[0] is not ref_rgb:
-            self._top = (ref_rgb, float(ref_rgb.max()))
-        return self._top
 
     def _lost(self, ref_rgb: np.ndarray, gain: float, offset: float,
               near: np.ndarray | None, img: np.ndarray | None = None) -> np.ndarray | None:
@@ -624,7 +618,8 @@ class Conditions(Estimator):
         brightest channel is below what it must keep there to read as that glare
         (:data:`GLARE_TOLERANCE` below the reference's): every channel <= floor - 1, and
         never where the floor is 0 (lower bound 1 > upper bound 0); each (H, W, 3) uint8.
-        Computed once per reference rather than once per frame."""
+        Computed once per reference rather than once per frame, with the reference's
+        brightest level (for :meth:`_saturating`)."""
         if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
             brightest = _channel_max(np.asarray(ref_rgb))
             clipped = (brightest >= 250).astype(np.uint8)
@@ -633,7 +628,7 @@ class Conditions(Estimator):
             lower = (floor == 0).astype(np.uint8)
             upper = np.where(floor == 0, 0, floor.astype(np.int16) - 1).astype(np.uint8)
             below = (cv2.merge([lower] * 3), cv2.merge([upper] * 3))
-            self._ref_terms = (ref_rgb, glare, below)
+            self._ref_terms = (ref_rgb, glare, below, float(brightest.max()))
         return self._ref_terms[1], self._ref_terms[2]
 
     def measures(self, prepared: Prepared, previous: np.ndarray | None = None
