@@ -295,16 +295,20 @@ def test_brightness_field_leaves_out_clipped_pixels():
 
 def test_brightness_field_of_a_colour_pair_is_the_field_of_each_channel():
     # The bundled scikit-image coffee photograph against a re-lit copy (red x1.2 on the
-    # left), with and without clipped pixels left out: the colour call gives, channel by
-    # channel, exactly the field of that channel alone (the docstring's promise).
+    # left), with and without clipped pixels left out (the same for all channels, or each
+    # channel its own): the colour call gives, channel by channel, exactly the field of
+    # that channel alone (the docstring's promise).
     ref = skdata.coffee()[::4, ::4]                                       # (100, 150, 3) RGB
     ramp = np.clip(1.2 - np.linspace(0, 1, ref.shape[1]), 0, 1)[None, :, None]
     lit = np.clip(ref * (1 + ramp * np.array([0.2, 0.0, 0.0])), 0, 255).astype(np.uint8)
-    for keep in (None, (lit < 250).all(axis=2)):
+    own = lit < 250  # channel by channel, blue kept whole
+    own[..., 2] = True
+    for keep in (None, (lit < 250).all(axis=2), own):
         both = brightness_field(lit, ref, 12.0, 1.1, -3.0, scale=1.1, keep=keep)
         for c in range(3):
+            alone = keep if keep is None or keep.ndim == 2 else keep[..., c]
             one = brightness_field(lit[..., c].astype(np.float32), ref[..., c], 12.0, 1.1,
-                                   -3.0, scale=1.1, keep=keep)
+                                   -3.0, scale=1.1, keep=alone)
             np.testing.assert_array_equal(both[..., c], one)
 
 

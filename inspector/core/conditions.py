@@ -161,9 +161,9 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
 
 
 def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
-                expected: np.ndarray | None) -> list[np.ndarray | None]:
-    """Pixels whose light each colour channel's brightness field may compare, one (H, W)
-    bool per channel (None: all).
+                expected: np.ndarray | None) -> np.ndarray | None:
+    """Pixels whose light each colour channel's brightness field may compare: (H, W) bool
+    when the same for every channel, (H, W, 3) bool channel by channel, None for all.
 
     A pixel with a clipped channel (``near``) only bounds its light and is left out of
     every channel's field, unless each channel it clipped is one the reference says this
@@ -182,29 +182,18 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
         Channels the reference says this frame's exposure saturates.
     """
     if expected is None:
-        seen = None if near is None else near == 0
-        return [seen] * 3
-    keep = [~expected[..., c] for c in range(3)]
+        return None if near is None else near == 0
+    # OpenCV's 0/255 masks on (H, W * 3) views: numpy's logic over a last axis of 3 is slow
+    h, w = expected.shape[:2]
+    keep = cv2.compare(expected.reshape(h, -1).view(np.uint8), 0, cv2.CMP_EQ)
     if near is not None:
-        clipped = channels > 0
-        odd = clipped & ~expected  # a clipped channel the exposure does not explain
-        explained = ~(odd[..., 0] | odd[..., 1] | odd[..., 2])  # (any over 3: slow)
-        use = (near == 0) | explained
-        keep = [k & use & ~clipped[..., c] for c, k in enumerate(keep)]
-    return keep
-
-
-def _fields(img: np.ndarray, ref_rgb: np.ndarray, sigma: float, gain: float, offset: float,
-            kept: list[np.ndarray | None]) -> np.ndarray:
-    """The brightness field of each colour channel (:func:`brightness_field`), (H, W, 3)
-    float32, each channel comparing its own ``kept`` pixels (:func:`_field_keep`); the
-    three at once when they compare the same ones."""
-    if kept[0] is kept[1] is kept[2]:
-        return brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain, keep=kept[0])
-    return cv2.merge([brightness_field(np.ascontiguousarray(img[..., c]),
-                                       np.ascontiguousarray(ref_rgb[..., c]), sigma, gain,
-                                       offset, scale=gain, keep=kept[c])
-                      for c in range(3)])
+        clipped = cv2.compare(channels.reshape(h, -1), 0, cv2.CMP_GT)
+        # a pixel with a clipped channel the exposure does not explain keeps no channel
+        odd = _channel_max(cv2.bitwise_and(clipped, keep).reshape(h, w, 3))
+        use = cv2.bitwise_not(cv2.bitwise_and(odd, near))
+        keep = cv2.bitwise_and(keep, cv2.bitwise_not(clipped))
+        keep = cv2.bitwise_and(keep, cv2.cvtColor(use, cv2.COLOR_GRAY2RGB).reshape(h, -1))
+    return cv2.bitwise_and(keep, 1).reshape(h, w, 3).view(bool)
 
 
 class Conditions(Estimator):
@@ -470,11 +459,12 @@ class Conditions(Estimator):
                     # field per colour channel once the reference's colours are known:
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
-                    kept = _field_keep(near, channels, expected)  # all alike without ref_rgb
-                    field = (_fields(img, ref_rgb, sigma, gain, offset, kept)
+                    kept = _field_keep(near, channels, expected)  # (H, W) without ref_rgb
+                    field = (brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain,
+                                              keep=kept)
                              if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
-                                              channels=3, keep=kept[0]))
+                                              channels=3, keep=kept))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:

@@ -431,8 +431,10 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     channels : int
         Channels of the result of an (H, W) pair (the field repeated, to multiply a colour
         image).
-    keep : ndarray, shape (H, W), bool, optional
-        Pixels whose brightness is trusted (all when None), the same for every channel.
+    keep : ndarray, shape (H, W) or (H, W, C), bool, optional
+        Pixels whose brightness is trusted (all when None), the same for every channel or,
+        (H, W, C), channel by channel: each channel's field is then the field of that
+        channel alone with its own ``keep``.
 
     Returns
     -------
@@ -442,27 +444,41 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     h, w = frame.shape[:2]
     k = max(1, int(sigma // 4))  # the field is smooth: blur a 1/k image, then enlarge it
     small = (max(1, w // k), max(1, h // k))
-    weight = None
-    if keep is not None and not keep.all():
-        wfull = np.asarray(keep, np.float32)
-        if frame.dtype == ref.dtype == np.uint8:  # keep * x: x where kept, else 0
-            on = np.ascontiguousarray(keep, bool).view(np.uint8)
-            frame, ref = cv2.bitwise_and(frame, frame, mask=on), cv2.bitwise_and(ref, ref, mask=on)
-        else:
-            x = wfull if frame.ndim == 2 else wfull[..., None]
-            frame, ref = np.asarray(frame, np.float32) * x, np.asarray(ref, np.float32) * x
-        weight = cv2.GaussianBlur(cv2.resize(wfull, small, interpolation=cv2.INTER_AREA),
-                                  (0, 0), sigma / k)
-        if frame.ndim == 3:
-            weight = weight[..., None]
-    frame, ref = np.asarray(frame, np.float32), np.asarray(ref, np.float32)
-
     def blur(x: np.ndarray) -> np.ndarray:
         # a channel at a time: OpenCV's blur of a multi-channel image rounds otherwise (its
         # area reduction does not)
         if x.ndim == 2:
             return cv2.GaussianBlur(x, (0, 0), sigma / k)
         return cv2.merge([cv2.GaussianBlur(c, (0, 0), sigma / k) for c in cv2.split(x)])
+
+    weight = None
+    keep = None if keep is None else np.ascontiguousarray(keep, bool)
+    if keep is not None and keep.ndim == 3:  # channel by channel; a channel kept whole
+        # takes no weight, as it would alone (OpenCV's sums: numpy's over the first axis
+        # of an (H * W, 3) array are slow)
+        whole = np.array(cv2.sumElems(keep.view(np.uint8))[:keep.shape[2]]) == h * w
+        if whole.all():
+            keep = None
+    elif keep is not None and keep.all():
+        keep = None
+    if keep is not None:
+        wfull = keep.view(np.uint8)  # 0 or 1
+        if frame.dtype == ref.dtype == np.uint8:  # keep * x: x where kept, else 0
+            if keep.ndim == 2:
+                frame = cv2.bitwise_and(frame, frame, mask=wfull)
+                ref = cv2.bitwise_and(ref, ref, mask=wfull)
+            else:
+                frame, ref = cv2.multiply(frame, wfull), cv2.multiply(ref, wfull)
+        else:
+            x = wfull if frame.ndim == keep.ndim else wfull[..., None]
+            frame, ref = np.asarray(frame, np.float32) * x, np.asarray(ref, np.float32) * x
+        weight = blur(cv2.resize(wfull.astype(np.float32), small,
+                                 interpolation=cv2.INTER_AREA))
+        if keep.ndim == 3:
+            weight[..., whole] = 1.0
+        elif frame.ndim == 3:
+            weight = weight[..., None]
+    frame, ref = np.asarray(frame, np.float32), np.asarray(ref, np.float32)
 
     f = blur(cv2.resize(frame, small, interpolation=cv2.INTER_AREA))
     r = blur(cv2.resize(ref, small, interpolation=cv2.INTER_AREA))
