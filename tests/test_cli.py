@@ -13,7 +13,11 @@ from conftest import noisy_copies, write_frames
 from skimage import data
 
 from inspector.cli.main import main
+from inspector.config import load_config
+from inspector.jobs.scan import read_args
+from inspector.storage.frames import discover, read_frame
 from inspector.storage.results import COLUMNS, SKIP_COLUMNS
+from inspector.storage.store import Store
 
 
 def _scene(seed: int) -> np.ndarray:
@@ -289,3 +293,31 @@ def test_help_of_every_command_lists_every_argument_with_help(capsys):
     assert where == sorted(where)
     for positional in ("CAMERA", "FILE.csv", "SOURCE"):  # named in the issue: each has help
         assert positional in " ".join(p.format_help() for _, p in _parsers(build_parser()))
+
+
+def test_scan_counts_and_records_frames_judged_with_amplified_noise(learnt, capsys):
+    # A frame exposed at half the light needs twice the gain of the same frame as captured
+    # (reference ~ gain * frame: halve the frame, double the gain), above every normal
+    # frame's: its noise is taken as amplified by its gain over the largest normal one.
+    root, cfg = learnt
+    src = root / "dark"
+    frames = noisy_copies(_scene(0), 2, np.random.default_rng(5))
+    frames[1] = (frames[0].astype(np.float32) * 0.5).round().astype(np.uint8)
+    paths = write_frames(src / "gate", frames, prefix="gate")
+    main(["scan", str(src), "--store", str(root / "store"), "--config", str(cfg),
+          "--out", str(root / "dark-out"), "--all-scores", str(root / "dark.csv")])
+    printed = capsys.readouterr().out
+    baseline = Store(root / "store").load("gate")
+    top = baseline.conditions.gain_max_
+    assert (f"warning: 1 frames of gate: darker than every normal frame (brought back with a "
+            f"gain above {top:.2f}), judged with their noise amplified") in printed
+    with open(root / "dark.csv", newline="") as fh:
+        rows = {r["frame"]: r for r in csv.DictReader(fh)}
+    assert rows[f"gate/{paths[0].name}"]["noise_amplified"] == ""
+    # the bright frame's gain as read back (JPEG), doubled: the dark frame's, by the formula
+    files = {f.rel: f for f in discover(src)[0]}
+    bright = read_frame(files[f"gate/{paths[0].name}"],
+                        **read_args(baseline, load_config(cfg))).image
+    g = baseline.conditions.prepare(bright[None]).gains[0, 0]
+    assert float(rows[f"gate/{paths[1].name}"]["noise_amplified"]) == pytest.approx(
+        2 * g / top, rel=0.03)

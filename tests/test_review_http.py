@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import csv
 import http.client
 import json
 import shutil
@@ -513,3 +514,19 @@ def test_results_written_before_the_renames_are_still_read(mine):
     assert [x.version for x in read(conn)] == ["v1"]
     conn.close()
     assert client.get("/?label=unlabelled").status_code == 200  # an old link still works
+
+
+def test_a_frame_judged_with_amplified_noise_says_so_on_the_page(mine):
+    path = mine.out / "flagged.csv"
+    with open(path, newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    plain = next(k for k, r in enumerate(rows) if not r["noise_amplified"]) + 1
+    rows[plain % len(rows)]["noise_amplified"] = "1.800"
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    client = create_app(mine.out, mine.store, mine.config, token=TOKEN).test_client()
+    html = client.get(f"/?item=f{plain % len(rows) + 1}").get_data(as_text=True)
+    assert "<dt>noise</dt>" in html and "amplified 1.80 times: darker than every" in html
+    assert "<dt>noise</dt>" not in client.get(f"/?item=f{plain}").get_data(as_text=True)

@@ -62,12 +62,25 @@ class Evaluation:
         Health measures (the first frame's "frozen" not yet compared with the stream).
     grey : ndarray, shape (n, H, W), float32, or None
         Grey of the frames as captured (for the next batch's "frozen" measure).
+    gains : ndarray, shape (n,), float, or None
+        Gain that brought each frame to the reference
+        (:attr:`~inspector.core.conditions.Prepared.gains`).
+    noise : ndarray, shape (n,), float, or None
+        By how much each frame's noise variance was scaled, >= 1
+        (:meth:`~inspector.core.conditions.Conditions.noise_scale`).
+    clipped : ndarray, shape (n, H, W), uint8, or None
+        Pixels whose brightness was only bounded, 255
+        (:attr:`~inspector.core.conditions.Prepared.clipped`, as aligned): the model saw a
+        prediction there; None when no frame has any.
     """
 
     images: np.ndarray
     raw: np.ndarray
     measures: dict | None = None
     grey: np.ndarray | None = None
+    gains: np.ndarray | None = None
+    noise: np.ndarray | None = None
+    clipped: np.ndarray | None = None
 
 
 @dataclass
@@ -161,8 +174,9 @@ class Baseline:
             return Evaluation(images, self.model.score_maps(images))
         rec = self.conditions.prepare(images)
         m = self.conditions.measures(rec) if self.conditions.health else None
-        raw = self.model.score_maps(rec.images, noise=self.conditions.noise_scale(rec))
-        return Evaluation(images, raw, m, rec.grey)
+        noise = self.conditions.noise_scale(rec)
+        raw = self.model.score_maps(rec.images, noise=noise)
+        return Evaluation(images, raw, m, rec.grey, rec.gains[:, 0], noise, rec.clipped)
 
     def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.

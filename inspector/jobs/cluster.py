@@ -176,8 +176,8 @@ class Recorder:
     """Stands in for :class:`ResultWriter` on a worker: keeps the calls a scan makes, in
     order, for the driver's writer to replay.
 
-    The frame image of an unflagged result is dropped (the writer draws overlays of flagged
-    frames only), which keeps what travels back to the driver small.
+    The frame image and clipped pixels of an unflagged result are dropped (the writer draws
+    overlays of flagged frames only), which keeps what travels back to the driver small.
     """
 
     def __init__(self):
@@ -185,7 +185,8 @@ class Recorder:
         self.counts: Counter[str] = Counter()
 
     def write(self, results=(), skipped=(), seen=None) -> list[str]:
-        slim = [r if r.flagged else replace(r, image=np.zeros((0, 0, 3), np.uint8))
+        slim = [r if r.flagged else replace(r, image=np.zeros((0, 0, 3), np.uint8),
+                                            clipped=None)
                 for r in results]
         if slim or skipped:
             self.calls.append((slim, list(skipped), seen))
@@ -198,7 +199,7 @@ class Recorder:
         With ``streams`` and the partition's ``baseline``, its results (single-frame, in
         stream order) get persistence first (:meth:`Streams.apply`, state carried from the
         partitions replayed before); a frame it flags whose image was dropped is read again
-        from ``files``."""
+        from ``files``, its clipped pixels prepared again."""
         by_rel = {f.rel: f for f in files}
         for results, skipped, seen in self.calls:
             mine = [r for r in results if baseline is not None and r.model == baseline.version]
@@ -207,6 +208,8 @@ class Recorder:
                 for r in mine:
                     if r.flagged and not r.image.size:
                         r.image = read_frame(by_rel[r.frame], **read_args(baseline, config)).image
+                        clipped = baseline.evaluate(r.image[None]).clipped
+                        r.clipped = None if clipped is None else clipped[0]
             writer.write(results, skipped, seen)
 
 

@@ -92,27 +92,60 @@ def read_args(baseline: Baseline, config: Config) -> dict:
 
 def score_frames(baseline: Baseline, frames: Sequence[Frame],
                  evaluation: Evaluation | None = None,
-                 streams: "Streams | None" = None) -> list[FrameResult]:
+                 streams: "Streams | None" = None,
+                 notes: Counter | None = None) -> list[FrameResult]:
     """Score decoded frames of one camera, consecutive in its stream; results in the same
-    order, each with its health conditions. ``evaluation`` is the frames'
+    order, each with its health conditions, whether its noise was taken as amplified, and
+    its clipped pixels. ``evaluation`` is the frames'
     :meth:`~inspector.core.baseline.Baseline.evaluate` when already done (in the decoding
     threads). With ``streams``, a camera that runs with persistence is flagged by what
-    stays (see :class:`Streams`)."""
+    stays (see :class:`Streams`). ``notes`` (a run's summary notes, counted per camera)
+    gets the frames' reading notes and the frames judged with amplified noise."""
     if not frames:
         return []
     if evaluation is None:
         evaluation = baseline.evaluate(np.stack([f.image for f in frames]))
     s = baseline.judge(evaluation, sequence=True)
+    amplified = _amplified(baseline, evaluation, len(frames))
+    clipped = evaluation.clipped
     results = [FrameResult(frame=f.file.rel, camera=baseline.camera, time=f.time,
                         score=float(s.scores[i]),
                         threshold=float(s.thresholds[i]),
                         p_value=float(s.p_values[i]), model=baseline.version,
                         flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
-                        health=s.health[i] if s.health else [], mask=baseline.mask)
+                        health=s.health[i] if s.health else [], mask=baseline.mask,
+                        amplified=amplified[i],
+                        clipped=None if clipped is None else clipped[i])
                for i, f in enumerate(frames)]
     if streams is not None:
         streams.apply(baseline, s.maps, results)
+    if notes is not None:
+        for f in frames:
+            notes.update(f"{baseline.camera}: {n}" for n in f.notes)
+        dark = sum(a is not None for a in amplified)
+        if dark:
+            notes[noise_note(baseline.camera, baseline.conditions.gain_max_)] += dark
     return results
+
+
+def _amplified(baseline: Baseline, evaluation: Evaluation, n: int
+               ) -> list[tuple[float, float] | None]:
+    """Per frame, (gain, largest gain of the normal frames) when its noise was taken as
+    amplified (:meth:`~inspector.core.conditions.Conditions.noise_scale` above 1), else
+    None."""
+    if evaluation.noise is None or evaluation.gains is None:
+        return [None] * n
+    top = baseline.conditions.gain_max_
+    return [(float(g), top) if v > 1.0 else None
+            for g, v in zip(evaluation.gains, evaluation.noise)]
+
+
+def noise_note(camera: str, gain_max: float) -> str:
+    """The summary note of a camera's frames judged with amplified noise (after "N frames
+    of"); the same words as learn's note on them."""
+    return (f"{camera}: darker than every normal frame (brought back with a gain above "
+            f"{gain_max:.2f}), judged with their noise amplified by that gain: less sharply, "
+            f"and outside the guaranteed false-alarm rate (column noise_amplified)")
 
 
 class Streams:
@@ -267,10 +300,8 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                 if batch.errors:
                     writer.write(skipped=[Skipped(f.rel, camera, str(err))
                                           for f, err in batch.errors])
-                for frame in batch.frames:
-                    summary.notes.update(f"{camera}: {n}" for n in frame.notes)
                 writer.write(score_frames(baseline, batch.frames, batch.result,
-                                          streams if persist else None))
+                                          streams if persist else None, summary.notes))
                 bar.update(len(batch.frames) + len(batch.errors))
     summary.scored = writer.counts["scored"]
     summary.flagged = writer.counts["flagged"]

@@ -35,7 +35,7 @@ from __future__ import annotations
 import os
 import threading
 import time
-from collections import deque
+from collections import Counter, deque
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -48,6 +48,7 @@ from inspector.jobs.scan import BaselineCache, ScanSummary, Streams, read_args, 
 from inspector.jobs.settle import Arrival, Settler, is_done
 from inspector.storage.frames import read_frame
 from inspector.storage.ledger import Ledger
+from inspector.storage.overlay import amplified_text
 from inspector.storage.results import ResultWriter, Seen, Skipped
 from inspector.storage.store import DamagedBaseline, Store
 
@@ -386,11 +387,11 @@ class Watcher:
                     frames.append(read_frame(it.file, **read_args(baseline, self.config)))
                 except FrameError as exc:
                     skipped.append(Skipped(it.file.rel, camera, str(exc)))
-            for frame in frames:
-                with self._lock:
-                    self.report.notes.update(f"{camera}: {n}" for n in frame.notes)
             frames.sort(key=lambda f: (f.time, f.file.rel))  # a stream goes forward in time
-            results += score_frames(baseline, frames, streams=self.streams)
+            notes: Counter[str] = Counter()
+            results += score_frames(baseline, frames, streams=self.streams, notes=notes)
+            with self._lock:
+                self.report.notes.update(notes)
         self.writer.write(results, skipped, seen)
         with self._lock:
             for r in results:
@@ -404,7 +405,8 @@ class Watcher:
                     self.report.skipped += 1
         for r in results:
             if r.flagged:
-                self.log(f"flagged {r.frame}  score {r.score:.2f} > {r.threshold:.2f}")
+                dark = "" if r.amplified is None else "  " + amplified_text(r.amplified)
+                self.log(f"flagged {r.frame}  score {r.score:.2f} > {r.threshold:.2f}{dark}")
         for camera, damage in newly_waiting:
             self.log(f"{camera}: {damage}; its frames wait meanwhile" if damage else
                      f"{camera}: no baseline yet; its frames wait (run 'inspector learn')")

@@ -66,6 +66,9 @@ class Item:
     members: list[str] = field(default_factory=list)
     #: Persistent events (busy cameras): when the region first appeared; None otherwise.
     since: datetime | None = None
+    #: A frame darker than every normal frame: its gain over the largest normal one, by
+    #: which its noise was taken as amplified (column ``noise_amplified``); None otherwise.
+    noise_amplified: float | None = None
 
 
 @dataclass(frozen=True)
@@ -147,7 +150,8 @@ class Results:
                     path=self.path_of(row["frame"]), time=parse_time(row["time"]),
                     score=float(row["score"]), threshold=float(row["threshold"]),
                     p_value=_float(row.get("p_value")), version=_baseline(row),
-                    overlay=self._overlay(camera, row.get("overlay") or "")))
+                    overlay=self._overlay(camera, row.get("overlay") or ""),
+                    noise_amplified=_optional(row.get("noise_amplified"))))
             except (KeyError, TypeError, ValueError):
                 self.problems.append(f"flagged.csv row {n + 1} is malformed; left out")
                 continue
@@ -185,7 +189,8 @@ class Results:
                 threshold=top.threshold if top else math.nan,
                 p_value=top.p_value if top else math.nan, version=top.version if top else "",
                 overlay=top.overlay if top else "", event=row.get("event") or str(n),
-                start=start, end=end, frames=count, members=members, since=since))
+                start=start, end=end, frames=count, members=members, since=since,
+                noise_amplified=top.noise_amplified if top else None))
         return events
 
     def _read_points(self, flagged: list[Item], events: list[Item]) -> None:
@@ -197,25 +202,26 @@ class Results:
         for f in flagged:
             seen[(f.camera, str(f.path))] = Point(f.camera, f.time, f.score, f.threshold, True,
                                                   owner.get(str(f.path), f.id), str(f.path))
-        extra: list[tuple[str, Path, str, datetime, float, float, str]] = []
+        extra: list[tuple[str, Path, str, datetime, float, float, str, float | None]] = []
         for name in ALL_SCORES_NAMES:
             for row in _rows(self.out / name, None):
                 try:
                     extra.append((row["camera"], self.path_of(row["frame"]), row["frame"],
                                   parse_time(row["time"]), float(row["score"]),
-                                  float(row["threshold"]), _baseline(row)))
+                                  float(row["threshold"]), _baseline(row),
+                                  _optional(row.get("noise_amplified"))))
                 except (KeyError, TypeError, ValueError):
                     continue
         extra += self._ledger()
         n = 0
-        for camera, path, rel, when, score, thr, version in extra:
+        for camera, path, rel, when, score, thr, version, noise in extra:
             key = (camera, str(path))
             if key in seen:
                 continue
             n += 1
             item = Item(id=f"p{n}", kind="frame", camera=camera, rel=rel, path=path, time=when,
                         score=score, threshold=thr, p_value=math.nan, version=version,
-                        flagged=score > thr, members=[str(path)])
+                        flagged=score > thr, members=[str(path)], noise_amplified=noise)
             self.items[item.id] = item
             seen[key] = Point(camera, when, score, thr, score > thr, item.id, str(path))
         points = sorted(seen.values(), key=lambda p: (p.camera, p.time))
@@ -234,7 +240,8 @@ class Results:
                 p = Path(r["path"])
                 rel = p.relative_to(self.source).as_posix()
                 out.append((r["camera"], p, rel, parse_time(r["capture_time"]),
-                            float(r["score"]), float(r["threshold"]), r["version"] or ""))
+                            float(r["score"]), float(r["threshold"]), r["version"] or "",
+                            _optional(_column(r, "noise_amplified"))))
             except (TypeError, ValueError):
                 continue
         return out
@@ -272,6 +279,17 @@ def _baseline(row: dict) -> str:
     """The baseline version of a results row (column ``model`` in folders written before the
     column was named ``baseline``)."""
     return row.get("baseline") or row.get(OLD_COLUMNS["baseline"]) or ""
+
+
+def _optional(text) -> float | None:
+    """A number of an optional column (None when empty, missing or not a number)."""
+    v = _float(text)
+    return v if math.isfinite(v) else None
+
+
+def _column(row, name: str):
+    """A ledger row's column, None in a ledger made before the column existed."""
+    return row[name] if name in row.keys() else None
 
 
 def _float(text) -> float:

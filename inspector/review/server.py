@@ -61,7 +61,7 @@ from inspector.config import Config
 from inspector.core.baseline import Baseline
 from inspector.errors import FrameError, UsageError
 from inspector.jobs.compare import COMPARE_FRAMES, compare_versions, version_rows
-from inspector.jobs.scan import BaselineCache, in_stream, read_args
+from inspector.jobs.scan import BaselineCache, in_stream, read_args, score_frames
 from inspector.review.data import (
     UNREVIEWED,
     Item,
@@ -81,8 +81,7 @@ from inspector.storage.labels import (
     read,
     remove,
 )
-from inspector.storage.overlay import overlay_caption, render_overlay
-from inspector.storage.results import iso_time
+from inspector.storage.results import overlay_picture
 from inspector.storage.store import Store
 
 #: The longest note kept with a label.
@@ -415,26 +414,19 @@ def image(item_id: str, kind: str):
 
 
 def drawn_picture(r: Review, item: Item, path: Path, kind: str) -> bytes:
-    """What the model expected at the item's frame (PNG), or its overlay (JPEG), computed."""
+    """What the model expected at the item's frame (PNG), or its overlay (JPEG), computed;
+    the overlay drawn as a scan draws it (:func:`inspector.storage.results.overlay_picture`)."""
     b = r.baseline(item)
-    image_ = read_frame(FrameFile(path, item.rel, item.camera), **read_args(b, r.config)).image
+    file = FrameFile(path, item.rel, item.camera)
+    frame = read_frame(file, **read_args(b, r.config))
     with r.compute:  # one model evaluation at a time on a 2-core machine
         if kind == "expected":
-            return _encode(b.model.expected(b.prepare(image_[None]))[0], ".png")
+            return _encode(b.model.expected(b.prepare(frame.image[None]))[0], ".png")
         # A camera with persistence: its region over the frames before it, as scanned.
-        kept = in_stream(b, r.config, FrameFile(path, item.rel, item.camera),
-                         r.results.source / item.camera)
-        s = b.score(image_[None]) if kept is None else None
-    if kept is not None:
-        amap, score, threshold = kept.amap, kept.score, kept.threshold
-        stayed = (kept.time - kept.since).total_seconds() if kept.since else None
-    else:
-        amap, score = s.maps[0], float(s.scores[0])
-        threshold = float(s.thresholds[0]) if s.thresholds is not None else b.threshold.value
-        stayed = None
-    caption = overlay_caption(item.camera, iso_time(item.time), score, threshold, stayed)
-    _ok, buf = cv2.imencode(".jpg", render_overlay(image_, amap, threshold, caption),
-                           [cv2.IMWRITE_JPEG_QUALITY, 90])
+        scored = in_stream(b, r.config, file, r.results.source / item.camera)
+        if scored is None:
+            scored = score_frames(b.continue_from(None), [frame])[0]
+    _ok, buf = cv2.imencode(".jpg", overlay_picture(scored), [cv2.IMWRITE_JPEG_QUALITY, 90])
     return buf.tobytes()
 
 

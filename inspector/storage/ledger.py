@@ -29,6 +29,10 @@ written  1 once the frame's CSV rows are in the results folder (see
 health   the frame's camera health conditions, JSON ``[[condition, measure, limit], ...]``
          (NULL when none), so that its health.csv rows can be written again after a crash
 since    persistence (busy cameras): since when a flagged frame's region has stayed
+noise_amplified
+         a frame darker than every normal frame: its gain over the largest normal one,
+         by which its noise was taken as amplified (NULL for the others; see
+         :data:`inspector.storage.results.COLUMNS`)
 ======== ================================================================================
 
 Table ``streams``: each camera's rolling persistence state (the last frames' anomaly maps,
@@ -61,7 +65,7 @@ from inspector.storage.database import TIMEOUT, open_database, transaction
 #: Columns of ``frames`` written by :meth:`Ledger.record` (all but ``id``).
 FRAME_COLUMNS = ("path", "rel", "camera", "size", "mtime", "status", "reason", "score",
                  "threshold", "p_value", "flagged", "version", "capture_time", "overlay",
-                 "seen_at", "scored_at", "written", "health", "since")
+                 "seen_at", "scored_at", "written", "health", "since", "noise_amplified")
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS frames (
@@ -84,7 +88,8 @@ CREATE TABLE IF NOT EXISTS frames (
     scored_at TEXT,
     written INTEGER NOT NULL DEFAULT 1,
     health TEXT,
-    since TEXT
+    since TEXT,
+    noise_amplified REAL
 );
 CREATE INDEX IF NOT EXISTS frames_camera ON frames (camera, status, capture_time);
 CREATE TABLE IF NOT EXISTS streams (
@@ -154,7 +159,8 @@ class Ledger:
         self.conn.executescript(_SCHEMA)
         with self.lock, self._transaction():  # ledgers made before a column existed
             have = {r[1] for r in self.conn.execute("PRAGMA table_info(frames)")}
-            for name, kind in (("health", "TEXT"), ("since", "TEXT")):
+            for name, kind in (("health", "TEXT"), ("since", "TEXT"),
+                               ("noise_amplified", "REAL")):
                 if name not in have:
                     self.conn.execute(f"ALTER TABLE frames ADD COLUMN {name} {kind}")
 

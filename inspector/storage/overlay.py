@@ -14,28 +14,61 @@ MIN_WIDTH = 640
 _OUTLINE = (255, 255, 255)
 #: Colour of the hatching over masked areas (BGR grey).
 _HATCH = (160, 160, 160)
+#: Colour of the hatching over clipped areas (BGR cyan: in neither the heatmap's colour map,
+#: black-red-yellow-white, nor the masks' grey), and its name in the caption.
+_CLIPPED, _CLIPPED_NAME = (255, 255, 0), "cyan"
+#: Height of a caption line, pixels.
+_LINE = 20
 
 
 def overlay_caption(camera: str, time: str, score: float, threshold: float,
-                    stayed: float | None = None) -> str:
-    """The caption of every overlay, saved or drawn on the spot (ASCII: drawn by OpenCV).
+                    stayed: float | None = None, amplified: tuple[float, float] | None = None,
+                    clipped: float = 0.0) -> str:
+    """The caption of every overlay, saved or drawn on the spot (ASCII: drawn by OpenCV),
+    one line per fact.
 
-    ``stayed``: seconds the flagged region has stayed (persistence, busy cameras)."""
+    ``stayed``: seconds the flagged region has stayed (persistence, busy cameras).
+    ``amplified``: (gain, largest gain of the normal frames) of a frame darker than every
+    normal frame, judged with its noise amplified
+    (:meth:`inspector.core.conditions.Conditions.noise_scale`). ``clipped``: share of the
+    view clipped white, where the model saw a prediction of the light (drawn by
+    :func:`render_overlay`)."""
     sign = ">" if score > threshold else "<="
     text = f"{camera}  {time}  score {score:.2f} {sign} threshold {threshold:.2f}"
     if stayed is not None:
         s = max(stayed, 0.0)
         text += "  stayed " + (f"{s:.0f} s" if s < 120 else f"{s / 60:.0f} min" if s < 7200
                                else f"{s / 3600:.1f} h")
+    if amplified is not None:
+        text += "\n" + amplified_text(amplified)
+    if clipped > 0:
+        text += (f"\nclipped white ({_CLIPPED_NAME}): {_percent(clipped)} of the view, "
+                 f"its light predicted")
     return text
 
 
+def amplified_text(amplified: tuple[float, float]) -> str:
+    """How a frame judged with amplified noise is named (overlay caption, watch log):
+    ``amplified`` is (its gain, the largest gain of the normal frames)."""
+    return (f"judged with amplified noise: gain {amplified[0]:.3f} over the learnt "
+            f"{amplified[1]:.3f}")
+
+
+def _percent(share: float) -> str:
+    """A share as a percentage, never rounded to 0 when there is any."""
+    p = 100.0 * share
+    return f"{p:.0f}%" if p >= 10 else f"{p:.1f}%" if p >= 0.1 else "<0.1%"
+
+
 def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
-                   caption: str, mask: np.ndarray | None = None) -> np.ndarray:
+                   caption: str, mask: np.ndarray | None = None,
+                   clipped: np.ndarray | None = None) -> np.ndarray:
     """The frame with a translucent heatmap, the flagged region outlined, and a caption.
 
     Pixels the baseline does not look at (``mask``: burned-in text, configured masks) are
-    dimmed and hatched, so a reviewer sees what could not have been flagged.
+    dimmed and hatched, so a reviewer sees what could not have been flagged. Pixels clipped
+    white (``clipped``), whose light the model saw only as a prediction, are hatched the
+    other way in cyan and outlined, not dimmed.
 
     Parameters
     ----------
@@ -46,12 +79,15 @@ def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
     threshold : float
         Frame threshold; map regions above it are outlined.
     caption : str
+        One line per ``\\n``-separated part.
     mask : ndarray, shape (H, W), bool, optional
         Ignored pixels at working resolution.
+    clipped : ndarray, shape (H, W), bool or uint8, optional
+        Clipped pixels at working resolution (nonzero).
 
     Returns
     -------
-    ndarray, shape (H', W' + caption band, 3), uint8, BGR (ready for cv2.imwrite)
+    ndarray, shape (H' + caption band, W', 3), uint8, BGR (ready for cv2.imwrite)
     """
     scale = max(1, int(np.ceil(MIN_WIDTH / image.shape[1])))
     h, w = image.shape[0] * scale, image.shape[1] * scale
@@ -67,31 +103,42 @@ def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
     region = (heat > threshold).astype(np.uint8)
     contours, _ = cv2.findContours(region, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
     cv2.drawContours(out, contours, -1, _OUTLINE, 2, cv2.LINE_AA)
-    if mask is not None and np.any(mask):
-        out = hatch(out, cv2.resize(np.asarray(mask, np.uint8), (w, h),
-                                    interpolation=cv2.INTER_NEAREST) > 0)
-    band = np.zeros((28, w, 3), np.uint8)
-    cv2.putText(band, caption, (8, 19), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (255, 255, 255), 1,
-                cv2.LINE_AA)
+    # clipped areas sparser, so the heatmap shows between their lines; a mask over a clip
+    # is drawn as masked
+    for m, spacing, colour, dim, rising in ((clipped, 12, _CLIPPED, False, True),
+                                            (mask, 8, _HATCH, True, False)):
+        if m is not None and np.any(m):
+            out = hatch(out, cv2.resize(np.asarray(m, np.uint8), (w, h),
+                                        interpolation=cv2.INTER_NEAREST) > 0,
+                        spacing, colour, dim, rising)
+    lines = caption.split("\n")
+    band = np.zeros((8 + _LINE * len(lines), w, 3), np.uint8)
+    for k, line in enumerate(lines):
+        cv2.putText(band, line, (8, 19 + _LINE * k), cv2.FONT_HERSHEY_SIMPLEX, 0.5,
+                    (255, 255, 255), 1, cv2.LINE_AA)
     return np.vstack([out, band])
 
 
-def hatch(image: np.ndarray, mask: np.ndarray, spacing: int = 8) -> np.ndarray:
-    """``image`` (H, W, 3) uint8 with the pixels of ``mask`` (H, W) bool dimmed to half and
-    crossed by diagonal lines every ``spacing`` pixels; the edge of the mask is outlined."""
+def hatch(image: np.ndarray, mask: np.ndarray, spacing: int = 8,
+          colour: tuple[int, int, int] = _HATCH, dim: bool = True,
+          rising: bool = False) -> np.ndarray:
+    """``image`` (H, W, 3) uint8 with the pixels of ``mask`` (H, W) bool crossed by diagonal
+    lines of ``colour`` every ``spacing`` pixels (falling to the right, or rising with
+    ``rising``) and dimmed to half with ``dim``; the edge of the mask is outlined."""
     out = image.copy()
     m = mask.astype(np.uint8)
-    cv2.copyTo(out // 2, m, out)
-    cv2.copyTo(np.broadcast_to(np.array(_HATCH, np.uint8), out.shape),
-               m & _lines(mask.shape, spacing), out)
+    if dim:
+        cv2.copyTo(out // 2, m, out)
+    cv2.copyTo(np.broadcast_to(np.array(colour, np.uint8), out.shape),
+               m & _lines(mask.shape, spacing, rising), out)
     contours, _ = cv2.findContours(m, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
-    cv2.drawContours(out, contours, -1, _HATCH, 1, cv2.LINE_AA)
+    cv2.drawContours(out, contours, -1, colour, 1, cv2.LINE_AA)
     return out
 
 
 @lru_cache(maxsize=8)
-def _lines(shape: tuple[int, int], spacing: int) -> np.ndarray:
+def _lines(shape: tuple[int, int], spacing: int, rising: bool = False) -> np.ndarray:
     """(H, W) uint8, 1 on the diagonal hatching lines (made once per overlay size)."""
     h, w = shape
     yy, xx = np.mgrid[0:h, 0:w]
-    return (((xx + yy) % spacing) < 2).astype(np.uint8)
+    return ((((xx - yy) if rising else (xx + yy)) % spacing) < 2).astype(np.uint8)

@@ -50,7 +50,13 @@ if TYPE_CHECKING:
 #: Columns of flagged.csv and of the all-scores file, in this order.
 #: ``baseline`` is the baseline version that scored the frame (files written before it was
 #: named so call the column ``model``; readers accept both, see :data:`OLD_COLUMNS`).
-COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "baseline", "overlay")
+#: ``noise_amplified``: for a frame darker than every normal frame, its gain over the largest
+#: gain of the normal frames, by which its noise was taken as amplified (it was judged less
+#: sharply, outside the guaranteed false-alarm rate; see
+#: :meth:`inspector.core.conditions.Conditions.noise_scale`); empty for the others. Files
+#: written before it have no such column; a watch appending to one adds it.
+COLUMNS = ("frame", "camera", "time", "score", "threshold", "p_value", "baseline", "overlay",
+           "noise_amplified")
 #: Former names of columns, for readers of results folders written before a rename.
 OLD_COLUMNS = {"baseline": "model"}
 #: Columns of skipped.csv.
@@ -60,10 +66,12 @@ HEALTH_COLUMNS = ("frame", "camera", "time", "condition", "measure", "limit")
 
 
 def format_row(frame: str, camera: str, time: str, score: float, threshold: float,
-               p_value: float, baseline: str, overlay: str) -> tuple[str, ...]:
-    """A row of flagged.csv / the all-scores file (``time`` already ISO 8601)."""
+               p_value: float, baseline: str, overlay: str, noise: float | None = None
+               ) -> tuple[str, ...]:
+    """A row of flagged.csv / the all-scores file (``time`` already ISO 8601; ``noise``:
+    the ``noise_amplified`` column, None for none)."""
     return (frame, camera, time, f"{score:.4f}", f"{threshold:.4f}", f"{p_value:.6g}", baseline,
-            overlay)
+            overlay, "" if noise is None else f"{noise:.4f}")
 
 
 def since_text(r: "FrameResult") -> str:
@@ -87,6 +95,13 @@ class FrameResult:
         Camera health conditions of the frame (see :mod:`inspector.core.conditions`).
     mask : ndarray, shape (H, W), bool, or None
         Pixels the baseline ignores (shown hatched on the overlay).
+    amplified : (float, float) or None
+        (gain, largest gain of the normal frames) of a frame darker than every normal
+        frame, judged with its noise amplified by their ratio
+        (:meth:`inspector.core.conditions.Conditions.noise_scale`); None for the others.
+    clipped : ndarray, shape (H, W), uint8, or None
+        Pixels clipped white whose light the model saw as a prediction (nonzero, as
+        aligned; shown hatched on the overlay).
     """
 
     frame: str
@@ -103,6 +118,35 @@ class FrameResult:
     mask: np.ndarray | None = None
     #: Persistence (busy cameras): since when the flagged region has stayed, else None.
     since: datetime | None = None
+    amplified: tuple[float, float] | None = None
+    clipped: np.ndarray | None = None
+
+    @property
+    def noise_amplified(self) -> float | None:
+        """The ``noise_amplified`` column: gain over the largest normal one, or None."""
+        return None if self.amplified is None else self.amplified[0] / self.amplified[1]
+
+
+def overlay_picture(r: FrameResult) -> np.ndarray:
+    """The overlay of a scored frame with its caption (:func:`result_caption`), BGR (ready
+    for ``cv2.imwrite``): the one drawing of a result, for the writer and the review page
+    alike."""
+    return render_overlay(r.image, r.amap, r.threshold, result_caption(r), r.mask,
+                          r.clipped if clipped_share(r) else None)
+
+
+def result_caption(r: FrameResult) -> str:
+    """The caption of a scored frame's overlay (:func:`overlay_caption`)."""
+    return overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold,
+                           (r.time - r.since).total_seconds() if r.since else None,
+                           r.amplified, clipped_share(r))
+
+
+def clipped_share(r: FrameResult) -> float:
+    """Share of the view whose light the model saw as a prediction (clipped white)."""
+    if r.clipped is None or not r.clipped.size:
+        return 0.0
+    return cv2.countNonZero(np.asarray(r.clipped, np.uint8)) / r.clipped.size
 
 
 def repair_tail(path: Path) -> None:
@@ -131,11 +175,36 @@ def repair_tail(path: Path) -> None:
         pass
 
 
+def add_columns(path: Path, columns: Sequence[str]) -> None:
+    """Rewrite a results file whose header lacks some of ``columns`` (written before they
+    existed) with them, empty in its rows, so that rows appended to it line up with its
+    header; columns under a former name (:data:`OLD_COLUMNS`) keep their values. A file
+    with a column ``columns`` does not know is left as it is."""
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            header = next(csv.reader(fh), None)
+            if header is None or tuple(header) == tuple(columns):
+                return
+            if not set(header) <= set(columns) | set(OLD_COLUMNS.values()):
+                return
+            fh.seek(0)
+            rows = list(csv.DictReader(fh))
+    except FileNotFoundError:
+        return
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(columns)
+    for row in rows:
+        w.writerow([row.get(c) or row.get(OLD_COLUMNS.get(c, c)) or "" for c in columns])
+    write_atomic(path, buf.getvalue())
+
+
 class _Csv:
     def __init__(self, path: Path, columns, append: bool):
         path.parent.mkdir(parents=True, exist_ok=True)
         if append:
             repair_tail(path)
+            add_columns(path, columns)
         fresh = not append or not path.exists() or path.stat().st_size == 0
         self.fh = open(path, "a" if append else "w", newline="", encoding="utf-8")
         self.writer = csv.writer(self.fh)
@@ -258,7 +327,7 @@ class ResultWriter:
                                 flagged=int(r.flagged), version=r.model, capture_time=t,
                                 overlay=overlay, written=0,
                                 health=json.dumps(r.health) if r.health else None,
-                                since=since_text(r))
+                                since=since_text(r), noise_amplified=r.noise_amplified)
                            for r, t, overlay in zip(results, times, overlays)]
                 entries += [dict(self._file(s.frame, seen), camera=s.camera, reason=s.reason,
                                  status="waiting" if s.waiting else "skipped",
@@ -267,7 +336,8 @@ class ResultWriter:
                 self.ledger.record(entries)  # committed: from here on the frames are done
             for r, t, overlay in zip(results, times, overlays):
                 self._scored_rows(format_row(r.frame, r.camera, t, r.score, r.threshold,
-                                             r.p_value, r.model, overlay), r.flagged)
+                                             r.p_value, r.model, overlay, r.noise_amplified),
+                                  r.flagged)
                 for row in health_rows(r.frame, r.camera, t, r.health):
                     self.health_rows.row(row)
                     self.counts["health"] += 1
@@ -296,10 +366,7 @@ class ResultWriter:
             name = self._unique("overlay", r.camera, r.frame)
             path = self.out / "overlays" / r.camera / f"{name}.jpg"
             path.parent.mkdir(parents=True, exist_ok=True)
-            caption = overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold,
-                                      (r.time - r.since).total_seconds() if r.since else None)
-            cv2.imwrite(str(path), render_overlay(r.image, r.amap, r.threshold, caption, r.mask),
-                        [cv2.IMWRITE_JPEG_QUALITY, 90])
+            cv2.imwrite(str(path), overlay_picture(r), [cv2.IMWRITE_JPEG_QUALITY, 90])
             overlay = path.as_posix()
         if self.maps is not None:
             name = self._unique("map", r.camera, r.frame)
@@ -367,7 +434,7 @@ class ResultWriter:
                 if r["status"] == "scored":
                     row = format_row(r["rel"], r["camera"], r["capture_time"], r["score"],
                                      r["threshold"], r["p_value"], r["version"],
-                                     r["overlay"] or "")
+                                     r["overlay"] or "", r["noise_amplified"])
                     if r["flagged"]:
                         put("flagged", row)
                     put("all", row)
