@@ -368,10 +368,9 @@ class Conditions(Estimator):
 
     def _prepare(self, images: np.ndarray, ref: np.ndarray | None,
                  ref_rgb: np.ndarray | None, known: np.ndarray | None = None,
-                 restore: bool = True, was_clipped: np.ndarray | None = None,
+                 was_clipped: np.ndarray | None = None,
                  render: np.ndarray | None = None) -> Prepared:
-        """:meth:`prepare` against a given reference (also while learning it); without
-        ``restore``, clipped pixels and the reference's glare are left as normalised."""
+        """:meth:`prepare` against a given reference (also while learning it)."""
         images = np.asarray(images)
         n = len(images)
         g_all = grey(images)
@@ -469,17 +468,24 @@ class Conditions(Estimator):
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
-                if ref_rgb is not None and restore:
-                    if near is not None:
-                        cv2.copyTo(cv2.max(o, ref_rgb), near, o)
-                    glare, below = self._reference_glare(ref_rgb)
-                    if glare is not None:  # glare pixels whose brightest channel is >= floor
-                        cv2.copyTo(ref_rgb, cv2.bitwise_and(
-                            glare, cv2.bitwise_not(cv2.inRange(o, *below))), o)
+                if ref_rgb is not None:
+                    self._restore(o, near, ref_rgb)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
             out[i] = smooth_chroma(o)
         return Prepared(out, g_all, aligned, shifts, gains, clipped)
+
+    def _restore(self, o: np.ndarray, near: np.ndarray | None, ref_rgb: np.ndarray) -> None:
+        """Bounded pixels of a normalised frame ``o`` (H, W, 3) uint8, in place: those clipped
+        or next to a clipped one (``near``) raised to the colour reference, and the
+        reference's glare given its colour unless the frame is clearly darker there (see
+        :meth:`prepare`)."""
+        if near is not None:
+            cv2.copyTo(cv2.max(o, ref_rgb), near, o)
+        glare, below = self._reference_glare(ref_rgb)
+        if glare is not None:  # glare pixels whose brightest channel is >= floor
+            cv2.copyTo(ref_rgb, cv2.bitwise_and(
+                glare, cv2.bitwise_not(cv2.inRange(o, *below))), o)
 
     def _saturating(self, ref_rgb: np.ndarray, gain: float, offset: float
                     ) -> np.ndarray | None:
