@@ -57,6 +57,22 @@ def test_steady_level_matches_scipy_rank_filters_along_time():
         np.testing.assert_allclose(run.scores, run.maps.reshape(len(maps), -1).max(axis=1))
 
 
+def test_levels_pick_the_sorted_values_exactly():
+    # Reference: numpy.sort along the time axis (NaN sorts last): the steady level is
+    # x(1) - (x(m-1) - x(1)) and the past level max(x(m-1), 0) of the sorted values, the same
+    # numbers to the bit, with ties, NaN and any number of frames.
+    rng = np.random.default_rng(3)
+    for m in range(2, 7):
+        for nan in (False, True):
+            x = np.round(rng.standard_normal((m, 6, 7)) * 4).astype(np.float32) / 4
+            if nan:
+                x[rng.random(x.shape) < 0.1] = np.nan
+            q = np.sort(x, axis=0)
+            np.testing.assert_array_equal(past_level(x), np.maximum(q[-2], 0.0))
+            if m >= 3:
+                np.testing.assert_array_equal(steady_level(x), q[0] - (q[-2] - q[0]))
+
+
 def test_step_from_the_frames_before_matches_scipy_rank_filters():
     # Reference: scipy.ndimage.rank_filter along time for the steady level (as above) and for
     # the second largest of the ``past`` frames before the window (origin shifted so that the

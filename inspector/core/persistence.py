@@ -258,6 +258,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     late = np.zeros(n, bool)
     late_buf: list[np.ndarray] = []
     late_t: list[float] = []
+    spreads: dict = {}  # robust spread of each frame, computed once (see _spreads)
     since = np.full(n, np.nan)
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
@@ -272,7 +273,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
                 late_buf, late_t = buf[:pos], buf_t[:pos]
             late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
-            level, out[i], _ = _step(late_buf, window, around=around, scaled=scaled)
+            level, out[i], _ = _step(late_buf, window, around=around, scaled=scaled,
+                                     spreads=spreads)
             levels[i] = float(level.max())
             stepped[i] = past > 0 and len(late_buf) > window
             filled[i] = (len(late_t) >= window
@@ -293,7 +295,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf.append(maps[i])
         buf_t.append(t)
         del buf[:-keep], buf_t[:-keep]
-        level, out[i], scale = _step(buf, window, held, around, scaled)
+        level, out[i], scale = _step(buf, window, held, around, scaled, spreads)
         levels[i] = float(level.max())
         stepped[i] = past > 0 and len(buf) > window
         filled[i] = len(buf) >= window
@@ -328,14 +330,17 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
 
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
-          around: int = 1, scaled: bool = False) -> tuple[np.ndarray, np.ndarray, float]:
+          around: int = 1, scaled: bool = False, spreads: dict | None = None
+          ) -> tuple[np.ndarray, np.ndarray, float]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
     reference from ``held`` (NaN where not held), shapes (h, w), float32; and the scale the
     frames were divided by: with ``scaled``, the median of the window frames' robust spreads
-    floored at 1 (:func:`robust_spread`), else 1."""
+    floored at 1 (:func:`robust_spread`), else 1. ``spreads``: the robust spreads of frames
+    met before, by frame (see :func:`_spreads`)."""
     win = np.asarray(frames[-window:], np.float32)
-    scale = max(float(np.median(robust_spread(win))), 1.0) if scaled else 1.0
+    scale = (max(float(np.median(_spreads(frames[-window:], win, spreads))), 1.0) if scaled
+             else 1.0)
     level = steady_level(win / np.float32(scale), around)
     before = frames[:-window]
     reference = (past_level(np.asarray(before, np.float32) / np.float32(scale)) if before
@@ -343,6 +348,21 @@ def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
     return level, (level - reference).astype(np.float32), scale
+
+
+def _spreads(frames: list[np.ndarray], win: np.ndarray, cache: dict | None) -> np.ndarray:
+    """:func:`robust_spread` of each of ``frames`` (``win``: them as one float32 array), each
+    frame's computed once in ``cache`` (``id`` of the frame -> (frame, spread), the frame
+    held there so that its ``id`` stays its own): a frame is in ``window`` steps in turn."""
+    if cache is None:
+        return robust_spread(win)
+    out = np.empty(len(frames))
+    for j, f in enumerate(frames):
+        hit = cache.get(id(f))
+        if hit is None or hit[0] is not f:
+            hit = cache[id(f)] = (f, float(robust_spread(win[j:j + 1])[0]))
+        out[j] = hit[1]
+    return out
 
 
 def past_level(past_maps: np.ndarray) -> np.ndarray:
@@ -367,8 +387,8 @@ def past_level(past_maps: np.ndarray) -> np.ndarray:
     -------
     ndarray, shape (h, w), float32, >= 0
     """
-    q = np.sort(np.asarray(past_maps, np.float32), axis=0)
-    return np.maximum(q[-2] if len(q) >= 2 else q[0], 0.0)
+    q = np.asarray(past_maps, np.float32)
+    return np.maximum(_lowest_and_second(q)[1] if len(q) >= 2 else q[0], 0.0)
 
 
 def steady_level(window_maps: np.ndarray, around: int = 1) -> np.ndarray:
@@ -394,13 +414,29 @@ def steady_level(window_maps: np.ndarray, around: int = 1) -> np.ndarray:
     m = np.asarray(window_maps, np.float32)
     if len(m) <= 2:
         return m.min(axis=0)
-    q = np.sort(m, axis=0)
-    spread = q[-2] - q[0]
+    low, second = _lowest_and_second(m)
+    spread = second - low
     if around > 1:
         from scipy.ndimage import maximum_filter
 
         spread = maximum_filter(spread, size=around, mode="nearest")
-    return q[0] - spread
+    return low - spread
+
+
+def _lowest_and_second(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """x(1) and x(m-1) of each cell's values sorted along the first axis (as
+    ``np.sort(m, axis=0)[[0, -2]]``, NaN sorting last), shape (m, h, w) float32, m >= 2:
+    values picked, not computed, so the same numbers; without NaN by a running minimum and
+    two largest (a sort along the first axis is several times slower)."""
+    if np.isnan(m).any():
+        q = np.sort(m, axis=0)
+        return q[0], q[-2]
+    top, second = m[0], None
+    for x in m[1:]:
+        below = np.minimum(top, x)  # the smaller of the largest so far and x
+        second = below if second is None else np.maximum(second, below)
+        top = np.maximum(top, x)
+    return m.min(axis=0), second
 
 
 def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
