@@ -129,11 +129,17 @@ def hatch(image: np.ndarray, mask: np.ndarray, spacing: int = 8,
     m = mask.astype(np.uint8)
     if dim:
         cv2.copyTo(out // 2, m, out)
-    cv2.copyTo(np.broadcast_to(np.array(colour, np.uint8), out.shape),
-               m & _lines(mask.shape, spacing, rising), out)
+    cv2.copyTo(_plain(out.shape, colour), m & _lines(mask.shape, spacing, rising), out)
     contours, _ = cv2.findContours(m, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
     cv2.drawContours(out, contours, -1, colour, 1, cv2.LINE_AA)
     return out
+
+
+@lru_cache(maxsize=4)
+def _plain(shape: tuple[int, int, int], colour: tuple[int, int, int]) -> np.ndarray:
+    """An image of one colour (made once per overlay size: OpenCV would otherwise copy a
+    broadcast colour into a full image at every call, about 1 ms at 640 x 360)."""
+    return np.full(shape, colour, np.uint8)
 
 
 @lru_cache(maxsize=8)
