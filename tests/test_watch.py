@@ -317,12 +317,22 @@ def covered_bytes(seed: int) -> bytes:
     return buf.tobytes()
 
 
-def test_watch_writes_health_rows_for_a_covered_lens(env):
-    """health.csv is written under watch as under scan (one writer), and status shows it."""
+def test_watch_writes_health_rows_for_a_covered_lens(env, capsys):
+    """health.csv is written under watch as under scan (one writer), and status shows it;
+    so are the frames judged with amplified noise (one of them at half the light)."""
     write_frames(env["src"], "dock", range(3))
     (env["src"] / "dock" / name("dock", 3)).write_bytes(covered_bytes(3))
+    dark = cv2.imdecode(np.frombuffer(frame_bytes(4), np.uint8), cv2.IMREAD_COLOR) // 2
+    (env["src"] / "dock" / name("dock", 4)).write_bytes(cv2.imencode(".png", dark)[1])
     assert run_watch(env, None, 1.0) == 0
-    check_agree(env)
+    rows = check_agree(env)
+    amplified = {r["frame"]: r["noise_amplified"] for r in csv_rows(env["all"])
+                 if r["noise_amplified"]}
+    assert float(amplified[f"dock/{name('dock', 4)}"]) > 1.5  # about twice the gain
+    for frame, value in amplified.items():  # the ledger keeps it for a crash recovery
+        assert rows[frame]["noise_amplified"] == pytest.approx(float(value), abs=1e-4)
+    assert (f"warning: {len(amplified)} frames of dock: darker than every normal frame"
+            in capsys.readouterr().out)
     health = csv_rows(env["out"] / "health.csv")
     covered = f"dock/{name('dock', 3)}"
     assert "lens covered" in {r["condition"] for r in health if r["frame"] == covered}
