@@ -491,9 +491,12 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     for r in np.unique(groups):
         mine = np.flatnonzero(groups == r)
         maps[mine] = cross_fit_maps(held.maps[mine], held_blocks[mine])
-        sel = mine[newest_blocks(held_blocks[mine], alpha)]
+        newest = newest_blocks(held_blocks[mine], alpha)
+        sel = mine[newest]
         kept[sel] = True
-        kept_maps[sel] = cross_fit_maps(held.maps[sel], held_blocks[sel])
+        # (the same maps when calibration keeps every block, as when learn scored only those)
+        kept_maps[sel] = (maps[mine] if newest.all() else
+                          cross_fit_maps(held.maps[sel], held_blocks[sel]))
     order = np.argsort(held.index, kind="stable")  # positions are in capture-time order
     seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
     ko = order[kept[order]]
