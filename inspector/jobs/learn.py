@@ -72,6 +72,8 @@ TEXT_LONG_SIDE = 640
 #: Frames of the condition sample decoded as exported to measure how light spreads within
 #: each working pixel (:func:`inspector.core.image.subpixel_levels`).
 FINE_SAMPLE = 8
+#: Frames a batch of the conditions sample (decoded in parallel, a batch a thread).
+SAMPLE_BATCH = 8
 
 
 class FileSource:
@@ -406,23 +408,49 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
     cs = cfg.conditions
     n = len(source)
     sample = np.unique(np.linspace(0, n - 1, min(CONDITION_SAMPLE, n)).round().astype(int))
-    # (a copy of the source: the main pass records the sample frames' skips and notes)
-    images = np.concatenate([b for _, b in source.spawn().batches(sample)] or
+    # (a copy of the source: the main pass records the sample frames' skips and notes; in
+    # batches of SAMPLE_BATCH, decoded in parallel)
+    images = np.concatenate([b for _, b in source.spawn().batches(sample, SAMPLE_BATCH)] or
                             [np.zeros((0, source.size[1], source.size[0], 3), np.uint8)])
+    with ThreadPoolExecutor(1) as pool:  # the light within pixels beside the text mask
+        fine = pool.submit(_fine, cs, source, sample)
+        found_boxes, over_cap, warnings = _text_boxes(cs, source, sample, len(images))
+        return _fitted(cfg, source, images, mask, fine.result(), found_boxes, over_cap,
+                       warnings)
+
+
+def _fine(cs, source: FileSource, sample: np.ndarray) -> np.ndarray | None:
+    """:func:`subpixel_levels` of a few sample frames as exported; None when lighting is off
+    or the frames are less than twice the working size."""
     w, h = source.size
     sw, sh = source.source_size
-    boxes: list[tuple[int, int, int, int]] = [tuple(int(round(v)) for v in b)  # type: ignore
-                                              for b in cs.text_boxes]
+    if cs.lighting == "off" or sw < 2 * w or sh < 2 * h or not len(sample):
+        return None
+    # a few sample frames as exported: how light spreads within each working pixel
+    picks = sample[np.unique(np.linspace(0, len(sample) - 1, min(FINE_SAMPLE, len(sample)))
+                             .round().astype(int))]
+    exported = FileSource([source.files[i] for i in picks], np.zeros(len(picks), int),
+                          (sw, sh), source.source_size, source.read_args, source.camera)
+    return subpixel_levels((f for _, b in exported.batches(range(len(picks)), 2) for f in b),
+                           (w, h))
+
+
+def _text_boxes(cs, source: FileSource, sample: np.ndarray, read: int
+                ) -> tuple[list, list, list[str]]:
+    """Burned-in text boxes found on the sample frames at a larger size (exported pixels),
+    those left out by the cap, and the warnings; ``read``: sample frames decoded."""
+    w, h = source.size
+    sw, sh = source.source_size
     found_boxes: list[tuple[int, int, int, int]] = []
     over_cap: list[tuple[int, int, int, int]] = []
     warnings: list[str] = []
-    if cs.auto_text_mask and len(images) >= 3:
+    if cs.auto_text_mask and read >= 3:
         long_side = min(max(sw, sh), max(TEXT_LONG_SIDE, w, h))
         big = FileSource([source.files[i] for i in sample], np.zeros(len(sample), int),
                          working_size((sw, sh), long_side), source.source_size,
                          source.read_args, source.camera)
-        frames = np.concatenate([b for _, b in big.batches(range(len(sample)))] or
-                                [np.zeros((0, 1, 1, 3), np.uint8)])
+        frames = np.concatenate([b for _, b in big.batches(range(len(sample)), SAMPLE_BATCH)]
+                                or [np.zeros((0, 1, 1, 3), np.uint8)])
         if len(frames) >= 3:
             tw, th = big.size
             found = find_text_boxes(grey(frames))
@@ -435,6 +463,20 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
                     f"the automatic text mask may cover at most {cs.text_mask_cap:.1%} of the "
                     f"view (text_mask_cap); mask them with text_boxes if they are text: "
                     + ", ".join(str(tuple(b)) for b in over_cap))
+    return found_boxes, over_cap, warnings
+
+
+def _fitted(cfg: CameraConfig, source: FileSource, images: np.ndarray,
+            mask: np.ndarray | None, fine: np.ndarray | None, found_boxes: list,
+            over_cap: list, warnings: list[str]
+            ) -> tuple[Conditions, list[tuple[int, int, int, int]], np.ndarray | None, dict]:
+    """The conditions fitted on the sample ``images`` with the text boxes masked; returns
+    as :func:`_conditions`."""
+    cs = cfg.conditions
+    w, h = source.size
+    sw, sh = source.source_size
+    boxes: list[tuple[int, int, int, int]] = [tuple(int(round(v)) for v in b)  # type: ignore
+                                              for b in cs.text_boxes]
     configured = mask
     if boxes:
         drawn = boxes_mask(boxes, (w, h), (w / sw, h / sh))
@@ -453,15 +495,6 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
               "frozen": cs.frozen_difference}
     conditions = Conditions(lighting=cs.lighting, register=cs.register,
                             max_shift=cs.max_shift * max(w, h), health=cs.health, limits=limits)
-    fine = None
-    if cs.lighting != "off" and sw >= 2 * w and sh >= 2 * h and len(sample):
-        # a few sample frames as exported: how light spreads within each working pixel
-        picks = sample[np.unique(np.linspace(0, len(sample) - 1, min(FINE_SAMPLE, len(sample)))
-                                 .round().astype(int))]
-        exported = FileSource([source.files[i] for i in picks], np.zeros(len(picks), int),
-                              (sw, sh), source.source_size, source.read_args, source.camera)
-        fine = subpixel_levels((f for _, b in exported.batches(range(len(picks)), 2)
-                                for f in b), (w, h))
     return conditions.fit(images, mask, fine), boxes, mask, masking
 
 
