@@ -537,7 +537,13 @@ class Conditions(Estimator):
             return None
         # reach below needs r + spread_max - offset >= 255 gain; a hundredth of a level of
         # slack keeps float32 rounding from dropping a candidate the full test would keep
-        idx = order[:np.searchsorted(neg_high, -(255.0 * gain + offset - 0.01), "right")]
+        bound = -(255.0 * gain + offset - 0.01)
+        # searched as float32 (a float64 bound would copy the whole array to float64): the
+        # largest float32 not above the bound finds the same place
+        bound32 = np.float32(bound)
+        if float(bound32) > bound:
+            bound32 = np.nextafter(bound32, np.float32(-np.inf))
+        idx = order[:np.searchsorted(neg_high, bound32, "right")]
         if not len(idx):
             return None
         mean = (r[idx] - o) / g
@@ -549,12 +555,14 @@ class Conditions(Estimator):
             reach &= img.reshape(-1)[idx] >= mean + s[:, 0] / g
         if not reach.any():
             return None
-        lost = np.zeros(r.shape, np.float32)
+        at = idx[reach]
         # what this exposure loses beyond what the reference's own exposure lost
-        lost[idx[reach]] = np.maximum(
-            clip_loss(mean[reach], s[reach] / g) - own[idx[reach]] / g, 0.0)
-        lost = lost.reshape(ref_rgb.shape)
-        return lost if float(lost.max()) > 0.01 else None
+        more = np.maximum(clip_loss(mean[reach], s[reach] / g) - own[at] / g, 0.0)
+        if float(more.max()) <= 0.01:
+            return None
+        lost = np.zeros(r.shape, np.float32)
+        lost[at] = more
+        return lost.reshape(ref_rgb.shape)
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
                       was: np.ndarray | None) -> tuple[np.ndarray | None, np.ndarray | None]:
