@@ -55,6 +55,8 @@ from inspector.core.image import (
     clip_loss,
     correlation,
     grey,
+    halved,
+    lucas_kanade,
     percentile_rows,
     phase_shifts,
     phase_spectrum,
@@ -83,6 +85,15 @@ _BLACK, _UNCLIPPED = (0, 0, 0), (249, 249, 249)
 COVER_CORRELATION = 0.2
 #: Blur (working pixels) of the chroma of prepared frames (see :func:`smooth_chroma`).
 CHROMA_SIGMA = 1.0
+#: Frames whose shorter side has at least this many working pixels are registered from a
+#: phase correlation of their 2 x 2 reductions (a quarter of the Fourier work), refined at
+#: full size by Lucas-Kanade steps until they converge; a frame whose steps do not
+#: converge within :data:`HALF_STEPS`, or stop shrinking, is registered at full size, as
+#: smaller frames are (a 128 x 72 frame halves to 64 x 36, where the peak is off by half
+#: a pixel and more).
+HALVE_FROM = 160
+#: Most Lucas-Kanade steps from a half-size estimate (see :data:`HALVE_FROM`).
+HALF_STEPS = 6
 
 
 @dataclass
@@ -383,11 +394,17 @@ class Conditions(Estimator):
         moved: dict[int, tuple[float, float]] = {}  # frames moved back, by their shift
         if self.register:
             if known is None:
-                spectrum, terms = self._registration(ref)
-                found = phase_shifts(g_all, spectrum, self.ignore_)
+                spectrum, terms, half = self._registration(ref)
+                found = (phase_shifts(g_all, spectrum, self.ignore_) if half is None else
+                         2.0 * phase_shifts(halved(g_all), *half))
             for i, g in enumerate(g_all):
                 dx, dy = found[i] if known is None else known[i]
-                if known is None:
+                if known is None and half is not None:  # a half-size estimate
+                    dx, dy, done = lucas_kanade(g, terms, dx, dy, HALF_STEPS, True)
+                    if not done:  # not near enough: measured at full size
+                        dx, dy = phase_shifts(g[None], spectrum, self.ignore_)[0]
+                        dx, dy = refine_shift(g, terms, dx, dy)
+                elif known is None:
                     dx, dy = refine_shift(g, terms, dx, dy)
                 if np.hypot(dx, dy) > 0.05:
                     back = shift_images(g, -dx, -dy)
@@ -607,13 +624,22 @@ class Conditions(Estimator):
                                    borderValue=0) > 0.001
         return fill
 
-    def _registration(self, ref: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """:func:`phase_spectrum` and :func:`shift_terms` of the reference, computed once
+    def _registration(self, ref: np.ndarray
+                      ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, Any] | None]:
+        """:func:`phase_spectrum` and :func:`shift_terms` of the reference, and for frames
+        registered from their 2 x 2 reductions (:data:`HALVE_FROM`) the spectrum of its
+        reduction with the pixels to ignore there (None for smaller frames), computed once
         per reference."""
         if self._spectrum is None or self._spectrum[0] is not ref:
+            half = None
+            if min(ref.shape) >= HALVE_FROM:
+                ignore = None
+                if self.ignore_ is not None:  # a reduced pixel with any ignored pixel
+                    ignore = halved(self.ignore_[None].astype(np.float32))[0] > 0
+                half = (phase_spectrum(halved(ref[None])[0], ignore), ignore)
             self._spectrum = (ref, phase_spectrum(ref, self.ignore_),
-                              shift_terms(ref, self.ignore_))
-        return self._spectrum[1], self._spectrum[2]
+                              shift_terms(ref, self.ignore_), half)
+        return self._spectrum[1], self._spectrum[2], self._spectrum[3]
 
     def _reference_glare(self, ref_rgb: np.ndarray
                          ) -> tuple[np.ndarray | None, tuple[np.ndarray, np.ndarray]]:

@@ -389,19 +389,46 @@ def refine_shift(frame: np.ndarray, terms: np.ndarray, dx: float, dy: float,
         The estimate unchanged when a fit finds no positive gain or a correction beyond
         :data:`REFINE_LIMIT` (the linear model does not hold there).
     """
+    return lucas_kanade(frame, terms, dx, dy, steps)[:2]
+
+
+def lucas_kanade(frame: np.ndarray, terms: np.ndarray, dx: float, dy: float,
+                 steps: int = 3, shrinking: bool = False) -> tuple[float, float, bool]:
+    """:func:`refine_shift`, also saying whether the steps converged: True when a step
+    corrected by less than :data:`REFINE_DONE` within ``steps``, False when they did not,
+    or when the estimate was given back unchanged (no positive gain, or a correction
+    beyond :data:`REFINE_LIMIT`). With ``shrinking``, the estimate is also given back,
+    unconverged, at the first step no smaller than the one before (steps that do not
+    shrink do not converge: the linear model does not hold)."""
     frame = np.asarray(frame, np.float32)
     d = np.array([dx, dy], np.float64)
+    last = np.inf
     for _ in range(steps):
         a, _, ex, ey = terms @ shift_images(frame, -d[0], -d[1]).ravel()
         if a <= 0:
-            return float(dx), float(dy)
+            return float(dx), float(dy), False
         step = np.array([ex, ey]) / a
         d -= step
-        if np.hypot(d[0] - dx, d[1] - dy) > REFINE_LIMIT:
-            return float(dx), float(dy)
-        if np.hypot(*step) < REFINE_DONE:
-            break
-    return float(d[0]), float(d[1])
+        size = np.hypot(*step)
+        if np.hypot(d[0] - dx, d[1] - dy) > REFINE_LIMIT or (shrinking and size >= last):
+            return float(dx), float(dy), False
+        if size < REFINE_DONE:
+            return float(d[0]), float(d[1]), True
+        last = size
+    return float(d[0]), float(d[1]), False
+
+
+def halved(images: np.ndarray) -> np.ndarray:
+    """Images (n, H, W) reduced 2 x 2 by area averaging (a last odd row or column left
+    out), float32 (n, H // 2, W // 2): a shift of d pixels in the images is one of d / 2
+    in the result."""
+    images = np.asarray(images, np.float32)
+    n, h, w = images.shape
+    out = np.empty((n, h // 2, w // 2), np.float32)
+    for img, o in zip(images, out):
+        cv2.resize(img[:2 * (h // 2), :2 * (w // 2)], (w // 2, h // 2), dst=o,
+                   interpolation=cv2.INTER_AREA)
+    return out
 
 
 def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
