@@ -189,14 +189,14 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
         255 where a channel is clipped or next to a clipped one.
     channels : ndarray, shape (H, W, 3), uint8, or None
         The same, channel by channel.
-    expected : ndarray, shape (H, W, 3), bool, or None
-        Channels the reference says this frame's exposure saturates.
+    expected : ndarray, shape (H, W, 3), uint8, or None
+        Channels the reference says this frame's exposure saturates (255, else 0).
     """
     if expected is None:
         return None if near is None else near == 0
     # OpenCV's 0/255 masks on (H, W * 3) views: numpy's logic over a last axis of 3 is slow
     h, w = expected.shape[:2]
-    keep = cv2.compare(expected.reshape(h, -1).view(np.uint8), 0, cv2.CMP_EQ)
+    keep = cv2.bitwise_not(expected.reshape(h, -1))
     if near is not None:
         clipped = cv2.compare(channels.reshape(h, -1), 0, cv2.CMP_GT)
         # a pixel with a clipped channel the exposure does not explain keeps no channel
@@ -509,13 +509,17 @@ class Conditions(Estimator):
         """Channels of each pixel that a frame of this ``gain`` and ``offset`` (as fitted by
         :func:`robust_gains`, ``reference ~ gain * frame + offset``) would clip white if it
         showed the reference: the reference's level there is at least what 250 in the
-        frame becomes, (H, W, 3) bool; None where there are none (no reference level
-        reaches it)."""
+        frame becomes, (H, W, 3) uint8, 255 there and 0 elsewhere; None where there are
+        none (no reference level reaches it)."""
         level = 250.0 * gain + offset
         self._reference_glare(ref_rgb)  # the reference's terms, its brightest level with them
         if level > self._ref_terms[3]:
             return None
-        return ref_rgb >= np.float32(level)
+        # whole levels: at least the float32 level is at least its ceiling (OpenCV compares
+        # in one pass what numpy compares through a float32 copy)
+        least = min(max(int(np.ceil(np.float32(level))), 0), 255)
+        h = ref_rgb.shape[0]
+        return cv2.compare(ref_rgb.reshape(h, -1), least, cv2.CMP_GE).reshape(ref_rgb.shape)
 
     def _lost(self, ref_rgb: np.ndarray, gain: float, offset: float,
               near: np.ndarray | None, img: np.ndarray | None = None) -> np.ndarray | None:

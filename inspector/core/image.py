@@ -495,7 +495,8 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
                 frame = cv2.bitwise_and(frame, frame, mask=wfull)
                 ref = cv2.bitwise_and(ref, ref, mask=wfull)
             else:
-                frame, ref = cv2.multiply(frame, wfull), cv2.multiply(ref, wfull)
+                frame = cv2.multiply(frame, wfull, dtype=cv2.CV_32F)
+                ref = cv2.multiply(ref, wfull, dtype=cv2.CV_32F)
         else:
             x = wfull if frame.ndim == keep.ndim else wfull[..., None]
             frame, ref = np.asarray(frame, np.float32) * x, np.asarray(ref, np.float32) * x
