@@ -458,7 +458,7 @@ class Conditions(Estimator):
                 out[i] = images[i]
                 continue
             if self.lighting == "off":
-                o = img.copy()
+                o = smooth_chroma(img)
             else:
                 gain, offset = gains[i]
                 expected = (None if ref_rgb is None else
@@ -485,11 +485,17 @@ class Conditions(Estimator):
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
+                # the colour is evened out before the reference bounds clipped pixels and
+                # glare: the reference's is evened out too, and a frame compared with it
+                # unevened took the reference's blurred colour where its own was sharper,
+                # then blurred it again (the demo aisle 30 % brighter: blue 20-27 levels
+                # too high along its clipped orange shelf beams, 32 of 56 frames flagged)
+                o = smooth_chroma(o)
                 if ref_rgb is not None:
                     self._restore(o, near, ref_rgb)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
-            out[i] = smooth_chroma(o)
+            out[i] = o
         return Prepared(out, g_all, aligned, shifts, gains, clipped)
 
     def _restore(self, o: np.ndarray, near: np.ndarray | None, ref_rgb: np.ndarray) -> None:
