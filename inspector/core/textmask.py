@@ -204,7 +204,9 @@ def _changing_strokes(g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray
     """Pixels whose fine detail changes far beyond noise while the smooth content stays;
     stroke pixels (fine detail far above the frame's typical level on average); and the
     standard deviation over the frames of each pixel's fine detail, float32 (H, W)."""
-    low = np.stack([cv2.GaussianBlur(x, (0, 0), 1.5) for x in g])
+    low = np.empty_like(g)  # (blurred in place: no list of frames stacked again)
+    for x, o in zip(g, low):
+        cv2.GaussianBlur(x, (0, 0), 1.5, dst=o)
     high = g - low
     v_high = high.std(axis=0)
     level = float(np.median(v_high))
