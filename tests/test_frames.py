@@ -199,3 +199,34 @@ def test_learn_counts_each_frame_note_once(tmp_path, small_config):
     files, _ = discover(tmp_path / "normal", camera="cam")
     report = learn_camera(files, load_config(small_config).camera("cam"), Store(tmp_path / "s"))
     assert [w for w in report.warnings if "resized" in w][0].startswith("2 frames: ")
+
+
+def test_reading_ahead_gives_the_same_batches_and_records(tmp_path):
+    # A source read with its first batch decoded ahead (FileSource.prefetch, then the rest
+    # read on) against one read plainly: the same positions, pixels, skipped frames (a file
+    # that is not a JPEG) and notes (a frame exported at twice the size), in order.
+    from conftest import noisy_copies, write_frames
+
+    from inspector.jobs.learn import FileSource
+    from inspector.storage.frames import discover
+
+    rng = np.random.default_rng(2)
+    frames = list(noisy_copies(rng.integers(40, 200, (32, 48, 3)).astype(np.float32), 10, rng))
+    frames[6] = cv2.resize(frames[6], (96, 64))
+    write_frames(tmp_path / "f", frames)
+    files, _ = discover(tmp_path / "f", camera="cam")
+    files = sorted(files, key=lambda f: f.path.name)
+    files[2].path.write_bytes(b"not a jpeg")
+    args = {"long_side": 48, "max_pixels": 10**8, "time_formats": []}
+    got = []
+    for ahead in (False, True):
+        source = FileSource(files, np.zeros(len(files), int), (48, 32), (48, 32), args, "cam")
+        if ahead:
+            source.prefetch(range(len(files)), 3, ahead=1)
+        read = [(i.tolist(), b) for i, b in source.batches(range(len(files)), 3)]
+        got.append((read, source.skipped, source.notes))
+    (plain, skipped, notes), (early, skipped_early, notes_early) = got
+    assert [i for i, _ in plain] == [i for i, _ in early] == [[0, 1], [3, 4, 5], [6, 7, 8], [9]]
+    assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(plain, early))
+    assert skipped == skipped_early and list(skipped) == [2]
+    assert notes == notes_early and sum(notes.values()) == 1

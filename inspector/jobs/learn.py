@@ -12,10 +12,13 @@ same sample finds burned-in text overlays, which are masked, and sets the health
 
 from __future__ import annotations
 
+import queue
+import threading
 from collections import Counter, deque
 from collections.abc import Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from itertools import chain
 from pathlib import Path
 
 import numpy as np
@@ -74,6 +77,9 @@ TEXT_LONG_SIDE = 640
 FINE_SAMPLE = 8
 #: Frames a batch of the conditions sample (decoded in parallel, a batch a thread).
 SAMPLE_BATCH = 8
+#: Batches of the model's first pass decoded while the conditions are learnt (the
+#: conditions step leaves a core idle most of its time; 8 x 64 frames: 88 MB at 320 x 180).
+AHEAD_BATCHES = 8
 
 
 class FileSource:
@@ -105,9 +111,48 @@ class FileSource:
         self.camera = camera
         self.skipped: dict[int, str] = {}
         self.notes: Counter[str] = Counter()
+        self._ahead: tuple | None = None  # see prefetch
 
     def __len__(self) -> int:
         return len(self.files)
+
+    def prefetch(self, indices: Sequence[int], batch_size: int = 64,
+                 ahead: int = AHEAD_BATCHES) -> None:
+        """Start decoding, in a thread, the first ``ahead`` batches of what
+        ``batches(indices, batch_size)`` gives: the next call of :meth:`batches` with the same
+        arguments takes them, then reads the rest; any other call first ends this one, and
+        :meth:`stop` ends it unused. The frames' skips and notes are recorded as they are
+        read."""
+        self.stop()
+        key = ([int(i) for i in indices], int(batch_size))
+        done: queue.Queue = queue.Queue()
+        halt = threading.Event()
+
+        def run() -> None:
+            reading = self._read(key[0][:ahead * key[1]], key[1])
+            try:
+                for item in reading:
+                    if halt.is_set():
+                        return
+                    done.put(item)
+            except BaseException as exc:  # handed to the reader
+                done.put(exc)
+            finally:
+                reading.close()
+                done.put(None)  # the end
+
+        thread = threading.Thread(target=run, name=f"{self.camera}: reading ahead",
+                                  daemon=True)
+        self._ahead = (key, ahead, done, halt, thread)
+        thread.start()
+
+    def stop(self) -> None:
+        """End a :meth:`prefetch` not (or not fully) taken."""
+        if self._ahead is not None:
+            *_, halt, thread = self._ahead
+            self._ahead = None
+            halt.set()
+            thread.join()
 
     def spawn(self) -> "FileSource":
         """The same frames with empty records (to read some of them elsewhere)."""
@@ -125,6 +170,24 @@ class FileSource:
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         indices = [int(i) for i in indices]
+        if self._ahead is not None and self._ahead[0] == (indices, int(batch_size)):
+            _, ahead, done, _, _ = self._ahead
+            try:
+                while (item := done.get()) is not None:
+                    if isinstance(item, BaseException):
+                        raise item
+                    yield item
+            finally:
+                self.stop()
+            # the batches after those (a batch is batch_size consecutive indices, read or not)
+            indices = indices[ahead * int(batch_size):]
+        self.stop()
+        if indices:
+            yield from self._read(indices, batch_size)
+
+    def _read(self, indices: list[int], batch_size: int
+              ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """The frames at ``indices`` decoded in batches (see :meth:`batches`)."""
         pos = {id(self.files[i]): i for i in indices}
         with progress_bar(len(indices), f"{self.camera}: reading") as bar:
             for batch in iter_batches((self.files[i] for i in indices), batch_size,
@@ -301,18 +364,24 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                  "time_formats": fs.time_formats}
     source = FileSource(files, blocks, size, source_size, read_args, camera)
     mask = _mask(cfg, source_size, size)
-    conditions, text_boxes, mask, masking = _conditions(cfg, source, mask)
     model = model_class(cfg.model.model)(**_model_params(cfg))
-    prepared = PreparedSource(source, conditions,
-                              cfg.conditions.exposure_range if cfg.conditions.lighting != "off"
-                              else 0.0, looks=cfg.calibration.regimes)
+    extra_args = {"pool": pool} if pool is not None and takes_pool(model) else {}
+    if not extra_args and hasattr(model, "first_reads"):
+        # the model's first frames decoded while the conditions are learnt (a core is idle)
+        source.prefetch(*model.first_reads(blocks))
     try:
-        extra_args = {"pool": pool} if pool is not None and takes_pool(model) else {}
+        conditions, text_boxes, mask, masking = _conditions(cfg, source, mask)
+        prepared = PreparedSource(source, conditions,
+                                  cfg.conditions.exposure_range
+                                  if cfg.conditions.lighting != "off" else 0.0,
+                                  looks=cfg.calibration.regimes)
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
             extra_args["alpha"] = _planned_alpha(cfg, times)
         held = model.fit(prepared, mask, **extra_args)
     except ValueError as exc:
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
+    finally:
+        source.stop()
     used = len(files) - len(source.skipped)
     if used < MIN_FRAMES:
         raise UsageError(f"camera {camera}: only {used} of {len(files)} normal frames could be "

@@ -845,7 +845,7 @@ class PatchPPCA(DensityModel):
         self.map_shape_ = (self.grid_[0] + r - 1, self.grid_[1] + r - 1)
         blocks = np.asarray(source.blocks)
         labels, block_of = np.unique(blocks, return_inverse=True)
-        order = np.argsort(block_of, kind="stable")
+        order = self.first_reads(blocks)[0]
         before = np.cumsum(np.bincount(block_of, minlength=len(labels))) - np.bincount(
             block_of, minlength=len(labels))
         first = int(np.argmax(np.r_[before >= self.calibrate_from * len(blocks), True]))
@@ -889,6 +889,13 @@ class PatchPPCA(DensityModel):
         if held_maps:
             return HeldOut(np.concatenate(held_idx), np.concatenate(held_maps))
         return HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32))
+
+    def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
+        """The positions :meth:`fit` without a pool reads its frames in (``source.batches``:
+        block by block, in time order within each) and its batch size, from the frames'
+        time ``blocks`` (N,), so that a caller can decode the first of them ahead."""
+        _, block_of = np.unique(np.asarray(blocks), return_inverse=True)
+        return np.argsort(block_of, kind="stable"), self.batch_size
 
     def _forward_pass(self, source: FrameSource, order: np.ndarray, block_of: np.ndarray,
                       n_blocks: int, first: int) -> tuple[Moments, list]:
