@@ -259,8 +259,8 @@ class Conditions(Estimator):
         #: its brightest level), made once (:meth:`_reference_glare`).
         self._ref_terms: tuple | None = None
         #: (colour reference, it and :attr:`fine_` flattened as float32, the negated highest
-        #: finer levels in falling order and their order, the reference's own clip loss),
-        #: made once (:meth:`_lost`).
+        #: finer levels in falling order, that order, the reference's own clip loss; all but
+        #: the first in that order), made once (:meth:`_lost`).
         self._fine: tuple | None = None
         #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
@@ -554,8 +554,10 @@ class Conditions(Estimator):
             # frame's loss is computed on the few that can reach the clip, not on all
             high = (r + spread[..., -1]).ravel()
             order = np.argsort(-high, kind="stable")
-            self._fine = (ref_rgb, r.reshape(-1), spread.reshape(-1, spread.shape[-1]),
-                          -high[order], order, clip_loss(r, spread).reshape(-1))
+            # kept in that order, so that a frame's candidates are a slice, not a gather
+            self._fine = (ref_rgb, r.reshape(-1)[order],
+                          spread.reshape(-1, spread.shape[-1])[order], -high[order], order,
+                          clip_loss(r, spread).reshape(-1)[order])
         _, r, spread, neg_high, order, own = self._fine
         g, o = np.float32(gain), np.float32(offset)
         # a frame whose 255 reads at least 255 in the reference's levels loses no more than
@@ -570,11 +572,12 @@ class Conditions(Estimator):
         bound32 = np.float32(bound)
         if float(bound32) > bound:
             bound32 = np.nextafter(bound32, np.float32(-np.inf))
-        idx = order[:np.searchsorted(neg_high, bound32, "right")]
-        if not len(idx):
+        n = int(np.searchsorted(neg_high, bound32, "right"))
+        if not n:
             return None
-        mean = (r[idx] - o) / g
-        s = spread[idx]
+        idx = order[:n]
+        mean = (r[:n] - o) / g
+        s = spread[:n]
         reach = mean + s[:, -1] / g >= np.float32(255.0)
         if near is not None:
             reach &= near.reshape(-1)[idx // 3] == 0
@@ -582,13 +585,12 @@ class Conditions(Estimator):
             reach &= img.reshape(-1)[idx] >= mean + s[:, 0] / g
         if not reach.any():
             return None
-        at = idx[reach]
         # what this exposure loses beyond what the reference's own exposure lost
-        more = np.maximum(clip_loss(mean[reach], s[reach] / g) - own[at] / g, 0.0)
+        more = np.maximum(clip_loss(mean[reach], s[reach] / g) - own[:n][reach] / g, 0.0)
         if float(more.max()) <= 0.01:
             return None
-        lost = np.zeros(r.shape, np.float32)
-        lost[at] = more
+        lost = np.zeros(ref_rgb.size, np.float32)
+        lost[idx[reach]] = more
         return lost.reshape(ref_rgb.shape)
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
