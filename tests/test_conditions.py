@@ -388,6 +388,56 @@ def test_colour_next_to_a_clipped_channel_matches_the_reference():
     assert near.mean() > 0.1 and abs(blue[near].mean()) < 2.0
 
 
+def test_brightness_field_leaves_out_ignored_pixels():
+    # Burned-in text is drawn after the exposure and does not follow the gain. Constructed:
+    # scikit-image's astronaut at half its light, an ignored box along the top (a clock)
+    # dark in the normal frames and bright in the frame to prepare. The field compares
+    # only pixels not ignored: below the box the frame stays the reference's (it was 23.6
+    # levels too dark when the box counted).
+    scene = cv2.resize(skdata.astronaut(), (240, 160), interpolation=cv2.INTER_AREA) * 0.5
+    rng = np.random.default_rng(5)
+    box = np.zeros((160, 240), bool)
+    box[:20, :120] = True
+
+    def frame(level):
+        img = np.clip(scene + rng.normal(0, 1.5, scene.shape), 0, 255)
+        img[box] = level
+        return img.astype(np.uint8)
+
+    c = Conditions(lighting="local", register=False, health=False).fit(
+        np.stack([frame(40) for _ in range(8)]), ignore=box)
+    out = c.prepare(frame(220)[None]).images[0].astype(float)
+    below = np.s_[20:50, :140]
+    assert abs((out - c.reference_rgb_)[below].mean()) < 1.0
+
+
+def test_a_channel_clipped_black_reads_what_the_reference_would():
+    # Constructed: scikit-image's astronaut with its shadows lifted to 15, and a frame 30 %
+    # darker with its black level 12 lower (an auto-exposure step can crush shadows that
+    # way). Where the light falls below 0 the frame reads 0 lifted by its noise (cut at 0,
+    # it reads brighter than the light); bounded from above, such a channel reads what the
+    # reference's light would in this frame: the reference, or the frame's floor (what 0
+    # becomes, 12 / 0.7) where the reference is darker still. A dark blob on a bright part
+    # is below the reference and stays as seen.
+    scene = cv2.resize(skdata.astronaut(), (240, 160), interpolation=cv2.INTER_AREA)
+    scene = scene.astype(np.float32) * 0.8 + 15
+    rng = np.random.default_rng(6)
+    normal = np.stack([np.clip(scene + rng.normal(0, 6.0, scene.shape), 0, 255)
+                       for _ in range(8)]).astype(np.uint8)
+    c = Conditions(lighting="local", register=False, health=False).fit(normal)
+    dark = np.clip(scene * 0.7 - 12 + rng.normal(0, 6.0, scene.shape), 0, 255).astype(np.uint8)
+    blob = np.s_[56:66, 172:187]
+    dark[blob] = 0
+    out = c.prepare(dark[None]).images[0].astype(float)
+    ref = c.reference_rgb_.astype(float)
+    crushed = (scene * 0.7 - 12 < 0).all(axis=2)
+    crushed[blob] = False
+    assert crushed.mean() > 0.1
+    # 1.76 levels above it when the noise's lift was kept
+    assert abs((out - np.maximum(ref, 12 / 0.7))[crushed].mean()) < 0.75
+    assert (ref - out)[blob].mean() > 150
+
+
 def test_a_darker_copy_of_a_clipped_frame_keeps_its_clip_treatment():
     # The scikit-image camera photograph with a bright patch (240) that normal frames
     # show; a frame 20 % brighter clips it at 255, and a training copy of that frame 20 %
@@ -420,8 +470,9 @@ def test_clipped_pixel_masks_agree_with_the_brightest_channel(monkeypatch):
     # The masks of clipped pixels and of the reference's glare are found with cv2.inRange
     # (one pass over the colour frame); they must select what the plain definition selects,
     # the brightest channel >= 250 (and >= the glare floor), written here with numpy.
-    # (The chroma smoothing that follows is tested on its own.)
+    # (The chroma smoothing that follows is tested on its own, and so are black clips.)
     import inspector.core.conditions as conditions
+    monkeypatch.setattr(Conditions, "_near_black", lambda self, img, shift: None)
 
     monkeypatch.setattr(conditions, "smooth_chroma", lambda image: image)
     ref, normal = _with_lamp()
@@ -440,7 +491,7 @@ def test_clipped_pixel_masks_agree_with_the_brightest_channel(monkeypatch):
     brightest_ref = ref_rgb.max(axis=2)
     glare = cv2.dilate((brightest_ref >= 250).astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
     floor = (brightest_ref.astype(np.float32) * 0.9).astype(np.uint8)
-    monkeypatch.setattr(Conditions, "_restore", lambda self, o, near, ref_rgb: None)
+    monkeypatch.setattr(Conditions, "_restore", lambda self, o, near, ref_rgb, **kw: None)
     for frame, out in zip(frames, got):
         # the normalised frame before any clip handling
         o = c.prepare(frame[None]).images[0]

@@ -28,7 +28,10 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
   than its working pixels (a sunlit tiled roof whose working pixels stay below the clip
   level): what that costs each pixel is predicted from the reference and how light
   spreads within the pixel, measured at learn time on frames as exported (a censored
-  mean, Tobin 1958), and given back.
+  mean, Tobin 1958), and given back. A channel clipped black (most of its neighbourhood at
+  0 to 5) shows at most its light, lifted by its noise cut at 0: it is lowered to what the
+  reference's light reads in the frame (the reference, or the frame's black floor), and
+  left out of the brightness field.
 * Burned-in text (clock, date, camera name): found at learn time as places where the sample
   frames differ in sharp strokes while the smooth content stays put, grown along the text
   line, and masked.
@@ -81,6 +84,11 @@ _NEAR = np.ones((3, 3), np.uint8)
 GLARE_TOLERANCE = 0.1
 #: ``cv2.inRange`` bounds of a pixel none of whose channels is clipped white (>= 250).
 _BLACK, _UNCLIPPED = (0, 0, 0), (249, 249, 249)
+#: A channel at or below this level is clipped black: its light is at most what it shows
+#: (the same margin as white's 250 below 255; common practice, no source).
+BLACK_LEVEL = 5
+#: ``cv2.inRange`` bounds of a pixel none of whose channels is clipped black.
+_UNBLACK, _WHITE = (BLACK_LEVEL + 1,) * 3, (255, 255, 255)
 #: A textured cell whose correlation with the reference falls below this is lost from view.
 COVER_CORRELATION = 0.2
 #: Blur (working pixels) of the chroma of prepared frames (see :func:`smooth_chroma`).
@@ -172,9 +180,16 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
 
 
 def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
-                expected: np.ndarray | None) -> np.ndarray | None:
+                expected: np.ndarray | None, seen: np.ndarray | None = None
+                ) -> np.ndarray | None:
     """Pixels whose light each colour channel's brightness field may compare: (H, W) bool
     when the same for every channel, (H, W, 3) bool channel by channel, None for all.
+
+    Only pixels of ``seen`` count at all: burned-in text (ignored) is drawn on the frame
+    after its exposure and does not follow the gain, so a brighter frame's white clock,
+    brought back by the gain, reads darker than the reference's and would brighten the
+    field around it (the demo aisle 30 % brighter: the shelf beam below its clock 7-11
+    levels too bright in red).
 
     A pixel with a clipped channel (``near``) only bounds its light and is left out of
     every channel's field, unless each channel it clipped is one the reference says this
@@ -191,9 +206,12 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
         The same, channel by channel.
     expected : ndarray, shape (H, W, 3), uint8, or None
         Channels the reference says this frame's exposure saturates (255, else 0).
+    seen : ndarray, shape (H, W), bool, or None
+        Pixels that may count (None: all).
     """
     if expected is None:
-        return None if near is None else near == 0
+        keep = None if near is None else near == 0
+        return seen if keep is None else keep if seen is None else keep & seen
     # OpenCV's 0/255 masks on (H, W * 3) views: numpy's logic over a last axis of 3 is slow
     h, w = expected.shape[:2]
     keep = cv2.bitwise_not(expected.reshape(h, -1))
@@ -204,6 +222,9 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
         use = cv2.bitwise_not(cv2.bitwise_and(odd, near))
         keep = cv2.bitwise_and(keep, cv2.bitwise_not(clipped))
         keep = cv2.bitwise_and(keep, cv2.cvtColor(use, cv2.COLOR_GRAY2RGB).reshape(h, -1))
+    if seen is not None:
+        keep = cv2.bitwise_and(keep, cv2.cvtColor(seen.view(np.uint8) * np.uint8(255),
+                                                  cv2.COLOR_GRAY2RGB).reshape(h, -1))
     return cv2.bitwise_and(keep, 1).reshape(h, w, 3).view(bool)
 
 
@@ -432,6 +453,8 @@ class Conditions(Estimator):
         nears = [self._near_clipped(img, moved.get(i),
                                     None if was_clipped is None else was_clipped[i])
                  for i, img in enumerate(images)]
+        # and the channels clipped black (most of their neighbourhood), bounded from above
+        darks = [self._near_black(img, moved.get(i)) for i, img in enumerate(images)]
         if self.lighting != "off" or self.health:
             bounded = None
             if any(m is not None for m, _ in nears):
@@ -475,7 +498,11 @@ class Conditions(Estimator):
                     # field per colour channel once the reference's colours are known:
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
-                    kept = _field_keep(near, channels, expected)  # (H, W) without ref_rgb
+                    seen = keep
+                    if darks[i] is not None:  # a channel clipped black only bounds its light
+                        seen = _channel_max(darks[i]) == 0
+                        seen = seen if keep is None else seen & keep
+                    kept = _field_keep(near, channels, expected, seen)  # (H, W) without ref_rgb
                     field = (brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain,
                                               keep=kept)
                              if ref_rgb is not None else
@@ -483,8 +510,13 @@ class Conditions(Estimator):
                                               channels=3, keep=kept))
                     f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
+                    # what a channel at 0 reads once normalised: the frame's black floor
+                    floor = (None if darks[i] is None or offset <= 0 else
+                             cv2.convertScaleAbs(field, alpha=offset / gain))
                 else:
                     o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
+                    floor = (None if darks[i] is None or offset <= 0 else
+                             np.full_like(o, min(round(offset), 255)))
                 # the colour is evened out before the reference bounds clipped pixels and
                 # glare: the reference's is evened out too, and a frame compared with it
                 # unevened took the reference's blurred colour where its own was sharper,
@@ -492,19 +524,31 @@ class Conditions(Estimator):
                 # too high along its clipped orange shelf beams, 32 of 56 frames flagged)
                 o = smooth_chroma(o)
                 if ref_rgb is not None:
-                    self._restore(o, near, ref_rgb)
+                    self._restore(o, near, ref_rgb, dark=darks[i], floor=floor)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
             out[i] = o
         return Prepared(out, g_all, aligned, shifts, gains, clipped)
 
-    def _restore(self, o: np.ndarray, near: np.ndarray | None, ref_rgb: np.ndarray) -> None:
+    def _restore(self, o: np.ndarray, near: np.ndarray | None, ref_rgb: np.ndarray,
+                 dark: np.ndarray | None = None, floor: np.ndarray | None = None) -> None:
         """Bounded pixels of a normalised frame ``o`` (H, W, 3) uint8, in place: those clipped
-        or next to a clipped one (``near``) raised to the colour reference, and the
-        reference's glare given its colour unless the frame is clearly darker there (see
-        :meth:`prepare`)."""
+        or next to a clipped one (``near``) raised to the colour reference, channels clipped
+        black (``dark``, :meth:`_near_black`) lowered to it, and the reference's glare given
+        its colour unless the frame is clearly darker there (see :meth:`prepare`).
+
+        A channel clipped black shows at most its light, and its noise, cut at 0, lifts it:
+        it takes what the reference's light would read in this frame if it is darker, that
+        is the reference, or the frame's black ``floor`` (H, W, 3) uint8 (what 0 reads once
+        normalised, None for 0) where the reference is darker still: normal frames as dark
+        cannot show it either (a night frame brought back by a large gain keeps its floor,
+        as its normal nights do).
+        """
         if near is not None:
             cv2.copyTo(cv2.max(o, ref_rgb), near, o)
+        if dark is not None:  # never raised
+            target = ref_rgb if floor is None else cv2.max(ref_rgb, floor)
+            cv2.copyTo(cv2.min(o, target), dark, o)
         glare, below = self._reference_glare(ref_rgb)
         if glare is not None:  # glare pixels whose brightest channel is >= floor
             cv2.copyTo(ref_rgb, cv2.bitwise_and(
@@ -620,6 +664,33 @@ class Conditions(Estimator):
             every = cv2.merge([was] * 3)
             channels = every if channels is None else cv2.max(channels, every)
         return near, channels
+
+    def _near_black(self, img: np.ndarray, shift: tuple[float, float] | None
+                    ) -> np.ndarray | None:
+        """Channels of one frame (H, W, 3) uint8 clipped black, as aligned: (H, W, 3) uint8,
+        255 where at least 5 of the 9 pixels around (itself included) are at most
+        :data:`BLACK_LEVEL` in that channel; None when there are none or lighting is off.
+
+        Such a channel shows at most its light: a darker exposure (or a lower black level)
+        sets a shadow to 0 where the reference saw texture a few levels above it, and its
+        noise, cut at 0, reads brighter on average than the light. Brought back by the gain
+        it reads a flat level above the reference's shadow (the demo aisle 30 % darker with
+        its black level 12 lower: 5 to 8 levels above the reference over its darkest shelf,
+        4.5 times the threshold). Most of the neighbourhood, not any pixel: the pixels of a
+        crushed shadow that its noise lifts above the level are no more to be trusted than
+        the rest, and a lit pixel alone among black ones is kept as seen. Mirror of the
+        white clip (:meth:`_near_clipped`).
+        """
+        if self.lighting == "off":
+            return None
+        lit = cv2.inRange(img, _UNBLACK, _WHITE)  # 255: no channel clipped black
+        if cv2.countNonZero(lit) == lit.size:
+            return None
+        dark = cv2.compare(img, _UNBLACK, cv2.CMP_LT)
+        if shift is not None:
+            dark = cv2.compare(shift_images(dark, -shift[0], -shift[1]), 0, cv2.CMP_GT)
+        dark = cv2.compare(cv2.blur(dark, (3, 3)), 127, cv2.CMP_GT)
+        return dark if cv2.countNonZero(_channel_max(dark)) else None
 
     def _uncovered(self, dx: float, dy: float, shape: tuple[int, int]) -> np.ndarray:
         """Pixels of a frame moved back by (dx, dy) that its content no longer covers: the
