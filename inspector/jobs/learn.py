@@ -481,11 +481,13 @@ def _conditions(cfg: CameraConfig, source: FileSource, mask: np.ndarray | None
     # batches of SAMPLE_BATCH, decoded in parallel)
     images = np.concatenate([b for _, b in source.spawn().batches(sample, SAMPLE_BATCH)] or
                             [np.zeros((0, source.size[1], source.size[0], 3), np.uint8)])
-    with ThreadPoolExecutor(1) as pool:  # the light within pixels beside the text mask
-        fine = pool.submit(_fine, cs, source, sample)
-        found_boxes, over_cap, warnings = _text_boxes(cs, source, sample, len(images))
-        return _fitted(cfg, source, images, mask, fine.result(), found_boxes, over_cap,
-                       warnings)
+    # (one after the other: measuring the light within pixels in a thread beside the text
+    # search kept its temporaries in that thread's memory arena, 70-150 MB more resident
+    # for the rest of learn; the core left idle decodes the first frames instead, see
+    # FileSource.prefetch)
+    found_boxes, over_cap, warnings = _text_boxes(cs, source, sample, len(images))
+    return _fitted(cfg, source, images, mask, _fine(cs, source, sample), found_boxes,
+                   over_cap, warnings)
 
 
 def _fine(cs, source: FileSource, sample: np.ndarray) -> np.ndarray | None:
