@@ -12,7 +12,10 @@ several seeds are several unseen busy scenes; the figures are given per scene an
 Printed per mode: the false-alarm rate on traffic-only frames (no object in view) with its
 95 % Clopper-Pearson interval (``scipy.stats.binomtest(...).proportion_ci(method="exact")``),
 and the share of left objects flagged within 5 frames of appearing, with the median delay
-(frames after the first one the object is in; 0 = flagged when it appears).
+(frames after the first one the object is in; 0 = flagged when it appears). Objects not
+flagged because every one of those frames was held back with a camera condition (an
+underexposed evening, say: reported in health.csv, never flagged as an anomaly) are counted
+apart, as "held".
 
     python bench/busy.py [--normal 300] [--new 240] [--seeds 1,2,3] [--size 960x540]
                          [--camera gate]
@@ -46,10 +49,11 @@ CAMERA = "gate"
 WITHIN = 5
 
 
-def evaluate(truth: list[tuple[str, str, str]], flagged: set[str], camera: str) -> dict:
+def evaluate(truth: list[tuple[str, str, str]], flagged: set[str], camera: str,
+             reported: set[str] = frozenset()) -> dict:
     """:func:`inspector.demo.traffic.busy_results` with the false-alarm interval and the
     median delay."""
-    r = busy_results(truth, flagged, camera, WITHIN)
+    r = busy_results(truth, flagged, camera, WITHIN, reported)
     r["interval"] = rate_interval(r["false"], r["quiet"])
     r["median_delay"] = float(np.median(r["delays"])) if r["delays"] else float("nan")
     return r
@@ -73,13 +77,15 @@ def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int],
         run_scan(scenario.new, cfg, store, results)
         with open(results / "flagged.csv", newline="", encoding="utf-8") as fh:
             flagged = {r["frame"] for r in csv.DictReader(fh)}
-        out[mode] = evaluate(truth, flagged, camera)
+        with open(results / "health.csv", newline="", encoding="utf-8") as fh:
+            reported = {r["frame"] for r in csv.DictReader(fh)}
+        out[mode] = evaluate(truth, flagged, camera, reported)
     return out
 
 
 def pooled(rows: list[dict]) -> dict:
     """Figures of several scenes added up (counts summed, delays joined)."""
-    out = {k: sum(r[k] for r in rows) for k in ("false", "quiet", "caught", "objects")}
+    out = {k: sum(r[k] for r in rows) for k in ("false", "quiet", "caught", "objects", "held")}
     out["delays"] = [d for r in rows for d in r["delays"]]
     out["interval"] = rate_interval(out["false"], out["quiet"])
     out["median_delay"] = float(np.median(out["delays"])) if out["delays"] else float("nan")
@@ -90,7 +96,8 @@ def line(label: str, r: dict) -> str:
     lo, hi = r["interval"]
     rate = r["false"] / r["quiet"] if r["quiet"] else float("nan")
     fa = f"{r['false']}/{r['quiet']} = {rate:.1%} [{lo:.1%}, {hi:.1%}]"
-    return f"{label:<16} {fa:<36} {r['caught']}/{r['objects']:<34} {r['median_delay']:.0f} frames"
+    caught = f"{r['caught']}/{r['objects']}" + (f" ({r['held']} held)" if r["held"] else "")
+    return f"{label:<16} {fa:<36} {caught:<36} {r['median_delay']:.0f} frames"
 
 
 def main(argv: list[str] | None = None) -> int:

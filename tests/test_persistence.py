@@ -9,7 +9,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from scipy.ndimage import minimum_filter1d, rank_filter
+from scipy.ndimage import median_filter, minimum_filter1d, rank_filter
 
 from inspector.config import Config, PersistenceSettings, load_config
 from inspector.core.calibration import rate_interval
@@ -22,6 +22,8 @@ from inspector.core.persistence import (
     calibrate_persistence,
     clearly_busy,
     local_maps,
+    local_median,
+    opened,
     past_level,
     persistence,
     persistence_on,
@@ -178,6 +180,31 @@ def test_what_stays_outscores_what_passes():
     assert level[2, 2] < 0 < 95.0 < level[2, 7]
 
 
+def test_local_maps_take_out_light_over_part_of_the_view_and_opening_drops_thin_regions():
+    # A lamp's pool lights the left 12 columns (+5); a thing left (+20, 4 x 4 cells) lies in it.
+    maps = np.zeros((1, 24, 32), np.float32)
+    maps[0, :, :12] += 5.0
+    maps[0, 8:12, 4:8] += 20.0
+    # The median around each cell: scipy.ndimage.median_filter of the map reduced to half
+    # size (2 x 2 means), here read where the reduced map's cells and the map's agree.
+    small = maps[0].reshape(12, 2, 16, 2).mean(axis=(1, 3))
+    ref = median_filter(small, size=5, mode="nearest")
+    got = local_median(maps, 10)[0]
+    assert got[18, 2] == pytest.approx(ref[9, 1]) and got[18, 2] == pytest.approx(5.0)
+    local = local_maps(maps, local=10)[0]
+    assert local[9, 5] == pytest.approx(20.0)        # the thing keeps its level
+    assert abs(local[18, 2]) < 1e-6 and abs(local[18, 28]) < 1e-6  # the pool is taken out
+    assert local_maps(maps)[0, 18, 2] == pytest.approx(5.0)  # over the whole view it is not
+    # Opening by a 2 x 2 square (erosion then dilation; Serra 1982, from memory): a region
+    # one cell wide is dropped, one at least 2 x 2 keeps its values.
+    step = np.zeros((6, 8), np.float32)
+    step[1, 1] = 50.0                    # one cell at the edge of a passer-by
+    step[3:5, 4:7] = [[9.0, 8.0, 7.0], [9.0, 8.0, 7.0]]
+    out = opened(step, 2)
+    assert out[1, 1] == 0.0 and out[3:5, 4:7].min() == 7.0 and out.max() == 8.0
+    assert np.array_equal(opened(step, 1), step)
+
+
 def test_state_carries_the_window_across_calls_and_through_arrays():
     maps, times = _stream()
     whole = persistence(maps, times, 3, 10.0, threshold=1.0)
@@ -271,13 +298,14 @@ def test_calibrate_tells_busy_from_quiet():
     assert b.threshold.value < 10.0  # passers-by do not set the persistence threshold
     # Flags come from the step from the frames before the window; the first frame of a
     # stretch, with none before it, is held to the steady level of every window.
-    assert b.past == 4 and b.robust and b.start_threshold is not None
+    assert b.past == 8 and b.robust and b.start_threshold is not None
     assert len(b.start_scores) == len(b.calibration_scores) + 5  # one per block has no past
     rank = math.ceil((len(b.start_scores) + 1) * 0.99)
     # Each threshold is that order statistic, raised to the floor when below it: the 99th
     # percentile (numpy.quantile) of the steady levels of every cell of every full window.
     levels = persistence(busy, times, b.window, b.max_gap, blocks=blocks, robust="window",
-                         around=3)
+                         around=3, local=b.local)
+    assert b.local == 4 and b.footprint == 1  # a quarter of the 16-cell long side
     assert b.floor == pytest.approx(np.quantile(levels.maps[levels.filled], 0.99))
     assert b.start_threshold.value == pytest.approx(
         max(np.sort(b.start_scores)[rank - 1], b.floor))
@@ -288,10 +316,10 @@ def test_calibrate_tells_busy_from_quiet():
     assert again.to_json() == b.to_json() and again.around == 3
     old = Persistence.from_saved({k: v for k, v in b.to_json().items()
                                   if k not in ("past", "robust", "start_threshold", "around",
-                                               "floor")},
+                                               "floor", "local", "footprint")},
                                  b.calibration_scores)  # saved before the step
     assert old.past == 0 and not old.robust and old.start_threshold is None and old.around == 1
-    assert old.floor == 0.0
+    assert old.floor == 0.0 and old.local == 0 and old.footprint == 1
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

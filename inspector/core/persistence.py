@@ -79,6 +79,11 @@ WINDOW = 4
 #: Cells on a side of the neighbourhood over which a steady level takes its spread (see
 #: :func:`steady_level`): the cell and the ones touching it.
 AROUND = 3
+#: Local maps are taken less their median over a square of cells this fraction of the map's
+#: long side (see :func:`local_maps`): a quarter of the view, far larger than a thing left
+#: (about 1 % of the view) and about the reach of the brightness field of preparation (a
+#: Gaussian of an eighth of the long side, :mod:`inspector.core.conditions`).
+LOCAL_SHARE = 0.25
 #: A gap between frames longer than this many typical frame intervals starts a new window.
 GAP_FACTOR = 10.0
 #: A normal frame holds a large short-lived anomaly when its single-frame score is more than
@@ -186,7 +191,8 @@ class PersistenceResult:
 def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float,
                 threshold: float | None = None, state: StreamState | None = None,
                 blocks: np.ndarray | None = None, past: int = 0, robust: bool | str = False,
-                start_threshold: float | None = None, around: int = 1) -> PersistenceResult:
+                start_threshold: float | None = None, around: int = 1, local: int = 0,
+                footprint: int = 1) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -231,6 +237,13 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     around : int >= 1, odd
         Cells on a side of the neighbourhood whose largest spread the steady level takes
         (:func:`steady_level`).
+    local : int >= 0
+        Cells on a side of the square whose median each map is taken less
+        (:func:`local_maps`); 0: the median over the whole map.
+    footprint : int >= 1
+        Cells on a side of a patch: the persistence map (the step, or the steady level where
+        there is no reference) is opened by a square of that side (:func:`opened`), so a
+        region counts only where it covers a whole patch; 1: not opened.
 
     Returns
     -------
@@ -238,7 +251,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     """
     if window < 1:
         raise ValueError(f"window must be at least 1, got {window}")
-    maps = local_maps(maps, robust is True)
+    maps = local_maps(maps, robust is True, local)
     scaled = robust == "window"
     times = np.asarray(times, np.float64)
     n = len(maps)
@@ -273,9 +286,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
                 late_buf, late_t = buf[:pos], buf_t[:pos]
             late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
-            level, out[i], _ = _step(late_buf, window, around=around, scaled=scaled,
-                                     spreads=spreads)
-            levels[i] = float(level.max())
+            level, raw, _ = _step(late_buf, window, around=around, scaled=scaled,
+                                  spreads=spreads)
+            out[i] = opened(raw, footprint)
+            levels[i] = float(opened(level, footprint).max())
             stepped[i] = past > 0 and len(late_buf) > window
             filled[i] = (len(late_t) >= window
                          and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
@@ -295,8 +309,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf.append(maps[i])
         buf_t.append(t)
         del buf[:-keep], buf_t[:-keep]
-        level, out[i], scale = _step(buf, window, held, around, scaled, spreads)
-        levels[i] = float(level.max())
+        level, raw, scale = _step(buf, window, held, around, scaled, spreads)
+        out[i] = opened(raw, footprint)
+        levels[i] = float(opened(level, footprint).max())
         stepped[i] = past > 0 and len(buf) > window
         filled[i] = len(buf) >= window
         if threshold is not None:
@@ -309,7 +324,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if region.any():
                 since[i] = float(np.median(onset[region]))
             if past:  # cells above keep the reference they had (NaN: not held)
-                reference = level - out[i]
+                reference = level - raw
                 held = np.where(region & filled[i] & stepped[i], reference,
                                 np.nan).astype(np.float32)
     if not n:
@@ -327,6 +342,32 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
     """The threshold a frame's persistence map is held to: ``threshold`` when it is measured
     from a reference (``stepped``), else ``start_threshold`` when there is one."""
     return threshold if stepped or start_threshold is None else start_threshold
+
+
+def opened(level: np.ndarray, footprint: int) -> np.ndarray:
+    """A persistence map opened by a ``footprint`` x ``footprint`` square: per cell, the
+    largest value that a whole square of cells holding the cell reaches or passes (a
+    grey-scale opening, erosion then dilation; Serra 1982, from memory; edges repeat the
+    nearest cell). A patch spans ``footprint`` cells on a side (patch / stride), so anything
+    seen in the frames changes every cell of a patch at least: a region narrower than that
+    (one cell at the edge of a passer-by, of a masked area) is not something left, while a
+    region at least one patch wide keeps its values and its shape.
+
+    Parameters
+    ----------
+    level : ndarray, shape (h, w), float
+    footprint : int >= 1
+
+    Returns
+    -------
+    ndarray, shape (h, w), float32
+    """
+    level = np.asarray(level, np.float32)
+    if footprint <= 1:
+        return level
+    from scipy.ndimage import grey_opening
+
+    return grey_opening(level, size=(footprint, footprint), mode="nearest")
 
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
@@ -442,8 +483,9 @@ def _lowest_and_second(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return m.min(axis=0), second
 
 
-def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
-    """Anomaly maps less their median over the frame's cells.
+def local_maps(maps: np.ndarray, robust: bool = False, local: int = 0) -> np.ndarray:
+    """Anomaly maps less their median over the frame's cells, or over the cells around each
+    cell.
 
     Parameters
     ----------
@@ -454,6 +496,16 @@ def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
         whole view is disturbed (dark and noisy after the lamps go off, say) counts a cell
         by how far it stands out from the rest of that frame; a frame where a thing covers
         a small part of the view keeps its scale.
+    local : int >= 0
+        With ``local`` > 0, each cell less the median of the ``local`` x ``local`` cells
+        around it (a median filter, as ``scipy.ndimage.median_filter``; edges repeat the
+        nearest cell), taken on the map reduced to half size by area averaging and enlarged
+        back bilinearly (the median of a quarter of the view changes slowly; a full-size
+        filter costs about 15 ms a frame): a change of light over part of the view (a lamp's
+        pool switching on, sun on one side, a passer-by's shadow over the brightness field
+        of preparation) is taken out as a change over the whole view is, while a thing
+        left, far smaller than the square, keeps its level. 0: the median over the whole
+        map.
 
     Returns
     -------
@@ -462,12 +514,46 @@ def local_maps(maps: np.ndarray, robust: bool = False) -> np.ndarray:
     maps = np.asarray(maps, np.float32)
     if not len(maps):
         return maps
-    flat = maps.reshape(len(maps), -1)
-    centre = np.median(flat, axis=1).astype(np.float32)
-    out = maps - centre[:, None, None]
+    if local > 0:
+        out = maps - local_median(maps, local)
+    else:
+        flat = maps.reshape(len(maps), -1)
+        centre = np.median(flat, axis=1).astype(np.float32)
+        out = maps - centre[:, None, None]
     if robust:
         out = out / np.maximum(robust_spread(out), 1.0).astype(np.float32)[:, None, None]
     return out
+
+
+def local_median(maps: np.ndarray, local: int) -> np.ndarray:
+    """Per cell, the median of the ``local`` x ``local`` cells around it, on maps reduced to
+    half size (``local`` // 2 cells there, made odd) and enlarged back (see
+    :func:`local_maps`).
+
+    Parameters
+    ----------
+    maps : ndarray, shape (n, h, w), float32
+    local : int >= 1
+
+    Returns
+    -------
+    ndarray, shape (n, h, w), float32
+    """
+    import cv2
+    from scipy.ndimage import median_filter
+
+    h, w = maps.shape[1:]
+    small = (max(1, w // 2), max(1, h // 2))
+    size = (local // 2) | 1
+    return np.stack([cv2.resize(median_filter(cv2.resize(m, small, interpolation=cv2.INTER_AREA),
+                                              size=size, mode="nearest"),
+                                (w, h), interpolation=cv2.INTER_LINEAR) for m in maps])
+
+
+def local_size(shape: tuple[int, ...]) -> int:
+    """Cells on a side of the square of :func:`local_maps` for maps of ``shape`` (..., h, w):
+    :data:`LOCAL_SHARE` of the long side."""
+    return max(1, int(round(LOCAL_SHARE * max(shape[-2:]))))
 
 
 def robust_spread(maps: np.ndarray) -> np.ndarray:
@@ -535,6 +621,12 @@ class Persistence:
         Neither threshold is below this: the steady level that the cells of held-out
         normal windows pass in a share ``alpha`` of cells and windows (see
         :func:`calibrate_persistence`); 0 for baselines learnt before it.
+    local : int
+        Cells on a side of the square whose median the local maps are taken less (``local``
+        of :func:`persistence`); 0 (the whole view) for baselines learnt before it.
+    footprint : int
+        Cells on a side of a patch, by which the persistence maps are opened (``footprint``
+        of :func:`persistence`); 1 (not opened) for baselines learnt before it.
     """
 
     window: int
@@ -549,6 +641,8 @@ class Persistence:
     start_scores: np.ndarray | None = field(default=None, repr=False)
     around: int = 1
     floor: float = 0.0
+    local: int = 0
+    footprint: int = 1
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None
             ) -> PersistenceResult:
@@ -557,7 +651,7 @@ class Persistence:
                            state, past=self.past, robust=self.robust,
                            start_threshold=(self.start_threshold.value
                                             if self.start_threshold is not None else None),
-                           around=self.around)
+                           around=self.around, local=self.local, footprint=self.footprint)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -580,7 +674,8 @@ class Persistence:
         out = {"window": self.window, "max_gap": self.max_gap,
                "transient_share": self.transient_share, "busy": self.busy,
                "threshold": self.threshold.to_dict(), "past": self.past,
-               "robust": self.robust, "around": self.around, "floor": self.floor}
+               "robust": self.robust, "around": self.around, "floor": self.floor,
+               "local": self.local, "footprint": self.footprint}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -595,7 +690,8 @@ class Persistence:
                    bool(meta["busy"]), int(meta.get("past", 0)), _robust(meta.get("robust", False)),
                    Threshold.from_dict(start) if start else None,
                    None if start_scores is None else np.asarray(start_scores, np.float64),
-                   int(meta.get("around", 1)), float(meta.get("floor", 0.0)))
+                   int(meta.get("around", 1)), float(meta.get("floor", 0.0)),
+                   int(meta.get("local", 0)), int(meta.get("footprint", 1)))
 
 
 def _robust(saved) -> bool | str:
@@ -605,8 +701,8 @@ def _robust(saved) -> bool | str:
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
                           alpha: float, window: int = WINDOW,
-                          scanned: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
-                          ) -> Persistence:
+                          scanned: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+                          footprint: int = 1) -> Persistence:
     """Calibrate persistence on held-out normal maps, and measure how busy the camera is.
 
     Parameters
@@ -627,6 +723,9 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         maps are (by the blocks the single-frame calibration keeps, see
         :func:`inspector.core.calibration.newest_blocks`); default: ``maps``, ``times``,
         ``blocks``. How busy the camera is is measured on all of ``maps``.
+    footprint : int >= 1
+        Cells on a side of a model patch (patch / stride): the persistence maps are opened
+        by it (see :func:`opened`).
 
     Returns
     -------
@@ -661,12 +760,16 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     share = float(transient.mean())
     close = window * max_gap / GAP_FACTOR <= MAX_SPAN
     busy = close and clearly_busy(int(transient.sum()), len(transient))
-    # Flags come from the step from the frames just before the window, on local maps scaled
-    # by the window's robust spread; frames with no frame before their window are held to
-    # the steady level of any window.
+    # Flags come from the step from the frames just before the window, on maps less their
+    # median around each cell, scaled by the window's robust spread and opened by a patch;
+    # frames with no frame before their window are held to the steady level of any window.
+    # The reference comes from up to twice the window's frames before it: the second largest
+    # of more frames is more often one that no passer-by near the cell disturbed.
     s_maps, s_times, s_blocks = scanned if scanned is not None else (maps, times, blocks)
-    step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=window,
-                       robust="window", around=AROUND)
+    past = 2 * window
+    local = local_size(np.shape(s_maps))
+    opts = dict(robust="window", around=AROUND, local=local, footprint=footprint)
+    step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -676,17 +779,17 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     # alpha of cells and windows (the reference is never below 0, so a step above it leaves
     # its cell there): a step smaller than that, though larger than every step of the few
     # held-out windows, is within what normal cells show.
-    levels = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, robust="window",
-                         around=AROUND)
+    levels = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, **opts)
     floor = float(np.quantile(levels.maps[levels.filled], 1.0 - alpha))
     if not stepped.any():
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
-                           starts, share, busy, 0, "window", around=AROUND, floor=floor)
+                           starts, share, busy, 0, "window", around=AROUND, floor=floor,
+                           local=local, footprint=footprint)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
-                       step.scores[stepped], share, busy, window, "window",
+                       step.scores[stepped], share, busy, past, "window",
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor)
+                       floor, local, footprint)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

@@ -123,7 +123,7 @@ def left_objects(rows: list[tuple[str, str, str]], camera: str) -> list[tuple[in
 
 
 def busy_results(rows: list[tuple[str, str, str]], flagged: set[str], camera: str,
-                 within: int = 5) -> dict:
+                 within: int = 5, reported: set[str] = frozenset()) -> dict:
     """How a busy camera's scan did: false alarms on traffic-only frames, left objects caught.
 
     Parameters
@@ -135,25 +135,31 @@ def busy_results(rows: list[tuple[str, str, str]], flagged: set[str], camera: st
     camera : str
     within : int
         An object counts as caught when flagged within this many frames of appearing.
+    reported : set of str
+        Frames held back with a camera condition (health.csv): never flagged as anomalies,
+        reported instead.
 
     Returns
     -------
     dict
         ``false`` flagged of ``quiet`` traffic-only frames; ``caught`` of ``objects`` left
         objects, with ``delays`` (frames after the object's first, 0 = at once) of those
-        caught.
+        caught; ``held`` objects not caught whose frames within ``within`` of appearing
+        were all held back with a camera condition (not caught, but not silent either).
     """
     mine = [r for r in rows if r[1] == camera]
     quiet = [f for f, _, kind in mine if kind == "none"]
-    delays = []
+    delays, held = [], 0
     for first, _ in left_objects(rows, camera):
-        hit = [i - first for i in range(first, min(first + within, len(mine)))
-               if mine[i][0] in flagged]
+        span = range(first, min(first + within, len(mine)))
+        hit = [i - first for i in span if mine[i][0] in flagged]
         if hit:
             delays.append(hit[0])
+        elif all(mine[i][0] in reported for i in span):
+            held += 1
     return {"false": sum(f in flagged for f in quiet), "quiet": len(quiet),
             "objects": len(left_objects(rows, camera)), "caught": len(delays),
-            "delays": delays}
+            "delays": delays, "held": held}
 
 
 def _floor(rng: np.random.Generator, scene: Scene) -> tuple[float, float]:

@@ -607,7 +607,8 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     scanned = (kept_maps[ko], seconds[kept[order]], held_blocks[ko])
     try:
         p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
-                                  cfg.persistence.window, scanned)
+                                  cfg.persistence.window, scanned,
+                                  footprint=max(1, cfg.model.patch // cfg.model.stride))
     except ValueError as exc:
         notes.append(f"persistence not calibrated: {exc}")
         return None
