@@ -23,15 +23,19 @@ object within the window without hiding it. The spread is taken as the largest a
 cell and the cells touching it (``around``): a thing left is steady at its edges too, while a
 passer-by long enough to cover one cell in every frame (a pallet truck and its load) moves
 its edges across the cells beside it. A local map is the anomaly map (standardised,
-see :mod:`inspector.core.scoring`) less its median over the frame, so a change over the whole
-view that the normal frames did not show (evening light, say) does not read as something
-left in one place; what is left covers far less than half the view.
+see :mod:`inspector.core.scoring`) less its median over the cells around each cell, a square
+a quarter of the view's long side (``local``; baselines learnt before it: over the whole
+frame), so a change of light that the normal frames did not show, over the whole view
+(evening light) or over part of it (a lamp's pool switching on, a passer-by's shadow on the
+brightness field of preparation), does not read as something left in one place; what is
+left covers far less than that square.
 
 A steady level alone cannot tell a parcel from light that stays unusual at one place for a
 whole stretch of frames (morning sun through a window, a corner after the lamps go off):
 both stay. What tells them apart is when they came. So the persistence map is the steady
 level less a reference, the level of the same cell in the ``past`` frames just before the
-window (:func:`past_level`): a thing left shows as a step, unusual now and not just before;
+window (:func:`past_level`; twice the window since the local median, the window before
+that): a thing left shows as a step, unusual now and not just before;
 light that was already there before the window, or grows over minutes, does not. A cell
 above its threshold keeps its reference while it stays above (held), so a thing left stays
 flagged as long as it stays and is not taken into its own reference. The local maps of a
@@ -42,7 +46,11 @@ stands out from the rest of the view, while one frame of the window that a large
 passer-by disturbs all over does not shrink a thing left in that frame alone (which would
 read as unsteady; baselines learnt before divided each frame by its own spread). The frame
 of a stretch with no frame before its window (the first full window) has no reference: it
-is held to the steady level's threshold instead (``start_threshold``).
+is held to the steady level's threshold instead (``start_threshold``). Last, the map is
+opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
+changes every cell of a patch, so a region narrower than a patch (the edge of a passer-by,
+the rim of a masked area) is not something left, and one such region in the few held-out
+windows would otherwise set the threshold.
 
 The frame score is the maximum, as for single frames
 (:func:`inspector.core.scoring.frame_scores`), and each threshold is the conformal threshold
@@ -619,7 +627,7 @@ class Persistence:
         for baselines learnt before it).
     floor : float
         Neither threshold is below this: the steady level that the cells of held-out
-        normal windows pass in a share ``alpha`` of cells and windows (see
+        normal windows pass in a share ``alpha`` of cells and windows, and at least 0 (see
         :func:`calibrate_persistence`); 0 for baselines learnt before it.
     local : int
         Cells on a side of the square whose median the local maps are taken less (``local``
@@ -732,8 +740,9 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     Persistence
         The conformal threshold of the persistence scores of frames with a full window,
         raised to ``floor`` when below it: the (1 - ``alpha``) quantile of the steady levels
-        of every cell of every held-out window (a thing left must stand above what normal
-        cells steadily show, not only above the largest step of a few dozen windows). A
+        of every cell of every held-out window, and at least 0 (a thing left must stand above
+        what normal cells steadily show, not only above the largest step of a few dozen
+        windows). A
         frame holds a large short-lived anomaly when its single-frame score is above
         ``LARGE`` x the first quartile of the single-frame scores (an order of magnitude above
         the quietest quarter of the frames; this assumes passers-by leave at least a quarter
@@ -779,8 +788,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     # alpha of cells and windows (the reference is never below 0, so a step above it leaves
     # its cell there): a step smaller than that, though larger than every step of the few
     # held-out windows, is within what normal cells show.
+    # Never below 0 either: a step below 0 is a cell less unusual now than before, never what
+    # a thing left looks like (a map opened by a patch can have every cell below 0 when
+    # nothing stays, and a few held-out windows of noise then give a threshold below 0).
     levels = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, **opts)
-    floor = float(np.quantile(levels.maps[levels.filled], 1.0 - alpha))
+    floor = max(float(np.quantile(levels.maps[levels.filled], 1.0 - alpha)), 0.0)
     if not stepped.any():
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, "window", around=AROUND, floor=floor,
