@@ -46,11 +46,14 @@ def client():
 @pytest.fixture(scope="module")
 def site(tmp_path_factory):
     """Two cameras (photographs bundled with scikit-image) learnt on this machine, and new
-    frames: an object in one, a truncated file, a camera without a baseline."""
+    frames: an object in one, a truncated file, a camera without a baseline. Single-frame
+    flags (30 noisy copies of a photograph read as busy to learn; the test of persistence on
+    the cluster turns it on for its camera)."""
     root = tmp_path_factory.mktemp("cluster")
     cfg = root / "small.toml"
     cfg.write_text('[frames]\nlong_side = 64\n\n[calibration]\nfolds = 3\n\n'
-                   '[cluster]\npartition = 3\nconnect_timeout = 1.0\n', encoding="utf-8")
+                   '[cluster]\npartition = 3\nconnect_timeout = 1.0\n\n'
+                   '[persistence]\nmode = "off"\n', encoding="utf-8")
     rng = np.random.default_rng(0)
     scenes = {"gate": _scene(data.chelsea()), "yard": _scene(data.coffee())}
     for cam, scene in scenes.items():
