@@ -28,6 +28,7 @@ from inspector.core.image import (
     phase_shift,
     phase_shifts,
     phase_spectrum,
+    recompress,
     refine_shift,
     robust_gain_offset,
     robust_gains,
@@ -41,6 +42,7 @@ from inspector.core.textmask import find_text_boxes
 from inspector.demo.scenario import HEALTH_TRUTH, generate
 from inspector.errors import UsageError
 from inspector.jobs.learn import learn_camera
+from inspector.storage.frames import jpeg_compression
 from inspector.jobs.scan import BaselineCache, scan_files
 from inspector.jobs.status import camera_facts, format_table
 from inspector.storage.frames import discover
@@ -231,6 +233,25 @@ def test_noise_estimate_and_exposure_copies_keep_the_sensor_noise():
     bright = exposure_copy(img, 2.5, rng)
     assert np.abs(bright.astype(int) - np.clip(np.rint(img * 2.5), 0, 255)).max() <= 1
     assert (bright == 255).mean() > 0.2
+
+
+def test_copies_are_compressed_as_the_camera_compresses(tmp_path):
+    from PIL import Image
+    photo = skdata.astronaut()[:96, 160:288]  # scikit-image photograph, 128 x 96
+    path = tmp_path / "frame.jpg"
+    Image.fromarray(photo).save(path, "JPEG", quality=75)  # Pillow: libjpeg, 4:2:0
+    tables, sampling = jpeg_compression(path)
+    # ITU-T T.81 Annex K luminance table (from memory), scaled as IJG libjpeg scales it at
+    # quality 75: floor((t * 50 + 50) / 100)
+    annex_k = np.array([16, 11, 10, 16, 24, 40, 51, 61, 12, 12, 14, 19, 26, 58, 60, 55,
+                        14, 13, 16, 24, 40, 57, 69, 56, 14, 17, 22, 29, 51, 87, 80, 62,
+                        18, 22, 37, 56, 68, 109, 103, 77, 24, 35, 55, 64, 81, 104, 113, 92,
+                        49, 64, 78, 87, 103, 121, 120, 101, 72, 92, 95, 98, 112, 100, 103, 99])
+    assert tables[0] == ((annex_k * 50 + 50) // 100).tolist() and sampling == 2
+    assert jpeg_compression(tmp_path / "missing.jpg") is None
+    # exactly what Pillow's encoder makes of the frame
+    again = recompress(photo, tables, sampling)
+    assert np.array_equal(again, np.asarray(Image.open(path).convert("RGB")))
 
 
 def test_chroma_smoothing_keeps_luma_and_colour_and_evens_out_compression():

@@ -812,3 +812,38 @@ def exposure_copy(image: np.ndarray, gain: float, rng: np.random.Generator,
         start = int(rng.integers(0, len(bank) - image.size + 1))
         noise = bank[start:start + image.size].reshape(image.shape)
     return cv2.addWeighted(image, float(gain), noise, float(extra), 0.0, dtype=cv2.CV_8U)
+
+
+def recompress(image: np.ndarray, tables, subsampling: int) -> np.ndarray:
+    """The frame JPEG-encoded and decoded again as its camera's exports are (for frames
+    learnt at their exported size).
+
+    A frame caught at another exposure is compressed anew: its 8 x 8 block artefacts differ
+    from those of the frames learnt from by about one quantisation error. At the exports'
+    own size nothing averages them away, so they are part of what a normal frame after an
+    exposure step looks like. (Baseline tables and their scaling with quality: ITU-T T.81
+    Annex K, IJG libjpeg.)
+
+    Parameters
+    ----------
+    image : ndarray, shape (H, W, 3), uint8, RGB
+    tables : sequence of array-like of 64 int
+        Quantisation tables in natural (row-major) order, as
+        ``PIL.Image.open(path).quantization`` gives them (luminance first).
+    subsampling : int
+        As ``PIL.JpegImagePlugin.get_sampling`` gives it: 0 (4:4:4), 1 (4:2:2), 2 (4:2:0).
+
+    Returns
+    -------
+    ndarray, shape (H, W, 3), uint8, RGB
+    """
+    import io
+
+    from PIL import Image
+
+    buf = io.BytesIO()
+    Image.fromarray(np.ascontiguousarray(image, dtype=np.uint8)).save(
+        buf, "JPEG", qtables=[[int(v) for v in t] for t in tables], subsampling=subsampling)
+    buf.seek(0)
+    with Image.open(buf) as im:
+        return np.asarray(im.convert("RGB"))

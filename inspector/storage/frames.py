@@ -326,6 +326,28 @@ def image_size(path: Path) -> tuple[int, int] | None:
     return None if found is None else found[0]
 
 
+def jpeg_compression(path: Path) -> tuple[list[list[int]], int] | None:
+    """A JPEG file's quantisation tables (natural order, luminance first) and chroma
+    subsampling (0 = 4:4:4, 1 = 4:2:2, 2 = 4:2:0), read from its header (no pixel is
+    decoded); None for other formats, unreadable files or unusual layouts."""
+    saved = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None  # header only
+    try:
+        with Image.open(path) as im:
+            if im.format != "JPEG" or im.mode != "RGB":
+                return None
+            from PIL import JpegImagePlugin
+            tables = [list(map(int, im.quantization[k])) for k in sorted(im.quantization)]
+            sampling = JpegImagePlugin.get_sampling(im)
+            if not tables or len(tables) > 4 or sampling not in (0, 1, 2):
+                return None
+            return tables, int(sampling)
+    except Exception:
+        return None
+    finally:
+        Image.MAX_IMAGE_PIXELS = saved
+
+
 def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int], int]:
     """Format, upright (width, height) and EXIF orientation from the header alone,
     refusing oversized or truncated files (see :func:`_header_dims` for the orientation).
