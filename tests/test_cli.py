@@ -309,7 +309,7 @@ def test_scan_counts_and_records_frames_judged_with_amplified_noise(learnt, caps
     printed = capsys.readouterr().out
     baseline = Store(root / "store").load("gate")
     top = baseline.conditions.gain_max_
-    assert (f"warning: 1 frames of gate: darker than every normal frame (brought back with a "
+    assert (f"warning: 1 frame of gate: darker than every normal frame (brought back with a "
             f"gain above {top:.2f}), judged with their noise amplified") in printed
     with open(root / "dark.csv", newline="") as fh:
         rows = {r["frame"]: r for r in csv.DictReader(fh)}

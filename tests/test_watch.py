@@ -331,7 +331,8 @@ def test_watch_writes_health_rows_for_a_covered_lens(env, capsys):
     assert float(amplified[f"dock/{name('dock', 4)}"]) > 1.5  # about twice the gain
     for frame, value in amplified.items():  # the ledger keeps it for a crash recovery
         assert rows[frame]["noise_amplified"] == pytest.approx(float(value), abs=1e-4)
-    assert (f"warning: {len(amplified)} frames of dock: darker than every normal frame"
+    n = len(amplified)
+    assert (f"warning: {n} frame{'' if n == 1 else 's'} of dock: darker than every normal frame"
             in capsys.readouterr().out)
     health = csv_rows(env["out"] / "health.csv")
     covered = f"dock/{name('dock', 3)}"
@@ -559,7 +560,7 @@ def test_a_busy_camera_flags_what_stays_across_a_restart(env, capsys):
     write_frames(env["src"], "dock", [31, 36, 37], anomalies={36, 37})
     assert run_watch(env, None, 1.0) == 0
     said = capsys.readouterr().out
-    assert "1 frames of dock: frames that arrived after later ones" in said
+    assert "1 frame of dock: frames that arrived after later ones" in said
     check_agree(env)
     assert [r["frame"] for r in csv_rows(env["out"] / "flagged.csv")] == [
         f"dock/{name('dock', 37)}"]

@@ -89,7 +89,7 @@ def say(text: str = "") -> None:
 def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     """The closing summary of a scan or watch run."""
     for note, n in summary.notes.items():
-        say(f"warning: {n} frames of {note}")
+        say(f"warning: {n} frame{'' if n == 1 else 's'} of {note}")
     say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
         f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
     if getattr(summary, "unchanged", 0):
