@@ -200,7 +200,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 threshold: float | None = None, state: StreamState | None = None,
                 blocks: np.ndarray | None = None, past: int = 0, robust: bool | str = False,
                 start_threshold: float | None = None, around: int = 1, local: int = 0,
-                footprint: int = 1) -> PersistenceResult:
+                footprint: int = 1, made_local: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -252,6 +252,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         Cells on a side of a patch: the persistence map (the step, or the steady level where
         there is no reference) is opened by a square of that side (:func:`opened`), so a
         region counts only where it covers a whole patch; 1: not opened.
+    made_local : bool
+        ``maps`` are already :func:`local_maps` with these ``robust`` and ``local`` (a caller
+        that runs the same maps more than once makes them local once).
 
     Returns
     -------
@@ -259,7 +262,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     """
     if window < 1:
         raise ValueError(f"window must be at least 1, got {window}")
-    maps = local_maps(maps, robust is True, local)
+    maps = (np.asarray(maps, np.float32) if made_local
+            else local_maps(maps, robust is True, local))
     scaled = robust == "window"
     times = np.asarray(times, np.float64)
     n = len(maps)
@@ -777,7 +781,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     s_maps, s_times, s_blocks = scanned if scanned is not None else (maps, times, blocks)
     past = 2 * window
     local = local_size(np.shape(s_maps))
-    opts = dict(robust="window", around=AROUND, local=local, footprint=footprint)
+    # both runs below take the same local maps: made once (the median around each cell is
+    # most of their cost)
+    s_maps = local_maps(s_maps, False, local)
+    opts = dict(robust="window", around=AROUND, local=local, footprint=footprint,
+                made_local=True)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
