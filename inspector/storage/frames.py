@@ -296,28 +296,37 @@ def upright(image: np.ndarray, orientation: int) -> np.ndarray:
     return image if turn is None else np.ascontiguousarray(turn(image))
 
 
-def _header_dims(source) -> tuple[tuple[int, int], int] | None:
-    """Upright (width, height) and EXIF orientation (1 when absent) from an image header (a
-    path or a binary file object), or None when it cannot be read. No pixel is decoded, so
-    no size limit applies here: callers apply their own. A picture stored turned by 90
-    degrees (orientation 5 to 8, as phones and body cameras export them) has width and
-    height swapped."""
+def _from_header(source, read):
+    """``read(im)`` of an image opened for its header (a path or a binary file object), or
+    None when it cannot be opened or read. No pixel is decoded, so no size limit applies
+    here: callers apply their own."""
     saved = Image.MAX_IMAGE_PIXELS
     Image.MAX_IMAGE_PIXELS = None  # our own cap, with our own message
     try:
         with Image.open(source) as im:
-            size = (int(im.size[0]), int(im.size[1]))
-            try:
-                orientation = int(im.getexif().get(0x0112, 1) or 1)
-            except Exception:  # a broken EXIF block: show the pixels as stored
-                orientation = 1
-            if not 1 <= orientation <= 8:
-                orientation = 1
-            return (size[::-1] if orientation in _SWAPPED else size), orientation
+            return read(im)
     except Exception:
         return None
     finally:
         Image.MAX_IMAGE_PIXELS = saved
+
+
+def _header_dims(source) -> tuple[tuple[int, int], int] | None:
+    """Upright (width, height) and EXIF orientation (1 when absent) from an image header (a
+    path or a binary file object), or None when it cannot be read (see
+    :func:`_from_header`). A picture stored turned by 90 degrees (orientation 5 to 8, as
+    phones and body cameras export them) has width and height swapped."""
+    def dims(im) -> tuple[tuple[int, int], int]:
+        size = (int(im.size[0]), int(im.size[1]))
+        try:
+            orientation = int(im.getexif().get(0x0112, 1) or 1)
+        except Exception:  # a broken EXIF block: show the pixels as stored
+            orientation = 1
+        if not 1 <= orientation <= 8:
+            orientation = 1
+        return (size[::-1] if orientation in _SWAPPED else size), orientation
+
+    return _from_header(source, dims)
 
 
 def image_size(path: Path) -> tuple[int, int] | None:
@@ -329,23 +338,19 @@ def image_size(path: Path) -> tuple[int, int] | None:
 def jpeg_compression(path: Path) -> tuple[list[list[int]], int] | None:
     """A JPEG file's quantisation tables (natural order, luminance first) and chroma
     subsampling (0 = 4:4:4, 1 = 4:2:2, 2 = 4:2:0), read from its header (no pixel is
-    decoded); None for other formats, unreadable files or unusual layouts."""
-    saved = Image.MAX_IMAGE_PIXELS
-    Image.MAX_IMAGE_PIXELS = None  # header only
-    try:
-        with Image.open(path) as im:
-            if im.format != "JPEG" or im.mode != "RGB":
-                return None
-            from PIL import JpegImagePlugin
-            tables = [list(map(int, im.quantization[k])) for k in sorted(im.quantization)]
-            sampling = JpegImagePlugin.get_sampling(im)
-            if not tables or len(tables) > 4 or sampling not in (0, 1, 2):
-                return None
-            return tables, int(sampling)
-    except Exception:
-        return None
-    finally:
-        Image.MAX_IMAGE_PIXELS = saved
+    decoded, see :func:`_from_header`); None for other formats, unreadable files or unusual
+    layouts."""
+    def compression(im) -> tuple[list[list[int]], int] | None:
+        if im.format != "JPEG" or im.mode != "RGB":
+            return None
+        from PIL import JpegImagePlugin
+        tables = [list(map(int, im.quantization[k])) for k in sorted(im.quantization)]
+        sampling = JpegImagePlugin.get_sampling(im)
+        if not tables or len(tables) > 4 or sampling not in (0, 1, 2):
+            return None
+        return tables, int(sampling)
+
+    return _from_header(path, compression)
 
 
 def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int], int]:
