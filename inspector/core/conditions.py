@@ -147,6 +147,14 @@ def _channel_max(image: np.ndarray) -> np.ndarray:
     return cv2.max(cv2.max(r, g), b)
 
 
+def _moved_back(mask: np.ndarray, shift: tuple[float, float] | None) -> np.ndarray:
+    """A 0/255 uint8 mask of a frame's pixels, moved back by ``shift`` (dx, dy) as the frame
+    is: 255 wherever any part of a marked pixel lands (None: as it is)."""
+    if shift is None:
+        return mask
+    return cv2.compare(shift_images(mask, -shift[0], -shift[1]), 0, cv2.CMP_GT)
+
+
 def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
     """An RGB frame with its chroma blurred and its luma kept.
 
@@ -653,11 +661,8 @@ class Conditions(Estimator):
         near = channels = None
         unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
         if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
-            channels = cv2.compare(img, _UNCLIPPED, cv2.CMP_GT)
-            if shift is not None:
-                channels = cv2.compare(shift_images(channels, -shift[0], -shift[1]), 0,
-                                       cv2.CMP_GT)
-            channels = cv2.dilate(channels, _NEAR)
+            channels = cv2.dilate(_moved_back(cv2.compare(img, _UNCLIPPED, cv2.CMP_GT), shift),
+                                  _NEAR)
             near = _channel_max(channels)
         if was is not None:
             near = was if near is None else cv2.max(near, was)
@@ -686,9 +691,7 @@ class Conditions(Estimator):
         lit = cv2.inRange(img, _UNBLACK, _WHITE)  # 255: no channel clipped black
         if cv2.countNonZero(lit) == lit.size:
             return None
-        dark = cv2.compare(img, _UNBLACK, cv2.CMP_LT)
-        if shift is not None:
-            dark = cv2.compare(shift_images(dark, -shift[0], -shift[1]), 0, cv2.CMP_GT)
+        dark = _moved_back(cv2.compare(img, _UNBLACK, cv2.CMP_LT), shift)
         dark = cv2.compare(cv2.blur(dark, (3, 3)), 127, cv2.CMP_GT)
         return dark if cv2.countNonZero(_channel_max(dark)) else None
 
