@@ -208,7 +208,8 @@ class Recorder:
                 for r in mine:
                     if r.flagged and not r.image.size:
                         r.image = read_frame(by_rel[r.frame], **read_args(baseline, config)).image
-                        clipped = baseline.evaluate(r.image[None]).clipped
+                        clipped = (None if baseline.conditions is None else
+                                   baseline.conditions.prepare(r.image[None]).clipped)
                         r.clipped = None if clipped is None else clipped[0]
             writer.write(results, skipped, seen)
 
