@@ -1,6 +1,7 @@
 """The command line end to end on generated frames: outputs, skips, exit codes."""
 
 import csv
+import re
 import socket
 import subprocess
 import sys
@@ -309,11 +310,14 @@ def test_scan_counts_and_records_frames_judged_with_amplified_noise(learnt, caps
     printed = capsys.readouterr().out
     baseline = Store(root / "store").load("gate")
     top = baseline.conditions.gain_max_
-    assert (f"warning: 1 frame of gate: darker than every normal frame (brought back with a "
-            f"gain above {top:.2f}), judged with their noise amplified") in printed
     with open(root / "dark.csv", newline="") as fh:
         rows = {r["frame"]: r for r in csv.DictReader(fh)}
     assert rows[f"gate/{paths[0].name}"]["noise_amplified"] == ""
+    ratio = float(rows[f"gate/{paths[1].name}"]["noise_amplified"])
+    said = re.search(r"warning: 1 frame of gate: darker than every normal frame \(brought back "
+                     rf"with a gain above {top:.2f}, at most ([0-9.]+)x that, 1 of them at "
+                     r"1\.5x or more\), judged with their noise amplified", printed)
+    assert said and float(said.group(1)) == pytest.approx(ratio, abs=0.001)  # the column's
     # the bright frame's gain as read back (JPEG), doubled: the dark frame's, by the formula
     files = {f.rel: f for f in discover(src)[0]}
     bright = read_frame(files[f"gate/{paths[0].name}"],

@@ -4,6 +4,7 @@ captioned, frames judged with amplified noise captioned; old results files kept 
 from __future__ import annotations
 
 import csv
+from collections import Counter
 from dataclasses import replace
 from datetime import datetime, timezone
 
@@ -14,8 +15,10 @@ from scipy import ndimage
 from skimage import data as skdata
 
 from inspector.core.conditions import Conditions
+from inspector.jobs.scan import noise_note, note_amplified
 from inspector.storage.results import (
     COLUMNS,
+    Amplified,
     FrameResult,
     ResultWriter,
     overlay_picture,
@@ -68,11 +71,23 @@ def test_a_frame_judged_with_amplified_noise_says_so_in_its_caption_and_row(tmp_
     assert "judged with amplified noise: gain 2.120 over the learnt 1.410" in result_caption(r)
     assert r.noise_amplified == pytest.approx(2.12 / 1.41)  # the column: gain over learnt
     assert "amplified" not in result_caption(replace(r, amplified=None))
+    barely = replace(r, frame="dock/h.jpg", amplified=(1.411, 1.41), flagged=False)
     with ResultWriter(tmp_path / "out", all_scores=tmp_path / "all.csv") as w:
         w.write([r, replace(r, frame="dock/g.jpg", amplified=None, flagged=False)])
+        w.write([barely])
     with open(tmp_path / "all.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))
-    assert [row["noise_amplified"] for row in rows] == [f"{2.12 / 1.41:.4f}", ""]
+    assert [row["noise_amplified"] for row in rows] == [f"{2.12 / 1.41:.4f}", "",
+                                                        f"{1.411 / 1.41:.4f}"]
+    # the summary's note: how many, by how much at most, how many by 1.5x or more
+    notes = Counter()
+    note_amplified(w, notes)
+    assert notes == {noise_note("dock", w.amplified["dock"]): 2}
+    note = next(iter(notes))
+    assert "gain above 1.41, at most 1.504x that, 1 of them at 1.5x or more)" in note
+    w.amplified["dock"] = Amplified()
+    w.amplified["dock"].add(barely.amplified)
+    assert "at most 1.001x that)" in noise_note("dock", w.amplified["dock"])
 
 
 def test_a_watch_appending_to_results_written_before_a_column_adds_it(tmp_path):

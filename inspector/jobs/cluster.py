@@ -52,6 +52,7 @@ from inspector.jobs.scan import (
     ScanSummary,
     Streams,
     load_baseline,
+    note_amplified,
     read_args,
     scan_files,
     stream_order,
@@ -183,6 +184,9 @@ class Recorder:
     def __init__(self):
         self.calls: list[tuple[list, list, Any]] = []
         self.counts: Counter[str] = Counter()
+        #: Stays empty: the driver's writer counts the frames judged with amplified noise
+        #: as it replays the calls.
+        self.amplified: dict = {}
 
     def write(self, results=(), skipped=(), seen=None) -> list[str]:
         slim = [r if r.flagged else replace(r, image=np.zeros((0, 0, 3), np.uint8),
@@ -341,6 +345,7 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
             bar.update(len(part.files))
             submit()
     streams.note(notes)
+    note_amplified(writer, notes)
     return ScanSummary(scored=writer.counts["scored"], flagged=writer.counts["flagged"],
                        skipped=writer.counts["skipped"] + writer.counts["waiting"],
                        health=writer.counts["health"],

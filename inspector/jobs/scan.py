@@ -26,7 +26,13 @@ from inspector.storage.frames import (
     iter_batches,
     read_frame,
 )
-from inspector.storage.results import FrameResult, ResultWriter, Skipped
+from inspector.storage.results import (
+    STRONGLY_AMPLIFIED,
+    Amplified,
+    FrameResult,
+    ResultWriter,
+    Skipped,
+)
 from inspector.storage.store import DamagedBaseline, Store
 
 #: Frames scored together: amortises per-call overhead while a batch's patches still fit in
@@ -100,7 +106,8 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
     :meth:`~inspector.core.baseline.Baseline.evaluate` when already done (in the decoding
     threads). With ``streams``, a camera that runs with persistence is flagged by what
     stays (see :class:`Streams`). ``notes`` (a run's summary notes, counted per camera)
-    gets the frames' reading notes and the frames judged with amplified noise."""
+    gets the frames' reading notes; the frames judged with amplified noise are counted by
+    the writer (:func:`note_amplified`)."""
     if not frames:
         return []
     if evaluation is None:
@@ -122,9 +129,6 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
     if notes is not None:
         for f in frames:
             notes.update(f"{baseline.camera}: {n}" for n in f.notes)
-        dark = sum(a is not None for a in amplified)
-        if dark:
-            notes[noise_note(baseline.camera, baseline.conditions.gain_max_)] += dark
     return results
 
 
@@ -140,12 +144,24 @@ def _amplified(baseline: Baseline, evaluation: Evaluation, n: int
             for g, v in zip(evaluation.gains, evaluation.noise)]
 
 
-def noise_note(camera: str, gain_max: float) -> str:
+def noise_note(camera: str, amplified: Amplified) -> str:
     """The summary note of a camera's frames judged with amplified noise (after "N frames
-    of"); the same words as learn's note on them."""
+    of"): by how much at most, and how many by :data:`STRONGLY_AMPLIFIED` or more; the same
+    words as learn's note on them."""
+    strongly = (f", {amplified.strongly} of them at {STRONGLY_AMPLIFIED:g}x or more"
+                if amplified.strongly else "")
     return (f"{camera}: darker than every normal frame (brought back with a gain above "
-            f"{gain_max:.2f}), judged with their noise amplified by that gain: less sharply, "
-            f"and outside the guaranteed false-alarm rate (column noise_amplified)")
+            f"{amplified.learnt:.2f}, at most {amplified.largest:.3f}x that{strongly}), judged "
+            f"with their noise amplified by that gain: less sharply, and outside the "
+            f"guaranteed false-alarm rate (column noise_amplified)")
+
+
+def note_amplified(writer, notes: Counter) -> None:
+    """Add to a run's summary ``notes`` the frames ``writer`` wrote judged with amplified
+    noise, per camera (:attr:`ResultWriter.amplified`; a cluster worker's recorder has
+    none: the driver's writer counts them as it replays)."""
+    for camera, amplified in writer.amplified.items():
+        notes[noise_note(camera, amplified)] += amplified.frames
 
 
 class Streams:
@@ -309,6 +325,7 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
     summary.health = writer.counts["health"]
     summary.seconds = time.perf_counter() - started
     streams.note(summary.notes)
+    note_amplified(writer, summary.notes)
     return summary
 
 

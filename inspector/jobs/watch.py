@@ -44,7 +44,14 @@ from pathlib import Path
 from inspector.clock import now_iso
 from inspector.config import WatchSettings
 from inspector.errors import FrameError, UsageError
-from inspector.jobs.scan import BaselineCache, ScanSummary, Streams, read_args, score_frames
+from inspector.jobs.scan import (
+    BaselineCache,
+    ScanSummary,
+    Streams,
+    note_amplified,
+    read_args,
+    score_frames,
+)
 from inspector.jobs.settle import Arrival, Settler, is_done
 from inspector.storage.frames import read_frame
 from inspector.storage.ledger import Ledger
@@ -174,6 +181,7 @@ class Watcher:
         with self._lock:
             self.report.damaged = dict(self._damaged)
             self.streams.note(self.report.notes)
+            note_amplified(self.writer, self.report.notes)
         return self.report
 
     def _loop(self) -> None:

@@ -74,6 +74,33 @@ def format_row(frame: str, camera: str, time: str, score: float, threshold: floa
             overlay, "" if noise is None else f"{noise:.4f}")
 
 
+#: A frame whose gain is this many times the learnt one or more is counted apart in the
+#: summary's note on amplified noise: its noise variance is then at least 2.25 times what
+#: the model learnt (a reporting boundary that tells a few barely darker frames from many
+#: much darker ones; it changes no score).
+STRONGLY_AMPLIFIED = 1.5
+
+
+@dataclass
+class Amplified:
+    """The frames of one camera judged with amplified noise in a run, as the summary names
+    them: how many, the largest gain over the learnt one, how many at or above
+    :data:`STRONGLY_AMPLIFIED` times it, and the learnt gain."""
+
+    frames: int = 0
+    largest: float = 0.0
+    strongly: int = 0
+    learnt: float = 0.0
+
+    def add(self, amplified: tuple[float, float]) -> None:
+        """Count one frame's (gain, learnt gain)."""
+        ratio = amplified[0] / amplified[1]
+        self.frames += 1
+        self.largest = max(self.largest, ratio)
+        self.strongly += ratio >= STRONGLY_AMPLIFIED
+        self.learnt = amplified[1]
+
+
 def since_text(r: "FrameResult") -> str:
     """ISO 8601 time since which a flagged frame's persistent region has stayed ('' if none)."""
     return iso_time(r.since) if r.since is not None and r.flagged else ""
@@ -306,6 +333,8 @@ class ResultWriter:
         self.counts = {"scored": 0, "flagged": 0, "skipped": 0, "waiting": 0, "health": 0}
         #: Frames recorded as waiting for a usable baseline, per camera.
         self.waiting: Counter = Counter()
+        #: Frames judged with amplified noise, per camera (:class:`Amplified`).
+        self.amplified: dict[str, Amplified] = {}
 
     # --- writing ---------------------------------------------------------------------------
 
@@ -341,6 +370,8 @@ class ResultWriter:
                 for row in health_rows(r.frame, r.camera, t, r.health):
                     self.health_rows.row(row)
                     self.counts["health"] += 1
+                if r.amplified is not None:
+                    self.amplified.setdefault(r.camera, Amplified()).add(r.amplified)
                 self._points.setdefault(r.camera, []).append(
                     FramePoint(r.camera, t, r.frame, r.score, r.flagged, since_text(r)))
                 if self._dirty is not None:
