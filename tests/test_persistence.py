@@ -23,6 +23,7 @@ from inspector.core.persistence import (
     clearly_busy,
     local_maps,
     local_median,
+    median_filtered,
     opened,
     past_level,
     persistence,
@@ -203,6 +204,19 @@ def test_local_maps_take_out_light_over_part_of_the_view_and_opening_drops_thin_
     out = opened(step, 2)
     assert out[1, 1] == 0.0 and out[3:5, 4:7].min() == 7.0 and out.max() == 8.0
     assert np.array_equal(opened(step, 1), step)
+
+
+def test_median_filter_of_a_stack_is_scipys_map_by_map():
+    # scipy.ndimage.median_filter, edges repeating the nearest cell, map by map: the same
+    # values (each a value of its window), with ties, windows wider than the map and a
+    # stack cut into chunks.
+    rng = np.random.default_rng(3)
+    maps = rng.standard_normal((5, 7, 12)).astype(np.float32)
+    maps[:, 2:4, 3:9] = 1.5
+    for size in (1, 3, 5, 9, 15):
+        got = median_filtered(maps, size, chunk=200)
+        ref = np.stack([median_filter(m, size=size, mode="nearest") for m in maps])
+        assert got.dtype == np.float32 and np.array_equal(got, ref), size
 
 
 def test_state_carries_the_window_across_calls_and_through_arrays():

@@ -552,14 +552,45 @@ def local_median(maps: np.ndarray, local: int) -> np.ndarray:
     ndarray, shape (n, h, w), float32
     """
     import cv2
-    from scipy.ndimage import median_filter
 
     h, w = maps.shape[1:]
     small = (max(1, w // 2), max(1, h // 2))
-    size = (local // 2) | 1
-    return np.stack([cv2.resize(median_filter(cv2.resize(m, small, interpolation=cv2.INTER_AREA),
-                                              size=size, mode="nearest"),
-                                (w, h), interpolation=cv2.INTER_LINEAR) for m in maps])
+    filtered = median_filtered(np.stack([cv2.resize(m, small, interpolation=cv2.INTER_AREA)
+                                         for m in maps]), (local // 2) | 1)
+    return np.stack([cv2.resize(m, (w, h), interpolation=cv2.INTER_LINEAR) for m in filtered])
+
+
+def median_filtered(maps: np.ndarray, size: int, chunk: int = 1 << 22) -> np.ndarray:
+    """Each map's ``size`` x ``size`` median filter, edges repeating the nearest cell: the
+    values of ``scipy.ndimage.median_filter(m, size=size, mode="nearest")`` for finite maps
+    (the median of each window is one of its values), computed for a stack of maps at once
+    by partitioning every window's values (about a quarter of the CPU time of the filter
+    map by map, for 11 x 11 windows of 23 x 40 maps).
+
+    Parameters
+    ----------
+    maps : ndarray, shape (n, h, w), float32
+    size : int >= 1, odd
+    chunk : int
+        Window values gathered at once at most (bounds the temporary copy).
+
+    Returns
+    -------
+    ndarray, shape (n, h, w), float32
+    """
+    from numpy.lib.stride_tricks import sliding_window_view
+
+    n, h, w = maps.shape
+    r, k = size // 2, size * size
+    out = np.empty(maps.shape, np.float32)
+    step = max(1, chunk // max(1, h * w * k))
+    for start in range(0, n, step):
+        padded = np.pad(np.asarray(maps[start:start + step], np.float32),
+                        ((0, 0), (r, r), (r, r)), mode="edge")
+        windows = sliding_window_view(padded, (size, size), axis=(1, 2))
+        out[start:start + step] = np.partition(windows.reshape(len(padded), h, w, k), k // 2,
+                                               axis=-1)[..., k // 2]
+    return out
 
 
 def local_size(shape: tuple[int, ...]) -> int:
