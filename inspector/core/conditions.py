@@ -293,6 +293,9 @@ class Conditions(Estimator):
         self._fine: tuple | None = None
         #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
+        #: (ignore mask, reference cells, what the health measures need of them), made
+        #: once (:meth:`_health_terms`).
+        self._health: tuple | None = None
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
@@ -324,7 +327,7 @@ class Conditions(Estimator):
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = self._spectrum = self._fine = None
+        self._ref_terms = self._spectrum = self._fine = self._health = None
         if not len(images):
             return self
         ref = np.median(grey(images), axis=0)
@@ -768,22 +771,21 @@ class Conditions(Estimator):
         self.check_fitted()
         g = prepared.grey
         n = len(g)
-        kept = None if self.ignore_ is None else np.flatnonzero(~self.ignore_)
+        keep, quarter_at, count, textured = self._health_terms()
         flat = g.reshape(n, -1)
+        count = count or max(flat.shape[1], 1)
         # a quarter of the pixels is plenty (np.take: faster than fancy indexing)
-        quarter = flat[:, ::4] if kept is None else np.take(flat, kept[::4], axis=1)
-        clipped = flat >= 250
-        if kept is not None:
-            clipped &= ~self.ignore_.reshape(1, -1)
-        count = max(flat.shape[1] if kept is None else len(kept), 1)
+        quarter = flat[:, ::4] if quarter_at is None else np.take(flat, quarter_at, axis=1)
+        # clipped pixels counted by OpenCV, a frame at a time (numpy's compare, mask and
+        # count over the batch take twice as long)
+        clipped = [cv2.compare(x, 250, cv2.CMP_GE) for x in g]
         out = {"dark": percentile_rows(quarter, 99),
-               "bright": np.count_nonzero(clipped, axis=1) / count,
+               "bright": np.array([cv2.countNonZero(c if keep is None else c & keep)
+                                   for c in clipped], np.float64) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),
                "shift": np.hypot(prepared.shifts[:, 0], prepared.shifts[:, 1]),
                "gain": prepared.gains[:, 0].astype(np.float64)}
-        textured = self.ref_cells_ > max(2.0, 0.1 * float(np.median(self.ref_cells_))) \
-            if self.ref_cells_ is not None else None
         if textured is not None and textured.any() and n:
             if self.reference_ is not None:
                 lost = cell_correlation(prepared.aligned, self.reference_) < COVER_CORRELATION
@@ -834,10 +836,29 @@ class Conditions(Estimator):
         -------
         ndarray, shape (n,), float
         """
-        keep = None if self.ignore_ is None else (~self.ignore_).astype(np.uint8)
-        count = grey[0].size if keep is None else max(int(keep.sum()), 1)
+        keep, _, count, _ = self._health_terms()
+        count = count or grey[0].size
         return np.array([cv2.norm(g, b, cv2.NORM_L1, keep) / count
                          for g, b in zip(grey, before)])
+
+    def _health_terms(self) -> tuple[np.ndarray | None, np.ndarray | None, int,
+                                     np.ndarray | None]:
+        """What the health measures need of the ignore mask and the reference cells, made
+        once per fit: the pixels kept, (H, W) uint8 1/0 (None: all); the flat indices of
+        every fourth of them (None: every fourth pixel); how many there are (at least 1);
+        and the textured cells, (g, g) bool (None before ``ref_cells_`` is known)."""
+        ignore, cells = self.ignore_, self.ref_cells_
+        if (self._health is None or self._health[0] is not ignore
+                or self._health[1] is not cells):
+            keep = quarter = count = None
+            if ignore is not None:
+                keep = (~ignore).astype(np.uint8)
+                kept = np.flatnonzero(keep)
+                quarter, count = kept[::4], max(len(kept), 1)
+            textured = (None if cells is None else
+                        cells > max(2.0, 0.1 * float(np.median(cells))))
+            self._health = (ignore, cells, (keep, quarter, count, textured))
+        return self._health[2]
 
     @staticmethod
     def _detail(prepared: Prepared) -> np.ndarray:
