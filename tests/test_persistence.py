@@ -204,6 +204,8 @@ def test_local_maps_take_out_light_over_part_of_the_view_and_opening_drops_thin_
     out = opened(step, 2)
     assert out[1, 1] == 0.0 and out[3:5, 4:7].min() == 7.0 and out.max() == 8.0
     assert np.array_equal(opened(step, 1), step)
+    stack = np.stack([step, np.roll(step, 3, axis=1) * 2.0])  # a stack: each map opened on its own
+    assert np.array_equal(opened(stack, 2), np.stack([opened(m, 2) for m in stack]))
 
 
 def test_median_filter_of_a_stack_is_scipys_map_by_map():

@@ -277,7 +277,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     if buf and buf[0].shape != maps.shape[1:]:
         buf, buf_t, onset, held = [], [], None, None  # another baseline's map size
     out = np.empty_like(maps)
-    levels = np.zeros(n)
+    steady = np.empty_like(maps)  # each frame's steady level, opened below
     filled = np.zeros(n, bool)
     stepped = np.zeros(n, bool)
     late = np.zeros(n, bool)
@@ -300,8 +300,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
             level, raw, _ = _step(late_buf, window, around=around, scaled=scaled,
                                   spreads=spreads)
-            out[i] = opened(raw, footprint)
-            levels[i] = float(opened(level, footprint).max())
+            out[i], steady[i] = raw, level
+            if threshold is not None:
+                out[i] = opened(raw, footprint)
             stepped[i] = past > 0 and len(late_buf) > window
             filled[i] = (len(late_t) >= window
                          and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
@@ -322,8 +323,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf_t.append(t)
         del buf[:-keep], buf_t[:-keep]
         level, raw, scale = _step(buf, window, held, around, scaled, spreads)
-        out[i] = opened(raw, footprint)
-        levels[i] = float(opened(level, footprint).max())
+        out[i], steady[i] = raw, level
+        if threshold is not None:  # (else opened below, all frames at once)
+            out[i] = opened(raw, footprint)
         stepped[i] = past > 0 and len(buf) > window
         filled[i] = len(buf) >= window
         if threshold is not None:
@@ -339,6 +341,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 reference = level - raw
                 held = np.where(region & filled[i] & stepped[i], reference,
                                 np.nan).astype(np.float32)
+    if threshold is None:  # (the maps are not needed in the loop: opened at once)
+        out = opened(out, footprint)
+    levels = (opened(steady, footprint).reshape(n, -1).max(axis=1).astype(np.float64) if n
+              else np.zeros(0))
     if not n:
         return PersistenceResult(out, np.zeros(0), filled, since,
                                  state if state is not None else StreamState.empty(), late,
@@ -367,19 +373,21 @@ def opened(level: np.ndarray, footprint: int) -> np.ndarray:
 
     Parameters
     ----------
-    level : ndarray, shape (h, w), float
+    level : ndarray, shape (..., h, w), float
+        One map or a stack of maps (each opened on its own).
     footprint : int >= 1
 
     Returns
     -------
-    ndarray, shape (h, w), float32
+    ndarray, shape (..., h, w), float32
     """
     level = np.asarray(level, np.float32)
     if footprint <= 1:
         return level
     from scipy.ndimage import grey_opening
 
-    return grey_opening(level, size=(footprint, footprint), mode="nearest")
+    return grey_opening(level, size=(1,) * (level.ndim - 2) + (footprint, footprint),
+                        mode="nearest")
 
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
