@@ -283,7 +283,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     late = np.zeros(n, bool)
     late_buf: list[np.ndarray] = []
     late_t: list[float] = []
-    spreads: dict = {}  # robust spread of each frame, computed once (see _spreads)
+    frames = list(maps)  # one view a frame: its id keys its robust spread (see _spreads)
+    spreads: dict = ({id(f): (f, float(v)) for f, v in zip(frames, robust_spread(maps))}
+                     if scaled and n else {})  # (all at once: one call, not one a frame)
     since = np.full(n, np.nan)
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
@@ -297,7 +299,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             pos = int(np.searchsorted(buf_t, t, side="right"))
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
                 late_buf, late_t = buf[:pos], buf_t[:pos]
-            late_buf, late_t = (late_buf + [maps[i]])[-keep:], (late_t + [t])[-keep:]
+            late_buf, late_t = (late_buf + [frames[i]])[-keep:], (late_t + [t])[-keep:]
             level, raw, _ = _step(late_buf, window, around=around, scaled=scaled,
                                   spreads=spreads)
             out[i], steady[i] = raw, level
@@ -307,7 +309,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             filled[i] = (len(late_t) >= window
                          and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
             if pos or buf_t[0] - t <= max_gap:
-                buf.insert(pos, maps[i])
+                buf.insert(pos, frames[i])
                 buf_t.insert(pos, t)
                 del buf[:-keep], buf_t[:-keep]
             if threshold is not None and onset is not None:
@@ -319,7 +321,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         if buf_t and (t - buf_t[-1] > max_gap or b != block):  # (late frames: above)
             buf, buf_t, onset, held = [], [], None, None
         block = b
-        buf.append(maps[i])
+        buf.append(frames[i])
         buf_t.append(t)
         del buf[:-keep], buf_t[:-keep]
         level, raw, scale = _step(buf, window, held, around, scaled, spreads)
