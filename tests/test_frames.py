@@ -219,14 +219,22 @@ def test_reading_ahead_gives_the_same_batches_and_records(tmp_path):
     files[2].path.write_bytes(b"not a jpeg")
     args = {"long_side": 48, "max_pixels": 10**8, "time_formats": []}
     got = []
-    for ahead in (False, True):
+    # also: a sample (the resized frame, the broken file, two more) decoded before by a
+    # copy that keeps its frames for the source, whose pass takes them (none left)
+    for ahead, kept in ((False, False), (True, False), (False, True), (True, True)):
         source = FileSource(files, np.zeros(len(files), int), (48, 32), (48, 32), args, "cam")
         if ahead:
             source.prefetch(range(len(files)), 3, ahead=1)
+        if kept:
+            sample = list(source.spawn(keep=True).batches([2, 5, 6, 9], 2))
+            assert [i.tolist() for i, _ in sample] == [[5], [6, 9]] and len(source._decoded) == 3
         read = [(i.tolist(), b) for i, b in source.batches(range(len(files)), 3)]
+        assert not source._decoded
         got.append((read, source.skipped, source.notes))
-    (plain, skipped, notes), (early, skipped_early, notes_early) = got
-    assert [i for i, _ in plain] == [i for i, _ in early] == [[0, 1], [3, 4, 5], [6, 7, 8], [9]]
-    assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(plain, early))
-    assert skipped == skipped_early and list(skipped) == [2]
-    assert notes == notes_early and sum(notes.values()) == 1
+    plain, skipped, notes = got[0]
+    assert [i for i, _ in plain] == [[0, 1], [3, 4, 5], [6, 7, 8], [9]]
+    assert list(skipped) == [2] and sum(notes.values()) == 1
+    for early, skipped_early, notes_early in got[1:]:
+        assert [i for i, _ in plain] == [i for i, _ in early]
+        assert all(np.array_equal(a, b) for (_, a), (_, b) in zip(plain, early))
+        assert skipped == skipped_early and notes == notes_early

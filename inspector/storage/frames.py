@@ -475,7 +475,7 @@ class FrameBatch:
 
 def iter_batches(files: Iterable[FrameFile], batch_size: int, workers: int = 2,
                  work: Callable[[np.ndarray], object] | None = None,
-                 **read_args) -> Iterator[FrameBatch]:
+                 known: dict[int, Frame] | None = None, **read_args) -> Iterator[FrameBatch]:
     """Decode frames in batches, yielding the batches in input order.
 
     Each batch of up to ``batch_size`` consecutive files is decoded by one worker thread
@@ -494,10 +494,17 @@ def iter_batches(files: Iterable[FrameFile], batch_size: int, workers: int = 2,
     work : callable, optional
         ``work(images)`` with images of shape (n, H, W, 3), uint8; must not depend on the
         other batches (they run concurrently).
+    known : dict, optional
+        Frames decoded before with the same ``read_args``, by ``id`` of their file: taken
+        from it (removed) instead of decoded again.
     """
     def one(chunk: list[FrameFile]) -> FrameBatch:
         done = FrameBatch([], [])
         for f in chunk:
+            frame = known.pop(id(f), None) if known else None
+            if frame is not None:
+                done.frames.append(frame)
+                continue
             try:
                 done.frames.append(read_frame(f, **read_args))
             except FrameError as exc:
