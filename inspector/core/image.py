@@ -814,14 +814,28 @@ def exposure_copy(image: np.ndarray, gain: float, rng: np.random.Generator,
     return cv2.addWeighted(image, float(gain), noise, float(extra), 0.0, dtype=cv2.CV_8U)
 
 
+#: Pixels by which :func:`recompress` moves a frame's JPEG block grid: half a block of 8 (a
+#: quarter of a 4:2:0 colour block of 16), so that no block lines up with the export's.
+REGRID = 4
+
+
 def recompress(image: np.ndarray, tables, subsampling: int) -> np.ndarray:
-    """The frame JPEG-encoded and decoded again as its camera's exports are (for frames
-    learnt at their exported size).
+    """The frame JPEG-encoded and decoded again as its camera's exports are, on a block grid
+    shifted by :data:`REGRID` pixels (for frames learnt at their exported size).
 
     A frame caught at another exposure is compressed anew: its 8 x 8 block artefacts differ
     from those of the frames learnt from by about one quantisation error. At the exports'
     own size nothing averages them away, so they are part of what a normal frame after an
-    exposure step looks like. (Baseline tables and their scaling with quality: ITU-T T.81
+    exposure step looks like. A decoded frame encoded again on its own grid redraws only
+    part of them: its coefficients already sit on the quantisation lattice, a scaled one
+    rounds back near it and the coefficients quantised to zero stay zero. On a grid half a
+    block away its quantisation error is drawn anew, as a fresh compression's is (the
+    frame keeps its first compression's error too, so this errs on the generous side at
+    small steps). Measured on scikit-image's astronaut, coffee and chelsea at 320 px,
+    Pillow qualities 75/85/95, gains 0.7-1.3 (rms of the difference to the frame as
+    exported, once brought back by the gain): a fresh compression 1.8-5.8 levels, the same
+    grid 40-50 % less (coffee q85 gain 1.3: 4.02 vs 2.28), the shifted grid within -15 %
+    to +30 % of it (3.83). (Baseline tables and their scaling with quality: ITU-T T.81
     Annex K, IJG libjpeg.)
 
     Parameters
@@ -841,9 +855,13 @@ def recompress(image: np.ndarray, tables, subsampling: int) -> np.ndarray:
 
     from PIL import Image
 
+    # the frame moved down and right by REGRID pixels (its first rows and columns mirrored
+    # into the margin), encoded, decoded and moved back
+    padded = cv2.copyMakeBorder(np.ascontiguousarray(image, dtype=np.uint8), REGRID, 0,
+                                REGRID, 0, cv2.BORDER_REFLECT_101)
     buf = io.BytesIO()
-    Image.fromarray(np.ascontiguousarray(image, dtype=np.uint8)).save(
+    Image.fromarray(padded).save(
         buf, "JPEG", qtables=[[int(v) for v in t] for t in tables], subsampling=subsampling)
     buf.seek(0)
     with Image.open(buf) as im:
-        return np.asarray(im.convert("RGB"))
+        return np.ascontiguousarray(np.asarray(im.convert("RGB"))[REGRID:, REGRID:])
