@@ -19,10 +19,12 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 
-def add_options(ap, size: str, normal: int) -> None:
+def add_options(ap, size: str, normal: int, frames: int = 200) -> None:
     """``--frames``, ``--normal``, ``--rounds``, ``--size`` and ``--keep`` of a bench that
-    scans the depot's frames, with its default frame size ``"WxH"`` and normal frames."""
-    ap.add_argument("--frames", type=int, default=200, help="frames to scan (two cameras)")
+    scans the depot's frames, with its default frame size ``"WxH"``, normal frames and
+    frames to scan."""
+    ap.add_argument("--frames", type=int, default=frames,
+                    help=f"frames to scan (two cameras; default {frames})")
     ap.add_argument("--normal", type=int, default=normal,
                     help="normal frames per camera to learn from")
     ap.add_argument("--rounds", type=int, default=3)

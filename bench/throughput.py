@@ -14,13 +14,20 @@ and prints frames/s of both and their ratio (target: >= 0.8 on 2 cores), by wall
 and per CPU second of this process. Alternating rounds in one run keeps the ratio fair on
 a shared, noisy machine.
 
+1,000 frames by default: a scan loads each camera's baseline once (checksums, arrays,
+the PPCA's per-location terms: 40-95 ms of CPU a camera here), and over the 200 frames this
+bench used to scan that was 0.5-1 ms a frame, 5-7 % of the scan, against about 0.12 ms at
+1,000 frames and under 0.05 ms on the 3,000-frame run the speed target is set for (the
+rest of a scan's one-off work, the ledger and events.csv, is about 2 ms). ``--frames 200``
+gives the figures of the README's earlier rows.
+
 With ``--stages``, one more scan runs with a CPU timer around each stage (per thread,
 ``time.thread_time``) and prints where a frame's CPU goes: decoding, preparation
 (registration, gain fit, brightness field, ...), health measures, the model, judging,
 writing, baseline loading and discovery. The timers cost a little CPU themselves, so the
 stage table comes from its own scan, not from the rounds above.
 
-    python bench/throughput.py [--frames 200] [--rounds 3] [--stages]
+    python bench/throughput.py [--frames 1000] [--rounds 3] [--stages]
 """
 
 from __future__ import annotations
@@ -46,7 +53,7 @@ from inspector.storage.store import Store  # noqa: E402
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    add_options(ap, size="1920x1080", normal=120)
+    add_options(ap, size="1920x1080", normal=120, frames=1000)
     ap.add_argument("--long-side", type=int, default=0,
                     help="working long side (default: the tool's default)")
     ap.add_argument("--stages", action="store_true",
@@ -118,7 +125,7 @@ def _stages():
 
     return [
         ("discovery of the files", 0, scan, "discover"),
-        ("baseline loading", 0, scan, "load_baseline"),
+        ("baseline loading (once a camera)", 0, scan, "load_baseline"),
         ("decoding (read_frame)", 0, frames, "read_frame"),
         ("evaluate (worker threads)", 0, Baseline, "evaluate"),
         ("preparation", 1, Conditions, "prepare"),
