@@ -351,15 +351,17 @@ class ResultWriter:
             overlays = [self._save_files(r) for r in results]
             times = [iso_time(r.time) for r in results]
             if self.ledger is not None:
-                entries = [dict(self._file(r.frame, seen), camera=r.camera, status="scored",
-                                score=r.score, threshold=r.threshold, p_value=r.p_value,
+                stamp = now_iso()  # one clock reading a batch (each takes a timezone lookup)
+                entries = [dict(self._file(r.frame, seen, stamp), camera=r.camera,
+                                status="scored", score=r.score, threshold=r.threshold,
+                                p_value=r.p_value,
                                 flagged=int(r.flagged), version=r.model, capture_time=t,
                                 overlay=overlay, written=0,
                                 health=json.dumps(r.health) if r.health else None,
                                 since=since_text(r), noise_amplified=r.noise_amplified)
                            for r, t, overlay in zip(results, times, overlays)]
-                entries += [dict(self._file(s.frame, seen), camera=s.camera, reason=s.reason,
-                                 status="waiting" if s.waiting else "skipped",
+                entries += [dict(self._file(s.frame, seen, stamp), camera=s.camera,
+                                 reason=s.reason, status="waiting" if s.waiting else "skipped",
                                  written=0 if self._csv_skip(s) else 1)
                             for s in skipped]
                 self.ledger.record(entries)  # committed: from here on the frames are done
@@ -423,7 +425,10 @@ class ResultWriter:
             self.all_scores.row(row)
         self.counts["scored"] += 1
 
-    def _file(self, rel: str, seen: Mapping[str, Seen] | None) -> dict:
+    def _file(self, rel: str, seen: Mapping[str, Seen] | None, stamp: str) -> dict:
+        """A frame's ledger columns: its file facts (from ``seen``, else looked up under
+        ``source``, found at ``stamp``) and ``scored_at`` = ``stamp`` (the time of the
+        batch, ISO 8601)."""
         found = seen.get(rel) if seen else None
         if found is None:
             path = (self.source / rel) if self.source is not None else Path(rel).resolve()
@@ -432,9 +437,9 @@ class ResultWriter:
                 size, mtime = st.st_size, st.st_mtime
             except OSError:
                 size = mtime = None
-            found = Seen(str(path), size, mtime, now_iso())
+            found = Seen(str(path), size, mtime, stamp)
         return {"path": found.path, "rel": rel, "size": found.size, "mtime": found.mtime,
-                "seen_at": found.seen_at, "scored_at": now_iso()}
+                "seen_at": found.seen_at, "scored_at": stamp}
 
     # --- after a crash ---------------------------------------------------------------------
 

@@ -1312,13 +1312,14 @@ class _BlockLayout:
         blocks = self.blocks(images, entries)
         norms = np.einsum("ijne,ijne->ijn", blocks, blocks)
         (gh, gw), r = self.grid, self.r
-        sq = proj = None
-        for k in range(r * r):
+        sq = norms[:gh, :gw].copy()
+        proj = np.matmul(blocks[:gh, :gw], self.B[0])  # (gh, gw, n, q)
+        p = np.empty_like(proj)  # the next blocks' products, added in place in turn
+        for k in range(1, r * r):
             a, b = divmod(k, r)
-            part = blocks[a:a + gh, b:b + gw]
-            p = np.matmul(part, self.B[k])  # (gh, gw, n, q)
-            sq = norms[a:a + gh, b:b + gw].copy() if sq is None else sq + norms[a:a + gh, b:b + gw]
-            proj = p if proj is None else proj + p
+            np.matmul(blocks[a:a + gh, b:b + gw], self.B[k], out=p)
+            sq += norms[a:a + gh, b:b + gw]
+            proj += p
         L = gh * gw
         quad = noise_quad(sq.reshape(L, -1), proj.reshape(L, -1, proj.shape[-1]),
                           model.sigma2_, model._kept, noise) * (1 / 255) ** 2
