@@ -245,6 +245,25 @@ def test_blocks_calibration_drops_are_not_scored():
     np.testing.assert_array_equal(lean.W_, plain.W_)
 
 
+def test_work_beside_the_final_fit_gets_the_held_out_maps_and_its_error_is_raised():
+    # fit(beside=) runs it on the held-out maps while the final model is fitted: the same
+    # maps as returned, the same model as without it; what it raises, fit raises.
+    rng = np.random.default_rng(2)
+    imgs = np.clip(rng.normal(120, 8, (40, 8, 16, 3)), 0, 255).astype(np.uint8)
+    seen: list = []
+    plain, beside = PatchPPCA(batch_size=8), PatchPPCA(batch_size=8)
+    held = beside.fit(ArraySource(imgs), beside=seen.append)
+    assert len(seen) == 1 and seen[0] is held
+    np.testing.assert_array_equal(held.maps, plain.fit(ArraySource(imgs)).maps)
+    np.testing.assert_array_equal(beside.W_, plain.W_)
+
+    def fails(held):
+        raise RuntimeError("calibration failed")
+
+    with pytest.raises(RuntimeError, match="calibration failed"):
+        PatchPPCA(batch_size=8).fit(ArraySource(imgs), beside=fails)
+
+
 def test_masked_fit_is_the_ppca_of_the_observed_features():
     # The fit path with an ignore mask: a location partly under the mask is the PPCA of its
     # observed features only (Tipping & Bishop 1999), which scikit-learn's PCA.score_samples

@@ -404,11 +404,50 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                                   compression=_compression(files, source_size, size))
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
             extra_args["alpha"] = _planned_alpha(cfg, times)
+        calibrated: list = []
+        if takes(model, "beside"):  # calibrated while the final model is fitted
+            extra_args["beside"] = lambda held: calibrated.append(_calibrated(
+                held, cfg, files, times, source, prepared, conditions, masking))
         held = model.fit(prepared, mask, **extra_args)
     except ValueError as exc:
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
     finally:
         source.stop()
+    used, good, calibration, threshold, regimes, persistence, notes, warnings = (
+        calibrated[0] if calibrated else
+        _calibrated(held, cfg, files, times, source, prepared, conditions, masking))
+    warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
+    facts = VersionFacts(
+        created=started, frames=used, frames_skipped=len(source.skipped),
+        first_frame_time=min(good), last_frame_time=max(good),
+        settings={"frames": settings_dict(fs), "model": settings_dict(cfg.model),
+                  "calibration": settings_dict(cfg.calibration),
+                  "conditions": settings_dict(cfg.conditions),
+                  "mask": settings_dict(cfg.mask)},
+        text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}, masked=masking))
+    baseline = Baseline(camera=camera, version="", model=model, calibration=calibration,
+                        size=size, source_size=source_size, mask=mask, conditions=conditions,
+                        regimes=regimes, persistence=persistence)
+    baseline.meta = describe(baseline, facts, inspector.__version__)
+    version = store.save(baseline, activate=activate)
+    skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
+    seconds = (now() - started).total_seconds()
+    notes.append(_masked_note(masking))
+    if text_boxes:
+        notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
+                     + ", ".join(str(tuple(b)) for b in text_boxes))
+    return LearnReport(camera, version, used, skipped, threshold, warnings, seconds,
+                       text_boxes=text_boxes, notes=notes)
+
+
+def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list,
+                source: FileSource, prepared: PreparedSource, conditions: Conditions,
+                masking: dict) -> tuple:
+    """The calibration of the held-out maps (threshold, regimes, persistence) once the
+    model's pass over the frames is done: (frames used, their capture times, calibration,
+    threshold, regimes, persistence, notes, warnings). Raises UsageError when too few
+    frames were read or the maps cannot be calibrated."""
+    camera = cfg.name
     used = len(files) - len(source.skipped)
     if used < MIN_FRAMES:
         raise UsageError(f"camera {camera}: only {used} of {len(files)} normal frames could be "
@@ -468,28 +507,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                          for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
     persistence = _persistence(held, held_blocks, regimes, prepared.appearance, times, alpha,
                                cfg, notes)
-    warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
-    facts = VersionFacts(
-        created=started, frames=used, frames_skipped=len(source.skipped),
-        first_frame_time=min(good), last_frame_time=max(good),
-        settings={"frames": settings_dict(fs), "model": settings_dict(cfg.model),
-                  "calibration": settings_dict(cfg.calibration),
-                  "conditions": settings_dict(cfg.conditions),
-                  "mask": settings_dict(cfg.mask)},
-        text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}, masked=masking))
-    baseline = Baseline(camera=camera, version="", model=model, calibration=calibration,
-                        size=size, source_size=source_size, mask=mask, conditions=conditions,
-                        regimes=regimes, persistence=persistence)
-    baseline.meta = describe(baseline, facts, inspector.__version__)
-    version = store.save(baseline, activate=activate)
-    skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
-    seconds = (now() - started).total_seconds()
-    notes.append(_masked_note(masking))
-    if text_boxes:
-        notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
-                     + ", ".join(str(tuple(b)) for b in text_boxes))
-    return LearnReport(camera, version, used, skipped, threshold, warnings, seconds,
-                       text_boxes=text_boxes, notes=notes)
+    return used, good, calibration, threshold, regimes, persistence, notes, warnings
 
 
 def _compression(files: Sequence[FrameFile], source_size: tuple[int, int],

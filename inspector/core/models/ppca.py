@@ -797,7 +797,7 @@ class PatchPPCA(DensityModel):
     # fitting
 
     def fit(self, source: FrameSource, mask: np.ndarray | None = None, pool=None,
-            alpha: float | None = None) -> HeldOut:
+            alpha: float | None = None, beside=None) -> HeldOut:
         """Fit on every frame of ``source``; score each frame once with a model of the
         frames before it (forward chaining over the time blocks).
 
@@ -829,6 +829,12 @@ class PatchPPCA(DensityModel):
             (counted from the frames given, before decoding) are only trained on, not
             scored, since calibration would drop their maps; their fold models are not
             fitted. None: every block from ``calibrate_from`` on is scored.
+        beside : callable, optional
+            ``beside(held)``, run with the held-out maps in a thread while the final model
+            is fitted from the moments (the calibration, which needs only those maps, then
+            takes no time of its own: fitting runs LAPACK in two threads, mostly outside
+            Python's lock); ``fit`` returns when both are done and raises what ``beside``
+            raised.
 
         Returns
         -------
@@ -881,14 +887,24 @@ class PatchPPCA(DensityModel):
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
+        held_idx = [i for fold in folds for i, _ in fold]
+        held_maps = [m for fold in folds for _, m in fold]
+        held = (HeldOut(np.concatenate(held_idx), np.concatenate(held_maps)) if held_maps else
+                HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32)))
+        if beside is None:
+            self._fit_final(moments)
+        else:
+            with ThreadPoolExecutor(1) as pool_beside:
+                job = pool_beside.submit(beside, held)
+                self._fit_final(moments)
+                job.result()
+        return held
+
+    def _fit_final(self, moments: Moments) -> None:
+        """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass)."""
         q = self._heldout_q(*self._last_split)
         del self._last_split, self._few_blocks
         self._set(*self._fit_moments(moments, q))
-        held_idx = [i for fold in folds for i, _ in fold]
-        held_maps = [m for fold in folds for _, m in fold]
-        if held_maps:
-            return HeldOut(np.concatenate(held_idx), np.concatenate(held_maps))
-        return HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32))
 
     def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
         """The positions :meth:`fit` without a pool reads its frames in (``source.batches``:
