@@ -22,6 +22,7 @@ from inspector.core.image import (
     clip_loss,
     exposure_copy,
     grey,
+    median_stack,
     noise_bank,
     noise_sigma,
     percentile_rows,
@@ -134,6 +135,18 @@ def test_row_percentile_is_numpys():
         for q in (99, 50, 10):
             got, want = percentile_rows(x, q), np.percentile(x, q, axis=1)
             assert got.dtype == want.dtype and np.array_equal(got, want)
+
+
+def test_median_over_frames_is_numpys():
+    # numpy.median along the first axis is the reference, to the last bit and in its
+    # dtype: stacks of the bundled camera photograph's rows (uint8, float32 and float64,
+    # with ties), an even and an odd number of frames, one frame
+    rows = _camera_image().reshape(64, 8, -1)[..., :40]  # float32
+    grey8 = rows.astype(np.uint8)
+    for x in (grey8, grey8[:47], grey8[:1], rows / 3,
+              np.round(rows[:20].astype(np.float64) / 16)):
+        got, want = median_stack(x), np.median(x, axis=0)
+        assert got.dtype == want.dtype and np.array_equal(got, want)
 
 
 def _third_pixel_pair(name: str) -> tuple[np.ndarray, np.ndarray]:

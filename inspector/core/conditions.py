@@ -60,6 +60,7 @@ from inspector.core.image import (
     grey,
     halved,
     lucas_kanade,
+    median_stack,
     percentile_rows,
     phase_shifts,
     phase_spectrum,
@@ -330,17 +331,17 @@ class Conditions(Estimator):
         self._ref_terms = self._spectrum = self._fine = self._health = None
         if not len(images):
             return self
-        ref = np.median(grey(images), axis=0)
+        ref = median_stack(grey(images))
         ref_rgb = None
         for _ in range(2):  # align and normalise the sample to a first reference, then redo
             rgb = self._prepare(images, ref, ref_rgb).images
-            ref = np.median(grey(rgb), axis=0)
-            ref_rgb = np.median(rgb, axis=0).astype(np.uint8)
+            ref = median_stack(grey(rgb))
+            ref_rgb = median_stack(rgb).astype(np.uint8)
         self.reference_ = ref.astype(np.float32)
         self.reference_rgb_ = ref_rgb
         rec = self.prepare(images)
-        self.ref_cells_ = np.median(cell_contrast(grey(rec.images)), axis=0)
-        self.ref_detail_ = np.median(self._detail(rec), axis=0)
+        self.ref_cells_ = median_stack(cell_contrast(grey(rec.images)))
+        self.ref_detail_ = median_stack(self._detail(rec))
         self.set_limits(self.measures(rec))
         return self
 

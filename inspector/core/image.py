@@ -656,6 +656,31 @@ def percentile_rows(x: np.ndarray, q: float) -> np.ndarray:
     return np.where(t >= 0.5, b - d * (1 - t), a + d * t).astype(x.dtype, copy=False)
 
 
+def median_stack(x: np.ndarray) -> np.ndarray:
+    """``np.median(x, axis=0)``, the same numbers, several times faster on a stack of a few
+    dozen frames: one sort along the first axis (numpy's partition, which its median uses,
+    runs lane by lane there; 48 frames of 320 x 180: 27 -> 9 ms in float32, 49 -> 33 ms
+    for RGB uint8), then the mean of the two middle values (the middle one when their
+    number is odd) as numpy takes it: in float32 for float32, in float64 for integers.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n, ...), no NaN
+
+    Returns
+    -------
+    ndarray, shape x.shape[1:], float64 (float32 for float32 ``x``)
+    """
+    if not len(x):
+        return np.median(x, axis=0)
+    floats = x.dtype in (np.float32, np.float64)
+    s = np.sort(x, axis=0, kind=None if floats else "stable")  # (stable: radix for uint8)
+    n = len(s)
+    dtype = s.dtype if floats else np.dtype(np.float64)
+    lo, hi = s[(n - 1) // 2].astype(dtype), s[n // 2].astype(dtype)
+    return (lo + hi) / dtype.type(2)
+
+
 #: Levels the light within a working pixel is summarised by (:func:`subpixel_levels`).
 FINE_LEVELS = 8
 

@@ -20,6 +20,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
+from inspector.core.image import median_stack
+
 #: Gaussian blur of the standardised map, in cells.
 SMOOTH_SIGMA = 1.0
 _MAD_TO_SD = 1.4826
@@ -37,8 +39,8 @@ def location_stats(heldout_maps: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     center, scale : ndarray, shape (h, w), float32
     """
     m = np.asarray(heldout_maps, dtype=np.float64)
-    center = np.median(m, axis=0)
-    scale = _MAD_TO_SD * np.median(np.abs(m - center), axis=0)
+    center = median_stack(m)
+    scale = _MAD_TO_SD * median_stack(np.abs(m - center))
     positive = scale[scale > 0]
     floor = 0.1 * float(np.median(positive)) if positive.size else 1.0
     return center.astype(np.float32), np.maximum(scale, floor).astype(np.float32)

@@ -5,6 +5,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
+from inspector.core.image import median_stack
+
 
 def find_text_boxes(greys: np.ndarray, ignore: np.ndarray | None = None,
                     ) -> list[tuple[int, int, int, int]]:
@@ -218,7 +220,7 @@ def _changing_strokes(g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray
 
 def _aligned(g: np.ndarray) -> np.ndarray:
     """Frames shifted onto their median frame (phase correlation, sub-pixel)."""
-    ref = np.median(g, axis=0).astype(np.float32)
+    ref = median_stack(g).astype(np.float32)
     window = cv2.createHanningWindow(ref.shape[::-1], cv2.CV_32F)
     out = np.empty_like(g)
     for i, x in enumerate(g):
