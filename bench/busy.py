@@ -15,10 +15,13 @@ and the share of left objects flagged within 5 frames of appearing, with the med
 (frames after the first one the object is in; 0 = flagged when it appears). Objects not
 flagged because every one of those frames was held back with a camera condition (an
 underexposed evening, say: reported in health.csv, never flagged as an anomaly) are counted
-apart, as "held".
+apart, as "held". With ``--detail``, the traffic-only frames flagged with persistence on are
+also sorted by kind, per scene: "start" (the first full window of a burst: no frame before
+it to measure a change from), "after" (within a window of an object taken away: the
+window still holds it) and "other", with their positions in the camera's frames to scan.
 
     python bench/busy.py [--normal 300] [--new 240] [--seeds 1,2,3] [--size 960x540]
-                         [--camera gate]
+                         [--camera gate] [--detail]
 """
 
 from __future__ import annotations
@@ -29,6 +32,7 @@ import dataclasses
 import sys
 import tempfile
 import time
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
@@ -38,7 +42,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from inspector.config import PersistenceSettings, load_config  # noqa: E402
 from inspector.core.calibration import rate_interval  # noqa: E402
 from inspector.demo.scenario import BUSY_CAMERAS, generate, load_truth  # noqa: E402
-from inspector.demo.traffic import busy_results  # noqa: E402
+from inspector.demo.traffic import busy_results, left_objects  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402
 from inspector.jobs.scan import run_scan  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
@@ -47,6 +51,9 @@ from inspector.storage.store import Store  # noqa: E402
 CAMERA = "gate"
 #: A left object counts as caught when flagged within this many frames of appearing.
 WITHIN = 5
+#: Seconds between frames that start a new burst (--detail): the demo's bursts are frames
+#: 2 s apart, hours from each other.
+GAP = 60.0
 
 
 def evaluate(truth: list[tuple[str, str, str]], flagged: set[str], camera: str,
@@ -57,6 +64,27 @@ def evaluate(truth: list[tuple[str, str, str]], flagged: set[str], camera: str,
     r["interval"] = rate_interval(r["false"], r["quiet"])
     r["median_delay"] = float(np.median(r["delays"])) if r["delays"] else float("nan")
     return r
+
+
+def false_kinds(truth: list[tuple[str, str, str]], flagged: set[str], camera: str,
+                window: int, gap: float) -> dict[str, list[int]]:
+    """Positions (in the camera's frames to scan, time order) of the traffic-only frames
+    flagged, by kind: "start" within the first ``window`` frames of a burst (frames more
+    than ``gap`` seconds apart start one; capture times from the demo's file names),
+    "after" within ``window - 1`` frames after an object's last frame, "other"."""
+    mine = [r for r in truth if r[1] == camera]
+    times = [datetime.strptime("_".join(Path(f).stem.split("_")[-2:]), "%Y%m%d_%H%M%S")
+             for f, _, _ in mine]
+    after = {last + k for _, last in left_objects(truth, camera) for k in range(1, window)}
+    out: dict[str, list[int]] = {"start": [], "after": [], "other": []}
+    first = 0
+    for i, (frame, _, kind) in enumerate(mine):
+        if i and (times[i] - times[i - 1]).total_seconds() > gap:
+            first = i
+        if kind != "none" or frame not in flagged:
+            continue
+        out["start" if i - first < window else "after" if i in after else "other"].append(i)
+    return out
 
 
 def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int],
@@ -80,6 +108,8 @@ def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int],
         with open(results / "health.csv", newline="", encoding="utf-8") as fh:
             reported = {r["frame"] for r in csv.DictReader(fh)}
         out[mode] = evaluate(truth, flagged, camera, reported)
+        out[mode]["kinds"] = false_kinds(truth, flagged, camera, cfg.persistence.window,
+                                         GAP)
     return out
 
 
@@ -108,6 +138,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--size", default="960x540")
     ap.add_argument("--camera", default=CAMERA, choices=sorted(BUSY_CAMERAS),
                     help="which busy camera of the depot (walkway is the demo's own)")
+    ap.add_argument("--detail", action="store_true",
+                    help="sort the false alarms with persistence on by kind, per scene")
     args = ap.parse_args(argv)
     size = tuple(int(v) for v in args.size.split("x"))
     seeds = [int(v) for v in args.seeds.split(",")]
@@ -125,6 +157,15 @@ def main(argv: list[str] | None = None) -> int:
             print(line(f"{mode} seed {seed}", found[seed][mode]))
         if len(seeds) > 1:
             print(line(f"{mode} all", pooled([found[s][mode] for s in seeds])))
+    if args.detail:
+        print("\ntraffic-only frames flagged with persistence on, by kind (positions):")
+        total = {k: 0 for k in ("start", "after", "other")}
+        for seed in seeds:
+            kinds = found[seed]["on"]["kinds"]
+            print(f"seed {seed:<4} " + "; ".join(f"{k} {len(v)} {v}" for k, v in kinds.items()))
+            for k, v in kinds.items():
+                total[k] += len(v)
+        print("all       " + "; ".join(f"{k} {v}" for k, v in total.items()))
     print(f"({time.perf_counter() - started:.0f} s)")
     return 0
 

@@ -395,9 +395,18 @@ def test_bench_busy_smoke(capsys):
     assert rate_interval(0, 30)[1] == pytest.approx(1 - 0.025 ** (1 / 30))
     # The yard camera: ground from scikit-image's bundled gravel photograph.
     assert bench.main(["--normal", "30", "--new", "30", "--size", "128x72", "--seeds", "1",
-                       "--camera", "yard"]) == 0
+                       "--camera", "yard", "--detail"]) == 0
     out = capsys.readouterr().out
     assert "\non seed 1 " in out and "\noff seed 1 " in out and "'yard'" in out
+    assert "\nseed 1    start " in out
+    # false alarms sorted by kind: a burst of 4 frames, an object at positions 1-2 of the
+    # next, every traffic-only frame flagged
+    names = [f"yard/yard_20261130_{t}.jpg" for t in
+             ("100000", "100002", "100004", "100006", "120000", "120002", "120004",
+              "120006", "120008", "120010", "120012", "120014")]
+    truth = [(n, "yard", "parcel" if i in (5, 6) else "none") for i, n in enumerate(names)]
+    kinds = bench.false_kinds(truth, set(names), "yard", 4, 60.0)
+    assert kinds == {"start": [0, 1, 2, 3, 4, 7], "after": [8, 9], "other": [10, 11]}
 
 
 def test_a_late_frame_first_of_its_run_takes_the_start_threshold():
