@@ -469,64 +469,97 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     """
     frame, ref = np.asarray(frame), np.asarray(reference)
     h, w = frame.shape[:2]
-    k = max(1, int(sigma // 4))  # the field is smooth: blur a 1/k image, then enlarge it
-    small = (max(1, w // k), max(1, h // k))
-    def blur(x: np.ndarray) -> np.ndarray:
-        # a channel at a time: OpenCV's blur of a multi-channel image rounds otherwise (its
-        # area reduction does not)
-        if x.ndim == 2:
-            return cv2.GaussianBlur(x, (0, 0), sigma / k)
-        return cv2.merge([cv2.GaussianBlur(c, (0, 0), sigma / k) for c in cv2.split(x)])
-
-    weight = None
-    keep = None if keep is None else np.ascontiguousarray(keep, bool)
-    if keep is not None and keep.ndim == 3:  # channel by channel; a channel kept whole
-        # takes no weight, as it would alone (OpenCV's sums: numpy's over the first axis
-        # of an (H * W, 3) array are slow)
-        whole = np.array(cv2.sumElems(keep.view(np.uint8))[:keep.shape[2]]) == h * w
-        if whole.all():
-            keep = None
-    elif keep is not None and keep.all():
+    k = max(1, int(sigma // 4))  # the field is smooth: estimated on cells of about k x k
+    rows, cols, blur = _cell_grid(h, w, k, sigma / k)
+    keep = None if keep is None else np.asarray(keep, bool)
+    if keep is not None and keep.all():
         keep = None
+    if keep is not None and keep.ndim == 2 and frame.ndim == 3:
+        keep = keep[..., None]
+    parts = [frame, ref]
+    if keep is not None:  # normalised convolution: blur(keep * x) / blur(keep)
+        parts = [_kept(frame, keep), _kept(ref, keep), keep.view(np.uint8)]
+    means = [_area_means(x, rows, cols) for x in parts]
+    means = [m if m.ndim == 3 else m[..., None] for m in means]
+    sizes = np.cumsum([m.shape[2] for m in means])[:-1]
+    small = np.split(blur(np.concatenate(means, axis=2)), sizes, axis=2)
+    f, r = small[0], small[1]
     if keep is not None:
-        wfull = keep.view(np.uint8)  # 0 or 1
-        if frame.dtype == ref.dtype == np.uint8:  # keep * x: x where kept, else 0
-            if keep.ndim == 2:
-                frame = cv2.bitwise_and(frame, frame, mask=wfull)
-                ref = cv2.bitwise_and(ref, ref, mask=wfull)
-            else:
-                frame = cv2.multiply(frame, wfull, dtype=cv2.CV_32F)
-                ref = cv2.multiply(ref, wfull, dtype=cv2.CV_32F)
-        else:
-            x = wfull if frame.ndim == keep.ndim else wfull[..., None]
-            frame, ref = np.asarray(frame, np.float32) * x, np.asarray(ref, np.float32) * x
-        weight = blur(cv2.resize(wfull.astype(np.float32), small,
-                                 interpolation=cv2.INTER_AREA))
-        if keep.ndim == 3:
-            weight[..., whole] = 1.0
-        elif frame.ndim == 3:
-            weight = weight[..., None]
-    frame, ref = np.asarray(frame, np.float32), np.asarray(ref, np.float32)
-
-    f = blur(cv2.resize(frame, small, interpolation=cv2.INTER_AREA))
-    r = blur(cv2.resize(ref, small, interpolation=cv2.INTER_AREA))
-    if weight is not None:
+        weight = small[2]
+        whole = (means[2] == 1.0).all(axis=(0, 1))
+        if whole.any() and len(whole) > 1:  # a channel kept whole takes no weight, as
+            weight[..., whole] = 1.0        # it would alone
         seen = weight > 1e-3  # elsewhere nothing trusted is near: no correction
-        f = np.where(seen, f / np.maximum(weight, np.float32(1e-3)), 0.0)
-        r = np.where(seen, r / np.maximum(weight, np.float32(1e-3)), 0.0)
-    if gain != 1.0 or offset != 0.0:
-        f = f * np.float32(gain) + np.float32(offset)
-    field = np.clip((r + 4.0) / (f + 4.0), 0.25, 4.0).astype(np.float32)
-    if weight is not None:
-        field[~np.broadcast_to(seen, field.shape)] = 1.0
-    field *= np.float32(scale)
-    if field.ndim == 3:  # a channel at a time (as the blur)
-        return cv2.merge([cv2.resize(c, (w, h), interpolation=cv2.INTER_LINEAR)
-                          for c in cv2.split(field)])
-    if channels > 1:
-        field = cv2.merge([field] * channels)
+        f = np.where(seen, f / np.maximum(weight, 1e-3), 0.0)
+        r = np.where(seen, r / np.maximum(weight, 1e-3), 0.0)
+    field = np.clip((r + 4.0) / (f * gain + offset + 4.0), 0.25, 4.0)
+    if keep is not None:
+        field = np.where(np.broadcast_to(seen, field.shape), field, 1.0)
+    field = (field * scale).astype(np.float32)
+    if frame.ndim == 2:
+        field = field[..., 0] if channels == 1 else np.repeat(field, channels, axis=2)
+    # one bilinear enlargement, all channels at once
     return cv2.resize(field, (w, h), interpolation=cv2.INTER_LINEAR)
 
+
+def _kept(x: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """``x * keep`` ((H, W) or (H, W, C) ``x``, bool ``keep`` of the same shape or
+    (H, W, 1)), in ``x``'s own type (uint8 stays uint8: exact, and four times smaller)."""
+    return np.multiply(x, keep.view(np.uint8).reshape(x.shape[:2] + keep.shape[2:]))
+
+
+def _area_means(x: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+    """Means of an (H, W) or (H, W, C) image over the cells between the edges ``rows`` and
+    ``cols``, (len(rows) - 1, len(cols) - 1[, C]) float64: ``cv2.resize`` with
+    ``INTER_AREA`` (the cells' means) for a float image whose cells are equal, else sums
+    from a summed-area table (Crow 1984, "Summed-area tables for texture mapping"; exact
+    for a uint8 image)."""
+    x = np.asarray(x)
+    h, w = x.shape[:2]
+    ny, nx = len(rows) - 1, len(cols) - 1
+    if x.dtype != np.uint8 and h % ny == 0 and w % nx == 0:
+        return cv2.resize(np.asarray(x, np.float32), (nx, ny),
+                          interpolation=cv2.INTER_AREA).astype(np.float64)
+    if x.dtype == np.uint8 and x.size * 255 < 2**31:
+        table = cv2.integral(x)  # int32
+    else:
+        table = cv2.integral(np.asarray(x, np.float64))
+    c = table[np.ix_(rows, cols)].astype(np.float64)
+    sums = c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]
+    counts = np.outer(np.diff(rows), np.diff(cols))
+    return sums / (counts if sums.ndim == 2 else counts[..., None])
+
+
+@lru_cache(maxsize=16)
+def _blur_matrix(n: int, sigma: float) -> np.ndarray:
+    """(n, n) float64 matrix of ``cv2.GaussianBlur`` along one axis of length ``n``: its
+    kernel for float images (``ksize`` 8 sigma + 1, ``cv2.getGaussianKernel``) with the
+    border reflected about the edge pixel (``BORDER_REFLECT_101``, OpenCV's default)."""
+    size = int(round(sigma * 8 + 1)) | 1
+    kernel = cv2.getGaussianKernel(size, sigma, cv2.CV_64F).ravel()
+    m = np.zeros((n, n))
+    for i in range(n):
+        for j, v in zip(range(i - size // 2, i + size // 2 + 1), kernel):
+            m[i, cv2.borderInterpolate(j, n, cv2.BORDER_REFLECT_101) if n > 1 else 0] += v
+    return m
+
+
+@lru_cache(maxsize=16)
+def _cell_grid(h: int, w: int, k: int, sigma: float):
+    """The cells of about ``k`` x ``k`` pixels a brightness field of an (h, w) frame is
+    estimated on (their edges along each axis, as ``cv2.resize`` to (w // k, h // k) with
+    ``INTER_AREA`` averages), and the Gaussian blur of ``sigma`` cells over them (as
+    ``cv2.GaussianBlur``, see :func:`_blur_matrix`): a function of a (ny, nx, C) float64
+    array, by two matrix products."""
+    ny, nx = max(1, h // k), max(1, w // k)
+    rows = np.linspace(0, h, ny + 1).astype(int)
+    cols = np.linspace(0, w, nx + 1).astype(int)
+    my, mx = _blur_matrix(ny, sigma), _blur_matrix(nx, sigma)
+
+    def blur(x: np.ndarray) -> np.ndarray:
+        return np.matmul(mx, (my @ x.reshape(ny, -1)).reshape(x.shape))
+
+    return rows, cols, blur
 
 def sharpness(g: np.ndarray) -> float:
     """Variance of the Laplacian over the variance of the image (Pech-Pacheco et al. 2000,
