@@ -83,13 +83,13 @@ _NEAR = np.ones((3, 3), np.uint8)
 #: switched off or an object in front of it is far darker and stays (common practice, no
 #: source).
 GLARE_TOLERANCE = 0.1
-#: ``cv2.inRange`` bounds of a pixel none of whose channels is clipped white (>= 250).
-_BLACK, _UNCLIPPED = (0, 0, 0), (249, 249, 249)
+#: Per-channel bound of ``cv2.compare``: a channel above it is clipped white (>= 250).
+_UNCLIPPED = (249, 249, 249)
 #: A channel at or below this level is clipped black: its light is at most what it shows
 #: (the same margin as white's 250 below 255; common practice, no source).
 BLACK_LEVEL = 5
-#: ``cv2.inRange`` bounds of a pixel none of whose channels is clipped black.
-_UNBLACK, _WHITE = (BLACK_LEVEL + 1,) * 3, (255, 255, 255)
+#: Per-channel bound of ``cv2.compare``: a channel below it is clipped black.
+_UNBLACK = (BLACK_LEVEL + 1,) * 3
 #: A textured cell whose correlation with the reference falls below this is lost from view.
 COVER_CORRELATION = 0.2
 #: Blur (working pixels) of the chroma of prepared frames (see :func:`smooth_chroma`).
@@ -146,6 +146,13 @@ def _channel_max(image: np.ndarray) -> np.ndarray:
     numpy's reduction over a last axis of 3 is slow)."""
     r, g, b = cv2.split(image)
     return cv2.max(cv2.max(r, g), b)
+
+
+def _extremes(image: np.ndarray) -> tuple[float, float]:
+    """Darkest and brightest level of any channel of an (H, W, 3) uint8 image (one pass;
+    the test before a clipping mask is made)."""
+    lo, hi, _, _ = cv2.minMaxLoc(image.reshape(image.shape[0], -1))
+    return lo, hi
 
 
 def _moved_back(mask: np.ndarray, shift: tuple[float, float] | None) -> np.ndarray:
@@ -285,8 +292,8 @@ class Conditions(Estimator):
         self.max_shift = max_shift
         self.health = health
         self.limits = limits
-        #: (colour reference, dilated mask of its glare, inRange bounds below the glare,
-        #: its brightest level), made once (:meth:`_reference_glare`).
+        #: (colour reference, its glare as :meth:`_reference_glare` gives it, its
+        #: brightest level), made once.
         self._ref_terms: tuple | None = None
         #: (colour reference, it and :attr:`fine_` flattened as float32, the negated highest
         #: finer levels in falling order, that order, the reference's own clip loss; all but
@@ -500,8 +507,9 @@ class Conditions(Estimator):
                             self._saturating(ref_rgb, gain, offset))
                 lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near,
                                                                img)
-                if lost is not None:
-                    img = cv2.add(img, lost, dtype=cv2.CV_32F)
+                if lost is not None:  # given back where it was lost
+                    img = img.astype(np.float32)
+                    img.reshape(-1)[lost[0]] += lost[1]
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
                     # the field compares the pixels the frame did not clip: a clipped one
@@ -520,7 +528,11 @@ class Conditions(Estimator):
                              if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
                                               channels=3, keep=kept))
-                    f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
+                    if lost is None:
+                        f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
+                    else:  # its own float copy
+                        f = img
+                        f += np.float32(offset / gain)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                     # what a channel at 0 reads once normalised: the frame's black floor
                     floor = (None if darks[i] is None or offset <= 0 else
@@ -561,10 +573,12 @@ class Conditions(Estimator):
         if dark is not None:  # never raised
             target = ref_rgb if floor is None else cv2.max(ref_rgb, floor)
             cv2.copyTo(cv2.min(o, target), dark, o)
-        glare, below = self._reference_glare(ref_rgb)
+        glare = self._reference_glare(ref_rgb)
         if glare is not None:  # glare pixels whose brightest channel is >= floor
-            cv2.copyTo(ref_rgb, cv2.bitwise_and(
-                glare, cv2.bitwise_not(cv2.inRange(o, *below))), o)
+            box, mask, below, colour = glare
+            part = o[box]  # a view: written in place
+            cv2.copyTo(colour, cv2.bitwise_and(
+                mask, cv2.bitwise_not(cv2.inRange(part, *below))), part)
 
     def _saturating(self, ref_rgb: np.ndarray, gain: float, offset: float
                     ) -> np.ndarray | None:
@@ -575,7 +589,7 @@ class Conditions(Estimator):
         none (no reference level reaches it)."""
         level = 250.0 * gain + offset
         self._reference_glare(ref_rgb)  # the reference's terms, its brightest level with them
-        if level > self._ref_terms[3]:
+        if level > self._ref_terms[2]:
             return None
         # whole levels: at least the float32 level is at least its ceiling (OpenCV compares
         # in one pass what numpy compares through a float32 copy)
@@ -584,10 +598,13 @@ class Conditions(Estimator):
         return cv2.compare(ref_rgb.reshape(h, -1), least, cv2.CMP_GE).reshape(ref_rgb.shape)
 
     def _lost(self, ref_rgb: np.ndarray, gain: float, offset: float,
-              near: np.ndarray | None, img: np.ndarray | None = None) -> np.ndarray | None:
+              near: np.ndarray | None, img: np.ndarray | None = None
+              ) -> tuple[np.ndarray, np.ndarray] | None:
         """Light a frame of this ``gain`` and ``offset`` is expected to have lost to
-        clipping finer than its working pixels, in its own levels, (H, W, 3) float32; None
-        without :attr:`fine_` or where it is nowhere more than a hundredth of a level.
+        clipping finer than its working pixels, in its own levels: ``(index, light)``, the
+        flat indices into the (H, W, 3) frame where it lost any (a few: bright fine
+        detail) and the light lost there, float32; None without :attr:`fine_` or where it
+        is nowhere more than a hundredth of a level.
 
         Had the frame shown the reference, a working pixel would average finer pixels
         ``(reference + spread - offset) / gain`` (``spread`` from :attr:`fine_`, measured
@@ -645,9 +662,7 @@ class Conditions(Estimator):
         more = np.maximum(clip_loss(mean[reach], s[reach] / g) - own[:n][reach] / g, 0.0)
         if float(more.max()) <= 0.01:
             return None
-        lost = np.zeros(ref_rgb.size, np.float32)
-        lost[idx[reach]] = more
-        return lost.reshape(ref_rgb.shape)
+        return idx[reach], more
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
                       was: np.ndarray | None) -> tuple[np.ndarray | None, np.ndarray | None]:
@@ -663,8 +678,7 @@ class Conditions(Estimator):
         if self.lighting == "off":
             return None, None
         near = channels = None
-        unclipped = cv2.inRange(img, _BLACK, _UNCLIPPED)  # 255: all channels < 250
-        if cv2.countNonZero(unclipped) < unclipped.size:  # any clipped pixel
+        if _extremes(img)[1] >= 250:  # any clipped pixel
             channels = cv2.dilate(_moved_back(cv2.compare(img, _UNCLIPPED, cv2.CMP_GT), shift),
                                   _NEAR)
             near = _channel_max(channels)
@@ -692,8 +706,7 @@ class Conditions(Estimator):
         """
         if self.lighting == "off":
             return None
-        lit = cv2.inRange(img, _UNBLACK, _WHITE)  # 255: no channel clipped black
-        if cv2.countNonZero(lit) == lit.size:
+        if _extremes(img)[0] > BLACK_LEVEL:  # no channel clipped black
             return None
         dark = _moved_back(cv2.compare(img, _UNBLACK, cv2.CMP_LT), shift)
         dark = cv2.compare(cv2.blur(dark, (3, 3)), 127, cv2.CMP_GT)
@@ -732,24 +745,35 @@ class Conditions(Estimator):
         return self._spectrum[1], self._spectrum[2], self._spectrum[3]
 
     def _reference_glare(self, ref_rgb: np.ndarray
-                         ) -> tuple[np.ndarray | None, tuple[np.ndarray, np.ndarray]]:
-        """The dilated mask of the colour reference's clipped whites, (H, W) uint8 (None
-        when it has none), and the bounds of ``cv2.inRange`` that are met where a frame's
-        brightest channel is below what it must keep there to read as that glare
-        (:data:`GLARE_TOLERANCE` below the reference's): every channel <= floor - 1, and
-        never where the floor is 0 (lower bound 1 > upper bound 0); each (H, W, 3) uint8.
+                         ) -> tuple[tuple[slice, slice], np.ndarray, tuple[np.ndarray,
+                                                                         np.ndarray],
+                                    np.ndarray] | None:
+        """Where the colour reference has glare: None when it has no clipped whites, else
+        ``(box, mask, below, colour)`` over the bounding box ``box`` (a pair of slices) of
+        the dilated mask of its clipped whites: that mask (uint8), the bounds of
+        ``cv2.inRange`` that are met where a frame's brightest channel is below what it
+        must keep there to read as that glare (:data:`GLARE_TOLERANCE` below the
+        reference's: every channel <= floor - 1, and never where the floor is 0, lower
+        bound 1 > upper bound 0; each (h, w, 3) uint8), and the reference's colour there.
         Computed once per reference rather than once per frame, with the reference's
         brightest level (for :meth:`_saturating`)."""
         if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
             brightest = _channel_max(np.asarray(ref_rgb))
             clipped = (brightest >= 250).astype(np.uint8)
-            glare = cv2.dilate(clipped, _NEAR) if clipped.any() else None
-            floor = (brightest.astype(np.float32) * (1.0 - GLARE_TOLERANCE)).astype(np.uint8)
-            lower = (floor == 0).astype(np.uint8)
-            upper = np.where(floor == 0, 0, floor.astype(np.int16) - 1).astype(np.uint8)
-            below = (cv2.merge([lower] * 3), cv2.merge([upper] * 3))
-            self._ref_terms = (ref_rgb, glare, below, float(brightest.max()))
-        return self._ref_terms[1], self._ref_terms[2]
+            glare = None
+            if clipped.any():
+                mask = cv2.dilate(clipped, _NEAR)
+                x, y, w, h = cv2.boundingRect(mask)
+                box = np.s_[y:y + h, x:x + w]
+                floor = (brightest[box].astype(np.float32)
+                         * (1.0 - GLARE_TOLERANCE)).astype(np.uint8)
+                lower = (floor == 0).astype(np.uint8)
+                upper = np.where(floor == 0, 0, floor.astype(np.int16) - 1).astype(np.uint8)
+                glare = (box, np.ascontiguousarray(mask[box]),
+                         (cv2.merge([lower] * 3), cv2.merge([upper] * 3)),
+                         np.ascontiguousarray(ref_rgb[box]))
+            self._ref_terms = (ref_rgb, glare, float(brightest.max()))
+        return self._ref_terms[1]
 
     def measures(self, prepared: Prepared, previous: np.ndarray | None = None
                  ) -> dict[str, np.ndarray]:
