@@ -366,6 +366,15 @@ def test_brightness_field_of_a_colour_pair_is_the_field_of_each_channel():
             one = brightness_field(lit[..., c].astype(np.float32), ref[..., c], 12.0, 1.1,
                                    -3.0, scale=1.1, keep=alone)
             np.testing.assert_array_equal(both[..., c], one)
+        # light added at a few places (sparse) gives the field of the frame with it added
+        where = np.random.default_rng(1).choice(lit.size, 300, replace=False)
+        light = np.linspace(0.5, 40, 300).astype(np.float32)
+        more = lit.astype(np.float32)
+        more.reshape(-1)[where] += light
+        np.testing.assert_allclose(
+            brightness_field(lit, ref, 12.0, 1.1, -3.0, scale=1.1, keep=keep,
+                             added=(where, light)),
+            brightness_field(more, ref, 12.0, 1.1, -3.0, scale=1.1, keep=keep), rtol=1e-5)
 
 
 def test_local_lighting_takes_out_light_of_another_colour_over_part_of_the_view():

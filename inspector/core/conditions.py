@@ -148,6 +148,13 @@ def _channel_max(image: np.ndarray) -> np.ndarray:
     return cv2.max(cv2.max(r, g), b)
 
 
+def _any_channel(mask: np.ndarray) -> np.ndarray:
+    """255 where any channel of an (H, W, 3) 0/255 uint8 mask is set, else 0, (H, W)
+    uint8: its grey (every BT.601 weight of 255 rounds to at least 29) compared with 0, two
+    passes where :func:`_channel_max` takes a split and two."""
+    return cv2.compare(cv2.cvtColor(mask, cv2.COLOR_RGB2GRAY), 0, cv2.CMP_GT)
+
+
 def _extremes(image: np.ndarray) -> tuple[float, float]:
     """Darkest and brightest level of any channel of an (H, W, 3) uint8 image (one pass;
     the test before a clipping mask is made)."""
@@ -234,7 +241,7 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
     if near is not None:
         clipped = cv2.compare(channels.reshape(h, -1), 0, cv2.CMP_GT)
         # a pixel with a clipped channel the exposure does not explain keeps no channel
-        odd = _channel_max(cv2.bitwise_and(clipped, keep).reshape(h, w, 3))
+        odd = _any_channel(cv2.bitwise_and(clipped, keep).reshape(h, w, 3))
         use = cv2.bitwise_not(cv2.bitwise_and(odd, near))
         keep = cv2.bitwise_and(keep, cv2.bitwise_not(clipped))
         keep = cv2.bitwise_and(keep, cv2.cvtColor(use, cv2.COLOR_GRAY2RGB).reshape(h, -1))
@@ -507,9 +514,10 @@ class Conditions(Estimator):
                             self._saturating(ref_rgb, gain, offset))
                 lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near,
                                                                img)
-                if lost is not None:  # given back where it was lost
-                    img = img.astype(np.float32)
-                    img.reshape(-1)[lost[0]] += lost[1]
+                level = img  # the frame's levels, the lost light given back (float32)
+                if lost is not None:
+                    level = img.astype(np.float32)
+                    level.reshape(-1)[lost[0]] += lost[1]
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
                     # the field compares the pixels the frame did not clip: a clipped one
@@ -520,25 +528,25 @@ class Conditions(Estimator):
                     # low sun beside lamps) changes the channels by different factors
                     seen = keep
                     if darks[i] is not None:  # a channel clipped black only bounds its light
-                        seen = _channel_max(darks[i]) == 0
+                        seen = _any_channel(darks[i]) == 0
                         seen = seen if keep is None else seen & keep
                     kept = _field_keep(near, channels, expected, seen)  # (H, W) without ref_rgb
                     field = (brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain,
-                                              keep=kept)
+                                              keep=kept, added=lost)
                              if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
                                               channels=3, keep=kept))
                     if lost is None:
                         f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
                     else:  # its own float copy
-                        f = img
+                        f = level
                         f += np.float32(offset / gain)
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                     # what a channel at 0 reads once normalised: the frame's black floor
                     floor = (None if darks[i] is None or offset <= 0 else
                              cv2.convertScaleAbs(field, alpha=offset / gain))
                 else:
-                    o = cv2.addWeighted(img, gain, img, 0.0, offset, dtype=cv2.CV_8U)
+                    o = cv2.addWeighted(level, gain, level, 0.0, offset, dtype=cv2.CV_8U)
                     floor = (None if darks[i] is None or offset <= 0 else
                              np.full_like(o, min(round(offset), 255)))
                 # the colour is evened out before the reference bounds clipped pixels and
@@ -681,7 +689,7 @@ class Conditions(Estimator):
         if _extremes(img)[1] >= 250:  # any clipped pixel
             channels = cv2.dilate(_moved_back(cv2.compare(img, _UNCLIPPED, cv2.CMP_GT), shift),
                                   _NEAR)
-            near = _channel_max(channels)
+            near = _any_channel(channels)
         if was is not None:
             near = was if near is None else cv2.max(near, was)
             every = cv2.merge([was] * 3)
@@ -710,7 +718,7 @@ class Conditions(Estimator):
             return None
         dark = _moved_back(cv2.compare(img, _UNBLACK, cv2.CMP_LT), shift)
         dark = cv2.compare(cv2.blur(dark, (3, 3)), 127, cv2.CMP_GT)
-        return dark if cv2.countNonZero(_channel_max(dark)) else None
+        return dark if cv2.countNonZero(dark.reshape(dark.shape[0], -1)) else None
 
     def _uncovered(self, dx: float, dy: float, shape: tuple[int, int]) -> np.ndarray:
         """Pixels of a frame moved back by (dx, dy) that its content no longer covers: the

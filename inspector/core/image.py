@@ -433,10 +433,13 @@ def halved(images: np.ndarray) -> np.ndarray:
 
 def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
                      gain: float = 1.0, offset: float = 0.0, scale: float = 1.0,
-                     channels: int = 1, keep: np.ndarray | None = None) -> np.ndarray:
+                     channels: int = 1, keep: np.ndarray | None = None,
+                     added: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """Smooth multiplicative field that brings the local brightness of ``gain * frame +
     offset`` to the reference's: ``blur(reference) / blur(gain * frame + offset)``, clipped
-    to [0.25, 4]; one field per channel of a colour frame.
+    to [0.25, 4]; one field per channel of a colour frame. The field is smooth: both are
+    averaged over cells of about ``sigma / 4`` pixels, blurred there and the field
+    enlarged bilinearly.
 
     With ``keep``, both blurs are normalised convolutions over the kept pixels only
     (``blur(keep * x) / blur(keep)``, Knutsson & Westin 1993, "Normalized and differential
@@ -462,6 +465,10 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         Pixels whose brightness is trusted (all when None), the same for every channel or,
         (H, W, C), channel by channel: each channel's field is then the field of that
         channel alone with its own ``keep``.
+    added : (ndarray of int, ndarray of float), optional
+        Light added to ``frame`` at a few places: their flat indices into it and the
+        amounts (the field is that of ``frame`` with them added; a uint8 frame stays
+        uint8, and its cell sums exact).
 
     Returns
     -------
@@ -481,6 +488,8 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         parts = [_kept(frame, keep), _kept(ref, keep), keep.view(np.uint8)]
     means = [_area_means(x, rows, cols) for x in parts]
     means = [m if m.ndim == 3 else m[..., None] for m in means]
+    if added is not None and len(added[0]):
+        means[0] = means[0] + _cell_means_of(added, frame.shape, keep, rows, cols)
     sizes = np.cumsum([m.shape[2] for m in means])[:-1]
     small = np.split(blur(np.concatenate(means, axis=2)), sizes, axis=2)
     f, r = small[0], small[1]
@@ -528,6 +537,25 @@ def _area_means(x: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.ndarray
     sums = c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]
     counts = np.outer(np.diff(rows), np.diff(cols))
     return sums / (counts if sums.ndim == 2 else counts[..., None])
+
+
+def _cell_means_of(added: tuple[np.ndarray, np.ndarray], shape: tuple[int, ...],
+                   keep: np.ndarray | None, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+    """What values at a few flat indices into an image of ``shape`` (H, W[, C]) add to
+    its cell means (see :func:`_area_means`), those outside ``keep`` left out,
+    (len(rows) - 1, len(cols) - 1, C) float64."""
+    index, values = np.asarray(added[0]), np.asarray(added[1], np.float64)
+    h, w = shape[:2]
+    c = shape[2] if len(shape) == 3 else 1
+    if keep is not None:  # (H, W, C) or (H, W, 1)
+        k = keep.shape[2] if keep.ndim == 3 else 1
+        values = values * keep.reshape(-1)[index if k == c else index // c]
+    y, x, ch = index // (w * c), index // c % w, index % c
+    ny, nx = len(rows) - 1, len(cols) - 1
+    cell = ((np.searchsorted(rows, y, "right") - 1) * nx
+            + np.searchsorted(cols, x, "right") - 1) * c + ch
+    sums = np.bincount(cell, values, ny * nx * c).reshape(ny, nx, c)
+    return sums / np.outer(np.diff(rows), np.diff(cols))[..., None]
 
 
 @lru_cache(maxsize=16)
