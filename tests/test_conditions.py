@@ -22,6 +22,7 @@ from inspector.core.image import (
     clip_loss,
     exposure_copy,
     grey,
+    lucas_kanade,
     median_stack,
     noise_bank,
     noise_sigma,
@@ -173,6 +174,23 @@ def test_refine_shift_recovers_a_third_of_a_pixel():
         assert abs(dx - 1 / 3) > 0.07
         rx, ry = refine_shift(moved, shift_terms(ref), dx, dy)
         assert abs(rx - 1 / 3) < 0.03 and abs(ry) < 0.01
+
+
+def test_lucas_kanade_steps_that_overshoot_are_shortened():
+    # Constructed: scikit-image's coffee moved by (0.3, -0.2) px (bilinear, as the frames are
+    # moved back), its edges given three times the contrast of its smooth light (light that
+    # differs across the view): the fit's gain reads the smooth light, so each plain step
+    # overshoots threefold, back and forth, and does not converge. Shortened by the secant
+    # of two steps that turn back, they converge to the constructed shift.
+    ref = grey(cv2.resize(skdata.coffee(), (320, 214), interpolation=cv2.INTER_AREA)[None])[0]
+    moved = cv2.warpAffine(ref, np.float32([[1, 0, 0.3], [0, 1, -0.2]]), (320, 214),
+                           flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE)
+    light = cv2.GaussianBlur(moved, (0, 0), 8)
+    edges = light + 3.0 * (moved - light)
+    terms = shift_terms(ref)
+    assert not lucas_kanade(edges, terms, 0.1, -0.1, 6)[2]
+    dx, dy, done = lucas_kanade(edges, terms, 0.1, -0.1, 6, shrinking=True)
+    assert done and abs(dx - 0.3) < 0.02 and abs(dy + 0.2) < 0.02
 
 
 def test_robust_gain_offset_ignores_a_local_incident():

@@ -397,17 +397,30 @@ def lucas_kanade(frame: np.ndarray, terms: np.ndarray, dx: float, dy: float,
     """:func:`refine_shift`, also saying whether the steps converged: True when a step
     corrected by less than :data:`REFINE_DONE` within ``steps``, False when they did not,
     or when the estimate was given back unchanged (no positive gain, or a correction
-    beyond :data:`REFINE_LIMIT`). With ``shrinking``, the estimate is also given back,
-    unconverged, at the first step no smaller than the one before (steps that do not
-    shrink do not converge: the linear model does not hold)."""
+    beyond :data:`REFINE_LIMIT`).
+
+    With ``shrinking``, a step that turns back on the one before is an overshoot: the fit's
+    gain, taken over the whole frame, can be well below the contrast of the edges that
+    carry the shift (light that differs across the view), and every step then overshoots
+    by the same factor, back and forth. Steps ``s`` and ``-lam * s`` of such an overshoot
+    meet ``1 / (1 + lam)`` of the way along ``s`` (the secant of the two), so from then on
+    steps are shortened by that factor (and again at the next turn). The estimate is given
+    back, unconverged, at the first step, so shortened, no smaller than the one before:
+    steps that do not shrink do not converge (the linear model does not hold)."""
     frame = np.asarray(frame, np.float32)
     d = np.array([dx, dy], np.float64)
-    last = np.inf
+    last, turned, damp = np.inf, None, 1.0
     for _ in range(steps):
         a, _, ex, ey = terms @ shift_images(frame, -d[0], -d[1]).ravel()
         if a <= 0:
             return float(dx), float(dy), False
         step = np.array([ex, ey]) / a
+        if shrinking:
+            back = -float(step @ turned) if turned is not None else 0.0
+            if back > 0:  # the step turned back: lam = back / |s|^2
+                damp /= 1.0 + back / float(turned @ turned)
+            turned = step
+            step = step * damp
         d -= step
         size = np.hypot(*step)
         if np.hypot(d[0] - dx, d[1] - dy) > REFINE_LIMIT or (shrinking and size >= last):
