@@ -490,33 +490,32 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
     frame, ref = np.asarray(frame), np.asarray(reference)
     h, w = frame.shape[:2]
     k = max(1, int(sigma // 4))  # the field is smooth: estimated on cells of about k x k
-    rows, cols, blur = _cell_grid(h, w, k, sigma / k)
-    keep = None if keep is None else np.asarray(keep, bool)
-    if keep is not None and keep.all():
-        keep = None
-    if keep is not None and keep.ndim == 2 and frame.ndim == 3:
-        keep = keep[..., None]
+    grid = _cell_grid(h, w, k, sigma / k)
+    if keep is not None:
+        keep = np.asarray(keep, bool)
+        if keep.ndim == 2 and frame.ndim == 3:
+            keep = keep[..., None]
     parts = [frame, ref]
     if keep is not None:  # normalised convolution: blur(keep * x) / blur(keep)
         parts = [_kept(frame, keep), _kept(ref, keep), keep.view(np.uint8)]
-    means = [_area_means(x, rows, cols) for x in parts]
-    means = [m if m.ndim == 3 else m[..., None] for m in means]
+    means = [grid.means(x) for x in parts]
     if added is not None and len(added[0]):
-        means[0] = means[0] + _cell_means_of(added, frame.shape, keep, rows, cols)
-    sizes = np.cumsum([m.shape[2] for m in means])[:-1]
-    small = np.split(blur(np.concatenate(means, axis=2)), sizes, axis=2)
-    f, r = small[0], small[1]
+        means[0] = means[0] + grid.means_of(added, frame.shape, keep)
+    c = means[0].shape[2]
+    small = grid.blur(np.concatenate(means, axis=2))
+    f, r = small[..., :c], small[..., c:2 * c]
+    unseen = None
     if keep is not None:
-        weight = small[2]
+        weight = small[..., 2 * c:]
         whole = (means[2] == 1.0).all(axis=(0, 1))
-        if whole.any() and len(whole) > 1:  # a channel kept whole takes no weight, as
-            weight[..., whole] = 1.0        # it would alone
-        seen = weight > 1e-3  # elsewhere nothing trusted is near: no correction
-        f = np.where(seen, f / np.maximum(weight, 1e-3), 0.0)
-        r = np.where(seen, r / np.maximum(weight, 1e-3), 0.0)
+        if whole.any():  # a channel kept whole takes no weight, as it would alone
+            weight[..., whole] = 1.0
+        unseen = weight <= 1e-3  # nothing trusted is near: no correction
+        weight = np.maximum(weight, 1e-3)
+        f, r = f / weight, r / weight
     field = np.clip((r + 4.0) / (f * gain + offset + 4.0), 0.25, 4.0)
-    if keep is not None:
-        field = np.where(np.broadcast_to(seen, field.shape), field, 1.0)
+    if unseen is not None and unseen.any():
+        field[np.broadcast_to(unseen, field.shape)] = 1.0
     field = (field * scale).astype(np.float32)
     if frame.ndim == 2:
         field = field[..., 0] if channels == 1 else np.repeat(field, channels, axis=2)
@@ -528,47 +527,6 @@ def _kept(x: np.ndarray, keep: np.ndarray) -> np.ndarray:
     """``x * keep`` ((H, W) or (H, W, C) ``x``, bool ``keep`` of the same shape or
     (H, W, 1)), in ``x``'s own type (uint8 stays uint8: exact, and four times smaller)."""
     return np.multiply(x, keep.view(np.uint8).reshape(x.shape[:2] + keep.shape[2:]))
-
-
-def _area_means(x: np.ndarray, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
-    """Means of an (H, W) or (H, W, C) image over the cells between the edges ``rows`` and
-    ``cols``, (len(rows) - 1, len(cols) - 1[, C]) float64: ``cv2.resize`` with
-    ``INTER_AREA`` (the cells' means) for a float image whose cells are equal, else sums
-    from a summed-area table (Crow 1984, "Summed-area tables for texture mapping"; exact
-    for a uint8 image)."""
-    x = np.asarray(x)
-    h, w = x.shape[:2]
-    ny, nx = len(rows) - 1, len(cols) - 1
-    if x.dtype != np.uint8 and h % ny == 0 and w % nx == 0:
-        return cv2.resize(np.asarray(x, np.float32), (nx, ny),
-                          interpolation=cv2.INTER_AREA).astype(np.float64)
-    if x.dtype == np.uint8 and x.size * 255 < 2**31:
-        table = cv2.integral(x)  # int32
-    else:
-        table = cv2.integral(np.asarray(x, np.float64))
-    c = table[np.ix_(rows, cols)].astype(np.float64)
-    sums = c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]
-    counts = np.outer(np.diff(rows), np.diff(cols))
-    return sums / (counts if sums.ndim == 2 else counts[..., None])
-
-
-def _cell_means_of(added: tuple[np.ndarray, np.ndarray], shape: tuple[int, ...],
-                   keep: np.ndarray | None, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
-    """What values at a few flat indices into an image of ``shape`` (H, W[, C]) add to
-    its cell means (see :func:`_area_means`), those outside ``keep`` left out,
-    (len(rows) - 1, len(cols) - 1, C) float64."""
-    index, values = np.asarray(added[0]), np.asarray(added[1], np.float64)
-    h, w = shape[:2]
-    c = shape[2] if len(shape) == 3 else 1
-    if keep is not None:  # (H, W, C) or (H, W, 1)
-        k = keep.shape[2] if keep.ndim == 3 else 1
-        values = values * keep.reshape(-1)[index if k == c else index // c]
-    y, x, ch = index // (w * c), index // c % w, index % c
-    ny, nx = len(rows) - 1, len(cols) - 1
-    cell = ((np.searchsorted(rows, y, "right") - 1) * nx
-            + np.searchsorted(cols, x, "right") - 1) * c + ch
-    sums = np.bincount(cell, values, ny * nx * c).reshape(ny, nx, c)
-    return sums / np.outer(np.diff(rows), np.diff(cols))[..., None]
 
 
 @lru_cache(maxsize=16)
@@ -585,22 +543,65 @@ def _blur_matrix(n: int, sigma: float) -> np.ndarray:
     return m
 
 
-@lru_cache(maxsize=16)
-def _cell_grid(h: int, w: int, k: int, sigma: float):
+class _CellGrid:
     """The cells of about ``k`` x ``k`` pixels a brightness field of an (h, w) frame is
-    estimated on (their edges along each axis, as ``cv2.resize`` to (w // k, h // k) with
-    ``INTER_AREA`` averages), and the Gaussian blur of ``sigma`` cells over them (as
-    ``cv2.GaussianBlur``, see :func:`_blur_matrix`): a function of a (ny, nx, C) float64
-    array, by two matrix products."""
-    ny, nx = max(1, h // k), max(1, w // k)
-    rows = np.linspace(0, h, ny + 1).astype(int)
-    cols = np.linspace(0, w, nx + 1).astype(int)
-    my, mx = _blur_matrix(ny, sigma), _blur_matrix(nx, sigma)
+    estimated on (their edges along each axis as ``cv2.resize`` to (w // k, h // k) with
+    ``INTER_AREA`` averages), the means of an image over them and the Gaussian blur of
+    ``sigma`` cells between them (as ``cv2.GaussianBlur``, see :func:`_blur_matrix`)."""
 
-    def blur(x: np.ndarray) -> np.ndarray:
-        return np.matmul(mx, (my @ x.reshape(ny, -1)).reshape(x.shape))
+    def __init__(self, h: int, w: int, k: int, sigma: float):
+        self.ny, self.nx = max(1, h // k), max(1, w // k)
+        self.rows = np.linspace(0, h, self.ny + 1).astype(int)
+        self.cols = np.linspace(0, w, self.nx + 1).astype(int)
+        self.equal = h % self.ny == 0 and w % self.nx == 0
+        self.counts = np.outer(np.diff(self.rows), np.diff(self.cols))[..., None]
+        self.my, self.mx = _blur_matrix(self.ny, sigma), _blur_matrix(self.nx, sigma)
+        # cell of each pixel, row-major (for :meth:`means_of`)
+        self.cell = ((np.searchsorted(self.rows, np.arange(h), "right") - 1)[:, None]
+                     * self.nx + np.searchsorted(self.cols, np.arange(w), "right") - 1)
 
-    return rows, cols, blur
+    def means(self, x: np.ndarray) -> np.ndarray:
+        """Means of an (h, w) or (h, w, C) image over the cells, (ny, nx, C) float64:
+        ``cv2.resize`` with ``INTER_AREA`` for a float image whose cells are equal, else
+        sums from a summed-area table (Crow 1984, "Summed-area tables for texture
+        mapping"; exact for a uint8 image)."""
+        x = np.asarray(x)
+        if x.dtype != np.uint8 and self.equal:
+            m = cv2.resize(np.asarray(x, np.float32), (self.nx, self.ny),
+                           interpolation=cv2.INTER_AREA).astype(np.float64)
+            return m.reshape(self.ny, self.nx, -1)
+        if x.dtype == np.uint8 and x.size * 255 < 2**31:
+            table = cv2.integral(x)  # int32
+        else:
+            table = cv2.integral(np.asarray(x, np.float64))
+        c = table[np.ix_(self.rows, self.cols)].astype(np.float64)
+        c = c.reshape(c.shape[:2] + (-1,))
+        return (c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]) / self.counts
+
+    def means_of(self, added: tuple[np.ndarray, np.ndarray], shape: tuple[int, ...],
+                 keep: np.ndarray | None) -> np.ndarray:
+        """What values at a few flat indices into an image of ``shape`` (h, w[, C]) add
+        to its cell means, those outside ``keep`` ((h, w, C) or (h, w, 1)) left out,
+        (ny, nx, C) float64."""
+        index, values = np.asarray(added[0]), np.asarray(added[1], np.float64)
+        c = shape[2] if len(shape) == 3 else 1
+        pixel = index // c if c > 1 else index
+        if keep is not None:
+            values = values * keep.reshape(-1)[index if keep.size == np.prod(shape) else pixel]
+        cell = self.cell.reshape(-1)[pixel] * c + (index % c if c > 1 else 0)
+        sums = np.bincount(cell, values, self.ny * self.nx * c)
+        return sums.reshape(self.ny, self.nx, c) / self.counts
+
+    def blur(self, x: np.ndarray) -> np.ndarray:
+        """Blur of a (ny, nx, C) float64 array over the cells, by two matrix products."""
+        return np.matmul(self.mx, (self.my @ x.reshape(self.ny, -1)).reshape(x.shape))
+
+
+@lru_cache(maxsize=16)
+def _cell_grid(h: int, w: int, k: int, sigma: float) -> _CellGrid:
+    """:class:`_CellGrid` of these sizes, made once."""
+    return _CellGrid(h, w, k, sigma)
+
 
 def sharpness(g: np.ndarray) -> float:
     """Variance of the Laplacian over the variance of the image (Pech-Pacheco et al. 2000,
