@@ -303,8 +303,9 @@ class Conditions(Estimator):
         #: brightest level), made once.
         self._ref_terms: tuple | None = None
         #: (colour reference, it and :attr:`fine_` flattened as float32, the negated highest
-        #: finer levels in falling order, that order, the reference's own clip loss; all but
-        #: the first in that order), made once (:meth:`_lost`).
+        #: finer levels in falling order, that order, the reference's own clip loss, the
+        #: darkest and the highest finer levels, the pixel of each; all but the first in
+        #: that order), made once (:meth:`_lost`).
         self._fine: tuple | None = None
         #: (grey reference, its spectrum and shift terms for registration), made once.
         self._spectrum: tuple | None = None
@@ -636,10 +637,13 @@ class Conditions(Estimator):
             high = (r + spread[..., -1]).ravel()
             order = np.argsort(-high, kind="stable")
             # kept in that order, so that a frame's candidates are a slice, not a gather
-            self._fine = (ref_rgb, r.reshape(-1)[order],
-                          spread.reshape(-1, spread.shape[-1])[order], -high[order], order,
-                          clip_loss(r, spread).reshape(-1)[order])
-        _, r, spread, neg_high, order, own = self._fine
+            spread = spread.reshape(-1, spread.shape[-1])[order]
+            own = clip_loss(r.reshape(-1)[order], spread)
+            # the darkest and highest finer levels apart (contiguous), and the pixel of each
+            self._fine = (ref_rgb, r.reshape(-1)[order], spread, -high[order], order, own,
+                          np.ascontiguousarray(spread[:, 0]),
+                          np.ascontiguousarray(spread[:, -1]), order // 3)
+        _, r, spread, neg_high, order, own, low, top, pixel = self._fine
         g, o = np.float32(gain), np.float32(offset)
         # a frame whose 255 reads at least 255 in the reference's levels loses no more than
         # the reference did (level by level, max(x - 255 g - offset, 0) <= max(x - 255, 0))
@@ -659,11 +663,11 @@ class Conditions(Estimator):
         idx = order[:n]
         mean = (r[:n] - o) / g
         s = spread[:n]
-        reach = mean + s[:, -1] / g >= np.float32(255.0)
+        reach = mean + top[:n] / g >= np.float32(255.0)
         if near is not None:
-            reach &= near.reshape(-1)[idx // 3] == 0
+            reach &= near.reshape(-1)[pixel[:n]] == 0
         if img is not None:  # darker than its own darkest finer level: not this clip
-            reach &= img.reshape(-1)[idx] >= mean + s[:, 0] / g
+            reach &= img.reshape(-1)[idx] >= mean + low[:n] / g
         if not reach.any():
             return None
         # what this exposure loses beyond what the reference's own exposure lost
