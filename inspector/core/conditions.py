@@ -57,6 +57,7 @@ from inspector.core.image import (
     cell_detail,
     clip_loss,
     correlation,
+    correlation_terms,
     grey,
     halved,
     lucas_kanade,
@@ -307,7 +308,7 @@ class Conditions(Estimator):
         #: darkest and the highest finer levels, the pixel of each; all but the first in
         #: that order), made once (:meth:`_lost`).
         self._fine: tuple | None = None
-        #: (grey reference, its spectrum and shift terms for registration), made once.
+        #: (grey reference, what registration needs of it), made once (:meth:`_registration`).
         self._spectrum: tuple | None = None
         #: (ignore mask, reference cells, what the health measures need of them), made
         #: once (:meth:`_health_terms`).
@@ -442,7 +443,7 @@ class Conditions(Estimator):
         moved: dict[int, tuple[float, float]] = {}  # frames moved back, by their shift
         if self.register:
             if known is None:
-                spectrum, terms, half = self._registration(ref)
+                spectrum, terms, half, compared = self._registration(ref)
                 found = (phase_shifts(g_all, spectrum, self.ignore_) if half is None else
                          2.0 * phase_shifts(halved(g_all), *half))
             for i, g in enumerate(g_all):
@@ -458,8 +459,8 @@ class Conditions(Estimator):
                     back = shift_images(g, -dx, -dy)
                     # a shift measured before is taken as measured; a new one only when the
                     # frame is better aligned (a large change can fool the peak)
-                    if known is None and (correlation(back, ref, keep)
-                                          <= correlation(g, ref, keep)):
+                    if known is None and (correlation(back, ref, terms=compared)
+                                          <= correlation(g, ref, terms=compared)):
                         dx = dy = 0.0
                     else:
                         if aligned is g_all:  # copied only when a frame moves
@@ -740,11 +741,12 @@ class Conditions(Estimator):
         return fill
 
     def _registration(self, ref: np.ndarray
-                      ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, Any] | None]:
-        """:func:`phase_spectrum` and :func:`shift_terms` of the reference, and for frames
+                      ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, Any] | None, tuple]:
+        """:func:`phase_spectrum` and :func:`shift_terms` of the reference, for frames
         registered from their 2 x 2 reductions (:data:`HALVE_FROM`) the spectrum of its
-        reduction with the pixels to ignore there (None for smaller frames), computed once
-        per reference."""
+        reduction with the pixels to ignore there (None for smaller frames), and its
+        :func:`correlation_terms` over the pixels not ignored, computed once per
+        reference."""
         if self._spectrum is None or self._spectrum[0] is not ref:
             half = None
             if min(ref.shape) >= HALVE_FROM:
@@ -753,8 +755,10 @@ class Conditions(Estimator):
                     ignore = halved(self.ignore_[None].astype(np.float32))[0] > 0
                 half = (phase_spectrum(halved(ref[None])[0], ignore), ignore)
             self._spectrum = (ref, phase_spectrum(ref, self.ignore_),
-                              shift_terms(ref, self.ignore_), half)
-        return self._spectrum[1], self._spectrum[2], self._spectrum[3]
+                              shift_terms(ref, self.ignore_), half,
+                              correlation_terms(ref, None if self.ignore_ is None
+                                                else ~self.ignore_))
+        return self._spectrum[1:]
 
     def _reference_glare(self, ref_rgb: np.ndarray
                          ) -> tuple[tuple[slice, slice], np.ndarray, tuple[np.ndarray,

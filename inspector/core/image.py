@@ -289,19 +289,35 @@ def _hanning(shape: tuple[int, int]) -> np.ndarray:
     return cv2.createHanningWindow((shape[1], shape[0]), cv2.CV_32F)
 
 
-def correlation(a: np.ndarray, b: np.ndarray, keep: np.ndarray | None = None) -> float:
+def correlation(a: np.ndarray, b: np.ndarray, keep: np.ndarray | None = None,
+                terms: tuple | None = None) -> float:
     """Pearson correlation of two images over the kept pixels, a 10-pixel margin left out
-    (the edges a shift moves in)."""
-    h, w = a.shape
+    (the edges a shift moves in); ``terms``: :func:`correlation_terms` of ``b`` and
+    ``keep`` when made before (``b`` and ``keep`` are then not read)."""
+    sel, index, y, yy = correlation_terms(b, keep) if terms is None else terms
+    x = a[sel] if index is None else np.take(a, index)
+    x = x - x.mean()
+    den = float(np.sqrt((x * x).sum() * yy))
+    return float((x * y).sum() / den) if den > 0 else 0.0
+
+
+def correlation_terms(b: np.ndarray, keep: np.ndarray | None = None) -> tuple:
+    """What :func:`correlation` needs of an image it is computed with many times (a
+    registration reference): the part compared, the flat indices of its kept pixels
+    (None: all), its values there less their mean, and their sum of squares."""
+    h, w = b.shape
     m = min(10, h // 8, w // 8)
     sel = np.s_[m:h - m, m:w - m]
-    x, y = a[sel], b[sel]
-    if keep is not None:
-        x, y = x[keep[sel]], y[keep[sel]]
-    x = x - x.mean()
+    index = None
+    if keep is None:
+        y = b[sel]
+    else:
+        inside = np.zeros((h, w), bool)
+        inside[sel] = keep[sel]
+        index = np.flatnonzero(inside)
+        y = b[sel][keep[sel]]
     y = y - y.mean()
-    den = float(np.sqrt((x * x).sum() * (y * y).sum()))
-    return float((x * y).sum() / den) if den > 0 else 0.0
+    return sel, index, y, (y * y).sum()
 
 
 def shift_images(images: np.ndarray, dx: float, dy: float) -> np.ndarray:
