@@ -86,10 +86,15 @@ def say(text: str = "") -> None:
     print(text, flush=True)
 
 
+def counted(count: int, word: str) -> str:
+    """``count`` and ``word``, plural unless one ("1 frame", "3 frames")."""
+    return f"{count} {word}{'' if count == 1 else 's'}"
+
+
 def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     """The closing summary of a scan or watch run."""
     for note, n in summary.notes.items():
-        say(f"warning: {n} frame{'' if n == 1 else 's'} of {note}")
+        say(f"warning: {counted(n, 'frame')} of {note}")
     say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
         f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
     if getattr(summary, "unchanged", 0):
@@ -101,7 +106,7 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
         f"skipped: {out / 'skipped.csv'}")
     if getattr(summary, "health", 0):
-        say(f"camera health: {summary.health} conditions in {out / 'health.csv'}")
+        say(f"camera health: {counted(summary.health, 'condition')} in {out / 'health.csv'}")
     if all_scores:
         say(f"all scores: {all_scores}")
     if getattr(summary, "damaged", None):

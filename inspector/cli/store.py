@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from inspector.cli.common import add_common, resolve, say
+from inspector.cli.common import add_common, counted, resolve, say
 from inspector.errors import UsageError
 from inspector.jobs.status import CHECK_COLUMNS, check_store, format_table
 
@@ -35,8 +35,8 @@ def cmd_check(args: argparse.Namespace) -> int:
     damaged = [r for r in rows if r["state"] == "damaged"]
     unchecked = sum(r["state"] == "unchecked" for r in rows)
     files = sum(not r["version"] for r in rows)
-    say(f"{_n(len(versions), 'version')} of {_n(len({r['what'] for r in versions}), 'camera')}"
-        f" and {_n(files, 'SQLite file')} checked: {len(damaged)} damaged"
+    say(f"{counted(len(versions), 'version')} of {counted(len({r['what'] for r in versions}), 'camera')}"
+        f" and {counted(files, 'SQLite file')} checked: {len(damaged)} damaged"
         + (f", {unchecked} unchecked (saved before checksums were recorded)"
            if unchecked else ""))
     for r in damaged:
@@ -44,7 +44,3 @@ def cmd_check(args: argparse.Namespace) -> int:
             say(f"{r['what']}: the active version {r['version']} is damaged: "
                 f"{store.advice(r['what'], r['version'])}")
     return 1 if damaged else 0
-
-
-def _n(count: int, word: str) -> str:
-    return f"{count} {word}{'' if count == 1 else 's'}"
