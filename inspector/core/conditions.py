@@ -882,12 +882,12 @@ class Conditions(Estimator):
         return np.array([cv2.norm(g, b, cv2.NORM_L1, keep) / count
                          for g, b in zip(grey, before)])
 
-    def _health_terms(self) -> tuple[np.ndarray | None, np.ndarray | None, int,
+    def _health_terms(self) -> tuple[np.ndarray | None, np.ndarray | None, int | None,
                                      np.ndarray | None]:
         """What the health measures need of the ignore mask and the reference cells, made
         once per fit: the pixels kept, (H, W) uint8 1/0 (None: all); the flat indices of
-        every fourth of them (None: every fourth pixel); how many there are (at least 1);
-        and the textured cells, (g, g) bool (None before ``ref_cells_`` is known)."""
+        every fourth of them (None: every fourth pixel); how many there are (at least 1;
+        None when all are kept: the callers take the frame's size); and the textured cells, (g, g) bool (None before ``ref_cells_`` is known)."""
         ignore, cells = self.ignore_, self.ref_cells_
         if (self._health is None or self._health[0] is not ignore
                 or self._health[1] is not cells):
