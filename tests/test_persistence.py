@@ -21,6 +21,7 @@ from inspector.core.persistence import (
     StreamState,
     calibrate_persistence,
     clearly_busy,
+    flat_filter,
     local_maps,
     local_median,
     median_filtered,
@@ -219,6 +220,27 @@ def test_median_filter_of_a_stack_is_scipys_map_by_map():
         got = median_filtered(maps, size, chunk=200)
         ref = np.stack([median_filter(m, size=size, mode="nearest") for m in maps])
         assert got.dtype == np.float32 and np.array_equal(got, ref), size
+
+
+def test_flat_filters_and_opening_are_scipys():
+    # scipy.ndimage.minimum_filter / maximum_filter / grey_opening over squares, edges
+    # repeating the nearest cell, map by map: the same values (each a value of its square;
+    # a zero's sign may differ), with ties, NaN, maps smaller than the square and a stack.
+    from scipy.ndimage import grey_opening, maximum_filter, minimum_filter
+
+    rng = np.random.default_rng(5)
+    maps = np.round(rng.standard_normal((3, 7, 12)) * 2).astype(np.float32) / 2
+    with_nan = maps.copy()
+    with_nan[1, 2, 3] = np.nan
+    for m in (maps, maps[0], maps[:, :2, :1], with_nan):
+        for size in (1, 2, 3, 4, 5):
+            sq = (1,) * (m.ndim - 2) + (size, size)
+            assert np.array_equal(flat_filter(m, size, np.maximum),
+                                  maximum_filter(m, size=sq, mode="nearest"), equal_nan=True)
+            assert np.array_equal(flat_filter(m, size, np.minimum),
+                                  minimum_filter(m, size=sq, mode="nearest"), equal_nan=True)
+            assert np.array_equal(opened(m, size), grey_opening(m, size=sq, mode="nearest"),
+                                  equal_nan=True), (m.shape, size)
 
 
 def test_state_carries_the_window_across_calls_and_through_arrays():
