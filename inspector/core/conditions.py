@@ -56,6 +56,7 @@ from inspector.core.image import (
     cell_contrast,
     cell_correlation,
     cell_detail,
+    cell_terms,
     clip_loss,
     correlation,
     correlation_terms,
@@ -312,6 +313,8 @@ class Conditions(Estimator):
         #: (ignore mask, reference cells, what the health measures need of them), made
         #: once (:meth:`_health_terms`).
         self._health: tuple | None = None
+        #: (grey reference, its cell terms), made once (:meth:`_cell_terms`).
+        self._cells: tuple | None = None
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
@@ -343,7 +346,7 @@ class Conditions(Estimator):
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = self._spectrum = self._fine = self._health = None
+        self._ref_terms = self._spectrum = self._fine = self._health = self._cells = None
         if not len(images):
             return self
         ref = median_stack(grey(images))
@@ -823,7 +826,8 @@ class Conditions(Estimator):
                "gain": prepared.gains[:, 0].astype(np.float64)}
         if textured is not None and textured.any() and n:
             if self.reference_ is not None:
-                lost = cell_correlation(prepared.aligned, self.reference_) < COVER_CORRELATION
+                lost = cell_correlation(prepared.aligned, self.reference_,
+                                        terms=self._cell_terms()) < COVER_CORRELATION
                 out["covered"] = lost[:, textured].mean(axis=1)
             if self.ref_detail_ is not None:
                 ratio = self._detail(prepared) / np.maximum(self.ref_detail_, 1e-6)
@@ -894,6 +898,12 @@ class Conditions(Estimator):
                         cells > max(2.0, 0.1 * float(np.median(cells))))
             self._health = (ignore, cells, (keep, quarter, count, textured))
         return self._health[2]
+
+    def _cell_terms(self) -> tuple[np.ndarray, np.ndarray]:
+        """:func:`~inspector.core.image.cell_terms` of the grey reference, made once."""
+        if self._cells is None or self._cells[0] is not self.reference_:
+            self._cells = (self.reference_, cell_terms(self.reference_))
+        return self._cells[1]
 
     @staticmethod
     def _detail(prepared: Prepared) -> np.ndarray:

@@ -715,7 +715,10 @@ def _cell_sums(x: np.ndarray, grid: int) -> np.ndarray:
     return rows @ (x @ cols.T.astype(x.dtype)).astype(np.float64)
 
 
+@lru_cache(maxsize=16)
 def _cell_counts(shape: tuple[int, int], grid: int) -> np.ndarray:
+    """Pixels in each cell of a ``grid`` x ``grid`` split of an image of ``shape`` (H, W),
+    (grid, grid) float64, made once per size (read only)."""
     h, w = shape
     ny = np.diff(np.linspace(0, h, grid + 1).astype(int))
     nx = np.diff(np.linspace(0, w, grid + 1).astype(int))
@@ -758,7 +761,8 @@ def cell_contrast(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
     return np.sqrt(_cell_var(g, grid)).astype(np.float32)
 
 
-def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
+def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID,
+                     terms: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """Normalised cross-correlation of each cell of ``g`` with the same cell of ``ref``.
 
     Blind to gain and offset cell by cell, so night and day frames of the same view both
@@ -768,6 +772,9 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> 
     ----------
     g : ndarray, shape (H, W) or (n, H, W), float
     ref : ndarray, shape (H, W), float
+    terms : (ndarray, ndarray), optional
+        :func:`cell_terms` of ``ref`` when made before (a reference compared with many
+        frames).
 
     Returns
     -------
@@ -776,12 +783,21 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID) -> 
     a = np.asarray(g, np.float32)
     b = np.asarray(ref, np.float32)
     n = _cell_counts(a.shape[-2:], grid)
-    ma, mb = _cell_sums(a, grid) / n, _cell_sums(b, grid) / n
+    mb, vb = cell_terms(b, grid) if terms is None else terms
+    ma = _cell_sums(a, grid) / n
     cov = _cell_sums(a * b, grid) / n - ma * mb
     va = np.maximum(_cell_sums(a * a, grid) / n - ma * ma, 0.0)
-    vb = np.maximum(_cell_sums(b * b, grid) / n - mb * mb, 0.0)
     den = np.sqrt(va * vb)
     return np.where(den > 1e-9, cov / np.maximum(den, 1e-9), 0.0).astype(np.float32)
+
+
+def cell_terms(ref: np.ndarray, grid: int = COVER_GRID) -> tuple[np.ndarray, np.ndarray]:
+    """What :func:`cell_correlation` needs of its reference (H, W): the mean and the
+    variance of each cell, (grid, grid) float64 each."""
+    b = np.asarray(ref, np.float32)
+    n = _cell_counts(b.shape[-2:], grid)
+    mb = _cell_sums(b, grid) / n
+    return mb, np.maximum(_cell_sums(b * b, grid) / n - mb * mb, 0.0)
 
 
 def percentile_rows(x: np.ndarray, q: float) -> np.ndarray:

@@ -84,7 +84,8 @@ def field_keep(expected, near, channels, seen, has_near, has_seen):  # pragma: n
 
     A channel is kept unless it is expected to saturate; where a pixel has a clipped
     channel that is not expected to saturate and it is near a clip, no channel of it is
-    kept; a clipped channel is never kept; a pixel not ``seen`` keeps nothing.
+    kept; a clipped channel is never kept; a pixel not ``seen`` keeps nothing. Loops of
+    0/1 bytes over pixels and over values, without branches (vectorised).
 
     Parameters
     ----------
@@ -102,24 +103,34 @@ def field_keep(expected, near, channels, seen, has_near, has_seen):  # pragma: n
     -------
     ndarray, shape (H, W, 3), uint8, 1 where kept, else 0
     """
-    h, w, c = expected.shape
-    out = np.empty((h, w, c), np.uint8)
-    for y in range(h):
-        for x in range(w):
-            ok = True
-            if has_seen:
-                ok = seen[y, x] != 0
-            odd = False
-            if has_near and ok and near[y, x] != 0:
-                for ch in range(c):
-                    if channels[y, x, ch] != 0 and expected[y, x, ch] == 0:
-                        odd = True
-            for ch in range(c):
-                k = ok and not odd and expected[y, x, ch] == 0
-                if has_near and channels[y, x, ch] != 0:
-                    k = False
-                out[y, x, ch] = 1 if k else 0
-    return out
+    h, w, _ = expected.shape
+    n = h * w
+    e = expected.reshape(n * 3)
+    ch = channels.reshape(-1)
+    nr = near.reshape(-1)
+    sn = seen.reshape(-1)
+    out = np.empty(n * 3, np.uint8)
+    ok = np.ones(n, np.uint8)  # pixels that keep their channels
+    if has_seen:
+        for p in range(n):
+            ok[p] = sn[p] != 0
+    if has_near:
+        for p in range(n):  # near a clip, with a channel clipped the exposure does not explain
+            odd = (((ch[3 * p] != 0) & (e[3 * p] == 0))
+                   | ((ch[3 * p + 1] != 0) & (e[3 * p + 1] == 0))
+                   | ((ch[3 * p + 2] != 0) & (e[3 * p + 2] == 0)))
+            ok[p] &= np.uint8(1) - np.uint8(odd & (nr[p] != 0))
+        for j in range(n * 3):
+            out[j] = (e[j] == 0) & (ch[j] == 0)
+    else:
+        for j in range(n * 3):
+            out[j] = e[j] == 0
+    for p in range(n):
+        k = ok[p]
+        out[3 * p] &= k
+        out[3 * p + 1] &= k
+        out[3 * p + 2] &= k
+    return out.reshape(h, w, 3)
 
 
 @njit(cache=True, nogil=True)
