@@ -17,13 +17,16 @@ from inspector.core.events import FramePoint, group_events
 from inspector.core.persistence import (
     BUSY_SHARE,
     MAX_SPAN,
+    MIN_PAST,
     Persistence,
     StreamState,
     calibrate_persistence,
+    cell_looks,
     clearly_busy,
     flat_filter,
     local_maps,
     local_median,
+    local_size,
     median_filtered,
     opened,
     past_level,
@@ -160,6 +163,80 @@ def test_what_was_there_before_is_not_counted_and_what_appears_stays_flagged():
     # Without keeping the reference, the parcel goes into it and stops being flagged.
     loose = persistence(maps, times, 4, 10.0, past=4)
     assert (loose.scores[11:20] > 5.0).sum() < 9
+
+
+def test_a_step_counts_only_where_the_picture_changed():
+    # The same step of the anomaly maps at two places from frame 8 on: at (4, 5) a parcel is
+    # set down (the frames' looks change there and stay changed), at (1, 1) the picture stays
+    # as it was (the model reads a frame differently: the gain fitted over the view moved).
+    # With the looks, only the parcel counts; it stays flagged while it stays (a held cell
+    # keeps the look from before it as its reference), and nothing after it is taken away.
+    n = 26
+    maps = np.zeros((n, 6, 8), np.float32)
+    maps[8:20, 4, 5] = 30.0
+    maps[8:20, 1, 1] = 30.0
+    looks = np.zeros((n, 6, 8), np.float32)
+    looks[8:20, 4, 5] = 0.5                       # the parcel, darker than the floor
+    looks += np.random.default_rng(0).normal(0.0, 0.002, looks.shape).astype(np.float32)
+    times = np.arange(n) * 2.0
+    opts = dict(threshold=5.0, past=4, start_threshold=60.0, min_past=3)
+    plain = persistence(maps, times, 4, 10.0, **opts)
+    assert (plain.maps[11:20, 1, 1] > 5.0).all()
+    run = persistence(maps, times, 4, 10.0, looks=looks, change=0.05, **opts)
+    assert (run.maps[11:20, 1, 1] <= 0.0).all()
+    flagged = run.filled & (run.scores > np.where(run.stepped, 5.0, 60.0))
+    assert flagged.tolist() == [False] * 11 + [True] * 9 + [False] * 6
+    # the looks go with the stream's state (the ledger's arrays) like the maps
+    first = persistence(maps[:13], times[:13], 4, 10.0, looks=looks[:13], change=0.05, **opts)
+    saved = StreamState.from_arrays(first.state.arrays())
+    second = persistence(maps[13:], times[13:], 4, 10.0, state=saved, looks=looks[13:],
+                         change=0.05, **opts)
+    np.testing.assert_allclose(np.concatenate([first.maps, second.maps]), run.maps)
+    # A look is the log of each cell's mean less its mean over the square around it: the
+    # same after a change of gain (a ratio is a difference of logs), and the square's mean is
+    # scipy.ndimage.uniform_filter's with edges repeated ("nearest").
+    from scipy.ndimage import uniform_filter
+
+    grey = np.random.default_rng(1).uniform(20.0, 200.0, (2, 24, 48)).astype(np.float32)
+    look = cell_looks(grey, (6, 12))
+    cells = np.log1p(grey.reshape(2, 6, 4, 12, 4).mean(axis=(2, 4)))
+    k = local_size((6, 12))
+    assert k == 3
+    want = cells - uniform_filter(cells, size=(1, k, k), mode="nearest")
+    np.testing.assert_allclose(look, want, atol=1e-5)
+    assert np.abs(cell_looks(grey * 1.5 + 0.5, (6, 12)) - look).max() < 1e-5
+
+
+def test_a_reference_needs_frames_a_passer_by_cannot_move():
+    # A cell that reads unusual all along (30), covered in the first frame of a run by a
+    # passer-by who reads less unusual there (2): a reference from that one frame makes the
+    # next window a step of 28, one from MIN_PAST frames or more does not; a window with
+    # fewer frames before it is judged as a first window (not stepped).
+    maps = np.full((10, 5, 5), 0.0, np.float32)
+    maps[:, 2, 2] = 30.0
+    maps[0, 2, 2] = 2.0
+    times = np.arange(10) * 2.0
+    one = persistence(maps, times, 4, 10.0, past=8)
+    assert one.stepped[4] and one.maps[4, 2, 2] == pytest.approx(28.0)
+    three = persistence(maps, times, 4, 10.0, past=8, min_past=MIN_PAST)
+    assert not three.stepped[4:6].any() and three.stepped[6:].all()
+    assert np.abs(three.maps[6:, 2, 2]).max() < 1e-5
+    assert past_level(maps[:3, 2:3, 2:3])[0, 0] == 30.0  # second largest of (2, 30, 30)
+
+
+def test_a_threshold_resting_on_one_window_is_told():
+    # 48 windows at alpha 1 %: too few for the rank, so the conformal threshold is the
+    # largest score (Vovk, Gammerman & Shafer 2005). One window 100x the others sets it.
+    from inspector.core.calibration import conformal_threshold
+
+    scores = np.linspace(0.1, 2.0, 48)
+    lone = np.append(scores[:-1], 200.0)
+    for values, told in ((scores, []), (lone, [("change", 200.0, scores[-2])])):
+        p = Persistence(4, 20.0, conformal_threshold(values, 0.01), values, 0.5, True,
+                        floor=1.5)
+        assert p.threshold.value == values.max()
+        assert p.threshold.guaranteed == pytest.approx(1 / 49)
+        assert p.lone() == told
 
 
 def test_what_stays_outscores_what_passes():
@@ -337,7 +414,9 @@ def test_calibrate_tells_busy_from_quiet():
     # Flags come from the step from the frames before the window; the first frame of a
     # stretch, with none before it, is held to the steady level of every window.
     assert b.past == 8 and b.robust and b.start_threshold is not None
-    assert len(b.start_scores) == len(b.calibration_scores) + 5  # one per block has no past
+    # the first MIN_PAST full windows of each block have too few frames before them
+    assert b.min_past == MIN_PAST == 3
+    assert len(b.start_scores) == len(b.calibration_scores) + 5 * MIN_PAST
     rank = math.ceil((len(b.start_scores) + 1) * 0.99)
     # Each threshold is that order statistic, raised to the floor when below it: the 99th
     # percentile (numpy.quantile) of the steady levels of every cell of every full window.
@@ -354,10 +433,12 @@ def test_calibrate_tells_busy_from_quiet():
     assert again.to_json() == b.to_json() and again.around == 3
     old = Persistence.from_saved({k: v for k, v in b.to_json().items()
                                   if k not in ("past", "robust", "start_threshold", "around",
-                                               "floor", "local", "footprint")},
+                                               "floor", "local", "footprint", "min_past",
+                                               "change")},
                                  b.calibration_scores)  # saved before the step
     assert old.past == 0 and not old.robust and old.start_threshold is None and old.around == 1
     assert old.floor == 0.0 and old.local == 0 and old.footprint == 1
+    assert old.min_past == 1 and old.change == 0.0
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

@@ -12,7 +12,7 @@ from inspector.core.calibration import Calibration, Threshold
 from inspector.core.conditions import Conditions
 from inspector.core.image import grey
 from inspector.core.models.base import DensityModel
-from inspector.core.persistence import Persistence
+from inspector.core.persistence import Persistence, cell_looks
 from inspector.core.regimes import Regimes
 
 
@@ -37,6 +37,9 @@ class Scores:
         Threshold each frame was held to (its regime's; see :mod:`inspector.core.regimes`).
     regimes : ndarray, shape (n,), int, or None
         Regime of each frame (None when the baseline has one).
+    looks : ndarray, shape (n, h, w), float32, or None
+        The frames' :func:`~inspector.core.persistence.cell_looks`, for persistence (None
+        when it does not use them).
     """
 
     maps: np.ndarray
@@ -46,6 +49,7 @@ class Scores:
     health: list = field(default_factory=list)
     thresholds: np.ndarray | None = None
     regimes: np.ndarray | None = None
+    looks: np.ndarray | None = None
 
 
 @dataclass
@@ -72,6 +76,9 @@ class Evaluation:
         Pixels whose brightness was only bounded, 255
         (:attr:`~inspector.core.conditions.Prepared.clipped`, as aligned): the model saw a
         prediction there; None when no frame has any.
+    looks : ndarray, shape (n, h, w), float32, or None
+        :func:`~inspector.core.persistence.cell_looks` of the aligned frames, when the
+        baseline's persistence uses them.
     """
 
     images: np.ndarray
@@ -81,6 +88,7 @@ class Evaluation:
     gains: np.ndarray | None = None
     noise: np.ndarray | None = None
     clipped: np.ndarray | None = None
+    looks: np.ndarray | None = None
 
 
 @dataclass
@@ -176,7 +184,10 @@ class Baseline:
         m = self.conditions.measures(rec) if self.conditions.health else None
         noise = self.conditions.noise_scale(rec)
         raw = self.model.score_maps(rec.images, noise=noise)
-        return Evaluation(images, raw, m, rec.grey, rec.gains[:, 0], noise, rec.clipped)
+        looks = (cell_looks(rec.aligned, raw.shape[1:])
+                 if self.persistence is not None and self.persistence.change > 0 else None)
+        return Evaluation(images, raw, m, rec.grey, rec.gains[:, 0], noise, rec.clipped,
+                          looks)
 
     def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.
@@ -216,4 +227,4 @@ class Baseline:
         return Scores(maps=maps, scores=scores, p_values=p_values,
                       flagged=(scores > thresholds) & healthy, health=health,
                       thresholds=thresholds,
-                      regimes=labels if self.regimes is not None else None)
+                      regimes=labels if self.regimes is not None else None, looks=ev.looks)

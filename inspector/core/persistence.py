@@ -84,6 +84,13 @@ from inspector.core.scoring import frame_scores
 #: ``WINDOW``-th frame it is seen in). A slow vehicle with a load can cover its own length
 #: only after two or three frames; four frames let it move on.
 WINDOW = 4
+#: Fewest frames before a window that its reference is taken from (see :func:`past_level`):
+#: the second largest of three or more values is neither the largest nor the smallest, so
+#: one passer-by in those frames moves the reference neither up (hiding what appears) nor
+#: down (a passer-by who happens to score lower than the ground it covers, where that ground
+#: reads unusual all along, would make the whole window a step). A window with fewer frames
+#: before it is judged as the first window of a run is (``start_threshold``).
+MIN_PAST = 3
 #: Cells on a side of the neighbourhood over which a steady level takes its spread (see
 #: :func:`steady_level`): the cell and the ones touching it.
 AROUND = 3
@@ -128,6 +135,10 @@ class StreamState:
     held : ndarray, shape (h, w), float32, or None
         Per cell above its threshold in the last frame, the reference it keeps (NaN where
         none is held); see :func:`persistence` (``past``).
+    looks : ndarray, shape (m, h, w), float32, or None
+        The frames' :func:`cell_looks`, as ``maps`` (None: not kept).
+    held_look : ndarray, shape (h, w), float32, or None
+        Per held cell, the look it keeps as its reference (NaN where none is held).
     """
 
     maps: np.ndarray
@@ -135,6 +146,8 @@ class StreamState:
     onset: np.ndarray | None = None
     block: int = -1
     held: np.ndarray | None = None
+    looks: np.ndarray | None = None
+    held_look: np.ndarray | None = None
 
     @classmethod
     def empty(cls) -> "StreamState":
@@ -145,14 +158,16 @@ class StreamState:
         out = {"maps": self.maps, "times": self.times, "block": np.array(self.block)}
         if self.onset is not None:
             out["onset"] = self.onset
-        if self.held is not None:
-            out["held"] = self.held
+        for key in ("held", "looks", "held_look"):
+            if getattr(self, key) is not None:
+                out[key] = getattr(self, key)
         return out
 
     @classmethod
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> "StreamState":
         return cls(np.asarray(arrays["maps"], np.float32), np.asarray(arrays["times"], float),
-                   arrays.get("onset"), int(arrays.get("block", -1)), arrays.get("held"))
+                   arrays.get("onset"), int(arrays.get("block", -1)), arrays.get("held"),
+                   arrays.get("looks"), arrays.get("held_look"))
 
 
 @dataclass
@@ -200,7 +215,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 threshold: float | None = None, state: StreamState | None = None,
                 blocks: np.ndarray | None = None, past: int = 0, robust: bool | str = False,
                 start_threshold: float | None = None, around: int = 1, local: int = 0,
-                footprint: int = 1, made_local: bool = False) -> PersistenceResult:
+                footprint: int = 1, made_local: bool = False, min_past: int = 1,
+                looks: np.ndarray | None = None, change: float = 0.0) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -229,9 +245,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         Frames just before the window whose level at each cell is the cell's reference
         (:func:`past_level`): the persistence map is the window's steady level less the
         reference, so what was already there before the window (a patch of sun, a lamp's
-        pool) is not counted, and what appeared and stayed is. A frame with at least one such
-        frame in its stretch of the stream has ``stepped`` set. 0: no reference (the steady
-        level itself).
+        pool) is not counted, and what appeared and stayed is. A frame with at least
+        ``min_past`` such frames in its stretch of the stream has ``stepped`` set; with fewer
+        its map is the steady level. 0: no reference (the steady level itself).
     robust : bool or "window"
         True: divide each local map by its cells' robust spread (see :func:`local_maps`).
         "window": divide the local maps of a window and of the frames before it by one
@@ -255,6 +271,20 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     made_local : bool
         ``maps`` are already :func:`local_maps` with these ``robust`` and ``local`` (a caller
         that runs the same maps more than once makes them local once).
+    min_past : int >= 1
+        Fewest frames before the window a reference is taken from (see :data:`MIN_PAST`).
+    looks : ndarray, shape (n, h, w), float, optional
+        The frames' :func:`cell_looks`. With ``change`` > 0, a cell of a frame measured from
+        a reference counts only where the frame itself changed there: where every frame of
+        the window differs from the frames before it (their median look, per cell; a held
+        cell keeps the look it had before it was held) by more than ``change`` (see
+        :func:`_changed`: all of them but one, at the cell or one of the ``around`` cells
+        around it). Elsewhere the map is at most 0. Something left changes the picture where it is; a region
+        whose anomaly steps up while the picture there stays as it was is the model's
+        reading of a frame changing (the light fitted over the whole view moved by
+        passers-by elsewhere), not something at that place.
+    change : float >= 0
+        See ``looks``; 0: every cell counts.
 
     Returns
     -------
@@ -274,8 +304,14 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     onset = st.onset if st is not None and st.onset is not None else None
     held = st.held if st is not None and st.held is not None else None
     block = st.block if st is not None else -1
+    gate = looks is not None and change > 0
+    lbuf: list = ([None] * len(buf) if st is None or st.looks is None
+                  or len(st.looks) != len(buf) else list(st.looks))
+    held_look = st.held_look if st is not None and gate else None
     if buf and buf[0].shape != maps.shape[1:]:
         buf, buf_t, onset, held = [], [], None, None  # another baseline's map size
+        lbuf, held_look = [], None
+    look_of = list(np.asarray(looks, np.float32)) if gate else [None] * n
     out = np.empty_like(maps)
     steady = np.empty_like(maps)  # each frame's steady level, opened below
     filled = np.zeros(n, bool)
@@ -283,6 +319,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     late = np.zeros(n, bool)
     late_buf: list[np.ndarray] = []
     late_t: list[float] = []
+    late_l: list = []
     frames = list(maps)  # one view a frame: its id keys its robust spread (see _spreads)
     spreads: dict = ({id(f): (f, float(v)) for f, v in zip(frames, robust_spread(maps))}
                      if scaled and n else {})  # (all at once: one call, not one a frame)
@@ -298,37 +335,46 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             late[i] = True
             pos = int(np.searchsorted(buf_t, t, side="right"))
             if not (late_t and late_t[-1] <= t and t - late_t[-1] <= max_gap):
-                late_buf, late_t = buf[:pos], buf_t[:pos]
+                late_buf, late_t, late_l = buf[:pos], buf_t[:pos], lbuf[:pos]
             late_buf, late_t = (late_buf + [frames[i]])[-keep:], (late_t + [t])[-keep:]
+            late_l = (late_l + [look_of[i]])[-keep:]
             level, raw, _ = _step(late_buf, window, around=around, scaled=scaled,
-                                  spreads=spreads)
+                                  spreads=spreads, min_past=min_past)
+            seen = _changed(late_l, window, None, min_past, around) if gate else None
+            if seen is not None:
+                raw = _gated(raw, seen[0], change)
             out[i], steady[i] = raw, level
             if threshold is not None:
                 out[i] = opened(raw, footprint)
-            stepped[i] = past > 0 and len(late_buf) > window
+            stepped[i] = past > 0 and len(late_buf) >= window + min_past
             filled[i] = (len(late_t) >= window
                          and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
             if pos or buf_t[0] - t <= max_gap:
                 buf.insert(pos, frames[i])
                 buf_t.insert(pos, t)
-                del buf[:-keep], buf_t[:-keep]
+                lbuf.insert(pos, look_of[i])
+                del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
             if threshold is not None and onset is not None:
                 region = out[i] > _limit(threshold, start_threshold, stepped[i])
                 if region.any() and np.isfinite(onset[region]).any():
                     since[i] = min(float(np.nanmedian(onset[region])), t)
             continue
-        late_buf, late_t = [], []
+        late_buf, late_t, late_l = [], [], []
         if buf_t and (t - buf_t[-1] > max_gap or b != block):  # (late frames: above)
             buf, buf_t, onset, held = [], [], None, None
+            lbuf, held_look = [], None
         block = b
         buf.append(frames[i])
         buf_t.append(t)
-        del buf[:-keep], buf_t[:-keep]
-        level, raw, scale = _step(buf, window, held, around, scaled, spreads)
-        out[i], steady[i] = raw, level
+        lbuf.append(look_of[i])
+        del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
+        level, raw, scale = _step(buf, window, held, around, scaled, spreads, min_past)
+        seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
+        steady[i] = level
+        out[i] = raw if seen is None else _gated(raw, seen[0], change)
         if threshold is not None:  # (else opened below, all frames at once)
-            out[i] = opened(raw, footprint)
-        stepped[i] = past > 0 and len(buf) > window
+            out[i] = opened(out[i], footprint)
+        stepped[i] = past > 0 and len(buf) >= window + min_past
         filled[i] = len(buf) >= window
         if threshold is not None:
             limit = _limit(threshold, start_threshold, stepped[i])
@@ -341,8 +387,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 since[i] = float(np.median(onset[region]))
             if past:  # cells above keep the reference they had (NaN: not held)
                 reference = level - raw
-                held = np.where(region & filled[i] & stepped[i], reference,
-                                np.nan).astype(np.float32)
+                keeps = region & filled[i] & stepped[i]
+                held = np.where(keeps, reference, np.nan).astype(np.float32)
+                held_look = (None if seen is None else
+                             np.where(keeps, seen[1], np.nan).astype(np.float32))
     if threshold is None:  # (the maps are not needed in the loop: opened at once)
         out = opened(out, footprint)
     levels = (opened(steady, footprint).reshape(n, -1).max(axis=1).astype(np.float64) if n
@@ -352,8 +400,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                                  state if state is not None else StreamState.empty(), late,
                                  stepped, levels)
     kept, kept_t = (buf[-(keep - 1):], buf_t[-(keep - 1):]) if keep > 1 else ([], [])
+    kept_l = lbuf[-(keep - 1):] if keep > 1 else []
     state_out = StreamState(np.array(kept, np.float32).reshape(len(kept), *maps.shape[1:]),
-                            np.array(kept_t, np.float64), onset, block, held)
+                            np.array(kept_t, np.float64), onset, block, held,
+                            np.array(kept_l, np.float32).reshape(len(kept), *maps.shape[1:])
+                            if gate and all(v is not None for v in kept_l) else None,
+                            held_look)
     return PersistenceResult(out, frame_scores(out), filled, since, state_out, late, stepped,
                              levels)
 
@@ -362,6 +414,91 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
     """The threshold a frame's persistence map is held to: ``threshold`` when it is measured
     from a reference (``stepped``), else ``start_threshold`` when there is one."""
     return threshold if stepped or start_threshold is None else start_threshold
+
+
+def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: int,
+             around: int = 1) -> tuple[np.ndarray, np.ndarray] | None:
+    """Per cell, how much the frames of the window changed from the frames before it: the
+    absolute difference of a frame's look from the median look of the frames before (a held
+    cell: from ``held_look``), the second smallest over the window (one frame set aside, as
+    the steady level sets one aside: a passer-by in front of a thing left, as dull as the
+    ground it covers, does not hide that the thing changed the picture), the largest over
+    the ``around`` x ``around`` cells centred on the cell (a cell at the edge of a thing, or
+    part of a thing that happens to be as bright as the ground, counts with the thing); and
+    that reference, shapes (h, w) float32. None with fewer than ``min_past`` frames before
+    or a look missing."""
+    before = looks[:-window]
+    if len(before) < min_past or any(v is None for v in looks):
+        return None
+    reference = np.median(np.asarray(before, np.float32), axis=0)
+    if held_look is not None:
+        reference = np.where(np.isnan(held_look), reference, held_look)
+    diff = np.abs(np.asarray(looks[-window:], np.float32) - reference)
+    change = np.partition(diff, 1, axis=0)[1] if len(diff) > 2 else diff.min(axis=0)
+    return flat_filter(np.ascontiguousarray(change, np.float32), around, np.maximum), reference
+
+
+def _gated(step: np.ndarray, changed: np.ndarray, change: float) -> np.ndarray:
+    """``step`` where the picture changed by more than ``change``, else at most 0."""
+    return np.where(changed > change, step, np.minimum(step, 0.0)).astype(np.float32)
+
+
+def cell_looks(grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """Per frame and map cell, the log brightness of the frame there less its mean over
+    the cells around (see :func:`persistence`, ``looks``).
+
+    The mean of the frame's grey over each cell (an area average to the map's shape), its
+    logarithm, less its mean over the square of :func:`local_size` cells around (edges
+    repeat the nearest cell): a change of exposure or gain multiplies the brightness and a
+    lamp's pool changes it smoothly over a large part of the view, so both leave the look
+    nearly as it was (a ratio is a difference of logarithms, and the mean around takes out
+    what is smooth over a quarter of the view), while something set down changes it where
+    it is. (A mean, not the median of :func:`local_maps`: a thing left covers a few
+    percent of that square, so it moves the mean by as little, and a mean over a square
+    costs a few microseconds a frame where the median costs about half a millisecond.)
+
+    Parameters
+    ----------
+    grey : ndarray, shape (n, H, W), float or uint8
+        The frames' grey, as aligned to the reference (see
+        :attr:`inspector.core.conditions.Prepared.aligned`).
+    shape : (int, int)
+        The map's (h, w).
+
+    Returns
+    -------
+    ndarray, shape (n, h, w), float32
+    """
+    import cv2
+
+    h, w = shape
+    if not len(grey):
+        return np.zeros((0, h, w), np.float32)
+    k = local_size(shape)
+    out = np.empty((len(grey), h, w), np.float32)
+    for i, g in enumerate(grey):
+        cells = np.log1p(cv2.resize(np.asarray(g, np.float32), (w, h),
+                                    interpolation=cv2.INTER_AREA))
+        out[i] = cells - cv2.blur(cells, (k, k), borderType=cv2.BORDER_REPLICATE)
+    return out
+
+
+def look_noise(looks: np.ndarray, times: np.ndarray, max_gap: float,
+               blocks: np.ndarray | None = None) -> float:
+    """How much a cell's look changes from one normal frame to the next: the median over
+    cells and consecutive pairs (within ``max_gap`` seconds and one block) of the absolute
+    difference of :func:`cell_looks`; 0 when there is no such pair."""
+    looks = np.asarray(looks, np.float32)
+    times = np.asarray(times, np.float64)
+    if len(looks) < 2:
+        return 0.0
+    pair = np.diff(times) <= max_gap
+    if blocks is not None:
+        pair &= np.diff(np.asarray(blocks)) == 0
+    if not pair.any():
+        return 0.0
+    idx = np.flatnonzero(pair)
+    return float(np.median(np.abs(looks[idx + 1] - looks[idx])))
 
 
 def opened(level: np.ndarray, footprint: int) -> np.ndarray:
@@ -451,21 +588,22 @@ def flat_filter(maps: np.ndarray, size: int, op, after: int | None = None) -> np
 
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
-          around: int = 1, scaled: bool = False, spreads: dict | None = None
-          ) -> tuple[np.ndarray, np.ndarray, float]:
+          around: int = 1, scaled: bool = False, spreads: dict | None = None,
+          min_past: int = 1) -> tuple[np.ndarray, np.ndarray, float]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
     reference from ``held`` (NaN where not held), shapes (h, w), float32; and the scale the
     frames were divided by: with ``scaled``, the median of the window frames' robust spreads
     floored at 1 (:func:`robust_spread`), else 1. ``spreads``: the robust spreads of frames
-    met before, by frame (see :func:`_spreads`)."""
+    met before, by frame (see :func:`_spreads`); fewer than ``min_past`` frames before the
+    window: no reference."""
     win = np.asarray(frames[-window:], np.float32)
     scale = (max(float(np.median(_spreads(frames[-window:], win, spreads))), 1.0) if scaled
              else 1.0)
     level = steady_level(win / np.float32(scale), around)
     before = frames[:-window]
-    reference = (past_level(np.asarray(before, np.float32) / np.float32(scale)) if before
-                 else np.zeros_like(level))
+    reference = (past_level(np.asarray(before, np.float32) / np.float32(scale))
+                 if before and len(before) >= min_past else np.zeros_like(level))
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
     return level, (level - reference).astype(np.float32), scale
@@ -733,6 +871,14 @@ class Persistence:
     footprint : int
         Cells on a side of a patch, by which the persistence maps are opened (``footprint``
         of :func:`persistence`); 1 (not opened) for baselines learnt before it.
+    min_past : int
+        Fewest frames before a window for a reference (``min_past`` of :func:`persistence`;
+        :data:`MIN_PAST`, 1 for baselines learnt before it).
+    change : float
+        A cell measured from a reference counts only where the frames' looks changed by
+        more than this (``change`` of :func:`persistence`): :data:`LARGE` times how much a
+        cell's look changes from one normal frame to the next (:func:`look_noise`); 0 (every
+        cell counts) for baselines learnt before it, or without looks.
     """
 
     window: int
@@ -749,15 +895,19 @@ class Persistence:
     floor: float = 0.0
     local: int = 0
     footprint: int = 1
+    min_past: int = 1
+    change: float = 0.0
 
-    def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None
-            ) -> PersistenceResult:
-        """:func:`persistence` of a camera's frames with these settings and thresholds."""
+    def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None,
+            looks: np.ndarray | None = None) -> PersistenceResult:
+        """:func:`persistence` of a camera's frames with these settings and thresholds
+        (``looks``: the frames' :func:`cell_looks`, when known)."""
         return persistence(maps, times, self.window, self.max_gap, self.threshold.value,
                            state, past=self.past, robust=self.robust,
                            start_threshold=(self.start_threshold.value
                                             if self.start_threshold is not None else None),
-                           around=self.around, local=self.local, footprint=self.footprint)
+                           around=self.around, local=self.local, footprint=self.footprint,
+                           min_past=self.min_past, looks=looks, change=self.change)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -771,6 +921,24 @@ class Persistence:
                 p = np.where(first, conformal_p_values(self.start_scores, run.scores), p)
         return thresholds, p
 
+    def lone(self) -> list[tuple[str, float, float]]:
+        """The thresholds that rest on one held-out window: (which, threshold, next), for
+        each threshold ("change" or "first frames") set by the largest of its calibration
+        scores where that is more than :data:`LARGE` times the next largest score and the
+        floor. With fewer windows than ``alpha`` needs the conformal threshold is the
+        largest score (see :func:`inspector.core.calibration.conformal_threshold`), so one
+        window unlike all the others sets what every frame is held to."""
+        out = []
+        for which, thr, scores in (("change", self.threshold, self.calibration_scores),
+                                   ("first frames", self.start_threshold, self.start_scores)):
+            if thr is None or scores is None or len(scores) < 2:
+                continue
+            top, second = np.sort(np.asarray(scores, np.float64))[-2:][::-1]
+            below = max(float(second), self.floor)
+            if thr.value <= top and top > LARGE * below and top > 0:
+                out.append((which, float(thr.value), below))
+        return out
+
     @property
     def span(self) -> float:
         """Seconds a window of typical normal frames spans."""
@@ -781,7 +949,8 @@ class Persistence:
                "transient_share": self.transient_share, "busy": self.busy,
                "threshold": self.threshold.to_dict(), "past": self.past,
                "robust": self.robust, "around": self.around, "floor": self.floor,
-               "local": self.local, "footprint": self.footprint}
+               "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
+               "change": self.change}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -797,7 +966,8 @@ class Persistence:
                    Threshold.from_dict(start) if start else None,
                    None if start_scores is None else np.asarray(start_scores, np.float64),
                    int(meta.get("around", 1)), float(meta.get("floor", 0.0)),
-                   int(meta.get("local", 0)), int(meta.get("footprint", 1)))
+                   int(meta.get("local", 0)), int(meta.get("footprint", 1)),
+                   int(meta.get("min_past", 1)), float(meta.get("change", 0.0)))
 
 
 def _robust(saved) -> bool | str:
@@ -808,7 +978,7 @@ def _robust(saved) -> bool | str:
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
                           alpha: float, window: int = WINDOW,
                           scanned: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
-                          footprint: int = 1) -> Persistence:
+                          footprint: int = 1, looks: np.ndarray | None = None) -> Persistence:
     """Calibrate persistence on held-out normal maps, and measure how busy the camera is.
 
     Parameters
@@ -832,6 +1002,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     footprint : int >= 1
         Cells on a side of a model patch (patch / stride): the persistence maps are opened
         by it (see :func:`opened`).
+    looks : ndarray, shape (k, h, w), float, optional
+        :func:`cell_looks` of the frames of ``scanned`` (of ``maps`` without it): a cell
+        measured from a reference then counts only where the picture changed by more than
+        :data:`LARGE` times how much a cell's look changes from one normal frame to the next
+        (``change``; see :func:`persistence`), in calibration as at scan time.
 
     Returns
     -------
@@ -879,8 +1054,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     # most of their cost)
     s_maps = local_maps(s_maps, False, local)
     opts = dict(robust="window", around=AROUND, local=local, footprint=footprint,
-                made_local=True)
-    step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past, **opts)
+                made_local=True, min_past=MIN_PAST)
+    change = (LARGE * look_noise(looks, s_times, max_gap, s_blocks) if looks is not None
+              else 0.0)
+    step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
+                       looks=looks, change=change, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -898,12 +1076,13 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     if not stepped.any():
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, "window", around=AROUND, floor=floor,
-                           local=local, footprint=footprint)
+                           local=local, footprint=footprint, min_past=MIN_PAST,
+                           change=change)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, "window",
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint)
+                       floor, local, footprint, MIN_PAST, change)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

@@ -36,13 +36,15 @@ from inspector.core.calibration import (
     time_blocks,
 )
 from inspector.core.conditions import Conditions
-from inspector.core.features import rasterize_mask
+from inspector.core.features import map_shape, rasterize_mask
 from inspector.core.image import exposure_copy, grey, noise_bank, recompress, subpixel_levels
 from inspector.core.models import model_class
 from inspector.core.persistence import (
+    LARGE,
     MAX_SPAN,
     Persistence,
     calibrate_persistence,
+    cell_looks,
     persistence_on,
 )
 from inspector.core.regimes import Regimes, appearance, assign, find_regimes
@@ -234,6 +236,8 @@ class PreparedSource:
     Their extra noise is read from one bank of normal draws
     (:func:`inspector.core.image.noise_bank`, the same for every copy of the source) at a
     random offset per frame. ``looks``: record each frame's appearance (for the regimes).
+    ``cells``: the model's map shape (h, w), to record each frame's
+    :func:`~inspector.core.persistence.cell_looks` (for persistence; None: not recorded).
     ``compression``: the exports' JPEG quantisation tables and chroma subsampling when the
     frames are learnt at their exported size (else None): the copies are then compressed
     anew as the camera compresses a frame (:func:`inspector.core.image.recompress`), since
@@ -242,8 +246,10 @@ class PreparedSource:
     """
 
     def __init__(self, source, conditions: Conditions, exposure: float = 0.0,
-                 looks: bool = True, compression: tuple | None = None):
+                 looks: bool = True, compression: tuple | None = None,
+                 cells: tuple[int, int] | None = None):
         self.source = source
+        self.cells = cells
         self.conditions = conditions
         self.exposure = exposure
         self.looks = looks
@@ -254,6 +260,8 @@ class PreparedSource:
         self.measures: dict[int, dict[str, float]] = {}
         #: Global appearance of every frame, by position (for the regimes).
         self.appearance: dict[int, np.ndarray] = {}
+        #: Cell looks of every frame, by position (for persistence).
+        self.cell_looks: dict[int, np.ndarray] = {}
         self._bank: np.ndarray | None = None  # drawn when first needed (not sent to workers)
 
     def __len__(self) -> int:
@@ -262,17 +270,18 @@ class PreparedSource:
     def spawn(self) -> "PreparedSource":
         """The same frames with empty records (to read some of them elsewhere)."""
         return PreparedSource(self.source.spawn(), self.conditions, self.exposure, self.looks,
-                              self.compression)
+                              self.compression, self.cells)
 
     def collected(self) -> dict:
         return {"source": self.source.collected(), "measures": dict(self.measures),
-                "appearance": dict(self.appearance)}
+                "appearance": dict(self.appearance), "cell_looks": dict(self.cell_looks)}
 
     def absorb(self, record: dict) -> None:
         """Add a spawned copy's records."""
         self.source.absorb(record["source"])
         self.measures.update(record["measures"])
         self.appearance.update(record["appearance"])
+        self.cell_looks.update(record.get("cell_looks", {}))
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
@@ -321,6 +330,9 @@ class PreparedSource:
             render[list(draws)] = False
             rec = self.conditions.prepare(images[part], render=render)
             prepared[part] = rec.images
+            if self.cells is not None:
+                for i, look in zip(idx[part], cell_looks(rec.aligned, self.cells)):
+                    self.cell_looks[int(i)] = look
             copies = {j: exposure_copy(images[start + j], gain, rng, rec.grey[j], self._noise())
                       for j, (gain, rng) in draws.items()}
             if self.compression is not None:
@@ -401,7 +413,9 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                                   cfg.conditions.exposure_range
                                   if cfg.conditions.lighting != "off" else 0.0,
                                   looks=cfg.calibration.regimes,
-                                  compression=_compression(files, source_size, size))
+                                  compression=_compression(files, source_size, size),
+                                  cells=map_shape(size[1], size[0], cfg.model.patch,
+                                                  cfg.model.stride))
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
             extra_args["alpha"] = _planned_alpha(cfg, times)
         calibrated: list = []
@@ -506,7 +520,7 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
             warnings += [f"regime {r + 1}: {c.threshold.warning}"
                          for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
     persistence = _persistence(held, held_blocks, regimes, prepared.appearance, times, alpha,
-                               cfg, notes)
+                               cfg, notes, prepared.cell_looks, warnings)
     return used, good, calibration, threshold, regimes, persistence, notes, warnings
 
 
@@ -644,10 +658,14 @@ def _masked_note(masking: dict) -> str:
 
 
 def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraConfig,
-                 notes: list[str]) -> Persistence | None:
+                 notes: list[str], cells: dict | None = None,
+                 warnings: list[str] | None = None) -> Persistence | None:
     """Calibrate persistence on the held-out maps (cross-fitted, as the single-frame
     threshold) in capture-time order and say whether the camera is busy (a line in
-    ``notes``); None when the normal frames have no run long enough."""
+    ``notes``); None when the normal frames have no run long enough. ``cells``: the frames'
+    cell looks by position (:attr:`PreparedSource.cell_looks`), used when every
+    calibrating frame has one of the maps' shape. ``warnings`` gets a line for each threshold
+    of a camera with persistence on that rests on one held-out window."""
     maps = np.empty(held.maps.shape, np.float32)
     groups = (np.zeros(len(held.index), int) if regimes is None else  # as scored: by regime
               assign(np.array([looks[int(i)] for i in held.index]), regimes.prototypes,
@@ -670,10 +688,14 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
     ko = order[kept[order]]
     scanned = (kept_maps[ko], seconds[kept[order]], held_blocks[ko])
+    mine = [None if cells is None else cells.get(int(i)) for i in held.index[ko]]
+    shown = (np.stack(mine) if mine and all(v is not None and v.shape == held.maps.shape[1:]
+                                            for v in mine) else None)
     try:
         p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
                                   cfg.persistence.window, scanned,
-                                  footprint=max(1, cfg.model.patch // cfg.model.stride))
+                                  footprint=max(1, cfg.model.patch // cfg.model.stride),
+                                  looks=shown)
     except ValueError as exc:
         notes.append(f"persistence not calibrated: {exc}")
         return None
@@ -689,8 +711,16 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
                        f"{p.start_threshold.value:.3f} for the first frames of a run"
                        if p.start_threshold is not None else "")
                     + f"; at least {p.floor:.3f}, the steady level {alpha:.3g} of normal "
-                      f"cells pass)"
+                      f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
+                    + (f"; a change counts where the picture changed (log brightness by more "
+                       f"than {p.change:.3f})" if p.change > 0 else "")
                     if on else ": single-frame flags"))
+    if on and warnings is not None:
+        warnings += [f"persistence threshold for {which} {value:.3g} rests on one held-out "
+                     f"window, more than {LARGE:g}x the next ({below:.3g}): what steps up less "
+                     f"than that is not flagged; more normal frames like that window's (its "
+                     f"light, its traffic) would spread it"
+                     for which, value, below in p.lone()]
     return p
 
 

@@ -122,10 +122,11 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
                         flagged=bool(s.flagged[i]), image=f.image, amap=s.maps[i],
                         health=s.health[i] if s.health else [], mask=baseline.mask,
                         amplified=amplified[i],
-                        clipped=None if clipped is None else clipped[i])
+                        clipped=None if clipped is None else clipped[i],
+                        look=None if s.looks is None else s.looks[i])
                for i, f in enumerate(frames)]
     if streams is not None:
-        streams.apply(baseline, s.maps, results)
+        streams.apply(baseline, s.maps, results, s.looks)
     if notes is not None:
         for f in frames:
             notes.update(f"{baseline.camera}: {n}" for n in f.notes)
@@ -191,8 +192,11 @@ class Streams:
         return persistence_on(p.busy if p is not None else None,
                               self.config.camera(baseline.camera).persistence.mode)
 
-    def apply(self, baseline: Baseline, maps: np.ndarray, results: list[FrameResult]) -> None:
-        """Replace single-frame results of consecutive frames by persistence ones, in place."""
+    def apply(self, baseline: Baseline, maps: np.ndarray, results: list[FrameResult],
+              looks: np.ndarray | None = None) -> None:
+        """Replace single-frame results of consecutive frames by persistence ones, in place
+        (``looks``: the frames' :func:`~inspector.core.persistence.cell_looks`, when
+        known)."""
         if not self.on(baseline) or not results:
             return
         p = baseline.persistence
@@ -203,7 +207,7 @@ class Streams:
                 version, state = self.ledger.stream(cam) or ("", None)
             if version != baseline.version:
                 state = None
-            run = p.run(maps, np.array([r.time.timestamp() for r in results]), state)
+            run = p.run(maps, np.array([r.time.timestamp() for r in results]), state, looks)
             self._states[cam] = (baseline.version, run.state)
             if self.ledger is not None:
                 self.ledger.keep_stream(cam, baseline.version, run.state.arrays())
