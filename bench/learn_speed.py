@@ -13,6 +13,21 @@ and prints both wall times, their ratio (target: <= 3), the ratio of their CPU s
 (steadier than wall time on a shared machine), learn's peak resident memory (target:
 <= 1 GB, not growing with N) and the load average.
 
+On a shared machine wall time says little about the wall time on an idle one, and the CPU
+ratio misses what the wall ratio is about: stretches where the run has less work ready
+than there are cores. So each child also samples its own threads (Linux ``/proc``, every
+20 ms): how many are running or ready to run, and the CPU time spent since the last sample.
+A stretch in which ``k`` threads were ready would have run on ``min(k, cores)`` idle cores:
+its CPU seconds over that count, summed, estimate the wall time on an idle machine
+("idle s", and their ratio "idle ratio"); the part above CPU / cores is the time a core
+would wait ("1-core s" of learn). It errs on the quick side: on a busy machine a thread
+that wakes to wait for Python's lock is ready (waiting for a core) most of the time, while
+on an idle one it would sleep, and memory bandwidth shared between the cores is not
+modelled; so it finds stretches where work is missing, and does not replace a run on an
+idle machine (at load 17, learn 2,000 frames: idle ratio 3.17 against the 3.45-3.86 wall
+ratio measured at load 1-3 last session). The sampler's own CPU is taken out of the CPU
+figures.
+
     python bench/learn_speed.py [--frames 500,2000] [--size 1920x1080] [--keep DIR]
 """
 
@@ -24,6 +39,7 @@ import os
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from datetime import datetime, timedelta
 from pathlib import Path
@@ -66,6 +82,7 @@ def _child(mode: str, folder: str, n: int) -> None:
     files, _ = discover(Path(folder), camera="cam")
     files = sorted(files, key=lambda f: f.path.name)[:n]
     cfg = config.camera("cam")
+    use = CoreUse()
     started, cpu = time.perf_counter(), time.process_time()
     if mode == "decode":
         import cv2
@@ -82,8 +99,62 @@ def _child(mode: str, folder: str, n: int) -> None:
             report = learn_camera(files, cfg, Store(store))
             count = report.frames
     seconds, cpu = time.perf_counter() - started, time.process_time() - cpu
+    idle, waiting, own = use.stop()
     peak = peak_mb()
-    print(json.dumps({"frames": count, "seconds": seconds, "cpu": cpu, "peak_mb": peak}))
+    print(json.dumps({"frames": count, "seconds": seconds, "cpu": cpu - own, "peak_mb": peak,
+                      "idle_s": idle, "one_core_s": waiting}))
+
+
+class CoreUse:
+    """Samples this process's threads in a thread of its own (see the module notes): the
+    estimated wall time on ``cores`` idle cores, how much of it a core would wait, and the
+    sampler's own CPU seconds (:meth:`stop`)."""
+
+    def __init__(self, interval: float = 0.02, cores: int | None = None):
+        self.cores = cores or os.cpu_count() or 1
+        self.interval = interval
+        self._halt = threading.Event()
+        self._idle = self._waiting = self._own = 0.0
+        self._thread = threading.Thread(target=self._run, name="core use", daemon=True)
+        self._thread.start()
+
+    def _ready(self, me: int) -> int:
+        """Threads of this process running or ready to run, the sampler left out."""
+        n = 0
+        for tid in os.listdir("/proc/self/task"):
+            if int(tid) == me:
+                continue
+            try:
+                with open(f"/proc/self/task/{tid}/stat") as fh:
+                    stat = fh.read()
+            except OSError:  # (ended meanwhile)
+                continue
+            n += stat[stat.rfind(")") + 2] == "R"
+        return n
+
+    def _run(self) -> None:
+        if not os.path.isdir("/proc/self/task"):  # (not Linux: no estimate)
+            self._idle = self._waiting = float("nan")
+            return
+        me = threading.get_native_id()
+        own = time.thread_time()
+        last = time.process_time()
+        while not self._halt.wait(self.interval):
+            ready = self._ready(me)
+            mine = time.thread_time()
+            cpu = time.process_time()
+            spent = cpu - last - (mine - own)  # the others' CPU since the last sample
+            own, last = mine, cpu
+            k = min(max(ready, 1), self.cores)
+            self._idle += spent / k
+            self._waiting += spent / k - spent / self.cores
+        self._own = time.thread_time()
+
+    def stop(self) -> tuple[float, float, float]:
+        """(idle-machine wall s, of it s with a core waiting, sampler CPU s)."""
+        self._halt.set()
+        self._thread.join()
+        return self._idle, self._waiting, self._own
 
 
 def peak_mb() -> float:
@@ -124,12 +195,14 @@ def main(argv=None) -> None:
         print(f"{max(counts)} frames of {size[0]}x{size[1]} ready in "
               f"{time.perf_counter() - t:.0f} s")
         print(f"{'frames':>7}{'decode s':>10}{'learn s':>9}{'ratio':>7}{'CPU ratio':>10}"
+              f"{'idle ratio':>11}{'1-core s':>9}"
               f"{'learn peak MB':>15}{'decode peak MB':>16}{'load':>6}")
         for n in counts:
             d = measure("decode", work / "cam", n)
             le = measure("learn", work / "cam", n)
             print(f"{n:>7}{d['seconds']:>10.1f}{le['seconds']:>9.1f}"
                   f"{le['seconds'] / d['seconds']:>7.2f}{le['cpu'] / d['cpu']:>10.2f}"
+                  f"{le['idle_s'] / max(d['idle_s'], 1e-9):>11.2f}{le['one_core_s']:>9.2f}"
                   f"{le['peak_mb']:>15.0f}{d['peak_mb']:>16.0f}{os.getloadavg()[0]:>6.1f}",
                   flush=True)
 
