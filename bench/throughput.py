@@ -137,7 +137,6 @@ def _stages():
         ("shift check (correlation)", 2, conditions, "correlation"),
         ("robust gain fit", 2, conditions, "robust_gains"),
         ("brightness field", 2, conditions, "brightness_field"),
-        ("field applied (clip-loss light, floor)", 2, conditions, "apply_field"),
         ("chroma smoothing", 2, conditions, "smooth_chroma"),
         ("health measures", 1, Conditions, "measures"),
         ("covered (cell correlation)", 2, conditions, "cell_correlation"),

@@ -51,7 +51,6 @@ import cv2
 import numpy as np
 
 from inspector.core.image import (
-    apply_field,
     brightness_field,
     cell_contrast,
     cell_correlation,
@@ -93,8 +92,6 @@ _UNCLIPPED = (249, 249, 249)
 BLACK_LEVEL = 5
 #: Per-channel bound of ``cv2.compare``: a channel below it is clipped black.
 _UNBLACK = (BLACK_LEVEL + 1,) * 3
-#: Stand-ins for a mask a compiled pass is told not to read (:mod:`~inspector.core.kernels`).
-_NONE2, _NONE3 = np.zeros((1, 1), np.uint8), np.zeros((1, 1, 3), np.uint8)
 #: A textured cell whose correlation with the reference falls below this is lost from view.
 COVER_CORRELATION = 0.2
 #: Blur (working pixels) of the chroma of prepared frames (see :func:`smooth_chroma`).
@@ -240,16 +237,20 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
     if expected is None:
         keep = None if near is None else near == 0
         return seen if keep is None else keep if seen is None else keep & seen
-    # one compiled pass (a pixel with a clipped channel the exposure does not explain keeps
-    # no channel)
-    from inspector.core import kernels
-
-    return kernels.field_keep(
-        np.ascontiguousarray(expected),
-        _NONE2 if near is None else np.ascontiguousarray(near),
-        _NONE3 if near is None else np.ascontiguousarray(channels),
-        _NONE2 if seen is None else np.ascontiguousarray(seen).view(np.uint8),
-        near is not None, seen is not None).view(bool)
+    # OpenCV's 0/255 masks on (H, W * 3) views: numpy's logic over a last axis of 3 is slow
+    h, w = expected.shape[:2]
+    keep = cv2.bitwise_not(expected.reshape(h, -1))
+    if near is not None:
+        clipped = cv2.compare(channels.reshape(h, -1), 0, cv2.CMP_GT)
+        # a pixel with a clipped channel the exposure does not explain keeps no channel
+        odd = _any_channel(cv2.bitwise_and(clipped, keep).reshape(h, w, 3))
+        use = cv2.bitwise_not(cv2.bitwise_and(odd, near))
+        keep = cv2.bitwise_and(keep, cv2.bitwise_not(clipped))
+        keep = cv2.bitwise_and(keep, cv2.cvtColor(use, cv2.COLOR_GRAY2RGB).reshape(h, -1))
+    if seen is not None:
+        keep = cv2.bitwise_and(keep, cv2.cvtColor(seen.view(np.uint8) * np.uint8(255),
+                                                  cv2.COLOR_GRAY2RGB).reshape(h, -1))
+    return cv2.bitwise_and(keep, 1).reshape(h, w, 3).view(bool)
 
 
 class Conditions(Estimator):
@@ -518,6 +519,10 @@ class Conditions(Estimator):
                             self._saturating(ref_rgb, gain, offset))
                 lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near,
                                                                img)
+                level = img  # the frame's levels, the lost light given back (float32)
+                if lost is not None:
+                    level = img.astype(np.float32)
+                    level.reshape(-1)[lost[0]] += lost[1]
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
                     # the field compares the pixels the frame did not clip: a clipped one
@@ -536,17 +541,16 @@ class Conditions(Estimator):
                              if ref_rgb is not None else
                              brightness_field(fitted[i], ref, sigma, gain, offset, scale=gain,
                                               channels=3, keep=kept))
-                    # the frame with the lost light given back, times the field (rounded,
-                    # clipped), and what a channel at 0 reads once normalised: the frame's
-                    # black floor
-                    o, floor = apply_field(img, field, offset / gain, lost,
-                                           0.0 if darks[i] is None or offset <= 0
-                                           else offset / gain)
+                    if lost is None:
+                        f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
+                    else:  # its own float copy
+                        f = level
+                        f += np.float32(offset / gain)
+                    o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
+                    # what a channel at 0 reads once normalised: the frame's black floor
+                    floor = (None if darks[i] is None or offset <= 0 else
+                             cv2.convertScaleAbs(field, alpha=offset / gain))
                 else:
-                    level = img  # the frame's levels, the lost light given back (float32)
-                    if lost is not None:
-                        level = img.astype(np.float32)
-                        level.reshape(-1)[lost[0]] += lost[1]
                     o = cv2.addWeighted(level, gain, level, 0.0, offset, dtype=cv2.CV_8U)
                     floor = (None if darks[i] is None or offset <= 0 else
                              np.full_like(o, min(round(offset), 255)))
@@ -660,19 +664,21 @@ class Conditions(Estimator):
         n = int(np.searchsorted(neg_high, bound32, "right"))
         if not n:
             return None
-        # what this exposure loses beyond what the reference's own exposure lost, where
-        # it reaches the clip (a candidate darker in the frame than its own darkest finer
-        # level is not this clip): one compiled pass over the candidates
-        from inspector.core import kernels
-
-        at, more = kernels.lost_light(
-            r, spread, own, low, top, pixel, order, n, g, o,
-            _NONE2.reshape(-1) if near is None else np.ascontiguousarray(near).reshape(-1),
-            _NONE2.reshape(-1) if img is None else np.ascontiguousarray(img).reshape(-1),
-            near is not None, img is not None)
-        if not len(at) or float(more.max()) <= 0.01:
+        idx = order[:n]
+        mean = (r[:n] - o) / g
+        s = spread[:n]
+        reach = mean + top[:n] / g >= np.float32(255.0)
+        if near is not None:
+            reach &= near.reshape(-1)[pixel[:n]] == 0
+        if img is not None:  # darker than its own darkest finer level: not this clip
+            reach &= img.reshape(-1)[idx] >= mean + low[:n] / g
+        if not reach.any():
             return None
-        return order[at], more
+        # what this exposure loses beyond what the reference's own exposure lost
+        more = np.maximum(clip_loss(mean[reach], s[reach] / g) - own[:n][reach] / g, 0.0)
+        if float(more.max()) <= 0.01:
+            return None
+        return idx[reach], more
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
                       was: np.ndarray | None) -> tuple[np.ndarray | None, np.ndarray | None]:

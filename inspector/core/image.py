@@ -511,14 +511,10 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         keep = np.asarray(keep, bool)
         if keep.ndim == 2 and frame.ndim == 3:
             keep = keep[..., None]
-    if keep is not None and frame.dtype == np.uint8 and ref.dtype == np.uint8:
-        # normalised convolution: blur(keep * x) / blur(keep), the cell sums in one pass
-        means = grid.kept_means(frame, ref, keep)
-    else:
-        parts = [frame, ref]
-        if keep is not None:
-            parts = [_kept(frame, keep), _kept(ref, keep), keep.view(np.uint8)]
-        means = [grid.means(x) for x in parts]
+    parts = [frame, ref]
+    if keep is not None:  # normalised convolution: blur(keep * x) / blur(keep)
+        parts = [_kept(frame, keep), _kept(ref, keep), keep.view(np.uint8)]
+    means = [grid.means(x) for x in parts]
     if added is not None and len(added[0]):
         means[0] = means[0] + grid.means_of(added, frame.shape, keep)
     c = means[0].shape[2]
@@ -541,47 +537,6 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         field = field[..., 0] if channels == 1 else np.repeat(field, channels, axis=2)
     # one bilinear enlargement, all channels at once
     return cv2.resize(field, (w, h), interpolation=cv2.INTER_LINEAR)
-
-
-def apply_field(image: np.ndarray, field: np.ndarray, offset: float,
-                added: tuple[np.ndarray, np.ndarray] | None = None, floor: float = 0.0
-                ) -> tuple[np.ndarray, np.ndarray | None]:
-    """A frame times its brightness field (:func:`brightness_field`): ``(image + offset) *
-    field`` rounded to the nearest level and clipped to uint8, with light added at a few
-    places first; the numbers of ``cv2.addWeighted`` (or a float copy with the light added)
-    and ``cv2.multiply(..., dtype=cv2.CV_8U)``, in one pass with no full-size float copy
-    (:func:`inspector.core.kernels.apply_field`).
-
-    Parameters
-    ----------
-    image : ndarray, shape (H, W, C), uint8
-    field : ndarray, shape (H, W, C), float32
-    offset : float
-        Added to the frame before it is multiplied (in float32).
-    added : (ndarray of int, ndarray of float32), optional
-        Light added to the frame first at a few places (flat indices into it, amounts).
-    floor : float
-        When > 0, also ``|field * floor|`` rounded and clipped to uint8
-        (``cv2.convertScaleAbs(field, alpha=floor)``).
-
-    Returns
-    -------
-    out : ndarray, shape (H, W, C), uint8
-    floor : ndarray, shape (H, W, C), uint8, or None when ``floor`` <= 0
-    """
-    from inspector.core import kernels
-
-    index, light = _NO_LIGHT if added is None else (
-        np.asarray(added[0], np.int64), np.asarray(added[1], np.float32))
-    bottom = np.empty(image.shape if floor > 0 else (1, 1, 1), np.uint8)
-    out = kernels.apply_field(np.ascontiguousarray(image),
-                              np.ascontiguousarray(field, np.float32), np.float32(offset),
-                              index, light, np.float32(max(floor, 0.0)), bottom)
-    return out, (bottom if floor > 0 else None)
-
-
-#: No light added (:func:`apply_field`).
-_NO_LIGHT = (np.zeros(0, np.int64), np.zeros(0, np.float32))
 
 
 def _kept(x: np.ndarray, keep: np.ndarray) -> np.ndarray:
@@ -638,26 +593,6 @@ class _CellGrid:
         c = table[np.ix_(self.rows, self.cols)].astype(np.float64)
         c = c.reshape(c.shape[:2] + (-1,))
         return (c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]) / self.counts
-
-    def kept_means(self, frame: np.ndarray, ref: np.ndarray, keep: np.ndarray
-                   ) -> list[np.ndarray]:
-        """Means over the cells of ``keep * frame``, ``keep * ref`` and ``keep``, each
-        (ny, nx, C) float64 ((ny, nx, 1) for the last when ``keep`` is the same for every
-        channel), of a uint8 pair (h, w[, C]) and a bool ``keep`` of the same shape or
-        (h, w, 1): the same numbers as :meth:`means` of :func:`_kept` products, whose sums
-        are exact integers, from one pass (:func:`inspector.core.kernels.kept_cell_sums`)."""
-        from inspector.core import kernels
-
-        if frame.ndim == 2:
-            frame, ref = frame[..., None], ref[..., None]
-        if keep.ndim == 2:
-            keep = keep[..., None]
-        c = frame.shape[2]
-        sums = kernels.kept_cell_sums(np.ascontiguousarray(frame), np.ascontiguousarray(ref),
-                                      np.ascontiguousarray(keep).view(np.uint8),
-                                      self.rows, self.cols)
-        m = sums / self.counts
-        return [m[..., :c], m[..., c:2 * c], m[..., 2 * c:]]
 
     def means_of(self, added: tuple[np.ndarray, np.ndarray], shape: tuple[int, ...],
                  keep: np.ndarray | None) -> np.ndarray:
