@@ -224,6 +224,25 @@ def test_a_reference_needs_frames_a_passer_by_cannot_move():
     assert past_level(maps[:3, 2:3, 2:3])[0, 0] == 30.0  # second largest of (2, 30, 30)
 
 
+def test_windows_short_of_a_reference_flag_only_what_appeared_since_the_run_began():
+    # (2, 2) reads unusual from the run's first frame (there before it began); (4, 6) from
+    # frame 2 on (set down during the run). The first full window (frame 3) is held to the
+    # start threshold and flags what is there; frames 4 and 5, with 1-2 frames before their
+    # window, too few for a reference, flag only a region that also stepped up from those
+    # frames; from frame 6 on the reference is there (MIN_PAST frames).
+    maps = np.zeros((9, 6, 8), np.float32)
+    maps[:, 2, 2] = 30.0
+    maps[2:, 4, 6] = 30.0
+    times = np.arange(9) * 2.0
+    run = persistence(maps, times, 4, 10.0, threshold=5.0, start_threshold=10.0, past=8,
+                      min_past=MIN_PAST)
+    assert not run.stepped[:6].any() and run.stepped[6:].all()
+    assert run.maps[3, 2, 2] > 10.0                       # judged on the level at the start
+    assert (run.maps[4:6, 2, 2] <= 0.0).all()             # no step since: not again
+    assert run.maps[5, 4, 6] > 10.0 and run.maps[4, 4, 6] <= 0.0  # its 4th frame
+    assert (run.maps[6:, 2, 2] < 1e-5).all() and (run.maps[6:, 4, 6] > 5.0).all()
+
+
 def test_a_threshold_resting_on_one_window_is_told():
     # 48 windows at alpha 1 %: too few for the rank, so the conformal threshold is the
     # largest score (Vovk, Gammerman & Shafer 2005). One window 100x the others sets it.

@@ -44,9 +44,16 @@ the window frames' spreads over their cells (``robust``), so that a stretch whos
 view is disturbed (dark and noisy after the lamps go off) counts a cell by how far it
 stands out from the rest of the view, while one frame of the window that a large
 passer-by disturbs all over does not shrink a thing left in that frame alone (which would
-read as unsteady; baselines learnt before divided each frame by its own spread). The frame
-of a stretch with no frame before its window (the first full window) has no reference: it
-is held to the steady level's threshold instead (``start_threshold``). Last, the map is
+read as unsteady; baselines learnt before divided each frame by its own spread). A
+reference needs :data:`MIN_PAST` frames before the window, so that one passer-by among them
+moves it neither up nor down. The first full window of a stretch has no reference: it is
+held to the steady level's threshold instead (``start_threshold``); the next ones, with too
+few frames before them, are held to it too, but only where they also stepped up from the
+frames they have (what stays since the stretch began was judged by its first window). A step
+also counts only where the picture itself changed (``looks``, :func:`cell_looks`): the model
+can read a region anew while its pixels stay as they were (the gain that preparation fits
+over the whole view moves with passers-by elsewhere), and that is not something left there,
+while a lamp's smooth pool hardly changes a look at all. Last, the map is
 opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
 changes every cell of a patch, so a region narrower than a patch (the edge of a passer-by,
 the rim of a masked area) is not something left, and one such region in the few held-out
@@ -374,6 +381,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         out[i] = raw if seen is None else _gated(raw, seen[0], change)
         if threshold is not None:  # (else opened below, all frames at once)
             out[i] = opened(out[i], footprint)
+            if past and window < len(buf) < window + min_past:
+                out[i] = _since_start(buf, lbuf, window, out[i], threshold, around, scaled,
+                                      spreads, footprint, change if gate else 0.0)
         stepped[i] = past > 0 and len(buf) >= window + min_past
         filled[i] = len(buf) >= window
         if threshold is not None:
@@ -414,6 +424,22 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
     """The threshold a frame's persistence map is held to: ``threshold`` when it is measured
     from a reference (``stepped``), else ``start_threshold`` when there is one."""
     return threshold if stepped or start_threshold is None else start_threshold
+
+
+def _since_start(frames: list, looks: list, window: int, level: np.ndarray, threshold: float,
+                 around: int, scaled: bool, spreads: dict, footprint: int, change: float
+                 ) -> np.ndarray:
+    """The opened steady ``level`` of a window with too few frames before it for a
+    reference (held to the start threshold), kept only where it also stepped up from those
+    frames by more than ``threshold`` (the step from their :func:`past_level`, gated by the
+    looks when ``change`` > 0, opened); elsewhere at most 0. What stays since the run began
+    was judged by the run's first window; a later one flags only what appeared since."""
+    _, step, _ = _step(frames, window, None, around, scaled, spreads, 1)
+    seen = _changed(looks, window, None, 1, around) if change > 0 else None
+    if seen is not None:
+        step = _gated(step, seen[0], change)
+    return np.where(opened(step, footprint) > threshold, level,
+                    np.minimum(level, 0.0)).astype(np.float32)
 
 
 def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: int,
