@@ -84,6 +84,22 @@ def test_streaming_moments_match_numpy_cov_with_a_block_left_out():
         np.testing.assert_allclose(cov[loc], np.cov(keep[:, loc].T), rtol=1e-4, atol=1e-5)
 
 
+def test_moments_consumed_by_their_last_fit_give_the_same_covariances():
+    # numpy.cov (unbiased) as the reference; consumed: the same numbers to the bit, taken
+    # in place, and the moments hold no products afterwards.
+    rng = np.random.default_rng(4)
+    X = rng.normal(size=(50, 4, 6)).astype(np.float32) + 3
+    m = Moments(2, 4, 6)
+    m.add(0, X[:25])
+    m.add(1, X[25:])
+    mean, cov, n = m.mean_cov()
+    mean_c, cov_c, n_c = m.mean_cov(consume=True)
+    assert n == n_c == 50 and m.total_scatter is None
+    assert np.array_equal(mean, mean_c) and np.array_equal(cov, cov_c)
+    for loc in range(4):
+        np.testing.assert_allclose(cov_c[loc], np.cov(X[:, loc].T), rtol=1e-4, atol=1e-5)
+
+
 def test_model_fit_score_save_load_roundtrip(tmp_path):
     rng = np.random.default_rng(2)
     # A smooth scene: 4:2:0 chroma cannot hold per-pixel colour noise, and cameras don't.

@@ -677,10 +677,16 @@ class Moments:
         locs = np.arange(0, self.L, max(1, int(every)))
         return float(n), self._location_sums(s, locs), self._location_scatter(S, locs)
 
-    def covariances(self, leave_out: int | None = None, before: int | None = None):
+    def covariances(self, leave_out: int | None = None, before: int | None = None,
+                    consume: bool = False):
         """Mean and count of all samples, of all but block ``leave_out``, or of blocks 0 ..
         ``before`` - 1 (the last two need ``block_scatter``), and a function giving the
         unbiased covariance of any of the locations from them.
+
+        ``consume``: these moments are not used again, so the products of all samples are
+        taken about their mean in place instead of in a copy (the largest array of the
+        moments, 86 MB at 320 x 180: the copy was part of learn's peak, at the final fit);
+        the moments then hold no products (``total_scatter`` is None).
 
         Returns
         -------
@@ -694,7 +700,11 @@ class Moments:
         # About the samples' mean at the level of the blocks (a third of the entries the
         # locations' scatter has): S(u, v) - n m(u) m(v)^T for each pair of blocks kept.
         m = s / n
-        S = S.copy() if S is self.total_scatter else S
+        if S is self.total_scatter:
+            if consume:
+                self.total_scatter = None
+            else:
+                S = S.copy()
         for o in range(len(self.offsets)):
             (ri, ci), (rj, cj) = self._pairs(o)
             S[o, ri, ci] -= n * (m[ri, ci, :, None] * m[rj, cj, None, :])
@@ -706,12 +716,12 @@ class Moments:
 
         return self._location_sums(self.shift + m, np.arange(self.L)), covariance, int(n)
 
-    def mean_cov(self, leave_out: int | None = None, before: int | None = None
-                 ) -> tuple[np.ndarray, np.ndarray, int]:
+    def mean_cov(self, leave_out: int | None = None, before: int | None = None,
+                 consume: bool = False) -> tuple[np.ndarray, np.ndarray, int]:
         """Mean (L, d), unbiased covariance (L, d, d) float32 and count of all samples, of all but
         block ``leave_out``, or of blocks 0 .. ``before`` - 1 (the last two need
         ``block_scatter``); see :meth:`covariances`."""
-        mean, covariance, n = self.covariances(leave_out, before)
+        mean, covariance, n = self.covariances(leave_out, before, consume)
         cov = np.empty((self.L, self.d, self.d), np.float32)  # float32 halves the largest array
         for start in range(0, self.L, CHUNK):
             cov[start:start + CHUNK] = covariance(np.arange(start, min(start + CHUNK, self.L)))
@@ -904,7 +914,7 @@ class PatchPPCA(DensityModel):
         """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass)."""
         q = self._heldout_q(*self._last_split)
         del self._last_split, self._few_blocks
-        self._set(*self._fit_moments(moments, q))
+        self._set(*self._fit_moments(moments, q, consume=True))  # (moments' last use)
 
     def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
         """The positions :meth:`fit` without a pool reads its frames in (``source.batches``:
@@ -979,7 +989,7 @@ class PatchPPCA(DensityModel):
     def _fit_moments(self, moments: Moments, latent: int = 0, **subset
                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Mean, W and sigma^2 of the samples counted in ``moments`` (``subset``: the
-        blocks of :meth:`Moments.covariances`), with ``latent`` dimensions when given, else
+        blocks of :meth:`Moments.covariances`, and whether it may consume them), with ``latent`` dimensions when given, else
         as :meth:`_fit_params` chooses. Sets ``chroma_weight_``.
 
         With the latent size known, each location's fit needs only its own covariance:
