@@ -55,17 +55,31 @@ def depot_frames(work: Path, n: int, normal: int, size: tuple[int, int]
                  ) -> tuple[SimpleNamespace, float]:
     """The depot's two cameras under ``work/frames``: ``normal`` frames each to learn from and
     ``n`` to scan in all, mostly normal (5 % incidents), as in a real stream; frames already
-    there (a kept work folder) are reused. Returns the folders (``.normal``, ``.new``) and
-    the seconds it took."""
-    from inspector.demo.scenario import generate
+    there (a kept work folder) are reused when they are as many and as large as asked, else
+    drawn again. Returns the folders (``.normal``, ``.new``) and the seconds it took."""
+    from inspector.demo.scenario import CAMERAS, generate
 
     started = time.perf_counter()
     frames = work / "frames"
-    if not (frames / "new").is_dir():
-        generate(frames, seed=1, normal_per_camera=normal, new_per_camera=max(1, n // 2),
+    per_camera = max(1, n // 2)
+    if not _holds(frames, CAMERAS, normal, per_camera, size):
+        generate(frames, seed=1, normal_per_camera=normal, new_per_camera=per_camera,
                  incident_fraction=0.05, size=size)
     return (SimpleNamespace(normal=frames / "normal", new=frames / "new"),
             time.perf_counter() - started)
+
+
+def _holds(frames: Path, cameras, normal: int, new: int, size: tuple[int, int]) -> bool:
+    """Whether a kept folder of the depot's frames has ``normal`` and ``new`` frames of
+    ``size`` (width, height) for each camera."""
+    from inspector.storage.frames import image_size
+
+    for camera in cameras:
+        for split, count in (("normal", normal), ("new", new)):
+            files = sorted((frames / split / camera).glob("*.jpg"))
+            if len(files) != count or image_size(files[0]) != size:
+                return False
+    return True
 
 
 def learn_all(folder: Path, config, store) -> list:

@@ -28,6 +28,23 @@ def test_throughput_bench_runs(tmp_path, capsys):
     assert "registration (phase correlation)" in out and "baseline loading" in out
 
 
+def test_kept_frames_are_reused_only_when_they_are_what_was_asked(tmp_path):
+    sys.path.insert(0, str(BENCH))
+    from _frames import depot_frames
+
+    first, _ = depot_frames(tmp_path, 4, 3, (64, 36))
+    one = sorted(first.new.rglob("*.jpg"))
+    stamp = one[0].stat().st_mtime_ns
+    again, _ = depot_frames(tmp_path, 4, 3, (64, 36))  # the same: reused, not drawn again
+    assert sorted(again.new.rglob("*.jpg")) == one and one[0].stat().st_mtime_ns == stamp
+    more, _ = depot_frames(tmp_path, 8, 3, (64, 36))  # more frames asked: drawn again
+    assert len(list(more.new.rglob("*.jpg"))) == 8
+    from inspector.storage.frames import image_size
+
+    larger, _ = depot_frames(tmp_path, 8, 3, (96, 54))  # larger frames asked: drawn again
+    assert image_size(sorted(larger.new.rglob("*.jpg"))[0]) == (96, 54)
+
+
 def test_conditions_bench_runs(capsys):
     rc = _script("conditions").main(["--normal", "24", "--new", "8", "--cases", "none",
                                      "--handling", "local (default)", "--long-side", "96"])
