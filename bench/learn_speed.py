@@ -25,7 +25,7 @@ that wakes to wait for Python's lock is ready (waiting for a core) most of the t
 on an idle one it would sleep, and memory bandwidth shared between the cores is not
 modelled; so it finds stretches where work is missing, and does not replace a run on an
 idle machine (at load 17, learn 2,000 frames: idle ratio 3.17 against the 3.45-3.86 wall
-ratio measured at load 1-3 last session). The sampler's own CPU is taken out of the CPU
+ratio measured on 0.8 at load 1-3). The sampler's own CPU is taken out of the CPU
 figures.
 
     python bench/learn_speed.py [--frames 500,2000] [--size 1920x1080] [--keep DIR]

@@ -35,7 +35,8 @@ def cmd_check(args: argparse.Namespace) -> int:
     damaged = [r for r in rows if r["state"] == "damaged"]
     unchecked = sum(r["state"] == "unchecked" for r in rows)
     files = sum(not r["version"] for r in rows)
-    say(f"{counted(len(versions), 'version')} of {counted(len({r['what'] for r in versions}), 'camera')}"
+    cameras = len({r["what"] for r in versions})
+    say(f"{counted(len(versions), 'version')} of {counted(cameras, 'camera')}"
         f" and {counted(files, 'SQLite file')} checked: {len(damaged)} damaged"
         + (f", {unchecked} unchecked (saved before checksums were recorded)"
            if unchecked else ""))

@@ -891,7 +891,8 @@ class Conditions(Estimator):
         """What the health measures need of the ignore mask and the reference cells, made
         once per fit: the pixels kept, (H, W) uint8 1/0 (None: all); the flat indices of
         every fourth of them (None: every fourth pixel); how many there are (at least 1;
-        None when all are kept: the callers take the frame's size); and the textured cells, (g, g) bool (None before ``ref_cells_`` is known)."""
+        None when all are kept: the callers take the frame's size); and the textured cells,
+        (g, g) bool (None before ``ref_cells_`` is known)."""
         ignore, cells = self.ignore_, self.ref_cells_
         if (self._health is None or self._health[0] is not ignore
                 or self._health[1] is not cells):

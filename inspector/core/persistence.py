@@ -108,9 +108,13 @@ AROUND = 3
 LOCAL_SHARE = 0.25
 #: A gap between frames longer than this many typical frame intervals starts a new window.
 GAP_FACTOR = 10.0
-#: A normal frame holds a large short-lived anomaly when its single-frame score is more than
-#: ``LARGE`` times that of the quietest quarter of the normal frames (an order of magnitude)
-#: and its persistence score keeps less than 1 / ``LARGE`` of it (gone within the window).
+#: An order of magnitude: what "clearly more" means in three rules. A normal frame holds a
+#: large short-lived anomaly when its single-frame score is more than ``LARGE`` times that of
+#: the quietest quarter of the normal frames and its persistence score keeps less than
+#: 1 / ``LARGE`` of it (gone within the window); a step counts where a cell's look changed
+#: by more than ``LARGE`` times a normal frame-to-frame change (``change``); a threshold rests
+#: on one held-out window when its score is more than ``LARGE`` times the next
+#: (:meth:`Persistence.lone`).
 LARGE = 10.0
 #: A camera whose normal frames clearly hold large short-lived anomalies more often than this
 #: is busy: its single-frame threshold is then set by what passes (see

@@ -989,8 +989,9 @@ class PatchPPCA(DensityModel):
     def _fit_moments(self, moments: Moments, latent: int = 0, **subset
                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Mean, W and sigma^2 of the samples counted in ``moments`` (``subset``: the
-        blocks of :meth:`Moments.covariances`, and whether it may consume them), with ``latent`` dimensions when given, else
-        as :meth:`_fit_params` chooses. Sets ``chroma_weight_``.
+        blocks of :meth:`Moments.covariances`, and whether it may consume them), with
+        ``latent`` dimensions when given, else as :meth:`_fit_params` chooses. Sets
+        ``chroma_weight_``.
 
         With the latent size known, each location's fit needs only its own covariance:
         they are formed and fitted a chunk of locations at a time in two threads, so the
