@@ -24,7 +24,7 @@ from inspector.cli.main import main  # noqa: E402
 from inspector.config import load_config  # noqa: E402
 from inspector.errors import UsageError  # noqa: E402
 from inspector.jobs import cluster as jc  # noqa: E402
-from inspector.jobs.scan import BaselineCache  # noqa: E402
+from inspector.jobs.scan import BaselineCache, scan_files  # noqa: E402
 from inspector.storage.frames import discover  # noqa: E402
 from inspector.storage.results import ResultWriter  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
@@ -165,6 +165,23 @@ def test_persistence_on_the_cluster_goes_across_partitions_as_in_one_pass(site, 
     # guarantee only 1/7 and sit near zero, so a normal frame may cross them by chance; what
     # this test checks is that the cluster and one pass agree frame by frame.
     assert any(r["time"].startswith("2026-11-20T08:07") for r in flagged)
+
+
+def test_cell_looks_are_measured_only_for_a_camera_whose_persistence_is_on(site):
+    # The looks feed persistence alone: a scan (and a cluster worker, persist=False, whose
+    # driver applies persistence) measures them only when the camera's persistence is on.
+    root, cfg = site
+    busy = cfg.with_name("looks.toml")
+    busy.write_text(cfg.read_text(encoding="utf-8") + '\n[cameras.gate]\npersistence = "on"\n',
+                    encoding="utf-8")
+    baselines = BaselineCache(Store(root / "store"))
+    assert baselines.get("gate").persistence.change > 0
+    files = [f for f in discover(root / "new")[0] if f.camera == "gate"][:4]
+    for path, measured in ((cfg, False), (busy, True)):
+        recorder = jc.Recorder()
+        scan_files(files, baselines, recorder, load_config(path), persist=False)
+        results = [r for rs, _, _ in recorder.calls for r in rs]
+        assert results and all((r.look is not None) == measured for r in results)
 
 
 def test_a_worker_killed_mid_scan_loses_and_repeats_no_frame(site, client):

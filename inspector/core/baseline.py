@@ -168,7 +168,7 @@ class Baseline:
             return np.asarray(images)
         return self.conditions.prepare(images).images
 
-    def evaluate(self, images: np.ndarray) -> "Evaluation":
+    def evaluate(self, images: np.ndarray, looks: bool = True) -> "Evaluation":
         """The work of :meth:`score` that needs no other batch: preparation, health
         measures and the model's raw maps. Safe to run on several batches at once (e.g.
         in the decoding threads); :meth:`judge` finishes it in stream order.
@@ -176,6 +176,10 @@ class Baseline:
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
+        looks : bool
+            Also measure the frames' :func:`~inspector.core.persistence.cell_looks` when
+            the baseline's persistence uses them; False when its persistence will not run
+            on these frames (a camera whose persistence is off: nothing reads them).
         """
         images = np.asarray(images)
         if self.conditions is None:
@@ -185,11 +189,13 @@ class Baseline:
         noise = self.conditions.noise_scale(rec)
         raw = self.model.score_maps(rec.images, noise=noise)
         looks = (cell_looks(rec.aligned, raw.shape[1:])
-                 if self.persistence is not None and self.persistence.change > 0 else None)
+                 if looks and self.persistence is not None and self.persistence.change > 0
+                 else None)
         return Evaluation(images, raw, m, rec.grey, rec.gains[:, 0], noise, rec.clipped,
                           looks)
 
-    def score(self, images: np.ndarray, sequence: bool = False) -> Scores:
+    def score(self, images: np.ndarray, sequence: bool = False, looks: bool = True
+              ) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.
 
         Parameters
@@ -199,8 +205,10 @@ class Baseline:
             The frames continue the stream of the previous call with ``sequence=True``
             (scan and watch): the first is compared with the last of that call for a
             frozen feed.
+        looks : bool
+            As in :meth:`evaluate`.
         """
-        return self.judge(self.evaluate(images), sequence)
+        return self.judge(self.evaluate(images, looks), sequence)
 
     def judge(self, ev: "Evaluation", sequence: bool = False) -> Scores:
         """Scores from an :meth:`evaluate` result (``sequence`` as in :meth:`score`; batches

@@ -3,6 +3,7 @@ watcher reuses (one loaded baseline per camera, batch scoring into results)."""
 
 from __future__ import annotations
 
+import functools
 import threading
 import time
 from collections import Counter
@@ -111,7 +112,8 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
     if not frames:
         return []
     if evaluation is None:
-        evaluation = baseline.evaluate(np.stack([f.image for f in frames]))
+        evaluation = baseline.evaluate(np.stack([f.image for f in frames]),
+                                       looks=streams is not None and streams.on(baseline))
     s = baseline.judge(evaluation, sequence=True)
     amplified = _amplified(baseline, evaluation, len(frames))
     clipped = evaluation.clipped
@@ -310,13 +312,17 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                                       for f in cam_files])
                 bar.update(len(cam_files))
                 continue
-            if streams.on(baseline):  # a stream goes forward in capture time
+            on = streams.on(baseline)
+            if on:  # a stream goes forward in capture time
                 cam_files = stream_order(cam_files, config)
             # Decoding, preparation, health measures and the model run in the worker
             # threads, batch by batch; the stream-ordered rest (frozen feed, thresholds)
-            # and the writing here, in order.
+            # and the writing here, in order. The cell looks only for a camera whose
+            # persistence is on (with ``persist=False`` too: a cluster's driver applies
+            # persistence to what the workers measured).
+            work = functools.partial(baseline.evaluate, looks=on)
             for batch in iter_batches(cam_files, BATCH, workers=workers,
-                                      work=baseline.evaluate, **read_args(baseline, config)):
+                                      work=work, **read_args(baseline, config)):
                 if batch.errors:
                     writer.write(skipped=[Skipped(f.rel, camera, str(err))
                                           for f, err in batch.errors])
