@@ -107,3 +107,35 @@ def test_a_watch_appending_to_results_written_before_a_column_adds_it(tmp_path):
     first, second = (dict(zip(COLUMNS, row)) for row in rows[1:])
     assert first["baseline"] == "v0" and first["noise_amplified"] == ""
     assert second["noise_amplified"] == "1.2500"
+
+
+def test_overlay_is_the_plain_blend_and_hatching_drawn_over_the_whole_frame():
+    # The overlay draws the heatmap and the hatching only inside the boxes where they show;
+    # the picture must be the whole-frame drawing (OpenCV's applyColorMap and blendLinear
+    # over every pixel, numpy's masked copies), pixel for pixel. scikit-image's astronaut
+    # with a hot spot, a masked strip at the edge and a masked patch.
+    from inspector.storage.overlay import COLORMAP, _lines, render_overlay
+
+    image = cv2.resize(skdata.astronaut(), (128, 72), interpolation=cv2.INTER_AREA)
+    amap = np.random.default_rng(1).normal(0, 1, (18, 32)).astype(np.float32)
+    amap[5:8, 20:24] += 12.0
+    mask = np.zeros((72, 128), bool)
+    mask[:, :6] = mask[40:52, 60:75] = True
+    got = render_overlay(image, amap, 4.0, "x", mask)
+    frame = cv2.resize(cv2.cvtColor(image, cv2.COLOR_RGB2BGR), (640, 360))
+    heat = cv2.resize(amap, (640, 360))
+    colour = cv2.applyColorMap((np.clip(heat / heat.max(), 0, 1) * 255).astype(np.uint8),
+                               COLORMAP)
+    alpha = np.clip((heat - 2.0) / 4.0, 0.0, 1.0) * 0.65
+    want = cv2.blendLinear(colour, frame, alpha, 1.0 - alpha)
+    assert (alpha == 0).mean() > 0.5  # most of the frame shows no heat
+    cv2.drawContours(want, cv2.findContours((heat > 4.0).astype(np.uint8), cv2.RETR_EXTERNAL,
+                                            cv2.CHAIN_APPROX_SIMPLE)[0], -1, (255,) * 3, 2,
+                     cv2.LINE_AA)
+    big = cv2.resize(mask.astype(np.uint8), (640, 360), interpolation=cv2.INTER_NEAREST)
+    want[big > 0] //= 2
+    want[(big & _lines((360, 640), 8)) > 0] = (160, 160, 160)
+    cv2.drawContours(want, cv2.findContours(big, cv2.RETR_EXTERNAL,
+                                            cv2.CHAIN_APPROX_SIMPLE)[0], -1, (160,) * 3, 1,
+                     cv2.LINE_AA)
+    np.testing.assert_array_equal(got[:360], want)

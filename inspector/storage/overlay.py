@@ -95,11 +95,23 @@ def render_overlay(image: np.ndarray, amap: np.ndarray, threshold: float,
                        interpolation=cv2.INTER_LINEAR)
     heat = cv2.resize(np.asarray(amap, np.float32), (w, h), interpolation=cv2.INTER_LINEAR)
     top = max(float(heat.max()), threshold * 1.25, 1e-6)
-    level = np.clip(heat / top, 0.0, 1.0)
-    colour = cv2.applyColorMap((level * 255).astype(np.uint8), COLORMAP)
-    # Transparent where the map is unremarkable, up to 65% opaque where it is hottest.
-    alpha = np.clip((heat - 0.5 * threshold) / max(threshold, 1e-6), 0.0, 1.0) * 0.65
-    out = cv2.blendLinear(colour, frame, alpha, 1.0 - alpha)
+    # Transparent where the map is unremarkable, up to 65% opaque where it is hottest: the
+    # heatmap is drawn only over the box holding the pixels where it shows (elsewhere the
+    # blend is the frame itself), most of a frame flagged for one object.
+    alpha = heat - np.float32(0.5 * threshold)
+    alpha /= np.float32(max(threshold, 1e-6))
+    np.clip(alpha, 0.0, 1.0, out=alpha)
+    alpha *= np.float32(0.65)
+    out = frame
+    x, y, bw, bh = cv2.boundingRect((alpha != 0).view(np.uint8))
+    if bw and bh:
+        box = np.s_[y:y + bh, x:x + bw]
+        level = heat[box] / np.float32(top)
+        np.clip(level, 0.0, 1.0, out=level)
+        level *= np.float32(255)
+        colour = cv2.LUT(cv2.cvtColor(level.astype(np.uint8), cv2.COLOR_GRAY2BGR),
+                         _colour_table())
+        out[box] = cv2.blendLinear(colour, frame[box], alpha[box], 1.0 - alpha[box])
     region = (heat > threshold).astype(np.uint8)
     contours, _ = cv2.findContours(region, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
     cv2.drawContours(out, contours, -1, _OUTLINE, 2, cv2.LINE_AA)
@@ -127,12 +139,29 @@ def hatch(image: np.ndarray, mask: np.ndarray, spacing: int = 8,
     ``rising``) and dimmed to half with ``dim``; the edge of the mask is outlined."""
     out = image.copy()
     m = mask.astype(np.uint8)
+    # only the box around the mask changes (one pixel more, so that its outline is found
+    # as in the whole image); the outline is drawn on the whole image
+    x, y, bw, bh = cv2.boundingRect(m)
+    if not (bw and bh):
+        return out
+    x0, y0 = max(x - 1, 0), max(y - 1, 0)
+    box = np.s_[y0:min(y + bh + 1, m.shape[0]), x0:min(x + bw + 1, m.shape[1])]
+    part, mb = out[box], m[box]
     if dim:
-        cv2.copyTo(out // 2, m, out)
-    cv2.copyTo(_plain(out.shape, colour), m & _lines(mask.shape, spacing, rising), out)
-    contours, _ = cv2.findContours(m, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
+        cv2.copyTo(part // 2, mb, part)
+    cv2.copyTo(_plain(out.shape, colour)[box], mb & _lines(mask.shape, spacing, rising)[box],
+               part)
+    contours, _ = cv2.findContours(mb, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE,
+                                   offset=(x0, y0))
     cv2.drawContours(out, contours, -1, colour, 1, cv2.LINE_AA)
     return out
+
+
+@lru_cache(maxsize=1)
+def _colour_table() -> np.ndarray:
+    """:data:`COLORMAP` as a lookup table, (256, 1, 3) uint8 BGR (``cv2.applyColorMap`` of
+    a grey level is its row)."""
+    return cv2.applyColorMap(np.arange(256, dtype=np.uint8)[:, None], COLORMAP)
 
 
 @lru_cache(maxsize=4)
