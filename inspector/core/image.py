@@ -826,20 +826,28 @@ def subpixel_levels(frames, size: tuple[int, int], levels: int = FINE_LEVELS
         if k < 2:
             return None
         x = cv2.resize(f, (k * w, k * h), interpolation=cv2.INTER_AREA)
-        # whole levels: sorted and summed as integers (faster than as floats, and exact)
-        block = (x.reshape(h, k, w, k, 3).transpose(0, 2, 4, 1, 3).reshape(h, w, 3, k * k)
-                 .astype(np.int16))
+        # whole levels: sorted and summed as integers (faster than as floats, and exact),
+        # gathered and widened in one pass
+        block = np.empty((h, w, 3, k * k), np.int16)
+        np.copyto(block.reshape(h, w, 3, k, k), x.reshape(h, k, w, k, 3).transpose(0, 2, 4, 1, 3))
         block.sort(axis=-1)
         at = pos * (k * k) - 0.5  # the middle of each share, between sorted pixels
         lo = np.clip(np.floor(at).astype(int), 0, k * k - 1)
         hi = np.minimum(lo + 1, k * k - 1)
         t = np.clip(at - lo, 0.0, 1.0).astype(np.float32)
-        q = block[..., lo].astype(np.float32) * (1 - t) + block[..., hi].astype(np.float32) * t
+        # (np.take: several times faster than fancy indexing along the last axis)
+        q = np.take(block, lo, axis=-1).astype(np.float32)
+        q *= 1 - t
+        upper = np.take(block, hi, axis=-1).astype(np.float32)
+        upper *= t
+        q += upper
         mean = block.sum(axis=-1, keepdims=True, dtype=np.int32).astype(np.float32)
-        found.append(q - mean / np.float32(k * k))
+        mean /= np.float32(k * k)
+        q -= mean
+        found.append(q)
     if not found:
         return None
-    return np.median(np.stack(found), axis=0).astype(np.float32)
+    return median_stack(np.stack(found))
 
 
 def clip_loss(mean: np.ndarray, spread: np.ndarray, level: float = 255.0) -> np.ndarray:
