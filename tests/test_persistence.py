@@ -165,6 +165,39 @@ def test_what_was_there_before_is_not_counted_and_what_appears_stays_flagged():
     assert (loose.scores[11:20] > 5.0).sum() < 9
 
 
+def test_a_held_cell_is_flagged_only_in_frames_that_show_what_it_holds():
+    # A parcel (30) at (4, 5) from frame 8 to 15; a passer-by (300) stands in front of it in
+    # frame 12 and where it was in frame 16, the frame it is taken away in. Without
+    # ``shown`` frame 16 is still flagged (its window's three earlier frames hold the parcel
+    # and the passer-by's value is the one set aside); with it, frame 16 is not, frame 12
+    # (passer-by in front) is not either, and the hold goes on through frame 12, so frames
+    # 13-15 are flagged again; the first flag (frame 11) is unchanged and the flags are a
+    # subset of those without it.
+    n = 22
+    maps = np.zeros((n, 6, 8), np.float32)
+    maps[8:16, 4, 5] = 30.0
+    maps[12, 4, 5] = maps[16, 4, 5] = 300.0
+    times = np.arange(n) * 2.0
+    kw = dict(threshold=5.0, past=8, start_threshold=60.0, min_past=MIN_PAST)
+    plain = persistence(maps, times, 4, 10.0, **kw)
+    shown = persistence(maps, times, 4, 10.0, shown=True, **kw)
+    flags = [np.flatnonzero(r.filled & r.stepped & (r.scores > 5.0)).tolist()
+             for r in (plain, shown)]
+    assert flags[0] == [11, 12, 13, 14, 15, 16]
+    assert flags[1] == [11, 13, 14, 15]
+    assert np.isnan(shown.since[12]) and shown.since[13] == times[8]
+    # steady_level(shown=True), as its docstring's formula from numpy.sort: the lowest value
+    # less (max(last, second largest of the frames before the last) - lowest).
+    rng = np.random.default_rng(5)
+    for m in (3, 4, 6):
+        x = rng.standard_normal((m, 5, 6)).astype(np.float32)
+        q = np.sort(x[:-1], axis=0)
+        low = x.min(axis=0)
+        np.testing.assert_allclose(steady_level(x, shown=True),
+                                   low - (np.maximum(x[-1], q[-2]) - low), atol=1e-6)
+        assert (steady_level(x, shown=True) <= steady_level(x) + 1e-6).all()
+
+
 def test_a_step_counts_only_where_the_picture_changed():
     # The same step of the anomaly maps at two places from frame 8 on: at (4, 5) a parcel is
     # set down (the frames' looks change there and stay changed), at (1, 1) the picture stays

@@ -38,7 +38,9 @@ window (:func:`past_level`; twice the window since the local median, the window 
 that): a thing left shows as a step, unusual now and not just before;
 light that was already there before the window, or grows over minutes, does not. A cell
 above its threshold keeps its reference while it stays above (held), so a thing left stays
-flagged as long as it stays and is not taken into its own reference. The local maps of a
+flagged as long as it stays and is not taken into its own reference; a held cell is flagged
+only in frames that show what it holds (``shown``), so the flag ends with the frame in which
+the thing is taken away, even when the one who takes it still stands there. The local maps of a
 window and of the frames before it are also divided by one robust spread, the median of
 the window frames' spreads over their cells (``robust``), so that a stretch whose whole
 view is disturbed (dark and noisy after the lamps go off) counts a cell by how far it
@@ -227,7 +229,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 blocks: np.ndarray | None = None, past: int = 0, robust: bool | str = False,
                 start_threshold: float | None = None, around: int = 1, local: int = 0,
                 footprint: int = 1, made_local: bool = False, min_past: int = 1,
-                looks: np.ndarray | None = None, change: float = 0.0) -> PersistenceResult:
+                looks: np.ndarray | None = None, change: float = 0.0,
+                shown: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -296,6 +299,17 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         passers-by elsewhere), not something at that place.
     change : float >= 0
         See ``looks``; 0: every cell counts.
+    shown : bool
+        A held cell (above its threshold in the frame before, with ``threshold`` given) is
+        flagged only where the frame being judged shows what it holds: its steady level is
+        then taken without setting that frame's own value aside (``shown`` of
+        :func:`steady_level`), so the flag ends with the frame in which a thing is taken
+        away, even when someone stands where it was (the window's earlier frames still
+        hold the thing). The hold itself goes on by the usual steady level, so a passer-by
+        in front of a thing for a frame unflags that frame only and does not take the thing
+        into its own reference; a cell not held is judged as without it, so a thing is
+        flagged as soon. The spread can only grow, so the flags are a subset of those
+        without it (the calibrated rate still holds; calibration holds no cell).
 
     Returns
     -------
@@ -396,9 +410,19 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if onset is None:
                 onset = np.full(maps.shape[1:], np.nan)
             onset = np.where(above, np.where(np.isnan(onset), t, onset), np.nan)
-            region = out[i] > limit
-            if region.any():
-                since[i] = float(np.median(onset[region]))
+            region = out[i] > limit  # (what holds its reference: see below)
+            if shown and held is not None and stepped[i] and np.isfinite(held).any():
+                # a held cell is flagged only where this frame shows what it holds; the
+                # hold goes on by ``region`` (a passer-by in front of the thing for a frame
+                # does not take it into its own reference)
+                win = np.asarray(buf[-window:], np.float32) / np.float32(scale)
+                alt = np.where(np.isnan(held), raw,
+                               steady_level(win, around, True) - (level - raw))
+                out[i] = opened(alt if seen is None else _gated(alt, seen[0], change),
+                                footprint)
+            flagged_cells = out[i] > limit
+            if flagged_cells.any():
+                since[i] = float(np.median(onset[flagged_cells]))
             if past:  # cells above keep the reference they had (NaN: not held)
                 reference = level - raw
                 keeps = region & filled[i] & stepped[i]
@@ -680,7 +704,7 @@ def past_level(past_maps: np.ndarray) -> np.ndarray:
     return np.maximum(_lowest_and_second(q)[1] if len(q) >= 2 else q[0], 0.0)
 
 
-def steady_level(window_maps: np.ndarray, around: int = 1) -> np.ndarray:
+def steady_level(window_maps: np.ndarray, around: int = 1, shown: bool = False) -> np.ndarray:
     """Per cell, how unusual a window of local maps is in a steady way.
 
     With the cell's values over the window sorted, x(1) <= ... <= x(m): the lowest value less
@@ -690,11 +714,19 @@ def steady_level(window_maps: np.ndarray, around: int = 1) -> np.ndarray:
     dilation of the spread map, Serra 1982, from memory; edges repeat the nearest cell): a
     thing left is steady at its place and around it, edges included, while a passer-by who
     covers a cell in every frame of the window moves its edges across the cells beside it.
+    With ``shown``, the value set aside is the largest of the frames before the last one
+    (the frame being judged is never set aside): the spread is then
+    max(x_last, y(m-2)) - x(1), y(1) <= ... <= y(m-1) the values of the frames before the
+    last (m >= 3). A thing is then counted in a frame only where that frame shows it:
+    when it has been taken away and a passer-by stands where it was (or the frame is
+    otherwise unlike the window's other frames there), the frame is not flagged for what
+    the frames before it held.
 
     Parameters
     ----------
     window_maps : ndarray, shape (m, h, w), float, m >= 1
     around : int >= 1, odd
+    shown : bool
 
     Returns
     -------
@@ -704,6 +736,8 @@ def steady_level(window_maps: np.ndarray, around: int = 1) -> np.ndarray:
     if len(m) <= 2:
         return m.min(axis=0)
     low, second = _lowest_and_second(m)
+    if shown:
+        second = np.maximum(m[-1], _lowest_and_second(m[:-1])[1])
     spread = second - low
     if around > 1:
         spread = flat_filter(spread, around, np.maximum)
@@ -909,6 +943,9 @@ class Persistence:
         more than this (``change`` of :func:`persistence`): :data:`LARGE` times how much a
         cell's look changes from one normal frame to the next (:func:`look_noise`); 0 (every
         cell counts) for baselines learnt before it, or without looks.
+    shown : bool
+        A held cell is flagged only where the frame shows what it holds (``shown`` of
+        :func:`persistence`); False for baselines learnt before it.
     """
 
     window: int
@@ -927,6 +964,7 @@ class Persistence:
     footprint: int = 1
     min_past: int = 1
     change: float = 0.0
+    shown: bool = False
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None,
             looks: np.ndarray | None = None) -> PersistenceResult:
@@ -937,7 +975,8 @@ class Persistence:
                            start_threshold=(self.start_threshold.value
                                             if self.start_threshold is not None else None),
                            around=self.around, local=self.local, footprint=self.footprint,
-                           min_past=self.min_past, looks=looks, change=self.change)
+                           min_past=self.min_past, looks=looks, change=self.change,
+                           shown=self.shown)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -980,7 +1019,7 @@ class Persistence:
                "threshold": self.threshold.to_dict(), "past": self.past,
                "robust": self.robust, "around": self.around, "floor": self.floor,
                "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
-               "change": self.change}
+               "change": self.change, "shown": self.shown}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -997,7 +1036,8 @@ class Persistence:
                    None if start_scores is None else np.asarray(start_scores, np.float64),
                    int(meta.get("around", 1)), float(meta.get("floor", 0.0)),
                    int(meta.get("local", 0)), int(meta.get("footprint", 1)),
-                   int(meta.get("min_past", 1)), float(meta.get("change", 0.0)))
+                   int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
+                   bool(meta.get("shown", False)))
 
 
 def _robust(saved) -> bool | str:
@@ -1107,12 +1147,12 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, "window", around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
-                           change=change)
+                           change=change, shown=True)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, "window",
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change)
+                       floor, local, footprint, MIN_PAST, change, True)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:
