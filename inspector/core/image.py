@@ -243,27 +243,28 @@ def phase_shifts(frames: np.ndarray, spectrum: np.ndarray,
     window = _hanning((h, w))
     step = np.arange(-2, 3)
     out = np.zeros((n, 2))
+    if not n:
+        return out
     # the ignored pixels take the mean of the others (as _filled), set after windowing
     where = None if ignore is None or not ignore.any() else np.flatnonzero(ignore)
+    windowed = frames * window
     if where is not None:
         at, kept = window.ravel()[where], max(h * w - len(where), 1)
-    windowed = np.empty((h, w), np.float32)
-    mag = np.empty(spectrum.shape, np.float32)
-    for i, frame in enumerate(frames):
-        np.multiply(frame, window, out=windowed)
-        if where is not None:
+        for frame, win in zip(frames, windowed):
             mean = (cv2.sumElems(frame)[0] - frame.ravel()[where].sum(dtype=np.float64)) / kept
-            np.put(windowed, where, np.float32(mean) * at)
-        cross = sfft.rfft2(windowed, s=size, workers=1)
-        np.conjugate(cross, out=cross)
-        cross *= spectrum
-        np.abs(cross, out=mag)
-        np.maximum(mag, np.float32(1e-20), out=mag)
-        np.reciprocal(mag, out=mag)
-        parts = cross.view(np.float32)  # real and imaginary parts, interleaved
-        parts[:, 0::2] *= mag
-        parts[:, 1::2] *= mag
-        surface = sfft.irfft2(cross, s=size, workers=1)  # peaks at minus the shift
+            np.put(win, where, np.float32(mean) * at)
+    # the whole stack at once (the same transforms, frame by frame, as one at a time)
+    cross = sfft.rfft2(windowed, s=size, workers=1)
+    np.conjugate(cross, out=cross)
+    cross *= spectrum
+    mag = np.abs(cross)
+    np.maximum(mag, np.float32(1e-20), out=mag)
+    np.reciprocal(mag, out=mag)
+    parts = cross.view(np.float32)  # real and imaginary parts, interleaved
+    parts[..., 0::2] *= mag
+    parts[..., 1::2] *= mag
+    surfaces = sfft.irfft2(cross, s=size, workers=1)  # each peaks at minus the shift
+    for i, surface in enumerate(surfaces):
         py, px = divmod(int(surface.argmax()), cols)
         box = surface[np.ix_((py + step) % rows, (px + step) % cols)].astype(np.float64)
         total = box.sum() + np.finfo(float).eps
@@ -572,9 +573,12 @@ class _CellGrid:
         self.equal = h % self.ny == 0 and w % self.nx == 0
         self.counts = np.outer(np.diff(self.rows), np.diff(self.cols))[..., None]
         self.my, self.mx = _blur_matrix(self.ny, sigma), _blur_matrix(self.nx, sigma)
+        # the summed-area table's entries at the cells' corners, flat (for :meth:`means`)
+        self.corners = (self.rows[:, None] * (w + 1) + self.cols[None, :]).ravel()
         # cell of each pixel, row-major (for :meth:`means_of`)
         self.cell = ((np.searchsorted(self.rows, np.arange(h), "right") - 1)[:, None]
                      * self.nx + np.searchsorted(self.cols, np.arange(w), "right") - 1)
+        self._entries: dict[int, np.ndarray] = {}  # :meth:`entry_cells`
 
     def means(self, x: np.ndarray) -> np.ndarray:
         """Means of an (h, w) or (h, w, C) image over the cells, (ny, nx, C) float64:
@@ -590,8 +594,8 @@ class _CellGrid:
             table = cv2.integral(x)  # int32
         else:
             table = cv2.integral(np.asarray(x, np.float64))
-        c = table[np.ix_(self.rows, self.cols)].astype(np.float64)
-        c = c.reshape(c.shape[:2] + (-1,))
+        c = table.reshape(table.shape[0] * table.shape[1], -1)[self.corners]
+        c = c.astype(np.float64).reshape(len(self.rows), len(self.cols), -1)
         return (c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]) / self.counts
 
     def means_of(self, added: tuple[np.ndarray, np.ndarray], shape: tuple[int, ...],
@@ -601,12 +605,18 @@ class _CellGrid:
         (ny, nx, C) float64."""
         index, values = np.asarray(added[0]), np.asarray(added[1], np.float64)
         c = shape[2] if len(shape) == 3 else 1
-        pixel = index // c if c > 1 else index
         if keep is not None:
-            values = values * keep.reshape(-1)[index if keep.size == np.prod(shape) else pixel]
-        cell = self.cell.reshape(-1)[pixel] * c + (index % c if c > 1 else 0)
-        sums = np.bincount(cell, values, self.ny * self.nx * c)
+            values = values * keep.reshape(-1)[index if keep.size == np.prod(shape)
+                                               else index // c]
+        sums = np.bincount(self.entry_cells(c)[index], values, self.ny * self.nx * c)
         return sums.reshape(self.ny, self.nx, c) / self.counts
+
+    def entry_cells(self, c: int) -> np.ndarray:
+        """For each flat index into an (h, w, c) image, its cell and channel (``cell * c +
+        channel``), made once per ``c``."""
+        if c not in self._entries:
+            self._entries[c] = (self.cell.reshape(-1, 1) * c + np.arange(c)).ravel()
+        return self._entries[c]
 
     def blur(self, x: np.ndarray) -> np.ndarray:
         """Blur of a (ny, nx, C) float64 array over the cells, by two matrix products."""
