@@ -13,9 +13,11 @@ Printed per mode: the false-alarm rate on traffic-only frames (no object in view
 95 % Clopper-Pearson interval (``scipy.stats.binomtest(...).proportion_ci(method="exact")``),
 and the share of left objects flagged within 5 frames of appearing, with the median delay
 (frames after the first one the object is in; 0 = flagged when it appears). Objects not
-flagged because every one of those frames was held back with a camera condition (an
-underexposed evening, say: reported in health.csv, never flagged as an anomaly) are counted
-apart, as "held". With ``--detail``, the traffic-only frames flagged with persistence on are
+flagged because every one of those frames was held back with a camera condition (reported in
+health.csv, never flagged as an anomaly: with persistence off any condition, an underexposed
+evening say; with it on, any but those a step is measured in, see
+:func:`inspector.core.persistence.held_back`) are counted apart, as "held"; an object in
+frames reported but not held back (underexposed, persistence on) and not flagged is missed. With ``--detail``, the traffic-only frames flagged with persistence on are
 also sorted by kind, per scene: "start" (the first full window of a burst: no frame before
 it to measure a change from), "after" (within a window of an object taken away: the
 window still holds it) and "other", with their positions in the camera's frames to scan.
@@ -40,6 +42,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import PersistenceSettings, load_config  # noqa: E402
+from inspector.core.persistence import held_back  # noqa: E402
 from inspector.core.calibration import rate_interval  # noqa: E402
 from inspector.demo.scenario import BUSY_CAMERAS, generate, load_truth  # noqa: E402
 from inspector.demo.traffic import busy_results, left_objects  # noqa: E402
@@ -106,7 +109,8 @@ def run(root: Path, normal: int, new: int, seed: int, size: tuple[int, int],
         with open(results / "flagged.csv", newline="", encoding="utf-8") as fh:
             flagged = {r["frame"] for r in csv.DictReader(fh)}
         with open(results / "health.csv", newline="", encoding="utf-8") as fh:
-            reported = {r["frame"] for r in csv.DictReader(fh)}
+            reported = {r["frame"] for r in csv.DictReader(fh)
+                        if mode == "off" or held_back([(r["condition"],)])}
         out[mode] = evaluate(truth, flagged, camera, reported)
         out[mode]["kinds"] = false_kinds(truth, flagged, camera, cfg.persistence.window,
                                          GAP)

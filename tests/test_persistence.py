@@ -24,6 +24,7 @@ from inspector.core.persistence import (
     cell_looks,
     clearly_busy,
     flat_filter,
+    held_back,
     local_maps,
     local_median,
     local_size,
@@ -505,6 +506,11 @@ def test_mode_and_config():
     cfg = Config(cameras={"gate": {"persistence": "on", "persistence_window": 4}})
     assert cfg.camera("gate").persistence == PersistenceSettings("on", 4)
     assert cfg.camera("dock").persistence.mode == "auto"
+    # an underexposed frame is still flagged by persistence (a step within the same dark);
+    # a moved camera, a frozen feed... hold it back
+    assert not held_back([]) and not held_back([("underexposed", 15.0, 20.0)])
+    assert held_back([("underexposed", 15.0, 20.0), ("camera moved", 3.0, 2.0)])
+    assert held_back([("frozen feed", 0.1, 0.25)])
 
 
 def test_bad_persistence_mode_is_a_usage_error(tmp_path):

@@ -16,7 +16,7 @@ import numpy as np
 
 from inspector.config import Config
 from inspector.core.baseline import Baseline, Evaluation
-from inspector.core.persistence import StreamState, persistence_on
+from inspector.core.persistence import StreamState, held_back, persistence_on
 from inspector.errors import FrameError
 from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import (
@@ -173,7 +173,9 @@ class Streams:
     The persistence mode comes from the camera's config (``[persistence] mode``; "auto"
     follows what ``learn`` measured). A frame of such a camera gets the persistence score,
     threshold, p-value and map instead of its single-frame ones, and ``since``; frames
-    before the window is full are not flagged and counted in ``filling``. A frame older
+    before the window is full are not flagged and counted in ``filling``, nor are frames
+    with a camera condition other than an underexposed one
+    (:func:`inspector.core.persistence.held_back`). A frame older
     than one the stream already took (it arrived late, under ``watch``) takes its place
     among the kept frames (see :func:`inspector.core.persistence.persistence`); one too
     late for a full window is counted in ``late``. With a ledger, the state survives a
@@ -218,7 +220,8 @@ class Streams:
             r.score, r.threshold, r.p_value = float(run.scores[i]), float(thresholds[i]), \
                 float(p_values[i])
             r.amap = run.maps[i]
-            r.flagged = bool(run.filled[i] and run.scores[i] > thresholds[i] and not r.health)
+            r.flagged = bool(run.filled[i] and run.scores[i] > thresholds[i]
+                             and not held_back(r.health))
             if r.flagged and np.isfinite(run.since[i]):  # (FrameResult.since: flagged only)
                 r.since = datetime.fromtimestamp(run.since[i], tz=r.time.tzinfo)
             if not run.filled[i]:
