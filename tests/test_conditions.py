@@ -19,6 +19,9 @@ from inspector.core.calibration import alarms_to_alpha, gpd_fit, tail_threshold
 from inspector.core.conditions import Conditions, smooth_chroma
 from inspector.core.image import (
     brightness_field,
+    cell_contrast,
+    cell_correlation,
+    cell_detail,
     clip_loss,
     exposure_copy,
     grey,
@@ -765,3 +768,25 @@ def test_exposure_steps_keep_the_false_alarm_budget_on_a_camera_with_highlights(
     _, out, truth, faults = _learn_and_scan(tmp_path, {"exposure_step": 0.15}, 3,
                                             camera="aisle")
     _check_budget_and_detection(out, truth, faults)
+
+
+def test_cell_statistics_are_numpys_cell_by_cell():
+    # Per cell of an 8 x 8 split (edges at numpy.linspace(0, size, 9) truncated): the
+    # correlation with a reference is numpy.corrcoef's, the contrast numpy's standard
+    # deviation, the detail numpy's variance of OpenCV's 3 x 3 Laplacian of the whole frame.
+    # Frames: scikit-image's camera (two shifted crops), 90 x 150, with the reference.
+    cam = skdata.camera().astype(np.float32)
+    frames = np.stack([cam[100:190, 200:350], cam[103:193, 205:355]])
+    ref = cam[101:191, 202:352].copy()
+    ys, xs = (np.linspace(0, n, 9).astype(int) for n in frames.shape[1:])
+    want = np.zeros((3, 2, 8, 8))
+    for k, f in enumerate(frames):
+        lap = cv2.Laplacian(f, cv2.CV_32F, ksize=3)
+        for i in range(8):
+            for j in range(8):
+                cell = np.s_[ys[i]:ys[i + 1], xs[j]:xs[j + 1]]
+                want[:, k, i, j] = (np.corrcoef(f[cell].ravel(), ref[cell].ravel())[0, 1],
+                                    f[cell].std(), lap[cell].var())
+    np.testing.assert_allclose(cell_correlation(frames, ref), want[0], atol=1e-4)
+    np.testing.assert_allclose(cell_contrast(frames), want[1], rtol=1e-4)
+    np.testing.assert_allclose(cell_detail(frames), want[2], rtol=1e-4)

@@ -647,17 +647,29 @@ def _cell_membership(n: int, grid: int) -> np.ndarray:
     return (part[None, :] == np.arange(grid)[:, None]).astype(np.float64)
 
 
-def _cell_sums(x: np.ndarray, grid: int) -> np.ndarray:
-    """Sums of ``x`` (..., H, W) over the cells of a ``grid`` x ``grid`` split of its last
-    two axes, shape (..., grid, grid), float64: two matrix products with 0/1 membership
-    matrices, the first (sums along rows of one cell, a few dozen terms) in ``x``'s own
-    precision when it is float32, the second in float64."""
+def _cell_sums(x: np.ndarray, grid: int, other: np.ndarray | None = None) -> np.ndarray:
+    """Sums over the cells of a ``grid`` x ``grid`` split of the last two axes of float32
+    ``x`` (..., H, W): of ``x``, of ``x * other`` (``other`` (H, W) float32, when given) and
+    of ``x * x``, shape (2 or 3, ..., grid, grid), float64.
+
+    Two matrix products with 0/1 membership matrices, the first (sums along rows of one
+    cell, a few dozen terms) in float32, the second in float64; a frame's products are
+    made and summed while the frame is in the processor's cache (no batch-sized
+    temporaries)."""
     h, w = x.shape[-2:]
-    rows, cols = _cell_membership(h, grid), _cell_membership(w, grid)
-    x = np.asarray(x)
-    if x.dtype != np.float32:
-        x = x.astype(np.float64, copy=False)
-    return rows @ (x @ cols.T.astype(x.dtype)).astype(np.float64)
+    rows, cols = _cell_membership(h, grid), _cell_membership(w, grid).T.astype(np.float32)
+    flat = np.asarray(x, np.float32).reshape(-1, h, w)
+    k = 2 if other is None else 3
+    part = np.empty((k, len(flat), h, grid), np.float32)
+    product = np.empty((h, w), np.float32)
+    for i, f in enumerate(flat):
+        np.matmul(f, cols, out=part[0, i])
+        if other is not None:
+            np.multiply(f, other, out=product)
+            np.matmul(product, cols, out=part[1, i])
+        np.multiply(f, f, out=product)
+        np.matmul(product, cols, out=part[k - 1, i])
+    return (rows @ part.astype(np.float64)).reshape((k,) + x.shape[:-2] + (grid, grid))
 
 
 @lru_cache(maxsize=16)
@@ -673,8 +685,9 @@ def _cell_counts(shape: tuple[int, int], grid: int) -> np.ndarray:
 def _cell_var(x: np.ndarray, grid: int) -> np.ndarray:
     x = np.asarray(x, np.float32)
     n = _cell_counts(x.shape[-2:], grid)
-    m = _cell_sums(x, grid) / n
-    return np.maximum(_cell_sums(x * x, grid) / n - m * m, 0.0)
+    s, sq = _cell_sums(x, grid)
+    m = s / n
+    return np.maximum(sq / n - m * m, 0.0)
 
 
 def cell_detail(g: np.ndarray, grid: int = COVER_GRID) -> np.ndarray:
@@ -729,9 +742,10 @@ def cell_correlation(g: np.ndarray, ref: np.ndarray, grid: int = COVER_GRID,
     b = np.asarray(ref, np.float32)
     n = _cell_counts(a.shape[-2:], grid)
     mb, vb = cell_terms(b, grid) if terms is None else terms
-    ma = _cell_sums(a, grid) / n
-    cov = _cell_sums(a * b, grid) / n - ma * mb
-    va = np.maximum(_cell_sums(a * a, grid) / n - ma * ma, 0.0)
+    s, sb, sq = _cell_sums(a, grid, b)
+    ma = s / n
+    cov = sb / n - ma * mb
+    va = np.maximum(sq / n - ma * ma, 0.0)
     den = np.sqrt(va * vb)
     return np.where(den > 1e-9, cov / np.maximum(den, 1e-9), 0.0).astype(np.float32)
 
@@ -741,8 +755,9 @@ def cell_terms(ref: np.ndarray, grid: int = COVER_GRID) -> tuple[np.ndarray, np.
     variance of each cell, (grid, grid) float64 each."""
     b = np.asarray(ref, np.float32)
     n = _cell_counts(b.shape[-2:], grid)
-    mb = _cell_sums(b, grid) / n
-    return mb, np.maximum(_cell_sums(b * b, grid) / n - mb * mb, 0.0)
+    s, sq = _cell_sums(b, grid)
+    mb = s / n
+    return mb, np.maximum(sq / n - mb * mb, 0.0)
 
 
 def percentile_rows(x: np.ndarray, q: float) -> np.ndarray:
