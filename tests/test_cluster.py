@@ -176,6 +176,7 @@ def test_cell_looks_are_measured_only_for_a_camera_whose_persistence_is_on(site)
                     encoding="utf-8")
     baselines = BaselineCache(Store(root / "store"))
     assert baselines.get("gate").persistence.change > 0
+    assert baselines.get("gate").persistence.normal.shape[0] == 2  # saved and loaded
     files = [f for f in discover(root / "new")[0] if f.camera == "gate"][:4]
     for path, measured in ((cfg, False), (busy, True)):
         recorder = jc.Recorder()

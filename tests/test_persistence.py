@@ -29,6 +29,7 @@ from inspector.core.persistence import (
     local_median,
     local_size,
     median_filtered,
+    normal_look,
     opened,
     past_level,
     persistence,
@@ -197,6 +198,42 @@ def test_a_held_cell_is_flagged_only_in_frames_that_show_what_it_holds():
         np.testing.assert_allclose(steady_level(x, shown=True),
                                    low - (np.maximum(x[-1], q[-2]) - low), atol=1e-6)
         assert (steady_level(x, shown=True) <= steady_level(x) + 1e-6).all()
+
+
+def test_windows_without_a_reference_flag_only_what_looks_unlike_normal_frames():
+    # normal_look: the median look (numpy.median) and, per cell, the largest over windows of
+    # 4 consecutive frames of the second smallest departure from it (numpy.sort), the
+    # largest over the 3 x 3 cells around (scipy.ndimage.maximum_filter, mode "nearest");
+    # the window spanning a gap is left out.
+    from scipy.ndimage import maximum_filter
+
+    rng = np.random.default_rng(7)
+    looks = (rng.standard_normal((12, 5, 6)) * 0.01).astype(np.float32)
+    times = np.arange(12) * 2.0
+    times[8:] += 100.0
+    normal = normal_look(looks, times, 4, 10.0)
+    centre = np.median(looks, axis=0)
+    reach = np.zeros_like(centre)
+    for end in list(range(4, 9)) + list(range(12, 13)):
+        d = np.sort(np.abs(looks[end - 4:end] - centre), axis=0)[1]
+        reach = np.maximum(reach, maximum_filter(d, size=3, mode="nearest"))
+    np.testing.assert_allclose(normal[0], centre, atol=1e-7)
+    np.testing.assert_allclose(normal[1], reach, atol=1e-7)
+    # A run whose first frames read unusual (30) at (1, 1), where the picture looks as in
+    # normal frames (a line the model reads anew under an unusual light), and at (3, 4),
+    # where its look departs by 0.5 (a parcel there before the run began): with the normal
+    # look, the first window flags only the parcel; without it, both.
+    maps = np.zeros((6, 5, 6), np.float32)
+    maps[:, 1, 1] = maps[:, 3, 4] = 30.0
+    run_looks = np.repeat(centre[None], 6, axis=0)
+    run_looks[:, 3, 4] += 0.5
+    kw = dict(threshold=5.0, start_threshold=10.0, past=8, min_past=MIN_PAST,
+              looks=run_looks, change=0.05)
+    plain = persistence(maps, np.arange(6) * 2.0, 4, 10.0, **kw)
+    usual = persistence(maps, np.arange(6) * 2.0, 4, 10.0, normal=normal, **kw)
+    assert plain.maps[3, 1, 1] > 10.0 and plain.maps[3, 3, 4] > 10.0
+    assert usual.maps[3, 1, 1] <= 0.0 and usual.maps[3, 3, 4] > 10.0
+    assert not usual.stepped[3]
 
 
 def test_a_step_counts_only_where_the_picture_changed():
@@ -482,8 +519,8 @@ def test_calibrate_tells_busy_from_quiet():
     rank = math.ceil((len(b.calibration_scores) + 1) * 0.99)
     assert b.threshold.value == pytest.approx(
         max(np.sort(b.calibration_scores)[rank - 1], b.floor))
-    again = Persistence.from_saved(b.to_json(), b.calibration_scores, b.start_scores)
-    assert again.to_json() == b.to_json() and again.around == 3
+    again = Persistence.from_saved(b.to_json(), b.calibration_scores, b.start_scores, b.normal)
+    assert again.to_json() == b.to_json() and again.around == 3 and again.normal is None
     old = Persistence.from_saved({k: v for k, v in b.to_json().items()
                                   if k not in ("past", "robust", "start_threshold", "around",
                                                "floor", "local", "footprint", "min_past",

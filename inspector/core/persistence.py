@@ -230,7 +230,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 start_threshold: float | None = None, around: int = 1, local: int = 0,
                 footprint: int = 1, made_local: bool = False, min_past: int = 1,
                 looks: np.ndarray | None = None, change: float = 0.0,
-                shown: bool = False) -> PersistenceResult:
+                shown: bool = False, normal: np.ndarray | None = None) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -310,6 +310,16 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         into its own reference; a cell not held is judged as without it, so a thing is
         flagged as soon. The spread can only grow, so the flags are a subset of those
         without it (the calibrated rate still holds; calibration holds no cell).
+    normal : ndarray, shape (2, h, w), float32, optional
+        The camera's normal look (:func:`normal_look`). With ``looks`` and ``change`` > 0, a
+        window with too few frames before it for a reference (the first of a run, and the
+        next ones; not ``stepped``) counts a cell only where its frames' looks depart from
+        the normal look (:func:`_departure`) by more than any held-out normal window did
+        there, plus ``change``; elsewhere its map is at most 0. Such a window has no
+        frames before it to tell what it holds from what was always there: a region that
+        looks as it does in normal frames (a floor line the model reads anew under an
+        unusual light, the ground where a passer-by stood in the run's first frame) is not
+        something left. Its flags are a subset of those without it.
 
     Returns
     -------
@@ -368,6 +378,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             seen = _changed(late_l, window, None, min_past, around) if gate else None
             if seen is not None:
                 raw = _gated(raw, seen[0], change)
+            if not (past > 0 and len(late_buf) >= window + min_past):
+                raw = _usual(raw, late_l[-window:], normal, change, around)
             out[i], steady[i] = raw, level
             if threshold is not None:
                 out[i] = opened(raw, footprint)
@@ -397,6 +409,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
         steady[i] = level
         out[i] = raw if seen is None else _gated(raw, seen[0], change)
+        if gate and not (past > 0 and len(buf) >= window + min_past):
+            out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
         if threshold is not None:  # (else opened below, all frames at once)
             out[i] = opened(out[i], footprint)
             if past and window < len(buf) < window + min_past:
@@ -487,9 +501,65 @@ def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: i
     reference = np.median(np.asarray(before, np.float32), axis=0)
     if held_look is not None:
         reference = np.where(np.isnan(held_look), reference, held_look)
-    diff = np.abs(np.asarray(looks[-window:], np.float32) - reference)
+    return _departure(looks[-window:], reference, around), reference
+
+
+def _departure(looks: list, reference: np.ndarray, around: int = 1) -> np.ndarray:
+    """Per cell, how far the looks of a window's frames are from ``reference``: the second
+    smallest absolute difference over the frames (one set aside, see :func:`_changed`), the
+    largest over the ``around`` x ``around`` cells centred on the cell, shape (h, w)
+    float32."""
+    diff = np.abs(np.asarray(looks, np.float32) - reference)
     change = np.partition(diff, 1, axis=0)[1] if len(diff) > 2 else diff.min(axis=0)
-    return flat_filter(np.ascontiguousarray(change, np.float32), around, np.maximum), reference
+    return flat_filter(np.ascontiguousarray(change, np.float32), around, np.maximum)
+
+
+def _usual(level: np.ndarray, looks: list, normal: np.ndarray | None, change: float,
+           around: int) -> np.ndarray:
+    """``level`` of a window without a reference where the window's looks depart from the
+    camera's normal look by more than ``normal[1]`` + ``change``, else at most 0 (see
+    ``normal`` of :func:`persistence`); ``level`` itself without a normal look or a look."""
+    if normal is None or any(v is None for v in looks) or normal.shape[1:] != level.shape:
+        return level
+    return _gated(level, _departure(looks, normal[0], around) - normal[1], change)
+
+
+def normal_look(looks: np.ndarray, times: np.ndarray, window: int, max_gap: float,
+                blocks: np.ndarray | None = None, around: int = AROUND) -> np.ndarray:
+    """A camera's normal look, and how far windows of normal frames depart from it.
+
+    Parameters
+    ----------
+    looks : ndarray, shape (n, h, w), float
+        :func:`cell_looks` of normal frames in capture-time order.
+    times : ndarray, shape (n,), float
+        Their capture times, seconds.
+    window : int
+    max_gap : float
+        A window's frames are at most this many seconds apart (and of one block).
+    blocks : ndarray, shape (n,), int, optional
+    around : int
+
+    Returns
+    -------
+    ndarray, shape (2, h, w), float32
+        [0]: per cell, the median look of the frames (a passer-by covers a cell in far
+        fewer than half of them); [1]: per cell, the largest :func:`_departure` from it of
+        the windows of ``window`` consecutive frames (how far the light of normal days, and
+        passers-by in all but one frame of a window, take a cell's look), 0 where there is
+        no window.
+    """
+    looks = np.asarray(looks, np.float32)
+    times = np.asarray(times, np.float64)
+    centre = np.median(looks, axis=0)
+    reach = np.zeros_like(centre)
+    for end in range(window, len(looks) + 1):
+        span = slice(end - window, end)
+        if (np.diff(times[span]) > max_gap).any() or (
+                blocks is not None and len(np.unique(np.asarray(blocks)[span])) > 1):
+            continue
+        reach = np.maximum(reach, _departure(list(looks[span]), centre, around))
+    return np.stack([centre, reach]).astype(np.float32)
 
 
 def _gated(step: np.ndarray, changed: np.ndarray, change: float) -> np.ndarray:
@@ -946,6 +1016,10 @@ class Persistence:
     shown : bool
         A held cell is flagged only where the frame shows what it holds (``shown`` of
         :func:`persistence`); False for baselines learnt before it.
+    normal : ndarray, shape (2, h, w), float32, or None
+        The camera's normal look (:func:`normal_look` of the calibrating frames), which
+        windows without a reference must depart from (``normal`` of :func:`persistence`);
+        None for baselines learnt before it, or without looks.
     """
 
     window: int
@@ -965,6 +1039,7 @@ class Persistence:
     min_past: int = 1
     change: float = 0.0
     shown: bool = False
+    normal: np.ndarray | None = field(default=None, repr=False)
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None,
             looks: np.ndarray | None = None) -> PersistenceResult:
@@ -976,7 +1051,7 @@ class Persistence:
                                             if self.start_threshold is not None else None),
                            around=self.around, local=self.local, footprint=self.footprint,
                            min_past=self.min_past, looks=looks, change=self.change,
-                           shown=self.shown)
+                           shown=self.shown, normal=self.normal)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -1026,7 +1101,8 @@ class Persistence:
 
     @classmethod
     def from_saved(cls, meta: dict, calibration_scores: np.ndarray,
-                   start_scores: np.ndarray | None = None) -> "Persistence":
+                   start_scores: np.ndarray | None = None,
+                   normal: np.ndarray | None = None) -> "Persistence":
         start = meta.get("start_threshold")
         return cls(int(meta["window"]), float(meta["max_gap"]),
                    Threshold.from_dict(meta["threshold"]),
@@ -1037,7 +1113,8 @@ class Persistence:
                    int(meta.get("around", 1)), float(meta.get("floor", 0.0)),
                    int(meta.get("local", 0)), int(meta.get("footprint", 1)),
                    int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
-                   bool(meta.get("shown", False)))
+                   bool(meta.get("shown", False)),
+                   None if normal is None else np.asarray(normal, np.float32))
 
 
 def _robust(saved) -> bool | str:
@@ -1127,6 +1204,10 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
                 made_local=True, min_past=MIN_PAST)
     change = (LARGE * look_noise(looks, s_times, max_gap, s_blocks) if looks is not None
               else 0.0)
+    # (scan time only: windows without a reference flag a subset of what the start
+    # threshold, calibrated without it, allows)
+    normal = (normal_look(looks, s_times, window, max_gap, s_blocks) if looks is not None
+              else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
                        looks=looks, change=change, **opts)
     if not step.filled.any():
@@ -1147,12 +1228,12 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, "window", around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
-                           change=change, shown=True)
+                           change=change, shown=True, normal=normal)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, "window",
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change, True)
+                       floor, local, footprint, MIN_PAST, change, True, normal)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

@@ -376,7 +376,8 @@ class Store:
                 persistence = (Persistence.from_saved(
                     meta["persistence"], z["persistence_scores"],
                     z["persistence_start_scores"] if "persistence_start_scores" in z.files
-                    else None)
+                    else None,
+                    z["persistence_normal"] if "persistence_normal" in z.files else None)
                                if meta.get("persistence") and "persistence_scores" in z.files
                                else None)
             reading = "baseline.json"
@@ -430,6 +431,8 @@ class Store:
                 arrays["persistence_scores"] = baseline.persistence.calibration_scores
                 if baseline.persistence.start_scores is not None:
                     arrays["persistence_start_scores"] = baseline.persistence.start_scores
+                if baseline.persistence.normal is not None:
+                    arrays["persistence_normal"] = baseline.persistence.normal
                 baseline.meta["persistence"] = baseline.persistence.to_json()
             np.savez_compressed(tmp / "calibration.npz", **arrays)
             if baseline.conditions is not None:
