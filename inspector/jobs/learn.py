@@ -714,6 +714,9 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
                       f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
                     + (f"; a change counts where the picture changed (log brightness by more "
                        f"than {p.change:.3f})" if p.change > 0 else "")
+                    + ("; the first frames of a run only where they look unlike the normal "
+                       "frames (further from their median look than any window of them)"
+                       if p.normal is not None and p.start_threshold is not None else "")
                     if on else ": single-frame flags"))
     if on and warnings is not None:
         warnings += [f"persistence threshold for {which} {value:.3g} rests on one held-out "
