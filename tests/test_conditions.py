@@ -558,9 +558,9 @@ def test_clipped_pixel_masks_agree_with_the_brightest_channel(monkeypatch):
     # the brightest channel >= 250 (and >= the glare floor), written here with numpy.
     # (The chroma smoothing that follows is tested on its own, and so are black clips.)
     import inspector.core.conditions as conditions
-    monkeypatch.setattr(Conditions, "_near_black", lambda self, img, shift: None)
+    monkeypatch.setattr(Conditions, "_near_black", lambda self, img, shift, darkest=None: None)
 
-    monkeypatch.setattr(conditions, "smooth_chroma", lambda image: image)
+    monkeypatch.setattr(conditions, "smooth_chroma", lambda image, out=None: image)
     ref, normal = _with_lamp()
     normal = normal.copy()
     normal[:, 100:110, 20:40, 0] = 252  # a clipped red patch beside the lamp in every frame

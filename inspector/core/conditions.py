@@ -172,7 +172,8 @@ def _moved_back(mask: np.ndarray, shift: tuple[float, float] | None) -> np.ndarr
     return cv2.compare(shift_images(mask, -shift[0], -shift[1]), 0, cv2.CMP_GT)
 
 
-def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
+def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA,
+                  out: np.ndarray | None = None) -> np.ndarray:
     """An RGB frame with its chroma blurred and its luma kept.
 
     Compressed frames carry their colour at half resolution and quantise its detail far
@@ -190,10 +191,13 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
     image : ndarray, shape (H, W, 3), uint8
     sigma : float
         Standard deviation of the blur, in pixels.
+    out : ndarray, shape (H, W, 3), uint8, optional
+        Where to write the result (not ``image``).
 
     Returns
     -------
     ndarray, shape (H, W, 3), uint8
+        ``out`` when given.
     """
     ycc = cv2.cvtColor(image, cv2.COLOR_RGB2YCrCb)
     chroma = np.empty(ycc.shape[:2] + (2,), np.uint8)
@@ -201,7 +205,7 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA) -> np.ndarray:
     # only Cr and Cb are blurred (OpenCV blurs 8-bit images in exact fixed point, channel
     # by channel: the same numbers as blurring all three)
     cv2.mixChannels([cv2.GaussianBlur(chroma, (0, 0), sigma)], [ycc], [0, 1, 1, 2])
-    return cv2.cvtColor(ycc, cv2.COLOR_YCrCb2RGB)
+    return cv2.cvtColor(ycc, cv2.COLOR_YCrCb2RGB, dst=out)
 
 
 def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
@@ -481,11 +485,14 @@ class Conditions(Estimator):
         # clipped white pixels of each frame as captured (255 where a channel is >= 250),
         # moved with the frame (moving back interpolates, which takes a thin clipped line
         # below the clip level), then with their neighbours; they only bound their light
+        extremes = [_extremes(img) for img in images]  # the test before either mask
         nears = [self._near_clipped(img, moved.get(i),
-                                    None if was_clipped is None else was_clipped[i])
+                                    None if was_clipped is None else was_clipped[i],
+                                    extremes[i][1])
                  for i, img in enumerate(images)]
         # and the channels clipped black (most of their neighbourhood), bounded from above
-        darks = [self._near_black(img, moved.get(i)) for i, img in enumerate(images)]
+        darks = [self._near_black(img, moved.get(i), extremes[i][0])
+                 for i, img in enumerate(images)]
         if self.lighting != "off" or self.health:
             bounded = None
             if any(m is not None for m, _ in nears):
@@ -512,17 +519,13 @@ class Conditions(Estimator):
                 out[i] = images[i]
                 continue
             if self.lighting == "off":
-                o = smooth_chroma(img)
+                o = smooth_chroma(img, out=out[i])
             else:
                 gain, offset = gains[i]
                 expected = (None if ref_rgb is None else
                             self._saturating(ref_rgb, gain, offset))
                 lost = None if ref_rgb is None else self._lost(ref_rgb, gain, offset, near,
                                                                img)
-                level = img  # the frame's levels, the lost light given back (float32)
-                if lost is not None:
-                    level = img.astype(np.float32)
-                    level.reshape(-1)[lost[0]] += lost[1]
                 if self.lighting == "local":
                     # (gain * img + offset) * field = (img + offset / gain) * (gain * field);
                     # the field compares the pixels the frame did not clip: a clipped one
@@ -543,14 +546,22 @@ class Conditions(Estimator):
                                               channels=3, keep=kept))
                     if lost is None:
                         f = cv2.addWeighted(img, 1.0, img, 0.0, offset / gain, dtype=cv2.CV_32F)
-                    else:  # its own float copy
-                        f = level
-                        f += np.float32(offset / gain)
+                    else:
+                        # (img + lost) + offset / gain, in float32: one pass over the
+                        # frame, the few with lost light apart (the same numbers)
+                        lift = np.float32(offset / gain)
+                        f = np.add(img, lift, dtype=np.float32)
+                        f.reshape(-1)[lost[0]] = (img.reshape(-1)[lost[0]].astype(np.float32)
+                                                  + lost[1]) + lift
                     o = cv2.multiply(f, field, dtype=cv2.CV_8U)  # rounds, clips
                     # what a channel at 0 reads once normalised: the frame's black floor
                     floor = (None if darks[i] is None or offset <= 0 else
                              cv2.convertScaleAbs(field, alpha=offset / gain))
                 else:
+                    level = img  # the frame's levels, the lost light given back
+                    if lost is not None:
+                        level = img.astype(np.float32)
+                        level.reshape(-1)[lost[0]] += lost[1]
                     o = cv2.addWeighted(level, gain, level, 0.0, offset, dtype=cv2.CV_8U)
                     floor = (None if darks[i] is None or offset <= 0 else
                              np.full_like(o, min(round(offset), 255)))
@@ -559,12 +570,13 @@ class Conditions(Estimator):
                 # unevened took the reference's blurred colour where its own was sharper,
                 # then blurred it again (the demo aisle 30 % brighter: blue 20-27 levels
                 # too high along its clipped orange shelf beams, 32 of 56 frames flagged)
-                o = smooth_chroma(o)
+                o = smooth_chroma(o, out=out[i])  # written in place from here on
                 if ref_rgb is not None:
                     self._restore(o, near, ref_rgb, dark=darks[i], floor=floor)
             if fill is not None and ref_rgb is not None:
                 cv2.copyTo(ref_rgb, fill.view(np.uint8), o)
-            out[i] = o
+            if o.base is not out:  # not written in place
+                out[i] = o
         return Prepared(out, g_all, aligned, shifts, gains, clipped)
 
     def _restore(self, o: np.ndarray, near: np.ndarray | None, ref_rgb: np.ndarray,
@@ -681,7 +693,8 @@ class Conditions(Estimator):
         return idx[reach], more
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
-                      was: np.ndarray | None) -> tuple[np.ndarray | None, np.ndarray | None]:
+                      was: np.ndarray | None, brightest: float | None = None
+                      ) -> tuple[np.ndarray | None, np.ndarray | None]:
         """Pixels of one frame (H, W, 3) uint8 that only bound their light, as aligned.
 
         Returns ``(near, channels)``: ``near`` (H, W) uint8 is 255 where a channel is
@@ -689,12 +702,13 @@ class Conditions(Estimator):
         frame a copy was made from) added; ``channels`` (H, W, 3) uint8 the same channel
         by channel (``was`` in every channel: which of its channels clipped is not known).
         (None, None) when there are none or lighting is off. ``shift``: the (dx, dy) the
-        frame is moved back by, if any.
+        frame is moved back by, if any; ``brightest``: the frame's brightest level when
+        known (:func:`_extremes`).
         """
         if self.lighting == "off":
             return None, None
         near = channels = None
-        if _extremes(img)[1] >= 250:  # any clipped pixel
+        if (_extremes(img)[1] if brightest is None else brightest) >= 250:  # any clipped
             channels = cv2.dilate(_moved_back(cv2.compare(img, _UNCLIPPED, cv2.CMP_GT), shift),
                                   _NEAR)
             near = _any_channel(channels)
@@ -704,8 +718,8 @@ class Conditions(Estimator):
             channels = every if channels is None else cv2.max(channels, every)
         return near, channels
 
-    def _near_black(self, img: np.ndarray, shift: tuple[float, float] | None
-                    ) -> np.ndarray | None:
+    def _near_black(self, img: np.ndarray, shift: tuple[float, float] | None,
+                    darkest: float | None = None) -> np.ndarray | None:
         """Channels of one frame (H, W, 3) uint8 clipped black, as aligned: (H, W, 3) uint8,
         255 where at least 5 of the 9 pixels around (itself included) are at most
         :data:`BLACK_LEVEL` in that channel; None when there are none or lighting is off.
@@ -718,11 +732,12 @@ class Conditions(Estimator):
         4.5 times the threshold). Most of the neighbourhood, not any pixel: the pixels of a
         crushed shadow that its noise lifts above the level are no more to be trusted than
         the rest, and a lit pixel alone among black ones is kept as seen. Mirror of the
-        white clip (:meth:`_near_clipped`).
+        white clip (:meth:`_near_clipped`). ``darkest``: the frame's darkest level when
+        known (:func:`_extremes`).
         """
         if self.lighting == "off":
             return None
-        if _extremes(img)[0] > BLACK_LEVEL:  # no channel clipped black
+        if (_extremes(img)[0] if darkest is None else darkest) > BLACK_LEVEL:  # none black
             return None
         dark = _moved_back(cv2.compare(img, _UNBLACK, cv2.CMP_LT), shift)
         dark = cv2.compare(cv2.blur(dark, (3, 3)), 127, cv2.CMP_GT)
