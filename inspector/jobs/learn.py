@@ -28,6 +28,7 @@ from inspector.clock import now
 from inspector.config import CameraConfig, Config, settings_dict
 from inspector.core.baseline import Baseline
 from inspector.core.calibration import (
+    Calibration,
     Threshold,
     alarms_to_alpha,
     calibrate,
@@ -427,21 +428,21 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
         raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
     finally:
         source.stop()
-    used, good, calibration, threshold, regimes, persistence, notes, warnings = (
-        calibrated[0] if calibrated else
-        _calibrated(held, cfg, files, times, source, prepared, conditions, masking))
+    done = (calibrated[0] if calibrated else
+            _calibrated(held, cfg, files, times, source, prepared, conditions, masking))
+    used, notes, warnings = done.used, done.notes, done.warnings
     warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
     facts = VersionFacts(
         created=started, frames=used, frames_skipped=len(source.skipped),
-        first_frame_time=min(good), last_frame_time=max(good),
+        first_frame_time=min(done.times), last_frame_time=max(done.times),
         settings={"frames": settings_dict(fs), "model": settings_dict(cfg.model),
                   "calibration": settings_dict(cfg.calibration),
                   "conditions": settings_dict(cfg.conditions),
                   "mask": settings_dict(cfg.mask)},
         text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}, masked=masking))
-    baseline = Baseline(camera=camera, version="", model=model, calibration=calibration,
+    baseline = Baseline(camera=camera, version="", model=model, calibration=done.calibration,
                         size=size, source_size=source_size, mask=mask, conditions=conditions,
-                        regimes=regimes, persistence=persistence)
+                        regimes=done.regimes, persistence=done.persistence)
     baseline.meta = describe(baseline, facts, inspector.__version__)
     version = store.save(baseline, activate=activate)
     skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
@@ -450,17 +451,52 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     if text_boxes:
         notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
                      + ", ".join(str(tuple(b)) for b in text_boxes))
-    return LearnReport(camera, version, used, skipped, threshold, warnings, seconds,
+    return LearnReport(camera, version, used, skipped, done.threshold, warnings, seconds,
                        text_boxes=text_boxes, notes=notes)
+
+
+@dataclass(frozen=True)
+class Calibrated:
+    """What :func:`_calibrated` makes of the held-out maps, for :func:`learn_camera`.
+
+    Attributes
+    ----------
+    used : int
+        Frames read and used (the folder's frames less those skipped).
+    times : list of datetime
+        Capture times of the frames used, in capture-time order.
+    calibration : Calibration
+        The camera's calibration (standardisation, scores, threshold).
+    regimes : Regimes or None
+        Lighting regimes each calibrated on its own, None when there is one.
+    persistence : Persistence or None
+        Persistence calibrated on the held-out maps, None when it is off.
+    notes : list of str
+        Lines for the learn summary (alarm budget, threshold, regimes, persistence).
+    warnings : list of str
+        Warnings recorded with the version (threshold, regimes, masking, persistence).
+    """
+
+    used: int
+    times: list
+    calibration: Calibration
+    regimes: Regimes | None
+    persistence: Persistence | None
+    notes: list[str]
+    warnings: list[str]
+
+    @property
+    def threshold(self) -> Threshold:
+        """The camera's threshold (``calibration.threshold``)."""
+        return self.calibration.threshold
 
 
 def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list,
                 source: FileSource, prepared: PreparedSource, conditions: Conditions,
-                masking: dict) -> tuple:
+                masking: dict) -> Calibrated:
     """The calibration of the held-out maps (threshold, regimes, persistence) once the
-    model's pass over the frames is done: (frames used, their capture times, calibration,
-    threshold, regimes, persistence, notes, warnings). Raises UsageError when too few
-    frames were read or the maps cannot be calibrated."""
+    model's pass over the frames is done (see :class:`Calibrated`). Raises UsageError when
+    too few frames were read or the maps cannot be calibrated."""
     camera = cfg.name
     used = len(files) - len(source.skipped)
     if used < MIN_FRAMES:
@@ -521,7 +557,7 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
                          for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
     persistence = _persistence(held, held_blocks, regimes, prepared.appearance, times, alpha,
                                cfg, notes, prepared.cell_looks, warnings)
-    return used, good, calibration, threshold, regimes, persistence, notes, warnings
+    return Calibrated(used, good, calibration, regimes, persistence, notes, warnings)
 
 
 def _compression(files: Sequence[FrameFile], source_size: tuple[int, int],
