@@ -162,15 +162,17 @@ def overlay_picture(r: FrameResult) -> np.ndarray:
     """The overlay of a scored frame with its caption (:func:`result_caption`), BGR (ready
     for ``cv2.imwrite``): the one drawing of a result, for the writer and the review page
     alike."""
-    return render_overlay(r.image, r.amap, r.threshold, result_caption(r), r.mask,
-                          r.clipped if clipped_share(r) else None)
+    share = clipped_share(r)
+    return render_overlay(r.image, r.amap, r.threshold, result_caption(r, share), r.mask,
+                          r.clipped if share else None)
 
 
-def result_caption(r: FrameResult) -> str:
-    """The caption of a scored frame's overlay (:func:`overlay_caption`)."""
+def result_caption(r: FrameResult, share: float | None = None) -> str:
+    """The caption of a scored frame's overlay (:func:`overlay_caption`); ``share`` is
+    :func:`clipped_share` of ``r`` when the caller has it already."""
     return overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold,
                            (r.time - r.since).total_seconds() if r.since else None,
-                           r.amplified, clipped_share(r))
+                           r.amplified, clipped_share(r) if share is None else share)
 
 
 def clipped_share(r: FrameResult) -> float:
