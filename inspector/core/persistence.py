@@ -414,8 +414,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         if threshold is not None:  # (else opened below, all frames at once)
             out[i] = opened(out[i], footprint)
             if past and window < len(buf) < window + min_past:
-                out[i] = _since_start(buf, lbuf, window, out[i], threshold, around, scaled,
-                                      spreads, footprint, change if gate else 0.0)
+                out[i] = _since_start(buf, lbuf, window, out[i], level, scale, threshold,
+                                      around, footprint, change if gate else 0.0)
         stepped[i] = past > 0 and len(buf) >= window + min_past
         filled[i] = len(buf) >= window
         if threshold is not None:
@@ -468,15 +468,17 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
     return threshold if stepped or start_threshold is None else start_threshold
 
 
-def _since_start(frames: list, looks: list, window: int, level: np.ndarray, threshold: float,
-                 around: int, scaled: bool, spreads: dict, footprint: int, change: float
-                 ) -> np.ndarray:
+def _since_start(frames: list, looks: list, window: int, level: np.ndarray,
+                 steady: np.ndarray, scale: float, threshold: float, around: int,
+                 footprint: int, change: float) -> np.ndarray:
     """The opened steady ``level`` of a window with too few frames before it for a
     reference (held to the start threshold), kept only where it also stepped up from those
-    frames by more than ``threshold`` (the step from their :func:`past_level`, gated by the
-    looks when ``change`` > 0, opened); elsewhere at most 0. What stays since the run began
-    was judged by the run's first window; a later one flags only what appeared since."""
-    _, step, _ = _step(frames, window, None, around, scaled, spreads, 1)
+    frames by more than ``threshold`` (the step of the window's ``steady`` level, as
+    :func:`_step` found it with the frames divided by ``scale``, from those frames'
+    :func:`past_level`, gated by the looks when ``change`` > 0, opened); elsewhere at most 0.
+    What stays since the run began was judged by the run's first window; a later one flags
+    only what appeared since."""
+    step = (steady - _reference(frames[:-window], scale)).astype(np.float32)
     seen = _changed(looks, window, None, 1, around) if change > 0 else None
     if seen is not None:
         step = _gated(step, seen[0], change)
@@ -726,11 +728,17 @@ def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
              else 1.0)
     level = steady_level(win / np.float32(scale), around)
     before = frames[:-window]
-    reference = (past_level(np.asarray(before, np.float32) / np.float32(scale))
-                 if before and len(before) >= min_past else np.zeros_like(level))
+    reference = (_reference(before, scale) if before and len(before) >= min_past
+                 else np.zeros_like(level))
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
     return level, (level - reference).astype(np.float32), scale
+
+
+def _reference(before: list[np.ndarray], scale: float) -> np.ndarray:
+    """:func:`past_level` of the frames ``before`` a window (at least one) divided by
+    ``scale`` (see :func:`_step`), shape (h, w), float32."""
+    return past_level(np.asarray(before, np.float32) / np.float32(scale))
 
 
 def _spreads(frames: list[np.ndarray], win: np.ndarray, cache: dict | None) -> np.ndarray:
