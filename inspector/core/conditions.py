@@ -44,6 +44,7 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -257,6 +258,46 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
     return cv2.bitwise_and(keep, 1).reshape(h, w, 3).view(bool)
 
 
+class _PerReference:
+    """A value made from some arrays and kept while they are the same arrays (the same
+    objects, not equal copies): what frames need of a reference, made once per reference
+    rather than once per frame. The arrays are held with the value, so that no other array
+    takes their identity, and the two are replaced together (one tuple): threads sharing
+    the conditions never read a value with another reference's arrays."""
+
+    __slots__ = ("_made",)
+
+    def __init__(self) -> None:
+        self._made: tuple[tuple, Any] | None = None
+
+    def get(self, make: Callable[..., Any], *arrays: Any) -> Any:
+        """``make(*arrays)``, made anew only when ``arrays`` are not those of the last
+        call."""
+        made = self._made
+        if made is None or any(a is not b for a, b in zip(made[0], arrays)):
+            made = self._made = (arrays, make(*arrays))
+        return made[1]
+
+
+def _health_terms(ignore: np.ndarray | None, cells: np.ndarray | None
+                  ) -> tuple[np.ndarray | None, np.ndarray | None, int | None,
+                             np.ndarray | None]:
+    """What the health measures need of the ignore mask ``ignore`` ((H, W) bool, None:
+    none) and the reference cells ``cells`` ((g, g), None: not known yet): the pixels
+    kept, (H, W) uint8 1/0 (None: all); the flat indices of every fourth of them (None:
+    every fourth pixel); how many there are (at least 1; None when all are kept: the
+    callers take the frame's size); and the textured cells, (g, g) bool (None without
+    ``cells``)."""
+    keep = quarter = count = None
+    if ignore is not None:
+        keep = (~ignore).astype(np.uint8)
+        kept = np.flatnonzero(keep)
+        quarter, count = kept[::4], max(len(kept), 1)
+    textured = (None if cells is None else
+                cells > max(2.0, 0.1 * float(np.median(cells))))
+    return keep, quarter, count, textured
+
+
 class Conditions(Estimator):
     """A camera's normal conditions, learnt with its baseline, applied to every frame.
 
@@ -305,21 +346,22 @@ class Conditions(Estimator):
         self.max_shift = max_shift
         self.health = health
         self.limits = limits
-        #: (colour reference, its glare as :meth:`_reference_glare` gives it, its
-        #: brightest level), made once.
-        self._ref_terms: tuple | None = None
-        #: (colour reference, it and :attr:`fine_` flattened as float32, the negated highest
-        #: finer levels in falling order, that order, the reference's own clip loss, the
-        #: darkest and the highest finer levels, the pixel of each; all but the first in
-        #: that order), made once (:meth:`_lost`).
-        self._fine: tuple | None = None
-        #: (grey reference, what registration needs of it), made once (:meth:`_registration`).
-        self._spectrum: tuple | None = None
-        #: (ignore mask, reference cells, what the health measures need of them), made
-        #: once (:meth:`_health_terms`).
-        self._health: tuple | None = None
-        #: (grey reference, its cell terms), made once (:meth:`_cell_terms`).
-        self._cells: tuple | None = None
+        self._forget()
+
+    def _forget(self) -> None:
+        """What frames need of the reference, made anew once per reference (a new fit)."""
+        #: The colour reference's glare and brightest level (:meth:`_reference_glare`).
+        self._ref_terms = _PerReference()
+        #: The colour reference and :attr:`fine_` as :meth:`_lost` uses them
+        #: (:meth:`_fine_terms`).
+        self._fine = _PerReference()
+        #: What registration needs of the grey reference (:meth:`_registration`).
+        self._spectrum = _PerReference()
+        #: What the health measures need of the ignore mask and the reference cells
+        #: (:func:`_health_terms`).
+        self._health = _PerReference()
+        #: The grey reference's :func:`~inspector.core.image.cell_terms`.
+        self._cells = _PerReference()
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
@@ -351,7 +393,7 @@ class Conditions(Estimator):
         self.reference_ = self.reference_rgb_ = self.ref_cells_ = self.ref_detail_ = None
         self.gain_max_ = None
         self.limits_ = {**DEFAULT_LIMITS, **(self.limits or {})}
-        self._ref_terms = self._spectrum = self._fine = self._health = self._cells = None
+        self._forget()
         if not len(images):
             return self
         ref = median_stack(grey(images))
@@ -450,7 +492,7 @@ class Conditions(Estimator):
         moved: dict[int, tuple[float, float]] = {}  # frames moved back, by their shift
         if self.register:
             if known is None:
-                spectrum, terms, half, compared = self._registration(ref)
+                spectrum, terms, half, compared = self._spectrum.get(self._registration, ref)
                 found = (phase_shifts(g_all, spectrum, self.ignore_) if half is None else
                          2.0 * phase_shifts(halved(g_all), *half))
             for i, g in enumerate(g_all):
@@ -598,7 +640,7 @@ class Conditions(Estimator):
         if dark is not None:  # never raised
             target = ref_rgb if floor is None else cv2.max(ref_rgb, floor)
             cv2.copyTo(cv2.min(o, target), dark, o)
-        glare = self._reference_glare(ref_rgb)
+        glare, _ = self._ref_terms.get(self._reference_glare, ref_rgb)
         if glare is not None:  # glare pixels whose brightest channel is >= floor
             box, mask, below, colour = glare
             part = o[box]  # a view: written in place
@@ -613,8 +655,7 @@ class Conditions(Estimator):
         frame becomes, (H, W, 3) uint8, 255 there and 0 elsewhere; None where there are
         none (no reference level reaches it)."""
         level = 250.0 * gain + offset
-        self._reference_glare(ref_rgb)  # the reference's terms, its brightest level with them
-        if level > self._ref_terms[2]:
+        if level > self._ref_terms.get(self._reference_glare, ref_rgb)[1]:
             return None
         # whole levels: at least the float32 level is at least its ceiling (OpenCV compares
         # in one pass what numpy compares through a float32 copy)
@@ -645,21 +686,8 @@ class Conditions(Estimator):
         """
         if self.fine_ is None:
             return None
-        if self._fine is None or self._fine[0] is not ref_rgb:
-            r = ref_rgb.astype(np.float32)
-            spread = np.asarray(self.fine_, np.float32)
-            # candidates by the highest level of their finer pixels, in falling order: a
-            # frame's loss is computed on the few that can reach the clip, not on all
-            high = (r + spread[..., -1]).ravel()
-            order = np.argsort(-high, kind="stable")
-            # kept in that order, so that a frame's candidates are a slice, not a gather
-            spread = spread.reshape(-1, spread.shape[-1])[order]
-            own = clip_loss(r.reshape(-1)[order], spread)
-            # the darkest and highest finer levels apart (contiguous), and the pixel of each
-            self._fine = (ref_rgb, r.reshape(-1)[order], spread, -high[order], order, own,
-                          np.ascontiguousarray(spread[:, 0]),
-                          np.ascontiguousarray(spread[:, -1]), order // 3)
-        _, r, spread, neg_high, order, own, low, top, pixel = self._fine
+        r, spread, neg_high, order, own, low, top, pixel = self._fine.get(self._fine_terms,
+                                                                          ref_rgb)
         g, o = np.float32(gain), np.float32(offset)
         # a frame whose 255 reads at least 255 in the reference's levels loses no more than
         # the reference did (level by level, max(x - 255 g - offset, 0) <= max(x - 255, 0))
@@ -758,56 +786,70 @@ class Conditions(Estimator):
                                    borderValue=0) > 0.001
         return fill
 
+    def _fine_terms(self, ref_rgb: np.ndarray) -> tuple:
+        """What :meth:`_lost` needs of the colour reference and :attr:`fine_`: it and
+        :attr:`fine_` flattened as float32, the negated highest finer levels in falling
+        order, that order, the reference's own clip loss, the darkest and the highest finer
+        levels, the pixel of each (all but the order in that order)."""
+        r = ref_rgb.astype(np.float32)
+        spread = np.asarray(self.fine_, np.float32)
+        # candidates by the highest level of their finer pixels, in falling order: a
+        # frame's loss is computed on the few that can reach the clip, not on all
+        high = (r + spread[..., -1]).ravel()
+        order = np.argsort(-high, kind="stable")
+        # kept in that order, so that a frame's candidates are a slice, not a gather
+        spread = spread.reshape(-1, spread.shape[-1])[order]
+        own = clip_loss(r.reshape(-1)[order], spread)
+        # the darkest and highest finer levels apart (contiguous), and the pixel of each
+        return (r.reshape(-1)[order], spread, -high[order], order, own,
+                np.ascontiguousarray(spread[:, 0]), np.ascontiguousarray(spread[:, -1]),
+                order // 3)
+
     def _registration(self, ref: np.ndarray
                       ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, Any] | None, tuple]:
         """:func:`phase_spectrum` and :func:`shift_terms` of the reference, for frames
         registered from their 2 x 2 reductions (:data:`HALVE_FROM`) the spectrum of its
         reduction with the pixels to ignore there (None for smaller frames), and its
-        :func:`correlation_terms` over the pixels not ignored, computed once per
-        reference."""
-        if self._spectrum is None or self._spectrum[0] is not ref:
-            half = None
-            if min(ref.shape) >= HALVE_FROM:
-                ignore = None
-                if self.ignore_ is not None:  # a reduced pixel with any ignored pixel
-                    ignore = halved(self.ignore_[None].astype(np.float32))[0] > 0
-                half = (phase_spectrum(halved(ref[None])[0], ignore), ignore)
-            self._spectrum = (ref, phase_spectrum(ref, self.ignore_),
-                              shift_terms(ref, self.ignore_), half,
-                              correlation_terms(ref, None if self.ignore_ is None
-                                                else ~self.ignore_))
-        return self._spectrum[1:]
+        :func:`correlation_terms` over the pixels not ignored (made once per reference:
+        ``self._spectrum``)."""
+        half = None
+        if min(ref.shape) >= HALVE_FROM:
+            ignore = None
+            if self.ignore_ is not None:  # a reduced pixel with any ignored pixel
+                ignore = halved(self.ignore_[None].astype(np.float32))[0] > 0
+            half = (phase_spectrum(halved(ref[None])[0], ignore), ignore)
+        return (phase_spectrum(ref, self.ignore_), shift_terms(ref, self.ignore_), half,
+                correlation_terms(ref, None if self.ignore_ is None else ~self.ignore_))
 
-    def _reference_glare(self, ref_rgb: np.ndarray
-                         ) -> tuple[tuple[slice, slice], np.ndarray, tuple[np.ndarray,
-                                                                         np.ndarray],
-                                    np.ndarray] | None:
-        """Where the colour reference has glare: None when it has no clipped whites, else
+    @staticmethod
+    def _reference_glare(ref_rgb: np.ndarray
+                         ) -> tuple[tuple[tuple[slice, slice], np.ndarray,
+                                          tuple[np.ndarray, np.ndarray], np.ndarray] | None,
+                                    float]:
+        """Where the colour reference has glare, and its brightest level (for
+        :meth:`_saturating`). The glare is None when it has no clipped whites, else
         ``(box, mask, below, colour)`` over the bounding box ``box`` (a pair of slices) of
         the dilated mask of its clipped whites: that mask (uint8), the bounds of
         ``cv2.inRange`` that are met where a frame's brightest channel is below what it
         must keep there to read as that glare (:data:`GLARE_TOLERANCE` below the
         reference's: every channel <= floor - 1, and never where the floor is 0, lower
         bound 1 > upper bound 0; each (h, w, 3) uint8), and the reference's colour there.
-        Computed once per reference rather than once per frame, with the reference's
-        brightest level (for :meth:`_saturating`)."""
-        if self._ref_terms is None or self._ref_terms[0] is not ref_rgb:
-            brightest = _channel_max(np.asarray(ref_rgb))
-            clipped = (brightest >= 250).astype(np.uint8)
-            glare = None
-            if clipped.any():
-                mask = cv2.dilate(clipped, _NEAR)
-                x, y, w, h = cv2.boundingRect(mask)
-                box = np.s_[y:y + h, x:x + w]
-                floor = (brightest[box].astype(np.float32)
-                         * (1.0 - GLARE_TOLERANCE)).astype(np.uint8)
-                lower = (floor == 0).astype(np.uint8)
-                upper = np.where(floor == 0, 0, floor.astype(np.int16) - 1).astype(np.uint8)
-                glare = (box, np.ascontiguousarray(mask[box]),
-                         (cv2.merge([lower] * 3), cv2.merge([upper] * 3)),
-                         np.ascontiguousarray(ref_rgb[box]))
-            self._ref_terms = (ref_rgb, glare, float(brightest.max()))
-        return self._ref_terms[1]
+        Computed once per reference rather than once per frame (``self._ref_terms``)."""
+        brightest = _channel_max(np.asarray(ref_rgb))
+        clipped = (brightest >= 250).astype(np.uint8)
+        glare = None
+        if clipped.any():
+            mask = cv2.dilate(clipped, _NEAR)
+            x, y, w, h = cv2.boundingRect(mask)
+            box = np.s_[y:y + h, x:x + w]
+            floor = (brightest[box].astype(np.float32)
+                     * (1.0 - GLARE_TOLERANCE)).astype(np.uint8)
+            lower = (floor == 0).astype(np.uint8)
+            upper = np.where(floor == 0, 0, floor.astype(np.int16) - 1).astype(np.uint8)
+            glare = (box, np.ascontiguousarray(mask[box]),
+                     (cv2.merge([lower] * 3), cv2.merge([upper] * 3)),
+                     np.ascontiguousarray(ref_rgb[box]))
+        return glare, float(brightest.max())
 
     def measures(self, prepared: Prepared, previous: np.ndarray | None = None
                  ) -> dict[str, np.ndarray]:
@@ -848,7 +890,8 @@ class Conditions(Estimator):
         if textured is not None and textured.any() and n:
             if self.reference_ is not None:
                 lost = cell_correlation(prepared.aligned, self.reference_,
-                                        terms=self._cell_terms()) < COVER_CORRELATION
+                                        terms=self._cells.get(cell_terms, self.reference_)
+                                        ) < COVER_CORRELATION
                 out["covered"] = lost[:, textured].mean(axis=1)
             if self.ref_detail_ is not None:
                 ratio = self._detail(prepared) / np.maximum(self.ref_detail_, 1e-6)
@@ -903,29 +946,9 @@ class Conditions(Estimator):
 
     def _health_terms(self) -> tuple[np.ndarray | None, np.ndarray | None, int | None,
                                      np.ndarray | None]:
-        """What the health measures need of the ignore mask and the reference cells, made
-        once per fit: the pixels kept, (H, W) uint8 1/0 (None: all); the flat indices of
-        every fourth of them (None: every fourth pixel); how many there are (at least 1;
-        None when all are kept: the callers take the frame's size); and the textured cells,
-        (g, g) bool (None before ``ref_cells_`` is known)."""
-        ignore, cells = self.ignore_, self.ref_cells_
-        if (self._health is None or self._health[0] is not ignore
-                or self._health[1] is not cells):
-            keep = quarter = count = None
-            if ignore is not None:
-                keep = (~ignore).astype(np.uint8)
-                kept = np.flatnonzero(keep)
-                quarter, count = kept[::4], max(len(kept), 1)
-            textured = (None if cells is None else
-                        cells > max(2.0, 0.1 * float(np.median(cells))))
-            self._health = (ignore, cells, (keep, quarter, count, textured))
-        return self._health[2]
-
-    def _cell_terms(self) -> tuple[np.ndarray, np.ndarray]:
-        """:func:`~inspector.core.image.cell_terms` of the grey reference, made once."""
-        if self._cells is None or self._cells[0] is not self.reference_:
-            self._cells = (self.reference_, cell_terms(self.reference_))
-        return self._cells[1]
+        """:func:`_health_terms` of the ignore mask and the reference cells, made once per
+        fit."""
+        return self._health.get(_health_terms, self.ignore_, self.ref_cells_)
 
     @staticmethod
     def _detail(prepared: Prepared) -> np.ndarray:
