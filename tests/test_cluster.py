@@ -102,6 +102,14 @@ def _scan(site, name: str, *extra: str) -> Path:
     return out
 
 
+def _persistence_on(cfg: Path, name: str) -> Path:
+    """A copy of the site's config, named ``name``, with the gate camera's persistence on."""
+    busy = cfg.with_name(name)
+    busy.write_text(cfg.read_text(encoding="utf-8") + '\n[cameras.gate]\npersistence = "on"\n',
+                    encoding="utf-8")
+    return busy
+
+
 def _ledger(out: Path) -> list[tuple]:
     import sqlite3
 
@@ -137,9 +145,7 @@ def test_persistence_on_the_cluster_goes_across_partitions_as_in_one_pass(site, 
     # frames (its window of 4 spans two or three partitions), written in shuffled name
     # order so that only capture times give the stream. The reference is the local scan.
     root, cfg = site
-    busy = cfg.with_name("busy.toml")
-    busy.write_text(cfg.read_text(encoding="utf-8") + '\n[cameras.gate]\npersistence = "on"\n',
-                    encoding="utf-8")
+    busy = _persistence_on(cfg, "busy.toml")
     rng = np.random.default_rng(5)
     frames = noisy_copies(_scene(data.chelsea()), 12, rng)
     frames[4:, 30:60, 40:80] = (20, 200, 40)
@@ -171,9 +177,7 @@ def test_cell_looks_are_measured_only_for_a_camera_whose_persistence_is_on(site)
     # The looks feed persistence alone: a scan (and a cluster worker, persist=False, whose
     # driver applies persistence) measures them only when the camera's persistence is on.
     root, cfg = site
-    busy = cfg.with_name("looks.toml")
-    busy.write_text(cfg.read_text(encoding="utf-8") + '\n[cameras.gate]\npersistence = "on"\n',
-                    encoding="utf-8")
+    busy = _persistence_on(cfg, "looks.toml")
     baselines = BaselineCache(Store(root / "store"))
     assert baselines.get("gate").persistence.change > 0
     assert baselines.get("gate").persistence.normal.shape[0] == 2  # saved and loaded
