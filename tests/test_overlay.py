@@ -71,6 +71,11 @@ def test_a_frame_judged_with_amplified_noise_says_so_in_its_caption_and_row(tmp_
     assert "judged with amplified noise: gain 2.120 over the learnt 1.410" in result_caption(r)
     assert r.noise_amplified == pytest.approx(2.12 / 1.41)  # the column: gain over learnt
     assert "amplified" not in result_caption(replace(r, amplified=None))
+    # a flagged frame with a camera condition (persistence flags underexposed frames of a
+    # busy camera) names it: never flagged in silence about what health.csv says of it
+    dark = replace(r, health=[("underexposed", 15.0, 20.0)])
+    assert "camera condition: underexposed (in health.csv)" in result_caption(dark)
+    assert "camera condition" not in result_caption(r)
     barely = replace(r, frame="dock/h.jpg", amplified=(1.411, 1.41), flagged=False)
     with ResultWriter(tmp_path / "out", all_scores=tmp_path / "all.csv") as w:
         w.write([r, replace(r, frame="dock/g.jpg", amplified=None, flagged=False)])

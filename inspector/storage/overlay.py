@@ -23,7 +23,7 @@ _LINE = 20
 
 def overlay_caption(camera: str, time: str, score: float, threshold: float,
                     stayed: float | None = None, amplified: tuple[float, float] | None = None,
-                    clipped: float = 0.0) -> str:
+                    clipped: float = 0.0, conditions: tuple[str, ...] = ()) -> str:
     """The caption of every overlay, saved or drawn on the spot (ASCII: drawn by OpenCV),
     one line per fact.
 
@@ -32,7 +32,9 @@ def overlay_caption(camera: str, time: str, score: float, threshold: float,
     normal frame, judged with its noise amplified
     (:meth:`inspector.core.conditions.Conditions.noise_scale`). ``clipped``: share of the
     view clipped white, where the model saw a prediction of the light (drawn by
-    :func:`render_overlay`)."""
+    :func:`render_overlay`). ``conditions``: the camera conditions reported for the frame
+    (health.csv) when it is flagged all the same (a busy camera's persistence flags an
+    underexposed frame: :func:`inspector.core.persistence.held_back`)."""
     sign = ">" if score > threshold else "<="
     text = f"{camera}  {time}  score {score:.2f} {sign} threshold {threshold:.2f}"
     if stayed is not None:
@@ -41,6 +43,8 @@ def overlay_caption(camera: str, time: str, score: float, threshold: float,
                                else f"{s / 3600:.1f} h")
     if amplified is not None:
         text += "\n" + amplified_text(amplified)
+    if conditions:
+        text += f"\ncamera condition: {', '.join(conditions)} (in health.csv)"
     if clipped > 0:
         text += (f"\nclipped white ({_CLIPPED_NAME}): {_percent(clipped)} of the view, "
                  f"its light predicted")

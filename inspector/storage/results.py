@@ -172,7 +172,8 @@ def result_caption(r: FrameResult, share: float | None = None) -> str:
     :func:`clipped_share` of ``r`` when the caller has it already."""
     return overlay_caption(r.camera, iso_time(r.time), r.score, r.threshold,
                            (r.time - r.since).total_seconds() if r.since else None,
-                           r.amplified, clipped_share(r) if share is None else share)
+                           r.amplified, clipped_share(r) if share is None else share,
+                           tuple(c for c, _, _ in r.health))
 
 
 def clipped_share(r: FrameResult) -> float:
