@@ -17,10 +17,11 @@ flagged because every one of those frames was held back with a camera condition 
 health.csv, never flagged as an anomaly: with persistence off any condition, an underexposed
 evening say; with it on, any but those a step is measured in, see
 :func:`inspector.core.persistence.held_back`) are counted apart, as "held"; an object in
-frames reported but not held back (underexposed, persistence on) and not flagged is missed. With ``--detail``, the traffic-only frames flagged with persistence on are
-also sorted by kind, per scene: "start" (the first full window of a burst: no frame before
-it to measure a change from), "after" (within a window of an object taken away: the
-window still holds it) and "other", with their positions in the camera's frames to scan.
+frames reported but not held back (underexposed, persistence on) and not flagged is missed.
+With ``--detail``, the traffic-only frames flagged with persistence on are also sorted by
+kind, per scene: "start" (the first full window of a burst: no frame before it to measure a
+change from), "after" (within a window of an object taken away: the window still holds it)
+and "other", with their positions in the camera's frames to scan.
 
     python bench/busy.py [--normal 300] [--new 240] [--seeds 1,2,3] [--size 960x540]
                          [--camera gate] [--detail]
@@ -42,8 +43,8 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from inspector.config import PersistenceSettings, load_config  # noqa: E402
-from inspector.core.persistence import held_back  # noqa: E402
 from inspector.core.calibration import rate_interval  # noqa: E402
+from inspector.core.persistence import held_back  # noqa: E402
 from inspector.demo.scenario import BUSY_CAMERAS, generate, load_truth  # noqa: E402
 from inspector.demo.traffic import busy_results, left_objects  # noqa: E402
 from inspector.jobs.learn import learn_cameras  # noqa: E402

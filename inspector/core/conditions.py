@@ -721,7 +721,7 @@ class Conditions(Estimator):
         return idx[reach], more
 
     def _near_clipped(self, img: np.ndarray, shift: tuple[float, float] | None,
-                      was: np.ndarray | None, brightest: float | None = None
+                      was: np.ndarray | None, brightest: float
                       ) -> tuple[np.ndarray | None, np.ndarray | None]:
         """Pixels of one frame (H, W, 3) uint8 that only bound their light, as aligned.
 
@@ -730,13 +730,13 @@ class Conditions(Estimator):
         frame a copy was made from) added; ``channels`` (H, W, 3) uint8 the same channel
         by channel (``was`` in every channel: which of its channels clipped is not known).
         (None, None) when there are none or lighting is off. ``shift``: the (dx, dy) the
-        frame is moved back by, if any; ``brightest``: the frame's brightest level when
-        known (:func:`_extremes`).
+        frame is moved back by, if any; ``brightest``: the frame's brightest level
+        (:func:`_extremes`).
         """
         if self.lighting == "off":
             return None, None
         near = channels = None
-        if (_extremes(img)[1] if brightest is None else brightest) >= 250:  # any clipped
+        if brightest >= 250:  # any clipped pixel
             channels = cv2.dilate(_moved_back(cv2.compare(img, _UNCLIPPED, cv2.CMP_GT), shift),
                                   _NEAR)
             near = _any_channel(channels)
@@ -747,7 +747,7 @@ class Conditions(Estimator):
         return near, channels
 
     def _near_black(self, img: np.ndarray, shift: tuple[float, float] | None,
-                    darkest: float | None = None) -> np.ndarray | None:
+                    darkest: float) -> np.ndarray | None:
         """Channels of one frame (H, W, 3) uint8 clipped black, as aligned: (H, W, 3) uint8,
         255 where at least 5 of the 9 pixels around (itself included) are at most
         :data:`BLACK_LEVEL` in that channel; None when there are none or lighting is off.
@@ -760,12 +760,12 @@ class Conditions(Estimator):
         4.5 times the threshold). Most of the neighbourhood, not any pixel: the pixels of a
         crushed shadow that its noise lifts above the level are no more to be trusted than
         the rest, and a lit pixel alone among black ones is kept as seen. Mirror of the
-        white clip (:meth:`_near_clipped`). ``darkest``: the frame's darkest level when
-        known (:func:`_extremes`).
+        white clip (:meth:`_near_clipped`). ``darkest``: the frame's darkest level
+        (:func:`_extremes`).
         """
         if self.lighting == "off":
             return None
-        if (_extremes(img)[0] if darkest is None else darkest) > BLACK_LEVEL:  # none black
+        if darkest > BLACK_LEVEL:  # no channel clipped black
             return None
         dark = _moved_back(cv2.compare(img, _UNBLACK, cv2.CMP_LT), shift)
         dark = cv2.compare(cv2.blur(dark, (3, 3)), 127, cv2.CMP_GT)

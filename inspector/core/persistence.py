@@ -293,9 +293,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         the window differs from the frames before it (their median look, per cell; a held
         cell keeps the look it had before it was held) by more than ``change`` (see
         :func:`_changed`: all of them but one, at the cell or one of the ``around`` cells
-        around it). Elsewhere the map is at most 0. Something left changes the picture where it is; a region
-        whose anomaly steps up while the picture there stays as it was is the model's
-        reading of a frame changing (the light fitted over the whole view moved by
+        around it). Elsewhere the map is at most 0. Something left changes the picture where
+        it is; a region whose anomaly steps up while the picture there stays as it was is
+        the model's reading of a frame changing (the light fitted over the whole view moved by
         passers-by elsewhere), not something at that place.
     change : float >= 0
         See ``looks``; 0: every cell counts.
@@ -375,15 +375,15 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             late_l = (late_l + [look_of[i]])[-keep:]
             level, raw, _ = _step(late_buf, window, around=around, scaled=scaled,
                                   spreads=spreads, min_past=min_past)
+            stepped[i] = past > 0 and len(late_buf) >= window + min_past
             seen = _changed(late_l, window, None, min_past, around) if gate else None
             if seen is not None:
                 raw = _gated(raw, seen[0], change)
-            if not (past > 0 and len(late_buf) >= window + min_past):
+            if gate and not stepped[i]:
                 raw = _usual(raw, late_l[-window:], normal, change, around)
             out[i], steady[i] = raw, level
             if threshold is not None:
                 out[i] = opened(raw, footprint)
-            stepped[i] = past > 0 and len(late_buf) >= window + min_past
             filled[i] = (len(late_t) >= window
                          and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
             if pos or buf_t[0] - t <= max_gap:
@@ -406,17 +406,17 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         lbuf.append(look_of[i])
         del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
         level, raw, scale = _step(buf, window, held, around, scaled, spreads, min_past)
+        stepped[i] = past > 0 and len(buf) >= window + min_past
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
         steady[i] = level
         out[i] = raw if seen is None else _gated(raw, seen[0], change)
-        if gate and not (past > 0 and len(buf) >= window + min_past):
+        if gate and not stepped[i]:
             out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
         if threshold is not None:  # (else opened below, all frames at once)
             out[i] = opened(out[i], footprint)
             if past and window < len(buf) < window + min_past:
                 out[i] = _since_start(buf, lbuf, window, out[i], level, scale, threshold,
                                       around, footprint, change if gate else 0.0)
-        stepped[i] = past > 0 and len(buf) >= window + min_past
         filled[i] = len(buf) >= window
         if threshold is not None:
             limit = _limit(threshold, start_threshold, stepped[i])

@@ -130,7 +130,8 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
                                  "scored frames is inside the scanned folder")
     for b in baselines:
         got: dict[str, float] = {}
-        for batch in iter_batches(files, 32, work=lambda images, b=b: b.score(images, looks=False).scores,
+        for batch in iter_batches(files, 32,
+                                  work=lambda images, b=b: b.score(images, looks=False).scores,
                                   **read_args(b, config)):
             unreadable.update(str(f.path) for f, _ in batch.errors)
             if batch.frames:

@@ -694,12 +694,12 @@ def _masked_note(masking: dict) -> str:
 
 
 def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraConfig,
-                 notes: list[str], cells: dict | None = None,
+                 notes: list[str], looks_by_frame: dict | None = None,
                  warnings: list[str] | None = None) -> Persistence | None:
     """Calibrate persistence on the held-out maps (cross-fitted, as the single-frame
     threshold) in capture-time order and say whether the camera is busy (a line in
-    ``notes``); None when the normal frames have no run long enough. ``cells``: the frames'
-    cell looks by position (:attr:`PreparedSource.cell_looks`), used when every
+    ``notes``); None when the normal frames have no run long enough. ``looks_by_frame``:
+    the frames' cell looks by position (:attr:`PreparedSource.cell_looks`), used when every
     calibrating frame has one of the maps' shape. ``warnings`` gets a line for each threshold
     of a camera with persistence on that rests on one held-out window."""
     maps = np.empty(held.maps.shape, np.float32)
@@ -724,14 +724,15 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
     seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
     ko = order[kept[order]]
     scanned = (kept_maps[ko], seconds[kept[order]], held_blocks[ko])
-    mine = [None if cells is None else cells.get(int(i)) for i in held.index[ko]]
-    shown = (np.stack(mine) if mine and all(v is not None and v.shape == held.maps.shape[1:]
-                                            for v in mine) else None)
+    mine = [None if looks_by_frame is None else looks_by_frame.get(int(i))
+            for i in held.index[ko]]
+    scanned_looks = (np.stack(mine) if mine and all(
+        v is not None and v.shape == held.maps.shape[1:] for v in mine) else None)
     try:
         p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
                                   cfg.persistence.window, scanned,
                                   footprint=max(1, cfg.model.patch // cfg.model.stride),
-                                  looks=shown)
+                                  looks=scanned_looks)
     except ValueError as exc:
         notes.append(f"persistence not calibrated: {exc}")
         return None
