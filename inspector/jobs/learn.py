@@ -43,6 +43,7 @@ from inspector.core.models import model_class
 from inspector.core.persistence import (
     LARGE,
     MAX_SPAN,
+    STEP_CONDITIONS,
     Persistence,
     calibrate_persistence,
     cell_looks,
@@ -754,6 +755,8 @@ def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraCon
                     + ("; the first frames of a run only where they look unlike the normal "
                        "frames (further from their median look than any window of them)"
                        if p.normal is not None and p.start_threshold is not None else "")
+                    + f"; frames reported {' or '.join(sorted(STEP_CONDITIONS))} are still "
+                      f"judged, against the frames just before them (and stay in health.csv)"
                     if on else ": single-frame flags"))
     if on and warnings is not None:
         warnings += [f"persistence threshold for {which} {value:.3g} rests on one held-out "
