@@ -373,8 +373,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 late_buf, late_t, late_l = buf[:pos], buf_t[:pos], lbuf[:pos]
             late_buf, late_t = (late_buf + [frames[i]])[-keep:], (late_t + [t])[-keep:]
             late_l = (late_l + [look_of[i]])[-keep:]
-            level, raw, _ = _step(late_buf, window, around=around, scaled=scaled,
-                                  spreads=spreads, min_past=min_past)
+            level, raw, _, _ = _step(late_buf, window, around=around, scaled=scaled,
+                                     spreads=spreads, min_past=min_past)
             stepped[i] = past > 0 and len(late_buf) >= window + min_past
             seen = _changed(late_l, window, None, min_past, around) if gate else None
             if seen is not None:
@@ -405,7 +405,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf_t.append(t)
         lbuf.append(look_of[i])
         del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
-        level, raw, scale = _step(buf, window, held, around, scaled, spreads, min_past)
+        level, raw, scale, win_scaled = _step(buf, window, held, around, scaled, spreads, min_past)
         stepped[i] = past > 0 and len(buf) >= window + min_past
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
         steady[i] = level
@@ -429,9 +429,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 # a held cell is flagged only where this frame shows what it holds; the
                 # hold goes on by ``region`` (a passer-by in front of the thing for a frame
                 # does not take it into its own reference)
-                win = np.asarray(buf[-window:], np.float32) / np.float32(scale)
                 alt = np.where(np.isnan(held), raw,
-                               steady_level(win, around, True) - (level - raw))
+                               steady_level(win_scaled, around, True) - (level - raw))
                 out[i] = opened(alt if seen is None else _gated(alt, seen[0], change),
                                 footprint)
             flagged_cells = out[i] > limit
@@ -715,24 +714,27 @@ def flat_filter(maps: np.ndarray, size: int, op, after: int | None = None) -> np
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
           around: int = 1, scaled: bool = False, spreads: dict | None = None,
-          min_past: int = 1) -> tuple[np.ndarray, np.ndarray, float]:
+          min_past: int = 1) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
-    reference from ``held`` (NaN where not held), shapes (h, w), float32; and the scale the
+    reference from ``held`` (NaN where not held), shapes (h, w), float32; the scale the
     frames were divided by: with ``scaled``, the median of the window frames' robust spreads
-    floored at 1 (:func:`robust_spread`), else 1. ``spreads``: the robust spreads of frames
-    met before, by frame (see :func:`_spreads`); fewer than ``min_past`` frames before the
-    window: no reference."""
+    floored at 1 (:func:`robust_spread`), else 1; and the window's frames divided by it
+    (what the steady level is taken of), shape (m, h, w), float32, m = min(window,
+    len(frames)). ``spreads``: the
+    robust spreads of frames met before, by frame (see :func:`_spreads`); fewer than
+    ``min_past`` frames before the window: no reference."""
     win = np.asarray(frames[-window:], np.float32)
     scale = (max(float(np.median(_spreads(frames[-window:], win, spreads))), 1.0) if scaled
              else 1.0)
-    level = steady_level(win / np.float32(scale), around)
+    win_scaled = win / np.float32(scale)
+    level = steady_level(win_scaled, around)
     before = frames[:-window]
     reference = (_reference(before, scale) if before and len(before) >= min_past
                  else np.zeros_like(level))
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
-    return level, (level - reference).astype(np.float32), scale
+    return level, (level - reference).astype(np.float32), scale, win_scaled
 
 
 def _reference(before: list[np.ndarray], scale: float) -> np.ndarray:
