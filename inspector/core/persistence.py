@@ -415,8 +415,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         if threshold is not None:  # (else opened below, all frames at once)
             out[i] = opened(out[i], footprint)
             if past and window < len(buf) < window + min_past:
-                out[i] = _since_start(buf, lbuf, window, out[i], level, scale, threshold,
-                                      around, footprint, change if gate else 0.0)
+                out[i] = _since_start(buf, lbuf, window, opened_map=out[i], steady=level,
+                                      scale=scale, threshold=threshold, around=around,
+                                      footprint=footprint, change=change if gate else 0.0)
         filled[i] = len(buf) >= window
         if threshold is not None:
             limit = _limit(threshold, start_threshold, stepped[i])
@@ -467,22 +468,23 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
     return threshold if stepped or start_threshold is None else start_threshold
 
 
-def _since_start(frames: list, looks: list, window: int, level: np.ndarray,
+def _since_start(frames: list, looks: list, window: int, opened_map: np.ndarray,
                  steady: np.ndarray, scale: float, threshold: float, around: int,
                  footprint: int, change: float) -> np.ndarray:
-    """The opened steady ``level`` of a window with too few frames before it for a
-    reference (held to the start threshold), kept only where it also stepped up from those
-    frames by more than ``threshold`` (the step of the window's ``steady`` level, as
-    :func:`_step` found it with the frames divided by ``scale``, from those frames'
-    :func:`past_level`, gated by the looks when ``change`` > 0, opened); elsewhere at most 0.
-    What stays since the run began was judged by the run's first window; a later one flags
-    only what appeared since."""
+    """``opened_map``, the persistence map of a window with too few frames before it for a
+    reference (as made so far from its steady level: gated, opened; held to the start
+    threshold), kept only where the window also stepped up from those frames by more
+    than ``threshold`` (the step of the window's ``steady`` level, as :func:`_step` found it
+    with the frames divided by ``scale``, from those frames' :func:`past_level`, gated by
+    the looks when ``change`` > 0, opened); elsewhere at most 0. What stays since the run
+    began was judged by the run's first window; a later one flags only what appeared
+    since."""
     step = (steady - _reference(frames[:-window], scale)).astype(np.float32)
     seen = _changed(looks, window, None, 1, around) if change > 0 else None
     if seen is not None:
         step = _gated(step, seen[0], change)
-    return np.where(opened(step, footprint) > threshold, level,
-                    np.minimum(level, 0.0)).astype(np.float32)
+    return np.where(opened(step, footprint) > threshold, opened_map,
+                    np.minimum(opened_map, 0.0)).astype(np.float32)
 
 
 def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: int,
