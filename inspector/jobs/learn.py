@@ -540,7 +540,7 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
                      f"by that gain: less sharply, and outside the guaranteed rate")
     warnings = [threshold.warning] if threshold.warning else []
     warnings += masking.pop("warnings")
-    regimes = None
+    regimes, labels = None, None
     if cs.regimes and cs.max_regimes > 1 and len(prepared.appearance) >= len(held.index):
         feats = np.array([prepared.appearance[int(i)] for i in held.index])
         prototypes, fscale, _ = find_regimes(feats, MIN_REGIME_FRAMES, cs.max_regimes)
@@ -556,8 +556,8 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
             notes.append(f"{len(prototypes)} regimes, each calibrated on its own: {desc}")
             warnings += [f"regime {r + 1}: {c.threshold.warning}"
                          for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
-    persistence = _persistence(held, held_blocks, regimes, prepared.appearance, times, alpha,
-                               cfg, notes, prepared.cell_looks, warnings)
+    persistence = _persistence(held, held_blocks, labels, times, alpha, cfg, notes,
+                               prepared.cell_looks, warnings)
     return Calibrated(used, good, calibration, regimes, persistence, notes, warnings)
 
 
@@ -694,19 +694,19 @@ def _masked_note(masking: dict) -> str:
 # --- persistence (busy cameras; see inspector.core.persistence) ---------------------------
 
 
-def _persistence(held, held_blocks, regimes, looks, times, alpha, cfg: CameraConfig,
-                 notes: list[str], looks_by_frame: dict | None = None,
+def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
+                 cfg: CameraConfig, notes: list[str], looks_by_frame: dict | None = None,
                  warnings: list[str] | None = None) -> Persistence | None:
     """Calibrate persistence on the held-out maps (cross-fitted, as the single-frame
     threshold) in capture-time order and say whether the camera is busy (a line in
-    ``notes``); None when the normal frames have no run long enough. ``looks_by_frame``:
-    the frames' cell looks by position (:attr:`PreparedSource.cell_looks`), used when every
-    calibrating frame has one of the maps' shape. ``warnings`` gets a line for each threshold
-    of a camera with persistence on that rests on one held-out window."""
+    ``notes``); None when the normal frames have no run long enough. ``labels``: the
+    regime of each held-out map, shape (n,) int, as :func:`_calibrated` assigned them (None:
+    one regime). ``looks_by_frame``: the frames' cell looks by position
+    (:attr:`PreparedSource.cell_looks`), used when every calibrating frame has one of the
+    maps' shape. ``warnings`` gets a line for each threshold of a camera with persistence
+    on that rests on one held-out window."""
     maps = np.empty(held.maps.shape, np.float32)
-    groups = (np.zeros(len(held.index), int) if regimes is None else  # as scored: by regime
-              assign(np.array([looks[int(i)] for i in held.index]), regimes.prototypes,
-                     regimes.feature_scale))
+    groups = np.zeros(len(held.index), int) if labels is None else labels  # as scored
     # Thresholds from the blocks the single-frame calibration keeps, standardised among
     # themselves as scan maps are; how busy the camera is from all held-out frames (the
     # model scores only the blocks calibration keeps, unless regimes may need others).
