@@ -542,12 +542,17 @@ class Moments:
         c0, c1 = max(0, -b), uw - max(0, b)
         return (slice(r0, r1), slice(c0, c1)), (slice(r0 + a, r1 + a), slice(c0 + b, c1 + b))
 
-    def add(self, block: int, X: np.ndarray) -> None:
+    def add(self, block: int, X: np.ndarray, scale: float | None = None) -> None:
         """Add samples ``X`` to ``block``: features (n, L, d), or with ``tiles`` block
         entries (rows, columns, n, e) of the block grid (:func:`block_features` order).
+        ``scale``: the samples are ``X * float32(scale)`` (float32, as ``X *= scale`` makes
+        them), multiplied here a chunk at a time (``X`` is not changed; a pass over the
+        whole batch saved).
 
         The products are formed a few rows of blocks (:data:`CHUNK` locations' worth) at a
-        time, so the temporaries stay small whatever L and n are.
+        time, in buffers reused from chunk to chunk, so the temporaries stay small whatever
+        L and n are. Each block's sums over the samples are taken chunk by chunk as well
+        (float64, sample after sample: the numbers of ``sum(axis=samples, dtype=float64)``).
         """
         U = X.transpose(1, 0, 2)[:, None] if self.r == 1 and X.ndim == 3 else X
         if U.shape[:2] != self.units or U.shape[3] != self.e:
@@ -555,23 +560,40 @@ class Moments:
         n = U.shape[2]
         if not n:
             return
-        if self.shift is None:
+        factor = None if scale is None else np.float32(scale)
+        if self.shift is None:  # (the first batch: the shift needs the samples as scaled)
+            if factor is not None:
+                U, factor = U * factor, None
             self.shift = U.mean(axis=2, dtype=np.float64).astype(np.float32)
         self.count[block] += n
-        self.sum[block] += U.sum(axis=2, dtype=np.float64) - n * self.shift
-        step = max(1, CHUNK * self.r ** 4 // self.units[1])
-        for start in range(0, self.units[0], step):
+        uh, uw = self.units
+        step = max(1, CHUNK * self.r ** 4 // uw)
+        sums = np.empty(self.units + (self.e,))
+        buf = np.empty((min(step + self.r - 1, uh), uw, n, self.e), np.float32)
+        out = np.empty((step, uw, self.e, self.e), np.float32)
+        for start in range(0, uh, step):
             rows = slice(start, start + step + self.r - 1)  # with the partners' rows
-            part = U[rows] - self.shift[rows, :, None, :]
+            part = buf[:len(range(*rows.indices(uh)))]
+            here = slice(start, min(start + step, uh))  # the rows whose sums are taken
+            if factor is None:
+                np.einsum("ijnk->ijk", U[here], dtype=np.float64, out=sums[here])
+                np.subtract(U[rows], self.shift[rows, :, None, :], out=part)
+            else:
+                np.multiply(U[rows], factor, out=part)
+                np.einsum("ijnk->ijk", part[:here.stop - start], dtype=np.float64,
+                          out=sums[here])
+                part -= self.shift[rows, :, None, :]
             for o in range(len(self.offsets)):
                 (ri, ci), (rj, cj) = self._pairs(o, step, len(part))
                 if ri.stop <= ri.start:
                     continue
-                S = np.matmul(part[ri, ci].swapaxes(-1, -2), part[rj, cj])
+                S = np.matmul(part[ri, ci].swapaxes(-1, -2), part[rj, cj],
+                              out=out[:ri.stop - ri.start, :ci.stop - ci.start])
                 ri = slice(ri.start + start, ri.stop + start)
                 if self.scatter is not None:
                     self.scatter[block, o, ri, ci] += S
                 self.total_scatter[o, ri, ci] += S
+        self.sum[block] += sums - n * self.shift
 
     def merge(self, other: "Moments") -> "Moments":
         """Add the samples counted in ``other`` (same blocks, L, d and tiles), e.g.
@@ -950,9 +972,9 @@ class PatchPPCA(DensityModel):
                 if ready:  # the block entries gathered once: scored, then learnt from
                     entries = self._entries(part)
                     held.append((idx[sel], self.score_maps(part, entries)))
-                    moments.add(int(b), self._samples(part, entries))
+                    self._add(moments, int(b), part, entries)
                 else:
-                    moments.add(int(b), self._samples(part))
+                    self._add(moments, int(b), part)
         self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
                             if self._wants_sums() else None)
         return moments, [held]
@@ -985,6 +1007,18 @@ class PatchPPCA(DensityModel):
         X = self._entries(images) if entries is None else entries
         X *= np.float32(1 / 255)
         return X
+
+    def _add(self, moments: Moments, block: int, images: np.ndarray,
+             entries: np.ndarray | None = None) -> None:
+        """Add frames (n, H, W, 3) uint8 to ``block`` of ``moments`` (of
+        :meth:`_new_moments`) as :meth:`_samples` makes them, the block entries scaled by
+        :meth:`Moments.add` on the way (``entries``: :meth:`_entries` of ``images`` when
+        already gathered; not changed)."""
+        if block_order(self.patch, self.stride, self.colour) is None:
+            moments.add(block, self._samples(images))
+        else:
+            moments.add(block, self._entries(images) if entries is None else entries,
+                        scale=1 / 255)
 
     def _fit_moments(self, moments: Moments, latent: int = 0, **subset
                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -1217,7 +1251,7 @@ def _block_moments(model: PatchPPCA, source: FrameSource, indices: np.ndarray) -
     moments = model._new_moments(len(labels), block_scatter=True)
     for idx, images in source.batches(indices, model.batch_size):
         for b in np.unique(blocks[idx]):
-            moments.add(block_of[b], model._samples(images[blocks[idx] == b]))
+            model._add(moments, block_of[b], images[blocks[idx] == b])
     return moments
 
 
