@@ -31,7 +31,7 @@ CYAN = (255, 255, 0)  # BGR
 def _result(image: np.ndarray, **kw) -> FrameResult:
     return FrameResult(frame="dock/f.jpg", camera="dock",
                        time=datetime(2026, 12, 5, 3, 0, tzinfo=timezone.utc), score=3.0,
-                       threshold=2.0, p_value=0.01, model="v1", flagged=True, image=image,
+                       threshold=2.0, p_value=0.01, version="v1", flagged=True, image=image,
                        amap=np.zeros((image.shape[0] // 4, image.shape[1] // 4), np.float32),
                        **kw)
 

@@ -206,7 +206,7 @@ class Recorder:
         from ``files``, its clipped pixels prepared again."""
         by_rel = {f.rel: f for f in files}
         for results, skipped, seen in self.calls:
-            mine = [r for r in results if baseline is not None and r.model == baseline.version]
+            mine = [r for r in results if baseline is not None and r.version == baseline.version]
             if streams is not None and mine and streams.on(baseline):
                 looks = (np.stack([r.look for r in mine])
                          if all(r.look is not None for r in mine) else None)

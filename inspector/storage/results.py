@@ -114,6 +114,9 @@ class FrameResult:
     ----------
     frame : str
         Path relative to the scanned folder, forward slashes.
+    version : str
+        The baseline version that scored the frame (column ``baseline``, the ledger's
+        ``version``).
     image : ndarray, shape (H, W, 3), uint8
         The frame at working resolution (for the overlay).
     amap : ndarray, shape (h, w), float32
@@ -140,7 +143,7 @@ class FrameResult:
     score: float
     threshold: float
     p_value: float
-    model: str
+    version: str
     flagged: bool
     image: np.ndarray
     amap: np.ndarray
@@ -362,7 +365,7 @@ class ResultWriter:
                 entries = [dict(self._file(r.frame, seen, stamp), camera=r.camera,
                                 status="scored", score=r.score, threshold=r.threshold,
                                 p_value=r.p_value,
-                                flagged=int(r.flagged), version=r.model, capture_time=t,
+                                flagged=int(r.flagged), version=r.version, capture_time=t,
                                 overlay=overlay, written=0,
                                 health=json.dumps(r.health) if r.health else None,
                                 since=since_text(r), noise_amplified=r.noise_amplified)
@@ -374,7 +377,7 @@ class ResultWriter:
                 self.ledger.record(entries)  # committed: from here on the frames are done
             for r, t, overlay in zip(results, times, overlays):
                 self._scored_rows(format_row(r.frame, r.camera, t, r.score, r.threshold,
-                                             r.p_value, r.model, overlay, r.noise_amplified),
+                                             r.p_value, r.version, overlay, r.noise_amplified),
                                   r.flagged)
                 for row in health_rows(r.frame, r.camera, t, r.health):
                     self.health_rows.row(row)
