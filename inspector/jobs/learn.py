@@ -237,7 +237,8 @@ class PreparedSource:
     appearances are those of the frames as captured.
     Their extra noise is read from one bank of normal draws
     (:func:`inspector.core.image.noise_bank`, the same for every copy of the source) at a
-    random offset per frame. ``looks``: record each frame's appearance (for the regimes).
+    random offset per frame. ``record_appearance``: record each frame's global appearance
+    (:func:`inspector.core.regimes.appearance`, for the regimes).
     ``cells``: the model's map shape (h, w), to record each frame's
     :func:`~inspector.core.persistence.cell_looks` (for persistence; None: not recorded).
     ``compression``: the exports' JPEG quantisation tables and chroma subsampling when the
@@ -248,13 +249,13 @@ class PreparedSource:
     """
 
     def __init__(self, source, conditions: Conditions, exposure: float = 0.0,
-                 looks: bool = True, compression: tuple | None = None,
+                 record_appearance: bool = True, compression: tuple | None = None,
                  cells: tuple[int, int] | None = None):
         self.source = source
         self.cells = cells
         self.conditions = conditions
         self.exposure = exposure
-        self.looks = looks
+        self.record_appearance = record_appearance
         self.compression = compression
         self.blocks = source.blocks
         self.size = source.size
@@ -271,8 +272,8 @@ class PreparedSource:
 
     def spawn(self) -> "PreparedSource":
         """The same frames with empty records (to read some of them elsewhere)."""
-        return PreparedSource(self.source.spawn(), self.conditions, self.exposure, self.looks,
-                              self.compression, self.cells)
+        return PreparedSource(self.source.spawn(), self.conditions, self.exposure,
+                              self.record_appearance, self.compression, self.cells)
 
     def collected(self) -> dict:
         return {"source": self.source.collected(), "measures": dict(self.measures),
@@ -349,7 +350,7 @@ class PreparedSource:
                 for j, i in enumerate(idx[part]):
                     self.measures[int(i)] = {k: float(v[j]) for k, v in m.items()}
             previous = rec.grey[-1]
-        if self.looks and not all(int(i) in self.appearance for i in idx):
+        if self.record_appearance and not all(int(i) in self.appearance for i in idx):
             for i, a in zip(idx, appearance(images)):
                 self.appearance[int(i)] = a
         return idx, prepared
@@ -414,7 +415,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
         prepared = PreparedSource(source, conditions,
                                   cfg.conditions.exposure_range
                                   if cfg.conditions.lighting != "off" else 0.0,
-                                  looks=cfg.calibration.regimes,
+                                  record_appearance=cfg.calibration.regimes,
                                   compression=_compression(files, source_size, size),
                                   cells=map_shape(size[1], size[0], cfg.model.patch,
                                                   cfg.model.stride))
