@@ -25,7 +25,7 @@ import numpy as np
 
 import inspector
 from inspector.clock import now
-from inspector.config import CameraConfig, Config, settings_dict
+from inspector.config import CalibrationSettings, CameraConfig, Config, settings_dict
 from inspector.core.baseline import Baseline
 from inspector.core.calibration import (
     Calibration,
@@ -541,25 +541,38 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
                      f"by that gain: less sharply, and outside the guaranteed rate")
     warnings = [threshold.warning] if threshold.warning else []
     warnings += masking.pop("warnings")
-    regimes, labels = None, None
-    if cs.regimes and cs.max_regimes > 1 and len(prepared.appearance) >= len(held.index):
-        feats = np.array([prepared.appearance[int(i)] for i in held.index])
-        prototypes, fscale, _ = find_regimes(feats, MIN_REGIME_FRAMES, cs.max_regimes)
-        if len(prototypes) > 1:
-            labels = assign(feats, prototypes, fscale)  # as frames are assigned at scan time
-            regimes = Regimes(prototypes, fscale,
-                              [calibrate(held.maps[labels == r], held_blocks[labels == r],
-                                         alpha, tail) for r in range(len(prototypes))])
-            desc = ", ".join(
-                f"{c.threshold.n} frames (brightness {np.expm1(p[0] * fscale[0]):.0f}, "
-                f"saturation {p[1] * fscale[1]:.2f})"
-                for c, p in zip(regimes.calibrations, prototypes))
-            notes.append(f"{len(prototypes)} regimes, each calibrated on its own: {desc}")
-            warnings += [f"regime {r + 1}: {c.threshold.warning}"
-                         for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
+    regimes, labels = _regimes(held, held_blocks, prepared.appearance, cs, alpha, tail, notes,
+                               warnings)
     persistence = _persistence(held, held_blocks, labels, times, alpha, cfg, notes,
                                prepared.cell_looks, warnings)
     return Calibrated(used, good, calibration, regimes, persistence, notes, warnings)
+
+
+def _regimes(held, held_blocks: np.ndarray, appearances: dict, cs: CalibrationSettings,
+             alpha: float, tail: bool, notes: list[str], warnings: list[str]
+             ) -> tuple[Regimes | None, np.ndarray | None]:
+    """The lighting regimes of the held-out frames, each calibrated on its own (see
+    :mod:`inspector.core.regimes`), and the regime of each held-out map, shape (n,) int;
+    (None, None) for one regime (regimes off in ``cs``; the frames' ``appearances`` by
+    position not all recorded; no clear split). A line in ``notes`` names the regimes;
+    ``warnings`` gets each regime's threshold warning."""
+    if not (cs.regimes and cs.max_regimes > 1 and len(appearances) >= len(held.index)):
+        return None, None
+    feats = np.array([appearances[int(i)] for i in held.index])
+    prototypes, fscale, _ = find_regimes(feats, MIN_REGIME_FRAMES, cs.max_regimes)
+    if len(prototypes) <= 1:
+        return None, None
+    labels = assign(feats, prototypes, fscale)  # as frames are assigned at scan time
+    regimes = Regimes(prototypes, fscale,
+                      [calibrate(held.maps[labels == r], held_blocks[labels == r], alpha, tail)
+                       for r in range(len(prototypes))])
+    desc = ", ".join(f"{c.threshold.n} frames (brightness {np.expm1(p[0] * fscale[0]):.0f}, "
+                     f"saturation {p[1] * fscale[1]:.2f})"
+                     for c, p in zip(regimes.calibrations, prototypes))
+    notes.append(f"{len(prototypes)} regimes, each calibrated on its own: {desc}")
+    warnings += [f"regime {r + 1}: {c.threshold.warning}"
+                 for r, c in enumerate(regimes.calibrations) if c.threshold.warning]
+    return regimes, labels
 
 
 def _compression(files: Sequence[FrameFile], source_size: tuple[int, int],
