@@ -239,6 +239,24 @@ class Streams:
 
 @dataclass
 class ScanSummary:
+    """What a scan did, for its summary (a watch's :class:`~inspector.jobs.watch.WatchReport`
+    adds to it).
+
+    Attributes
+    ----------
+    scored, flagged : int
+        Frames scored, and of those flagged.
+    skipped : int
+        Frames not scored (skipped.csv); a scan counts here the frames waiting for a usable
+        baseline too, a watch counts those apart (``WatchReport.waiting``).
+    health : int
+        Camera health conditions reported (rows of health.csv: a frame may have several).
+    seconds : float
+        Wall-clock time of the scan.
+    notes : Counter
+        Summary lines, each with the number of frames it concerns.
+    """
+
     scored: int = 0
     flagged: int = 0
     skipped: int = 0
