@@ -7,7 +7,8 @@ by review). One batch of frames goes through it in this order:
 1. overlays and map files of the scored frames;
 2. one ledger transaction with every frame's row, marked not yet ``written`` (with a
    ledger; see :mod:`inspector.storage.ledger`);
-3. the CSV rows: flagged.csv, the all-scores file, skipped.csv, health.csv;
+3. the CSV rows: each scored frame's in flagged.csv, the all-scores file and health.csv,
+   then the frames not scored in skipped.csv;
 4. the ledger rows marked ``written``.
 
 A crash between 2 and 4 leaves rows not marked written; :meth:`ResultWriter.reconcile`
