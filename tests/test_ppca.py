@@ -437,7 +437,7 @@ def test_fit_chunk_by_chunk_equals_scikit_learn_and_the_whole_fit():
     model = PatchPPCA(patch=8, stride=4, var_floor=0.0)
     model.grid_, model.map_shape_, model.observed_ = (11, 19), (12, 20), None  # 2 chunks
     moments = model._new_moments(1)
-    moments.add(0, model._samples(imgs))
+    model._add(moments, 0, imgs)  # (the entries scaled by Moments.add)
     mean, W, s2 = model._fit_moments(moments, 3)
     X = patch_features(imgs, 8, 4, colour=True).astype(np.float64)
     for loc in (0, 100, 150, 208):
