@@ -287,7 +287,7 @@ def load_baseline(baselines: BaselineCache, camera: str, damaged: dict[str, str]
     try:
         return baselines.get(camera), ""
     except DamagedBaseline as exc:
-        damaged[camera] = _damage_note(exc)
+        damaged[camera] = exc.note
         return None, str(exc)
     except LookupError as exc:
         return None, str(exc)
@@ -301,12 +301,7 @@ def check_baseline(store: Store, camera: str, damaged: dict[str, str]) -> None:
     if version is not None:
         check = store.verify(camera, version)
         if check.damaged:
-            damaged[camera] = _damage_note(DamagedBaseline(check, store.advice(camera, version)))
-
-
-def _damage_note(exc: DamagedBaseline) -> str:
-    """A damaged baseline as a scan's summary names it: what is wrong and what to do."""
-    return f"{exc}: {exc.advice}"
+            damaged[camera] = DamagedBaseline(check, store.advice(camera, version)).note
 
 
 def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: ResultWriter,

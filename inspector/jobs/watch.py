@@ -272,8 +272,8 @@ class Watcher:
                     if cam in self._failed:
                         self._failed[cam] = version
                     if isinstance(exc, DamagedBaseline):
-                        self._damaged[cam] = f"{exc}: {exc.advice}"
-                if not (recheck and damaged == f"{exc}: {getattr(exc, 'advice', '')}"):
+                        self._damaged[cam] = exc.note
+                if not (recheck and isinstance(exc, DamagedBaseline) and damaged == exc.note):
                     self.log(f"{cam}: {exc}; its frames keep waiting")
                 continue
             self.log(f"{cam}: baseline {version} is now active")
@@ -379,7 +379,7 @@ class Watcher:
             try:
                 baseline = self.baselines.get(camera)
             except LookupError as exc:
-                damage = f"{exc}: {exc.advice}" if isinstance(exc, DamagedBaseline) else ""
+                damage = exc.note if isinstance(exc, DamagedBaseline) else ""
                 skipped += [Skipped(it.file.rel, camera, str(exc), waiting=True)
                             for it in items]
                 with self._lock:

@@ -167,6 +167,11 @@ class DamagedBaseline(LookupError):
     def __reduce__(self):  # travels between processes (cluster workers) whole
         return (DamagedBaseline, (self.check, self.advice))
 
+    @property
+    def note(self) -> str:
+        """What is wrong and what to do, as a scan's summary and a watch's log name it."""
+        return f"{self}: {self.advice}"
+
 
 @dataclass(frozen=True)
 class VersionInfo:
