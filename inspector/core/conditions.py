@@ -74,7 +74,7 @@ from inspector.core.image import (
 )
 from inspector.core.estimator import Estimator
 
-#: Lighting modes of :func:`photometric`.
+#: Lighting modes of :class:`Conditions` (its ``lighting``).
 LIGHTING_MODES = ("global", "local", "off")
 #: Health limits before they are widened by the normal frames (see :meth:`Conditions.fit`).
 DEFAULT_LIMITS = {"dark": 20.0, "bright": 0.5, "covered": 0.5, "focus": 0.35, "frozen": 0.25}
