@@ -35,6 +35,7 @@ from inspector.core.persistence import (
     persistence,
     persistence_on,
     robust_spread,
+    seen_through,
     steady_level,
 )
 from inspector.errors import UsageError
@@ -276,6 +277,55 @@ def test_a_step_counts_only_where_the_picture_changed():
     want = cells - uniform_filter(cells, size=(1, k, k), mode="nearest")
     np.testing.assert_allclose(look, want, atol=1e-5)
     assert np.abs(cell_looks(grey * 1.5 + 0.5, (6, 12)) - look).max() < 1e-5
+
+
+def test_a_thing_crossed_by_passers_by_in_its_first_frames_is_seen_through_them():
+    # A parcel (30, look 0.5) at (2, 3) from frame 8; passers-by in front of it in frames 9
+    # (300, look -0.4) and 11 (3, look 1.2): no 4 consecutive frames show it alone, and by
+    # frame 15 its own frames are the reference. With ``crossed`` the frames that share the
+    # frame judged's look are taken on their own: 8, 10 and 12 flag it at frame 12. At (4,
+    # 6) three different passers-by in five frames: not flagged.
+    n = 20
+    maps = np.zeros((n, 6, 8), np.float32)
+    looks = np.zeros((n, 6, 8), np.float32)
+    maps[8:, 2, 3], looks[8:, 2, 3] = 30.0, 0.5
+    maps[9, 2, 3], looks[9, 2, 3] = 300.0, -0.4
+    maps[11, 2, 3], looks[11, 2, 3] = 3.0, 1.2
+    for i, (v, lk) in zip((13, 15, 17), ((300.0, 0.9), (200.0, -0.6), (250.0, 0.3))):
+        maps[i, 4, 6], looks[i, 4, 6] = v, lk
+    times = np.arange(n) * 2.0
+    kw = dict(threshold=5.0, past=8, start_threshold=60.0, min_past=MIN_PAST, looks=looks,
+              change=0.05, shown=True)
+    plain = persistence(maps, times, 4, 10.0, **kw)
+    crossed = persistence(maps, times, 4, 10.0, crossed=True, **kw)
+    assert not (plain.filled & (plain.scores > 5.0)).any()
+    assert np.flatnonzero(crossed.filled & (crossed.scores > 5.0)).tolist() == list(range(12, n))
+    assert (crossed.maps[:, 4, 6] <= 0.0).all()
+    # seen_through against its docstring's formula cell by cell (numpy.median, numpy.sort)
+    rng = np.random.default_rng(3)
+    frames = rng.normal(0.0, 1.0, (9, 5, 6)).astype(np.float32)
+    frames[4:] += 10.0 + 100.0 * (rng.random((5, 5, 6)) < 0.25)
+    lks = rng.normal(0.0, 0.01, (9, 5, 6)).astype(np.float32)
+    lks[4:] += np.where(rng.random((5, 5, 6)) < 0.7, 0.5, rng.uniform(-1.0, 1.0, (5, 5, 6)))
+    lks[4:, 0, :2] = 0.0  # agreeing, but where they were
+    frames, lks = list(frames), list(lks)
+    got = seen_through(frames, lks, 4, 2.0, None, None, 0.05)
+    assert (got > 0).sum() > 5 and (got == -np.inf).sum() > 5 and (got[0, :2] <= 0).all()
+    for y in range(5):
+        for x in range(6):
+            v = np.array([f[y, x] for f in frames]) / 2.0
+            lk = np.array([f[y, x] for f in lks])
+            ok = np.abs(lk[-5:] - np.median(lk[-5:])) <= 0.05
+            ok &= ok[-1]
+            if ok.sum() < 3:
+                assert got[y, x] == -np.inf
+                continue
+            q = np.sort(v[-5:][ok])
+            step = q[0] - (q[-2] - q[0]) - max(np.sort(v[:-5])[-2], 0.0)
+            moved = min(np.abs(lk[-5:][ok] - np.median(lk[:-5])).min(),
+                        np.sort(np.abs(lk[:-5] - np.median(lk[-5:])))[1])
+            assert got[y, x] == pytest.approx(step if moved > 0.05 else min(step, 0.0),
+                                              abs=1e-5)
 
 
 def test_a_reference_needs_frames_a_passer_by_cannot_move():
@@ -524,11 +574,11 @@ def test_calibrate_tells_busy_from_quiet():
     old = Persistence.from_saved({k: v for k, v in b.to_json().items()
                                   if k not in ("past", "robust", "start_threshold", "around",
                                                "floor", "local", "footprint", "min_past",
-                                               "change")},
+                                               "change", "crossed")},
                                  b.calibration_scores)  # saved before the step
     assert old.past == 0 and not old.robust and old.start_threshold is None and old.around == 1
     assert old.floor == 0.0 and old.local == 0 and old.footprint == 1
-    assert old.min_past == 1 and old.change == 0.0
+    assert old.min_past == 1 and old.change == 0.0 and not old.crossed and b.crossed
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

@@ -55,7 +55,10 @@ frames they have (what stays since the stretch began was judged by its first win
 also counts only where the picture itself changed (``looks``, :func:`cell_looks`): the model
 can read a region anew while its pixels stay as they were (the gain that preparation fits
 over the whole view moves with passers-by elsewhere), and that is not something left there,
-while a lamp's smooth pool hardly changes a look at all. Last, the map is
+while a lamp's smooth pool hardly changes a look at all. A thing that passers-by cross in
+two of its first frames has no window of clear frames before its own frames become the
+reference; the frames that share its look are also taken on their own (``crossed``,
+:func:`seen_through`), and the thresholds are calibrated with them. Last, the map is
 opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
 changes every cell of a patch, so a region narrower than a patch (the edge of a passer-by,
 the rim of a masked area) is not something left, and one such region in the few held-out
@@ -230,7 +233,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 start_threshold: float | None = None, around: int = 1, local: int = 0,
                 footprint: int = 1, made_local: bool = False, min_past: int = 1,
                 looks: np.ndarray | None = None, change: float = 0.0,
-                shown: bool = False, normal: np.ndarray | None = None) -> PersistenceResult:
+                shown: bool = False, normal: np.ndarray | None = None,
+                crossed: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -320,6 +324,13 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         looks as it does in normal frames (a floor line the model reads anew under an
         unusual light, the ground where a passer-by stood in the run's first frame) is not
         something left. Its flags are a subset of those without it.
+    crossed : bool
+        With ``looks`` and ``change`` > 0, a window measured from a reference also counts
+        what the last ``window`` + 1 frames show in at least ``window`` - 1 of them, the
+        frame judged included, where passers-by cross it in the others
+        (:func:`seen_through`): a cell's map is the larger of the two. Its flags are a
+        superset, so the thresholds must be calibrated with it (as
+        :func:`calibrate_persistence` does).
 
     Returns
     -------
@@ -410,6 +421,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
         steady[i] = level
         out[i] = raw if seen is None else _gated(raw, seen[0], change)
+        through = (seen_through(buf, lbuf, window, scale, held, held_look, change, around,
+                                min_past) if crossed and gate and stepped[i] else None)
+        if through is not None:
+            out[i] = np.maximum(out[i], through)
         if gate and not stepped[i]:
             out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
         if threshold is not None:  # (else opened below, all frames at once)
@@ -432,7 +447,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 # does not take it into its own reference)
                 alt = np.where(np.isnan(held), raw,
                                steady_level(win_scaled, around, True) - (level - raw))
-                out[i] = opened(alt if seen is None else _gated(alt, seen[0], change),
+                alt = alt if seen is None else _gated(alt, seen[0], change)
+                out[i] = opened(alt if through is None else np.maximum(alt, through),
                                 footprint)
             flagged_cells = out[i] > limit
             if flagged_cells.any():
@@ -466,6 +482,88 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
     """The threshold a frame's persistence map is held to: ``threshold`` when it is measured
     from a reference (``stepped``), else ``start_threshold`` when there is one."""
     return threshold if stepped or start_threshold is None else start_threshold
+
+
+def seen_through(frames: list, looks: list, window: int, scale: float,
+                 held: np.ndarray | None, held_look: np.ndarray | None, change: float,
+                 around: int = 1, min_past: int = 1) -> np.ndarray | None:
+    """Per cell, the steady level of the frames, among the last ``window`` + 1, that show
+    the same thing as the frame judged, less the reference: what passers-by cross in front
+    of.
+
+    A thing left shows one look frame after frame, while passers-by in front of it each
+    look different; the steady level of :func:`steady_level` sets one frame aside, so a
+    thing crossed in two of its first frames stays below its threshold until two clear
+    frames follow each other. Here the frames that agree are found by their looks rather
+    than by their values: with the last ``window`` + 1 frames' looks at a cell, those
+    within ``change`` of their median (one of the agreeing looks when most agree), the
+    frame judged among them (a frame that does not show the thing is not flagged for it;
+    see ``shown`` of :func:`persistence`). Where at least ``window`` - 1 frames agree
+    (as many as :func:`steady_level` keeps of a window), the level is that of their
+    values alone, x(1) - (x(k-1) - x(1)) of the k agreeing values sorted (their spread
+    the largest over the ``around`` x ``around`` cells centred on the cell, a cell with
+    too few agreeing frames giving an infinite spread: the thing is seen through around
+    it too), less the reference of the frames before them (:func:`past_level`; a held
+    cell's own). It counts only where the picture changed, by more than ``change`` in two
+    ways, each the largest over the ``around`` cells (as :func:`_changed`): every
+    agreeing frame's look departs from the median look of the frames before them, and
+    the look they agree on (the median) departs from the looks of those frames, all of
+    them but one (a look that two of them already had was there before: a region the
+    model reads anew while its picture stays as it was, with a passer-by's frame moving
+    the median); a held cell's look is ``held_look`` for both. Elsewhere at most 0, and
+    where too few frames agree, -inf.
+
+    Parameters
+    ----------
+    frames : list of ndarray, shape (h, w), float32
+        The stream's local maps, oldest first, the frame judged last.
+    looks : list of ndarray, shape (h, w), float32
+        Their :func:`cell_looks`.
+    window : int
+    scale : float
+        What the maps are divided by (see :func:`_step`).
+    held, held_look : ndarray, shape (h, w), float32, or None
+        Held cells' reference and look (NaN where none is held).
+    change : float > 0
+    around : int >= 1, odd
+    min_past : int >= 1
+        Fewest frames before the last ``window`` + 1 for a reference.
+
+    Returns
+    -------
+    ndarray, shape (h, w), float32, or None (too few frames, or a look missing)
+    """
+    span = window + 1
+    if len(frames) < span + min_past or any(v is None for v in looks):
+        return None
+    values = np.asarray(frames[-span:], np.float32) / np.float32(scale)
+    lk = np.asarray(looks[-span:], np.float32)
+    before = np.asarray(looks[:-span], np.float32)
+    centre = np.median(lk, axis=0)
+    agree = np.abs(lk - centre) <= change
+    agree &= agree[-1]  # the frame judged shows it
+    enough = agree.sum(axis=0) >= max(window - 1, 1)
+    low = np.where(agree, values, np.inf).min(axis=0)
+    second = np.sort(np.where(agree, values, -np.inf), axis=0)[-2]
+    spread = flat_filter(np.where(enough, second - low, np.inf).astype(np.float32), around,
+                         np.maximum)
+    reference = _reference(frames[:-span], scale)
+    usual = np.median(before, axis=0)
+    apart = np.abs(before - centre)
+    kept = np.partition(apart, 1, axis=0)[1] if len(apart) > 2 else apart.min(axis=0)
+    if held is not None:
+        reference = np.where(np.isnan(held), reference, held)
+        if held_look is not None:
+            usual = np.where(np.isnan(held_look), usual, held_look)
+            kept = np.where(np.isnan(held_look), kept, np.abs(centre - held_look))
+    each = np.where(agree, np.abs(lk - usual), np.inf).min(axis=0)
+    moved = np.minimum(
+        flat_filter(np.where(np.isfinite(each), each, 0.0).astype(np.float32), around,
+                    np.maximum),
+        flat_filter(np.where(enough, kept, 0.0).astype(np.float32), around, np.maximum))
+    with np.errstate(invalid="ignore"):
+        step = np.where(enough & np.isfinite(spread), low - spread - reference, -np.inf)
+    return np.where(moved > change, step, np.minimum(step, 0.0)).astype(np.float32)
 
 
 def _since_start(frames: list, looks: list, window: int, opened_map: np.ndarray,
@@ -1032,6 +1130,10 @@ class Persistence:
         The camera's normal look (:func:`normal_look` of the calibrating frames), which
         windows without a reference must depart from (``normal`` of :func:`persistence`);
         None for baselines learnt before it, or without looks.
+    crossed : bool
+        Windows measured from a reference also count what frames seen through passers-by
+        show (``crossed`` of :func:`persistence`); False for baselines learnt before it,
+        whose thresholds were calibrated without it.
     """
 
     window: int
@@ -1052,6 +1154,7 @@ class Persistence:
     change: float = 0.0
     shown: bool = False
     normal: np.ndarray | None = field(default=None, repr=False)
+    crossed: bool = False
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None,
             looks: np.ndarray | None = None) -> PersistenceResult:
@@ -1063,7 +1166,7 @@ class Persistence:
                                             if self.start_threshold is not None else None),
                            around=self.around, local=self.local, footprint=self.footprint,
                            min_past=self.min_past, looks=looks, change=self.change,
-                           shown=self.shown, normal=self.normal)
+                           shown=self.shown, normal=self.normal, crossed=self.crossed)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -1106,7 +1209,7 @@ class Persistence:
                "threshold": self.threshold.to_dict(), "past": self.past,
                "robust": self.robust, "around": self.around, "floor": self.floor,
                "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
-               "change": self.change, "shown": self.shown}
+               "change": self.change, "shown": self.shown, "crossed": self.crossed}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -1126,7 +1229,8 @@ class Persistence:
                    int(meta.get("local", 0)), int(meta.get("footprint", 1)),
                    int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
                    bool(meta.get("shown", False)),
-                   None if normal is None else np.asarray(normal, np.float32))
+                   None if normal is None else np.asarray(normal, np.float32),
+                   bool(meta.get("crossed", False)))
 
 
 def _robust(saved) -> bool | str:
@@ -1221,7 +1325,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     normal = (normal_look(looks, s_times, window, max_gap, s_blocks) if looks is not None
               else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
-                       looks=looks, change=change, **opts)
+                       looks=looks, change=change, crossed=True, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -1240,12 +1344,12 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, "window", around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
-                           change=change, shown=True, normal=normal)
+                           change=change, shown=True, normal=normal, crossed=True)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, "window",
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change, True, normal)
+                       floor, local, footprint, MIN_PAST, change, True, normal, True)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

@@ -766,6 +766,9 @@ def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
                       f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
                     + (f"; a change counts where the picture changed (log brightness by more "
                        f"than {p.change:.3f})" if p.change > 0 else "")
+                    + (f", also in {p.window - 1} of {p.window + 1} frames that look alike "
+                       f"where passers-by cross it in the others (calibrated with it)"
+                       if p.crossed and p.change > 0 and p.start_threshold is not None else "")
                     + ("; the first frames of a run only where they look unlike the normal "
                        "frames (further from their median look than any window of them)"
                        if p.normal is not None and p.start_threshold is not None else "")
