@@ -6,10 +6,14 @@ from __future__ import annotations
 import argparse
 from contextlib import contextmanager
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from inspector.config import Config, load_config
 from inspector.errors import UsageError
 from inspector.storage.store import Store
+
+if TYPE_CHECKING:  # (the jobs are imported when a command runs, not at start-up)
+    from inspector.jobs.scan import ScanSummary
 
 
 def add_common(p: argparse.ArgumentParser) -> None:
@@ -91,13 +95,13 @@ def counted(count: int, word: str) -> str:
     return f"{count} {word}{'' if count == 1 else 's'}"
 
 
-def report_scan(summary, out: Path, all_scores: Path | None) -> None:
-    """The closing summary of a scan or watch run."""
+def report_scan(summary: ScanSummary, out: Path, all_scores: Path | None) -> None:
+    """The closing summary of a scan or watch run (a watch's report is a ScanSummary)."""
     for note, n in summary.notes.items():
         say(f"warning: {counted(n, 'frame')} of {note}")
     say(f"scored {summary.scored} frames, flagged {summary.flagged}, skipped {summary.skipped} "
         f"in {summary.seconds:.1f} s ({summary.rate:.1f} frames/s)")
-    if getattr(summary, "unchanged", 0):
+    if summary.unchanged:
         older = (f", {summary.unchanged_older} of them against an older baseline than the "
                  "active one" if summary.unchanged_older else "")
         say(f"not scored again: {summary.unchanged} frames scored before and unchanged since "
@@ -105,19 +109,19 @@ def report_scan(summary, out: Path, all_scores: Path | None) -> None:
     events = f"  events: {out / 'events.csv'}" if (out / "events.csv").exists() else ""
     say(f"flagged frames: {out / 'flagged.csv'}{events}  overlays: {out / 'overlays'}  "
         f"skipped: {out / 'skipped.csv'}")
-    if getattr(summary, "health", 0):
+    if summary.health:
         say(f"camera health: {counted(summary.health, 'condition')} in {out / 'health.csv'}")
     if all_scores:
         say(f"all scores: {all_scores}")
-    if getattr(summary, "damaged", None):
+    if summary.damaged:
         say("damaged baselines (no frame of these cameras is scored until this is fixed): "
             + "; ".join(summary.damaged[c] for c in sorted(summary.damaged)))
-    waiting = getattr(summary, "no_baseline", {})
-    missing = sorted(set(waiting) - set(getattr(summary, "damaged", {})))
+    waiting = summary.no_baseline
+    missing = sorted(set(waiting) - set(summary.damaged))
     if missing:
         say(f"no baseline for {', '.join(missing)} ({sum(waiting[c] for c in missing)} frames "
             "not scored, in skipped.csv): learn first ('inspector learn'), or name the store "
             "that has the baselines with --store")
-    if getattr(summary, "loose", 0):
+    if summary.loose:
         say(f"outside any camera folder: {summary.loose} files directly in SOURCE (frames go "
             "in SOURCE/<camera>/...; if SOURCE is one camera's folder, scan the folder above it)")
