@@ -513,6 +513,16 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     the median); a held cell's look is ``held_look`` for both. Elsewhere at most 0, and
     where too few frames agree, -inf.
 
+    ``change`` is how much looks change in normal frames (:func:`look_noise`), mostly by
+    day. In a dark stretch the gain that brings a frame back amplifies its noise, and a
+    thing's own looks scatter by more than that: where the frames' own look noise (the
+    median change of a cell's look from one of these frames to the next, times
+    :data:`LARGE`, as ``change`` is made from normal frames) is above ``change``, the
+    frames agreeing within it are taken as well and the larger level is kept (the
+    frames agreeing within ``change`` still count on their own: a looser tolerance can
+    take in a frame that a passer-by half covers, whose value is lower). The picture
+    must still have changed by more than ``change``.
+
     Parameters
     ----------
     frames : list of ndarray, shape (h, w), float32
@@ -540,13 +550,6 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     lk = np.asarray(looks[-span:], np.float32)
     before = np.asarray(looks[:-span], np.float32)
     centre = np.median(lk, axis=0)
-    agree = np.abs(lk - centre) <= change
-    agree &= agree[-1]  # the frame judged shows it
-    enough = agree.sum(axis=0) >= max(window - 1, 1)
-    low = np.where(agree, values, np.inf).min(axis=0)
-    second = np.sort(np.where(agree, values, -np.inf), axis=0)[-2]
-    spread = flat_filter(np.where(enough, second - low, np.inf).astype(np.float32), around,
-                         np.maximum)
     reference = _reference(frames[:-span], scale)
     usual = np.median(before, axis=0)
     apart = np.abs(before - centre)
@@ -556,14 +559,29 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
         if held_look is not None:
             usual = np.where(np.isnan(held_look), usual, held_look)
             kept = np.where(np.isnan(held_look), kept, np.abs(centre - held_look))
-    each = np.where(agree, np.abs(lk - usual), np.inf).min(axis=0)
-    moved = np.minimum(
-        flat_filter(np.where(np.isfinite(each), each, 0.0).astype(np.float32), around,
-                    np.maximum),
-        flat_filter(np.where(enough, kept, 0.0).astype(np.float32), around, np.maximum))
-    with np.errstate(invalid="ignore"):
-        step = np.where(enough & np.isfinite(spread), low - spread - reference, -np.inf)
-    return np.where(moved > change, step, np.minimum(step, 0.0)).astype(np.float32)
+    tolerances = [change]
+    noisy = LARGE * float(np.median(np.abs(np.diff(lk, axis=0))))
+    if noisy > change:  # a dark, noisy stretch (see above)
+        tolerances.append(noisy)
+    out = None
+    for tol in tolerances:
+        agree = np.abs(lk - centre) <= tol
+        agree &= agree[-1]  # the frame judged shows it
+        enough = agree.sum(axis=0) >= max(window - 1, 1)
+        low = np.where(agree, values, np.inf).min(axis=0)
+        second = np.sort(np.where(agree, values, -np.inf), axis=0)[-2]
+        spread = flat_filter(np.where(enough, second - low, np.inf).astype(np.float32),
+                             around, np.maximum)
+        each = np.where(agree, np.abs(lk - usual), np.inf).min(axis=0)
+        moved = np.minimum(
+            flat_filter(np.where(np.isfinite(each), each, 0.0).astype(np.float32), around,
+                        np.maximum),
+            flat_filter(np.where(enough, kept, 0.0).astype(np.float32), around, np.maximum))
+        with np.errstate(invalid="ignore"):
+            step = np.where(enough & np.isfinite(spread), low - spread - reference, -np.inf)
+        found = np.where(moved > change, step, np.minimum(step, 0.0))
+        out = found if out is None else np.maximum(out, found)
+    return out.astype(np.float32)
 
 
 def _since_start(frames: list, looks: list, window: int, opened_map: np.ndarray,
