@@ -20,6 +20,8 @@ from inspector.core.persistence import (
     MIN_PAST,
     Persistence,
     StreamState,
+    _median_along,
+    _sorted_along,
     calibrate_persistence,
     cell_looks,
     clearly_busy,
@@ -301,6 +303,11 @@ def test_a_thing_crossed_by_passers_by_in_its_first_frames_is_seen_through_them(
     assert not (plain.filled & (plain.scores > 5.0)).any()
     assert np.flatnonzero(crossed.filled & (crossed.scores > 5.0)).tolist() == list(range(12, n))
     assert (crossed.maps[:, 4, 6] <= 0.0).all()
+    # its sort along the frames is numpy.sort's, its median numpy.median's, to the bit
+    stack = np.random.default_rng(4).normal(size=(6, 3, 4)).astype(np.float32)
+    for k in (1, 2, 5, 6):
+        assert np.array_equal(np.stack(_sorted_along(stack[:k])), np.sort(stack[:k], axis=0))
+        assert np.array_equal(_median_along(stack[:k]), np.median(stack[:k], axis=0))
     # seen_through against its docstring's formula cell by cell (numpy.median, numpy.sort),
     # by day and in a noisy stretch (the frames agreeing within the frames' own noise too)
     rng = np.random.default_rng(3)

@@ -549,11 +549,11 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     values = np.asarray(frames[-span:], np.float32) / np.float32(scale)
     lk = np.asarray(looks[-span:], np.float32)
     before = np.asarray(looks[:-span], np.float32)
-    centre = np.median(lk, axis=0)
+    centre = _median_along(lk)
     reference = _reference(frames[:-span], scale)
-    usual = np.median(before, axis=0)
+    usual = _median_along(before)
     apart = np.abs(before - centre)
-    kept = np.partition(apart, 1, axis=0)[1] if len(apart) > 2 else apart.min(axis=0)
+    kept = _sorted_along(apart)[1] if len(apart) > 2 else apart.min(axis=0)
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
         if held_look is not None:
@@ -569,7 +569,7 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
         agree &= agree[-1]  # the frame judged shows it
         enough = agree.sum(axis=0) >= max(window - 1, 1)
         low = np.where(agree, values, np.inf).min(axis=0)
-        second = np.sort(np.where(agree, values, -np.inf), axis=0)[-2]
+        second = _lowest_and_second(np.where(agree, values, -np.inf))[1]
         spread = flat_filter(np.where(enough, second - low, np.inf).astype(np.float32),
                              around, np.maximum)
         each = np.where(agree, np.abs(lk - usual), np.inf).min(axis=0)
@@ -956,6 +956,37 @@ def _lowest_and_second(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         second = below if second is None else np.maximum(second, below)
         top = np.maximum(top, x)
     return m.min(axis=0), second
+
+
+def _sorted_along(m: np.ndarray) -> list[np.ndarray]:
+    """Each cell's values sorted along the first axis, as ``np.sort(m, axis=0)`` for values
+    without NaN (values picked, not computed): an odd-even transposition sort by elementwise
+    minimum and maximum (Knuth, *The Art of Computer Programming* vol. 3, 5.3.4, from
+    memory), m passes for m values, many times faster than a sort or partition along the
+    first axis for the few frames of a window.
+
+    Parameters
+    ----------
+    m : ndarray, shape (m, h, w), float32
+
+    Returns
+    -------
+    list of m ndarray, shape (h, w), float32, smallest first
+    """
+    rows = list(np.asarray(m, np.float32))
+    for p in range(len(rows)):
+        for j in range(p % 2, len(rows) - 1, 2):
+            rows[j], rows[j + 1] = (np.minimum(rows[j], rows[j + 1]),
+                                    np.maximum(rows[j], rows[j + 1]))
+    return rows
+
+
+def _median_along(m: np.ndarray) -> np.ndarray:
+    """``np.median(m, axis=0)`` of values without NaN, by :func:`_sorted_along`: the middle
+    value, or the mean of the two middle ones, shape (h, w) float32."""
+    rows = _sorted_along(m)
+    k = len(rows)
+    return rows[k // 2] if k % 2 else (rows[k // 2 - 1] + rows[k // 2]) / np.float32(2.0)
 
 
 def local_maps(maps: np.ndarray, robust: bool = False, local: int = 0) -> np.ndarray:
