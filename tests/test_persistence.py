@@ -191,6 +191,16 @@ def test_a_held_cell_is_flagged_only_in_frames_that_show_what_it_holds():
     assert flags[0] == [11, 12, 13, 14, 15, 16]
     assert flags[1] == [11, 13, 14, 15]
     assert np.isnan(shown.since[12]) and shown.since[13] == times[8]
+    # A passer-by who reads as the parcel did (30) where it was taken away: the steady level
+    # cannot tell, the look can (frame 16's look is not the median of its window's others).
+    same = np.where(maps == 300.0, np.float32(30.0), maps)
+    looks = np.zeros((n, 6, 8), np.float32)
+    looks[8:16, 4, 5] = 0.5
+    looks[16, 4, 5] = 0.9
+    runs = (persistence(same, times, 4, 10.0, shown=True, **kw),
+            persistence(same, times, 4, 10.0, shown=True, looks=looks, change=0.05, **kw))
+    assert [np.flatnonzero(r.filled & r.stepped & (r.scores > 5.0)).tolist()
+            for r in runs] == [[11, 12, 13, 14, 15, 16], [11, 12, 13, 14, 15]]
     # steady_level(shown=True), as its docstring's formula from numpy.sort: the lowest value
     # less (max(last, second largest of the frames before the last) - lowest).
     rng = np.random.default_rng(5)

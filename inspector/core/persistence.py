@@ -312,7 +312,11 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         hold the thing). The hold itself goes on by the usual steady level, so a passer-by
         in front of a thing for a frame unflags that frame only and does not take the thing
         into its own reference; a cell not held is judged as without it, so a thing is
-        flagged as soon. The spread can only grow, so the flags are a subset of those
+        flagged as soon. With ``looks`` and ``change`` > 0, a held cell is also flagged only
+        where the frame's look is within ``change`` of the median look of the window's
+        other frames (:func:`_odd_one`): a passer-by standing where a thing was taken away
+        can read as unusual as the thing did, but does not look like it. The spread can
+        only grow and the look only takes flags away, so the flags are a subset of those
         without it (the calibrated rate still holds; calibration holds no cell).
     normal : ndarray, shape (2, h, w), float32, optional
         The camera's normal look (:func:`normal_look`). With ``looks`` and ``change`` > 0, a
@@ -447,6 +451,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 # does not take it into its own reference)
                 alt = np.where(np.isnan(held), raw,
                                steady_level(win_scaled, around, True) - (level - raw))
+                if seen is not None:  # (and where this frame looks as the window's others)
+                    odd = ~np.isnan(held) & _odd_one(lbuf[-window:], change)
+                    alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
                 alt = alt if seen is None else _gated(alt, seen[0], change)
                 out[i] = opened(alt if through is None else np.maximum(alt, through),
                                 footprint)
@@ -621,6 +628,12 @@ def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: i
     if held_look is not None:
         reference = np.where(np.isnan(held_look), reference, held_look)
     return _departure(looks[-window:], reference, around), reference
+
+
+def _odd_one(looks: list, change: float) -> np.ndarray:
+    """Per cell, whether the newest of a window's ``looks`` differs from the median of the
+    others by more than ``change``, bool (h, w)."""
+    return np.abs(looks[-1] - np.median(np.asarray(looks[:-1], np.float32), axis=0)) > change
 
 
 def _departure(looks: list, reference: np.ndarray, around: int = 1) -> np.ndarray:
