@@ -23,6 +23,7 @@ from inspector.core.persistence import (
     _median_along,
     _sorted_along,
     calibrate_persistence,
+    cell_brightness,
     cell_looks,
     clearly_busy,
     flat_filter,
@@ -30,6 +31,7 @@ from inspector.core.persistence import (
     local_maps,
     local_median,
     local_size,
+    looks_of,
     median_filtered,
     normal_look,
     opened,
@@ -351,6 +353,57 @@ def test_a_thing_crossed_by_passers_by_in_its_first_frames_is_seen_through_them(
                                 np.sort(np.abs(lk[:-5] - np.median(lk[-5:])))[1])
                     want = max(want, step if moved > 0.05 else min(step, 0.0))
                 assert got[y, x] == pytest.approx(want, abs=1e-5)
+
+
+def test_a_settled_thing_read_unevenly_keeps_its_lowest_reading():
+    # A weak spill set down at frame 8 on a 2 x 2 patch of cells, read by the model at 6 to
+    # 13 from frame to frame while its look and its brightness stay put. At a second patch
+    # passers-by read the same values, each changing the picture differently; at a third the
+    # model reads the same values and the look moves as the spill's does, but the cells'
+    # brightness does not (the mean around them moved: something came into their square).
+    # The spread of the readings takes all three below 0. With the brightness, the spill
+    # keeps its lowest reading, x(1) of the sorted window (numpy.sort), and is flagged on its
+    # 4th frame, while the other two are not; once it is taken away (frame 16; the model
+    # still reads 4 there) the frame no longer shows it: not settled, not flagged.
+    n = 19
+    reads = np.array([8.0, 6.0, 13.0, 11.0, 12.0, 6.0, 10.0, 13.0], np.float32)
+    maps = np.zeros((n, 6, 14), np.float32)
+    for c in (1, 6, 11):
+        maps[8:16, 2:4, c:c + 2] = reads[:, None, None]
+    maps[16:, 2:4, 1:3] = 4.0
+    rng = np.random.default_rng(0)
+    looks = rng.normal(0.0, 0.002, maps.shape).astype(np.float32)
+    bright = rng.normal(3.0, 0.002, maps.shape).astype(np.float32)
+    moved = rng.uniform(0.1, 0.9, (8, 1, 1)).astype(np.float32)
+    for arr in (looks, bright):
+        arr[8:16, 2:4, 1:3] += 0.3                               # the spill: one new look
+        arr[8:16, 2:4, 6:8] += moved                             # passers-by
+    looks[8:16, 2:4, 11:13] += 0.3                               # only the look moved
+    times = np.arange(n) * 2.0
+    opts = dict(threshold=3.0, past=8, start_threshold=60.0, min_past=3, around=3,
+                looks=looks, change=0.05)
+    plain = persistence(maps, times, 4, 10.0, **opts)
+    assert plain.maps[11:16].max() < 3.0
+    run = persistence(maps, times, 4, 10.0, brightness=bright, **opts)
+    for i in range(11, 16):
+        np.testing.assert_allclose(run.maps[i, 2:4, 1:3],
+                                   np.sort(maps[i - 3:i + 1, 2:4, 1:3], axis=0)[0])
+    assert run.maps[11:, 2:4, 6:].max() < 3.0
+    flagged = run.filled & (run.scores > np.where(run.stepped, 3.0, 60.0))
+    assert flagged.tolist() == [False] * 11 + [True] * 5 + [False] * 3
+    # the brightness goes with the stream's state (the ledger's arrays) like the looks
+    first = persistence(maps[:13], times[:13], 4, 10.0, brightness=bright[:13],
+                        **dict(opts, looks=looks[:13]))
+    saved = StreamState.from_arrays(first.state.arrays())
+    second = persistence(maps[13:], times[13:], 4, 10.0, state=saved, brightness=bright[13:],
+                         **dict(opts, looks=looks[13:]))
+    np.testing.assert_allclose(np.concatenate([first.maps, second.maps]), run.maps)
+    # cell_looks is looks_of(cell_brightness): the log of each cell's mean (numpy)
+    grey = np.random.default_rng(1).uniform(20.0, 200.0, (2, 24, 48)).astype(np.float32)
+    cells = cell_brightness(grey, (6, 12))
+    np.testing.assert_allclose(cells, np.log1p(grey.reshape(2, 6, 4, 12, 4).mean(axis=(2, 4))),
+                               rtol=1e-6)
+    np.testing.assert_array_equal(looks_of(cells), cell_looks(grey, (6, 12)))
 
 
 def test_a_reference_needs_frames_a_passer_by_cannot_move():

@@ -12,7 +12,7 @@ from inspector.core.calibration import Calibration, Threshold
 from inspector.core.conditions import Conditions
 from inspector.core.image import grey
 from inspector.core.models.base import DensityModel
-from inspector.core.persistence import Persistence, cell_looks
+from inspector.core.persistence import Persistence
 from inspector.core.regimes import Regimes
 
 
@@ -38,8 +38,8 @@ class Scores:
     regimes : ndarray, shape (n,), int, or None
         Regime of each frame (None when the baseline has one).
     looks : ndarray, shape (n, h, w), float32, or None
-        The frames' :func:`~inspector.core.persistence.cell_looks`, for persistence (None
-        when it does not use them).
+        The frames' :meth:`~inspector.core.persistence.Persistence.cells`, for persistence
+        (None when it does not use them).
     """
 
     maps: np.ndarray
@@ -77,8 +77,8 @@ class Evaluation:
         (:attr:`~inspector.core.conditions.Prepared.clipped`, as aligned): the model saw a
         prediction there; None when no frame has any.
     looks : ndarray, shape (n, h, w), float32, or None
-        :func:`~inspector.core.persistence.cell_looks` of the aligned frames, when the
-        baseline's persistence uses them.
+        What the baseline's persistence measures of each aligned frame
+        (:meth:`~inspector.core.persistence.Persistence.cells`), when it uses them.
     """
 
     images: np.ndarray
@@ -177,7 +177,7 @@ class Baseline:
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
         looks : bool
-            Also measure the frames' :func:`~inspector.core.persistence.cell_looks` when
+            Also measure the frames' :meth:`~inspector.core.persistence.Persistence.cells` when
             the baseline's persistence uses them; False when its persistence will not run
             on these frames (a camera whose persistence is off: nothing reads them).
         """
@@ -188,7 +188,7 @@ class Baseline:
         m = self.conditions.measures(rec) if self.conditions.health else None
         noise = self.conditions.noise_scale(rec)
         raw = self.model.score_maps(rec.images, noise=noise)
-        looks = (cell_looks(rec.aligned, raw.shape[1:])
+        looks = (self.persistence.cells(rec.aligned, raw.shape[1:])
                  if looks and self.persistence is not None and self.persistence.change > 0
                  else None)
         return Evaluation(images, raw, m, rec.grey, rec.gains[:, 0], noise, rec.clipped,

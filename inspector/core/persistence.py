@@ -58,8 +58,11 @@ over the whole view moves with passers-by elsewhere), and that is not something 
 while a lamp's smooth pool hardly changes a look at all. A thing that passers-by cross in
 two of its first frames has no window of clear frames before its own frames become the
 reference; the frames that share its look are also taken on their own (``crossed``,
-:func:`seen_through`), and the thresholds are calibrated with them. Last, the map is
-opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
+:func:`seen_through`), and the thresholds are calibrated with them. Where the picture shows
+a thing settled (its look and its own brightness changed from before, and its looks the
+same from frame to frame), the steady level takes no spread off (``brightness``): the model
+can read one unchanged thing unevenly, and the spread would take that for passers-by. Last,
+the map is opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
 changes every cell of a patch, so a region narrower than a patch (the edge of a passer-by,
 the rim of a masked area) is not something left, and one such region in the few held-out
 windows would otherwise set the threshold.
@@ -155,6 +158,11 @@ class StreamState:
         The frames' :func:`cell_looks`, as ``maps`` (None: not kept).
     held_look : ndarray, shape (h, w), float32, or None
         Per held cell, the look it keeps as its reference (NaN where none is held).
+    brightness : ndarray, shape (m, h, w), float32, or None
+        The frames' :func:`cell_brightness`, each less its median over its cells, as
+        ``looks`` (None: not kept).
+    held_brightness : ndarray, shape (h, w), float32, or None
+        Per held cell, the brightness it keeps as its reference (NaN where none is held).
     """
 
     maps: np.ndarray
@@ -164,6 +172,8 @@ class StreamState:
     held: np.ndarray | None = None
     looks: np.ndarray | None = None
     held_look: np.ndarray | None = None
+    brightness: np.ndarray | None = None
+    held_brightness: np.ndarray | None = None
 
     @classmethod
     def empty(cls) -> "StreamState":
@@ -174,7 +184,7 @@ class StreamState:
         out = {"maps": self.maps, "times": self.times, "block": np.array(self.block)}
         if self.onset is not None:
             out["onset"] = self.onset
-        for key in ("held", "looks", "held_look"):
+        for key in ("held", "looks", "held_look", "brightness", "held_brightness"):
             if getattr(self, key) is not None:
                 out[key] = getattr(self, key)
         return out
@@ -183,7 +193,8 @@ class StreamState:
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> "StreamState":
         return cls(np.asarray(arrays["maps"], np.float32), np.asarray(arrays["times"], float),
                    arrays.get("onset"), int(arrays.get("block", -1)), arrays.get("held"),
-                   arrays.get("looks"), arrays.get("held_look"))
+                   arrays.get("looks"), arrays.get("held_look"), arrays.get("brightness"),
+                   arrays.get("held_brightness"))
 
 
 @dataclass
@@ -234,7 +245,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 footprint: int = 1, made_local: bool = False, min_past: int = 1,
                 looks: np.ndarray | None = None, change: float = 0.0,
                 shown: bool = False, normal: np.ndarray | None = None,
-                crossed: bool = False) -> PersistenceResult:
+                crossed: bool = False,
+                brightness: np.ndarray | None = None) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -335,6 +347,16 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         (:func:`seen_through`): a cell's map is the larger of the two. Its flags are a
         superset, so the thresholds must be calibrated with it (as
         :func:`calibrate_persistence` does).
+    brightness : ndarray, shape (n, h, w), float, optional
+        The frames' :func:`cell_brightness` (with ``looks`` and ``change`` > 0). A cell where
+        a thing has settled in the window (:func:`_settled`: its look and its own brightness
+        changed from the frames before, the frame judged included, and its looks agree
+        from frame to frame within ``change``) takes no spread off its steady level
+        (``settled`` of :func:`steady_level`): the spread stands in for "the same content
+        frame after frame", which the picture then shows directly, and the model can read
+        one unchanged thing unevenly (a weak spill at 6 to 13, or a parcel at 44 then 25,
+        from frame to frame while its look stays within a third of ``change``). This adds
+        flags: the threshold must be calibrated with it (:func:`calibrate_persistence`).
 
     Returns
     -------
@@ -358,10 +380,19 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     lbuf: list = ([None] * len(buf) if st is None or st.looks is None
                   or len(st.looks) != len(buf) else list(st.looks))
     held_look = st.held_look if st is not None and gate else None
+    held_bright = st.held_brightness if st is not None and gate else None
+    bright_ref = None
     if buf and buf[0].shape != maps.shape[1:]:
         buf, buf_t, onset, held = [], [], None, None  # another baseline's map size
-        lbuf, held_look = [], None
+        lbuf, held_look, held_bright = [], None, None
     look_of = list(np.asarray(looks, np.float32)) if gate else [None] * n
+    # each look's frame brightness, by the look (a look is in several windows in turn)
+    settle = gate and brightness is not None
+    bright: dict = {}
+    if settle:
+        if st is not None and st.brightness is not None and len(st.brightness) == len(lbuf):
+            bright.update(_by_look(lbuf, st.brightness))
+        bright.update(_by_look(look_of, _frame_relative(brightness)))
     out = np.empty_like(maps)
     steady = np.empty_like(maps)  # each frame's steady level, opened below
     filled = np.zeros(n, bool)
@@ -388,10 +419,13 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 late_buf, late_t, late_l = buf[:pos], buf_t[:pos], lbuf[:pos]
             late_buf, late_t = (late_buf + [frames[i]])[-keep:], (late_t + [t])[-keep:]
             late_l = (late_l + [look_of[i]])[-keep:]
-            level, raw, _, _ = _step(late_buf, window, around=around, scaled=scaled,
-                                     spreads=spreads, min_past=min_past)
-            stepped[i] = past > 0 and len(late_buf) >= window + min_past
             seen = _changed(late_l, window, None, min_past, around) if gate else None
+            fixed = (_settled(late_l, window, None, change, around, bright,
+                              None if seen is None else seen[1]) if settle else None)
+            fixed = None if fixed is None else fixed[0]
+            level, raw, _, _ = _step(late_buf, window, around=around, scaled=scaled,
+                                     spreads=spreads, min_past=min_past, settled=fixed)
+            stepped[i] = past > 0 and len(late_buf) >= window + min_past
             if seen is not None:
                 raw = _gated(raw, seen[0], change)
             if gate and not stepped[i]:
@@ -414,15 +448,19 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         late_buf, late_t, late_l = [], [], []
         if buf_t and (t - buf_t[-1] > max_gap or b != block):  # (late frames: above)
             buf, buf_t, onset, held = [], [], None, None
-            lbuf, held_look = [], None
+            lbuf, held_look, held_bright = [], None, None
         block = b
         buf.append(frames[i])
         buf_t.append(t)
         lbuf.append(look_of[i])
         del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
-        level, raw, scale, win_scaled = _step(buf, window, held, around, scaled, spreads, min_past)
-        stepped[i] = past > 0 and len(buf) >= window + min_past
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
+        fixed = (_settled(lbuf, window, held_look, change, around, bright,
+                          None if seen is None else seen[1], held_bright) if settle else None)
+        fixed, bright_ref = (None, None) if fixed is None else fixed
+        level, raw, scale, win_scaled = _step(buf, window, held, around, scaled, spreads,
+                                              min_past, fixed)
+        stepped[i] = past > 0 and len(buf) >= window + min_past
         steady[i] = level
         out[i] = raw if seen is None else _gated(raw, seen[0], change)
         through = (seen_through(buf, lbuf, window, scale, held, held_look, change, around,
@@ -450,7 +488,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 # hold goes on by ``region`` (a passer-by in front of the thing for a frame
                 # does not take it into its own reference)
                 alt = np.where(np.isnan(held), raw,
-                               steady_level(win_scaled, around, True) - (level - raw))
+                               steady_level(win_scaled, around, True, fixed) - (level - raw))
                 if seen is not None:  # (and where this frame looks as the window's others)
                     odd = ~np.isnan(held) & _odd_one(lbuf[-window:], change)
                     alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
@@ -466,6 +504,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 held = np.where(keeps, reference, np.nan).astype(np.float32)
                 held_look = (None if seen is None else
                              np.where(keeps, seen[1], np.nan).astype(np.float32))
+                held_bright = (None if bright_ref is None else
+                               np.where(keeps, bright_ref, np.nan).astype(np.float32))
     if threshold is None:  # (the maps are not needed in the loop: opened at once)
         out = opened(out, footprint)
     levels = (opened(steady, footprint).reshape(n, -1).max(axis=1).astype(np.float64) if n
@@ -480,7 +520,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                             np.array(kept_t, np.float64), onset, block, held,
                             np.array(kept_l, np.float32).reshape(len(kept), *maps.shape[1:])
                             if gate and all(v is not None for v in kept_l) else None,
-                            held_look)
+                            held_look, _kept_brightness(kept_l, bright, maps.shape[1:])
+                            if settle else None, held_bright if settle else None)
     return PersistenceResult(out, frame_scores(out), filled, since, state_out, late, stepped,
                              levels)
 
@@ -636,6 +677,96 @@ def _odd_one(looks: list, change: float) -> np.ndarray:
     return np.abs(looks[-1] - np.median(np.asarray(looks[:-1], np.float32), axis=0)) > change
 
 
+def _by_look(looks: list, brightness) -> dict:
+    """``id`` of each look -> (the look, its frame's brightness), the look held so that its
+    ``id`` stays its own (see :func:`_spreads`); looks that are None are left out."""
+    return {id(v): (v, b) for v, b in zip(looks, brightness) if v is not None}
+
+
+def _frame_relative(brightness: np.ndarray) -> np.ndarray:
+    """Each frame's brightness less its median over the frame's cells, shape (n, h, w)
+    float32 (a change of exposure moves every cell's log brightness alike)."""
+    b = np.asarray(brightness, np.float32)
+    return b - np.median(b.reshape(len(b), -1), axis=1).astype(np.float32)[:, None, None]
+
+
+def _kept_brightness(looks: list, bright: dict, shape: tuple) -> np.ndarray | None:
+    """The brightness of the frames whose ``looks`` a state keeps, shape (m, h, w) float32;
+    None when one is not known."""
+    found = [bright.get(id(v)) for v in looks]
+    if any(f is None or f[0] is not v for f, v in zip(found, looks)):
+        return None
+    return np.array([f[1] for f in found], np.float32).reshape(len(found), *shape)
+
+
+def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
+             around: int, bright: dict, reference: np.ndarray | None = None,
+             held_bright: np.ndarray | None = None
+             ) -> tuple[np.ndarray, np.ndarray] | None:
+    """Cells where a thing has settled in the window: the picture changed there from the
+    frames before it, in the frame judged too, and stays the same from frame to frame
+    (see ``brightness`` of :func:`persistence`), bool (h, w); None with no frame before the
+    window, fewer than 3 frames in it, or a look or brightness missing.
+
+    A cell is settled where (1) its own look differs from the median look of the frames
+    before (a held cell: from ``held_look``; ``reference``: that reference when known, see
+    :func:`_changed`) by more than ``change`` in all the window's frames but one and in the
+    newest (the frame judged: the frame after a thing is taken away is not settled); (2)
+    its own brightness (``bright``: by look, see :func:`_by_look`; each frame's
+    :func:`cell_brightness` less its median over the frame's cells, so that a change of
+    exposure, which moves every cell alike, does not count) differs from the median of the
+    frames before (a held cell: from the brightness it kept, ``held_bright``) by more than
+    ``change``, likewise; and (3) the looks of all the window's frames but one (the newest kept) agree within
+    ``change``, at every one of the ``around`` cells around it; and that brightness
+    reference, (h, w) float32 (what a cell held from this frame keeps). (2) is there
+    because a look
+    is the cell's brightness less the mean around it: when a thing leaves (or comes into)
+    that square, the looks of untouched cells move with the mean, while their brightness
+    does not."""
+    before = looks[:-window]
+    if not before or window < 3 or any(v is None for v in looks):
+        return None
+    raws = [bright.get(id(v)) for v in looks]
+    if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
+        return None
+    if reference is None:
+        reference = _median(before)
+        if held_look is not None:
+            reference = np.where(np.isnan(held_look), reference, held_look)
+    win = looks[-window:]
+    own = _departs(win, reference, change)
+    raw = [r[1] for r in raws]
+    before_raw = _median(raw[:-window])
+    if held_bright is not None:
+        before_raw = np.where(np.isnan(held_bright), before_raw, held_bright)
+    moved = _departs(raw[-window:], before_raw, change)
+    agree = None  # the looks' range over the window without one of its older frames
+    for j in range(window - 1):
+        rest = win[:j] + win[j + 1:]
+        spread = np.maximum.reduce(rest) - np.minimum.reduce(rest)
+        agree = spread if agree is None else np.minimum(agree, spread)
+    return own & moved & (flat_filter(agree, around, np.maximum) <= change), before_raw
+
+
+def _median(frames: list) -> np.ndarray:
+    """Per cell, the median of ``frames`` (arrays of one shape), float32 (as
+    ``np.median(frames, axis=0)``, from one sort: several times faster along a short first
+    axis)."""
+    q = np.sort(np.asarray(frames, np.float32), axis=0)
+    m = len(q)
+    return q[m // 2] if m % 2 else (q[m // 2 - 1] + q[m // 2]) / np.float32(2.0)
+
+
+def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:
+    """Per cell, whether ``frames`` (a window's, oldest first) differ from ``reference`` by
+    more than ``change`` in all of them but one, and in the newest, bool."""
+    diff = [np.abs(f - reference) for f in frames]
+    # the second smallest: the largest of the smallest of all but one
+    second = np.maximum.reduce([np.minimum.reduce(diff[:j] + diff[j + 1:])
+                                for j in range(len(diff))])
+    return (second > change) & (diff[-1] > change)
+
+
 def _departure(looks: list, reference: np.ndarray, around: int = 1) -> np.ndarray:
     """Per cell, how far the looks of a window's frames are from ``reference``: the second
     smallest absolute difference over the frames (one set aside, see :func:`_changed`), the
@@ -711,7 +842,9 @@ def cell_looks(grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     what is smooth over a quarter of the view), while something set down changes it where
     it is. (A mean, not the median of :func:`local_maps`: a thing left covers a few
     percent of that square, so it moves the mean by as little, and a mean over a square
-    costs a few microseconds a frame where the median costs about half a millisecond.)
+    costs a few microseconds a frame where the median costs about half a millisecond. That
+    little can still pass ``change`` at untouched cells when a large thing leaves or comes
+    into their square: :func:`_settled` also asks for a cell's own brightness to change.)
 
     Parameters
     ----------
@@ -725,16 +858,53 @@ def cell_looks(grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     -------
     ndarray, shape (n, h, w), float32
     """
+    return looks_of(cell_brightness(grey, shape))
+
+
+def cell_brightness(grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """Per frame and map cell, the log brightness of the frame there: the logarithm (of 1 +)
+    the mean of the frame's grey over the cell (an area average to the map's shape).
+    :func:`looks_of` makes them looks.
+
+    Parameters
+    ----------
+    grey : ndarray, shape (n, H, W), float or uint8
+        The frames' grey, as aligned to the reference.
+    shape : (int, int)
+        The map's (h, w).
+
+    Returns
+    -------
+    ndarray, shape (n, h, w), float32
+    """
     import cv2
 
     h, w = shape
-    if not len(grey):
-        return np.zeros((0, h, w), np.float32)
-    k = local_size(shape)
     out = np.empty((len(grey), h, w), np.float32)
     for i, g in enumerate(grey):
-        cells = np.log1p(cv2.resize(np.asarray(g, np.float32), (w, h),
-                                    interpolation=cv2.INTER_AREA))
+        out[i] = np.log1p(cv2.resize(np.asarray(g, np.float32), (w, h),
+                                     interpolation=cv2.INTER_AREA))
+    return out
+
+
+def looks_of(brightness: np.ndarray) -> np.ndarray:
+    """:func:`cell_looks` from the frames' :func:`cell_brightness`: each cell less its mean
+    over the square of :func:`local_size` cells around (edges repeat the nearest cell).
+
+    Parameters
+    ----------
+    brightness : ndarray, shape (n, h, w), float32
+
+    Returns
+    -------
+    ndarray, shape (n, h, w), float32
+    """
+    import cv2
+
+    brightness = np.asarray(brightness, np.float32)
+    k = local_size(brightness.shape)
+    out = np.empty(brightness.shape, np.float32)
+    for i, cells in enumerate(brightness):
         out[i] = cells - cv2.blur(cells, (k, k), borderType=cv2.BORDER_REPLICATE)
     return out
 
@@ -845,7 +1015,8 @@ def flat_filter(maps: np.ndarray, size: int, op, after: int | None = None) -> np
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
           around: int = 1, scaled: bool = False, spreads: dict | None = None,
-          min_past: int = 1) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
+          min_past: int = 1, settled: np.ndarray | None = None
+          ) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
     reference from ``held`` (NaN where not held), shapes (h, w), float32; the scale the
@@ -854,12 +1025,13 @@ def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
     (what the steady level is taken of), shape (m, h, w), float32, m = min(window,
     len(frames)). ``spreads``: the
     robust spreads of frames met before, by frame (see :func:`_spreads`); fewer than
-    ``min_past`` frames before the window: no reference."""
+    ``min_past`` frames before the window: no reference. ``settled``: cells whose steady
+    level takes no spread off (see :func:`steady_level`)."""
     win = np.asarray(frames[-window:], np.float32)
     scale = (max(float(np.median(_spreads(frames[-window:], win, spreads))), 1.0) if scaled
              else 1.0)
     win_scaled = win / np.float32(scale)
-    level = steady_level(win_scaled, around)
+    level = steady_level(win_scaled, around, settled=settled)
     before = frames[:-window]
     reference = (_reference(before, scale) if before and len(before) >= min_past
                  else np.zeros_like(level))
@@ -915,7 +1087,8 @@ def past_level(past_maps: np.ndarray) -> np.ndarray:
     return np.maximum(_lowest_and_second(q)[1] if len(q) >= 2 else q[0], 0.0)
 
 
-def steady_level(window_maps: np.ndarray, around: int = 1, shown: bool = False) -> np.ndarray:
+def steady_level(window_maps: np.ndarray, around: int = 1, shown: bool = False,
+                 settled: np.ndarray | None = None) -> np.ndarray:
     """Per cell, how unusual a window of local maps is in a steady way.
 
     With the cell's values over the window sorted, x(1) <= ... <= x(m): the lowest value less
@@ -931,13 +1104,15 @@ def steady_level(window_maps: np.ndarray, around: int = 1, shown: bool = False) 
     last (m >= 3). A thing is then counted in a frame only where that frame shows it:
     when it has been taken away and a passer-by stands where it was (or the frame is
     otherwise unlike the window's other frames there), the frame is not flagged for what
-    the frames before it held.
+    the frames before it held. Where ``settled`` (the picture shows a thing settled there,
+    see ``brightness`` of :func:`persistence`), the level is x(1): no spread is taken off.
 
     Parameters
     ----------
     window_maps : ndarray, shape (m, h, w), float, m >= 1
     around : int >= 1, odd
     shown : bool
+    settled : ndarray, shape (h, w), bool, optional
 
     Returns
     -------
@@ -952,6 +1127,8 @@ def steady_level(window_maps: np.ndarray, around: int = 1, shown: bool = False) 
     spread = second - low
     if around > 1:
         spread = flat_filter(spread, around, np.maximum)
+    if settled is not None:
+        spread = np.where(settled, np.float32(0.0), spread)
     return low - spread
 
 
@@ -1196,6 +1373,12 @@ class Persistence:
         Windows measured from a reference also count what frames seen through passers-by
         show (``crossed`` of :func:`persistence`); False for baselines learnt before it,
         whose thresholds were calibrated without it.
+    settle : bool
+        A cell where a thing has settled (its look and its brightness changed, its looks
+        steady) takes no spread off its steady level (``brightness`` of
+        :func:`persistence`): the frames' measures for it (:meth:`cells`) are then their
+        :func:`cell_brightness`, else their :func:`cell_looks`; False for baselines learnt
+        before it, or without looks.
     """
 
     window: int
@@ -1217,18 +1400,29 @@ class Persistence:
     shown: bool = False
     normal: np.ndarray | None = field(default=None, repr=False)
     crossed: bool = False
+    settle: bool = False
+
+    def cells(self, grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+        """What :meth:`run` takes of each frame (its ``looks``): the frames'
+        :func:`cell_brightness` when ``settle``, else their :func:`cell_looks`, shape
+        (n, h, w) float32 (``grey``, ``shape``: as for those)."""
+        return (cell_brightness if self.settle else cell_looks)(grey, shape)
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None,
             looks: np.ndarray | None = None) -> PersistenceResult:
         """:func:`persistence` of a camera's frames with these settings and thresholds
-        (``looks``: the frames' :func:`cell_looks`, when known)."""
+        (``looks``: the frames' :meth:`cells`, when known)."""
+        bright = None
+        if self.settle and looks is not None:
+            bright, looks = looks, looks_of(looks)
         return persistence(maps, times, self.window, self.max_gap, self.threshold.value,
                            state, past=self.past, robust=self.robust,
                            start_threshold=(self.start_threshold.value
                                             if self.start_threshold is not None else None),
                            around=self.around, local=self.local, footprint=self.footprint,
                            min_past=self.min_past, looks=looks, change=self.change,
-                           shown=self.shown, normal=self.normal, crossed=self.crossed)
+                           shown=self.shown, normal=self.normal, crossed=self.crossed,
+                           brightness=bright)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -1271,7 +1465,8 @@ class Persistence:
                "threshold": self.threshold.to_dict(), "past": self.past,
                "robust": self.robust, "around": self.around, "floor": self.floor,
                "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
-               "change": self.change, "shown": self.shown, "crossed": self.crossed}
+               "change": self.change, "shown": self.shown, "crossed": self.crossed,
+               "settle": self.settle}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -1292,7 +1487,7 @@ class Persistence:
                    int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
                    bool(meta.get("shown", False)),
                    None if normal is None else np.asarray(normal, np.float32),
-                   bool(meta.get("crossed", False)))
+                   bool(meta.get("crossed", False)), bool(meta.get("settle", False)))
 
 
 def _robust(saved) -> bool | str:
@@ -1303,7 +1498,8 @@ def _robust(saved) -> bool | str:
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
                           alpha: float, window: int = WINDOW,
                           scanned: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
-                          footprint: int = 1, looks: np.ndarray | None = None) -> Persistence:
+                          footprint: int = 1, looks: np.ndarray | None = None,
+                          brightness: np.ndarray | None = None) -> Persistence:
     """Calibrate persistence on held-out normal maps, and measure how busy the camera is.
 
     Parameters
@@ -1332,6 +1528,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         measured from a reference then counts only where the picture changed by more than
         :data:`LARGE` times how much a cell's look changes from one normal frame to the next
         (``change``; see :func:`persistence`), in calibration as at scan time.
+    brightness : ndarray, shape (k, h, w), float, optional
+        :func:`cell_brightness` of the same frames, instead of ``looks`` (which are then
+        made from it, :func:`looks_of`): a cell where a thing has settled then also takes
+        no spread off its steady level (``settle``; ``brightness`` of :func:`persistence`),
+        in calibration as at scan time.
 
     Returns
     -------
@@ -1380,6 +1581,9 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     s_maps = local_maps(s_maps, False, local)
     opts = dict(robust="window", around=AROUND, local=local, footprint=footprint,
                 made_local=True, min_past=MIN_PAST)
+    if brightness is not None:
+        looks = looks_of(brightness)
+    settle = brightness is not None
     change = (LARGE * look_noise(looks, s_times, max_gap, s_blocks) if looks is not None
               else 0.0)
     # (scan time only: windows without a reference flag a subset of what the start
@@ -1387,7 +1591,8 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     normal = (normal_look(looks, s_times, window, max_gap, s_blocks) if looks is not None
               else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
-                       looks=looks, change=change, crossed=True, **opts)
+                       looks=looks, change=change, crossed=True, brightness=brightness,
+                       **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -1406,12 +1611,13 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, "window", around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
-                           change=change, shown=True, normal=normal, crossed=True)
+                           change=change, shown=True, normal=normal, crossed=True,
+                           settle=settle)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, "window",
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change, True, normal, True)
+                       floor, local, footprint, MIN_PAST, change, True, normal, True, settle)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

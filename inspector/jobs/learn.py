@@ -46,7 +46,7 @@ from inspector.core.persistence import (
     STEP_CONDITIONS,
     Persistence,
     calibrate_persistence,
-    cell_looks,
+    cell_brightness,
     persistence_on,
 )
 from inspector.core.regimes import Regimes, appearance, assign, find_regimes
@@ -240,7 +240,8 @@ class PreparedSource:
     random offset per frame. ``record_appearance``: record each frame's global appearance
     (:func:`inspector.core.regimes.appearance`, for the regimes).
     ``cells``: the model's map shape (h, w), to record each frame's
-    :func:`~inspector.core.persistence.cell_looks` (for persistence; None: not recorded).
+    :func:`~inspector.core.persistence.cell_brightness` (for persistence; None: not
+    recorded).
     ``compression``: the exports' JPEG quantisation tables and chroma subsampling when the
     frames are learnt at their exported size (else None): the copies are then compressed
     anew as the camera compresses a frame (:func:`inspector.core.image.recompress`), since
@@ -263,8 +264,8 @@ class PreparedSource:
         self.measures: dict[int, dict[str, float]] = {}
         #: Global appearance of every frame, by position (for the regimes).
         self.appearance: dict[int, np.ndarray] = {}
-        #: Cell looks of every frame, by position (for persistence).
-        self.cell_looks: dict[int, np.ndarray] = {}
+        #: Cell brightness of every frame, by position (for persistence).
+        self.cell_brightness: dict[int, np.ndarray] = {}
         self._bank: np.ndarray | None = None  # drawn when first needed (not sent to workers)
 
     def __len__(self) -> int:
@@ -277,14 +278,14 @@ class PreparedSource:
 
     def collected(self) -> dict:
         return {"source": self.source.collected(), "measures": dict(self.measures),
-                "appearance": dict(self.appearance), "cell_looks": dict(self.cell_looks)}
+                "appearance": dict(self.appearance), "cell_brightness": dict(self.cell_brightness)}
 
     def absorb(self, record: dict) -> None:
         """Add a spawned copy's records."""
         self.source.absorb(record["source"])
         self.measures.update(record["measures"])
         self.appearance.update(record["appearance"])
-        self.cell_looks.update(record.get("cell_looks", {}))
+        self.cell_brightness.update(record.get("cell_brightness", {}))
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
@@ -334,8 +335,8 @@ class PreparedSource:
             rec = self.conditions.prepare(images[part], render=render)
             prepared[part] = rec.images
             if self.cells is not None:
-                for i, look in zip(idx[part], cell_looks(rec.aligned, self.cells)):
-                    self.cell_looks[int(i)] = look
+                for i, cells in zip(idx[part], cell_brightness(rec.aligned, self.cells)):
+                    self.cell_brightness[int(i)] = cells
             copies = {j: exposure_copy(images[start + j], gain, rng, rec.grey[j], self._noise())
                       for j, (gain, rng) in draws.items()}
             if self.compression is not None:
@@ -544,7 +545,7 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
     regimes, labels = _regimes(held, held_blocks, prepared.appearance, cs, alpha, tail, notes,
                                warnings)
     persistence = _persistence(held, held_blocks, labels, times, alpha, cfg, notes,
-                               prepared.cell_looks, warnings)
+                               prepared.cell_brightness, warnings)
     return Calibrated(used, good, calibration, regimes, persistence, notes, warnings)
 
 
@@ -709,16 +710,16 @@ def _masked_note(masking: dict) -> str:
 
 
 def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
-                 cfg: CameraConfig, notes: list[str], looks_by_frame: dict | None = None,
+                 cfg: CameraConfig, notes: list[str], brightness_by_frame: dict | None = None,
                  warnings: list[str] | None = None) -> Persistence | None:
     """Calibrate persistence on the held-out maps (cross-fitted, as the single-frame
     threshold) in capture-time order and say whether the camera is busy (a line in
     ``notes``); None when the normal frames have no run long enough. ``labels``: the
     regime of each held-out map, shape (n,) int, as :func:`_calibrated` assigned them (None:
-    one regime). ``looks_by_frame``: the frames' cell looks by position
-    (:attr:`PreparedSource.cell_looks`), used when every calibrating frame has one of the
-    maps' shape. ``warnings`` gets a line for each threshold of a camera with persistence
-    on that rests on one held-out window."""
+    one regime). ``brightness_by_frame``: the frames' cell brightness by position
+    (:attr:`PreparedSource.cell_brightness`), used when every calibrating frame has one of
+    the maps' shape. ``warnings`` gets a line for each threshold of a camera with
+    persistence on that rests on one held-out window."""
     maps = np.empty(held.maps.shape, np.float32)
     groups = np.zeros(len(held.index), int) if labels is None else labels  # as scored
     # Thresholds from the blocks the single-frame calibration keeps, standardised among
@@ -739,15 +740,15 @@ def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
     seconds = np.array([times[int(i)].timestamp() for i in held.index[order]])
     ko = order[kept[order]]
     scanned = (kept_maps[ko], seconds[kept[order]], held_blocks[ko])
-    mine = [None if looks_by_frame is None else looks_by_frame.get(int(i))
+    mine = [None if brightness_by_frame is None else brightness_by_frame.get(int(i))
             for i in held.index[ko]]
-    scanned_looks = (np.stack(mine) if mine and all(
+    scanned_brightness = (np.stack(mine) if mine and all(
         v is not None and v.shape == held.maps.shape[1:] for v in mine) else None)
     try:
         p = calibrate_persistence(maps[order], seconds, held_blocks[order], alpha,
                                   cfg.persistence.window, scanned,
                                   footprint=max(1, cfg.model.patch // cfg.model.stride),
-                                  looks=scanned_looks)
+                                  brightness=scanned_brightness)
     except ValueError as exc:
         notes.append(f"persistence not calibrated: {exc}")
         return None
@@ -769,6 +770,9 @@ def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
                     + (f", also in {p.window - 1} of {p.window + 1} frames that look alike "
                        f"where passers-by cross it in the others (calibrated with it)"
                        if p.crossed and p.change > 0 and p.start_threshold is not None else "")
+                    + ("; where the picture shows a thing settled (its look and brightness "
+                       "changed, then stayed), its lowest reading of the window counts"
+                       if p.settle else "")
                     + ("; the first frames of a run only where they look unlike the normal "
                        "frames (further from their median look than any window of them)"
                        if p.normal is not None and p.start_threshold is not None else "")

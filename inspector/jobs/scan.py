@@ -199,7 +199,7 @@ class Streams:
     def apply(self, baseline: Baseline, maps: np.ndarray, results: list[FrameResult],
               looks: np.ndarray | None = None) -> None:
         """Replace single-frame results of consecutive frames by persistence ones, in place
-        (``looks``: the frames' :func:`~inspector.core.persistence.cell_looks`, when
+        (``looks``: the frames' :meth:`~inspector.core.persistence.Persistence.cells`, when
         known)."""
         if not self.on(baseline) or not results:
             return

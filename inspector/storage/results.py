@@ -134,7 +134,7 @@ class FrameResult:
         Pixels clipped white whose light the model saw as a prediction (nonzero, as
         aligned; shown hatched on the overlay).
     look : ndarray, shape (h, w), float32, or None
-        The frame's :func:`~inspector.core.persistence.cell_looks`, for persistence applied
+        The frame's :meth:`~inspector.core.persistence.Persistence.cells`, for persistence applied
         later (a cluster's driver); None when not used.
     """
 
