@@ -21,6 +21,7 @@ from inspector.core.persistence import (
     Persistence,
     StreamState,
     _median_along,
+    _second_smallest,
     _sorted_along,
     calibrate_persistence,
     cell_brightness,
@@ -320,6 +321,8 @@ def test_a_thing_crossed_by_passers_by_in_its_first_frames_is_seen_through_them(
     for k in (1, 2, 5, 6):
         assert np.array_equal(np.stack(_sorted_along(stack[:k])), np.sort(stack[:k], axis=0))
         assert np.array_equal(_median_along(stack[:k]), np.median(stack[:k], axis=0))
+        if k >= 2:  # and its second smallest numpy.sort's
+            assert np.array_equal(_second_smallest(stack[:k]), np.sort(stack[:k], axis=0)[1])
     # seen_through against its docstring's formula cell by cell (numpy.median, numpy.sort),
     # by day and in a noisy stretch (the frames agreeing within the frames' own noise too)
     rng = np.random.default_rng(3)

@@ -601,7 +601,7 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     reference = _reference(frames[:-span], scale)
     usual = _median_along(before)
     apart = np.abs(before - centre)
-    kept = _sorted_along(apart)[1] if len(apart) > 2 else apart.min(axis=0)
+    kept = _second_smallest(apart) if len(apart) > 2 else apart.min(axis=0)
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
         if held_look is not None:
@@ -665,7 +665,7 @@ def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: i
     before = looks[:-window]
     if len(before) < min_past or any(v is None for v in looks):
         return None
-    reference = np.median(np.asarray(before, np.float32), axis=0)
+    reference = _median_along(before)
     if held_look is not None:
         reference = np.where(np.isnan(held_look), reference, held_look)
     return _departure(looks[-window:], reference, around), reference
@@ -674,7 +674,7 @@ def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: i
 def _odd_one(looks: list, change: float) -> np.ndarray:
     """Per cell, whether the newest of a window's ``looks`` differs from the median of the
     others by more than ``change``, bool (h, w)."""
-    return np.abs(looks[-1] - np.median(np.asarray(looks[:-1], np.float32), axis=0)) > change
+    return np.abs(looks[-1] - _median_along(looks[:-1])) > change
 
 
 def _by_look(looks: list, brightness) -> dict:
@@ -730,13 +730,13 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
         return None
     if reference is None:
-        reference = _median(before)
+        reference = _median_along(before)
         if held_look is not None:
             reference = np.where(np.isnan(held_look), reference, held_look)
     win = looks[-window:]
     own = _departs(win, reference, change)
     raw = [r[1] for r in raws]
-    before_raw = _median(raw[:-window])
+    before_raw = _median_along(raw[:-window])
     if held_bright is not None:
         before_raw = np.where(np.isnan(held_bright), before_raw, held_bright)
     moved = _departs(raw[-window:], before_raw, change)
@@ -748,23 +748,11 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     return own & moved & (flat_filter(agree, around, np.maximum) <= change), before_raw
 
 
-def _median(frames: list) -> np.ndarray:
-    """Per cell, the median of ``frames`` (arrays of one shape), float32 (as
-    ``np.median(frames, axis=0)``, from one sort: several times faster along a short first
-    axis)."""
-    q = np.sort(np.asarray(frames, np.float32), axis=0)
-    m = len(q)
-    return q[m // 2] if m % 2 else (q[m // 2 - 1] + q[m // 2]) / np.float32(2.0)
-
-
 def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:
     """Per cell, whether ``frames`` (a window's, oldest first) differ from ``reference`` by
     more than ``change`` in all of them but one, and in the newest, bool."""
-    diff = [np.abs(f - reference) for f in frames]
-    # the second smallest: the largest of the smallest of all but one
-    second = np.maximum.reduce([np.minimum.reduce(diff[:j] + diff[j + 1:])
-                                for j in range(len(diff))])
-    return (second > change) & (diff[-1] > change)
+    diff = np.abs(np.asarray(frames, np.float32) - reference)
+    return (_second_smallest(diff) > change) & (diff[-1] > change)
 
 
 def _departure(looks: list, reference: np.ndarray, around: int = 1) -> np.ndarray:
@@ -773,7 +761,7 @@ def _departure(looks: list, reference: np.ndarray, around: int = 1) -> np.ndarra
     largest over the ``around`` x ``around`` cells centred on the cell, shape (h, w)
     float32."""
     diff = np.abs(np.asarray(looks, np.float32) - reference)
-    change = np.partition(diff, 1, axis=0)[1] if len(diff) > 2 else diff.min(axis=0)
+    change = _second_smallest(diff) if len(diff) > 2 else diff.min(axis=0)
     return flat_filter(np.ascontiguousarray(change, np.float32), around, np.maximum)
 
 
@@ -1146,6 +1134,18 @@ def _lowest_and_second(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         second = below if second is None else np.maximum(second, below)
         top = np.maximum(top, x)
     return m.min(axis=0), second
+
+
+def _second_smallest(m: np.ndarray) -> np.ndarray:
+    """x(2) of each cell's values sorted along the first axis (as ``np.sort(m, axis=0)[1]``
+    for values without NaN), shape (m, h, w) float32, m >= 2: values picked, not computed,
+    by a running smallest and second smallest (as :func:`_lowest_and_second`)."""
+    low, second = m[0], None
+    for x in m[1:]:
+        above = np.maximum(low, x)  # the larger of the smallest so far and x
+        second = above if second is None else np.minimum(second, above)
+        low = np.minimum(low, x)
+    return second
 
 
 def _sorted_along(m: np.ndarray) -> list[np.ndarray]:
