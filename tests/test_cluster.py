@@ -173,9 +173,10 @@ def test_persistence_on_the_cluster_goes_across_partitions_as_in_one_pass(site, 
     assert any(r["time"].startswith("2026-11-20T08:07") for r in flagged)
 
 
-def test_cell_looks_are_measured_only_for_a_camera_whose_persistence_is_on(site):
-    # The looks feed persistence alone: a scan (and a cluster worker, persist=False, whose
-    # driver applies persistence) measures them only when the camera's persistence is on.
+def test_persistence_cells_are_measured_only_for_a_camera_whose_persistence_is_on(site):
+    # The cells (Persistence.cells: looks, or brightness for a settling baseline) feed
+    # persistence alone: a scan (and a cluster worker, persist=False, whose driver applies
+    # persistence) measures them only when the camera's persistence is on.
     root, cfg = site
     busy = _persistence_on(cfg, "looks.toml")
     baselines = BaselineCache(Store(root / "store"))
@@ -186,7 +187,7 @@ def test_cell_looks_are_measured_only_for_a_camera_whose_persistence_is_on(site)
         recorder = jc.Recorder()
         scan_files(files, baselines, recorder, load_config(path), persist=False)
         results = [r for rs, _, _ in recorder.calls for r in rs]
-        assert results and all((r.look is not None) == measured for r in results)
+        assert results and all((r.cells is not None) == measured for r in results)
 
 
 def test_a_worker_killed_mid_scan_loses_and_repeats_no_frame(site, client):

@@ -397,7 +397,11 @@ def test_a_settled_thing_read_unevenly_keeps_its_lowest_reading():
     # the brightness goes with the stream's state (the ledger's arrays) like the looks
     first = persistence(maps[:13], times[:13], 4, 10.0, brightness=bright[:13],
                         **dict(opts, looks=looks[:13]))
+    # under the keys a ledger has held since 0.11 (a state kept then reads as this one)
+    assert sorted(first.state.arrays()) == ["block", "brightness", "held", "held_brightness",
+                                            "held_look", "looks", "maps", "onset", "times"]
     saved = StreamState.from_arrays(first.state.arrays())
+    assert np.isfinite(saved.held_brightness).any() and saved.brightness.shape == (11, 6, 14)
     second = persistence(maps[13:], times[13:], 4, 10.0, state=saved, brightness=bright[13:],
                          **dict(opts, looks=looks[13:]))
     np.testing.assert_allclose(np.concatenate([first.maps, second.maps]), run.maps)

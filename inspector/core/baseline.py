@@ -37,7 +37,7 @@ class Scores:
         Threshold each frame was held to (its regime's; see :mod:`inspector.core.regimes`).
     regimes : ndarray, shape (n,), int, or None
         Regime of each frame (None when the baseline has one).
-    looks : ndarray, shape (n, h, w), float32, or None
+    cells : ndarray, shape (n, h, w), float32, or None
         The frames' :meth:`~inspector.core.persistence.Persistence.cells`, for persistence
         (None when it does not use them).
     """
@@ -49,7 +49,7 @@ class Scores:
     health: list = field(default_factory=list)
     thresholds: np.ndarray | None = None
     regimes: np.ndarray | None = None
-    looks: np.ndarray | None = None
+    cells: np.ndarray | None = None
 
 
 @dataclass
@@ -76,7 +76,7 @@ class Evaluation:
         Pixels whose brightness was only bounded, 255
         (:attr:`~inspector.core.conditions.Prepared.clipped`, as aligned): the model saw a
         prediction there; None when no frame has any.
-    looks : ndarray, shape (n, h, w), float32, or None
+    cells : ndarray, shape (n, h, w), float32, or None
         What the baseline's persistence measures of each aligned frame
         (:meth:`~inspector.core.persistence.Persistence.cells`), when it uses them.
     """
@@ -88,7 +88,7 @@ class Evaluation:
     gains: np.ndarray | None = None
     noise: np.ndarray | None = None
     clipped: np.ndarray | None = None
-    looks: np.ndarray | None = None
+    cells: np.ndarray | None = None
 
 
 @dataclass
@@ -168,7 +168,7 @@ class Baseline:
             return np.asarray(images)
         return self.conditions.prepare(images).images
 
-    def evaluate(self, images: np.ndarray, looks: bool = True) -> "Evaluation":
+    def evaluate(self, images: np.ndarray, cells: bool = True) -> "Evaluation":
         """The work of :meth:`score` that needs no other batch: preparation, health
         measures and the model's raw maps. Safe to run on several batches at once (e.g.
         in the decoding threads); :meth:`judge` finishes it in stream order.
@@ -176,7 +176,7 @@ class Baseline:
         Parameters
         ----------
         images : ndarray, shape (n, H, W, 3), uint8
-        looks : bool
+        cells : bool
             Also measure the frames' :meth:`~inspector.core.persistence.Persistence.cells` when
             the baseline's persistence uses them; False when its persistence will not run
             on these frames (a camera whose persistence is off: nothing reads them).
@@ -188,13 +188,13 @@ class Baseline:
         m = self.conditions.measures(rec) if self.conditions.health else None
         noise = self.conditions.noise_scale(rec)
         raw = self.model.score_maps(rec.images, noise=noise)
-        looks = (self.persistence.cells(rec.aligned, raw.shape[1:])
-                 if looks and self.persistence is not None and self.persistence.change > 0
-                 else None)
+        measured = (self.persistence.cells(rec.aligned, raw.shape[1:])
+                    if cells and self.persistence is not None and self.persistence.change > 0
+                    else None)
         return Evaluation(images, raw, m, rec.grey, rec.gains[:, 0], noise, rec.clipped,
-                          looks)
+                          measured)
 
-    def score(self, images: np.ndarray, sequence: bool = False, looks: bool = True
+    def score(self, images: np.ndarray, sequence: bool = False, cells: bool = True
               ) -> Scores:
         """Score RGB frames (n, H, W, 3) uint8 at the baseline's working size.
 
@@ -205,10 +205,10 @@ class Baseline:
             The frames continue the stream of the previous call with ``sequence=True``
             (scan and watch): the first is compared with the last of that call for a
             frozen feed.
-        looks : bool
+        cells : bool
             As in :meth:`evaluate`.
         """
-        return self.judge(self.evaluate(images, looks), sequence)
+        return self.judge(self.evaluate(images, cells), sequence)
 
     def judge(self, ev: "Evaluation", sequence: bool = False) -> Scores:
         """Scores from an :meth:`evaluate` result (``sequence`` as in :meth:`score`; batches
@@ -235,4 +235,4 @@ class Baseline:
         return Scores(maps=maps, scores=scores, p_values=p_values,
                       flagged=(scores > thresholds) & healthy, health=health,
                       thresholds=thresholds,
-                      regimes=labels if self.regimes is not None else None, looks=ev.looks)
+                      regimes=labels if self.regimes is not None else None, cells=ev.cells)

@@ -1403,18 +1403,20 @@ class Persistence:
     settle: bool = False
 
     def cells(self, grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
-        """What :meth:`run` takes of each frame (its ``looks``): the frames'
-        :func:`cell_brightness` when ``settle``, else their :func:`cell_looks`, shape
-        (n, h, w) float32 (``grey``, ``shape``: as for those)."""
+        """What :meth:`run` takes of each frame (its ``cells``): the frames'
+        :func:`cell_brightness` when ``settle`` (:meth:`run` makes the looks of them), else
+        their :func:`cell_looks`, shape (n, h, w) float32 (``grey``, ``shape``: as for
+        those)."""
         return (cell_brightness if self.settle else cell_looks)(grey, shape)
 
     def run(self, maps: np.ndarray, times: np.ndarray, state: StreamState | None = None,
-            looks: np.ndarray | None = None) -> PersistenceResult:
-        """:func:`persistence` of a camera's frames with these settings and thresholds
-        (``looks``: the frames' :meth:`cells`, when known)."""
-        bright = None
-        if self.settle and looks is not None:
-            bright, looks = looks, looks_of(looks)
+            cells: np.ndarray | None = None) -> PersistenceResult:
+        """:func:`persistence` of a camera's frames with these settings and thresholds:
+        ``maps`` (n, h, w) and ``times`` (n,) as there, ``state`` the state after the
+        previous call, ``cells`` (n, h, w) float32 the frames' :meth:`cells` when known."""
+        looks, bright = cells, None
+        if self.settle and cells is not None:
+            looks, bright = looks_of(cells), cells
         return persistence(maps, times, self.window, self.max_gap, self.threshold.value,
                            state, past=self.past, robust=self.robust,
                            start_threshold=(self.start_threshold.value

@@ -208,9 +208,9 @@ class Recorder:
         for results, skipped, seen in self.calls:
             mine = [r for r in results if baseline is not None and r.version == baseline.version]
             if streams is not None and mine and streams.on(baseline):
-                looks = (np.stack([r.look for r in mine])
-                         if all(r.look is not None for r in mine) else None)
-                streams.apply(baseline, np.stack([r.amap for r in mine]), mine, looks)
+                cells = (np.stack([r.cells for r in mine])
+                         if all(r.cells is not None for r in mine) else None)
+                streams.apply(baseline, np.stack([r.amap for r in mine]), mine, cells)
                 for r in mine:
                     if r.flagged and not r.image.size:
                         r.image = read_frame(by_rel[r.frame], **read_args(baseline, config)).image

@@ -131,7 +131,7 @@ def compare_versions(store: Store, config: Config, camera: str, old: str | None,
     for b in baselines:
         got: dict[str, float] = {}
         for batch in iter_batches(files, 32,
-                                  work=lambda images, b=b: b.score(images, looks=False).scores,
+                                  work=lambda images, b=b: b.score(images, cells=False).scores,
                                   **read_args(b, config)):
             unreadable.update(str(f.path) for f, _ in batch.errors)
             if batch.frames:

@@ -113,7 +113,7 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
         return []
     if evaluation is None:
         evaluation = baseline.evaluate(np.stack([f.image for f in frames]),
-                                       looks=streams is not None and streams.on(baseline))
+                                       cells=streams is not None and streams.on(baseline))
     s = baseline.judge(evaluation, sequence=True)
     amplified = _amplified(baseline, evaluation, len(frames))
     clipped = evaluation.clipped
@@ -125,10 +125,10 @@ def score_frames(baseline: Baseline, frames: Sequence[Frame],
                         health=s.health[i] if s.health else [], mask=baseline.mask,
                         amplified=amplified[i],
                         clipped=None if clipped is None else clipped[i],
-                        look=None if s.looks is None else s.looks[i])
+                        cells=None if s.cells is None else s.cells[i])
                for i, f in enumerate(frames)]
     if streams is not None:
-        streams.apply(baseline, s.maps, results, s.looks)
+        streams.apply(baseline, s.maps, results, s.cells)
     if notes is not None:
         for f in frames:
             notes.update(f"{baseline.camera}: {n}" for n in f.notes)
@@ -197,9 +197,9 @@ class Streams:
                               self.config.camera(baseline.camera).persistence.mode)
 
     def apply(self, baseline: Baseline, maps: np.ndarray, results: list[FrameResult],
-              looks: np.ndarray | None = None) -> None:
+              cells: np.ndarray | None = None) -> None:
         """Replace single-frame results of consecutive frames by persistence ones, in place
-        (``looks``: the frames' :meth:`~inspector.core.persistence.Persistence.cells`, when
+        (``cells``: the frames' :meth:`~inspector.core.persistence.Persistence.cells`, when
         known)."""
         if not self.on(baseline) or not results:
             return
@@ -211,7 +211,7 @@ class Streams:
                 version, state = self.ledger.stream(cam) or ("", None)
             if version != baseline.version:
                 state = None
-            run = p.run(maps, np.array([r.time.timestamp() for r in results]), state, looks)
+            run = p.run(maps, np.array([r.time.timestamp() for r in results]), state, cells)
             self._states[cam] = (baseline.version, run.state)
             if self.ledger is not None:
                 self.ledger.keep_stream(cam, baseline.version, run.state.arrays())
@@ -333,10 +333,10 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
                 cam_files = stream_order(cam_files, config)
             # Decoding, preparation, health measures and the model run in the worker
             # threads, batch by batch; the stream-ordered rest (frozen feed, thresholds)
-            # and the writing here, in order. The cell looks only for a camera whose
-            # persistence is on (with ``persist=False`` too: a cluster's driver applies
+            # and the writing here, in order. The cells persistence measures only for a
+            # camera whose persistence is on (with ``persist=False`` too: a cluster's driver applies
             # persistence to what the workers measured).
-            work = functools.partial(baseline.evaluate, looks=on)
+            work = functools.partial(baseline.evaluate, cells=on)
             for batch in iter_batches(cam_files, BATCH, workers=workers,
                                       work=work, **read_args(baseline, config)):
                 if batch.errors:

@@ -133,9 +133,9 @@ class FrameResult:
     clipped : ndarray, shape (H, W), uint8, or None
         Pixels clipped white whose light the model saw as a prediction (nonzero, as
         aligned; shown hatched on the overlay).
-    look : ndarray, shape (h, w), float32, or None
-        The frame's :meth:`~inspector.core.persistence.Persistence.cells`, for persistence applied
-        later (a cluster's driver); None when not used.
+    cells : ndarray, shape (h, w), float32, or None
+        The frame's :meth:`~inspector.core.persistence.Persistence.cells`, for persistence
+        applied later (a cluster's driver); None when not used.
     """
 
     frame: str
@@ -154,7 +154,7 @@ class FrameResult:
     since: datetime | None = None
     amplified: tuple[float, float] | None = None
     clipped: np.ndarray | None = None
-    look: np.ndarray | None = None
+    cells: np.ndarray | None = None
 
     @property
     def noise_amplified(self) -> float | None:
