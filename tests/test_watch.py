@@ -573,8 +573,8 @@ def test_a_busy_frame_drawn_on_the_spot_is_scored_as_in_the_stream(env):
     # is the frame scored with the frames before it (jobs.scan.in_stream). The reference is
     # the scan of the whole stream: the same score, persistence map and since.
     from inspector.config import load_config
-    from inspector.jobs.scan import BaselineCache, in_stream
-    from inspector.storage.frames import discover
+    from inspector.jobs.scan import BaselineCache, in_stream, read_args
+    from inspector.storage.frames import discover, read_frame
     from inspector.storage.store import Store
 
     cfg = env["tmp"] / "busy.toml"
@@ -587,8 +587,10 @@ def test_a_busy_frame_drawn_on_the_spot_is_scored_as_in_the_stream(env):
     flagged = {r["frame"]: r for r in csv_rows(env["out"] / "flagged.csv")}
     files = {f.rel: f for f in discover(env["src"])[0]}
     baseline = BaselineCache(Store(env["store"])).get("dock")
-    for rel in (f"dock/{name('dock', 37)}", f"dock/{name('dock', 32)}"):
-        got = in_stream(baseline, load_config(cfg), files[rel], env["src"] / "dock")
+    for rel, read in ((f"dock/{name('dock', 37)}", True), (f"dock/{name('dock', 32)}", False)):
+        # (the page hands over the frame it has read; without one, in_stream reads it)
+        frame = read_frame(files[rel], **read_args(baseline, load_config(cfg))) if read else None
+        got = in_stream(baseline, load_config(cfg), files[rel], env["src"] / "dock", frame)
         assert got.score == pytest.approx(float(scanned[rel]["score"]), abs=1e-3)
         assert got.flagged == (rel in flagged)
     assert got.since is None and rel not in flagged  # frame 32: nothing has stayed yet

@@ -355,13 +355,14 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
     return summary
 
 
-def in_stream(baseline: Baseline, config: Config, file: FrameFile, folder: Path
-              ) -> FrameResult | None:
+def in_stream(baseline: Baseline, config: Config, file: FrameFile, folder: Path,
+              frame: Frame | None = None) -> FrameResult | None:
     """One frame scored as a scan of its camera's stream scores it, when the camera runs
     with persistence: with the frames before it among the frame files under ``folder``
     (the camera's) filling its window; None for a camera without persistence. For a picture
-    drawn on the spot (the review page). Raises FrameError when ``file`` cannot be read;
-    an earlier frame that cannot be read is left out, as a scan leaves it out."""
+    drawn on the spot (the review page). ``frame``: ``file`` already read (else it is read
+    here; FrameError when it cannot be). An earlier frame that cannot be read is left out,
+    as a scan leaves it out."""
     streams = Streams(config)
     if not streams.on(baseline):
         return None
@@ -376,7 +377,7 @@ def in_stream(baseline: Baseline, config: Config, file: FrameFile, folder: Path
             frames.append(read_frame(f, **read_args(baseline, config)))
         except FrameError:
             continue
-    frames.append(read_frame(file, **read_args(baseline, config)))
+    frames.append(frame if frame is not None else read_frame(file, **read_args(baseline, config)))
     return score_frames(baseline.continue_from(None), frames, streams=streams)[-1]
 
 

@@ -423,7 +423,7 @@ def drawn_picture(r: Review, item: Item, path: Path, kind: str) -> bytes:
         if kind == "expected":
             return _encode(b.model.expected(b.prepare(frame.image[None]))[0], ".png")
         # A camera with persistence: its region over the frames before it, as scanned.
-        scored = in_stream(b, r.config, file, r.results.source / item.camera)
+        scored = in_stream(b, r.config, file, r.results.source / item.camera, frame)
         if scored is None:
             scored = score_frames(b.continue_from(None), [frame])[0]
     _ok, buf = cv2.imencode(".jpg", overlay_picture(scored), [cv2.IMWRITE_JPEG_QUALITY, 90])
