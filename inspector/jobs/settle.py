@@ -33,16 +33,15 @@ from inspector.storage.frames import (
     is_ignored_name,
 )
 from inspector.storage.ledger import Ledger
+from inspector.storage.results import Seen
 
 
-@dataclass
-class Arrival:
-    """A complete file (or one gone before it could be read), to be scored or recorded."""
+@dataclass(frozen=True)
+class Arrival(Seen):
+    """A complete file (or one gone before it could be read), to be scored or recorded: the
+    file as found (its ledger row's facts, :class:`~inspector.storage.results.Seen`) and
+    what it is."""
 
-    path: str
-    size: int | None
-    mtime: float | None
-    seen_at: str
     #: time.monotonic() when it was found complete (for the lag).
     ready: float
     file: FrameFile | None = None
@@ -240,20 +239,16 @@ class Settler:
         """The file is complete (or gone): make it ready unless it is already in hand."""
         if self.in_hand(path, size, mtime):
             return
-        arrival = Arrival(path, size, mtime, now_iso(), time.monotonic())
+        seen_at, ready = now_iso(), time.monotonic()
         if gone:
             rel = Path(path).relative_to(self.root).as_posix()
-            cam = rel.split("/")[0] if "/" in rel else ""
-            arrival.skip = Skip(rel, cam, gone)
+            found = Skip(rel, rel.split("/")[0] if "/" in rel else "", gone)
         else:
             found = frame_file(Path(path), self.root)
             if found is None:
                 return
-            if isinstance(found, Skip):
-                arrival.skip = found
-            else:
-                arrival.file = found
-        self.ready.append(arrival)
+        file, skip = (None, found) if isinstance(found, Skip) else (found, None)
+        self.ready.append(Arrival(path, size, mtime, seen_at, ready, file, skip))
 
     def catch_up(self) -> None:
         """Find every frame not yet done (arrived while the tool was down, or missed)."""

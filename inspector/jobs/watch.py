@@ -366,7 +366,7 @@ class Watcher:
         by_camera: dict[str, list[Arrival]] = {}
         for it in todo:
             rel = it.skip.rel if it.skip is not None else it.file.rel
-            seen[rel] = Seen(it.path, it.size, it.mtime, it.seen_at)
+            seen[rel] = it  # (an Arrival is the Seen the ledger row takes)
             if it.skip is not None:
                 skipped.append(Skipped(it.skip.rel, it.skip.camera, it.skip.reason))
             else:
