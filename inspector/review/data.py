@@ -17,6 +17,7 @@ from dataclasses import dataclass, field
 from datetime import date, datetime
 from html import escape
 from pathlib import Path
+from typing import NamedTuple
 from urllib.parse import urlencode
 
 from inspector.storage.labels import LABEL_TEXT as LABEL_WORDS
@@ -82,6 +83,19 @@ class Point:
     flagged: bool
     item: str
     path: str = ""
+
+
+class Scored(NamedTuple):
+    """A scored frame as an all-scores file or the ledger gives it (a timeline point to be)."""
+
+    camera: str
+    path: Path
+    rel: str
+    time: datetime
+    score: float
+    threshold: float
+    version: str
+    noise_amplified: float | None
 
 
 class Results:
@@ -202,35 +216,38 @@ class Results:
         for f in flagged:
             seen[(f.camera, str(f.path))] = Point(f.camera, f.time, f.score, f.threshold, True,
                                                   owner.get(str(f.path), f.id), str(f.path))
-        extra: list[tuple[str, Path, str, datetime, float, float, str, float | None]] = []
+        extra: list[Scored] = []
         for name in ALL_SCORES_NAMES:
             for row in _rows(self.out / name, None):
                 try:
-                    extra.append((row["camera"], self.path_of(row["frame"]), row["frame"],
-                                  parse_time(row["time"]), float(row["score"]),
-                                  float(row["threshold"]), _baseline(row),
-                                  _optional(row.get("noise_amplified"))))
+                    extra.append(Scored(row["camera"], self.path_of(row["frame"]), row["frame"],
+                                        parse_time(row["time"]), float(row["score"]),
+                                        float(row["threshold"]), _baseline(row),
+                                        _optional(row.get("noise_amplified"))))
                 except (KeyError, TypeError, ValueError):
                     continue
         extra += self._ledger()
         n = 0
-        for camera, path, rel, when, score, thr, version, noise in extra:
-            key = (camera, str(path))
+        for s in extra:
+            key = (s.camera, str(s.path))
             if key in seen:
                 continue
             n += 1
-            item = Item(id=f"p{n}", kind="frame", camera=camera, rel=rel, path=path, time=when,
-                        score=score, threshold=thr, p_value=math.nan, version=version,
-                        flagged=score > thr, members=[str(path)], noise_amplified=noise)
+            above = s.score > s.threshold
+            item = Item(id=f"p{n}", kind="frame", camera=s.camera, rel=s.rel, path=s.path,
+                        time=s.time, score=s.score, threshold=s.threshold, p_value=math.nan,
+                        version=s.version, flagged=above, members=[str(s.path)],
+                        noise_amplified=s.noise_amplified)
             self.items[item.id] = item
-            seen[key] = Point(camera, when, score, thr, score > thr, item.id, str(path))
+            seen[key] = Point(s.camera, s.time, s.score, s.threshold, above, item.id,
+                              str(s.path))
         points = sorted(seen.values(), key=lambda p: (p.camera, p.time))
         by_cam: dict[str, list[Point]] = {}
         for p in points:
             by_cam.setdefault(p.camera, []).append(p)
         self.points = [p for ps in by_cam.values() for p in ps[-MAX_POINTS:]]
 
-    def _ledger(self) -> list:
+    def _ledger(self) -> list[Scored]:
         """Scored frames of the scanned folder from the ledger (read only)."""
         if self.database is None:
             return []
@@ -239,9 +256,9 @@ class Results:
             try:
                 p = Path(r["path"])
                 rel = p.relative_to(self.source).as_posix()
-                out.append((r["camera"], p, rel, parse_time(r["capture_time"]),
-                            float(r["score"]), float(r["threshold"]), r["version"] or "",
-                            _optional(_column(r, "noise_amplified"))))
+                out.append(Scored(r["camera"], p, rel, parse_time(r["capture_time"]),
+                                  float(r["score"]), float(r["threshold"]), r["version"] or "",
+                                  _optional(_column(r, "noise_amplified"))))
             except (TypeError, ValueError):
                 continue
         return out
