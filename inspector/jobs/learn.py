@@ -176,6 +176,9 @@ class FileSource:
         return copy
 
     def collected(self) -> dict:
+        """This copy's records, for the :meth:`absorb` of the source it was spawned from
+        (picklable, as a pooled run sends them back): the frames it could not decode and
+        its reading notes."""
         return {"skipped": dict(self.skipped), "notes": Counter(self.notes)}
 
     def absorb(self, record: dict) -> None:
@@ -277,6 +280,9 @@ class PreparedSource:
                               self.record_appearance, self.compression, self.cells)
 
     def collected(self) -> dict:
+        """This copy's records, for the :meth:`absorb` of the source it was spawned from
+        (picklable): its frame source's, and the health measures, appearances and cell
+        brightness of the frames it prepared, by position."""
         return {"source": self.source.collected(), "measures": dict(self.measures),
                 "appearance": dict(self.appearance), "cell_brightness": dict(self.cell_brightness)}
 
@@ -285,7 +291,7 @@ class PreparedSource:
         self.source.absorb(record["source"])
         self.measures.update(record["measures"])
         self.appearance.update(record["appearance"])
-        self.cell_brightness.update(record.get("cell_brightness", {}))
+        self.cell_brightness.update(record["cell_brightness"])
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
