@@ -760,31 +760,7 @@ def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
         return None
     mode = cfg.persistence.mode
     on = persistence_on(p.busy, mode)
-    apart = (f" (frames {p.span / p.window / 60:.0f} min apart: too far apart to tell passing "
-             f"from staying)" if p.span > MAX_SPAN else "")
-    notes.append(f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
-                 f"frames hold large short-lived anomalies{apart}; persistence "
-                 f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}"
-                 + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f}"
-                    + (f" on the change from the {p.past} frames before, "
-                       f"{p.start_threshold.value:.3f} for the first frames of a run"
-                       if p.start_threshold is not None else "")
-                    + f"; at least {p.floor:.3f}, the steady level {alpha:.3g} of normal "
-                      f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
-                    + (f"; a change counts where the picture changed (log brightness by more "
-                       f"than {p.change:.3f})" if p.change > 0 else "")
-                    + (f", also in {p.window - 1} of {p.window + 1} frames that look alike "
-                       f"where passers-by cross it in the others (calibrated with it)"
-                       if p.crossed and p.change > 0 and p.start_threshold is not None else "")
-                    + ("; where the picture shows a thing settled (its look and brightness "
-                       "changed, then stayed), its lowest reading of the window counts"
-                       if p.settle else "")
-                    + ("; the first frames of a run only where they look unlike the normal "
-                       "frames (further from their median look than any window of them)"
-                       if p.normal is not None and p.start_threshold is not None else "")
-                    + f"; frames reported {' or '.join(sorted(STEP_CONDITIONS))} are still "
-                      f"judged, against the frames just before them (and stay in health.csv)"
-                    if on else ": single-frame flags"))
+    notes.append(_persistence_note(p, on, mode, alpha))
     if on and warnings is not None:
         warnings += [f"persistence threshold for {which} {value:.3g} rests on one held-out "
                      f"window, more than {LARGE:g}x the next ({below:.3g}): what steps up less "
@@ -792,6 +768,36 @@ def _persistence(held, held_blocks, labels: np.ndarray | None, times, alpha,
                      f"light, its traffic) would spread it"
                      for which, value, below in p.lone()]
     return p
+
+
+def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
+    """Learn's note on a calibrated persistence: busy or quiet, on or off (``mode``: the
+    config's), and when on, what it flags (``alpha``: the calibration's rate)."""
+    apart = (f" (frames {p.span / p.window / 60:.0f} min apart: too far apart to tell passing "
+             f"from staying)" if p.span > MAX_SPAN else "")
+    return (f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
+            f"frames hold large short-lived anomalies{apart}; persistence "
+            f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}"
+            + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f}"
+               + (f" on the change from the {p.past} frames before, "
+                  f"{p.start_threshold.value:.3f} for the first frames of a run"
+                  if p.start_threshold is not None else "")
+               + f"; at least {p.floor:.3f}, the steady level {alpha:.3g} of normal "
+                 f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
+               + (f"; a change counts where the picture changed (log brightness by more "
+                  f"than {p.change:.3f})" if p.change > 0 else "")
+               + (f", also in {p.window - 1} of {p.window + 1} frames that look alike "
+                  f"where passers-by cross it in the others (calibrated with it)"
+                  if p.crossed and p.change > 0 and p.start_threshold is not None else "")
+               + ("; where the picture shows a thing settled (its look and brightness "
+                  "changed, then stayed), its lowest reading of the window counts"
+                  if p.settle else "")
+               + ("; the first frames of a run only where they look unlike the normal "
+                  "frames (further from their median look than any window of them)"
+                  if p.normal is not None and p.start_threshold is not None else "")
+               + f"; frames reported {' or '.join(sorted(STEP_CONDITIONS))} are still "
+                 f"judged, against the frames just before them (and stay in health.csv)"
+               if on else ": single-frame flags"))
 
 
 def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store
