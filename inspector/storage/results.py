@@ -34,7 +34,7 @@ from typing import TYPE_CHECKING
 import cv2
 import numpy as np
 
-from inspector.clock import iso_time, now, now_iso  # noqa: F401 - iso_time for readers
+from inspector.clock import iso_time, now, now_iso
 from inspector.core.events import (
     EVENT_COLUMNS,
     Event,
