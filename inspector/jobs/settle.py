@@ -25,13 +25,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from inspector.clock import now_iso
-from inspector.storage.frames import (
-    FrameFile,
-    Skip,
-    discover,
-    frame_file,
-    is_ignored_name,
-)
+from inspector.names import is_ignored_name
+from inspector.storage.frames import FrameFile, Skip, discover, frame_file
 from inspector.storage.ledger import Ledger
 from inspector.storage.results import Seen
 

@@ -25,7 +25,7 @@ import numpy as np
 from PIL import Image
 
 from inspector.errors import FrameError
-from inspector.names import is_ignored_name  # noqa: F401 - also imported from here
+from inspector.names import is_ignored_name
 
 # Corrupt files are reported as skips, not as decoder chatter on stderr.
 try:
