@@ -133,8 +133,9 @@ class ConditionSettings:
     #: Health limits before they are widened by what the normal frames show: 99th
     #: percentile of grey below which a frame is underexposed; share of clipped pixels above
     #: which it is overexposed; share of textured cells lost from view above which the lens is
-    #: covered; sharpness relative to normal below which it is out of focus; mean absolute
-    #: difference to the previous frame (grey levels) below which the feed is frozen.
+    #: covered; detail of the textured cells (their median) relative to normal below which
+    #: it is out of focus; mean absolute difference to the previous frame (grey levels) below
+    #: which the feed is frozen.
     dark_level: float = 20.0
     overexposed_share: float = 0.5
     covered_share: float = 0.5

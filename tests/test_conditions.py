@@ -37,7 +37,6 @@ from inspector.core.image import (
     refine_shift,
     robust_gain_offset,
     robust_gains,
-    sharpness,
     shift_terms,
     subpixel_levels,
     trusted,
@@ -236,13 +235,6 @@ def test_clip_loss_predicts_clipping_finer_than_a_working_pixel():
     assert np.abs(naive - real)[below].max() > 40
     assert np.abs(predicted - real)[below].max() < 6
     assert np.abs(predicted - real)[below].mean() < 0.5 * np.abs(naive - real)[below].mean()
-
-
-def test_sharpness_drops_when_out_of_focus():
-    ref = _camera_image()
-    blurred = cv2.GaussianBlur(ref, (0, 0), 2.0)
-    assert sharpness(blurred) / sharpness(ref) < 0.35
-    assert sharpness(ref * 0.4) == pytest.approx(sharpness(ref), rel=1e-3)  # blind to gain
 
 
 def test_noise_estimate_and_exposure_copies_keep_the_sensor_noise():

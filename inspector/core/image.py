@@ -1,5 +1,5 @@
 """Image measures of camera frames: grey levels, robust brightness fits, registration by
-phase correlation, brightness fields, sharpness, per-cell detail and noise.
+phase correlation, brightness fields, per-cell detail and noise.
 
 Pure functions over numpy arrays; :mod:`inspector.core.conditions` builds on them.
 """
@@ -627,15 +627,6 @@ class _CellGrid:
 def _cell_grid(h: int, w: int, k: int, sigma: float) -> _CellGrid:
     """:class:`_CellGrid` of these sizes, made once."""
     return _CellGrid(h, w, k, sigma)
-
-
-def sharpness(g: np.ndarray) -> float:
-    """Variance of the Laplacian over the variance of the image (Pech-Pacheco et al. 2000,
-    "Diatom autofocusing in brightfield microscopy"); dividing by the image variance makes it
-    blind to gain, so a darker frame does not look blurred."""
-    g = np.asarray(g, np.float32)
-    lap = cv2.Laplacian(g, cv2.CV_32F, ksize=3)
-    return float(lap.var() / max(float(g.var()), 1e-3))
 
 
 @lru_cache(maxsize=16)
