@@ -412,8 +412,9 @@ class Conditions(Estimator):
 
     def set_limits(self, m: dict[str, np.ndarray]) -> None:
         """Health limits from ``limits`` widened by the measures ``m`` of normal frames
-        (see :meth:`fit`), and ``gain_max_`` from their ``gain`` when given; call again with
-        the measures of all normal frames when known."""
+        (:meth:`measures`: each of shape (n,); see :meth:`fit`), and ``gain_max_`` from
+        their ``gain`` when given; call again with the measures of all normal frames when
+        known."""
         self.check_fitted()
         if "gain" in m and len(m["gain"]):
             self.gain_max_ = float(np.max(m["gain"]))
@@ -960,6 +961,11 @@ class Conditions(Estimator):
 
     def conditions(self, m: dict[str, np.ndarray]) -> list[list[tuple[str, float, float]]]:
         """Health conditions of each frame from its measures.
+
+        Parameters
+        ----------
+        m : dict of str to ndarray, shape (n,)
+            The frames' :meth:`measures`.
 
         Returns
         -------

@@ -292,9 +292,10 @@ def _hanning(shape: tuple[int, int]) -> np.ndarray:
 
 def correlation(a: np.ndarray, b: np.ndarray, keep: np.ndarray | None = None,
                 terms: tuple | None = None) -> float:
-    """Pearson correlation of two images over the kept pixels, a 10-pixel margin left out
-    (the edges a shift moves in); ``terms``: :func:`correlation_terms` of ``b`` and
-    ``keep`` when made before (``b`` and ``keep`` are then not read)."""
+    """Pearson correlation of two grey images ``a`` and ``b`` (H, W) over the kept pixels
+    (``keep``: (H, W) bool, None: all), a 10-pixel margin left out (the edges a shift moves
+    in); ``terms``: :func:`correlation_terms` of ``b`` and ``keep`` when made before (``b``
+    and ``keep`` are then not read)."""
     sel, index, y, yy = correlation_terms(b, keep) if terms is None else terms
     x = a[sel] if index is None else np.take(a, index)
     x = x - x.mean()
@@ -892,7 +893,7 @@ def clip_loss(mean: np.ndarray, spread: np.ndarray, level: float = 255.0) -> np.
 
 
 def noise_sigma(g: np.ndarray) -> float:
-    """Standard deviation of white noise in an image.
+    """Standard deviation of white noise in a grey image ``g`` (H, W), in its grey levels.
 
     The image is filtered with the difference of two Laplacians of Immerkaer (1996, "Fast
     noise variance estimation", Computer Vision and Image Understanding 64(2)), which
