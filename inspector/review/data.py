@@ -208,6 +208,10 @@ class Results:
         return events
 
     def _read_points(self, flagged: list[Item], events: list[Item]) -> None:
+        """The timelines (:attr:`points`, the newest :data:`MAX_POINTS` of each camera):
+        the ``flagged`` frames (a click opens their event when they are in one), then every
+        other scored frame of the all-scores files and the ledger, each also made an item
+        (``p<n>``) of :attr:`items`."""
         owner = {}
         for e in events:
             for m in e.members:
