@@ -516,15 +516,8 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
                                for k in ("dark", "bright", "covered", "focus", "gain")})
     cs = cfg.calibration
     good = [t for i, t in enumerate(times) if i not in source.skipped]
-    alpha, notes = cs.alpha, []
-    if cs.alarms_per_day > 0:
-        try:
-            alpha, per_day, days = alarms_to_alpha(cs.alarms_per_day, good)
-        except ValueError as exc:
-            raise UsageError(f"camera {camera}: alarms_per_day is set but {exc}") from None
-        notes.append(f"{cs.alarms_per_day:g} false alarms a day at {per_day:.0f} frames a day "
-                     f"(counted over {days} capture day{'s' if days != 1 else ''}): "
-                     f"false-alarm rate {alpha:.3g} per frame")
+    notes: list[str] = []
+    alpha = _alpha(cs, camera, good, notes)
     # A budget in alarms per day can ask for a rate far below what the normal frames
     # support: then the tail is extrapolated (and only 1/(n+1) is guaranteed). A plain
     # alpha keeps the exact conformal threshold (the largest score, guaranteeing 1/(n+1),
@@ -553,6 +546,23 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
     persistence = _persistence(held, held_blocks, labels, times, alpha, cfg, notes,
                                prepared.cell_brightness, warnings)
     return Calibrated(used, good, calibration, regimes, persistence, notes, warnings)
+
+
+def _alpha(cs: CalibrationSettings, camera: str, times: list, notes: list[str]) -> float:
+    """The false-alarm rate per frame the threshold is set for: ``cs.alpha``, or with an
+    alarm budget (``cs.alarms_per_day``) the rate it gives over the capture ``times`` of the
+    frames used, with a line in ``notes`` on how. Raises UsageError when the budget cannot
+    be made a rate."""
+    if cs.alarms_per_day <= 0:
+        return cs.alpha
+    try:
+        alpha, per_day, days = alarms_to_alpha(cs.alarms_per_day, times)
+    except ValueError as exc:
+        raise UsageError(f"camera {camera}: alarms_per_day is set but {exc}") from None
+    notes.append(f"{cs.alarms_per_day:g} false alarms a day at {per_day:.0f} frames a day "
+                 f"(counted over {days} capture day{'s' if days != 1 else ''}): "
+                 f"false-alarm rate {alpha:.3g} per frame")
+    return alpha
 
 
 def _regimes(held, held_blocks: np.ndarray, appearances: dict, cs: CalibrationSettings,
@@ -830,11 +840,9 @@ def _planned_alpha(cfg: CameraConfig, times) -> float | None:
     cs = cfg.calibration
     if cs.regimes and cs.max_regimes > 1:
         return None
-    if cs.alarms_per_day <= 0:
-        return cs.alpha
     try:
-        return alarms_to_alpha(cs.alarms_per_day, times)[0]
-    except ValueError:  # (reported after the fit)
+        return _alpha(cs, cfg.name, times, [])
+    except UsageError:  # (reported after the fit)
         return None
 
 
