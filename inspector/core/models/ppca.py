@@ -60,10 +60,21 @@ CHUNK = 256
 #: Absolute tolerance of the bisection in :func:`batched_eigh` (twice the safe minimum, as
 #: LAPACK advises for the most accurate eigenvalues).
 ABSTOL = 2 * float(np.finfo(np.float64).tiny)
+#: Relative residual ``||C v - theta v|| / ||C||`` at which :func:`top_eigh_from` takes an
+#: eigenpair: eigenvalues then agree with LAPACK's to round-off (the error is second order
+#: in the residual) and vectors to about ``EIG_TOL / relative gap``.
+EIG_TOL = 1e-10
+#: Extra vectors in :func:`top_eigh_from`'s block beyond the wanted ones.
+EIG_GUARD = 4
+#: Matrices :func:`batched_eigh` hands :func:`top_eigh_from` at once: its filter multiplies
+#: them again and again, so they are kept within a core's cache (24 of 96 x 96 float64 are
+#: 1.8 MB; 2 MB of L2 here); also its filter degree is chosen per group.
+FROM_START_CHUNK = 24
 
 
 def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
-                 top: int | None = None, chunk: int = 128, all_values: bool = True):
+                 top: int | None = None, chunk: int = 128, all_values: bool = True,
+                 start: np.ndarray | None = None):
     """``numpy.linalg.eigh`` over a stack of small symmetric matrices, faster and leaner.
 
     A multi-threaded BLAS spends most of its time synchronising on matrices this small
@@ -76,17 +87,23 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
     then bisection and inverse iteration for the wanted pairs alone): as exact as the full
     decomposition, at 0.19 ms instead of 0.63 ms for the top pair of a 96 x 96 matrix
     (0.34 ms for five; no gain beyond about twelve: measured on patch covariances, one
-    thread).
+    thread). With ``start`` as well (vectors near the wanted ones, e.g. those of a
+    closely related covariance) they are found by :func:`top_eigh_from` instead, which
+    skips the reduction, to a residual of :data:`EIG_TOL`; LAPACK takes the matrices it
+    leaves.
 
     Parameters
     ----------
     cov : ndarray, shape (L, d, d)
+        Symmetric (positive semi-definite when ``start`` is given).
     vectors : bool
     top : int, optional
         Keep only the eigenvectors of the ``top`` largest eigenvalues (a PPCA of latent
         size q <= top needs no others): the output is then (L, d, top), not (L, d, d).
     all_values : bool
         False: return only the ``top`` largest eigenvalues (needs ``top``).
+    start : ndarray, shape (L, d, m), optional
+        Starting vectors for :func:`top_eigh_from` (used with ``all_values`` False).
 
     Returns
     -------
@@ -106,7 +123,18 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
         if subset:
             from scipy.linalg import lapack
 
-            for i in range(bounds[k], bounds[k + 1]):
+            left = range(part.start, part.stop)
+            if start is not None:
+                left = []
+                for a in range(part.start, part.stop, FROM_START_CHUNK):
+                    few = slice(a, min(a + FROM_START_CHUNK, part.stop))
+                    w, v, done = top_eigh_from(np.asarray(cov[few], np.float64), keep,
+                                               start[few])
+                    evals[few] = w
+                    if vectors:
+                        evecs[few] = v
+                    left += list(a + np.flatnonzero(~done))
+            for i in left:
                 w, v, m, _, info = lapack.dsyevr(np.asarray(cov[i], np.float64),
                                                  compute_v=vectors, range="I",
                                                  il=d - keep + 1, iu=d, abstol=ABSTOL)
@@ -127,12 +155,136 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
     return (evals, evecs) if vectors else evals
 
 
+def next_start(start: np.ndarray | None, W: np.ndarray) -> np.ndarray:
+    """Starting vectors for the fit after the one that gave ``W`` (:func:`top_eigh_from`):
+    the columns of ``W``, then those of the ``start`` it was fitted from beyond them (the
+    earlier model's next eigenvectors: guard vectors better than random ones).
+
+    Parameters
+    ----------
+    start : ndarray, shape (L, d, m), or None
+    W : ndarray, shape (L, d, q)
+
+    Returns
+    -------
+    ndarray, shape (L, d, max(q, m))
+    """
+    if start is None or start.shape[2] <= W.shape[2]:
+        return W
+    return np.concatenate([W, start[:, :, W.shape[2]:]], axis=2)
+
+
+def top_eigh_from(cov: np.ndarray, k: int, start: np.ndarray, tol: float = None,
+                  guard: int = None, steps: int = 5, max_degree: int = 20
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The ``k`` largest eigenpairs of each of a stack of symmetric positive semi-definite
+    matrices, from starting vectors near them: Chebyshev-filtered subspace iteration with
+    Rayleigh-Ritz, all matrices at once in batched products.
+
+    A block of ``k + guard`` vectors (the start's, then random ones) is orthonormalised
+    (Householder QR) and rotated onto the Ritz vectors of its Rayleigh quotient
+    ``Q^T C Q`` (Rayleigh-Ritz; Saad, "Numerical Methods for Large Eigenvalue Problems",
+    2nd ed. 2011, ch. 5). A pair is taken when its residual ``||C x - theta x||`` is at
+    most ``tol`` times ``||C||_F`` (at least ``||C||_2``, as LAPACK's errors are): the
+    eigenvalue is then within ``(tol ||C||)^2 / gap`` of the true one (Kato-Temple) and
+    the vector's angle within ``tol ||C|| / gap`` (Davis & Kahan 1970, "The rotation of
+    eigenvectors by a perturbation. III", SIAM J. Numer. Anal. 7(1)), ``gap`` the distance
+    to the rest of the spectrum. Between Rayleigh-Ritz steps the block is multiplied by
+    the Chebyshev polynomial ``T_m`` of ``2 C / b - I``, ``b`` the smallest Ritz value of
+    the block (at least ``1e-3 ||C||_F``, so that no eigenvalue, not even one made
+    negative by rounding in a covariance that is nearly zero, gives ``T_m`` beyond
+    ``T_m(2001)``), which stays within [-1, 1] on the eigenvalues in [0, b] and grows
+    fastest outside it (Saad 2011, ch. 7; the bound from the Ritz values as in Zhou, Saad, Tiago &
+    Chelikowsky 2006, "Self-consistent-field calculations using Chebyshev-filtered
+    subspace iteration", J. Comput. Phys. 219(1)). Its
+    degree ``m`` is one more than would bring four residuals in five under ``tol`` at the
+    rate of the k-th
+    largest Ritz value, ``1 / (x + sqrt(x^2 - 1))`` per degree, ``x = 2 theta_k / b - 1``,
+    but never so high that the top pair outgrows the k-th by more than 1e8 (which would
+    leave it fewer than eight digits in float64). Matrices not converged after ``steps``
+    Rayleigh-Ritz steps are left to the caller.
+
+    Parameters
+    ----------
+    cov : ndarray, shape (L, d, d), float64
+    k : int
+        1 <= k <= d.
+    start : ndarray, shape (L, d, m)
+        Vectors (columns; any scale, zero columns allowed) near the top eigenvectors,
+        largest first, e.g. the ``W`` of a PPCA fitted to a closely related covariance.
+    tol : float, optional
+        Relative residual (default :data:`EIG_TOL`).
+    guard : int, optional
+        Extra vectors in the block (default :data:`EIG_GUARD`): the filter's rate is set
+        by the eigenvalue just below the block.
+    steps, max_degree : int
+        Rayleigh-Ritz steps, and the largest degree of one filter.
+
+    Returns
+    -------
+    evals : ndarray, shape (L, k), float64, ascending
+    evecs : ndarray, shape (L, d, k), float64, the largest last
+    done : ndarray, shape (L,), bool
+        Matrices whose pairs met ``tol``; the rows of the others are not set.
+    """
+    tol = EIG_TOL if tol is None else float(tol)
+    L, d, _ = cov.shape
+    p = min(d, k + (EIG_GUARD if guard is None else int(guard)))
+    X = np.random.default_rng(0).standard_normal((L, d, p))  # fixed seed: reproducible
+    m = min(p, start.shape[2])
+    S = np.asarray(start[:, :, :m], np.float64)
+    norm = np.sqrt((S * S).sum(axis=1))[:, None, :]
+    X[:, :, :m] = np.where(norm > 0, S / np.where(norm > 0, norm, 1.0), X[:, :, :m])
+    evals, evecs = np.empty((L, k)), np.empty((L, d, k))
+    done = np.zeros(L, bool)
+    left, C = np.arange(L), cov
+    size = np.maximum(np.sqrt(np.einsum("lij,lij->l", cov, cov)), np.finfo(np.float64).tiny)
+    for step in range(steps):
+        Q = np.linalg.qr(X)[0]
+        CQ = np.matmul(C, Q)
+        theta, Y = np.linalg.eigh(np.matmul(Q.transpose(0, 2, 1), CQ))
+        X, CX = np.matmul(Q, Y), np.matmul(CQ, Y)
+        R = X[:, :, p - k:] * theta[:, None, p - k:]
+        R -= CX[:, :, p - k:]
+        R *= R
+        res = np.sqrt(R.sum(axis=1).max(axis=1)) / size
+        ok = res <= tol
+        if ok.any():
+            at = left[ok]
+            evals[at], evecs[at], done[at] = theta[ok, p - k:], X[ok][:, :, p - k:], True
+        if ok.all() or step == steps - 1:
+            break
+        if ok.any():
+            go = ~ok
+            left, C, X, CX, theta, res, size = (a[go] for a in (left, C, X, CX, theta, res, size))
+        b = np.maximum(theta[:, 0], 1e-3 * size)
+        rate_k = np.arccosh(np.maximum(2.0 * theta[:, p - k] / b - 1.0, 1.0))
+        rate_1 = np.arccosh(np.maximum(2.0 * theta[:, -1] / b - 1.0, 1.0))
+        need = np.log(np.maximum(res / tol, 1.0)) / np.maximum(rate_k, 1e-3)
+        need = np.minimum(need, np.log(1e8) / np.maximum(rate_1 - rate_k, 1e-3))
+        degree = int(np.clip(np.ceil(np.quantile(need, 0.8)) + 1, 2, max_degree))
+        # T_0 = X, T_1 = (2/b) C X - X, T_j+1 = (4/b) C T_j - 2 T_j - T_j-1
+        s = (4.0 / b)[:, None, None]
+        T0, T1 = X, CX * (s / 2)
+        T1 -= X
+        spare = np.empty_like(X)
+        for _ in range(degree - 1):
+            T2 = np.matmul(C, T1, out=spare)
+            T2 *= s
+            T2 -= T1
+            T2 -= T1
+            T2 -= T0
+            spare, T0, T1 = T0, T1, T2
+        X = T1
+    return evals, evecs, done
+
+
 # --- pure functions ------------------------------------------------------------------------
 
 def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
              var_floor: float = 0.0, explained_variance: float = 0.9,
-             max_latent: int = 24, most_observed: int | None = None
-             ) -> tuple[np.ndarray, np.ndarray]:
+             max_latent: int = 24, most_observed: int | None = None,
+             start: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Closed-form maximum-likelihood PPCA of each location (Tipping & Bishop 1999).
 
     The mean of each location is the sample mean; the closed form needs only the
@@ -155,6 +307,11 @@ def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
         The latent size is at most one less than the most entries any location observes:
         that number over all locations of the model when ``cov`` holds only some of them
         (fitted part by part); by default from ``observed``.
+    start : ndarray, shape (L, d, m), optional
+        With ``latent`` given: vectors near the top eigenvectors of ``cov`` (the ``W`` of a
+        model of a closely related covariance); the top pairs are then found from them
+        (:func:`batched_eigh`), to a residual of :data:`EIG_TOL` instead of LAPACK's
+        round-off.
 
     Returns
     -------
@@ -171,7 +328,8 @@ def ppca_fit(cov: np.ndarray, latent: int, observed: np.ndarray | None = None,
         d_obs = np.full(L, float(d))
     total = np.trace(cov, axis1=1, axis2=2, dtype=np.float64)
     # With the latent size given, the top q pairs and the trace are all the fit needs.
-    evals, evecs = batched_eigh(cov, top=latent or max_latent, all_values=not latent)
+    evals, evecs = batched_eigh(cov, top=latent or max_latent, all_values=not latent,
+                                start=start if latent else None)
     evals = np.clip(evals[:, ::-1], 0.0, None)
     evecs = evecs[:, :, ::-1]
     q = latent or choose_latent(evals, explained_variance, max_latent)
@@ -904,6 +1062,9 @@ class PatchPPCA(DensityModel):
         # latent size with: every model (folds and final alike) then uses "variance", so the
         # calibration maps come from models chosen by the same rule as the final one.
         self._few_blocks = len(labels) < 3
+        # Each model's W starts the eigensolver of the next (the moments of one more block;
+        # :func:`next_start`).
+        self._warm = None
         if pool is None:
             moments, folds = self._forward_pass(source, order, block_of, len(labels), first)
         else:
@@ -918,7 +1079,9 @@ class PatchPPCA(DensityModel):
                 fold = copy.copy(self)
                 q = self._heldout_q(moments.sums(k - 1, HELDOUT_EVERY) if k > 1 else None,
                                     moments.sums(k, HELDOUT_EVERY))
-                fold._set(*fold._fit_moments(moments, q, before=k))
+                fold._set(*fold._fit_moments(moments, q, self._warm, before=k))
+                self._warm = next_start(self._warm, fold.W_)
+                del fold._warm  # (not shipped with the fold)
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
             self._last_split = ((moments.sums(len(labels) - 1, HELDOUT_EVERY)
@@ -943,8 +1106,9 @@ class PatchPPCA(DensityModel):
     def _fit_final(self, moments: Moments) -> None:
         """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass)."""
         q = self._heldout_q(*self._last_split)
-        del self._last_split, self._few_blocks
-        self._set(*self._fit_moments(moments, q, consume=True))  # (moments' last use)
+        start = self._warm
+        del self._last_split, self._few_blocks, self._warm
+        self._set(*self._fit_moments(moments, q, start, consume=True))  # (moments' last use)
 
     def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
         """The positions :meth:`fit` without a pool reads its frames in (``source.batches``:
@@ -974,7 +1138,8 @@ class PatchPPCA(DensityModel):
                            if self._wants_sums() and b >= first - 1 else None)
                     if ready:  # the latent size first: its temporaries and the
                         q = self._heldout_q(earlier, now)  # covariances never coexist
-                        self._set(*self._fit_moments(moments, q))
+                        self._set(*self._fit_moments(moments, q, self._warm))
+                        self._warm = next_start(self._warm, self.W_)
                     earlier = now
                 part = images if sel.all() else images[sel]
                 if ready:  # the block entries gathered once: scored, then learnt from
@@ -1028,12 +1193,13 @@ class PatchPPCA(DensityModel):
             moments.add(block, self._entries(images) if entries is None else entries,
                         scale=1 / 255)
 
-    def _fit_moments(self, moments: Moments, latent: int = 0, **subset
-                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def _fit_moments(self, moments: Moments, latent: int = 0, start: np.ndarray | None = None,
+                     **subset) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Mean, W and sigma^2 of the samples counted in ``moments`` (``subset``: the
         blocks of :meth:`Moments.covariances`, and whether it may consume them), with
         ``latent`` dimensions when given, else as :meth:`_fit_params` chooses. Sets
-        ``chroma_weight_``.
+        ``chroma_weight_``. ``start``: (L, d, m), the ``W`` of a model of closely related
+        moments (an earlier fold's), to find the eigenvectors from (:func:`ppca_fit`).
 
         With the latent size known, each location's fit needs only its own covariance:
         they are formed and fitted a chunk of locations at a time in two threads, so the
@@ -1049,13 +1215,13 @@ class PatchPPCA(DensityModel):
         self.chroma_weight_ = self._chroma_weight(covariance, L, observed)
         most = d if observed is None else int(observed.sum(axis=1).max())
 
-        def one(start: int) -> tuple[np.ndarray, np.ndarray]:
-            part = slice(start, min(start + CHUNK // 2, L))
+        def one(first: int) -> tuple[np.ndarray, np.ndarray]:
+            part = slice(first, min(first + CHUNK // 2, L))
             cov = weigh_chroma(covariance(np.arange(part.start, part.stop)),
                                self.patch * self.patch, self.chroma_weight_)
             return ppca_fit(cov, q, None if observed is None else observed[part],
                             self.var_floor, self.explained_variance, self.max_latent,
-                            most_observed=most)
+                            most_observed=most, start=None if start is None else start[part])
 
         with threadpool_limits(1), ThreadPoolExecutor(2) as pool:  # see batched_eigh
             fits = list(pool.map(one, range(0, L, CHUNK // 2)))
