@@ -21,6 +21,7 @@ from inspector.core.persistence import (
     Persistence,
     StreamState,
     _median_along,
+    _own,
     _second_smallest,
     _sorted_along,
     calibrate_persistence,
@@ -411,6 +412,51 @@ def test_a_settled_thing_read_unevenly_keeps_its_lowest_reading():
     np.testing.assert_allclose(cells, np.log1p(grey.reshape(2, 6, 4, 12, 4).mean(axis=(2, 4))),
                                rtol=1e-6)
     np.testing.assert_array_equal(looks_of(cells), cell_looks(grey, (6, 12)))
+
+
+def test_a_lamp_switching_on_is_not_a_thing_left_but_a_parcel_set_down_with_it_is():
+    # At frame 8 the lamps come on: the floor (lower half) brighter, the wall above darker
+    # once the exposure follows, over the whole width; the model reads the wall's foot,
+    # where the looks change most, as unusual from then on. A parcel (2 x 2 cells, darker
+    # than the floor) is set down at frame 14. The looks alone count both (the look changes
+    # by more than the change gate where the light's edge is); with the brightness, the
+    # light's change is the surroundings' (wider than half the square around a cell), so
+    # only the parcel is flagged, from its 3rd frame on (three frames that look alike).
+    n, h, w = 22, 14, 28
+    rng = np.random.default_rng(0)
+    bright = rng.normal(3.0, 0.002, (n, h, w)).astype(np.float32)
+    bright[8:, :7] -= 0.4
+    bright[8:, 7:] += 0.1
+    bright[14:, 10:12, 20:22] -= 0.3
+    looks = looks_of(bright)
+    maps = np.zeros((n, h, w), np.float32)
+    maps[8:, 5:9, 3:9] = 30.0
+    maps[14:, 10:12, 20:22] = 30.0
+    times = np.arange(n) * 2.0
+    opts = dict(threshold=5.0, past=8, start_threshold=60.0, min_past=3, around=3,
+                looks=looks, change=0.05, shown=True, crossed=True)
+    plain = persistence(maps, times, 4, 10.0, **opts)
+    assert (plain.maps[11:, 5:9, 3:9] > 5.0).any()
+    run = persistence(maps, times, 4, 10.0, brightness=bright, **opts)
+    assert (run.maps[:, 5:9, 3:9] <= 0.0).all()
+    assert (run.maps[16:, 10:12, 20:22] > 5.0).all()
+    flagged = run.filled & (run.scores > np.where(run.stepped, 5.0, 60.0))
+    assert flagged.tolist() == [False] * 16 + [True] * 6
+    # _own against its docstring's formula, cell by cell: numpy.median of the frames
+    # before, numpy.sort's second smallest over the window, the mean around as
+    # scipy.ndimage.uniform_filter's with edges repeated ("nearest"; odd square: 7)
+    from scipy.ndimage import maximum_filter, uniform_filter
+
+    rel = bright - np.median(bright.reshape(n, -1), axis=1)[:, None, None]
+    win = list(looks[4:12])
+    got = _own(win, 4, None, {id(v): (v, b) for v, b in zip(win, rel[4:12])}, None, 3)
+    k = local_size((h, w))
+    assert k == 7
+    look = np.sort(np.abs(looks[8:12] - np.median(looks[4:8], axis=0)), axis=0)[1]
+    moved = np.sort(np.abs(rel[8:12] - np.median(rel[4:8], axis=0)), axis=0)[1]
+    want = maximum_filter(look - uniform_filter(moved, size=k, mode="nearest"), size=3,
+                          mode="nearest")
+    np.testing.assert_allclose(got, want, atol=1e-5)
 
 
 def test_a_reference_needs_frames_a_passer_by_cannot_move():

@@ -61,7 +61,11 @@ reference; the frames that share its look are also taken on their own (``crossed
 :func:`seen_through`), and the thresholds are calibrated with them. Where the picture shows
 a thing settled (its look and its own brightness changed from before, and its looks the
 same from frame to frame), the steady level takes no spread off (``brightness``): the model
-can read one unchanged thing unevenly, and the spread would take that for passers-by. Last,
+can read one unchanged thing unevenly, and the spread would take that for passers-by; and
+a step counts only where the cell's look changed by more than the mean change of brightness
+around it (:func:`_own`): a change of light over a region wider than half the square of a
+look (a lamp switching on, the exposure following it) moves the cells around as much as the
+cell, a thing set down moves the cell alone. Last,
 the map is opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
 changes every cell of a patch, so a region narrower than a patch (the edge of a passer-by,
 the rim of a masked area) is not something left, and one such region in the few held-out
@@ -357,6 +361,17 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         one unchanged thing unevenly (a weak spill at 6 to 13, or a parcel at 44 then 25,
         from frame to frame while its look stays within a third of ``change``). This adds
         flags: the threshold must be calibrated with it (:func:`calibrate_persistence`).
+        With it, a cell of a frame measured from a reference also counts only where its look
+        changed from the frames before by more than ``change`` plus the mean change of
+        brightness over the square around it (:func:`_own`; the largest over the ``around``
+        cells): a change of light over a region wider than half that square (a lamp
+        switching on lights the floor and the wall above goes darker as the exposure follows)
+        changes the brightness around a cell at least as much as its look; a thing set down
+        changes the look of its cells by nearly all of their change. Elsewhere the map is at
+        most 0 (it takes flags away, and runs in calibration as at scan time). What it
+        costs: a thing set down within the few frames of such a change of light around it
+        is not counted, and a thing flagged while the light around it changes that much
+        loses its flag then.
 
     Returns
     -------
@@ -428,6 +443,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             stepped[i] = past > 0 and len(late_buf) >= window + min_past
             if seen is not None:
                 raw = _gated(raw, seen[0], change)
+            own = _own(late_l, window, None, bright, None, around) if settle else None
+            if own is not None and stepped[i]:
+                raw = _gated(raw, own, change)
             if gate and not stepped[i]:
                 raw = _usual(raw, late_l[-window:], normal, change, around)
             out[i], steady[i] = raw, level
@@ -458,6 +476,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         fixed = (_settled(lbuf, window, held_look, change, around, bright,
                           None if seen is None else seen[1], held_bright) if settle else None)
         fixed, bright_ref = (None, None) if fixed is None else fixed
+        own = (_own(lbuf, window, held_look, bright, held_bright, around,
+                    None if seen is None else seen[1], bright_ref) if settle else None)
         level, raw, scale, win_scaled = _step(buf, window, held, around, scaled, spreads,
                                               min_past, fixed)
         stepped[i] = past > 0 and len(buf) >= window + min_past
@@ -467,6 +487,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                                 min_past) if crossed and gate and stepped[i] else None)
         if through is not None:
             out[i] = np.maximum(out[i], through)
+        if own is not None and stepped[i]:
+            out[i] = _gated(out[i], own, change)
         if gate and not stepped[i]:
             out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
         if threshold is not None:  # (else opened below, all frames at once)
@@ -493,8 +515,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                     odd = ~np.isnan(held) & _odd_one(lbuf[-window:], change)
                     alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
                 alt = alt if seen is None else _gated(alt, seen[0], change)
-                out[i] = opened(alt if through is None else np.maximum(alt, through),
-                                footprint)
+                alt = alt if through is None else np.maximum(alt, through)
+                out[i] = opened(alt if own is None else _gated(alt, own, change), footprint)
             flagged_cells = out[i] > limit
             if flagged_cells.any():
                 since[i] = float(np.median(onset[flagged_cells]))
@@ -746,6 +768,66 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
         spread = np.maximum.reduce(rest) - np.minimum.reduce(rest)
         agree = spread if agree is None else np.minimum(agree, spread)
     return own & moved & (flat_filter(agree, around, np.maximum) <= change), before_raw
+
+
+def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
+         held_bright: np.ndarray | None, around: int = 1,
+         reference: np.ndarray | None = None, bright_reference: np.ndarray | None = None
+         ) -> np.ndarray | None:
+    """Per cell, by how much the change of the window's frames from the frames before it is
+    the cell's own rather than its surroundings': the change of its look less the change of
+    the mean around it, shape (h, w) float32 (> 0: its own), or None with no frame before
+    the window or a look or brightness missing.
+
+    A look is the cell's brightness (less the frame's median, see :func:`_by_look`) less
+    its mean over the square of :func:`local_size` cells around it (:func:`looks_of`), so
+    a frame's change of brightness at a cell is the change of its look plus the change of
+    that mean. A thing set down covers a small part of the square (about a tenth of it,
+    see :data:`LOCAL_SHARE`): its look changes by nearly all of its brightness's change and
+    the mean around it by the rest. A change of light over a region wider than half the
+    square (a lamp switching on lights the floor and leaves the wall above it darker once
+    the exposure follows) moves the mean around a cell more than the cell's look, which
+    changes only by how unevenly the light falls. Per frame of the window, the absolute
+    change of the look from the frames before (their median, a held cell's
+    ``held_look``) less the absolute change of the mean around (from the brightness's
+    median, a held cell's ``held_bright``); the second smallest over the window (one
+    frame set aside, as :func:`_changed`), the largest over the ``around`` x ``around``
+    cells centred on the cell (an edge cell counts with the thing). An untouched cell
+    beside a change has its look moved by exactly what its mean moved (0 here, not its
+    own); the map's anomaly is already taken less its median over the same square
+    (:func:`local_maps`), so a region wider than half of it was never one this method
+    calls a thing left. ``reference``, ``bright_reference``: the looks' and brightness's
+    references when known (as :func:`_changed` and :func:`_settled` return them)."""
+    before = looks[:-window]
+    if not before or any(v is None for v in looks):
+        return None
+    raws = [bright.get(id(v)) for v in looks]
+    if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
+        return None
+    ref_look = reference
+    if ref_look is None:
+        ref_look = _median_along(before)
+        if held_look is not None:
+            ref_look = np.where(np.isnan(held_look), ref_look, held_look)
+    raw = [r[1] for r in raws]
+    ref_raw = bright_reference
+    if ref_raw is None:
+        ref_raw = _median_along(raw[:-window])
+        if held_bright is not None:
+            ref_raw = np.where(np.isnan(held_bright), ref_raw, held_bright)
+    look = np.abs(np.asarray(looks[-window:], np.float32) - ref_look)
+    moved = np.abs(np.asarray(raw[-window:], np.float32) - ref_raw)
+    if len(look) > 2:
+        look, moved = _second_smallest(look), _second_smallest(moved)
+    else:
+        look, moved = look.min(axis=0), moved.min(axis=0)
+    import cv2
+
+    k = local_size(look.shape)
+    around_moved = cv2.blur(np.ascontiguousarray(moved, np.float32), (k, k),
+                            borderType=cv2.BORDER_REPLICATE)
+    return flat_filter(np.ascontiguousarray(look - around_moved, np.float32), around,
+                       np.maximum)
 
 
 def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:

@@ -795,7 +795,9 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
                + f"; at least {p.floor:.3f}, the steady level {alpha:.3g} of normal "
                  f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
                + (f"; a change counts where the picture changed (log brightness by more "
-                  f"than {p.change:.3f})" if p.change > 0 else "")
+                  f"than {p.change:.3f}" + (", and more than around it: not a change of light "
+                                            "over a wider region" if p.settle else "")
+                  + ")" if p.change > 0 else "")
                + (f", also in {p.window - 1} of {p.window + 1} frames that look alike "
                   f"where passers-by cross it in the others (calibrated with it)"
                   if p.crossed and p.change > 0 and p.start_threshold is not None else "")
