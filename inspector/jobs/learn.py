@@ -242,8 +242,8 @@ class PreparedSource:
     (:func:`inspector.core.image.noise_bank`, the same for every copy of the source) at a
     random offset per frame. ``record_appearance``: record each frame's global appearance
     (:func:`inspector.core.regimes.appearance`, for the regimes).
-    ``cells``: the model's map shape (h, w), to record each frame's
-    :func:`~inspector.core.persistence.cell_brightness` (for persistence; None: not
+    ``cell_shape``: the model's map shape (h, w), to record each frame's
+    :func:`~inspector.core.persistence.cell_brightness` at it (for persistence; None: not
     recorded).
     ``compression``: the exports' JPEG quantisation tables and chroma subsampling when the
     frames are learnt at their exported size (else None): the copies are then compressed
@@ -254,9 +254,9 @@ class PreparedSource:
 
     def __init__(self, source, conditions: Conditions, exposure: float = 0.0,
                  record_appearance: bool = True, compression: tuple | None = None,
-                 cells: tuple[int, int] | None = None):
+                 cell_shape: tuple[int, int] | None = None):
         self.source = source
-        self.cells = cells
+        self.cell_shape = cell_shape
         self.conditions = conditions
         self.exposure = exposure
         self.record_appearance = record_appearance
@@ -277,7 +277,7 @@ class PreparedSource:
     def spawn(self) -> "PreparedSource":
         """The same frames with empty records (to read some of them elsewhere)."""
         return PreparedSource(self.source.spawn(), self.conditions, self.exposure,
-                              self.record_appearance, self.compression, self.cells)
+                              self.record_appearance, self.compression, self.cell_shape)
 
     def collected(self) -> dict:
         """This copy's records, for the :meth:`absorb` of the source it was spawned from
@@ -340,8 +340,8 @@ class PreparedSource:
             render[list(draws)] = False
             rec = self.conditions.prepare(images[part], render=render)
             prepared[part] = rec.images
-            if self.cells is not None:
-                for i, cells in zip(idx[part], cell_brightness(rec.aligned, self.cells)):
+            if self.cell_shape is not None:
+                for i, cells in zip(idx[part], cell_brightness(rec.aligned, self.cell_shape)):
                     self.cell_brightness[int(i)] = cells
             copies = {j: exposure_copy(images[start + j], gain, rng, rec.grey[j], self._noise())
                       for j, (gain, rng) in draws.items()}
@@ -424,8 +424,8 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                                   if cfg.conditions.lighting != "off" else 0.0,
                                   record_appearance=cfg.calibration.regimes,
                                   compression=_compression(files, source_size, size),
-                                  cells=map_shape(size[1], size[0], cfg.model.patch,
-                                                  cfg.model.stride))
+                                  cell_shape=map_shape(size[1], size[0], cfg.model.patch,
+                                                       cfg.model.stride))
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
             extra_args["alpha"] = _planned_alpha(cfg, times)
         calibrated: list = []
