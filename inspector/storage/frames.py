@@ -85,6 +85,24 @@ def sniff(head: bytes) -> str | None:
     return None
 
 
+def _image_kind(head: bytes) -> str:
+    """:func:`sniff` of a file's first bytes; FrameError with the skip reason when the file
+    is empty or not an image (the one wording for the listing and the reading alike)."""
+    if not head:
+        raise FrameError("empty file")
+    kind = sniff(head)
+    if kind is None:
+        raise FrameError("not an image (content is not JPEG, PNG, BMP or TIFF)")
+    return kind
+
+
+def _unreadable(exc: OSError) -> str:
+    """The skip reason of a file that could not be opened or read."""
+    if isinstance(exc, FileNotFoundError):
+        return "file disappeared before it could be read"
+    return f"cannot read file: {exc.strerror or exc}"
+
+
 def discover(source: Path, camera: str | None = None) -> tuple[list[FrameFile], list[Skip]]:
     """List the frame files under ``source``, recursively, in a stable order.
 
@@ -152,16 +170,13 @@ def frame_file(path: Path, root: Path, camera: str | None = None) -> FrameFile |
     try:
         with open(path, "rb") as fh:
             head = fh.read(16)
-    except FileNotFoundError:
-        if path.is_symlink():
-            return Skip(rel, cam, "link points to nothing")
-        return Skip(rel, cam, "file disappeared before it could be read")
     except OSError as exc:
-        return Skip(rel, cam, f"cannot read file: {exc.strerror or exc}")
-    if not head:
-        return Skip(rel, cam, "empty file")
-    if sniff(head) is None:
-        return Skip(rel, cam, "not an image (content is not JPEG, PNG, BMP or TIFF)")
+        gone = isinstance(exc, FileNotFoundError) and path.is_symlink()
+        return Skip(rel, cam, "link points to nothing" if gone else _unreadable(exc))
+    try:
+        _image_kind(head)
+    except FrameError as exc:
+        return Skip(rel, cam, str(exc))
     return FrameFile(path, rel, cam)
 
 
@@ -363,11 +378,7 @@ def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int], int
         Not an image, a header that cannot be read, more than ``max_pixels`` pixels
         (checked before any pixel is decoded), or a JPEG/PNG missing its end marker.
     """
-    if not data:
-        raise FrameError("empty file")
-    kind = sniff(data[:16])
-    if kind is None:
-        raise FrameError("not an image (content is not JPEG, PNG, BMP or TIFF)")
+    kind = _image_kind(data[:16])
     found = _header_dims(io.BytesIO(data))
     if found is None:
         raise FrameError(f"unreadable {kind.upper()} header (corrupt or truncated file)")
@@ -417,10 +428,8 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
     try:
         with open(file.path, "rb") as fh:
             data = fh.read()
-    except FileNotFoundError:
-        raise FrameError("file disappeared before it could be read") from None
     except OSError as exc:
-        raise FrameError(f"cannot read file: {exc.strerror or exc}") from None
+        raise FrameError(_unreadable(exc)) from None
     kind, src, orientation = header_size(data, max_pixels)
     notes = []
     if size is None:
