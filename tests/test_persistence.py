@@ -442,6 +442,13 @@ def test_a_lamp_switching_on_is_not_a_thing_left_but_a_parcel_set_down_with_it_i
     assert (run.maps[16:, 10:12, 20:22] > 5.0).all()
     flagged = run.filled & (run.scores > np.where(run.stepped, 5.0, 60.0))
     assert flagged.tolist() == [False] * 16 + [True] * 6
+    # the same across two calls, the stream's state (the ledger's arrays) carrying the rest
+    first = persistence(maps[:15], times[:15], 4, 10.0, brightness=bright[:15],
+                        **dict(opts, looks=looks[:15]))
+    saved = StreamState.from_arrays(first.state.arrays())
+    second = persistence(maps[15:], times[15:], 4, 10.0, state=saved, brightness=bright[15:],
+                         **dict(opts, looks=looks[15:]))
+    np.testing.assert_allclose(np.concatenate([first.maps, second.maps]), run.maps)
     # _own against its docstring's formula, cell by cell: numpy.median of the frames
     # before, numpy.sort's second smallest over the window, the mean around as
     # scipy.ndimage.uniform_filter's with edges repeated ("nearest"; odd square: 7)
