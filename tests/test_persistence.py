@@ -26,6 +26,7 @@ from inspector.core.persistence import (
     _sorted_along,
     calibrate_persistence,
     cell_brightness,
+    change_spread,
     cell_looks,
     clearly_busy,
     flat_filter,
@@ -150,6 +151,47 @@ def test_a_window_shares_one_spread_so_a_wide_frame_does_not_break_what_stays():
     # which then reads as unsteady; one spread for the window keeps its level.
     own = persistence(maps, times, 4, 10.0, past=4, robust=True)
     assert own.scores[11] < 0.6 * run.scores[11]
+
+
+def test_in_a_noisy_stretch_a_step_counts_by_how_far_its_change_stands_out():
+    # Reference: numpy.median per cell of the window and of the frames before it, and
+    # scipy.stats.median_abs_deviation(scale="normal") over the cells of their difference
+    # (the view's change) and of each frame (the window's spread, as above). A dark stretch:
+    # each cell's noise reading scatters from cell to cell (10) but stays from frame to frame
+    # (1). A spill adds 12 from frame 8 and darkens its cells: robust="window" divides it by
+    # the cells' scatter and does not count it; "change" multiplies that step by the cells'
+    # scatter over the changes' (floored at 1) where a cell's own brightness changed.
+    from scipy.stats import median_abs_deviation
+
+    rng = np.random.default_rng(5)
+    n, h, w = 12, 24, 32
+    maps = (rng.normal(0, 10, (h, w)) + rng.normal(0, 1, (n, h, w))).astype(np.float32)
+    bright = (rng.normal(4.0, 0.3, (h, w)) + rng.normal(0, 0.003, (n, h, w))).astype(np.float32)
+    times = np.arange(n) * 2.0
+    maps[8:, 3:6, 4:7] += 12.0
+    bright[8:, 3:6, 4:7] -= 0.3
+    local = maps - np.median(maps, axis=(1, 2), keepdims=True)
+    spreads = median_abs_deviation(local.reshape(n, -1), axis=1, scale="normal")
+    moved = np.median(local[8:12], axis=0) - np.median(local[4:8], axis=0)
+    changes = median_abs_deviation(moved.ravel(), scale="normal")
+    assert change_spread(local[8:12], local[4:8]) == pytest.approx(changes, rel=1e-5)
+    opts = dict(past=4, looks=looks_of(bright), change=0.05, brightness=bright)
+    runs = {r: persistence(maps, times, 4, 10.0, robust=r, **opts) for r in ("window", "change")}
+    lift = np.median(spreads[8:12]) / max(changes, 1.0)
+    assert lift > 5
+    spill = np.zeros((h, w), bool)
+    spill[3:6, 4:7] = True
+    before = runs["window"].maps[11]
+    expected = np.where(spill & (before > 0), before * lift, before)
+    np.testing.assert_allclose(runs["change"].maps[11], expected, rtol=1e-4, atol=1e-5)
+    assert runs["change"].scores[11] > 5.0 > runs["window"].scores[11]
+    # When the lamps go off between the frames before and the window, the changes are as
+    # scattered as the cells: a lift of about 1 (their ratio), nothing like the spill's.
+    dark = maps.copy()
+    dark[:8] = rng.normal(0, 1, (8, h, w))
+    both = [persistence(dark, times, 4, 10.0, robust=r, **opts).scores[11]
+            for r in ("change", "window")]
+    assert both[0] == pytest.approx(both[1], rel=0.1)
 
 
 def test_what_was_there_before_is_not_counted_and_what_appears_stays_flagged():

@@ -65,7 +65,10 @@ can read one unchanged thing unevenly, and the spread would take that for passer
 a step counts only where the cell's look changed by more than the mean change of brightness
 around it (:func:`_own`): a change of light over a region wider than half the square of a
 look (a lamp switching on, the exposure following it) moves the cells around as much as the
-cell, a thing set down moves the cell alone. Last,
+cell, a thing set down moves the cell alone. In a
+dark, noisy stretch the cells' readings scatter widely but steadily from frame to frame, so a
+step at a cell whose own brightness changed is counted against how much the rest of the view
+changed rather than against that scatter (``robust`` "change", :func:`_lift`). Last,
 the map is opened by the footprint of a model patch (``footprint``, :func:`opened`): anything seen
 changes every cell of a patch, so a region narrower than a patch (the edge of a passer-by,
 the rim of a masked area) is not something left, and one such region in the few held-out
@@ -287,7 +290,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         "window": divide the local maps of a window and of the frames before it by one
         spread, the median of the robust spreads of the window's frames
         (:func:`robust_spread`), so that a thing that stays keeps its level while a large
-        passer-by widens the spread of one frame of the window. False: neither.
+        passer-by widens the spread of one frame of the window. "change": as "window", and
+        with ``brightness``, a window with a reference counts a cell whose own brightness
+        changed by how far its step stands out from how much the rest of the view changed
+        from the frames before it, where that is less than the cells' spread (a dark, noisy
+        stretch; :func:`_lift`, on the map once opened). This adds flags: the thresholds
+        must be calibrated with it (:func:`calibrate_persistence` does). False: neither.
     start_threshold : float, optional
         Threshold of frames without a frame before the window (``stepped`` unset); default
         ``threshold``. Cells above their frame's threshold keep their reference while they
@@ -381,7 +389,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         raise ValueError(f"window must be at least 1, got {window}")
     maps = (np.asarray(maps, np.float32) if made_local
             else local_maps(maps, robust is True, local))
-    scaled = robust == "window"
+    scaled = robust in ("window", "change")
+    changes = robust == "change"
     times = np.asarray(times, np.float64)
     n = len(maps)
     keep = window + past  # frames a map needs: the window and the frames before it
@@ -420,6 +429,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     spreads: dict = ({id(f): (f, float(v)) for f, v in zip(frames, robust_spread(maps))}
                      if scaled and n else {})  # (all at once: one call, not one a frame)
     since = np.full(n, np.nan)
+    lifts: list = [None] * n  # (see _lift)
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
         t = float(times[i])
@@ -491,8 +501,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             out[i] = _gated(out[i], own, change)
         if gate and not stepped[i]:
             out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
+        lifts[i] = (_lift(buf, lbuf, window, scale, min_past, bright, held_bright, change)
+                    if changes and settle and stepped[i] else None)
         if threshold is not None:  # (else opened below, all frames at once)
-            out[i] = opened(out[i], footprint)
+            out[i] = _lifted(opened(out[i], footprint), lifts[i])
             if past and window < len(buf) < window + min_past:
                 out[i] = _since_start(buf, lbuf, window, opened_map=out[i], steady=level,
                                       scale=scale, threshold=threshold, around=around,
@@ -516,7 +528,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                     alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
                 alt = alt if seen is None else _gated(alt, seen[0], change)
                 alt = alt if through is None else np.maximum(alt, through)
-                out[i] = opened(alt if own is None else _gated(alt, own, change), footprint)
+                out[i] = _lifted(opened(alt if own is None else _gated(alt, own, change),
+                                        footprint), lifts[i])
             flagged_cells = out[i] > limit
             if flagged_cells.any():
                 since[i] = float(np.median(onset[flagged_cells]))
@@ -530,6 +543,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                                np.where(keeps, bright_ref, np.nan).astype(np.float32))
     if threshold is None:  # (the maps are not needed in the loop: opened at once)
         out = opened(out, footprint)
+        for i, lift in enumerate(lifts):
+            out[i] = _lifted(out[i], lift)
     levels = (opened(steady, footprint).reshape(n, -1).max(axis=1).astype(np.float64) if n
               else np.zeros(0))
     if not n:
@@ -745,23 +760,18 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     is the cell's brightness less the mean around it: when a thing leaves (or comes into)
     that square, the looks of untouched cells move with the mean, while their brightness
     does not."""
-    before = looks[:-window]
-    if not before or window < 3 or any(v is None for v in looks):
+    if window < 3:
         return None
-    raws = [bright.get(id(v)) for v in looks]
-    if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
+    found = _own_change(looks, window, bright, change, held_bright)
+    if found is None:
         return None
+    moved, before_raw = found
     if reference is None:
-        reference = _median_along(before)
+        reference = _median_along(looks[:-window])
         if held_look is not None:
             reference = np.where(np.isnan(held_look), reference, held_look)
     win = looks[-window:]
     own = _departs(win, reference, change)
-    raw = [r[1] for r in raws]
-    before_raw = _median_along(raw[:-window])
-    if held_bright is not None:
-        before_raw = np.where(np.isnan(held_bright), before_raw, held_bright)
-    moved = _departs(raw[-window:], before_raw, change)
     agree = None  # the looks' range over the window without one of its older frames
     for j in range(window - 1):
         rest = win[:j] + win[j + 1:]
@@ -828,6 +838,65 @@ def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
                             borderType=cv2.BORDER_REPLICATE)
     return flat_filter(np.ascontiguousarray(look - around_moved, np.float32), around,
                        np.maximum)
+
+
+def _own_change(looks: list, window: int, bright: dict, change: float,
+                held_bright: np.ndarray | None = None
+                ) -> tuple[np.ndarray, np.ndarray] | None:
+    """Per cell, whether its own brightness changed in the window: its frame-relative
+    brightness (``bright``, by look: see :func:`_by_look`) differs from the median of the
+    frames before the window (a held cell: from ``held_bright``) by more than ``change`` in
+    all the window's frames but one and in the newest (:func:`_departs`), bool (h, w); and
+    that reference, (h, w) float32. None with no frame before the window or a look or
+    brightness missing."""
+    if len(looks) <= window or any(v is None for v in looks):
+        return None
+    raws = [bright.get(id(v)) for v in looks]
+    if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
+        return None
+    raw = [r[1] for r in raws]
+    before = _median_along(raw[:-window])
+    if held_bright is not None:
+        before = np.where(np.isnan(held_bright), before, held_bright)
+    return _departs(raw[-window:], before, change), before
+
+
+def _lift(frames: list, looks: list, window: int, scale: float, min_past: int,
+          bright: dict, held_bright: np.ndarray | None, change: float) -> np.ndarray | None:
+    """Per cell, what a step (measured with the maps divided by ``scale``, see :func:`_step`)
+    is multiplied by so that it counts against the view's changes: ``scale`` over
+    :func:`change_spread` of the window from the frames before it (floored at 1, at least
+    1) where the cell's own brightness changed in the window (:func:`_own_change`), 1
+    elsewhere, shape (h, w) float32; None where that is 1 everywhere (or a frame before,
+    a look or a brightness is missing).
+
+    A dark, noisy stretch scatters the cells' readings widely but steadily: the scale
+    (their spread) then counts noise that the step has already taken off, and a spill
+    that steps up by twice what the rest of the view changes reads a fifth of a spread.
+    Counted against the changes, it stands out. The cell's own brightness must have
+    changed because the local maps themselves can change where the picture did not: a
+    thing taken away beside a cell moves the median around it (and the look's surround);
+    the changes' spread would count that as sharply."""
+    before = frames[:-window]
+    if scale <= 1.0 or len(before) < max(min_past, 1):
+        return None
+    changes = max(change_spread(np.asarray(frames[-window:], np.float32),
+                                np.asarray(before, np.float32)), 1.0)
+    if changes >= scale:
+        return None
+    found = _own_change(looks, window, bright, change, held_bright)
+    if found is None or not found[0].any():
+        return None
+    return np.where(found[0], np.float32(scale / changes), np.float32(1.0))
+
+
+def _lifted(step: np.ndarray, lift: np.ndarray | None) -> np.ndarray:
+    """``step`` multiplied by ``lift`` where above 0 (see :func:`_lift`; taken of the map
+    once opened, so that the cells at a thing's edge, which its brightness moves less,
+    do not keep the lift from its middle)."""
+    if lift is None:
+        return step
+    return np.where(step > 0, step * lift, step).astype(np.float32)
 
 
 def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:
@@ -1108,6 +1177,33 @@ def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
     return level, (level - reference).astype(np.float32), scale, win_scaled
+
+
+def change_spread(window_maps: np.ndarray, past_maps: np.ndarray) -> float:
+    """How much a view changed from the frames before a window to the window: the robust
+    spread (:func:`robust_spread`) over the cells of the median of the window's maps less
+    the median of the maps before it, per cell.
+
+    A step (the window's steady level less the level before it) is divided by how much
+    the view as a whole changed, not by how scattered its cells are: in a dark, noisy
+    stretch each cell's reading scatters widely from cell to cell but stays much the same
+    from frame to frame (the noise raises each cell's reading by its own, steady amount),
+    so the cells' spread counts the noise a step takes off, while the spread of the changes
+    counts what it leaves. When the whole view does change between the two (the lamps go
+    off, a gain switches), the changes are as scattered as the cells. The medians leave out
+    one passer-by per cell in the window (and up to half the frames before it).
+
+    Parameters
+    ----------
+    window_maps : ndarray, shape (m, h, w), float32, m >= 1
+    past_maps : ndarray, shape (k, h, w), float32, k >= 1
+
+    Returns
+    -------
+    float
+    """
+    moved = _median_along(window_maps) - _median_along(past_maps)
+    return float(robust_spread(moved[None])[0])
 
 
 def _reference(before: list[np.ndarray], scale: float) -> np.ndarray:
@@ -1414,9 +1510,11 @@ class Persistence:
     past : int
         Frames before the window the reference comes from (``past`` of
         :func:`persistence`; 0 for baselines learnt before there was one).
-    robust : bool or "window"
+    robust : bool, "window" or "change"
         Local maps scaled by their robust spread, each by its own (True, baselines learnt
-        before "window") or a window's by one (``robust`` of :func:`persistence`).
+        before "window") or a window's by one ("window", baselines learnt before "change"),
+        a step where a cell's own brightness changed then counted against how much the
+        view changed ("change"; ``robust`` of :func:`persistence`).
     start_threshold : Threshold or None
         Threshold of frames with no frame before their window in their stretch of the
         stream (the first of a run): the conformal threshold of the steady levels of every
@@ -1575,8 +1673,8 @@ class Persistence:
 
 
 def _robust(saved) -> bool | str:
-    """``robust`` as saved in a baseline's JSON: "window", or a bool."""
-    return "window" if saved == "window" else bool(saved)
+    """``robust`` as saved in a baseline's JSON: "window", "change", or a bool."""
+    return saved if saved in ("window", "change") else bool(saved)
 
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
@@ -1663,11 +1761,12 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     # both runs below take the same local maps: made once (the median around each cell is
     # most of their cost)
     s_maps = local_maps(s_maps, False, local)
-    opts = dict(robust="window", around=AROUND, local=local, footprint=footprint,
-                made_local=True, min_past=MIN_PAST)
     if brightness is not None:
         looks = looks_of(brightness)
     settle = brightness is not None
+    robust = "change" if settle else "window"  # (a cell's own brightness: see _lift)
+    opts = dict(robust=robust, around=AROUND, local=local, footprint=footprint,
+                made_local=True, min_past=MIN_PAST)
     change = (LARGE * look_noise(looks, s_times, max_gap, s_blocks) if looks is not None
               else 0.0)
     # (scan time only: windows without a reference flag a subset of what the start
@@ -1693,13 +1792,13 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     floor = max(float(np.quantile(levels.maps[levels.filled], 1.0 - alpha)), 0.0)
     if not stepped.any():
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
-                           starts, share, busy, 0, "window", around=AROUND, floor=floor,
+                           starts, share, busy, 0, robust, around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
                            change=change, shown=True, normal=normal, crossed=True,
                            settle=settle)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
-                       step.scores[stepped], share, busy, past, "window",
+                       step.scores[stepped], share, busy, past, robust,
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
                        floor, local, footprint, MIN_PAST, change, True, normal, True, settle)
 

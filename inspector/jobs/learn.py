@@ -804,6 +804,9 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
                + ("; where the picture shows a thing settled (its look and brightness "
                   "changed, then stayed), its lowest reading of the window counts"
                   if p.settle else "")
+               + ("; in a noisy stretch (dark) a change counts by how far it stands out "
+                  "from the view's other changes, not from its cells' scatter"
+                  if p.robust == "change" and p.start_threshold is not None else "")
                + ("; the first frames of a run only where they look unlike the normal "
                   "frames (further from their median look than any window of them)"
                   if p.normal is not None and p.start_threshold is not None else "")
