@@ -155,6 +155,8 @@ class Results:
         return self.source / rel
 
     def _read_flagged(self) -> list[Item]:
+        """The rows of flagged.csv as items ``f<row>``, each its own member; a malformed row
+        is left out with a line in :attr:`problems`."""
         items = []
         for n, row in enumerate(_rows(self.out / "flagged.csv", self.problems), start=1):
             try:
@@ -179,6 +181,10 @@ class Results:
         return f"overlays/{camera}/{Path(written).name}" if written else ""
 
     def _read_events(self, flagged: list[Item]) -> list[Item]:
+        """The rows of events.csv as items ``e<row>``, shown by their peak frame (its
+        flagged row's threshold, p-value, version and overlay when it has one), their
+        members the ``flagged`` frames of the camera between the event's start and end (and
+        the peak); a malformed row is left out with a line in :attr:`problems`."""
         events = []
         by_rel = {(f.camera, f.rel): f for f in flagged}
         for n, row in enumerate(_rows(self.out / "events.csv", self.problems), start=1):

@@ -420,6 +420,9 @@ class ResultWriter:
         return overlay
 
     def _unique(self, kind: str, camera: str, frame: str) -> str:
+        """A file name (no suffix) for the ``kind`` ("overlay", "map") of a camera's frame:
+        the frame's stem, or ``<stem>-2``, ``-3``, ... when another frame of the run took it
+        (two frames of a camera may share a stem: in other subfolders, or other formats)."""
         stem = Path(frame).stem
         name, k = stem, 1
         while (kind, f"{camera}/{name}") in self._names:
