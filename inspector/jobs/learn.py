@@ -188,6 +188,10 @@ class FileSource:
 
     def batches(self, indices: Sequence[int], batch_size: int = 64
                 ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """``(positions (b,) int, frames (b, H, W, 3) uint8)`` of the frames at ``indices``
+        that decode, ``batch_size`` indices a batch (see ``FrameSource``); the first batches
+        from a :meth:`prefetch` of the same call when one was started, the rest read here.
+        Frames that do not decode are recorded in :attr:`skipped`."""
         indices = [int(i) for i in indices]
         if self._ahead is not None and self._ahead[0] == (indices, int(batch_size)):
             _, ahead, done, _, _ = self._ahead
