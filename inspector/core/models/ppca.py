@@ -158,7 +158,8 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
 def next_start(start: np.ndarray | None, W: np.ndarray) -> np.ndarray:
     """Starting vectors for the fit after the one that gave ``W`` (:func:`top_eigh_from`):
     the columns of ``W``, then those of the ``start`` it was fitted from beyond them (the
-    earlier model's next eigenvectors: guard vectors better than random ones).
+    earlier model's next eigenvectors: guard vectors better than random ones). In float32:
+    a start needs no more digits, and it is kept beside the fits' largest arrays.
 
     Parameters
     ----------
@@ -167,11 +168,11 @@ def next_start(start: np.ndarray | None, W: np.ndarray) -> np.ndarray:
 
     Returns
     -------
-    ndarray, shape (L, d, max(q, m))
+    ndarray, shape (L, d, max(q, m)), float32
     """
     if start is None or start.shape[2] <= W.shape[2]:
-        return W
-    return np.concatenate([W, start[:, :, W.shape[2]:]], axis=2)
+        return W.astype(np.float32)
+    return np.concatenate([W.astype(np.float32), start[:, :, W.shape[2]:]], axis=2)
 
 
 def top_eigh_from(cov: np.ndarray, k: int, start: np.ndarray, tol: float = None,
