@@ -483,8 +483,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         lbuf.append(look_of[i])
         del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
+        moved = _own_change(lbuf, window, bright, change, held_bright) if settle else None
         fixed = (_settled(lbuf, window, held_look, change, around, bright,
-                          None if seen is None else seen[1], held_bright) if settle else None)
+                          None if seen is None else seen[1], held_bright, moved)
+                 if settle else None)
         fixed, bright_ref = (None, None) if fixed is None else fixed
         own = (_own(lbuf, window, held_look, bright, held_bright, around,
                     None if seen is None else seen[1], bright_ref) if settle else None)
@@ -501,8 +503,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             out[i] = _gated(out[i], own, change)
         if gate and not stepped[i]:
             out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
-        lifts[i] = (_lift(buf, lbuf, window, scale, min_past, bright, held_bright, change)
-                    if changes and settle and stepped[i] else None)
+        lifts[i] = (_lift(buf, window, scale, min_past, None if moved is None else moved[0])
+                    if changes and stepped[i] else None)
         if threshold is not None:  # (else opened below, all frames at once)
             out[i] = _lifted(opened(out[i], footprint), lifts[i])
             if past and window < len(buf) < window + min_past:
@@ -738,7 +740,7 @@ def _kept_brightness(looks: list, bright: dict, shape: tuple) -> np.ndarray | No
 
 def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
              around: int, bright: dict, reference: np.ndarray | None = None,
-             held_bright: np.ndarray | None = None
+             held_bright: np.ndarray | None = None, moved: tuple | None = None
              ) -> tuple[np.ndarray, np.ndarray] | None:
     """Cells where a thing has settled in the window: the picture changed there from the
     frames before it, in the frame judged too, and stays the same from frame to frame
@@ -759,10 +761,11 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     because a look
     is the cell's brightness less the mean around it: when a thing leaves (or comes into)
     that square, the looks of untouched cells move with the mean, while their brightness
-    does not."""
+    does not. ``moved``: (2) as :func:`_own_change` gives it, when already known."""
     if window < 3:
         return None
-    found = _own_change(looks, window, bright, change, held_bright)
+    found = moved if moved is not None else _own_change(looks, window, bright, change,
+                                                         held_bright)
     if found is None:
         return None
     moved, before_raw = found
@@ -861,14 +864,14 @@ def _own_change(looks: list, window: int, bright: dict, change: float,
     return _departs(raw[-window:], before, change), before
 
 
-def _lift(frames: list, looks: list, window: int, scale: float, min_past: int,
-          bright: dict, held_bright: np.ndarray | None, change: float) -> np.ndarray | None:
+def _lift(frames: list, window: int, scale: float, min_past: int,
+          moved: np.ndarray | None) -> np.ndarray | None:
     """Per cell, what a step (measured with the maps divided by ``scale``, see :func:`_step`)
     is multiplied by so that it counts against the view's changes: ``scale`` over
     :func:`change_spread` of the window from the frames before it (floored at 1, at least
-    1) where the cell's own brightness changed in the window (:func:`_own_change`), 1
-    elsewhere, shape (h, w) float32; None where that is 1 everywhere (or a frame before,
-    a look or a brightness is missing).
+    1) where the cell's own brightness changed in the window (``moved``, as
+    :func:`_own_change` gives it), 1 elsewhere, shape (h, w) float32; None where that is 1
+    everywhere (or too few frames before, or ``moved`` None).
 
     A dark, noisy stretch scatters the cells' readings widely but steadily: the scale
     (their spread) then counts noise that the step has already taken off, and a spill
@@ -878,16 +881,13 @@ def _lift(frames: list, looks: list, window: int, scale: float, min_past: int,
     thing taken away beside a cell moves the median around it (and the look's surround);
     the changes' spread would count that as sharply."""
     before = frames[:-window]
-    if scale <= 1.0 or len(before) < max(min_past, 1):
+    if scale <= 1.0 or moved is None or len(before) < max(min_past, 1) or not moved.any():
         return None
     changes = max(change_spread(np.asarray(frames[-window:], np.float32),
                                 np.asarray(before, np.float32)), 1.0)
     if changes >= scale:
         return None
-    found = _own_change(looks, window, bright, change, held_bright)
-    if found is None or not found[0].any():
-        return None
-    return np.where(found[0], np.float32(scale / changes), np.float32(1.0))
+    return np.where(moved, np.float32(scale / changes), np.float32(1.0))
 
 
 def _lifted(step: np.ndarray, lift: np.ndarray | None) -> np.ndarray:
