@@ -508,6 +508,39 @@ def test_a_lamp_switching_on_is_not_a_thing_left_but_a_parcel_set_down_with_it_i
     np.testing.assert_allclose(got, want, atol=1e-5)
 
 
+def test_first_windows_take_a_change_of_light_from_normal_as_no_thing_left():
+    # normal_look with the frames' brightness: its third layer is the per-cell median
+    # (numpy.median) of each frame's brightness less its median over the frame's cells. A
+    # run begins with the wall's upper part darker than in every normal frame (a lamp off
+    # over five of 14 rows), the model reading the light's edge (rows 3-7), and a parcel
+    # there since before the run (2 x 2 cells, darker). Its first window has no frames
+    # before it: against the normal look alone the edge departs (its looks move by what the
+    # mean around moved) and is flagged; with the normal brightness, only where the
+    # departure is the cells' own (more than the mean change of brightness around), so
+    # only the parcel (an older baseline's normal look, 2 layers, runs as before).
+    h, w = 14, 28
+    rng = np.random.default_rng(3)
+    cal = rng.normal(3.0, 0.002, (12, h, w)).astype(np.float32)
+    normal = normal_look(looks_of(cal), np.arange(12) * 2.0, 4, 10.0, brightness=cal)
+    assert normal.shape == (3, h, w)
+    np.testing.assert_allclose(
+        normal[2], np.median(cal - np.median(cal.reshape(12, -1), axis=1)[:, None, None],
+                             axis=0), atol=1e-6)
+    bright = rng.normal(3.0, 0.002, (6, h, w)).astype(np.float32)
+    bright[:, :5] -= 0.4
+    bright[:, 10:12, 20:22] -= 0.3
+    maps = np.zeros((6, h, w), np.float32)
+    maps[:, 3:8, 3:9] = maps[:, 10:12, 20:22] = 30.0
+    kw = dict(threshold=5.0, start_threshold=10.0, past=8, min_past=MIN_PAST, around=3,
+              looks=looks_of(bright), change=0.05)
+    before = persistence(maps, np.arange(6) * 2.0, 4, 10.0, normal=normal[:2],
+                         brightness=bright, **kw)
+    run = persistence(maps, np.arange(6) * 2.0, 4, 10.0, normal=normal, brightness=bright,
+                      **kw)
+    assert not run.stepped[3] and before.maps[3, 3:8, 3:9].max() > 10.0
+    assert run.maps[3, 3:8, 3:9].max() <= 0.0 and (run.maps[3, 10:12, 20:22] > 10.0).all()
+
+
 def test_a_reference_needs_frames_a_passer_by_cannot_move():
     # A cell that reads unusual all along (30), covered in the first frame of a run by a
     # passer-by who reads less unusual there (2): a reference from that one frame makes the

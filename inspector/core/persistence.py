@@ -342,7 +342,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         can read as unusual as the thing did, but does not look like it. The spread can
         only grow and the look only takes flags away, so the flags are a subset of those
         without it (the calibrated rate still holds; calibration holds no cell).
-    normal : ndarray, shape (2, h, w), float32, optional
+    normal : ndarray, shape (2, h, w) or (3, h, w), float32, optional
         The camera's normal look (:func:`normal_look`). With ``looks`` and ``change`` > 0, a
         window with too few frames before it for a reference (the first of a run, and the
         next ones; not ``stepped``) counts a cell only where its frames' looks depart from
@@ -351,7 +351,14 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         frames before it to tell what it holds from what was always there: a region that
         looks as it does in normal frames (a floor line the model reads anew under an
         unusual light, the ground where a passer-by stood in the run's first frame) is not
-        something left. Its flags are a subset of those without it.
+        something left. With the normal brightness (``normal[2]``) and ``brightness``, also
+        only where that departure is the cell's own by more than ``change``, as
+        :func:`_own` asks of a stepped window but from the normal look and brightness: a
+        light unlike every normal frame's over a region wider than half the square around
+        a cell (a lamp off over the wall) is not something left either; what it costs is
+        the same (a thing within such a region of changed light is not counted until the
+        window has frames before it, and then only if it came after them). Its flags are
+        a subset of those without it.
     crossed : bool
         With ``looks`` and ``change`` > 0, a window measured from a reference also counts
         what the last ``window`` + 1 frames show in at least ``window`` - 1 of them, the
@@ -457,7 +464,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             if own is not None and stepped[i]:
                 raw = _gated(raw, own, change)
             if gate and not stepped[i]:
-                raw = _usual(raw, late_l[-window:], normal, change, around)
+                raw = _usual(raw, late_l[-window:], normal, change, around, bright)
             out[i], steady[i] = raw, level
             if threshold is not None:
                 out[i] = opened(raw, footprint)
@@ -502,7 +509,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         if own is not None and stepped[i]:
             out[i] = _gated(out[i], own, change)
         if gate and not stepped[i]:
-            out[i] = _usual(out[i], lbuf[-window:], normal, change, around)
+            out[i] = _usual(out[i], lbuf[-window:], normal, change, around, bright)
         lifts[i] = (_lift(buf, window, scale, min_past, None if moved is None else moved[0])
                     if changes and stepped[i] else None)
         if threshold is not None:  # (else opened below, all frames at once)
@@ -828,8 +835,18 @@ def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
         ref_raw = _median_along(raw[:-window])
         if held_bright is not None:
             ref_raw = np.where(np.isnan(held_bright), ref_raw, held_bright)
-    look = np.abs(np.asarray(looks[-window:], np.float32) - ref_look)
-    moved = np.abs(np.asarray(raw[-window:], np.float32) - ref_raw)
+    return _own_from(looks[-window:], raw[-window:], ref_look, ref_raw, around)
+
+
+def _own_from(looks: list, bright: list, ref_look: np.ndarray, ref_bright: np.ndarray,
+                around: int = 1) -> np.ndarray:
+    """:func:`_own` of a window's ``looks`` and their frames' ``bright`` (each less its
+    frame's median) from the references ``ref_look`` and ``ref_bright``, all (h, w): per
+    frame the absolute change of the look less the mean over the :func:`local_size` square
+    of the absolute change of brightness, the second smallest over the frames, the largest
+    over the ``around`` x ``around`` cells, shape (h, w) float32."""
+    look = np.abs(np.asarray(looks, np.float32) - ref_look)
+    moved = np.abs(np.asarray(bright, np.float32) - ref_bright)
     if len(look) > 2:
         look, moved = _second_smallest(look), _second_smallest(moved)
     else:
@@ -917,17 +934,26 @@ def _departure(looks: list, reference: np.ndarray, around: int = 1) -> np.ndarra
 
 
 def _usual(level: np.ndarray, looks: list, normal: np.ndarray | None, change: float,
-           around: int) -> np.ndarray:
+           around: int, bright: dict | None = None) -> np.ndarray:
     """``level`` of a window without a reference where the window's looks depart from the
-    camera's normal look by more than ``normal[1]`` + ``change``, else at most 0 (see
+    camera's normal look by more than ``normal[1]`` + ``change``, and, with the normal
+    brightness ``normal[2]`` and the frames' brightness (``bright``, by look: see
+    :func:`_by_look`), where that departure is the cells' own by more than ``change``
+    (:func:`_own_from` the normal look and brightness), else at most 0 (see
     ``normal`` of :func:`persistence`); ``level`` itself without a normal look or a look."""
     if normal is None or any(v is None for v in looks) or normal.shape[1:] != level.shape:
         return level
-    return _gated(level, _departure(looks, normal[0], around) - normal[1], change)
+    found = _departure(looks, normal[0], around) - normal[1]
+    raws = [bright.get(id(v)) for v in looks] if bright and len(normal) > 2 else []
+    if raws and all(r is not None and r[0] is v for r, v in zip(raws, looks)):
+        found = np.minimum(found, _own_from(looks, [r[1] for r in raws], normal[0],
+                                            normal[2], around))
+    return _gated(level, found, change)
 
 
 def normal_look(looks: np.ndarray, times: np.ndarray, window: int, max_gap: float,
-                blocks: np.ndarray | None = None, around: int = AROUND) -> np.ndarray:
+                blocks: np.ndarray | None = None, around: int = AROUND,
+                brightness: np.ndarray | None = None) -> np.ndarray:
     """A camera's normal look, and how far windows of normal frames depart from it.
 
     Parameters
@@ -941,15 +967,18 @@ def normal_look(looks: np.ndarray, times: np.ndarray, window: int, max_gap: floa
         A window's frames are at most this many seconds apart (and of one block).
     blocks : ndarray, shape (n,), int, optional
     around : int
+    brightness : ndarray, shape (n, h, w), float, optional
+        The same frames' :func:`cell_brightness`.
 
     Returns
     -------
-    ndarray, shape (2, h, w), float32
+    ndarray, shape (2, h, w), or (3, h, w) with ``brightness``, float32
         [0]: per cell, the median look of the frames (a passer-by covers a cell in far
         fewer than half of them); [1]: per cell, the largest :func:`_departure` from it of
         the windows of ``window`` consecutive frames (how far the light of normal days, and
         passers-by in all but one frame of a window, take a cell's look), 0 where there is
-        no window.
+        no window; [2]: per cell, the median of the frames' brightness, each less its
+        median over the frame's cells (:func:`_frame_relative`), as [0] is of the looks.
     """
     looks = np.asarray(looks, np.float32)
     times = np.asarray(times, np.float64)
@@ -961,7 +990,10 @@ def normal_look(looks: np.ndarray, times: np.ndarray, window: int, max_gap: floa
                 blocks is not None and len(np.unique(np.asarray(blocks)[span])) > 1):
             continue
         reach = np.maximum(reach, _departure(list(looks[span]), centre, around))
-    return np.stack([centre, reach]).astype(np.float32)
+    layers = [centre, reach]
+    if brightness is not None:
+        layers.append(np.median(_frame_relative(brightness), axis=0))
+    return np.stack(layers).astype(np.float32)
 
 
 def _gated(step: np.ndarray, changed: np.ndarray, change: float) -> np.ndarray:
@@ -1545,10 +1577,12 @@ class Persistence:
     shown : bool
         A held cell is flagged only where the frame shows what it holds (``shown`` of
         :func:`persistence`); False for baselines learnt before it.
-    normal : ndarray, shape (2, h, w), float32, or None
+    normal : ndarray, shape (2, h, w) or (3, h, w), float32, or None
         The camera's normal look (:func:`normal_look` of the calibrating frames), which
-        windows without a reference must depart from (``normal`` of :func:`persistence`);
-        None for baselines learnt before it, or without looks.
+        windows without a reference must depart from (``normal`` of :func:`persistence`),
+        with the normal brightness as its third layer when ``settle`` (2 layers for
+        baselines learnt before it: their first windows run as then); None for baselines
+        learnt before it, or without looks.
     crossed : bool
         Windows measured from a reference also count what frames seen through passers-by
         show (``crossed`` of :func:`persistence`); False for baselines learnt before it,
@@ -1771,8 +1805,8 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
               else 0.0)
     # (scan time only: windows without a reference flag a subset of what the start
     # threshold, calibrated without it, allows)
-    normal = (normal_look(looks, s_times, window, max_gap, s_blocks) if looks is not None
-              else None)
+    normal = (normal_look(looks, s_times, window, max_gap, s_blocks, brightness=brightness)
+              if looks is not None else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
                        looks=looks, change=change, crossed=True, brightness=brightness,
                        **opts)

@@ -812,7 +812,10 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
                   "from the view's other changes, not from its cells' scatter"
                   if p.robust == "change" and p.start_threshold is not None else "")
                + ("; the first frames of a run only where they look unlike the normal "
-                  "frames (further from their median look than any window of them)"
+                  "frames (further from their median look than any window of them"
+                  + (", and by more than the light around them changed from the normal "
+                     "brightness: not a change of light over a wider region"
+                     if len(p.normal) > 2 else "") + ")"
                   if p.normal is not None and p.start_threshold is not None else "")
                + f"; frames reported {' or '.join(sorted(STEP_CONDITIONS))} are still "
                  f"judged, against the frames just before them (and stay in health.csv)"
