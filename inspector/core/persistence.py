@@ -711,9 +711,7 @@ def _changed(looks: list, window: int, held_look: np.ndarray | None, min_past: i
     before = looks[:-window]
     if len(before) < min_past or any(v is None for v in looks):
         return None
-    reference = _median_along(before)
-    if held_look is not None:
-        reference = np.where(np.isnan(held_look), reference, held_look)
+    reference = _median_or_held(before, held_look)
     return _departure(looks[-window:], reference, around), reference
 
 
@@ -729,6 +727,23 @@ def _by_look(looks: list, brightness) -> dict:
     return {id(v): (v, b) for v, b in zip(looks, brightness) if v is not None}
 
 
+def _brightness_of(looks: list, bright: dict) -> list | None:
+    """The frame brightness of each of ``looks`` (``bright``: by look, see :func:`_by_look`),
+    oldest first; None when one is not known."""
+    found = [bright.get(id(v)) for v in looks]
+    if any(f is None or f[0] is not v for f, v in zip(found, looks)):
+        return None
+    return [f[1] for f in found]
+
+
+def _median_or_held(before: list, held: np.ndarray | None) -> np.ndarray:
+    """A cell's reference: the median of ``before`` (frames' looks or brightness, oldest
+    first; :func:`_median_along`), or where a cell is held, the value it keeps (``held``,
+    NaN elsewhere), shape (h, w) float32."""
+    reference = _median_along(before)
+    return reference if held is None else np.where(np.isnan(held), reference, held)
+
+
 def _frame_relative(brightness: np.ndarray) -> np.ndarray:
     """Each frame's brightness less its median over the frame's cells, shape (n, h, w)
     float32 (a change of exposure moves every cell's log brightness alike)."""
@@ -739,10 +754,10 @@ def _frame_relative(brightness: np.ndarray) -> np.ndarray:
 def _kept_brightness(looks: list, bright: dict, shape: tuple) -> np.ndarray | None:
     """The brightness of the frames whose ``looks`` a state keeps, shape (m, h, w) float32;
     None when one is not known."""
-    found = [bright.get(id(v)) for v in looks]
-    if any(f is None or f[0] is not v for f, v in zip(found, looks)):
+    found = _brightness_of(looks, bright)
+    if found is None:
         return None
-    return np.array([f[1] for f in found], np.float32).reshape(len(found), *shape)
+    return np.array(found, np.float32).reshape(len(found), *shape)
 
 
 def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
@@ -777,9 +792,7 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
         return None
     moved, before_raw = found
     if reference is None:
-        reference = _median_along(looks[:-window])
-        if held_look is not None:
-            reference = np.where(np.isnan(held_look), reference, held_look)
+        reference = _median_or_held(looks[:-window], held_look)
     win = looks[-window:]
     own = _departs(win, reference, change)
     agree = None  # the looks' range over the window without one of its older frames
@@ -821,20 +834,12 @@ def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
     before = looks[:-window]
     if not before or any(v is None for v in looks):
         return None
-    raws = [bright.get(id(v)) for v in looks]
-    if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
+    raw = _brightness_of(looks, bright)
+    if raw is None:
         return None
-    ref_look = reference
-    if ref_look is None:
-        ref_look = _median_along(before)
-        if held_look is not None:
-            ref_look = np.where(np.isnan(held_look), ref_look, held_look)
-    raw = [r[1] for r in raws]
-    ref_raw = bright_reference
-    if ref_raw is None:
-        ref_raw = _median_along(raw[:-window])
-        if held_bright is not None:
-            ref_raw = np.where(np.isnan(held_bright), ref_raw, held_bright)
+    ref_look = _median_or_held(before, held_look) if reference is None else reference
+    ref_raw = (_median_or_held(raw[:-window], held_bright) if bright_reference is None
+               else bright_reference)
     return _own_from(looks[-window:], raw[-window:], ref_look, ref_raw, around)
 
 
@@ -871,13 +876,10 @@ def _own_change(looks: list, window: int, bright: dict, change: float,
     brightness missing."""
     if len(looks) <= window or any(v is None for v in looks):
         return None
-    raws = [bright.get(id(v)) for v in looks]
-    if any(r is None or r[0] is not v for r, v in zip(raws, looks)):
+    raw = _brightness_of(looks, bright)
+    if raw is None:
         return None
-    raw = [r[1] for r in raws]
-    before = _median_along(raw[:-window])
-    if held_bright is not None:
-        before = np.where(np.isnan(held_bright), before, held_bright)
+    before = _median_or_held(raw[:-window], held_bright)
     return _departs(raw[-window:], before, change), before
 
 
@@ -944,10 +946,9 @@ def _usual(level: np.ndarray, looks: list, normal: np.ndarray | None, change: fl
     if normal is None or any(v is None for v in looks) or normal.shape[1:] != level.shape:
         return level
     found = _departure(looks, normal[0], around) - normal[1]
-    raws = [bright.get(id(v)) for v in looks] if bright and len(normal) > 2 else []
-    if raws and all(r is not None and r[0] is v for r, v in zip(raws, looks)):
-        found = np.minimum(found, _own_from(looks, [r[1] for r in raws], normal[0],
-                                            normal[2], around))
+    raw = _brightness_of(looks, bright) if bright and len(normal) > 2 else None
+    if raw:
+        found = np.minimum(found, _own_from(looks, raw, normal[0], normal[2], around))
     return _gated(level, found, change)
 
 
