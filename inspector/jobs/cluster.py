@@ -57,8 +57,7 @@ from inspector.jobs.scan import (
     scan_files,
     stream_order,
 )
-from inspector.storage.frames import FrameFile, read_frame
-from inspector.storage.results import Skipped
+from inspector.storage.frames import FrameFile, Skip, read_frame
 from inspector.storage.store import Store
 
 
@@ -334,8 +333,8 @@ def scan_on_cluster(client, files: Sequence[FrameFile], baselines, writer, confi
                 if type(exc).__name__ != "KilledWorker":
                     raise
                 writer.write(skipped=[
-                    Skipped(f.rel, f.camera, "not scored: every Dask worker that took it "
-                                             "was lost (allowed-failures reached)")
+                    Skip(f.rel, f.camera, "not scored: every Dask worker that took it "
+                                          "was lost (allowed-failures reached)")
                     for f in part.files])
             else:
                 recorder.replay(writer, streams, persisting.get(part.camera), part.files,

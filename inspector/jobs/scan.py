@@ -22,6 +22,7 @@ from inspector.jobs.progress import progress_bar
 from inspector.storage.frames import (
     Frame,
     FrameFile,
+    Skip,
     capture_time,
     discover,
     iter_batches,
@@ -32,7 +33,6 @@ from inspector.storage.results import (
     Amplified,
     FrameResult,
     ResultWriter,
-    Skipped,
 )
 from inspector.storage.store import DamagedBaseline, Store
 
@@ -324,7 +324,7 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
         for camera, cam_files in by_camera.items():
             baseline, reason = load_baseline(baselines, camera, summary.damaged)
             if baseline is None:
-                writer.write(skipped=[Skipped(f.rel, camera, reason, waiting=True)
+                writer.write(skipped=[Skip(f.rel, camera, reason, waiting=True)
                                       for f in cam_files])
                 bar.update(len(cam_files))
                 continue
@@ -340,7 +340,7 @@ def scan_files(files: Iterable[FrameFile], baselines: BaselineCache, writer: Res
             for batch in iter_batches(cam_files, BATCH, workers=workers,
                                       work=work, **read_args(baseline, config)):
                 if batch.errors:
-                    writer.write(skipped=[Skipped(f.rel, camera, str(err))
+                    writer.write(skipped=[Skip(f.rel, camera, str(err))
                                           for f, err in batch.errors])
                 writer.write(score_frames(baseline, batch.frames, batch.result,
                                           streams if persist else None, summary.notes))
@@ -400,7 +400,7 @@ def scan_folder(source: Path, baselines: BaselineCache, writer: ResultWriter, co
     frames are scored on its Dask cluster (:func:`inspector.jobs.cluster.scan_on_cluster`).
     """
     files, skips = discover(source)
-    writer.write(skipped=[Skipped(s.rel, s.camera, s.reason) for s in skips])
+    writer.write(skipped=skips)
     done: dict = {}
     if not rescore and writer.ledger is not None:
         root = Path(source).resolve()

@@ -53,10 +53,10 @@ from inspector.jobs.scan import (
     score_frames,
 )
 from inspector.jobs.settle import Arrival, Settler, is_done
-from inspector.storage.frames import read_frame
+from inspector.storage.frames import Skip, read_frame
 from inspector.storage.ledger import Ledger
 from inspector.storage.overlay import amplified_text
-from inspector.storage.results import ResultWriter, Seen, Skipped
+from inspector.storage.results import ResultWriter, Seen
 from inspector.storage.store import DamagedBaseline, Store
 
 #: Seconds between two checks of a damaged active version (its files may be put back from a
@@ -361,14 +361,14 @@ class Watcher:
     def _process(self, batch: list[Arrival]) -> None:
         done = self.ledger.lookup([it.path for it in batch])
         todo = [it for it in batch if not is_done(done.get(it.path), it.size, it.mtime)]
-        skipped: list[Skipped] = []
+        skipped: list[Skip] = []
         seen: dict[str, Seen] = {}
         by_camera: dict[str, list[Arrival]] = {}
         for it in todo:
             rel = it.skip.rel if it.skip is not None else it.file.rel
             seen[rel] = it  # (an Arrival is the Seen the ledger row takes)
             if it.skip is not None:
-                skipped.append(Skipped(it.skip.rel, it.skip.camera, it.skip.reason))
+                skipped.append(it.skip)
             else:
                 by_camera.setdefault(it.file.camera, []).append(it)
         newly_waiting: list[tuple[str, str]] = []
@@ -380,7 +380,7 @@ class Watcher:
                 baseline = self.baselines.get(camera)
             except LookupError as exc:
                 damage = exc.note if isinstance(exc, DamagedBaseline) else ""
-                skipped += [Skipped(it.file.rel, camera, str(exc), waiting=True)
+                skipped += [Skip(it.file.rel, camera, str(exc), waiting=True)
                             for it in items]
                 with self._lock:
                     if camera not in self._failed:
@@ -394,7 +394,7 @@ class Watcher:
                 try:
                     frames.append(read_frame(it.file, **read_args(baseline, self.config)))
                 except FrameError as exc:
-                    skipped.append(Skipped(it.file.rel, camera, str(exc)))
+                    skipped.append(Skip(it.file.rel, camera, str(exc)))
             frames.sort(key=lambda f: (f.time, f.file.rel))  # a stream goes forward in time
             notes: Counter[str] = Counter()
             results += score_frames(baseline, frames, streams=self.streams, notes=notes)
@@ -420,7 +420,7 @@ class Watcher:
                      f"{camera}: no baseline yet; its frames wait (run 'inspector learn')")
         for s in skipped:
             if not s.waiting:
-                self.log(f"skipped {s.frame}: {s.reason}")
+                self.log(f"skipped {s.rel}: {s.reason}")
 
 
 def refuse_second_watcher(ledger: Ledger, root: Path) -> None:

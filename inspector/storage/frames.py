@@ -70,11 +70,18 @@ class Frame:
 
 @dataclass(frozen=True)
 class Skip:
-    """A file that was not scored, with the reason."""
+    """A file that was not scored, with the reason.
 
+    ``waiting``: its camera has no usable baseline yet. The ledger keeps such a frame as
+    ``waiting`` so that a watch scores it once a baseline is active; a scan (a writer not
+    in append mode) also records it in skipped.csv, since nobody will come back to it.
+    """
+
+    #: Path relative to the scanned folder (``<camera>/...``), as the ledger and CSVs write it.
     rel: str
     camera: str
     reason: str
+    waiting: bool = False
 
 
 def sniff(head: bytes) -> str | None:

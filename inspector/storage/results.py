@@ -42,6 +42,7 @@ from inspector.core.events import (
     FramePoint,
     group_events,
 )
+from inspector.storage.frames import Skip
 from inspector.storage.overlay import overlay_caption, render_overlay
 from inspector.storage.store import write_atomic, write_json
 
@@ -259,21 +260,6 @@ class _Csv:
 
 
 @dataclass(frozen=True)
-class Skipped:
-    """A frame that was not scored, with the reason.
-
-    ``waiting``: its camera has no usable baseline yet. The ledger keeps such a frame as
-    ``waiting`` so that a watch scores it once a baseline is active; a scan (a writer not
-    in append mode) also records it in skipped.csv, since nobody will come back to it.
-    """
-
-    frame: str
-    camera: str
-    reason: str
-    waiting: bool = False
-
-
-@dataclass(frozen=True)
 class Seen:
     """A frame file as found: its ledger row's path, size, modification time and when it
     was found complete (ISO 8601)."""
@@ -349,7 +335,7 @@ class ResultWriter:
 
     # --- writing ---------------------------------------------------------------------------
 
-    def write(self, results: Sequence[FrameResult] = (), skipped: Sequence[Skipped] = (),
+    def write(self, results: Sequence[FrameResult] = (), skipped: Sequence[Skip] = (),
               seen: Mapping[str, Seen] | None = None) -> list[str]:
         """Record a batch: scored frames (with their health conditions) and frames not
         scored, in the order described in the module docstring.
@@ -371,7 +357,7 @@ class ResultWriter:
                                 health=json.dumps(r.health) if r.health else None,
                                 since=since_text(r), noise_amplified=r.noise_amplified)
                            for r, t, overlay in zip(results, times, overlays)]
-                entries += [dict(self._file(s.frame, seen, stamp), camera=s.camera,
+                entries += [dict(self._file(s.rel, seen, stamp), camera=s.camera,
                                  reason=s.reason, status="waiting" if s.waiting else "skipped",
                                  written=0 if self._csv_skip(s) else 1)
                             for s in skipped]
@@ -391,7 +377,7 @@ class ResultWriter:
                     self._dirty.add(r.camera)
             for s in skipped:
                 if self._csv_skip(s):
-                    self.skipped.row((s.frame, s.camera, s.reason))
+                    self.skipped.row((s.rel, s.camera, s.reason))
                 self.counts["waiting" if s.waiting else "skipped"] += 1
                 if s.waiting:
                     self.waiting[s.camera] += 1
@@ -399,7 +385,7 @@ class ResultWriter:
                 self.ledger.mark_written(e["path"] for e in entries if e["written"] == 0)
         return overlays
 
-    def _csv_skip(self, s: Skipped) -> bool:
+    def _csv_skip(self, s: Skip) -> bool:
         return not (s.waiting and self.append)
 
     def _save_files(self, r: FrameResult) -> str:
