@@ -75,7 +75,7 @@ def _child(mode: str, folder: str, n: int) -> None:
     """Run in a fresh process: decode or learn the first n frames; print JSON."""
     from inspector.config import load_config
     from inspector.jobs.learn import FileSource, learn_camera
-    from inspector.storage.frames import discover, working_size
+    from inspector.storage.frames import discover, read_settings, working_size
     from inspector.storage.store import Store
 
     config = load_config(None)
@@ -89,10 +89,8 @@ def _child(mode: str, folder: str, n: int) -> None:
 
         h, w = cv2.imread(str(files[0].path), cv2.IMREAD_REDUCED_COLOR_2).shape[:2]
         size = working_size((2 * w, 2 * h), cfg.frames.long_side)
-        fs = cfg.frames
         source = FileSource(files, [0] * len(files), size, (2 * w, 2 * h),
-                            {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
-                             "time_formats": fs.time_formats}, "cam")
+                            read_settings(cfg.frames), "cam")
         count = sum(len(idx) for idx, _ in source.batches(range(len(files))))
     else:
         with tempfile.TemporaryDirectory() as store:

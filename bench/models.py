@@ -42,7 +42,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from inspector.config import Config  # noqa: E402
 from inspector.demo.scenario import generate, load_truth  # noqa: E402
 from inspector.jobs.learn import learn_camera  # noqa: E402
-from inspector.storage.frames import discover, iter_batches  # noqa: E402
+from inspector.storage.frames import discover, iter_batches, read_settings  # noqa: E402
 from inspector.storage.store import Store  # noqa: E402
 
 BATCH = 16
@@ -132,12 +132,11 @@ def run(root: Path, args: argparse.Namespace) -> int:
 
 def _scan_set(files, baseline, cfg, truth, scenario):
     """Decoded frames to scan, their labels and incident masks at working resolution."""
-    fs = cfg.frames
     images, labels, masks = [], [], []
     w, h = baseline.size
     frames = [frame for batch in iter_batches(
-        files, BATCH, long_side=fs.long_side, max_pixels=fs.max_pixels,
-        time_formats=fs.time_formats, size=baseline.size, source_size=baseline.source_size)
+        files, BATCH, **read_settings(cfg.frames), size=baseline.size,
+        source_size=baseline.source_size)
         for frame in batch.frames]
     for frame in frames:
         f = frame.file

@@ -60,6 +60,7 @@ from inspector.storage.frames import (
     image_size,
     iter_batches,
     jpeg_compression,
+    read_settings,
     working_size,
 )
 from inspector.storage.store import Store, VersionFacts, describe
@@ -98,7 +99,8 @@ class FileSource:
     size, source_size : (int, int)
         Working and exported (width, height).
     read_args : dict
-        ``long_side``, ``max_pixels``, ``time_formats`` for :func:`inspector.storage.frames.read_frame`.
+        Arguments of :func:`inspector.storage.frames.read_frame`
+        (:func:`~inspector.storage.frames.read_settings`).
 
     Attributes
     ----------
@@ -411,9 +413,7 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
     source_size = _common_resolution(files)
     size = working_size(source_size, fs.long_side)
     blocks = time_blocks(times, cfg.calibration.folds)
-    read_args = {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
-                 "time_formats": fs.time_formats}
-    source = FileSource(files, blocks, size, source_size, read_args, camera)
+    source = FileSource(files, blocks, size, source_size, read_settings(fs), camera)
     mask = _mask(cfg, source_size, size)
     model = model_class(cfg.model.model)(**_model_params(cfg))
     extra_args = {"pool": pool} if pool is not None and takes_pool(model) else {}

@@ -27,6 +27,7 @@ from inspector.storage.frames import (
     discover,
     iter_batches,
     read_frame,
+    read_settings,
 )
 from inspector.storage.results import (
     STRONGLY_AMPLIFIED,
@@ -91,10 +92,8 @@ class BaselineCache:
 
 def read_args(baseline: Baseline, config: Config) -> dict:
     """Arguments of :func:`inspector.storage.frames.read_frame` for frames scored by ``baseline``."""
-    fs = config.camera(baseline.camera).frames
-    return {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
-            "time_formats": fs.time_formats, "size": baseline.size,
-            "source_size": baseline.source_size}
+    return dict(read_settings(config.camera(baseline.camera).frames), size=baseline.size,
+                source_size=baseline.source_size)
 
 
 def score_frames(baseline: Baseline, frames: Sequence[Frame],

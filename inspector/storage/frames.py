@@ -24,6 +24,7 @@ import cv2
 import numpy as np
 from PIL import Image
 
+from inspector.config import FrameSettings
 from inspector.errors import FrameError
 from inspector.names import is_ignored_name
 
@@ -462,6 +463,13 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
     image = cv2.cvtColor(image, cv2.COLOR_BGR2RGB)
     when = capture_time(file.path, time_formats, data)
     return Frame(file=file, image=image, time=when, source_size=src, notes=notes)
+
+
+def read_settings(fs: FrameSettings) -> dict:
+    """The arguments of :func:`read_frame` that a camera's ``[frames]`` settings give
+    (``long_side``, ``max_pixels``, ``time_formats``); scan adds the baseline's sizes."""
+    return {"long_side": fs.long_side, "max_pixels": fs.max_pixels,
+            "time_formats": fs.time_formats}
 
 
 @dataclass
