@@ -789,37 +789,42 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
     config's), and when on, what it flags (``alpha``: the calibration's rate)."""
     apart = (f" (frames {p.span / p.window / 60:.0f} min apart: too far apart to tell passing "
              f"from staying)" if p.span > MAX_SPAN else "")
-    return (f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
+    head = (f"{'busy' if p.busy else 'quiet'} camera: {p.transient_share:.0%} of normal "
             f"frames hold large short-lived anomalies{apart}; persistence "
-            f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}"
-            + (f": flags what stays {p.window} frames (threshold {p.threshold.value:.3f}"
-               + (f" on the change from the {p.past} frames before, "
-                  f"{p.start_threshold.value:.3f} for the first frames of a run"
-                  if p.start_threshold is not None else "")
-               + f"; at least {p.floor:.3f}, the steady level {alpha:.3g} of normal "
-                 f"cells pass; {p.threshold.describe()} over {p.threshold.n} windows)"
-               + (f"; a change counts where the picture changed (log brightness by more "
-                  f"than {p.change:.3f}" + (", and more than around it: not a change of light "
-                                            "over a wider region" if p.settle else "")
-                  + ")" if p.change > 0 else "")
-               + (f", also in {p.window - 1} of {p.window + 1} frames that look alike "
-                  f"where passers-by cross it in the others (calibrated with it)"
-                  if p.crossed and p.change > 0 and p.start_threshold is not None else "")
-               + ("; where the picture shows a thing settled (its look and brightness "
-                  "changed, then stayed), its lowest reading of the window counts"
+            f"{'on' if on else 'off'}{' (config)' if mode != 'auto' else ''}")
+    if not on:
+        return f"{head}: single-frame flags"
+    steps = p.start_threshold is not None  # judged on the step from the frames before
+    threshold = f"threshold {p.threshold.value:.3f}"
+    if steps:
+        threshold += (f" on the change from the {p.past} frames before, "
+                      f"{p.start_threshold.value:.3f} for the first frames of a run")
+    clauses = [f"flags what stays {p.window} frames ({threshold}; at least {p.floor:.3f}, the "
+               f"steady level {alpha:.3g} of normal cells pass; {p.threshold.describe()} over "
+               f"{p.threshold.n} windows)"]
+    if p.change > 0:
+        around = (", and more than around it: not a change of light over a wider region"
                   if p.settle else "")
-               + ("; in a noisy stretch (dark) a change counts by how far it stands out "
-                  "from the view's other changes, not from its cells' scatter"
-                  if p.robust == "change" and p.start_threshold is not None else "")
-               + ("; the first frames of a run only where they look unlike the normal "
-                  "frames (further from their median look than any window of them"
-                  + (", and by more than the light around them changed from the normal "
-                     "brightness: not a change of light over a wider region"
-                     if len(p.normal) > 2 else "") + ")"
-                  if p.normal is not None and p.start_threshold is not None else "")
-               + f"; frames reported {' or '.join(sorted(STEP_CONDITIONS))} are still "
-                 f"judged, against the frames just before them (and stay in health.csv)"
-               if on else ": single-frame flags"))
+        crossed = (f", also in {p.window - 1} of {p.window + 1} frames that look alike where "
+                   f"passers-by cross it in the others (calibrated with it)"
+                   if p.crossed and steps else "")
+        clauses.append(f"a change counts where the picture changed (log brightness by more "
+                       f"than {p.change:.3f}{around}){crossed}")
+    if p.settle:
+        clauses.append("where the picture shows a thing settled (its look and brightness "
+                       "changed, then stayed), its lowest reading of the window counts")
+    if p.robust == "change" and steps:
+        clauses.append("in a noisy stretch (dark) a change counts by how far it stands out "
+                       "from the view's other changes, not from its cells' scatter")
+    if p.normal is not None and steps:
+        light = (", and by more than the light around them changed from the normal "
+                 "brightness: not a change of light over a wider region"
+                 if len(p.normal) > 2 else "")
+        clauses.append(f"the first frames of a run only where they look unlike the normal "
+                       f"frames (further from their median look than any window of them{light})")
+    clauses.append(f"frames reported {' or '.join(sorted(STEP_CONDITIONS))} are still judged, "
+                   f"against the frames just before them (and stay in health.csv)")
+    return f"{head}: " + "; ".join(clauses)
 
 
 def learn_cameras(files: Sequence[FrameFile], config: Config, store: Store
