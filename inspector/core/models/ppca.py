@@ -1063,26 +1063,24 @@ class PatchPPCA(DensityModel):
         # latent size with: every model (folds and final alike) then uses "variance", so the
         # calibration maps come from models chosen by the same rule as the final one.
         self._few_blocks = len(labels) < 3
-        # Each model's W starts the eigensolver of the next (the moments of one more block;
-        # :func:`next_start`).
-        self._warm = None
         if pool is None:
-            moments, folds = self._forward_pass(source, order, block_of, len(labels), first)
+            moments, folds, start = self._forward_pass(source, order, block_of, len(labels),
+                                                       first)
         else:
             moments = self._new_moments(len(labels), block_scatter=True)
             for part in _pooled(pool, _block_moments, self, source,
                                 _pieces(order, blocks, labels, pool)):
                 moments.merge(part)
             jobs = []
+            start = None  # each fold's W starts the eigensolver of the next (next_start)
             for k in range(first, len(labels)):
                 if moments.count[:k].sum() < 2 or not moments.count[k]:
                     continue
                 fold = copy.copy(self)
                 q = self._heldout_q(moments.sums(k - 1, HELDOUT_EVERY) if k > 1 else None,
                                     moments.sums(k, HELDOUT_EVERY))
-                fold._set(*fold._fit_moments(moments, q, self._warm, before=k))
-                self._warm = next_start(self._warm, fold.W_)
-                del fold._warm  # (not shipped with the fold)
+                fold._set(*fold._fit_moments(moments, q, start, before=k))
+                start = next_start(start, fold.W_)
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
             self._last_split = ((moments.sums(len(labels) - 1, HELDOUT_EVERY)
@@ -1096,19 +1094,19 @@ class PatchPPCA(DensityModel):
         held = (HeldOut(np.concatenate(held_idx), np.concatenate(held_maps)) if held_maps else
                 HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32)))
         if beside is None:
-            self._fit_final(moments)
+            self._fit_final(moments, start)
         else:
             with ThreadPoolExecutor(1) as pool_beside:
                 job = pool_beside.submit(beside, held)
-                self._fit_final(moments)
+                self._fit_final(moments, start)
                 job.result()
         return held
 
-    def _fit_final(self, moments: Moments) -> None:
-        """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass)."""
+    def _fit_final(self, moments: Moments, start: np.ndarray | None) -> None:
+        """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass),
+        its eigensolver started from ``start`` (the last fold's, :func:`next_start`)."""
         q = self._heldout_q(*self._last_split)
-        start = self._warm
-        del self._last_split, self._few_blocks, self._warm
+        del self._last_split, self._few_blocks
         self._set(*self._fit_moments(moments, q, start, consume=True))  # (moments' last use)
 
     def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
@@ -1119,11 +1117,13 @@ class PatchPPCA(DensityModel):
         return np.argsort(block_of, kind="stable"), self.batch_size
 
     def _forward_pass(self, source: FrameSource, order: np.ndarray, block_of: np.ndarray,
-                      n_blocks: int, first: int) -> tuple[Moments, list]:
+                      n_blocks: int, first: int) -> tuple[Moments, list, np.ndarray | None]:
         """One pass in time order: score each block from ``first`` on with the model of the
-        moments so far, then add it. Returns the moments and
-        ``[[(positions, raw maps)], ...]``."""
+        moments so far, then add it. Returns the moments, ``[[(positions, raw maps)], ...]``
+        and the start of the final model's eigensolver (:func:`next_start` of the folds'
+        ``W``; None when no fold was fitted)."""
         moments = self._new_moments(n_blocks)
+        start = None  # each fold's W starts the eigensolver of the next (next_start)
         held: list[tuple[np.ndarray, np.ndarray]] = []
         current, ready = -1, False
         earlier = None  # sums at the start of the block before the current one
@@ -1139,8 +1139,8 @@ class PatchPPCA(DensityModel):
                            if self._wants_sums() and b >= first - 1 else None)
                     if ready:  # the latent size first: its temporaries and the
                         q = self._heldout_q(earlier, now)  # covariances never coexist
-                        self._set(*self._fit_moments(moments, q, self._warm))
-                        self._warm = next_start(self._warm, self.W_)
+                        self._set(*self._fit_moments(moments, q, start))
+                        start = next_start(start, self.W_)
                     earlier = now
                 part = images if sel.all() else images[sel]
                 if ready:  # the block entries gathered once: scored, then learnt from
@@ -1151,7 +1151,7 @@ class PatchPPCA(DensityModel):
                     self._add(moments, int(b), part)
         self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
                             if self._wants_sums() else None)
-        return moments, [held]
+        return moments, [held], start
 
     def _new_moments(self, n_blocks: int, block_scatter: bool = False) -> Moments:
         """Empty moments of this model's locations, kept per block of the frame when its
