@@ -60,7 +60,8 @@ two of its first frames has no window of clear frames before its own frames beco
 reference; the frames that share its look are also taken on their own (``crossed``,
 :func:`seen_through`), and the thresholds are calibrated with them. Where the picture shows
 a thing settled (its look and its own brightness changed from before, and its looks the
-same from frame to frame), the steady level takes no spread off (``brightness``): the model
+same from frame to frame, within the frames' own look noise in a dark stretch), the steady
+level takes no spread off (``brightness``): the model
 can read one unchanged thing unevenly, and the spread would take that for passers-by; and
 a step counts only where the cell's look changed by more than the mean change of brightness
 around it (:func:`_own`): a change of light over a region wider than half the square of a
@@ -654,7 +655,7 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
             usual = np.where(np.isnan(held_look), usual, held_look)
             kept = np.where(np.isnan(held_look), kept, np.abs(centre - held_look))
     tolerances = [change]
-    noisy = LARGE * float(np.median(np.abs(np.diff(lk, axis=0))))
+    noisy = _look_noise_of(lk)
     if noisy > change:  # a dark, noisy stretch (see above)
         tolerances.append(noisy)
     out = None
@@ -777,9 +778,12 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     :func:`cell_brightness` less its median over the frame's cells, so that a change of
     exposure, which moves every cell alike, does not count) differs from the median of the
     frames before (a held cell: from the brightness it kept, ``held_bright``) by more than
-    ``change``, likewise; and (3) the looks of all the window's frames but one (the newest kept) agree within
-    ``change``, at every one of the ``around`` cells around it; and that brightness
-    reference, (h, w) float32 (what a cell held from this frame keeps). (2) is there
+    ``change``, likewise; and (3) the looks of all the window's frames but one (the newest
+    kept) agree within ``change``, or within the window's own look noise where that is
+    larger (:func:`_look_noise_of`: in a dark stretch the gain amplifies every look's noise,
+    and one thing's looks scatter by it as a floor's do), at every one of the ``around``
+    cells around it; and that brightness reference, (h, w) float32 (what a cell held from
+    this frame keeps). (2) is there
     because a look
     is the cell's brightness less the mean around it: when a thing leaves (or comes into)
     that square, the looks of untouched cells move with the mean, while their brightness
@@ -800,7 +804,8 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
         rest = win[:j] + win[j + 1:]
         spread = np.maximum.reduce(rest) - np.minimum.reduce(rest)
         agree = spread if agree is None else np.minimum(agree, spread)
-    return own & moved & (flat_filter(agree, around, np.maximum) <= change), before_raw
+    tolerance = max(change, _look_noise_of(win))
+    return own & moved & (flat_filter(agree, around, np.maximum) <= tolerance), before_raw
 
 
 def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
@@ -916,6 +921,15 @@ def _lifted(step: np.ndarray, lift: np.ndarray | None) -> np.ndarray:
     if lift is None:
         return step
     return np.where(step > 0, step * lift, step).astype(np.float32)
+
+
+def _look_noise_of(looks) -> float:
+    """How much the looks of a few consecutive frames (oldest first, at least 2) change
+    from one to the next, on the scale of ``change``: :data:`LARGE` times the median over
+    cells and pairs of the absolute difference (as :func:`look_noise` makes ``change`` from
+    normal frames). In a dark stretch the gain that brings a frame back amplifies its noise,
+    and this is above ``change``."""
+    return LARGE * float(np.median(np.abs(np.diff(np.asarray(looks, np.float32), axis=0))))
 
 
 def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:
