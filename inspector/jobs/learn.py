@@ -40,6 +40,7 @@ from inspector.core.conditions import Conditions
 from inspector.core.features import map_shape, rasterize_mask
 from inspector.core.image import exposure_copy, grey, noise_bank, recompress, subpixel_levels
 from inspector.core.models import model_class
+from inspector.core.models.base import DensityModel
 from inspector.core.persistence import (
     LARGE,
     MAX_SPAN,
@@ -403,23 +404,70 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
         or a mask image that cannot be read.
     """
     started = now()
-    fs = cfg.frames
-    camera = cfg.name
-    check_camera(files, cfg)
-    times = [capture_time(f.path, fs.time_formats) for f in files]
-    order = np.argsort([t.timestamp() for t in times], kind="stable")
-    files = [files[i] for i in order]
-    times = [times[i] for i in order]
-    source_size = _common_resolution(files)
-    size = working_size(source_size, fs.long_side)
-    blocks = time_blocks(times, cfg.calibration.folds)
-    source = FileSource(files, blocks, size, source_size, read_settings(fs), camera)
-    mask = _mask(cfg, source_size, size)
+    files, times = _in_time_order(files, cfg)
+    source = _file_source(files, times, cfg)
+    mask = _mask(cfg, source.source_size, source.size)
     model = model_class(cfg.model.model)(**_model_params(cfg))
+    learnt = _learn(model, source, mask, times, cfg, pool)
+    version = _save(learnt, cfg, store, started, activate, extra)
+    return _report(learnt, cfg.name, version, (now() - started).total_seconds())
+
+
+def _in_time_order(files: Sequence[FrameFile], cfg: CameraConfig
+                   ) -> tuple[list[FrameFile], list]:
+    """The camera's frames and their capture times, in capture-time order (stable), after
+    :func:`check_camera`."""
+    check_camera(files, cfg)
+    times = [capture_time(f.path, cfg.frames.time_formats) for f in files]
+    order = np.argsort([t.timestamp() for t in times], kind="stable")
+    return [files[i] for i in order], [times[i] for i in order]
+
+
+def _file_source(files: list[FrameFile], times: list, cfg: CameraConfig) -> FileSource:
+    """The frames (in capture-time order, capture ``times``) as the model reads them: at
+    the working size of their most common resolution, in the calibration's time blocks."""
+    source_size = _common_resolution(files)
+    size = working_size(source_size, cfg.frames.long_side)
+    blocks = time_blocks(times, cfg.calibration.folds)
+    return FileSource(files, blocks, size, source_size, read_settings(cfg.frames), cfg.name)
+
+
+@dataclass(frozen=True)
+class Learnt:
+    """What :func:`_learn` makes of a camera's frames, for :func:`_save` and
+    :func:`_report`."""
+
+    #: The model, fitted on every frame.
+    model: DensityModel
+    #: The frames as read (its ``skipped`` and ``notes`` filled in by the pass).
+    source: FileSource
+    conditions: Conditions
+    #: The model's mask, shape (H, W), bool (the configured one and the text boxes), or None.
+    mask: np.ndarray | None
+    #: Burned-in text boxes masked, (x0, y0, x1, y1) in exported pixels.
+    text_boxes: list[tuple[int, int, int, int]]
+    #: What is masked (see :func:`_conditions`), its warnings taken by the calibration.
+    masking: dict
+    calibrated: Calibrated
+
+    @property
+    def warnings(self) -> list[str]:
+        """The warnings recorded with the version: the calibration's, then one a kind of
+        note on the frames read."""
+        return self.calibrated.warnings + [f"{n} frames: {note}"
+                                           for note, n in self.source.notes.items()]
+
+
+def _learn(model: DensityModel, source: FileSource, mask: np.ndarray | None, times: list,
+           cfg: CameraConfig, pool=None) -> Learnt:
+    """Learn the camera's conditions from a sample of ``source``'s frames, fit ``model`` on
+    all of them prepared by those conditions, and calibrate its held-out maps (beside the
+    final fit, for a model that can). Raises UsageError when the model cannot be fitted or
+    calibrated (see :func:`_calibrated`)."""
     extra_args = {"pool": pool} if pool is not None and takes_pool(model) else {}
     if not extra_args and hasattr(model, "first_reads"):
         # the model's first frames decoded while the conditions are learnt (a core is idle)
-        source.prefetch(*model.first_reads(blocks))
+        source.prefetch(*model.first_reads(source.blocks))
     try:
         conditions, text_boxes, mask, masking = _conditions(cfg, source, mask,
                                                             keep=not extra_args)
@@ -427,45 +475,62 @@ def learn_camera(files: Sequence[FrameFile], cfg: CameraConfig, store: Store,
                                   cfg.conditions.exposure_range
                                   if cfg.conditions.lighting != "off" else 0.0,
                                   record_appearance=cfg.calibration.regimes,
-                                  compression=_compression(files, source_size, size),
-                                  cell_shape=map_shape(size[1], size[0], cfg.model.patch,
-                                                       cfg.model.stride))
+                                  compression=_compression(source.files, source.source_size,
+                                                           source.size),
+                                  cell_shape=map_shape(source.size[1], source.size[0],
+                                                       cfg.model.patch, cfg.model.stride))
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
             extra_args["alpha"] = _planned_alpha(cfg, times)
         calibrated: list = []
         if takes(model, "beside"):  # calibrated while the final model is fitted
             extra_args["beside"] = lambda held: calibrated.append(_calibrated(
-                held, cfg, files, times, source, prepared, conditions, masking))
+                held, cfg, source.files, times, source, prepared, conditions, masking))
         held = model.fit(prepared, mask, **extra_args)
     except ValueError as exc:
-        raise UsageError(f"camera {camera}: cannot learn a baseline: {exc}") from None
+        raise UsageError(f"camera {cfg.name}: cannot learn a baseline: {exc}") from None
     finally:
         source.stop()
     done = (calibrated[0] if calibrated else
-            _calibrated(held, cfg, files, times, source, prepared, conditions, masking))
-    used, notes, warnings = done.used, done.notes, done.warnings
-    warnings += [f"{n} frames: {note}" for note, n in source.notes.items()]
+            _calibrated(held, cfg, source.files, times, source, prepared, conditions, masking))
+    return Learnt(model, source, conditions, mask, text_boxes, masking, done)
+
+
+def _save(learnt: Learnt, cfg: CameraConfig, store: Store, started, activate: bool,
+          extra: dict | None) -> str:
+    """Save the learnt baseline as a new version in ``store`` (active when ``activate``),
+    with the facts of how it was learnt (``started``: when learn began; ``extra``: more
+    metadata); returns the version."""
+    done, source = learnt.calibrated, learnt.source
     facts = VersionFacts(
-        created=started, frames=used, frames_skipped=len(source.skipped),
+        created=started, frames=done.used, frames_skipped=len(source.skipped),
         first_frame_time=min(done.times), last_frame_time=max(done.times),
-        settings={"frames": settings_dict(fs), "model": settings_dict(cfg.model),
+        settings={"frames": settings_dict(cfg.frames), "model": settings_dict(cfg.model),
                   "calibration": settings_dict(cfg.calibration),
                   "conditions": settings_dict(cfg.conditions),
                   "mask": settings_dict(cfg.mask)},
-        text_boxes=text_boxes, warnings=warnings, extra=dict(extra or {}, masked=masking))
-    baseline = Baseline(camera=camera, version="", model=model, calibration=done.calibration,
-                        size=size, source_size=source_size, mask=mask, conditions=conditions,
-                        regimes=done.regimes, persistence=done.persistence)
+        text_boxes=learnt.text_boxes, warnings=learnt.warnings,
+        extra=dict(extra or {}, masked=learnt.masking))
+    baseline = Baseline(camera=cfg.name, version="", model=learnt.model,
+                        calibration=done.calibration, size=source.size,
+                        source_size=source.source_size, mask=learnt.mask,
+                        conditions=learnt.conditions, regimes=done.regimes,
+                        persistence=done.persistence)
     baseline.meta = describe(baseline, facts, inspector.__version__)
-    version = store.save(baseline, activate=activate)
-    skipped = [Skip(files[i].rel, camera, reason) for i, reason in sorted(source.skipped.items())]
-    seconds = (now() - started).total_seconds()
-    notes.append(_masked_note(masking))
-    if text_boxes:
+    return store.save(baseline, activate=activate)
+
+
+def _report(learnt: Learnt, camera: str, version: str, seconds: float) -> LearnReport:
+    """The report of a camera's learn: frames used and skipped, threshold, warnings and
+    notes (the calibration's, then what is masked)."""
+    done, source = learnt.calibrated, learnt.source
+    skipped = [Skip(source.files[i].rel, camera, reason)
+               for i, reason in sorted(source.skipped.items())]
+    notes = done.notes + [_masked_note(learnt.masking)]
+    if learnt.text_boxes:
         notes.append("burned-in text masked (x0, y0, x1, y1 in frame pixels): "
-                     + ", ".join(str(tuple(b)) for b in text_boxes))
-    return LearnReport(camera, version, used, skipped, done.threshold, warnings, seconds,
-                       text_boxes=text_boxes, notes=notes)
+                     + ", ".join(str(tuple(b)) for b in learnt.text_boxes))
+    return LearnReport(camera, version, done.used, skipped, done.threshold, learnt.warnings,
+                       seconds, text_boxes=learnt.text_boxes, notes=notes)
 
 
 @dataclass(frozen=True)
