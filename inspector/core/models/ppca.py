@@ -74,7 +74,7 @@ FROM_START_CHUNK = 24
 
 def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
                  top: int | None = None, chunk: int = 128, all_values: bool = True,
-                 start: np.ndarray | None = None):
+                 start: np.ndarray | None = None, pool=None):
     """``numpy.linalg.eigh`` over a stack of small symmetric matrices, faster and leaner.
 
     A multi-threaded BLAS spends most of its time synchronising on matrices this small
@@ -104,6 +104,9 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
         False: return only the ``top`` largest eigenvalues (needs ``top``).
     start : ndarray, shape (L, d, m), optional
         Starting vectors for :func:`top_eigh_from` (used with ``all_values`` False).
+    pool : executor, optional
+        Threads to run the chunks in instead of ``workers`` of its own (shared with other
+        work: see :meth:`PatchPPCA.fit`'s ``beside``).
 
     Returns
     -------
@@ -150,9 +153,19 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
             w = np.linalg.eigvalsh(np.asarray(cov[part], np.float64))
             evals[part] = w[:, d - evals.shape[1]:]
 
-    with threadpool_limits(1), ThreadPoolExecutor(max(1, min(workers, n))) as pool:
-        list(pool.map(one, range(len(bounds) - 1)))
+    in_chunks(one, len(bounds) - 1, workers, pool)
     return (evals, evecs) if vectors else evals
+
+
+def in_chunks(fn, n: int, workers: int = 2, pool=None) -> list:
+    """``[fn(0), ..., fn(n - 1)]``, run in ``pool`` (an executor shared with other work) or
+    else in ``workers`` threads of their own, BLAS held to one thread meanwhile (see
+    :func:`batched_eigh`)."""
+    with threadpool_limits(1):
+        if pool is not None:
+            return list(pool.map(fn, range(n)))
+        with ThreadPoolExecutor(max(1, min(workers, n))) as own:
+            return list(own.map(fn, range(n)))
 
 
 def next_start(start: np.ndarray | None, W: np.ndarray) -> np.ndarray:
@@ -1031,9 +1044,12 @@ class PatchPPCA(DensityModel):
         beside : callable, optional
             ``beside(held)``, run with the held-out maps in a thread while the final model
             is fitted from the moments (the calibration, which needs only those maps, then
-            takes no time of its own: fitting runs LAPACK in two threads, mostly outside
-            Python's lock); ``fit`` returns when both are done and raises what ``beside``
-            raised.
+            takes no time of its own: fitting runs LAPACK mostly outside Python's lock).
+            The two share two threads: ``beside`` takes one, the fit's chunks of locations
+            the other and, once ``beside`` is done, both; so the longer of the two keeps a
+            core to itself (with three threads on two cores, a 2,000-frame learn's
+            calibration waited on the fit). ``fit`` returns when both are done and raises
+            what ``beside`` raised.
 
         Returns
         -------
@@ -1095,19 +1111,21 @@ class PatchPPCA(DensityModel):
                 HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32)))
         if beside is None:
             self._fit_final(moments, start)
-        else:
-            with ThreadPoolExecutor(1) as pool_beside:
-                job = pool_beside.submit(beside, held)
-                self._fit_final(moments, start)
+        else:  # one thread takes beside, the other the fit's chunks (then both take them)
+            with ThreadPoolExecutor(2) as shared:
+                job = shared.submit(beside, held)
+                self._fit_final(moments, start, shared)
                 job.result()
         return held
 
-    def _fit_final(self, moments: Moments, start: np.ndarray | None) -> None:
+    def _fit_final(self, moments: Moments, start: np.ndarray | None, pool=None) -> None:
         """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass),
-        its eigensolver started from ``start`` (the last fold's, :func:`next_start`)."""
-        q = self._heldout_q(*self._last_split)
+        its eigensolver started from ``start`` (the last fold's, :func:`next_start`);
+        ``pool``: threads to fit in (:func:`in_chunks`)."""
+        q = self._heldout_q(*self._last_split, pool=pool)
         del self._last_split, self._few_blocks
-        self._set(*self._fit_moments(moments, q, start, consume=True))  # (moments' last use)
+        self._set(*self._fit_moments(moments, q, start, pool=pool,
+                                     consume=True))  # (moments' last use)
 
     def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
         """The positions :meth:`fit` without a pool reads its frames in (``source.batches``:
@@ -1195,7 +1213,7 @@ class PatchPPCA(DensityModel):
                         scale=1 / 255)
 
     def _fit_moments(self, moments: Moments, latent: int = 0, start: np.ndarray | None = None,
-                     **subset) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                     pool=None, **subset) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Mean, W and sigma^2 of the samples counted in ``moments`` (``subset``: the
         blocks of :meth:`Moments.covariances`, and whether it may consume them), with
         ``latent`` dimensions when given, else as :meth:`_fit_params` chooses. Sets
@@ -1203,8 +1221,9 @@ class PatchPPCA(DensityModel):
         moments (an earlier fold's), to find the eigenvectors from (:func:`ppca_fit`).
 
         With the latent size known, each location's fit needs only its own covariance:
-        they are formed and fitted a chunk of locations at a time in two threads, so the
-        covariances of all locations (the largest array of a fit) never exist at once.
+        they are formed and fitted a chunk of locations at a time in two threads (or in
+        ``pool``'s, see :func:`in_chunks`), so the covariances of all locations (the largest
+        array of a fit) never exist at once.
         """
         q = latent or self.latent
         if not q:  # the explained-variance rule looks at every location's spectrum first
@@ -1216,16 +1235,17 @@ class PatchPPCA(DensityModel):
         self.chroma_weight_ = self._chroma_weight(covariance, L, observed)
         most = d if observed is None else int(observed.sum(axis=1).max())
 
-        def one(first: int) -> tuple[np.ndarray, np.ndarray]:
-            part = slice(first, min(first + CHUNK // 2, L))
+        step = CHUNK // 2
+
+        def one(k: int) -> tuple[np.ndarray, np.ndarray]:
+            part = slice(k * step, min((k + 1) * step, L))
             cov = weigh_chroma(covariance(np.arange(part.start, part.stop)),
                                self.patch * self.patch, self.chroma_weight_)
             return ppca_fit(cov, q, None if observed is None else observed[part],
                             self.var_floor, self.explained_variance, self.max_latent,
                             most_observed=most, start=None if start is None else start[part])
 
-        with threadpool_limits(1), ThreadPoolExecutor(2) as pool:  # see batched_eigh
-            fits = list(pool.map(one, range(0, L, CHUNK // 2)))
+        fits = in_chunks(one, -(-L // step), 2, pool)
         return (mean, np.concatenate([W for W, _ in fits]),
                 np.concatenate([sigma2 for _, sigma2 in fits]))
 
@@ -1256,13 +1276,14 @@ class PatchPPCA(DensityModel):
         scatter, as large as the model's covariances, are kept only then)."""
         return not self.latent and self.latent_rule == "heldout"
 
-    def _heldout_q(self, earlier, now) -> int:
+    def _heldout_q(self, earlier, now, pool=None) -> int:
         """Latent size for a model of the samples counted in ``now`` (count, sum, scatter
         about the moments' shift): the one under which a model of ``earlier`` (the same,
         one time block fewer) gives that last block the highest likelihood
         (:func:`heldout_latent`). 0 when the latent size is set, or either part is too
         small (the explained-variance rule then decides). ``earlier``'s scatter is used up
-        (the earlier covariance is made in its place); ``now`` is not changed."""
+        (the earlier covariance is made in its place); ``now`` is not changed. ``pool``: as
+        :func:`batched_eigh`'s."""
         if (self.latent or self.latent_rule != "heldout" or earlier is None
                 or getattr(self, "_few_blocks", False)):
             return 0
@@ -1297,7 +1318,7 @@ class PatchPPCA(DensityModel):
                                 else self.observed_[::HELDOUT_EVERY], every=1)
         cov_a = weigh_chroma(cov_a, self.patch * self.patch, c)
         second = weigh_chroma(second, self.patch * self.patch, c)
-        evals, evecs = batched_eigh(cov_a)
+        evals, evecs = batched_eigh(cov_a, pool=pool)
         evals = np.clip(evals[:, ::-1], 0.0, None)
         evecs = np.ascontiguousarray(evecs[:, :, ::-1])
         return heldout_latent(evals, evecs, second, self.max_latent, self.var_floor, weights)[0]
