@@ -254,7 +254,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 looks: np.ndarray | None = None, change: float = 0.0,
                 shown: bool = False, normal: np.ndarray | None = None,
                 crossed: bool = False,
-                brightness: np.ndarray | None = None) -> PersistenceResult:
+                brightness: np.ndarray | None = None,
+                settle_noise: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -388,6 +389,11 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         costs: a thing set down within the few frames of such a change of light around it
         is not counted, and a thing flagged while the light around it changes that much
         loses its flag then.
+    settle_noise : bool
+        With ``brightness``, a settled thing's looks agree within the window's own look
+        noise where that is above ``change`` (a dark stretch; see :func:`_settled`), not
+        within ``change`` alone. This adds flags: the thresholds must be calibrated with it
+        (:func:`calibrate_persistence` does); False for baselines learnt before it.
 
     Returns
     -------
@@ -454,7 +460,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             late_l = (late_l + [look_of[i]])[-keep:]
             seen = _changed(late_l, window, None, min_past, around) if gate else None
             fixed = (_settled(late_l, window, None, change, around, bright,
-                              None if seen is None else seen[1]) if settle else None)
+                              None if seen is None else seen[1], noise=settle_noise)
+                     if settle else None)
             fixed = None if fixed is None else fixed[0]
             level, raw, _, _ = _step(late_buf, window, around=around, scaled=scaled,
                                      spreads=spreads, min_past=min_past, settled=fixed)
@@ -493,7 +500,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
         moved = _own_change(lbuf, window, bright, change, held_bright) if settle else None
         fixed = (_settled(lbuf, window, held_look, change, around, bright,
-                          None if seen is None else seen[1], held_bright, moved)
+                          None if seen is None else seen[1], held_bright, moved,
+                          settle_noise)
                  if settle else None)
         fixed, bright_ref = (None, None) if fixed is None else fixed
         own = (_own(lbuf, window, held_look, bright, held_bright, around,
@@ -763,8 +771,8 @@ def _kept_brightness(looks: list, bright: dict, shape: tuple) -> np.ndarray | No
 
 def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
              around: int, bright: dict, reference: np.ndarray | None = None,
-             held_bright: np.ndarray | None = None, moved: tuple | None = None
-             ) -> tuple[np.ndarray, np.ndarray] | None:
+             held_bright: np.ndarray | None = None, moved: tuple | None = None,
+             noise: bool = False) -> tuple[np.ndarray, np.ndarray] | None:
     """Cells where a thing has settled in the window: the picture changed there from the
     frames before it, in the frame judged too, and stays the same from frame to frame
     (see ``brightness`` of :func:`persistence`), bool (h, w); None with no frame before the
@@ -779,9 +787,10 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     exposure, which moves every cell alike, does not count) differs from the median of the
     frames before (a held cell: from the brightness it kept, ``held_bright``) by more than
     ``change``, likewise; and (3) the looks of all the window's frames but one (the newest
-    kept) agree within ``change``, or within the window's own look noise where that is
-    larger (:func:`_look_noise_of`: in a dark stretch the gain amplifies every look's noise,
-    and one thing's looks scatter by it as a floor's do), at every one of the ``around``
+    kept) agree within ``change`` (with ``noise``: or within the window's own look noise
+    where that is larger, :func:`_look_noise_of`: in a dark stretch the gain amplifies every
+    look's noise, and one thing's looks scatter by it as a floor's do), at every one of the
+    ``around``
     cells around it; and that brightness reference, (h, w) float32 (what a cell held from
     this frame keeps). (2) is there
     because a look
@@ -804,7 +813,7 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
         rest = win[:j] + win[j + 1:]
         spread = np.maximum.reduce(rest) - np.minimum.reduce(rest)
         agree = spread if agree is None else np.minimum(agree, spread)
-    tolerance = max(change, _look_noise_of(win))
+    tolerance = max(change, _look_noise_of(win)) if noise else change
     return own & moved & (flat_filter(agree, around, np.maximum) <= tolerance), before_raw
 
 
@@ -1608,6 +1617,10 @@ class Persistence:
         :func:`persistence`): the frames' measures for it (:meth:`cells`) are then their
         :func:`cell_brightness`, else their :func:`cell_looks`; False for baselines learnt
         before it, or without looks.
+    settle_noise : bool
+        A settled thing's looks agree within the window's own look noise where that is
+        above ``change`` (``settle_noise`` of :func:`persistence`); False for baselines
+        learnt before it, whose thresholds were calibrated without it.
     """
 
     window: int
@@ -1630,6 +1643,7 @@ class Persistence:
     normal: np.ndarray | None = field(default=None, repr=False)
     crossed: bool = False
     settle: bool = False
+    settle_noise: bool = False
 
     def cells(self, grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
         """What :meth:`run` takes of each frame (its ``cells``): the frames'
@@ -1653,7 +1667,7 @@ class Persistence:
                            around=self.around, local=self.local, footprint=self.footprint,
                            min_past=self.min_past, looks=looks, change=self.change,
                            shown=self.shown, normal=self.normal, crossed=self.crossed,
-                           brightness=bright)
+                           brightness=bright, settle_noise=self.settle_noise)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -1697,7 +1711,7 @@ class Persistence:
                "robust": self.robust, "around": self.around, "floor": self.floor,
                "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
                "change": self.change, "shown": self.shown, "crossed": self.crossed,
-               "settle": self.settle}
+               "settle": self.settle, "settle_noise": self.settle_noise}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -1718,7 +1732,8 @@ class Persistence:
                    int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
                    bool(meta.get("shown", False)),
                    None if normal is None else np.asarray(normal, np.float32),
-                   bool(meta.get("crossed", False)), bool(meta.get("settle", False)))
+                   bool(meta.get("crossed", False)), bool(meta.get("settle", False)),
+                   bool(meta.get("settle_noise", False)))
 
 
 def _robust(saved) -> bool | str:
@@ -1763,7 +1778,8 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         :func:`cell_brightness` of the same frames, instead of ``looks`` (which are then
         made from it, :func:`looks_of`): a cell where a thing has settled then also takes
         no spread off its steady level (``settle``; ``brightness`` of :func:`persistence`),
-        in calibration as at scan time.
+        its looks agreeing within the window's own look noise in a dark stretch
+        (``settle_noise``), in calibration as at scan time.
 
     Returns
     -------
@@ -1824,7 +1840,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
               if looks is not None else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
                        looks=looks, change=change, crossed=True, brightness=brightness,
-                       **opts)
+                       settle_noise=settle, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -1844,12 +1860,13 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
                            starts, share, busy, 0, robust, around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
                            change=change, shown=True, normal=normal, crossed=True,
-                           settle=settle)
+                           settle=settle, settle_noise=settle)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, robust,
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change, True, normal, True, settle)
+                       floor, local, footprint, MIN_PAST, change, True, normal, True, settle,
+                       settle)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

@@ -876,8 +876,10 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
         clauses.append(f"a change counts where the picture changed (log brightness by more "
                        f"than {p.change:.3f}{around}){crossed}")
     if p.settle:
-        clauses.append("where the picture shows a thing settled (its look and brightness "
-                       "changed, then stayed), its lowest reading of the window counts")
+        noise = (", within the frames' own noise when they are dark" if p.settle_noise
+                 else "")
+        clauses.append(f"where the picture shows a thing settled (its look and brightness "
+                       f"changed, then stayed{noise}), its lowest reading of the window counts")
     if p.robust == "change" and steps:
         clauses.append("in a noisy stretch (dark) a change counts by how far it stands out "
                        "from the view's other changes, not from its cells' scatter")
