@@ -380,25 +380,39 @@ def test_a_thing_crossed_by_passers_by_in_its_first_frames_is_seen_through_them(
         span = lks[4:]
         noisy = 10.0 * np.median(np.abs(np.diff(span, axis=0)))  # LARGE x the frames' noise
         assert (noisy > 0.05) == night
+        # with the cells' own brightness, the frames agreeing by it are taken as well (here
+        # as likely to agree as the looks, but in other frames)
+        own = rng.normal(0.0, 0.001, lks.shape).astype(np.float32)
+        own[4:] += np.where(rng.random((5, 5, 6)) < 0.7, 0.5,
+                            rng.uniform(-1.0, 1.0, (5, 5, 6)))
+        if night:
+            own += rng.normal(0.0, 0.03, own.shape).astype(np.float32)
+        bnoisy = 10.0 * np.median(np.abs(np.diff(own[4:], axis=0)))
         got = seen_through(list(frames), list(lks), 4, 2.0, None, None, 0.05)
+        both = seen_through(list(frames), list(lks), 4, 2.0, None, None, 0.05,
+                            bright=list(own))
         if not night:
             assert (got > 0).sum() > 5 and (got == -np.inf).sum() > 5
             assert (got[0, :2] <= 0).all()
+        assert (both >= got).all() and (both > got).any()
         for y in range(5):
             for x in range(6):
-                v, lk = frames[:, y, x] / 2.0, lks[:, y, x]
-                want = -np.inf
-                for tol in (0.05, noisy) if night else (0.05,):
-                    ok = np.abs(lk[-5:] - np.median(lk[-5:])) <= tol
-                    ok &= ok[-1]
-                    if ok.sum() < 3:
-                        continue
-                    q = np.sort(v[-5:][ok])
-                    step = q[0] - (q[-2] - q[0]) - max(np.sort(v[:-5])[-2], 0.0)
-                    moved = min(np.abs(lk[-5:][ok] - np.median(lk[:-5])).min(),
-                                np.sort(np.abs(lk[:-5] - np.median(lk[-5:])))[1])
-                    want = max(want, step if moved > 0.05 else min(step, 0.0))
-                assert got[y, x] == pytest.approx(want, abs=1e-5)
+                v, lk, b = frames[:, y, x] / 2.0, lks[:, y, x], own[:, y, x]
+                by_look = [(lk, tol) for tol in ((0.05, noisy) if night else (0.05,))]
+                by_own = [(b, tol) for tol in ((0.05, bnoisy) if bnoisy > 0.05 else (0.05,))]
+                for result, tests in ((got, by_look), (both, by_look + by_own)):
+                    want = -np.inf
+                    for by, tol in tests:
+                        ok = np.abs(by[-5:] - np.median(by[-5:])) <= tol
+                        ok &= ok[-1]
+                        if ok.sum() < 3:
+                            continue
+                        q = np.sort(v[-5:][ok])
+                        step = q[0] - (q[-2] - q[0]) - max(np.sort(v[:-5])[-2], 0.0)
+                        moved = min(np.abs(lk[-5:][ok] - np.median(lk[:-5])).min(),
+                                    np.sort(np.abs(lk[:-5] - np.median(lk[-5:])))[1])
+                        want = max(want, step if moved > 0.05 else min(step, 0.0))
+                    assert result[y, x] == pytest.approx(want, abs=1e-5)
 
 
 def test_a_settled_thing_read_unevenly_keeps_its_lowest_reading():
@@ -792,6 +806,11 @@ def test_calibrate_tells_busy_from_quiet():
     assert old.past == 0 and not old.robust and old.start_threshold is None and old.around == 1
     assert old.floor == 0.0 and old.local == 0 and old.footprint == 1
     assert old.min_past == 1 and old.change == 0.0 and not old.crossed and b.crossed
+    # without brightness the frames seen through are found by their looks alone; a baseline
+    # that has it saves "brightness" (by the cells' own brightness too)
+    assert b.crossed is True
+    mine = Persistence.from_saved(dict(b.to_json(), crossed="brightness"), b.calibration_scores)
+    assert mine.crossed == "brightness" and mine.to_json()["crossed"] == "brightness"
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)

@@ -57,11 +57,11 @@ can read a region anew while its pixels stay as they were (the gain that prepara
 over the whole view moves with passers-by elsewhere), and that is not something left there,
 while a lamp's smooth pool hardly changes a look at all. A thing that passers-by cross in
 two of its first frames has no window of clear frames before its own frames become the
-reference; the frames that share its look are also taken on their own (``crossed``,
-:func:`seen_through`), and the thresholds are calibrated with them. Where the picture shows
-a thing settled (its look and its own brightness changed from before, and its looks the
-same from frame to frame, within the frames' own look noise in a dark stretch), the steady
-level takes no spread off (``brightness``): the model
+reference; the frames that share its look, or its cells' own brightness, are also taken on
+their own (``crossed``, :func:`seen_through`), and the thresholds are calibrated with them.
+Where the picture shows a thing settled (its look and its own brightness changed from
+before, and its looks the same from frame to frame, within the frames' own look noise in a
+dark stretch), the steady level takes no spread off (``brightness``): the model
 can read one unchanged thing unevenly, and the spread would take that for passers-by; and
 a step counts only where the cell's look changed by more than the mean change of brightness
 around it (:func:`_own`): a change of light over a region wider than half the square of a
@@ -253,7 +253,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 footprint: int = 1, made_local: bool = False, min_past: int = 1,
                 looks: np.ndarray | None = None, change: float = 0.0,
                 shown: bool = False, normal: np.ndarray | None = None,
-                crossed: bool = False,
+                crossed: bool | str = False,
                 brightness: np.ndarray | None = None,
                 settle_noise: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
@@ -361,12 +361,14 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         the same (a thing within such a region of changed light is not counted until the
         window has frames before it, and then only if it came after them). Its flags are
         a subset of those without it.
-    crossed : bool
+    crossed : bool or "brightness"
         With ``looks`` and ``change`` > 0, a window measured from a reference also counts
         what the last ``window`` + 1 frames show in at least ``window`` - 1 of them, the
         frame judged included, where passers-by cross it in the others
-        (:func:`seen_through`): a cell's map is the larger of the two. Its flags are a
-        superset, so the thresholds must be calibrated with it (as
+        (:func:`seen_through`): a cell's map is the larger of the two. "brightness": with
+        ``brightness``, the frames that show the same thing are also found by the cells'
+        own brightness (``bright`` of :func:`seen_through`), not by their looks alone.
+        Its flags are a superset, so the thresholds must be calibrated with it (as
         :func:`calibrate_persistence` does).
     brightness : ndarray, shape (n, h, w), float, optional
         The frames' :func:`cell_brightness` (with ``looks`` and ``change`` > 0). A cell where
@@ -512,7 +514,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         steady[i] = level
         out[i] = raw if seen is None else _gated(raw, seen[0], change)
         through = (seen_through(buf, lbuf, window, scale, held, held_look, change, around,
-                                min_past) if crossed and gate and stepped[i] else None)
+                                min_past, _brightness_of(lbuf, bright)
+                                if settle and crossed == "brightness" else None)
+                   if crossed and gate and stepped[i] else None)
         if through is not None:
             out[i] = np.maximum(out[i], through)
         if own is not None and stepped[i]:
@@ -589,7 +593,8 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
 
 def seen_through(frames: list, looks: list, window: int, scale: float,
                  held: np.ndarray | None, held_look: np.ndarray | None, change: float,
-                 around: int = 1, min_past: int = 1) -> np.ndarray | None:
+                 around: int = 1, min_past: int = 1, bright: list | None = None
+                 ) -> np.ndarray | None:
     """Per cell, the steady level of the frames, among the last ``window`` + 1, that show
     the same thing as the frame judged, less the reference: what passers-by cross in front
     of.
@@ -626,6 +631,18 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     take in a frame that a passer-by half covers, whose value is lower). The picture
     must still have changed by more than ``change``.
 
+    A look is the cell's brightness less its mean over a square a quarter of the view
+    wide (:func:`cell_looks`), so a passer-by anywhere in that square moves the look of a
+    thing it does not cover (by 0.05 for a person and a pallet load beside a parcel, twice
+    ``change``), and a load of the thing's own shade covering it keeps its look while the
+    model reads it at a tenth. With ``bright``, the cells' own brightness (each frame's
+    less its median over the frame's cells), the frames that agree by it (within
+    ``change``, and within its own noise in a dark stretch, as above) are taken as well
+    and the larger level is kept: the frames a passer-by covers are set aside by what the
+    cell itself shows. (By brightness alone, a frame whose thing reads lower because a
+    large passer-by beside it moved the local median, :func:`local_maps`, would be kept
+    where its look, moved by the same passer-by, sets it aside: hence both.)
+
     Parameters
     ----------
     frames : list of ndarray, shape (h, w), float32
@@ -641,6 +658,9 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     around : int >= 1, odd
     min_past : int >= 1
         Fewest frames before the last ``window`` + 1 for a reference.
+    bright : list of ndarray, shape (h, w), float32, optional
+        The frames' :func:`cell_brightness`, each less its median over the frame's cells
+        (as ``looks``).
 
     Returns
     -------
@@ -662,13 +682,21 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
         if held_look is not None:
             usual = np.where(np.isnan(held_look), usual, held_look)
             kept = np.where(np.isnan(held_look), kept, np.abs(centre - held_look))
-    tolerances = [change]
-    noisy = _look_noise_of(lk)
-    if noisy > change:  # a dark, noisy stretch (see above)
-        tolerances.append(noisy)
+    # which frames show the same thing: by their looks, and by the cells' own brightness
+    # when known (see above)
+    alike = [(lk, centre)]
+    if bright is not None:
+        own = np.asarray(bright[-span:], np.float32)
+        alike.append((own, _median_along(own)))
+    tests = []
+    for by, middle in alike:
+        tests.append((by, middle, change))
+        noisy = _look_noise_of(by)
+        if noisy > change:  # a dark, noisy stretch (see above)
+            tests.append((by, middle, noisy))
     out = None
-    for tol in tolerances:
-        agree = np.abs(lk - centre) <= tol
+    for by, middle, tol in tests:
+        agree = np.abs(by - middle) <= tol
         agree &= agree[-1]  # the frame judged shows it
         enough = agree.sum(axis=0) >= max(window - 1, 1)
         low = np.where(agree, values, np.inf).min(axis=0)
@@ -1607,10 +1635,12 @@ class Persistence:
         with the normal brightness as its third layer when ``settle`` (2 layers for
         baselines learnt before it: their first windows run as then); None for baselines
         learnt before it, or without looks.
-    crossed : bool
+    crossed : bool or "brightness"
         Windows measured from a reference also count what frames seen through passers-by
         show (``crossed`` of :func:`persistence`); False for baselines learnt before it,
-        whose thresholds were calibrated without it.
+        whose thresholds were calibrated without it; "brightness": those frames also found
+        by the cells' own brightness (with ``settle``), True for baselines learnt before
+        it (by their looks alone).
     settle : bool
         A cell where a thing has settled (its look and its brightness changed, its looks
         steady) takes no spread off its steady level (``brightness`` of
@@ -1641,7 +1671,7 @@ class Persistence:
     change: float = 0.0
     shown: bool = False
     normal: np.ndarray | None = field(default=None, repr=False)
-    crossed: bool = False
+    crossed: bool | str = False
     settle: bool = False
     settle_noise: bool = False
 
@@ -1732,13 +1762,18 @@ class Persistence:
                    int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
                    bool(meta.get("shown", False)),
                    None if normal is None else np.asarray(normal, np.float32),
-                   bool(meta.get("crossed", False)), bool(meta.get("settle", False)),
+                   _crossed(meta.get("crossed", False)), bool(meta.get("settle", False)),
                    bool(meta.get("settle_noise", False)))
 
 
 def _robust(saved) -> bool | str:
     """``robust`` as saved in a baseline's JSON: "window", "change", or a bool."""
     return saved if saved in ("window", "change") else bool(saved)
+
+
+def _crossed(saved) -> bool | str:
+    """``crossed`` as saved in a baseline's JSON: "brightness", or a bool."""
+    return saved if saved == "brightness" else bool(saved)
 
 
 def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarray,
@@ -1830,6 +1865,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         looks = looks_of(brightness)
     settle = brightness is not None
     robust = "change" if settle else "window"  # (a cell's own brightness: see _lift)
+    crossed = "brightness" if settle else True  # (see seen_through)
     opts = dict(robust=robust, around=AROUND, local=local, footprint=footprint,
                 made_local=True, min_past=MIN_PAST)
     change = (LARGE * look_noise(looks, s_times, max_gap, s_blocks) if looks is not None
@@ -1839,7 +1875,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     normal = (normal_look(looks, s_times, window, max_gap, s_blocks, brightness=brightness)
               if looks is not None else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
-                       looks=looks, change=change, crossed=True, brightness=brightness,
+                       looks=looks, change=change, crossed=crossed, brightness=brightness,
                        settle_noise=settle, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
@@ -1859,14 +1895,14 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, robust, around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
-                           change=change, shown=True, normal=normal, crossed=True,
+                           change=change, shown=True, normal=normal, crossed=crossed,
                            settle=settle, settle_noise=settle)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, robust,
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change, True, normal, True, settle,
-                       settle)
+                       floor, local, footprint, MIN_PAST, change, True, normal, crossed,
+                       settle, settle)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

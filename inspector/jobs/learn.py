@@ -870,8 +870,10 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
     if p.change > 0:
         around = (", and more than around it: not a change of light over a wider region"
                   if p.settle else "")
-        crossed = (f", also in {p.window - 1} of {p.window + 1} frames that look alike where "
-                   f"passers-by cross it in the others (calibrated with it)"
+        alike = (" (or whose cells' own brightness does)" if p.crossed == "brightness"
+                 else "")
+        crossed = (f", also in {p.window - 1} of {p.window + 1} frames that look alike{alike} "
+                   f"where passers-by cross it in the others (calibrated with it)"
                    if p.crossed and steps else "")
         clauses.append(f"a change counts where the picture changed (log brightness by more "
                        f"than {p.change:.3f}{around}){crossed}")
