@@ -1123,6 +1123,9 @@ class PatchPPCA(DensityModel):
         its eigensolver started from ``start`` (the last fold's, :func:`next_start`);
         ``pool``: threads to fit in (:func:`in_chunks`)."""
         q = self._heldout_q(*self._last_split, pool=pool)
+        # (the sums are dropped before the final fit forms its covariances: kept on the
+        # model, not handed on like ``start``, so that no caller's frame holds them then;
+        # each scatter is as large as a covariance of every HELDOUT_EVERY-th location)
         del self._last_split, self._few_blocks
         self._set(*self._fit_moments(moments, q, start, pool=pool,
                                      consume=True))  # (moments' last use)
