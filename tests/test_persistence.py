@@ -20,6 +20,7 @@ from inspector.core.persistence import (
     MIN_PAST,
     Persistence,
     StreamState,
+    _look_reading,
     _median_along,
     _own,
     _second_smallest,
@@ -811,6 +812,7 @@ def test_calibrate_tells_busy_from_quiet():
     assert b.crossed is True
     mine = Persistence.from_saved(dict(b.to_json(), crossed="brightness"), b.calibration_scores)
     assert mine.crossed == "brightness" and mine.to_json()["crossed"] == "brightness"
+    assert not old.settle_look and not b.settle_look  # (looks only: no settled rule)
     # The same frames 16 minutes apart: a window spans an hour, longer than MAX_SPAN, where a
     # change of light looks as short-lived as traffic; learn does not call the camera busy.
     sparse = calibrate_persistence(busy, np.arange(n) * 960.0, blocks, alpha=0.01)
@@ -933,3 +935,43 @@ def test_a_thing_settled_in_a_noisy_stretch_is_told_by_its_looks_noise():
                                    np.sort(maps[i - 3:i + 1, 2:4, 1:3], axis=0)[0])
     flagged = run.filled & (run.scores > np.where(run.stepped, 3.0, 60.0))
     assert flagged.tolist() == [False] * 11 + [True] * 5
+
+
+def test_the_picture_reads_a_thing_settled_in_the_dark():
+    # A window of 4 night frames whose looks scatter by 0.03, a spill 0.3 darker at 2 x 2
+    # cells from the frames before (reference 0). Its reading, against its formula: x(2) over
+    # the frames of |look - reference| (numpy.sort), less the smallest range of the looks
+    # without one older frame, over the median absolute frame-to-frame change of the looks
+    # (numpy.median); -inf where not settled. Not a dark stretch (look noise, ten times that
+    # median, not above ``change``): nothing.
+    rng = np.random.default_rng(1)
+    win = rng.normal(0.0, 0.03, (4, 6, 14)).astype(np.float32)
+    win[:, 2:4, 1:3] -= 0.3
+    settled = np.zeros((6, 14), bool)
+    settled[2:4, 1:3] = True
+    got = _look_reading(list(win), 4, np.zeros((6, 14), np.float32), settled, 0.05, None, 1)
+    far = np.sort(np.abs(win), axis=0)[1]
+    ranges = [np.ptp(np.delete(win, j, axis=0), axis=0) for j in range(3)]
+    noise = np.median(np.abs(np.diff(win, axis=0)))
+    want = (far - np.min(ranges, axis=0)) / noise
+    np.testing.assert_allclose(got[settled], want[settled], rtol=1e-5)
+    assert np.all(got[~settled] == -np.inf) and got[settled].min() > 3.0
+    assert _look_reading(list(win), 4, np.zeros((6, 14), np.float32), settled, 10 * noise
+                         + 0.01, None, 1) is None
+    # in a stream: only adds (the maps are >= those without it), and a baseline without it
+    # runs exactly as before
+    n = 24
+    maps = rng.normal(0.0, 3.0, (n, 6, 14)).astype(np.float32)
+    looks = rng.normal(0.0, 0.03, maps.shape).astype(np.float32)
+    bright = rng.normal(3.0, 0.03, maps.shape).astype(np.float32)
+    for arr in (looks, bright):
+        arr[12:, 2:4, 1:3] -= 0.3
+    maps[12:, 2:4, 1:3] += 1.0
+    opts = dict(past=8, robust="change", min_past=3, around=3, looks=looks, change=0.05,
+                brightness=bright, settle_noise=True)
+    times = np.arange(n) * 2.0
+    old = persistence(maps, times, 4, 10.0, **opts)
+    assert np.array_equal(persistence(maps, times, 4, 10.0, settle_look=False, **opts).maps,
+                          old.maps)
+    new = persistence(maps, times, 4, 10.0, settle_look=True, **opts)
+    assert np.all(new.maps >= old.maps) and (new.maps > old.maps).any()

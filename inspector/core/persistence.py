@@ -255,7 +255,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 shown: bool = False, normal: np.ndarray | None = None,
                 crossed: bool | str = False,
                 brightness: np.ndarray | None = None,
-                settle_noise: bool = False) -> PersistenceResult:
+                settle_noise: bool = False, settle_look: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -396,6 +396,16 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         noise where that is above ``change`` (a dark stretch; see :func:`_settled`), not
         within ``change`` alone. This adds flags: the thresholds must be calibrated with it
         (:func:`calibrate_persistence` does); False for baselines learnt before it.
+    settle_look : bool
+        With ``brightness``, in a dark, noisy stretch (where ``robust`` "change" counts a
+        step against the view's changes, :func:`_lift`, and the window's own look noise is
+        above ``change``), a cell where a thing has settled (:func:`_settled`) and the model
+        reads the window above its reference (a step above 0) also counts what the picture
+        reads of it (:func:`_look_reading`: how far its look departed beyond its own
+        scatter, in units of the window's look noise), where that is larger: in the dark
+        the model can read a thing the picture shows settled no higher than the floor's
+        noise. This adds flags: the thresholds must be calibrated with it
+        (:func:`calibrate_persistence` does); False for baselines learnt before it.
 
     Returns
     -------
@@ -446,6 +456,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                      if scaled and n else {})  # (all at once: one call, not one a frame)
     since = np.full(n, np.nan)
     lifts: list = [None] * n  # (see _lift)
+    looked: list = [None] * n  # (see _look_reading)
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
         t = float(times[i])
@@ -525,8 +536,12 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             out[i] = _usual(out[i], lbuf[-window:], normal, change, around, bright)
         lifts[i] = (_lift(buf, window, scale, min_past, None if moved is None else moved[0])
                     if changes and stepped[i] else None)
+        looked[i] = (_look_reading(lbuf, window, seen[1], fixed & (raw > 0), change, own,
+                                   footprint)
+                     if settle_look and fixed is not None and seen is not None and stepped[i]
+                     and lifts[i] is not None else None)
         if threshold is not None:  # (else opened below, all frames at once)
-            out[i] = _lifted(opened(out[i], footprint), lifts[i])
+            out[i] = _with_look(_lifted(opened(out[i], footprint), lifts[i]), looked[i])
             if past and window < len(buf) < window + min_past:
                 out[i] = _since_start(buf, lbuf, window, opened_map=out[i], steady=level,
                                       scale=scale, threshold=threshold, around=around,
@@ -550,8 +565,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                     alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
                 alt = alt if seen is None else _gated(alt, seen[0], change)
                 alt = alt if through is None else np.maximum(alt, through)
-                out[i] = _lifted(opened(alt if own is None else _gated(alt, own, change),
-                                        footprint), lifts[i])
+                out[i] = _with_look(_lifted(opened(alt if own is None
+                                                   else _gated(alt, own, change),
+                                                   footprint), lifts[i]), looked[i])
             flagged_cells = out[i] > limit
             if flagged_cells.any():
                 since[i] = float(np.median(onset[flagged_cells]))
@@ -566,7 +582,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     if threshold is None:  # (the maps are not needed in the loop: opened at once)
         out = opened(out, footprint)
         for i, lift in enumerate(lifts):
-            out[i] = _lifted(out[i], lift)
+            out[i] = _with_look(_lifted(out[i], lift), looked[i])
     levels = (opened(steady, footprint).reshape(n, -1).max(axis=1).astype(np.float64) if n
               else np.zeros(0))
     if not n:
@@ -836,11 +852,7 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
         reference = _median_or_held(looks[:-window], held_look)
     win = looks[-window:]
     own = _departs(win, reference, change)
-    agree = None  # the looks' range over the window without one of its older frames
-    for j in range(window - 1):
-        rest = win[:j] + win[j + 1:]
-        spread = np.maximum.reduce(rest) - np.minimum.reduce(rest)
-        agree = spread if agree is None else np.minimum(agree, spread)
+    agree = _agreement(win)
     tolerance = max(change, _look_noise_of(win)) if noise else change
     return own & moved & (flat_filter(agree, around, np.maximum) <= tolerance), before_raw
 
@@ -949,6 +961,50 @@ def _lift(frames: list, window: int, scale: float, min_past: int,
     if changes >= scale:
         return None
     return np.where(moved, np.float32(scale / changes), np.float32(1.0))
+
+
+def _look_reading(looks: list, window: int, reference: np.ndarray, settled: np.ndarray,
+                  change: float, own: np.ndarray | None, footprint: int
+                  ) -> np.ndarray | None:
+    """What the picture itself reads of a thing settled in a dark stretch, in units of the
+    window's own look noise, opened by ``footprint``, shape (h, w) float32 (-inf where it
+    reads nothing); None where the window's look noise (:func:`_look_noise_of`) is not
+    above ``change``, no cell is in ``settled``, or the window has fewer than 3 frames.
+
+    Per cell in ``settled`` (where :func:`_settled` found a thing settled and the model
+    reads the window above its reference, see ``settle_look`` of :func:`persistence`) whose
+    change is its own (``own`` > ``change``, :func:`_own`): the second smallest over the
+    window's frames of the absolute difference of its look from ``reference`` (one frame
+    set aside, as :func:`_changed`), less its looks' range over the window without one of
+    its older frames (as :func:`_settled`'s agreement), divided by the median absolute
+    frame-to-frame change of the window's looks (:func:`_look_noise_of` / :data:`LARGE`):
+    how far the look departed beyond its own scatter, counted against how much every look
+    of the window moves from frame to frame."""
+    win = looks[-window:]
+    noise = _look_noise_of(win)
+    if window < 3 or noise <= change or not settled.any():
+        return None
+    departure = _second_smallest(np.abs(np.asarray(win, np.float32) - reference))
+    reading = (departure - _agreement(win)) / np.float32(noise / LARGE)
+    keep = settled if own is None else settled & (own > change)
+    return opened(np.where(keep, reading, -np.inf).astype(np.float32), footprint)
+
+
+def _agreement(win: list) -> np.ndarray:
+    """Per cell, the range of a window's looks (oldest first, at least 2) without one of its
+    older frames (the newest always kept; the smallest such range), shape (h, w) float32."""
+    agree = None
+    for j in range(len(win) - 1):
+        rest = win[:j] + win[j + 1:]
+        spread = np.maximum.reduce(rest) - np.minimum.reduce(rest)
+        agree = spread if agree is None else np.minimum(agree, spread)
+    return agree
+
+
+def _with_look(step: np.ndarray, look: np.ndarray | None) -> np.ndarray:
+    """``step`` or, where larger, the picture's own reading of a settled thing (``look``,
+    :func:`_look_reading`)."""
+    return step if look is None else np.maximum(step, look)
 
 
 def _lifted(step: np.ndarray, lift: np.ndarray | None) -> np.ndarray:
@@ -1651,6 +1707,10 @@ class Persistence:
         A settled thing's looks agree within the window's own look noise where that is
         above ``change`` (``settle_noise`` of :func:`persistence`); False for baselines
         learnt before it, whose thresholds were calibrated without it.
+    settle_look : bool
+        In a dark stretch a settled thing the model reads above its reference also counts
+        by what the picture reads of it (``settle_look`` of :func:`persistence`); False for
+        baselines learnt before it, whose thresholds were calibrated without it.
     """
 
     window: int
@@ -1674,6 +1734,7 @@ class Persistence:
     crossed: bool | str = False
     settle: bool = False
     settle_noise: bool = False
+    settle_look: bool = False
 
     def cells(self, grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
         """What :meth:`run` takes of each frame (its ``cells``): the frames'
@@ -1697,7 +1758,8 @@ class Persistence:
                            around=self.around, local=self.local, footprint=self.footprint,
                            min_past=self.min_past, looks=looks, change=self.change,
                            shown=self.shown, normal=self.normal, crossed=self.crossed,
-                           brightness=bright, settle_noise=self.settle_noise)
+                           brightness=bright, settle_noise=self.settle_noise,
+                           settle_look=self.settle_look)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -1741,7 +1803,8 @@ class Persistence:
                "robust": self.robust, "around": self.around, "floor": self.floor,
                "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
                "change": self.change, "shown": self.shown, "crossed": self.crossed,
-               "settle": self.settle, "settle_noise": self.settle_noise}
+               "settle": self.settle, "settle_noise": self.settle_noise,
+               "settle_look": self.settle_look}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -1763,7 +1826,8 @@ class Persistence:
                    bool(meta.get("shown", False)),
                    None if normal is None else np.asarray(normal, np.float32),
                    _crossed(meta.get("crossed", False)), bool(meta.get("settle", False)),
-                   bool(meta.get("settle_noise", False)))
+                   bool(meta.get("settle_noise", False)),
+                   bool(meta.get("settle_look", False)))
 
 
 def _robust(saved) -> bool | str:
@@ -1814,7 +1878,8 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         made from it, :func:`looks_of`): a cell where a thing has settled then also takes
         no spread off its steady level (``settle``; ``brightness`` of :func:`persistence`),
         its looks agreeing within the window's own look noise in a dark stretch
-        (``settle_noise``), in calibration as at scan time.
+        (``settle_noise``), where the model reads it above its reference also counting by
+        what the picture reads of it (``settle_look``), in calibration as at scan time.
 
     Returns
     -------
@@ -1876,7 +1941,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
               if looks is not None else None)
     step = persistence(s_maps, s_times, window, max_gap, blocks=s_blocks, past=past,
                        looks=looks, change=change, crossed=crossed, brightness=brightness,
-                       settle_noise=settle, **opts)
+                       settle_noise=settle, settle_look=settle, **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -1896,13 +1961,13 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
                            starts, share, busy, 0, robust, around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
                            change=change, shown=True, normal=normal, crossed=crossed,
-                           settle=settle, settle_noise=settle)
+                           settle=settle, settle_noise=settle, settle_look=settle)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, robust,
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
                        floor, local, footprint, MIN_PAST, change, True, normal, crossed,
-                       settle, settle)
+                       settle, settle, settle)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

@@ -880,8 +880,12 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
     if p.settle:
         noise = (", within the frames' own noise when they are dark" if p.settle_noise
                  else "")
+        look = (" (in a dark, noisy stretch, where the model reads it above the frames "
+                "before, also how far its look departed beyond its own scatter, in units of "
+                "the frames' look noise, calibrated with it)" if p.settle_look else "")
         clauses.append(f"where the picture shows a thing settled (its look and brightness "
-                       f"changed, then stayed{noise}), its lowest reading of the window counts")
+                       f"changed, then stayed{noise}), its lowest reading of the window "
+                       f"counts{look}")
     if p.robust == "change" and steps:
         clauses.append("in a noisy stretch (dark) a change counts by how far it stands out "
                        "from the view's other changes, not from its cells' scatter")
