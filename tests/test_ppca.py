@@ -282,6 +282,16 @@ def test_work_beside_the_final_fit_gets_the_held_out_maps_and_its_error_is_raise
 
     with pytest.raises(RuntimeError, match="calibration failed"):
         PatchPPCA(batch_size=8).fit(ArraySource(imgs), beside=fails)
+    # several jobs: each gets the maps; the first of them that failed is raised
+    both: list = []
+    PatchPPCA(batch_size=8).fit(ArraySource(imgs), beside=[both.append, both.append])
+    assert len(both) == 2 and both[0] is both[1]
+
+    def later(held):
+        raise KeyError("later")
+
+    with pytest.raises(RuntimeError, match="calibration failed"):
+        PatchPPCA(batch_size=8).fit(ArraySource(imgs), beside=[both.append, fails, later])
 
 
 def test_masked_fit_is_the_ppca_of_the_observed_features():

@@ -481,16 +481,20 @@ def _learn(model: DensityModel, source: FileSource, mask: np.ndarray | None, tim
                                                        cfg.model.patch, cfg.model.stride))
         if takes(model, "alpha"):  # held-out maps calibration would drop are not made
             extra_args["alpha"] = _planned_alpha(cfg, times)
-        calibrated: list = []
-        if takes(model, "beside"):  # calibrated while the final model is fitted
-            extra_args["beside"] = lambda held: calibrated.append(_calibrated(
-                held, cfg, source.files, times, source, prepared, conditions, masking))
+        halves: dict = {}
+        if takes(model, "beside"):  # calibrated while the final model is fitted: the
+            # threshold and the (longer) regimes and persistence as two jobs
+            extra_args["beside"] = [
+                lambda held: halves.update(threshold=_threshold_half(
+                    held, cfg, source.files, times, source, prepared, conditions, masking)),
+                lambda held: halves.update(stream=_stream_half(held, cfg, times, source,
+                                                               prepared))]
         held = model.fit(prepared, mask, **extra_args)
     except ValueError as exc:
         raise UsageError(f"camera {cfg.name}: cannot learn a baseline: {exc}") from None
     finally:
         source.stop()
-    done = (calibrated[0] if calibrated else
+    done = (_joined(halves["threshold"], halves["stream"]) if halves else
             _calibrated(held, cfg, source.files, times, source, prepared, conditions, masking))
     return Learnt(model, source, conditions, mask, text_boxes, masking, done)
 
@@ -573,8 +577,20 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
                 source: FileSource, prepared: PreparedSource, conditions: Conditions,
                 masking: dict) -> Calibrated:
     """The calibration of the held-out maps (threshold, regimes, persistence) once the
-    model's pass over the frames is done (see :class:`Calibrated`). Raises UsageError when
-    too few frames were read or the maps cannot be calibrated."""
+    model's pass over the frames is done (see :class:`Calibrated`): :func:`_threshold_half`
+    then :func:`_stream_half` (beside the final fit the two run at once, see
+    :func:`_learn`), :func:`_joined`. Raises UsageError when too few frames were read or the
+    maps cannot be calibrated."""
+    return _joined(_threshold_half(held, cfg, files, times, source, prepared, conditions,
+                                   masking),
+                   _stream_half(held, cfg, times, source, prepared))
+
+
+def _threshold_half(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list,
+                    source: FileSource, prepared: PreparedSource, conditions: Conditions,
+                    masking: dict) -> tuple:
+    """The threshold half of :func:`_calibrated` (and the health limits): ``(used, times
+    of the frames used, calibration, notes, warnings)``. Raises as it does."""
     camera = cfg.name
     used = len(files) - len(source.skipped)
     if used < MIN_FRAMES:
@@ -583,15 +599,8 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
     if prepared.measures:  # health limits from every normal frame, not just the sample
         conditions.set_limits({k: np.array([m[k] for m in prepared.measures.values()])
                                for k in ("dark", "bright", "covered", "focus", "gain")})
-    cs = cfg.calibration
-    good = [t for i, t in enumerate(times) if i not in source.skipped]
     notes: list[str] = []
-    alpha = _alpha(cs, camera, good, notes)
-    # A budget in alarms per day can ask for a rate far below what the normal frames
-    # support: then the tail is extrapolated (and only 1/(n+1) is guaranteed). A plain
-    # alpha keeps the exact conformal threshold (the largest score, guaranteeing 1/(n+1),
-    # with a warning when frames are too few).
-    tail = cs.tail_fit and cs.alarms_per_day > 0
+    good, alpha, tail = _rate(cfg, times, source, notes)
     held_blocks = source.blocks[held.index]
     try:
         calibration = calibrate(held.maps, held_blocks, alpha, tail)
@@ -610,11 +619,47 @@ def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list
                      f"by that gain: less sharply, and outside the guaranteed rate")
     warnings = [threshold.warning] if threshold.warning else []
     warnings += masking.pop("warnings")
-    regimes, labels = _regimes(held, held_blocks, prepared.appearance, cs, alpha, tail, notes,
-                               warnings)
+    return used, good, calibration, notes, warnings
+
+
+def _stream_half(held, cfg: CameraConfig, times: list, source: FileSource,
+                 prepared: PreparedSource) -> tuple:
+    """The regimes and persistence half of :func:`_calibrated`: ``(regimes, persistence,
+    notes, warnings)``; needs nothing of the threshold half (it finds the rate the same
+    way, its note left to that half)."""
+    _, alpha, tail = _rate(cfg, times, source, [])
+    held_blocks = source.blocks[held.index]
+    notes: list[str] = []
+    warnings: list[str] = []
+    regimes, labels = _regimes(held, held_blocks, prepared.appearance, cfg.calibration, alpha,
+                               tail, notes, warnings)
     persistence = _persistence(held, held_blocks, labels, times, alpha, cfg, notes,
                                prepared.cell_brightness, warnings)
-    return Calibrated(used, good, calibration, regimes, persistence, notes, warnings)
+    return regimes, persistence, notes, warnings
+
+
+def _rate(cfg: CameraConfig, times: list, source: FileSource, notes: list[str]
+          ) -> tuple[list, float, bool]:
+    """The capture times of the frames used, the false-alarm rate their threshold is set
+    for (:func:`_alpha`, with its line in ``notes``) and whether the threshold's tail is
+    extrapolated."""
+    cs = cfg.calibration
+    good = [t for i, t in enumerate(times) if i not in source.skipped]
+    alpha = _alpha(cs, cfg.name, good, notes)
+    # A budget in alarms per day can ask for a rate far below what the normal frames
+    # support: then the tail is extrapolated (and only 1/(n+1) is guaranteed). A plain
+    # alpha keeps the exact conformal threshold (the largest score, guaranteeing 1/(n+1),
+    # with a warning when frames are too few).
+    return good, alpha, cs.tail_fit and cs.alarms_per_day > 0
+
+
+def _joined(threshold: tuple, stream: tuple) -> Calibrated:
+    """:class:`Calibrated` of the two halves' results: the threshold's notes and warnings,
+    then those of the regimes and persistence."""
+    used, good, calibration, notes, warnings = threshold
+    regimes, persistence, more_notes, more_warnings = stream
+    return Calibrated(used, good, calibration, regimes, persistence, notes + more_notes,
+                      warnings + more_warnings)
 
 
 def _alpha(cs: CalibrationSettings, camera: str, times: list, notes: list[str]) -> float:

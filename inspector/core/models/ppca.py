@@ -1041,15 +1041,16 @@ class PatchPPCA(DensityModel):
             (counted from the frames given, before decoding) are only trained on, not
             scored, since calibration would drop their maps; their fold models are not
             fitted. None: every block from ``calibrate_from`` on is scored.
-        beside : callable, optional
-            ``beside(held)``, run with the held-out maps in a thread while the final model
-            is fitted from the moments (the calibration, which needs only those maps, then
-            takes no time of its own: fitting runs LAPACK mostly outside Python's lock).
-            The two share two threads: ``beside`` takes one, the fit's chunks of locations
-            the other and, once ``beside`` is done, both; so the longer of the two keeps a
-            core to itself (with three threads on two cores, a 2,000-frame learn's
-            calibration waited on the fit). ``fit`` returns when both are done and raises
-            what ``beside`` raised.
+        beside : callable or sequence of callables, optional
+            ``beside(held)`` (each of them), run with the held-out maps while the final
+            model is fitted from the moments (the calibration, which needs only those maps,
+            then takes no time of its own: fitting runs LAPACK mostly outside Python's
+            lock). They share two threads with the fit: each job of ``beside`` takes one
+            as it comes free, the fit's chunks of locations the rest; so the longest job
+            keeps a core to itself (with three threads on two cores, a 2,000-frame learn's
+            calibration waited on the fit) while the shorter ones and the fit share the
+            other. ``fit`` returns when all are done and raises what the first of them that
+            failed raised.
 
         Returns
         -------
@@ -1111,11 +1112,13 @@ class PatchPPCA(DensityModel):
                 HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32)))
         if beside is None:
             self._fit_final(moments, start)
-        else:  # one thread takes beside, the other the fit's chunks (then both take them)
+        else:  # beside's jobs take the threads first, the fit's chunks queue after them
             with ThreadPoolExecutor(2) as shared:
-                job = shared.submit(beside, held)
+                jobs = [shared.submit(job, held)
+                        for job in ([beside] if callable(beside) else beside)]
                 self._fit_final(moments, start, shared)
-                job.result()
+                for job in jobs:
+                    job.result()
         return held
 
     def _fit_final(self, moments: Moments, start: np.ndarray | None, pool=None) -> None:
