@@ -707,7 +707,7 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     tests = []
     for by, middle in alike:
         tests.append((by, middle, change))
-        noisy = _look_noise_of(by)
+        noisy = _look_noise_of(by, change)
         if noisy > change:  # a dark, noisy stretch (see above)
             tests.append((by, middle, noisy))
     out = None
@@ -853,7 +853,7 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     win = looks[-window:]
     own = _departs(win, reference, change)
     agree = _agreement(win)
-    tolerance = max(change, _look_noise_of(win)) if noise else change
+    tolerance = _look_noise_of(win, change) if noise else change
     return own & moved & (flat_filter(agree, around, np.maximum) <= tolerance), before_raw
 
 
@@ -981,7 +981,7 @@ def _look_reading(looks: list, window: int, reference: np.ndarray, settled: np.n
     how far the look departed beyond its own scatter, counted against how much every look
     of the window moves from frame to frame."""
     win = looks[-window:]
-    noise = _look_noise_of(win)
+    noise = _look_noise_of(win, change)
     if window < 3 or noise <= change or not settled.any():
         return None
     departure = _second_smallest(np.abs(np.asarray(win, np.float32) - reference))
@@ -1016,13 +1016,21 @@ def _lifted(step: np.ndarray, lift: np.ndarray | None) -> np.ndarray:
     return np.where(step > 0, step * lift, step).astype(np.float32)
 
 
-def _look_noise_of(looks) -> float:
+def _look_noise_of(looks, floor: float = 0.0) -> float:
     """How much the looks of a few consecutive frames (oldest first, at least 2) change
     from one to the next, on the scale of ``change``: :data:`LARGE` times the median over
     cells and pairs of the absolute difference (as :func:`look_noise` makes ``change`` from
-    normal frames). In a dark stretch the gain that brings a frame back amplifies its noise,
-    and this is above ``change``."""
-    return LARGE * float(np.median(np.abs(np.diff(np.asarray(looks, np.float32), axis=0))))
+    normal frames), or ``floor`` where that is larger (the callers want the larger of the
+    two). In a dark stretch the gain that brings a frame back amplifies its noise, and this
+    is above ``change``. By day it is not: when at most half the differences are above
+    ``floor`` / ``LARGE`` (less a millionth; the upper middle one is not), the median is not
+    either and ``floor`` is returned without it (a count instead of a partition)."""
+    diffs = np.abs(np.diff(np.asarray(looks, np.float32), axis=0)).ravel()
+    if floor > 0:
+        above = int(np.count_nonzero(diffs > floor / LARGE * (1.0 - 1e-6)))
+        if above <= len(diffs) - len(diffs) // 2 - 1:
+            return floor
+    return max(floor, LARGE * float(np.median(diffs)))
 
 
 def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:
