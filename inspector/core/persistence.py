@@ -199,6 +199,8 @@ class StreamState:
 
     @classmethod
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> "StreamState":
+        """The state whose :meth:`arrays` these are (shapes as the attributes'); the keys
+        missing from states saved before them read as None."""
         return cls(np.asarray(arrays["maps"], np.float32), np.asarray(arrays["times"], float),
                    arrays.get("onset"), int(arrays.get("block", -1)), arrays.get("held"),
                    arrays.get("looks"), arrays.get("held_look"), arrays.get("brightness"),
@@ -1008,9 +1010,9 @@ def _with_look(step: np.ndarray, look: np.ndarray | None) -> np.ndarray:
 
 
 def _lifted(step: np.ndarray, lift: np.ndarray | None) -> np.ndarray:
-    """``step`` multiplied by ``lift`` where above 0 (see :func:`_lift`; taken of the map
-    once opened, so that the cells at a thing's edge, which its brightness moves less,
-    do not keep the lift from its middle)."""
+    """``step`` (h, w) multiplied by ``lift`` (h, w) where above 0 (see :func:`_lift`; taken
+    of the map once opened, so that the cells at a thing's edge, which its brightness moves
+    less, do not keep the lift from its middle)."""
     if lift is None:
         return step
     return np.where(step > 0, step * lift, step).astype(np.float32)
@@ -1034,8 +1036,9 @@ def _look_noise_of(looks, floor: float = 0.0) -> float:
 
 
 def _departs(frames: list, reference: np.ndarray, change: float) -> np.ndarray:
-    """Per cell, whether ``frames`` (a window's, oldest first) differ from ``reference`` by
-    more than ``change`` in all of them but one, and in the newest, bool."""
+    """Per cell, whether ``frames`` (a window's, oldest first, each (h, w)) differ from
+    ``reference`` (h, w) by more than ``change`` in all of them but one, and in the newest,
+    bool (h, w)."""
     diff = np.abs(np.asarray(frames, np.float32) - reference)
     return (_second_smallest(diff) > change) & (diff[-1] > change)
 
@@ -1113,7 +1116,8 @@ def normal_look(looks: np.ndarray, times: np.ndarray, window: int, max_gap: floa
 
 
 def _gated(step: np.ndarray, changed: np.ndarray, change: float) -> np.ndarray:
-    """``step`` where the picture changed by more than ``change``, else at most 0."""
+    """``step`` where the picture changed (``changed``, the same shape) by more than
+    ``change``, else at most 0, as float32."""
     return np.where(changed > change, step, np.minimum(step, 0.0)).astype(np.float32)
 
 
@@ -1200,7 +1204,23 @@ def look_noise(looks: np.ndarray, times: np.ndarray, max_gap: float,
                blocks: np.ndarray | None = None) -> float:
     """How much a cell's look changes from one normal frame to the next: the median over
     cells and consecutive pairs (within ``max_gap`` seconds and one block) of the absolute
-    difference of :func:`cell_looks`; 0 when there is no such pair."""
+    difference of :func:`cell_looks`; 0 when there is no such pair.
+
+    Parameters
+    ----------
+    looks : ndarray, shape (n, h, w), float
+        The frames' :func:`cell_looks`, in capture-time order.
+    times : ndarray, shape (n,), float
+        Their capture times, seconds since the epoch.
+    max_gap : float
+        Seconds between two frames beyond which they are no pair.
+    blocks : ndarray, shape (n,), int, optional
+        Their time blocks: two frames of different blocks are no pair.
+
+    Returns
+    -------
+    float
+    """
     looks = np.asarray(looks, np.float32)
     times = np.asarray(times, np.float64)
     if len(looks) < 2:
@@ -1629,8 +1649,8 @@ def robust_spread(maps: np.ndarray) -> np.ndarray:
 
 
 def frame_interval(times: np.ndarray) -> float:
-    """Typical seconds between frames: the median positive gap of sorted capture times
-    (1.0 when there is none)."""
+    """Typical seconds between frames: the median positive gap of sorted capture ``times``
+    (shape (n,), seconds, in any order); 1.0 when there is none."""
     gaps = np.diff(np.sort(np.asarray(times, np.float64)))
     gaps = gaps[gaps > 0]
     return float(np.median(gaps)) if len(gaps) else 1.0
@@ -1821,6 +1841,10 @@ class Persistence:
     def from_saved(cls, meta: dict, calibration_scores: np.ndarray,
                    start_scores: np.ndarray | None = None,
                    normal: np.ndarray | None = None) -> "Persistence":
+        """Rebuild from :meth:`to_json` (``meta``), the calibration scores, shape (k,), the
+        first frames' scores, shape (k',), and the normal look, shape (2 or 3, h, w) (see
+        ``normal`` of :func:`persistence`); keys missing from older baselines take the
+        values that ran them."""
         start = meta.get("start_threshold")
         return cls(int(meta["window"]), float(meta["max_gap"]),
                    Threshold.from_dict(meta["threshold"]),
