@@ -740,6 +740,44 @@ def test_a_late_frame_takes_its_place_in_the_stream():
     np.testing.assert_allclose(stale.state.maps, ref.state.maps)
 
 
+def test_a_late_frame_is_judged_by_the_rules_an_in_order_one_is():
+    # A late frame gets the map it has in the stream in capture-time order (nothing is held
+    # without a threshold), by every rule: the spill of a dark, noisy stretch (its step
+    # counted against the view's change, robust="change"; the fixture of the noisy-stretch
+    # test above) and the parcel crossed by passers-by (seen through them, crossed=True; the
+    # fixture of the crossed test above), each with one frame arriving after the next.
+    rng = np.random.default_rng(5)
+    n, h, w = 14, 24, 32
+    maps = (rng.normal(0, 10, (h, w)) + rng.normal(0, 1, (n, h, w))).astype(np.float32)
+    bright = (rng.normal(4.0, 0.3, (h, w)) + rng.normal(0, 0.003, (n, h, w))).astype(np.float32)
+    maps[8:, 3:6, 4:7] += 12.0
+    bright[8:, 3:6, 4:7] -= 0.3
+    spill = (maps, bright, 11, dict(past=4, looks=looks_of(bright), change=0.05,
+                                    brightness=bright, robust="change"))
+    maps = np.zeros((20, 6, 8), np.float32)
+    looks = np.zeros((20, 6, 8), np.float32)
+    maps[8:, 2, 3], looks[8:, 2, 3] = 30.0, 0.5
+    maps[9, 2, 3], looks[9, 2, 3] = 300.0, -0.4
+    maps[11, 2, 3], looks[11, 2, 3] = 3.0, 1.2
+    crossed = (maps, None, 12, dict(past=8, min_past=MIN_PAST, looks=looks, change=0.05,
+                                    crossed=True))
+    for maps, bright, late, kw in (spill, crossed):
+        n = len(maps)
+        times = np.arange(n) * 2.0
+        order = [*range(late), late + 1, late, *range(late + 2, n)]
+        ref = persistence(maps, times, 4, 10.0, **kw)
+        got = persistence(maps[order], times[order], 4, 10.0,
+                          **dict(kw, looks=kw["looks"][order],
+                                 **({} if bright is None else {"brightness": bright[order]})))
+        assert got.late.tolist() == [k == late for k in order]
+        off = persistence(maps, times, 4, 10.0, **dict(kw, robust="window", crossed=False))
+        assert ref.scores[late] > off.scores[late] + 2.0  # the rule counts there
+        for k, f in enumerate(order):
+            if f != late + 1:  # (scored before the late frame was there)
+                np.testing.assert_allclose(got.maps[k], ref.maps[f], atol=1e-5)
+                assert got.stepped[k] == ref.stepped[f]
+
+
 def test_since_is_when_the_region_appeared():
     maps = np.zeros((8, 4, 4), np.float32)
     maps[3:, 1, 2] = 5.0           # something appears at frame 3 and stays

@@ -97,6 +97,7 @@ flagged normal frames over a long stationary stream, not frame by frame independ
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from typing import NamedTuple
 
 import numpy as np
 
@@ -271,7 +272,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         ``window - 1`` frames before it, kept or late like it (a late run of frames makes
         windows of its own), it counts as ``filled`` only when those are there and no gap
         between them passes ``max_gap``, and it joins the windows of the frames that come
-        after it; the stream is not restarted.
+        after it; the stream is not restarted. It is judged by the same rules as a frame
+        in order, with no cell held (what is held, and since when, is the stream's, as of
+        its newest frame).
     window : int >= 1
         Frames in the window.
     max_gap : float > 0
@@ -459,6 +462,53 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     since = np.full(n, np.nan)
     lifts: list = [None] * n  # (see _lift)
     looked: list = [None] * n  # (see _look_reading)
+
+    def judge(frames: list, looks: list, held: np.ndarray | None = None,
+              held_look: np.ndarray | None = None,
+              held_bright: np.ndarray | None = None) -> _Judged:
+        """The persistence map of the newest of ``frames`` (local maps, oldest first, its
+        window last; ``looks``: theirs) by every rule above, ``held``, ``held_look`` and
+        ``held_bright`` the references the stream's held cells keep (None: none held), and
+        what was found on the way (see :class:`_Judged`): the same for a frame in order and
+        a late one."""
+        seen = _changed(looks, window, held_look, min_past, around) if gate else None
+        moved = _own_change(looks, window, bright, change, held_bright) if settle else None
+        fixed = (_settled(looks, window, held_look, change, around, bright,
+                          None if seen is None else seen[1], held_bright, moved,
+                          settle_noise)
+                 if settle else None)
+        fixed, bright_ref = (None, None) if fixed is None else fixed
+        own = (_own(looks, window, held_look, bright, held_bright, around,
+                    None if seen is None else seen[1], bright_ref) if settle else None)
+        level, raw, scale, win_scaled = _step(frames, window, held, around, scaled, spreads,
+                                              min_past, fixed)
+        stepped = past > 0 and len(frames) >= window + min_past
+        found = raw if seen is None else _gated(raw, seen[0], change)
+        through = (seen_through(frames, looks, window, scale, held, held_look, change, around,
+                                min_past, _brightness_of(looks, bright)
+                                if settle and crossed == "brightness" else None)
+                   if crossed and gate and stepped else None)
+        if through is not None:
+            found = np.maximum(found, through)
+        if own is not None and stepped:
+            found = _gated(found, own, change)
+        if gate and not stepped:
+            found = _usual(found, looks[-window:], normal, change, around, bright)
+        lift = (_lift(frames, window, scale, min_past, None if moved is None else moved[0])
+                if changes and stepped else None)
+        look = (_look_reading(looks, window, seen[1], fixed & (raw > 0), change, own,
+                              footprint)
+                if settle_look and fixed is not None and seen is not None and stepped
+                and lift is not None else None)
+        if threshold is not None:  # (else opened after the loop, all frames at once)
+            found = _with_look(_lifted(opened(found, footprint), lift), look)
+            if past and window < len(frames) < window + min_past:
+                found = _since_start(frames, looks, window, opened_map=found, steady=level,
+                                     scale=scale, threshold=threshold, around=around,
+                                     footprint=footprint, change=change if gate else 0.0)
+        return _Judged(found, level, raw, scale, win_scaled, stepped, lift, look, seen,
+                       fixed, bright_ref, own, through)
+
     for i in range(n):
         b = int(blocks[i]) if blocks is not None else -1
         t = float(times[i])
@@ -473,24 +523,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 late_buf, late_t, late_l = buf[:pos], buf_t[:pos], lbuf[:pos]
             late_buf, late_t = (late_buf + [frames[i]])[-keep:], (late_t + [t])[-keep:]
             late_l = (late_l + [look_of[i]])[-keep:]
-            seen = _changed(late_l, window, None, min_past, around) if gate else None
-            fixed = (_settled(late_l, window, None, change, around, bright,
-                              None if seen is None else seen[1], noise=settle_noise)
-                     if settle else None)
-            fixed = None if fixed is None else fixed[0]
-            level, raw, _, _ = _step(late_buf, window, around=around, scaled=scaled,
-                                     spreads=spreads, min_past=min_past, settled=fixed)
-            stepped[i] = past > 0 and len(late_buf) >= window + min_past
-            if seen is not None:
-                raw = _gated(raw, seen[0], change)
-            own = _own(late_l, window, None, bright, None, around) if settle else None
-            if own is not None and stepped[i]:
-                raw = _gated(raw, own, change)
-            if gate and not stepped[i]:
-                raw = _usual(raw, late_l[-window:], normal, change, around, bright)
-            out[i], steady[i] = raw, level
-            if threshold is not None:
-                out[i] = opened(raw, footprint)
+            w = judge(late_buf, late_l)  # (nothing held: the stream's holds are its newest's)
+            out[i], steady[i], stepped[i], lifts[i] = w.map, w.level, w.stepped, w.lift
+            looked[i] = w.look
             filled[i] = (len(late_t) >= window
                          and float(np.max(np.diff(late_t[-window:]))) <= max_gap)
             if pos or buf_t[0] - t <= max_gap:
@@ -512,46 +547,13 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         buf_t.append(t)
         lbuf.append(look_of[i])
         del buf[:-keep], buf_t[:-keep], lbuf[:-keep]
-        seen = _changed(lbuf, window, held_look, min_past, around) if gate else None
-        moved = _own_change(lbuf, window, bright, change, held_bright) if settle else None
-        fixed = (_settled(lbuf, window, held_look, change, around, bright,
-                          None if seen is None else seen[1], held_bright, moved,
-                          settle_noise)
-                 if settle else None)
-        fixed, bright_ref = (None, None) if fixed is None else fixed
-        own = (_own(lbuf, window, held_look, bright, held_bright, around,
-                    None if seen is None else seen[1], bright_ref) if settle else None)
-        level, raw, scale, win_scaled = _step(buf, window, held, around, scaled, spreads,
-                                              min_past, fixed)
-        stepped[i] = past > 0 and len(buf) >= window + min_past
-        steady[i] = level
-        out[i] = raw if seen is None else _gated(raw, seen[0], change)
-        through = (seen_through(buf, lbuf, window, scale, held, held_look, change, around,
-                                min_past, _brightness_of(lbuf, bright)
-                                if settle and crossed == "brightness" else None)
-                   if crossed and gate and stepped[i] else None)
-        if through is not None:
-            out[i] = np.maximum(out[i], through)
-        if own is not None and stepped[i]:
-            out[i] = _gated(out[i], own, change)
-        if gate and not stepped[i]:
-            out[i] = _usual(out[i], lbuf[-window:], normal, change, around, bright)
-        lifts[i] = (_lift(buf, window, scale, min_past, None if moved is None else moved[0])
-                    if changes and stepped[i] else None)
-        looked[i] = (_look_reading(lbuf, window, seen[1], fixed & (raw > 0), change, own,
-                                   footprint)
-                     if settle_look and fixed is not None and seen is not None and stepped[i]
-                     and lifts[i] is not None else None)
-        if threshold is not None:  # (else opened below, all frames at once)
-            out[i] = _with_look(_lifted(opened(out[i], footprint), lifts[i]), looked[i])
-            if past and window < len(buf) < window + min_past:
-                out[i] = _since_start(buf, lbuf, window, opened_map=out[i], steady=level,
-                                      scale=scale, threshold=threshold, around=around,
-                                      footprint=footprint, change=change if gate else 0.0)
+        w = judge(buf, lbuf, held, held_look, held_bright)
+        out[i], steady[i], stepped[i], lifts[i] = w.map, w.level, w.stepped, w.lift
+        looked[i] = w.look
         filled[i] = len(buf) >= window
         if threshold is not None:
             limit = _limit(threshold, start_threshold, stepped[i])
-            above = maps[i] > limit * scale
+            above = maps[i] > limit * w.scale
             if onset is None:
                 onset = np.full(maps.shape[1:], np.nan)
             onset = np.where(above, np.where(np.isnan(onset), t, onset), np.nan)
@@ -560,27 +562,28 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 # a held cell is flagged only where this frame shows what it holds; the
                 # hold goes on by ``region`` (a passer-by in front of the thing for a frame
                 # does not take it into its own reference)
-                alt = np.where(np.isnan(held), raw,
-                               steady_level(win_scaled, around, True, fixed) - (level - raw))
-                if seen is not None:  # (and where this frame looks as the window's others)
+                alt = np.where(np.isnan(held), w.raw,
+                               steady_level(w.win_scaled, around, True, w.fixed)
+                               - (w.level - w.raw))
+                if w.seen is not None:  # (and where this frame looks as the window's others)
                     odd = ~np.isnan(held) & _odd_one(lbuf[-window:], change)
                     alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
-                alt = alt if seen is None else _gated(alt, seen[0], change)
-                alt = alt if through is None else np.maximum(alt, through)
-                out[i] = _with_look(_lifted(opened(alt if own is None
-                                                   else _gated(alt, own, change),
-                                                   footprint), lifts[i]), looked[i])
+                alt = alt if w.seen is None else _gated(alt, w.seen[0], change)
+                alt = alt if w.through is None else np.maximum(alt, w.through)
+                out[i] = _with_look(_lifted(opened(alt if w.own is None
+                                                   else _gated(alt, w.own, change),
+                                                   footprint), w.lift), w.look)
             flagged_cells = out[i] > limit
             if flagged_cells.any():
                 since[i] = float(np.median(onset[flagged_cells]))
             if past:  # cells above keep the reference they had (NaN: not held)
-                reference = level - raw
+                reference = w.level - w.raw
                 keeps = region & filled[i] & stepped[i]
                 held = np.where(keeps, reference, np.nan).astype(np.float32)
-                held_look = (None if seen is None else
-                             np.where(keeps, seen[1], np.nan).astype(np.float32))
-                held_bright = (None if bright_ref is None else
-                               np.where(keeps, bright_ref, np.nan).astype(np.float32))
+                held_look = (None if w.seen is None else
+                             np.where(keeps, w.seen[1], np.nan).astype(np.float32))
+                held_bright = (None if w.bright_ref is None else
+                               np.where(keeps, w.bright_ref, np.nan).astype(np.float32))
     if threshold is None:  # (the maps are not needed in the loop: opened at once)
         out = opened(out, footprint)
         for i, lift in enumerate(lifts):
@@ -601,6 +604,34 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                             if settle else None, held_bright if settle else None)
     return PersistenceResult(out, frame_scores(out), filled, since, state_out, late, stepped,
                              levels)
+
+
+class _Judged(NamedTuple):
+    """A frame's window as :func:`persistence` judged it (its ``judge``): the map and what
+    the rules found on the way, of which the stream's holds are made."""
+
+    #: The persistence map, (h, w) float32 (opened and lifted when a threshold is given).
+    map: np.ndarray
+    #: The window's steady level and its step from the reference (:func:`_step`), (h, w).
+    level: np.ndarray
+    raw: np.ndarray
+    #: What the maps were divided by, and the window's maps so divided, (window, h, w).
+    scale: float
+    win_scaled: np.ndarray
+    #: Measured from a reference (frames before the window were there).
+    stepped: bool
+    #: :func:`_lift`, None where it is 1.
+    lift: np.ndarray | None
+    #: :func:`_look_reading`, or None.
+    look: np.ndarray | None
+    #: :func:`_changed`: the window's change of look and its reference, or None.
+    seen: tuple | None
+    #: Cells where a thing has settled (:func:`_settled`) and its brightness reference.
+    fixed: np.ndarray | None
+    bright_ref: np.ndarray | None
+    #: :func:`_own` and :func:`seen_through`, or None.
+    own: np.ndarray | None
+    through: np.ndarray | None
 
 
 def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> float:
