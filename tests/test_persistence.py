@@ -20,6 +20,7 @@ from inspector.core.persistence import (
     MIN_PAST,
     Persistence,
     StreamState,
+    _in_two,
     _look_reading,
     _median_along,
     _own,
@@ -1013,3 +1014,24 @@ def test_the_picture_reads_a_thing_settled_in_the_dark():
                           old.maps)
     new = persistence(maps, times, 4, 10.0, settle_look=True, **opts)
     assert np.all(new.maps >= old.maps) and (new.maps > old.maps).any()
+
+
+def test_in_two_parts_equal_the_whole_run():
+    # Reference: persistence's own single run over all frames (the definition): windows never
+    # cross a time block, so two parts of whole blocks run in two threads give the same bits.
+    rng = np.random.default_rng(3)
+    n, shape = 36, (12, 16)
+    maps = rng.gamma(2.0, 1.0, (n,) + shape).astype(np.float32)
+    maps[20:, 4:8, 5:9] += 6.0  # a thing left in the second block
+    bright = (100 + 5 * rng.standard_normal((n,) + shape)).astype(np.float32)
+    bright[20:, 4:8, 5:9] -= 40.0
+    blocks = np.repeat([0, 1, 2], [10, 14, 12])
+    times = np.arange(n) * 60.0
+    opts = dict(past=4, robust="change", around=3, local=5, footprint=2, min_past=2,
+                looks=looks_of(bright), brightness=bright, change=0.05, crossed="brightness",
+                settle_noise=True, settle_look=True)
+    whole = persistence(maps, times, 3, 180.0, blocks=blocks, **opts)
+    two = _in_two(maps, times, 3, 180.0, blocks, **opts)
+    for name in ("maps", "scores", "filled", "since", "late", "stepped", "levels"):
+        assert np.array_equal(getattr(two, name), getattr(whole, name), equal_nan=True), name
+    assert whole.stepped.any() and (whole.scores[whole.stepped] > 0).any()
