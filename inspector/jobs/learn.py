@@ -486,7 +486,7 @@ def _learn(model: DensityModel, source: FileSource, mask: np.ndarray | None, tim
             # threshold and the (longer) regimes and persistence as two jobs
             extra_args["beside"] = [
                 lambda held: halves.update(threshold=_threshold_half(
-                    held, cfg, source.files, times, source, prepared, conditions, masking)),
+                    held, cfg, times, source, prepared, conditions, masking)),
                 lambda held: halves.update(stream=_stream_half(held, cfg, times, source,
                                                                prepared))]
         held = model.fit(prepared, mask, **extra_args)
@@ -495,7 +495,7 @@ def _learn(model: DensityModel, source: FileSource, mask: np.ndarray | None, tim
     finally:
         source.stop()
     done = (_joined(halves["threshold"], halves["stream"]) if halves else
-            _calibrated(held, cfg, source.files, times, source, prepared, conditions, masking))
+            _calibrated(held, cfg, times, source, prepared, conditions, masking))
     return Learnt(model, source, conditions, mask, text_boxes, masking, done)
 
 
@@ -573,25 +573,23 @@ class Calibrated:
         return self.calibration.threshold
 
 
-def _calibrated(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list,
-                source: FileSource, prepared: PreparedSource, conditions: Conditions,
-                masking: dict) -> Calibrated:
+def _calibrated(held, cfg: CameraConfig, times: list, source: FileSource,
+                prepared: PreparedSource, conditions: Conditions, masking: dict) -> Calibrated:
     """The calibration of the held-out maps (threshold, regimes, persistence) once the
     model's pass over the frames is done (see :class:`Calibrated`): :func:`_threshold_half`
     then :func:`_stream_half` (beside the final fit the two run at once, see
     :func:`_learn`), :func:`_joined`. Raises UsageError when too few frames were read or the
     maps cannot be calibrated."""
-    return _joined(_threshold_half(held, cfg, files, times, source, prepared, conditions,
-                                   masking),
+    return _joined(_threshold_half(held, cfg, times, source, prepared, conditions, masking),
                    _stream_half(held, cfg, times, source, prepared))
 
 
-def _threshold_half(held, cfg: CameraConfig, files: Sequence[FrameFile], times: list,
-                    source: FileSource, prepared: PreparedSource, conditions: Conditions,
-                    masking: dict) -> tuple:
+def _threshold_half(held, cfg: CameraConfig, times: list, source: FileSource,
+                    prepared: PreparedSource, conditions: Conditions, masking: dict) -> tuple:
     """The threshold half of :func:`_calibrated` (and the health limits): ``(used, times
     of the frames used, calibration, notes, warnings)``. Raises as it does."""
     camera = cfg.name
+    files = source.files
     used = len(files) - len(source.skipped)
     if used < MIN_FRAMES:
         raise UsageError(f"camera {camera}: only {used} of {len(files)} normal frames could be "
