@@ -32,7 +32,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from inspector.core.calibration import newest_blocks
 from inspector.core.features import (
@@ -157,13 +157,35 @@ def batched_eigh(cov: np.ndarray, vectors: bool = True, workers: int = 2,
     return (evals, evecs) if vectors else evals
 
 
+_BLAS: ThreadpoolController | None = None  # see one_blas_thread
+
+
+def one_blas_thread():
+    """A context in which BLAS (and OpenMP) run on one thread (threadpoolctl): the products
+    of a fit are of small matrices, shared out by Python threads of their own where there is
+    more than one job (see :func:`batched_eigh`). A multi-threaded BLAS synchronises its
+    threads on each small product, and spins while the other thread waits for a core: one
+    stacked product of 435 matrices 96 x 96 took 0.15-0.5 s of CPU on two threads against
+    0.035 s on one (heldout_latent's, at load 7-30), up to 6.7 s at load 30. The libraries
+    are found once (``threadpool_limits`` looks them up at every call, about 1.2 ms), after
+    SciPy's LAPACK, which :func:`batched_eigh` calls, is loaded."""
+    global _BLAS
+    if _BLAS is None:
+        from scipy.linalg import lapack  # noqa: F401 (its BLAS loaded before the look-up)
+
+        _BLAS = ThreadpoolController()
+    return _BLAS.limit(limits=1)
+
+
 def in_chunks(fn, n: int, workers: int = 2, pool=None) -> list:
     """``[fn(0), ..., fn(n - 1)]``, run in ``pool`` (an executor shared with other work) or
-    else in ``workers`` threads of their own, BLAS held to one thread meanwhile (see
-    :func:`batched_eigh`)."""
-    with threadpool_limits(1):
+    else in ``workers`` threads of their own (in this thread when there is one job), BLAS
+    held to one thread meanwhile (see :func:`batched_eigh`)."""
+    with one_blas_thread():
         if pool is not None:
             return list(pool.map(fn, range(n)))
+        if n <= 1 or workers <= 1:
+            return [fn(k) for k in range(n)]
         with ThreadPoolExecutor(max(1, min(workers, n))) as own:
             return list(own.map(fn, range(n)))
 
@@ -551,7 +573,7 @@ def ppca_precompute(W: np.ndarray, sigma2: np.ndarray, observed: np.ndarray | No
     W = np.asarray(W, np.float64)
     L, d, q = W.shape
     d_obs = observed.sum(axis=1).astype(np.float64) if observed is not None else np.full(L, float(d))
-    with threadpool_limits(1):
+    with one_blas_thread():
         g, V = np.linalg.eigh(np.matmul(W.transpose(0, 2, 1), W))
         g = np.clip(g, 0.0, None) + sigma2[:, None]  # eigenvalues of M
         B = np.matmul(W, V) / np.sqrt(g)[:, None, :]
@@ -1058,6 +1080,14 @@ class PatchPPCA(DensityModel):
             Raw maps of the frames of the scored blocks, each from the model fitted on the
             blocks before its own.
         """
+        # (BLAS on one thread for the whole fit, in every thread it runs: see
+        # one_blas_thread; nested limits inside then restore one thread, not two)
+        with one_blas_thread():
+            return self._fit(source, mask, pool, alpha, beside)
+
+    def _fit(self, source: FrameSource, mask: np.ndarray | None, pool, alpha: float | None,
+             beside) -> HeldOut:
+        """:meth:`fit`'s work, BLAS held to one thread by it."""
         if self.chroma_noise not in ("own", "shared"):
             raise ValueError(f"chroma_noise must be 'own' or 'shared', not {self.chroma_noise!r}")
         w, h = source.size
