@@ -707,7 +707,6 @@ class Conditions(Estimator):
             return None
         idx = order[:n]
         mean = (r[:n] - o) / g
-        s = spread[:n]
         reach = mean + top[:n] / g >= np.float32(255.0)
         if near is not None:
             reach &= near.reshape(-1)[pixel[:n]] == 0
@@ -716,7 +715,12 @@ class Conditions(Estimator):
         if not reach.any():
             return None
         # what this exposure loses beyond what the reference's own exposure lost
-        more = np.maximum(clip_loss(mean[reach], s[reach] / g) - own[:n][reach] / g, 0.0)
+        if reach.all():
+            loss = clip_loss(mean, spread[:, :n].T, divide=g)
+        else:
+            at = np.flatnonzero(reach)
+            loss = clip_loss(mean[at], spread[:, at].T, divide=g)
+        more = np.maximum(loss - own[:n][reach] / g, 0.0)
         if float(more.max()) <= 0.01:
             return None
         return idx[reach], more
@@ -788,8 +792,8 @@ class Conditions(Estimator):
         return fill
 
     def _fine_terms(self, ref_rgb: np.ndarray) -> tuple:
-        """What :meth:`_lost` needs of the colour reference and :attr:`fine_`: it and
-        :attr:`fine_` flattened as float32, the negated highest finer levels in falling
+        """What :meth:`_lost` needs of the colour reference and :attr:`fine_`: it flattened
+        and :attr:`fine_` as (levels, pixels), float32, the negated highest finer levels in falling
         order, that order, the reference's own clip loss, the darkest and the highest finer
         levels, the pixel of each (all but the order in that order)."""
         r = ref_rgb.astype(np.float32)
@@ -798,13 +802,14 @@ class Conditions(Estimator):
         # frame's loss is computed on the few that can reach the clip, not on all
         high = (r + spread[..., -1]).ravel()
         order = np.argsort(-high, kind="stable")
-        # kept in that order, so that a frame's candidates are a slice, not a gather
-        spread = spread.reshape(-1, spread.shape[-1])[order]
-        own = clip_loss(r.reshape(-1)[order], spread)
-        # the darkest and highest finer levels apart (contiguous), and the pixel of each
-        return (r.reshape(-1)[order], spread, -high[order], order, own,
-                np.ascontiguousarray(spread[:, 0]), np.ascontiguousarray(spread[:, -1]),
-                order // 3)
+        # kept in that order, so that a frame's candidates are a slice, not a gather, and
+        # level by level (levels, pixels): each level of the candidates is contiguous
+        # (:func:`clip_loss` goes a level at a time)
+        spread = np.ascontiguousarray(spread.reshape(-1, spread.shape[-1])[order].T)
+        own = clip_loss(r.reshape(-1)[order], spread.T)
+        # the darkest and highest finer levels are its first and last rows; the pixel of each
+        return (r.reshape(-1)[order], spread, -high[order], order, own, spread[0],
+                spread[-1], order // 3)
 
     def _registration(self, ref: np.ndarray
                       ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, Any] | None, tuple]:
