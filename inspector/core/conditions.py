@@ -715,12 +715,10 @@ class Conditions(Estimator):
         if not reach.any():
             return None
         # what this exposure loses beyond what the reference's own exposure lost
-        if reach.all():
-            loss = clip_loss(mean, spread[:, :n].T, divide=g)
-        else:
-            at = np.flatnonzero(reach)
-            loss = clip_loss(mean[at], spread[:, at].T, divide=g)
-        more = np.maximum(loss - own[:n][reach] / g, 0.0)
+        # (on every candidate: cheaper than gathering the levels of those that reach)
+        more = clip_loss(mean, spread[:, :n].T, divide=g)
+        more -= own[:n] / g
+        more = np.maximum(more[reach], 0.0)
         if float(more.max()) <= 0.01:
             return None
         return idx[reach], more

@@ -523,10 +523,13 @@ def brightness_field(frame: np.ndarray, reference: np.ndarray, sigma: float,
         keep = np.asarray(keep, bool)
         if keep.ndim == 2 and frame.ndim == 3:
             keep = keep[..., None]
-    parts = [frame, ref]
-    if keep is not None:  # normalised convolution: blur(keep * x) / blur(keep)
-        parts = [_kept(frame, keep), _kept(ref, keep), keep.view(np.uint8)]
-    means = [grid.means(x) for x in parts]
+    if keep is None:
+        means = [grid.means(frame), grid.means(ref)]
+    elif frame.ndim == 3 and frame.dtype == ref.dtype == np.uint8:
+        means = grid.kept_means([frame, ref], keep)  # (the same numbers, sooner)
+    else:  # normalised convolution: blur(keep * x) / blur(keep)
+        means = [grid.means(x) for x in (_kept(frame, keep), _kept(ref, keep),
+                                         keep.view(np.uint8))]
     if added is not None and len(added[0]):
         means[0] = means[0] + grid.means_of(added, frame.shape, keep)
     c = means[0].shape[2]
@@ -601,13 +604,40 @@ class _CellGrid:
             m = cv2.resize(np.asarray(x, np.float32), (self.nx, self.ny),
                            interpolation=cv2.INTER_AREA).astype(np.float64)
             return m.reshape(self.ny, self.nx, -1)
+        return self._sums(x) / self.counts
+
+    def _sums(self, x: np.ndarray) -> np.ndarray:
+        """Sums of an (h, w) or (h, w, C) image over the cells, (ny, nx, C) float64, from
+        a summed-area table (whole numbers for a uint8 image, exact)."""
         if x.dtype == np.uint8 and x.size * 255 < 2**31:
             table = cv2.integral(x)  # int32
         else:
             table = cv2.integral(np.asarray(x, np.float64))
         c = table.reshape(table.shape[0] * table.shape[1], -1)[self.corners]
         c = c.astype(np.float64).reshape(len(self.rows), len(self.cols), -1)
-        return (c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]) / self.counts
+        return c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]
+
+    def kept_means(self, images: list[np.ndarray], keep: np.ndarray) -> list[np.ndarray]:
+        """:meth:`means` of ``image * keep`` for each uint8 image (h, w, C) of ``images``,
+        and of ``keep`` itself ((h, w, C) or (h, w, 1) bool), each (ny, nx, C) ((ny, nx,
+        1) for ``keep`` (h, w, 1)) float64: the whole image's sums less those of the
+        entries left out, most often a few (clipped pixels, burned-in text), added up by
+        ``np.bincount``: whole numbers all through, so the same numbers as the means of
+        the products, without a product and a summed-area table for each."""
+        h, w, c = images[0].shape
+        kc = keep.shape[2]
+        out = np.flatnonzero(~keep)  # entries of keep left out
+        size = self.ny * self.nx
+        shape = (self.ny, self.nx)
+        dropped = np.bincount(self.entry_cells(kc)[out], minlength=size * kc)
+        if kc != c:  # a pixel left out leaves out all its channels
+            out = (out[:, None] * c + np.arange(c)).ravel()
+        cells = self.entry_cells(c)[out]
+        means = [(self._sums(x) - np.bincount(cells, x.reshape(-1)[out], size * c
+                                              ).reshape(shape + (c,))) / self.counts
+                 for x in images]
+        means.append((self.counts - dropped.reshape(shape + (kc,))) / self.counts)
+        return means
 
     def means_of(self, added: tuple[np.ndarray, np.ndarray], shape: tuple[int, ...],
                  keep: np.ndarray | None) -> np.ndarray:
@@ -887,10 +917,10 @@ def clip_loss(mean: np.ndarray, spread: np.ndarray, level: float = 255.0,
     variables", Econometrica 26(1)), here with ``X`` taking the pixel's quantiles of
     :func:`subpixel_levels` with equal weight.
 
-    Computed a level at a time (``spread[..., j]``: contiguous when ``spread`` is the
-    transpose of a (levels, ...) array) and summed in the order numpy's mean over the last
-    axis takes (:func:`_pairwise_sum`): the same numbers as that mean, without its slow
-    reduction over a short last axis.
+    Computed on the levels stacked first (``np.moveaxis(spread, -1, 0)``: the transpose
+    of a (levels, ...) array is read as it lies) and summed over them in the order numpy's
+    mean over the last axis takes (:func:`_pairwise_sum`): the same numbers as that mean,
+    without its slow reduction over a short last axis.
 
     Parameters
     ----------
@@ -907,44 +937,39 @@ def clip_loss(mean: np.ndarray, spread: np.ndarray, level: float = 255.0,
     ndarray, shape (...), float32, >= 0
     """
     mean = np.asarray(mean, np.float32)
-    spread = np.asarray(spread)
-    top = np.float32(level)
-    parts = []
-    for j in range(spread.shape[-1]):
-        d = np.asarray(spread[..., j], np.float32)
-        if divide is not None:
-            d = d / np.float32(divide)
-        x = mean + d
-        if isinstance(x, np.ndarray):  # in place
-            x -= top
-            parts.append(np.maximum(x, 0.0, out=x))
-        else:  # one pixel: numpy scalars
-            parts.append(np.maximum(x - top, np.float32(0.0)))
-    return _pairwise_sum(parts) / np.float32(len(parts))
+    x = np.asarray(np.moveaxis(np.asarray(spread), -1, 0), np.float32)
+    x = x / np.float32(divide) if divide is not None else x.copy()
+    x += mean  # (mean + d, the same sum)
+    x -= np.float32(level)
+    np.maximum(x, 0.0, out=x)
+    total = _pairwise_sum(x)
+    total /= np.float32(len(x))
+    return total if total.ndim else total[()]
 
 
-def _pairwise_sum(parts: list[np.ndarray]) -> np.ndarray:
-    """The element-wise sum of float arrays of one shape, added in the order numpy's sum of
-    their stack along its last axis takes (its pairwise summation: up to 7 terms in turn;
-    up to 128 in 8 running sums, combined as a tree; more split in two halves, the first a
-    multiple of 8 long), so the same numbers. A new array."""
-    n = len(parts)
+def _pairwise_sum(x: np.ndarray) -> np.ndarray:
+    """The sum of a float array over its first axis, added in the order numpy's sum over
+    a last axis takes (its pairwise summation: up to 7 terms in turn; up to 128 in 8
+    running sums, combined as a tree; more split in two halves, the first a multiple of 8
+    long), so the same numbers; a new array, shape ``x.shape[1:]``."""
+    n = len(x)
     if n < 8:
-        out = np.copy(parts[0])
-        for p in parts[1:]:
+        out = x[0].copy()
+        for p in x[1:]:
             out += p
         return out
     if n > 128:
         half = n // 2
         half -= half % 8
-        return _pairwise_sum(parts[:half]) + _pairwise_sum(parts[half:])
-    r = [np.copy(p) for p in parts[:8]]
+        return _pairwise_sum(x[:half]) + _pairwise_sum(x[half:])
     whole = n - n % 8
+    r = x[:8].copy() if whole > 8 else x[:8]  # (only added to in place when longer)
     for i in range(8, whole, 8):
-        for j in range(8):
-            r[j] += parts[i + j]
-    out = ((r[0] + r[1]) + (r[2] + r[3])) + ((r[4] + r[5]) + (r[6] + r[7]))
-    for p in parts[whole:]:
+        r += x[i:i + 8]
+    r = r[0::2] + r[1::2]  # (r0 + r1), (r2 + r3), (r4 + r5), (r6 + r7)
+    r = r[0::2] + r[1::2]
+    out = r[0] + r[1]
+    for p in x[whole:]:
         out += p
     return out
 
