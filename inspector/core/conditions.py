@@ -44,7 +44,6 @@ learn time and at scoring time alike, so PPCA and VAE get the same help.
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -66,6 +65,7 @@ from inspector.core.image import (
     median_stack,
     percentile_rows,
     phase_shifts,
+    PerReference,
     phase_spectrum,
     refine_shift,
     robust_gains,
@@ -258,27 +258,6 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
     return cv2.bitwise_and(keep, 1).reshape(h, w, 3).view(bool)
 
 
-class _PerReference:
-    """A value made from some arrays and kept while they are the same arrays (the same
-    objects, not equal copies): what frames need of a reference, made once per reference
-    rather than once per frame. The arrays are held with the value, so that no other array
-    takes their identity, and the two are replaced together (one tuple): threads sharing
-    the conditions never read a value with another reference's arrays."""
-
-    __slots__ = ("_made",)
-
-    def __init__(self) -> None:
-        self._made: tuple[tuple, Any] | None = None
-
-    def get(self, make: Callable[..., Any], *arrays: Any) -> Any:
-        """``make(*arrays)``, made anew only when ``arrays`` are not those of the last
-        call."""
-        made = self._made
-        if made is None or any(a is not b for a, b in zip(made[0], arrays)):
-            made = self._made = (arrays, make(*arrays))
-        return made[1]
-
-
 def _health_terms(ignore: np.ndarray | None, cells: np.ndarray | None
                   ) -> tuple[np.ndarray | None, np.ndarray | None, int | None,
                              np.ndarray | None]:
@@ -351,17 +330,17 @@ class Conditions(Estimator):
     def _forget(self) -> None:
         """What frames need of the reference, made anew once per reference (a new fit)."""
         #: The colour reference's glare and brightest level (:meth:`_reference_glare`).
-        self._ref_terms = _PerReference()
+        self._ref_terms = PerReference()
         #: The colour reference and :attr:`fine_` as :meth:`_lost` uses them
         #: (:meth:`_fine_terms`).
-        self._fine = _PerReference()
+        self._fine = PerReference()
         #: What registration needs of the grey reference (:meth:`_registration`).
-        self._spectrum = _PerReference()
+        self._spectrum = PerReference()
         #: What the health measures need of the ignore mask and the reference cells
         #: (:func:`_health_terms`).
-        self._health = _PerReference()
+        self._health = PerReference()
         #: The grey reference's :func:`~inspector.core.image.cell_terms`.
-        self._cells = _PerReference()
+        self._cells = PerReference()
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,

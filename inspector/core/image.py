@@ -7,7 +7,9 @@ Pure functions over numpy arrays; :mod:`inspector.core.conditions` builds on the
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from functools import lru_cache
+from typing import Any
 
 import cv2
 import numpy as np
@@ -560,6 +562,27 @@ def _kept(x: np.ndarray, keep: np.ndarray) -> np.ndarray:
     return np.multiply(x, keep.view(np.uint8).reshape(x.shape[:2] + keep.shape[2:]))
 
 
+class PerReference:
+    """A value made from some arrays and kept while they are the same arrays (the same
+    objects, not equal copies): what frames need of a reference, made once per reference
+    rather than once per frame. The arrays are held with the value, so that no other array
+    takes their identity, and the two are replaced together (one tuple): threads sharing
+    the conditions never read a value with another reference's arrays."""
+
+    __slots__ = ("_made",)
+
+    def __init__(self) -> None:
+        self._made: tuple[tuple, Any] | None = None
+
+    def get(self, make: Callable[..., Any], *arrays: Any) -> Any:
+        """``make(*arrays)``, made anew only when ``arrays`` are not those of the last
+        call."""
+        made = self._made
+        if made is None or any(a is not b for a, b in zip(made[0], arrays)):
+            made = self._made = (arrays, make(*arrays))
+        return made[1]
+
+
 @lru_cache(maxsize=16)
 def _blur_matrix(n: int, sigma: float) -> np.ndarray:
     """(n, n) float64 matrix of ``cv2.GaussianBlur`` along one axis of length ``n``: its
@@ -593,6 +616,9 @@ class _CellGrid:
         self.cell = ((np.searchsorted(self.rows, np.arange(h), "right") - 1)[:, None]
                      * self.nx + np.searchsorted(self.cols, np.arange(w), "right") - 1)
         self._entries: dict[int, np.ndarray] = {}  # :meth:`entry_cells`
+        #: the sums of the last reference of :meth:`kept_means` (a camera's, frame after
+        #: frame)
+        self._reference = PerReference()
 
     def means(self, x: np.ndarray) -> np.ndarray:
         """Means of an (h, w) or (h, w, C) image over the cells, (ny, nx, C) float64:
@@ -618,7 +644,9 @@ class _CellGrid:
         return c[1:, 1:] - c[:-1, 1:] - c[1:, :-1] + c[:-1, :-1]
 
     def kept_means(self, images: list[np.ndarray], keep: np.ndarray) -> list[np.ndarray]:
-        """:meth:`means` of ``image * keep`` for each uint8 image (h, w, C) of ``images``,
+        """:meth:`means` of ``image * keep`` for each uint8 image (h, w, C) of ``images``
+        (all but the first taken as references: their whole sums kept while they are the
+        same arrays, see :class:`PerReference`),
         and of ``keep`` itself ((h, w, C) or (h, w, 1) bool), each (ny, nx, C) ((ny, nx,
         1) for ``keep`` (h, w, 1)) float64: the whole image's sums less those of the
         entries left out, most often a few (clipped pixels, burned-in text), added up by
@@ -633,9 +661,10 @@ class _CellGrid:
         if kc != c:  # a pixel left out leaves out all its channels
             out = (out[:, None] * c + np.arange(c)).ravel()
         cells = self.entry_cells(c)[out]
-        means = [(self._sums(x) - np.bincount(cells, x.reshape(-1)[out], size * c
-                                              ).reshape(shape + (c,))) / self.counts
-                 for x in images]
+        means = [(self._sums(x) if i == 0 else self._reference.get(self._sums, x))
+                 - np.bincount(cells, x.reshape(-1)[out], size * c).reshape(shape + (c,))
+                 for i, x in enumerate(images)]
+        means = [m / self.counts for m in means]
         means.append((self.counts - dropped.reshape(shape + (kc,))) / self.counts)
         return means
 
