@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import copy
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import nullcontext
 from pathlib import Path
 from typing import Any
 
@@ -1106,13 +1107,9 @@ class PatchPPCA(DensityModel):
             later = block_of >= first
             kept = newest_blocks(block_of[later], alpha)
             first = int(block_of[later][kept].min())
-        # With fewer than three time blocks a fold model has no earlier block to choose its
-        # latent size with: every model (folds and final alike) then uses "variance", so the
-        # calibration maps come from models chosen by the same rule as the final one.
-        self._few_blocks = len(labels) < 3
         if pool is None:
-            moments, folds, start = self._forward_pass(source, order, block_of, len(labels),
-                                                       first)
+            moments, folds, start, split = self._forward_pass(source, order, block_of,
+                                                              len(labels), first)
         else:
             moments = self._new_moments(len(labels), block_scatter=True)
             for part in _pooled(pool, _block_moments, self, source,
@@ -1130,9 +1127,8 @@ class PatchPPCA(DensityModel):
                 start = next_start(start, fold.W_)
                 jobs += [(fold, piece) for piece in _pieces(order, blocks, labels[k:k + 1], pool)]
             folds = list(_pooled(pool, _held_maps, None, source, jobs))
-            self._last_split = ((moments.sums(len(labels) - 1, HELDOUT_EVERY)
-                                 if len(labels) > 1 else None),
-                                moments.sums(every=HELDOUT_EVERY))
+            split = ((moments.sums(len(labels) - 1, HELDOUT_EVERY) if len(labels) > 1
+                      else None), moments.sums(every=HELDOUT_EVERY))
         if moments.count.sum() < 2:
             raise ValueError("need at least two decodable frames to fit")
         self.n_frames_ = int(moments.count.sum())
@@ -1140,28 +1136,24 @@ class PatchPPCA(DensityModel):
         held_maps = [m for fold in folds for _, m in fold]
         held = (HeldOut(np.concatenate(held_idx), np.concatenate(held_maps)) if held_maps else
                 HeldOut(np.zeros(0, int), np.zeros((0,) + self.map_shape_, np.float32)))
-        if beside is None:
-            self._fit_final(moments, start)
-        else:  # beside's jobs take the threads first, the fit's chunks queue after them
-            with ThreadPoolExecutor(2) as shared:
-                jobs = [shared.submit(job, held)
-                        for job in ([beside] if callable(beside) else beside)]
-                self._fit_final(moments, start, shared)
-                for job in jobs:
-                    job.result()
+        # The final model: beside's jobs take the threads first, the fit's chunks queue
+        # after them (without beside, the fit's chunks run in two threads of their own).
+        with nullcontext() if beside is None else ThreadPoolExecutor(2) as shared:
+            jobs = [shared.submit(job, held)
+                    for job in ([] if beside is None else [beside] if callable(beside)
+                                else beside)]
+            # With fewer than three time blocks a fold model has no earlier block to choose
+            # its latent size with (the folds' sizes come from "variance"): the final one's
+            # does too, so the calibration maps come from models chosen by the same rule.
+            q = 0 if len(labels) < 3 else self._heldout_q(*split, pool=shared)
+            # (the sums are dropped before the final fit forms its covariances: each
+            # scatter is as large as a covariance of every HELDOUT_EVERY-th location)
+            del split
+            self._set(*self._fit_moments(moments, q, start, pool=shared,
+                                         consume=True))  # (moments' last use)
+            for job in jobs:
+                job.result()
         return held
-
-    def _fit_final(self, moments: Moments, start: np.ndarray | None, pool=None) -> None:
-        """The model of all the frames counted in ``moments`` (after :meth:`fit`'s pass),
-        its eigensolver started from ``start`` (the last fold's, :func:`next_start`);
-        ``pool``: threads to fit in (:func:`in_chunks`)."""
-        q = self._heldout_q(*self._last_split, pool=pool)
-        # (the sums are dropped before the final fit forms its covariances: kept on the
-        # model, not handed on like ``start``, so that no caller's frame holds them then;
-        # each scatter is as large as a covariance of every HELDOUT_EVERY-th location)
-        del self._last_split, self._few_blocks
-        self._set(*self._fit_moments(moments, q, start, pool=pool,
-                                     consume=True))  # (moments' last use)
 
     def first_reads(self, blocks: np.ndarray) -> tuple[np.ndarray, int]:
         """The positions :meth:`fit` without a pool reads its frames in (``source.batches``:
@@ -1171,11 +1163,14 @@ class PatchPPCA(DensityModel):
         return np.argsort(block_of, kind="stable"), self.batch_size
 
     def _forward_pass(self, source: FrameSource, order: np.ndarray, block_of: np.ndarray,
-                      n_blocks: int, first: int) -> tuple[Moments, list, np.ndarray | None]:
+                      n_blocks: int, first: int
+                      ) -> tuple[Moments, list, np.ndarray | None, tuple]:
         """One pass in time order: score each block from ``first`` on with the model of the
-        moments so far, then add it. Returns the moments, ``[[(positions, raw maps)], ...]``
-        and the start of the final model's eigensolver (:func:`next_start` of the folds'
-        ``W``; None when no fold was fitted)."""
+        moments so far, then add it. Returns the moments, ``[[(positions, raw maps)], ...]``,
+        the start of the final model's eigensolver (:func:`next_start` of the folds'
+        ``W``; None when no fold was fitted) and the sums the final model's latent size is
+        chosen from (:meth:`_heldout_q`'s ``earlier`` and ``now``: without the last block,
+        with it; None each when the latent size is not chosen that way)."""
         moments = self._new_moments(n_blocks)
         start = None  # each fold's W starts the eigensolver of the next (next_start)
         held: list[tuple[np.ndarray, np.ndarray]] = []
@@ -1203,9 +1198,8 @@ class PatchPPCA(DensityModel):
                     self._add(moments, int(b), part, entries)
                 else:
                     self._add(moments, int(b), part)
-        self._last_split = (earlier, moments.sums(every=HELDOUT_EVERY)
-                            if self._wants_sums() else None)
-        return moments, [held], start
+        split = (earlier, moments.sums(every=HELDOUT_EVERY) if self._wants_sums() else None)
+        return moments, [held], start, split
 
     def _new_moments(self, n_blocks: int, block_scatter: bool = False) -> Moments:
         """Empty moments of this model's locations, kept per block of the frame when its
@@ -1320,8 +1314,7 @@ class PatchPPCA(DensityModel):
         small (the explained-variance rule then decides). ``earlier``'s scatter is used up
         (the earlier covariance is made in its place); ``now`` is not changed. ``pool``: as
         :func:`batched_eigh`'s."""
-        if (self.latent or self.latent_rule != "heldout" or earlier is None
-                or getattr(self, "_few_blocks", False)):
+        if self.latent or self.latent_rule != "heldout" or earlier is None:
             return 0
         n_a, s_a, S_a = earlier
         n_t, s_t, S_t = now
