@@ -78,6 +78,24 @@ class ModelSettings:
     #: colour noise (PPCA only).
     chroma_noise: str = "shared"
 
+    @staticmethod
+    def check(m: "ModelSettings", where: str) -> None:
+        from inspector.core.models import MODEL_NAMES
+
+        if m.model not in MODEL_NAMES:
+            raise UsageError(f"{where} model = {m.model!r}: choose one of "
+                             f"{', '.join(MODEL_NAMES)}")
+        if m.latent_rule not in ("variance", "heldout"):
+            raise UsageError(f"{where} latent_rule = {m.latent_rule!r}: choose variance or "
+                             "heldout")
+        if m.chroma_noise not in ("shared", "own"):
+            raise UsageError(f"{where} chroma_noise = {m.chroma_noise!r}: choose shared or own")
+        if m.patch % 2 or m.stride % 2 or m.patch % m.stride:
+            raise UsageError(
+                f"{where} patch = {m.patch}, stride = {m.stride}: both must be even and the "
+                "stride must divide the patch"
+            )
+
 
 @dataclass(frozen=True)
 class CalibrationSettings:
@@ -141,6 +159,20 @@ class ConditionSettings:
     covered_share: float = 0.5
     focus_ratio: float = 0.35
     frozen_difference: float = 0.25
+
+    @staticmethod
+    def check(c: "ConditionSettings", where: str) -> None:
+        from inspector.core.conditions import LIGHTING_MODES
+
+        if c.lighting not in LIGHTING_MODES:
+            raise UsageError(f"{where} lighting = {c.lighting!r}: choose one of "
+                             f"{', '.join(LIGHTING_MODES)}")
+        for box in c.text_boxes:
+            ok = (isinstance(box, (list, tuple)) and len(box) == 4
+                  and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in box))
+            if not ok or box[2] <= box[0] or box[3] <= box[1]:
+                raise UsageError(f"{where} text_boxes: each box must be [x0, y0, x1, y1] with "
+                                 f"x1 > x0 and y1 > y0, got {box!r}")
 
 
 @dataclass(frozen=True)
@@ -223,6 +255,10 @@ class ClusterSettings:
             raise UsageError(f"{where} connect_timeout must be more than 0")
 
 
+#: ``[persistence] mode``'s choices.
+PERSISTENCE_MODES = ("auto", "on", "off")
+
+
 @dataclass(frozen=True)
 class PersistenceSettings:
     """Busy cameras: flag what stays, not what passes (see :mod:`inspector.core.persistence`)."""
@@ -238,9 +274,6 @@ class PersistenceSettings:
         if s.mode not in PERSISTENCE_MODES:
             raise UsageError(f"{where} persistence mode {s.mode!r}: choose one of "
                              f"{', '.join(PERSISTENCE_MODES)}")
-
-
-PERSISTENCE_MODES = ("auto", "on", "off")
 
 
 @dataclass(frozen=True)
@@ -435,43 +468,10 @@ def _build(cls: type, table: Any, where: str, base: Any = None, source: str = ""
             raise UsageError(f"{prefix}{where} {key} = {value!r} is outside [{lo_hi[0]}, {lo_hi[1]}]")
         values[key] = value
     built = replace(base, **values)
-    check = getattr(built, "check", None) or _CHECKS.get(cls)
+    check = getattr(built, "check", None)  # a section's own rules beyond types and ranges
     if check:
         check(built, f"{prefix}{where}")
     return built
-
-
-def _check_model(m: ModelSettings, where: str) -> None:
-    from inspector.core.models import MODEL_NAMES
-
-    if m.model not in MODEL_NAMES:
-        raise UsageError(f"{where} model = {m.model!r}: choose one of {', '.join(MODEL_NAMES)}")
-    if m.latent_rule not in ("variance", "heldout"):
-        raise UsageError(f"{where} latent_rule = {m.latent_rule!r}: choose variance or heldout")
-    if m.chroma_noise not in ("shared", "own"):
-        raise UsageError(f"{where} chroma_noise = {m.chroma_noise!r}: choose shared or own")
-    if m.patch % 2 or m.stride % 2 or m.patch % m.stride:
-        raise UsageError(
-            f"{where} patch = {m.patch}, stride = {m.stride}: both must be even and the "
-            "stride must divide the patch"
-        )
-
-
-def _check_conditions(c: ConditionSettings, where: str) -> None:
-    from inspector.core.conditions import LIGHTING_MODES
-
-    if c.lighting not in LIGHTING_MODES:
-        raise UsageError(f"{where} lighting = {c.lighting!r}: choose one of "
-                         f"{', '.join(LIGHTING_MODES)}")
-    for box in c.text_boxes:
-        ok = (isinstance(box, (list, tuple)) and len(box) == 4
-              and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in box))
-        if not ok or box[2] <= box[0] or box[3] <= box[1]:
-            raise UsageError(f"{where} text_boxes: each box must be [x0, y0, x1, y1] with "
-                             f"x1 > x0 and y1 > y0, got {box!r}")
-
-
-_CHECKS = {ModelSettings: _check_model, ConditionSettings: _check_conditions}
 
 
 def _polygons(value: Any, where: str) -> tuple:
