@@ -491,6 +491,20 @@ def _stamp(img: np.ndarray, t: datetime, camera: str) -> None:
                 cv2.LINE_AA)
 
 
+def _shifted(out: np.ndarray, mask: np.ndarray | None, dx: float, dy: float
+             ) -> tuple[np.ndarray, np.ndarray | None]:
+    """A frame (H, W, 3) float32 and its incident's mask (H, W) bool, if any, moved by
+    ``dx``, ``dy`` pixels (the frame's edges reflected)."""
+    H, W = out.shape[:2]
+    shift = np.float32([[1, 0, dx], [0, 1, dy]])
+    out = cv2.warpAffine(out, shift, (W, H), flags=cv2.INTER_LINEAR,
+                         borderMode=cv2.BORDER_REFLECT_101)
+    if mask is not None:
+        mask = cv2.warpAffine(mask.astype(np.uint8), shift, (W, H),
+                              flags=cv2.INTER_NEAREST) > 0
+    return out, mask
+
+
 def _render(job: _Job, scene: Scene, bank: list[np.ndarray], jitter_px: float) -> None:
     """Render one frame (and its mask, for an incident) and write it."""
     rng = np.random.default_rng(list(job.seed))
@@ -505,20 +519,9 @@ def _render(job: _Job, scene: Scene, bank: list[np.ndarray], jitter_px: float) -
     traffic.draw_movers(scene, out, job.movers, cond)
     H, W = out.shape[:2]
     if jitter_px > 0:
-        dx, dy = rng.normal(0.0, jitter_px, 2)
-        shift = np.float32([[1, 0, dx], [0, 1, dy]])
-        out = cv2.warpAffine(out, shift, (W, H), flags=cv2.INTER_LINEAR,
-                             borderMode=cv2.BORDER_REFLECT_101)
-        if mask is not None:
-            mask = cv2.warpAffine(mask.astype(np.uint8), shift, (W, H),
-                                  flags=cv2.INTER_NEAREST) > 0
+        out, mask = _shifted(out, mask, *rng.normal(0.0, jitter_px, 2))
     if job.moved != (0.0, 0.0):
-        shift = np.float32([[1, 0, job.moved[0]], [0, 1, job.moved[1]]])
-        out = cv2.warpAffine(out, shift, (W, H), flags=cv2.INTER_LINEAR,
-                             borderMode=cv2.BORDER_REFLECT_101)
-        if mask is not None:
-            mask = cv2.warpAffine(mask.astype(np.uint8), shift, (W, H),
-                                  flags=cv2.INTER_NEAREST) > 0
+        out, mask = _shifted(out, mask, *job.moved)
     if job.fault == "out of focus":
         out = cv2.GaussianBlur(out, (0, 0), 0.008 * W)
     if job.fault == "lens covered":                   # a hand or a bag: dark, soft, most of it

@@ -86,6 +86,19 @@ def coverage(h: int, w: int, polys, offset=(0.0, 0.0), blur: float = 0.0) -> np.
     return cover
 
 
+def _covered(img: np.ndarray, polys, blur: float
+             ) -> tuple[tuple[int, int, int, int], np.ndarray] | None:
+    """The box (y0, y1, x0, x1) of ``img`` that polygons softened by ``blur`` pixels reach,
+    and their :func:`coverage` of it, (y1 - y0, x1 - x0) float32; None when they fall
+    outside the image."""
+    height, width = img.shape[:2]
+    points = np.concatenate([np.asarray(p, np.float64).reshape(-1, 2) for p in polys])
+    y0, y1, x0, x1 = bbox(points, 3 * blur + 2, width, height)
+    if y0 >= y1 or x0 >= x1:
+        return None
+    return (y0, y1, x0, x1), coverage(y1 - y0, x1 - x0, polys, (x0, y0), blur)
+
+
 def paint(img: np.ndarray, polys, colour, shade: np.ndarray | None = None,
            opacity: float = 1.0, blur: float = 0.0) -> None:
     """Composite a colour into ``img`` inside polygons, in place.
@@ -105,12 +118,11 @@ def paint(img: np.ndarray, polys, colour, shade: np.ndarray | None = None,
     blur : float, optional
         Gaussian softening of the edge, in pixels.
     """
-    height, width = img.shape[:2]
-    points = np.concatenate([np.asarray(p, np.float64).reshape(-1, 2) for p in polys])
-    y0, y1, x0, x1 = bbox(points, 3 * blur + 2, width, height)
-    if y0 >= y1 or x0 >= x1:
+    found = _covered(img, polys, blur)
+    if found is None:
         return
-    alpha = coverage(y1 - y0, x1 - x0, polys, (x0, y0), blur) * np.float32(opacity)
+    (y0, y1, x0, x1), alpha = found
+    alpha *= np.float32(opacity)
     if isinstance(colour, np.ndarray) and colour.ndim == 3:
         col = colour[y0:y1, x0:x1]
     else:
@@ -123,12 +135,10 @@ def paint(img: np.ndarray, polys, colour, shade: np.ndarray | None = None,
 
 def darken(img: np.ndarray, polys, factor: float, blur: float = 0.0) -> None:
     """Multiply ``img`` by ``factor`` inside polygons (soft-edged), in place."""
-    height, width = img.shape[:2]
-    points = np.concatenate([np.asarray(p, np.float64).reshape(-1, 2) for p in polys])
-    y0, y1, x0, x1 = bbox(points, 3 * blur + 2, width, height)
-    if y0 >= y1 or x0 >= x1:
+    found = _covered(img, polys, blur)
+    if found is None:
         return
-    alpha = coverage(y1 - y0, x1 - x0, polys, (x0, y0), blur)
+    (y0, y1, x0, x1), alpha = found
     img[y0:y1, x0:x1] *= (1.0 - (1.0 - factor) * alpha)[..., None]
 
 
