@@ -545,3 +545,31 @@ def test_fit_chunk_by_chunk_equals_scikit_learn_and_the_whole_fit():
     np.testing.assert_allclose(np.einsum("lik,ljk->lij", W1, W1),
                                np.einsum("lik,ljk->lij", W2, W2), rtol=1e-5, atol=1e-8)
     np.testing.assert_allclose(s1, s2, rtol=1e-6)  # (the whole fit's are float32)
+
+
+@pytest.mark.parametrize("kind", ["random", "cluster", "rank", "masked"])
+def test_top_pairs_without_pythons_lock_equal_scipys_dsyevr_to_the_bit(kind):
+    # TopPairs calls LAPACK's dsyevr through SciPy's Cython interface with ctypes (which
+    # lets go of Python's lock): the same routine, arguments and workspace as SciPy's
+    # wrapper scipy.linalg.lapack.dsyevr, so the same numbers to the bit, float32 or
+    # float64 matrices, with and without vectors, one instance reused.
+    from scipy.linalg import lapack
+
+    from inspector.core.models.ppca import ABSTOL, TopPairs
+
+    cov, _ = _patch_like(kind, L=4, seed=3)
+    d = cov.shape[-1]
+    for keep in (1, 3, 6, d):
+        for vectors in (True, False):
+            pairs = TopPairs(d, keep, vectors)
+            for matrix in list(cov) + [cov[0].astype(np.float32)]:
+                w, v, m, _, info = lapack.dsyevr(np.asarray(matrix, np.float64),
+                                                 compute_v=vectors, range="I",
+                                                 il=d - keep + 1, iu=d, abstol=ABSTOL)
+                got_w, got_v = pairs(matrix)
+                assert info == 0 and m == keep
+                np.testing.assert_array_equal(got_w, w[:keep])
+                if vectors:
+                    np.testing.assert_array_equal(got_v, v[:, :keep])
+                else:
+                    assert got_v is None
