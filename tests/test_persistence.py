@@ -25,6 +25,7 @@ from inspector.core.persistence import (
     _median_along,
     _own,
     _second_smallest,
+    _unusual,
     _sorted_along,
     calibrate_persistence,
     cell_brightness,
@@ -1014,6 +1015,61 @@ def test_the_picture_reads_a_thing_settled_in_the_dark():
                           old.maps)
     new = persistence(maps, times, 4, 10.0, settle_look=True, **opts)
     assert np.all(new.maps >= old.maps) and (new.maps > old.maps).any()
+
+
+def test_a_thing_taken_away_in_the_dark_is_not_a_thing_settled():
+    # Night (looks and brightness scattering by 0.03, ``change`` 0.05): a spill 0.3 darker
+    # at 2 x 2 cells, read far below the floor around it (-30), is taken away at frame 12;
+    # the floor it leaves reads 3 above the view. Its looks went back to the camera's normal
+    # look (0, reached 0.1 by normal windows) and agree within the night's noise: as built in
+    # 0.13, without the normal look, the two dark-stretch rules took the floor for a thing
+    # settled and flagged it against the spill's frames before (yard 227 of the busy bench).
+    # With the normal look they count only cells unlike normal (_unusual: the second
+    # smallest |look - normal| over the window (numpy.sort), largest over the 3 x 3 cells
+    # (scipy.ndimage.maximum_filter), less the reach), so nothing is flagged. A spill set
+    # down at frame 12 (read 5 above the floor) is flagged from its 4th frame by the rules
+    # alone, with the normal look as without it.
+    from scipy.ndimage import maximum_filter
+
+    n, h, w = 24, 6, 14
+    cells = (slice(None), slice(2, 4), slice(1, 3))
+    normal = np.stack([np.zeros((h, w)), np.full((h, w), 0.1),
+                       np.zeros((h, w))]).astype(np.float32)
+    times = np.arange(n) * 2.0
+    rules = dict(settle_noise=True, settle_look=True)
+
+    def scene(away: bool):
+        rng = np.random.default_rng(2)
+        maps = rng.normal(0.0, 3.0, (n, h, w)).astype(np.float32)
+        looks = rng.normal(0.0, 0.03, maps.shape).astype(np.float32)
+        bright = rng.normal(0.0, 0.03, maps.shape).astype(np.float32)
+        there = slice(0, 12) if away else slice(12, n)
+        for arr in (looks, bright):
+            arr[there][cells] -= 0.3
+        if away:
+            maps[:12][cells] -= 30.0
+            maps[12:][cells] += 3.0
+        else:
+            maps[12:][cells] += 5.0
+        return maps, dict(threshold=1.0, past=8, start_threshold=60.0, robust="change",
+                          min_past=3, around=3, looks=looks, change=0.05, brightness=bright)
+
+    def flagged(run):
+        return np.flatnonzero(run.filled & run.stepped & (run.scores > 1.0)).tolist()
+
+    maps, opts = scene(away=True)
+    assert flagged(persistence(maps, times, 4, 10.0, **opts)) == []
+    assert len(flagged(persistence(maps, times, 4, 10.0, **rules, **opts))) >= 5
+    assert flagged(persistence(maps, times, 4, 10.0, normal=normal, **rules, **opts)) == []
+    win = list(opts["looks"][12:16])
+    want = maximum_filter(np.sort(np.abs(np.array(win)), axis=0)[1], size=3,
+                          mode="nearest") - 0.1
+    np.testing.assert_allclose(_unusual(win, normal, 3), want, atol=1e-6)
+    maps, opts = scene(away=False)
+    assert flagged(persistence(maps, times, 4, 10.0, normal=normal, **opts)) == []
+    found = flagged(persistence(maps, times, 4, 10.0, normal=normal, **rules, **opts))
+    assert found == flagged(persistence(maps, times, 4, 10.0, **rules, **opts))
+    assert found[:3] == [15, 16, 17]
 
 
 def test_in_two_parts_equal_the_whole_run():

@@ -135,11 +135,12 @@ GAP_FACTOR = 10.0
 #: (:meth:`Persistence.lone`).
 LARGE = 10.0
 #: Whether new baselines take the two dark-stretch rules (``settle_noise``, ``settle_look`` of
-#: :func:`persistence`). Off: on unseen bench scenes they added traffic-only flags (yard 227:
-#: 0 -> 9 of 120 in one night stretch, above the 3 % a busy camera is held to; gate 203 0 -> 3)
-#: for one object more (gate 228), though 112 development scenes showed no added flag. The
-#: rules stay for baselines that carry them and for the rework they need.
-NIGHT_RULES = False
+#: :func:`persistence`). Built in 0.13, they were off there: on unseen bench scenes they
+#: flagged what the picture going back to normal shows in the dark (yard 227: 0 -> 9 of 120
+#: traffic-only frames, the floor after a spill was taken away; gate 203: 0 -> 3, the view
+#: turning dark within a burst). They now count only cells that look unlike the camera's
+#: normal frames (:func:`_unusual`), and are on again.
+NIGHT_RULES = True
 #: A camera whose normal frames clearly hold large short-lived anomalies more often than this
 #: is busy: its single-frame threshold is then set by what passes (see
 #: :func:`calibrate_persistence`).
@@ -406,8 +407,18 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
     settle_noise : bool
         With ``brightness``, a settled thing's looks agree within the window's own look
         noise where that is above ``change`` (a dark stretch; see :func:`_settled`), not
-        within ``change`` alone. This adds flags: the thresholds must be calibrated with it
-        (:func:`calibrate_persistence` does); False for baselines learnt before it.
+        within ``change`` alone. With ``normal``, only at cells whose window looks unlike
+        the camera's normal frames (:func:`_unusual` above ``change``, as the first windows
+        of a run are asked, ``normal`` above): a thing set down makes its cells unlike
+        normal, while a thing taken away gives them back the look they normally have, and
+        in a dark stretch, where a floor's looks scatter as widely as a thing's, the
+        picture going back to normal settles as well as a thing set down does (yard 227 of
+        the busy bench: a spill taken away at night, the floor it left read 15.9 against a
+        threshold of 1.4, measured from the spill's frames before); so does a change of
+        light to one the normal frames know (gate 203: the view turning dark within a
+        burst). This adds flags (the gate takes some of them away again):
+        the thresholds must be calibrated with it (:func:`calibrate_persistence` does);
+        False for baselines learnt before it.
     settle_look : bool
         With ``brightness``, in a dark, noisy stretch (where ``robust`` "change" counts a
         step against the view's changes, :func:`_lift`, and the window's own look noise is
@@ -416,8 +427,9 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         reads of it (:func:`_look_reading`: how far its look departed beyond its own
         scatter, in units of the window's look noise), where that is larger: in the dark
         the model can read a thing the picture shows settled no higher than the floor's
-        noise. This adds flags: the thresholds must be calibrated with it
-        (:func:`calibrate_persistence` does); False for baselines learnt before it.
+        noise. With ``normal``, only at cells unlike normal, as ``settle_noise``. This adds
+        flags: the thresholds must be calibrated with it (:func:`calibrate_persistence`
+        does); False for baselines learnt before it.
 
     Returns
     -------
@@ -480,9 +492,13 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         a late one."""
         seen = _changed(looks, window, held_look, min_past, around) if gate else None
         moved = _own_change(looks, window, bright, change, held_bright) if settle else None
+        unlike = (_unusual(looks[-window:], normal, around, bright)
+                  if settle and (settle_noise or settle_look) and len(looks) > window
+                  and _look_noise_of(looks[-window:], change) > change else None)
+        unlike = None if unlike is None else unlike > change  # (see settle_noise)
         fixed = (_settled(looks, window, held_look, change, around, bright,
                           None if seen is None else seen[1], held_bright, moved,
-                          settle_noise)
+                          settle_noise, unlike)
                  if settle else None)
         fixed, bright_ref = (None, None) if fixed is None else fixed
         own = (_own(looks, window, held_look, bright, held_bright, around,
@@ -503,8 +519,8 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
             found = _usual(found, looks[-window:], normal, change, around, bright)
         lift = (_lift(frames, window, scale, min_past, None if moved is None else moved[0])
                 if changes and stepped else None)
-        look = (_look_reading(looks, window, seen[1], fixed & (raw > 0), change, own,
-                              footprint)
+        look = (_look_reading(looks, window, seen[1], fixed & (raw > 0) if unlike is None
+                              else fixed & (raw > 0) & unlike, change, own, footprint)
                 if settle_look and fixed is not None and seen is not None and stepped
                 and lift is not None else None)
         if threshold is not None:  # (else opened after the loop, all frames at once)
@@ -904,7 +920,8 @@ def _kept_brightness(looks: list, bright: dict, shape: tuple) -> np.ndarray | No
 def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
              around: int, bright: dict, reference: np.ndarray | None = None,
              held_bright: np.ndarray | None = None, moved: tuple | None = None,
-             noise: bool = False) -> tuple[np.ndarray, np.ndarray] | None:
+             noise: bool = False, unlike: np.ndarray | None = None
+             ) -> tuple[np.ndarray, np.ndarray] | None:
     """Cells where a thing has settled in the window: the picture changed there from the
     frames before it, in the frame judged too, and stays the same from frame to frame
     (see ``brightness`` of :func:`persistence`), bool (h, w); None with no frame before the
@@ -921,8 +938,9 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     ``change``, likewise; and (3) the looks of all the window's frames but one (the newest
     kept) agree within ``change`` (with ``noise``: or within the window's own look noise
     where that is larger, :func:`_look_noise_of`: in a dark stretch the gain amplifies every
-    look's noise, and one thing's looks scatter by it as a floor's do), at every one of the
-    ``around``
+    look's noise, and one thing's looks scatter by it as a floor's do; with ``unlike``, bool
+    (h, w), only at its cells: see ``settle_noise`` of :func:`persistence`), at every one of
+    the ``around``
     cells around it; and that brightness reference, (h, w) float32 (what a cell held from
     this frame keeps). (2) is there
     because a look
@@ -942,7 +960,11 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     own = _departs(win, reference, change)
     agree = _agreement(win)
     tolerance = _look_noise_of(win, change) if noise else change
-    return own & moved & (flat_filter(agree, around, np.maximum) <= tolerance), before_raw
+    agree = flat_filter(agree, around, np.maximum)
+    steady = agree <= tolerance
+    if unlike is not None and tolerance > change:
+        steady = (agree <= change) | (steady & unlike)
+    return own & moved & steady, before_raw
 
 
 def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
@@ -1060,7 +1082,8 @@ def _look_reading(looks: list, window: int, reference: np.ndarray, settled: np.n
     above ``change``, no cell is in ``settled``, or the window has fewer than 3 frames.
 
     Per cell in ``settled`` (where :func:`_settled` found a thing settled and the model
-    reads the window above its reference, see ``settle_look`` of :func:`persistence`) whose
+    reads the window above its reference, and the window looks unlike normal, see
+    ``settle_look`` of :func:`persistence`) whose
     change is its own (``own`` > ``change``, :func:`_own`): the second smallest over the
     window's frames of the absolute difference of its look from ``reference`` (one frame
     set aside, as :func:`_changed`), less its looks' range over the window without one of
@@ -1146,14 +1169,28 @@ def _usual(level: np.ndarray, looks: list, normal: np.ndarray | None, change: fl
     brightness ``normal[2]`` and the frames' brightness (``bright``, by look: see
     :func:`_by_look`), where that departure is the cells' own by more than ``change``
     (:func:`_own_from` the normal look and brightness), else at most 0 (see
-    ``normal`` of :func:`persistence`); ``level`` itself without a normal look or a look."""
-    if normal is None or any(v is None for v in looks) or normal.shape[1:] != level.shape:
-        return level
+    ``normal`` of :func:`persistence`; :func:`_unusual`); ``level`` itself without a normal
+    look or a look."""
+    found = _unusual(looks, normal, around, bright)
+    return level if found is None or found.shape != level.shape else _gated(level, found, change)
+
+
+def _unusual(looks: list, normal: np.ndarray | None, around: int, bright: dict | None = None
+             ) -> np.ndarray | None:
+    """Per cell, how far a window's ``looks`` (oldest first, each (h, w)) are unlike the
+    camera's normal frames: their :func:`_departure` from the normal look ``normal[0]`` less
+    the farthest any held-out normal window went there (``normal[1]``), and, with the normal
+    brightness ``normal[2]`` and the frames' brightness (``bright``, by look: see
+    :func:`_by_look`), at most by how much that departure is the cells' own
+    (:func:`_own_from`), shape (h, w) float32 (above ``change``: unlike normal); None
+    without a normal look of that shape or with a look missing."""
+    if normal is None or any(v is None for v in looks) or normal.shape[1:] != looks[-1].shape:
+        return None
     found = _departure(looks, normal[0], around) - normal[1]
     raw = _brightness_of(looks, bright) if bright and len(normal) > 2 else None
     if raw:
         found = np.minimum(found, _own_from(looks, raw, normal[0], normal[2], around))
-    return _gated(level, found, change)
+    return found
 
 
 def normal_look(looks: np.ndarray, times: np.ndarray, window: int, max_gap: float,
@@ -1819,12 +1856,16 @@ class Persistence:
         before it, or without looks.
     settle_noise : bool
         A settled thing's looks agree within the window's own look noise where that is
-        above ``change`` (``settle_noise`` of :func:`persistence`); False for baselines
-        learnt before it, whose thresholds were calibrated without it.
+        above ``change``, at cells that look unlike the normal frames (``settle_noise`` of
+        :func:`persistence`); False for baselines learnt before it, whose thresholds were
+        calibrated without it. (0.13's baselines that carry it, calibrated without the
+        normal-look condition, run with it: it only takes flags away.)
     settle_look : bool
         In a dark stretch a settled thing the model reads above its reference also counts
-        by what the picture reads of it (``settle_look`` of :func:`persistence`); False for
-        baselines learnt before it, whose thresholds were calibrated without it.
+        by what the picture reads of it, at cells that look unlike the normal frames
+        (``settle_look`` of :func:`persistence`); False for baselines learnt before it,
+        whose thresholds were calibrated without it (0.13's that carry it: as
+        ``settle_noise``).
     """
 
     window: int
@@ -2049,6 +2090,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     settle = brightness is not None
     robust = "change" if settle else "window"  # (a cell's own brightness: see _lift)
     crossed = "brightness" if settle else True  # (see seen_through)
+    night = NIGHT_RULES and settle  # (settle_noise, settle_look: they need the brightness)
     opts = dict(robust=robust, around=AROUND, local=local, footprint=footprint,
                 made_local=True, min_past=MIN_PAST)
     change = (LARGE * look_noise(looks, s_times, max_gap, s_blocks) if looks is not None
@@ -2059,8 +2101,8 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
               if looks is not None else None)
     # (in two threads, whole blocks each: the same numbers, see _in_two)
     step = _in_two(s_maps, s_times, window, max_gap, s_blocks, looks, brightness, past=past,
-                   change=change, crossed=crossed, settle_noise=NIGHT_RULES,
-                   settle_look=NIGHT_RULES, **opts)
+                   change=change, crossed=crossed, settle_noise=night, settle_look=night,
+                   **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
                          f"{max_gap:.0f} s of each other")
@@ -2080,13 +2122,13 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
                            starts, share, busy, 0, robust, around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
                            change=change, shown=True, normal=normal, crossed=crossed,
-                           settle=settle, settle_noise=NIGHT_RULES, settle_look=NIGHT_RULES)
+                           settle=settle, settle_noise=night, settle_look=night)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, robust,
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
                        floor, local, footprint, MIN_PAST, change, True, normal, crossed,
-                       settle, NIGHT_RULES, NIGHT_RULES)
+                       settle, night, night)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

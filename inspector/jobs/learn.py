@@ -921,11 +921,12 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
         clauses.append(f"a change counts where the picture changed (log brightness by more "
                        f"than {p.change:.3f}{around}){crossed}")
     if p.settle:
-        noise = (", within the frames' own noise when they are dark" if p.settle_noise
-                 else "")
+        noise = (", within the frames' own noise when they are dark and it looks unlike "
+                 "the normal frames" if p.settle_noise else "")
         look = (" (in a dark, noisy stretch, where the model reads it above the frames "
-                "before, also how far its look departed beyond its own scatter, in units of "
-                "the frames' look noise, calibrated with it)" if p.settle_look else "")
+                "before and it looks unlike the normal frames, also how far its look "
+                "departed beyond its own scatter, in units of the frames' look noise, "
+                "calibrated with it)" if p.settle_look else "")
         clauses.append(f"where the picture shows a thing settled (its look and brightness "
                        f"changed, then stayed{noise}), its lowest reading of the window "
                        f"counts{look}")
