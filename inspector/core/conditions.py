@@ -210,8 +210,8 @@ def smooth_chroma(image: np.ndarray, sigma: float = CHROMA_SIGMA,
 
 
 def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
-                expected: np.ndarray | None, seen: np.ndarray | None = None
-                ) -> np.ndarray | None:
+                expected: np.ndarray | None, seen: np.ndarray | None = None,
+                seen_rgb: np.ndarray | None = None) -> np.ndarray | None:
     """Pixels whose light each colour channel's brightness field may compare: (H, W) bool
     when the same for every channel, (H, W, 3) bool channel by channel, None for all.
 
@@ -238,6 +238,9 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
         Channels the reference says this frame's exposure saturates (255, else 0).
     seen : ndarray, shape (H, W), bool, or None
         Pixels that may count (None: all).
+    seen_rgb : ndarray, shape (H, W * 3), uint8, optional
+        :func:`_seen_rgb` of ``seen``, when made before (the same for every frame of a
+        camera without channels clipped black).
     """
     if expected is None:
         keep = None if near is None else near == 0
@@ -253,8 +256,7 @@ def _field_keep(near: np.ndarray | None, channels: np.ndarray | None,
         keep = cv2.bitwise_and(keep, cv2.bitwise_not(clipped))
         keep = cv2.bitwise_and(keep, cv2.cvtColor(use, cv2.COLOR_GRAY2RGB).reshape(h, -1))
     if seen is not None:
-        keep = cv2.bitwise_and(keep, cv2.cvtColor(seen.view(np.uint8) * np.uint8(255),
-                                                  cv2.COLOR_GRAY2RGB).reshape(h, -1))
+        keep = cv2.bitwise_and(keep, _seen_rgb(seen) if seen_rgb is None else seen_rgb)
     return cv2.bitwise_and(keep, 1).reshape(h, w, 3).view(bool)
 
 
@@ -275,6 +277,13 @@ def _health_terms(ignore: np.ndarray | None, cells: np.ndarray | None
     textured = (None if cells is None else
                 cells > max(2.0, 0.1 * float(np.median(cells))))
     return keep, quarter, count, textured
+
+
+def _seen_rgb(seen: np.ndarray) -> np.ndarray:
+    """An (H, W) bool mask in every channel, 255 where set, else 0, as an (H, W * 3) uint8
+    array (for :func:`_field_keep`)."""
+    return cv2.cvtColor(seen.view(np.uint8) * np.uint8(255),
+                        cv2.COLOR_GRAY2RGB).reshape(seen.shape[0], -1)
 
 
 class Conditions(Estimator):
@@ -341,6 +350,8 @@ class Conditions(Estimator):
         self._health = PerReference()
         #: The grey reference's :func:`~inspector.core.image.cell_terms`.
         self._cells = PerReference()
+        #: The pixels not ignored, in every channel (:func:`_seen_rgb`).
+        self._seen = PerReference()
 
     # -- learning ------------------------------------------------------------------------
     def fit(self, images: np.ndarray, ignore: np.ndarray | None = None,
@@ -556,11 +567,15 @@ class Conditions(Estimator):
                     # field per colour channel once the reference's colours are known:
                     # light of another colour over part of the view (floodlights coming on,
                     # low sun beside lamps) changes the channels by different factors
-                    seen = keep
+                    seen, seen_rgb = keep, None
                     if darks[i] is not None:  # a channel clipped black only bounds its light
                         seen = _any_channel(darks[i]) == 0
                         seen = seen if keep is None else seen & keep
-                    kept = _field_keep(near, channels, expected, seen)  # (H, W) without ref_rgb
+                    elif keep is not None:  # the pixels not ignored: the same every frame
+                        seen_rgb = self._seen.get(lambda ignore: _seen_rgb(~ignore),
+                                                  self.ignore_)
+                    kept = _field_keep(near, channels, expected, seen,  # (H, W) without ref_rgb
+                                       seen_rgb)
                     field = (brightness_field(img, ref_rgb, sigma, gain, offset, scale=gain,
                                               keep=kept, added=lost)
                              if ref_rgb is not None else
@@ -864,7 +879,8 @@ class Conditions(Estimator):
         # count over the batch take twice as long)
         clipped = [cv2.compare(x, 250, cv2.CMP_GE) for x in g]
         out = {"dark": percentile_rows(quarter, 99),
-               "bright": np.array([cv2.countNonZero(c if keep is None else c & keep)
+               "bright": np.array([cv2.countNonZero(c if keep is None else
+                                                    cv2.bitwise_and(c, keep))
                                    for c in clipped], np.float64) / count,
                "covered": np.zeros(n), "focus": np.ones(n),
                "frozen": np.full(n, np.inf),
