@@ -180,6 +180,42 @@ def test_batched_iterator_keeps_input_order_and_runs_the_work_per_batch(tmp_path
     np.testing.assert_allclose(got, [30.0 * i for i in range(7) if i != 3])
 
 
+def test_frames_decoded_into_their_batch_are_those_read_one_by_one(tmp_path):
+    """Decoding each frame into its place in the batch's array (no stacking copy) gives the
+    images :func:`read_frame` gives alone, byte for byte, with a broken file and a frame
+    given as already decoded (``known``) among them; photographs bundled with
+    scikit-image, written as JPEG by OpenCV."""
+    from inspector.storage.frames import iter_batches
+
+    files = []
+    for i, photo in enumerate([data.astronaut(), data.coffee(), data.chelsea(),
+                               data.rocket(), data.astronaut()[::-1]]):
+        p = tmp_path / f"cam_20261130_1200{i:02d}.jpg"
+        if i == 2:
+            p.write_bytes(b"\xff\xd8\xff" + b"\0" * 40)  # a broken one
+        else:
+            cv2.imwrite(str(p), cv2.resize(photo, (320, 180))[..., ::-1])
+        files.append(_ff(p))
+    size = (160, 90)
+    alone = {f.path.name: read_frame(f, size=size, **READ).image
+             for i, f in enumerate(files) if i != 2}
+    known = {id(files[3]): read_frame(files[3], size=size, **READ)}
+    batches = list(iter_batches(files, 3, workers=2, size=size, known=known,
+                                work=lambda images: images.copy(), **READ))
+    for b in batches:
+        assert b.stacked is not None and b.images is b.stacked
+        assert [f.image.base is not None and np.shares_memory(f.image, b.stacked)
+                for f in b.frames] == [f.file is not files[3] for f in b.frames]
+        np.testing.assert_array_equal(b.result,
+                                      np.stack([alone[f.file.path.name] for f in b.frames]))
+    assert sum(len(b.frames) for b in batches) == 4 and not known
+    # the same frame read into a given array is that array
+    out = np.empty((90, 160, 3), np.uint8)
+    frame = read_frame(files[0], size=size, out=out, **READ)
+    assert frame.image is out
+    np.testing.assert_array_equal(out, alone[files[0].path.name])
+
+
 def test_learn_counts_each_frame_note_once(tmp_path, small_config):
     # Two of twelve normal frames exported at twice the size (same aspect, resized): the
     # learn warning counts two, though every frame is also in the conditions sample.

@@ -405,7 +405,8 @@ def header_size(data: bytes, max_pixels: int) -> tuple[str, tuple[int, int], int
 
 def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: Iterable[str],
                size: tuple[int, int] | None = None,
-               source_size: tuple[int, int] | None = None) -> Frame:
+               source_size: tuple[int, int] | None = None,
+               out: np.ndarray | None = None) -> Frame:
     """Decode one frame to RGB uint8 at working resolution.
 
     Parameters
@@ -422,6 +423,9 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
         is refused; one of the same aspect but another resolution is resized, with a note.
     source_size : (int, int), optional
         The exported resolution the baseline was learnt from, for that note.
+    out : ndarray, shape (H, W, 3), uint8, C-contiguous, optional
+        Where to put the image when its working size is that shape (e.g. its place in a
+        batch, saving the copy of stacking); ``Frame.image`` is then ``out``.
 
     Returns
     -------
@@ -460,7 +464,10 @@ def read_frame(file: FrameFile, long_side: int, max_pixels: int, time_formats: I
     image = upright(image, orientation)
     if image.shape[1] != size[0] or image.shape[0] != size[1]:
         image = cv2.resize(image, size, interpolation=cv2.INTER_AREA)
-    image = cv2.cvtColor(image, cv2.COLOR_BGR2RGB)
+    if out is not None and out.shape == image.shape:
+        image = cv2.cvtColor(image, cv2.COLOR_BGR2RGB, dst=out)
+    else:
+        image = cv2.cvtColor(image, cv2.COLOR_BGR2RGB)
     when = capture_time(file.path, time_formats, data)
     return Frame(file=file, image=image, time=when, source_size=src, notes=notes)
 
@@ -490,10 +497,15 @@ class FrameBatch:
     frames: list[Frame]
     errors: list[tuple[FrameFile, FrameError]]
     result: object = None
+    #: The images of ``frames`` when they were decoded into one array (:func:`iter_batches`
+    #: with a working ``size``), which :attr:`images` then is.
+    stacked: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def images(self) -> np.ndarray:
         """The decoded frames stacked, shape (n, H, W, 3), uint8."""
+        if self.stacked is not None:
+            return self.stacked
         return np.stack([f.image for f in self.frames])
 
 
@@ -522,17 +534,28 @@ def iter_batches(files: Iterable[FrameFile], batch_size: int, workers: int = 2,
         Frames decoded before with the same ``read_args``, by ``id`` of their file: taken
         from it (removed) instead of decoded again.
     """
+    size = read_args.get("size")
+    # With a working size every frame of a batch has, each is decoded into its place in one
+    # array of the batch: the batch's images with no copy made to stack them.
+    shape = None if size is None else (int(size[1]), int(size[0]), 3)
+
     def one(chunk: list[FrameFile]) -> FrameBatch:
         done = FrameBatch([], [])
+        stack = None if shape is None else np.empty((len(chunk),) + shape, np.uint8)
         for f in chunk:
+            place = None if stack is None else stack[len(done.frames)]
             frame = known.pop(id(f), None) if known else None
-            if frame is not None:
-                done.frames.append(frame)
-                continue
-            try:
-                done.frames.append(read_frame(f, **read_args))
-            except FrameError as exc:
-                done.errors.append((f, exc))
+            if frame is None:
+                try:
+                    frame = read_frame(f, **read_args, out=place)
+                except FrameError as exc:
+                    done.errors.append((f, exc))
+                    continue
+            if place is not None and frame.image is not place:
+                np.copyto(place, frame.image)  # (decoded before, or another size)
+            done.frames.append(frame)
+        if stack is not None and done.frames:
+            done.stacked = stack[:len(done.frames)]
         if work is not None and done.frames:
             done.result = work(done.images)
         return done
