@@ -43,8 +43,10 @@ def test_discovery_by_content_skipping_partials_hidden_and_outside_links(tmp_pat
     cv2.imwrite(str(outside / "x.png"), img)
     (src / "dock" / "link.png").symlink_to(outside / "x.png")
     (src / "dock" / "linkdir").symlink_to(outside)
+    (src / "dock" / "same.jpg").symlink_to(src / "dock" / "a.jpg")  # a link kept inside
+    (src / "yard").symlink_to(src / "dock")  # a camera folder linked to another inside
     files, skips = discover(src)
-    assert [f.rel for f in files] == ["dock/a.jpg", "dock/b"]
+    assert [f.rel for f in files] == ["dock/a.jpg", "dock/b", "dock/same.jpg"]
     reasons = {s.rel: s.reason for s in skips}
     assert reasons["dock/notes.txt"].startswith("not an image")
     assert "outside" in reasons["dock/link.png"]

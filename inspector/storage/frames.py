@@ -144,7 +144,7 @@ def discover(source: Path, camera: str | None = None) -> tuple[list[FrameFile], 
         dirnames[:] = sorted(d for d in dirnames if not is_ignored_name(d)
                              and _inside((here / d).resolve(), root))
         for name in sorted(filenames):
-            found = frame_file(here / name, root, camera)
+            found = frame_file(here / name, root, camera, real)
             if isinstance(found, FrameFile):
                 files.append(found)
             elif found is not None:
@@ -152,7 +152,8 @@ def discover(source: Path, camera: str | None = None) -> tuple[list[FrameFile], 
     return files, skips
 
 
-def frame_file(path: Path, root: Path, camera: str | None = None) -> FrameFile | Skip | None:
+def frame_file(path: Path, root: Path, camera: str | None = None,
+               real_dir: Path | None = None) -> FrameFile | Skip | None:
     """Decide what one file under ``root`` is: a frame file, a skip with its reason, or
     None for names that are ignored (hidden files, downloads still being written).
 
@@ -164,6 +165,11 @@ def frame_file(path: Path, root: Path, camera: str | None = None) -> FrameFile |
         The resolved folder being read.
     camera : str, optional
         As in :func:`discover`.
+    real_dir : Path, optional
+        The resolved folder holding ``path``, known to be inside ``root`` (as
+        :func:`discover` walks): then only a file that is itself a link is resolved to be
+        checked (a path resolved component by component costs more than the rest of
+        the listing of a frame).
     """
     if is_ignored_name(path.name):
         return None
@@ -173,7 +179,7 @@ def frame_file(path: Path, root: Path, camera: str | None = None) -> FrameFile |
     cam = camera if camera is not None else (rel.split("/")[0] if "/" in rel else "")
     if not cam:
         return Skip(rel, "", "not inside a camera folder (expected SOURCE/<camera>/...)")
-    if not _inside(path.resolve(), root):
+    if (real_dir is None or os.path.islink(path)) and not _inside(path.resolve(), root):
         return Skip(rel, cam, "link leads outside the scanned folder")
     try:
         with open(path, "rb") as fh:
