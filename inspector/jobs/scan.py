@@ -38,7 +38,12 @@ from inspector.storage.results import (
 from inspector.storage.store import DamagedBaseline, Store
 
 #: Frames scored together: amortises per-call overhead while a batch's patches still fit in
-#: cache (8 measured fastest of 4, 8, 16 and 32 at the default working resolution).
+#: cache (8 measured fastest of 4, 8, 16 and 32 at the default working resolution). Not 16:
+#: the PPCA's maps make one small matrix product per location and block whatever the
+#: number of frames, so at 16 they cost less a frame (0.54 -> 0.46 ms of CPU, 6 alternated
+#: scans of bench/throughput.py), but OpenBLAS's products of 16 rows differ in their last
+#: bits from those of 8 for some latent sizes, and scores move with them (the demo's
+#: walkway, latent 15: 4 of 330 scores in their 4th decimal).
 BATCH = 8
 
 
