@@ -594,7 +594,11 @@ def heldout_latent(evals: np.ndarray, evecs: np.ndarray, second: np.ndarray, max
         Held-out NLL per sample summed over locations, for q = 1, 2, ...
     """
     L, d = evals.shape
-    proj = (evecs * np.matmul(second, evecs)).sum(axis=1)  # u_j^T S u_j, shape (L, d)
+    proj = np.empty((L, d))  # u_j^T S u_j
+    step = max(1, CHUNK // 4)  # (locations at a time: temporaries of 4.7 MB, not 2 x 32 MB
+    for start in range(0, L, step):  # at 435 x 96 x 96, beside learn's calibration)
+        part = slice(start, start + step)
+        proj[part] = (evecs[part] * np.matmul(second[part], evecs[part])).sum(axis=1)
     w = np.ones(L) if weights is None else np.asarray(weights, np.float64)
     top = int(min(max_latent, d - 1))
     tail_sum = evals.sum(axis=1, keepdims=True) - np.cumsum(evals, axis=1)  # after each j
@@ -1381,21 +1385,25 @@ class PatchPPCA(DensityModel):
         if n_a < 2 or n_b < 1:
             return 0
         m_a = s_a / n_a
-        outer = m_a[:, :, None] * m_a[:, None, :]
         # Second moment of the last block about the earlier mean (both about the shift):
-        # (S_b - s_b m^T - m s_b^T) / n_b + m m^T, in place (few copies of large arrays).
-        second = S_t - S_a
-        cross = (s_t - s_a)[:, :, None] * m_a[:, None, :]
-        second -= cross
-        second -= cross.swapaxes(1, 2)
-        second *= 1.0 / n_b
-        second += outer
-        # the earlier covariance (S_a - n_a m m^T) / (n_a - 1) in S_a's place, n_a m m^T
-        # in cross's
+        # (S_b - s_b m^T - m s_b^T) / n_b + m m^T; the earlier covariance
+        # (S_a - n_a m m^T) / (n_a - 1) in S_a's place. A chunk of locations at a time: the
+        # terms m m^T and s_b m^T stay small (two arrays as large as the scatter fewer, at
+        # the final fit's held-out choice, beside the calibration: learn's peak).
+        second = np.empty_like(S_t)
         cov_a = S_a
-        cov_a -= np.multiply(n_a, outer, out=cross)
-        del cross, outer
-        cov_a *= 1.0 / max(n_a - 1.0, 1.0)
+        step = max(1, CHUNK // 4)
+        for start in range(0, len(S_t), step):
+            p = slice(start, start + step)
+            outer = m_a[p, :, None] * m_a[p, None, :]
+            cross = (s_t[p] - s_a[p])[:, :, None] * m_a[p, None, :]
+            here = np.subtract(S_t[p], S_a[p], out=second[p])
+            here -= cross
+            here -= cross.swapaxes(1, 2)
+            here *= 1.0 / n_b
+            here += outer
+            cov_a[p] -= np.multiply(n_a, outer, out=cross)
+            cov_a[p] *= 1.0 / max(n_a - 1.0, 1.0)
         weights = None
         if self.observed_ is not None:  # partly masked locations are left out of the choice
             full = self.observed_[::HELDOUT_EVERY].all(axis=1)
