@@ -1091,3 +1091,88 @@ def test_in_two_parts_equal_the_whole_run():
     for name in ("maps", "scores", "filled", "since", "late", "stepped", "levels"):
         assert np.array_equal(getattr(two, name), getattr(whole, name), equal_nan=True), name
     assert whole.stepped.any() and (whole.scores[whole.stepped] > 0).any()
+
+
+def test_a_reference_is_taken_from_the_frames_that_show_the_ground():
+    # A spill (10, look 0.5) at (2, 3) from frame 8, set down just after passers-by crossed
+    # that cell in 3 of the 6 frames before it (40, 30, 50 with their own looks): the second
+    # largest of the frames before is a passer-by's (40), above the spill, which never
+    # steps up. With ``ground`` the reference is taken from the frames before whose looks
+    # agree with their median (the floor's), and the spill is flagged on its 3rd frame (the
+    # window's 4th frame, the passer-by of frame 7, is the one set aside).
+    # Common practice, no source: the long-term background of abandoned-object detection
+    # is what the place shows when nothing is in front of it.
+    n = 16
+    maps = np.zeros((n, 6, 8), np.float32)
+    looks = np.zeros((n, 6, 8), np.float32)
+    maps[8:, 2, 3], looks[8:, 2, 3] = 10.0, 0.5
+    for i, v, lk in ((3, 40.0, -0.4), (5, 30.0, 0.8), (7, 50.0, 0.3)):
+        maps[i, 2, 3], looks[i, 2, 3] = v, lk
+    times = np.arange(n) * 2.0
+    kw = dict(threshold=5.0, past=8, start_threshold=60.0, min_past=MIN_PAST, looks=looks,
+              change=0.05, shown=True)
+    plain = persistence(maps, times, 4, 10.0, **kw)
+    ground = persistence(maps, times, 4, 10.0, ground=True, **kw)
+    assert not (plain.filled & (plain.scores > 5.0)).any()
+    assert np.flatnonzero(ground.filled & (ground.scores > 5.0)).tolist() == list(range(10, n))
+    # _reference against its formula cell by cell (numpy.median, numpy.sort): the second
+    # largest of the values whose look is within change of the looks' median, at least 0,
+    # where at least min_past of them agree; else (and where higher) past_level's
+    from inspector.core.persistence import _reference
+
+    rng = np.random.default_rng(5)
+    for k in (3, 5, 8):
+        vals = rng.normal(0.0, 5.0, (k, 5, 6)).astype(np.float32)
+        lks = np.where(rng.random((k, 5, 6)) < 0.6, 0.0,
+                       rng.uniform(-1.0, 1.0, (k, 5, 6))).astype(np.float32)
+        lks += rng.normal(0.0, 0.01, lks.shape).astype(np.float32)
+        got = _reference(list(vals), 2.0, list(lks), 0.05, MIN_PAST)
+        np.testing.assert_array_equal(_reference(list(vals), 2.0), past_level(vals / 2.0))
+        for y in range(5):
+            for x in range(6):
+                v, lk = vals[:, y, x] / 2.0, lks[:, y, x]
+                want = max(np.sort(v)[-2], 0.0)
+                ok = np.abs(lk - np.median(lk)) <= 0.05
+                if ok.sum() >= MIN_PAST:
+                    want = min(want, max(np.sort(v[ok])[-2], 0.0))
+                assert got[y, x] == pytest.approx(want, abs=1e-6)
+
+
+def test_a_frame_unlike_its_window_is_not_flagged_for_it():
+    # A long load on a slow truck covers the cells (2, 3)-(3, 4) in 4 consecutive frames
+    # (8-11), read 40 to 60 (within a factor 2 of each other: steady enough for the steady
+    # level) while its look and its brightness there change from frame to frame: with
+    # ``shown`` True (held cells only) frame 11 is flagged. With "all", a frame whose look
+    # and own brightness both differ from the median of the window's other frames by more
+    # than ``change`` is not flagged where no cell is held, and the truck is not. A parcel
+    # (20, one look) at (2, 10)-(3, 11) from frame 20 is flagged on its 4th frame either
+    # way; a passer-by in front of it at frame 26 unflags that frame only (its hold goes
+    # on: frames 27 on are flagged again).
+    n = 32
+    maps = np.zeros((n, 6, 14), np.float32)
+    rng = np.random.default_rng(2)
+    looks = rng.normal(0.0, 0.002, maps.shape).astype(np.float32)
+    bright = rng.normal(3.0, 0.002, maps.shape).astype(np.float32)
+    for i, v, lk in zip(range(8, 12), (40.0, 60.0, 45.0, 42.0), (0.6, 0.5, 0.35, 0.2)):
+        maps[i, 2:4, 3:5], looks[i, 2:4, 3:5], bright[i, 2:4, 3:5] = v, lk, 3.0 + lk
+    maps[20:, 2:4, 10:12], looks[20:, 2:4, 10:12], bright[20:, 2:4, 10:12] = 20.0, 0.4, 3.4
+    maps[26, 2:4, 10:12], looks[26, 2:4, 10:12], bright[26, 2:4, 10:12] = 300.0, -0.5, 2.5
+    times = np.arange(n) * 2.0
+    kw = dict(threshold=5.0, past=8, start_threshold=600.0, min_past=MIN_PAST, around=3,
+              looks=looks, change=0.05, brightness=bright)
+    held_only = persistence(maps, times, 4, 10.0, shown=True, **kw)
+    every = persistence(maps, times, 4, 10.0, shown="all", **kw)
+    flags = [np.flatnonzero(r.filled & (r.scores > 5.0)).tolist() for r in (held_only, every)]
+    assert flags[0] == [11] + list(range(23, 26)) + list(range(27, n))
+    assert flags[1] == list(range(23, 26)) + list(range(27, n))
+    # it runs in calibration (no threshold, nothing held) as at scan time
+    free = persistence(maps, times, 4, 10.0, shown="all", past=8, min_past=MIN_PAST, around=3,
+                       looks=looks, change=0.05, brightness=bright)
+    assert free.scores[11] <= 0.0 < held_only.scores[11]
+    # and a baseline keeps which it ran with
+    meta = {"window": 4, "max_gap": 10.0, "threshold": {"value": 5.0, "alpha": 0.01, "n": 48, "guaranteed": 0.02,
+                          "frames_short": 51},
+            "transient_share": 0.5, "busy": True, "shown": "all", "ground": True}
+    p = Persistence.from_saved(meta, np.zeros(48))
+    assert p.shown == "all" and p.ground and p.to_json()["shown"] == "all"
+    assert not Persistence.from_saved(dict(meta, shown=True, ground=False), np.zeros(48)).ground

@@ -36,7 +36,9 @@ both stay. What tells them apart is when they came. So the persistence map is th
 level less a reference, the level of the same cell in the ``past`` frames just before the
 window (:func:`past_level`; twice the window since the local median, the window before
 that): a thing left shows as a step, unusual now and not just before;
-light that was already there before the window, or grows over minutes, does not. A cell
+light that was already there before the window, or grows over minutes, does not (where
+passers-by crossed the place in several of those frames, the reference is taken from the
+frames whose looks agree with most of them: ``ground``). A cell
 above its threshold keeps its reference while it stays above (held), so a thing left stays
 flagged as long as it stays and is not taken into its own reference; a held cell is flagged
 only in frames that show what it holds (``shown``), so the flag ends with the frame in which
@@ -263,10 +265,11 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 start_threshold: float | None = None, around: int = 1, local: int = 0,
                 footprint: int = 1, made_local: bool = False, min_past: int = 1,
                 looks: np.ndarray | None = None, change: float = 0.0,
-                shown: bool = False, normal: np.ndarray | None = None,
+                shown: bool | str = False, normal: np.ndarray | None = None,
                 crossed: bool | str = False,
                 brightness: np.ndarray | None = None,
-                settle_noise: bool = False, settle_look: bool = False) -> PersistenceResult:
+                settle_noise: bool = False, settle_look: bool = False,
+                ground: bool = False) -> PersistenceResult:
     """Persistence maps of consecutive frames of one camera's stream.
 
     Parameters
@@ -357,6 +360,17 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         can read as unusual as the thing did, but does not look like it. The spread can
         only grow and the look only takes flags away, so the flags are a subset of those
         without it (the calibrated rate still holds; calibration holds no cell).
+        "all": as True, and with ``brightness``, a frame measured from a reference is not
+        flagged at a cell not held where its look and its own brightness (frame-relative)
+        both differ by more than ``change`` (or the window's own noise of each, where larger:
+        a dark stretch) from the median of the window's other frames
+        (:func:`_odd_both`): what stays looks the same in the frame judged as in the frames
+        before it, while a long load on a slow truck covering a cell in every frame of a
+        window (read within a factor 2 from frame to frame, steady enough for the steady
+        level) shows another part of itself in each. A thing crossed in the frame judged is
+        flagged one frame later. This takes flags away from windows that calibration scores
+        too, so it can lower a threshold that such a window had set: it must run in
+        calibration as at scan time (:func:`calibrate_persistence` does).
     normal : ndarray, shape (2, h, w) or (3, h, w), float32, optional
         The camera's normal look (:func:`normal_look`). With ``looks`` and ``change`` > 0, a
         window with too few frames before it for a reference (the first of a run, and the
@@ -430,6 +444,17 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         noise. With ``normal``, only at cells unlike normal, as ``settle_noise``. This adds
         flags: the thresholds must be calibrated with it (:func:`calibrate_persistence`
         does); False for baselines learnt before it.
+    ground : bool
+        With ``looks`` and ``change`` > 0, a window's reference (:func:`past_level` of the
+        frames before it, here and in :func:`seen_through`) is taken, where lower, from
+        those of the frames before whose looks are within ``change`` of their median look,
+        where at least ``min_past`` are (:func:`_reference`): the frames that show the
+        place as it was, not the passers-by crossing it. The second largest of the frames
+        before sets one passer-by aside; a thing set down just after two or three passed
+        over its place (3 of the 6 frames before a spill on an unseen bench scene, read
+        14.5 against the spill's 10 to 20) was measured from a passer-by and never stepped
+        up. This adds flags: the thresholds must be calibrated with it
+        (:func:`calibrate_persistence` does); False for baselines learnt before it.
 
     Returns
     -------
@@ -504,12 +529,18 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         own = (_own(looks, window, held_look, bright, held_bright, around,
                     None if seen is None else seen[1], bright_ref) if settle else None)
         level, raw, scale, win_scaled = _step(frames, window, held, around, scaled, spreads,
-                                              min_past, fixed)
+                                              min_past, fixed,
+                                              looks if ground and gate else None, change)
         stepped = past > 0 and len(frames) >= window + min_past
         found = raw if seen is None else _gated(raw, seen[0], change)
+        if shown == "all" and settle and stepped:  # (a held cell: see the loop below)
+            odd = _odd_both(looks[-window:], bright, change)
+            if odd is not None:
+                odd = odd if held is None else odd & np.isnan(held)
+                found = np.where(odd, np.minimum(found, 0.0), found).astype(np.float32)
         through = (seen_through(frames, looks, window, scale, held, held_look, change, around,
                                 min_past, _brightness_of(looks, bright)
-                                if settle and crossed == "brightness" else None)
+                                if settle and crossed == "brightness" else None, ground)
                    if crossed and gate and stepped else None)
         if through is not None:
             found = np.maximum(found, through)
@@ -590,6 +621,10 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                                - (w.level - w.raw))
                 if w.seen is not None:  # (and where this frame looks as the window's others)
                     odd = ~np.isnan(held) & _odd_one(lbuf[-window:], change)
+                    if shown == "all" and settle:
+                        both = _odd_both(lbuf[-window:], bright, change)
+                        if both is not None:
+                            odd |= np.isnan(held) & both
                     alt = np.where(odd, np.minimum(alt, 0.0), alt).astype(np.float32)
                 alt = alt if w.seen is None else _gated(alt, w.seen[0], change)
                 alt = alt if w.through is None else np.maximum(alt, w.through)
@@ -713,8 +748,8 @@ def _limit(threshold: float, start_threshold: float | None, stepped: bool) -> fl
 
 def seen_through(frames: list, looks: list, window: int, scale: float,
                  held: np.ndarray | None, held_look: np.ndarray | None, change: float,
-                 around: int = 1, min_past: int = 1, bright: list | None = None
-                 ) -> np.ndarray | None:
+                 around: int = 1, min_past: int = 1, bright: list | None = None,
+                 ground: bool = False) -> np.ndarray | None:
     """Per cell, the steady level of the frames, among the last ``window`` + 1, that show
     the same thing as the frame judged, less the reference: what passers-by cross in front
     of.
@@ -781,6 +816,9 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     bright : list of ndarray, shape (h, w), float32, optional
         The frames' :func:`cell_brightness`, each less its median over the frame's cells
         (as ``looks``).
+    ground : bool
+        The reference of the frames before them taken from those that show the place as
+        it was (``ground`` of :func:`persistence`, :func:`_reference`).
 
     Returns
     -------
@@ -793,7 +831,8 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     lk = np.asarray(looks[-span:], np.float32)
     before = np.asarray(looks[:-span], np.float32)
     centre = _median_along(lk)
-    reference = _reference(frames[:-span], scale)
+    reference = _reference(frames[:-span], scale, looks[:-span] if ground else None, change,
+                           min_past)
     usual = _median_along(before)
     apart = np.abs(before - centre)
     kept = _second_smallest(apart) if len(apart) > 2 else apart.min(axis=0)
@@ -876,6 +915,25 @@ def _odd_one(looks: list, change: float) -> np.ndarray:
     """Per cell, whether the newest of a window's ``looks`` differs from the median of the
     others by more than ``change``, bool (h, w)."""
     return np.abs(looks[-1] - _median_along(looks[:-1])) > change
+
+
+def _odd_both(looks: list, bright: dict, change: float) -> np.ndarray | None:
+    """Per cell, whether the newest of a window's ``looks`` differs from the median of the
+    others by more than ``change`` (:func:`_odd_one`) and so does its frame's own brightness
+    (``bright``: by look, see :func:`_by_look`; frame-relative), bool (h, w); None when a
+    look or a brightness is not known. Each by more than the window's own noise of that
+    measure where it is larger (:func:`_look_noise_of`): in a dark stretch the gain
+    amplifies every look's noise, and a thing's looks scatter by it as a floor's do (a
+    night spill on an unseen bench scene, yard 206, read as unlike its window by
+    ``change`` alone and was lost). Both are asked: a passer-by beside a thing moves
+    its look (the mean around it) but not its brightness, and a load of the thing's own
+    shade over it keeps its brightness but not its look (see ``shown`` "all" of
+    :func:`persistence`)."""
+    raw = _brightness_of(looks, bright)
+    if raw is None or any(v is None for v in looks):
+        return None
+    return (_odd_one(looks, _look_noise_of(looks, change))
+            & _odd_one(raw, _look_noise_of(raw, change)))
 
 
 def _by_look(looks: list, brightness) -> dict:
@@ -1445,7 +1503,8 @@ def flat_filter(maps: np.ndarray, size: int, op, after: int | None = None) -> np
 
 def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
           around: int = 1, scaled: bool = False, spreads: dict | None = None,
-          min_past: int = 1, settled: np.ndarray | None = None
+          min_past: int = 1, settled: np.ndarray | None = None,
+          looks: list | None = None, change: float = 0.0
           ) -> tuple[np.ndarray, np.ndarray, float, np.ndarray]:
     """Steady level of the last ``window`` of ``frames`` and that level less the reference
     from the frames before them (:func:`past_level`; none: 0), a held cell keeping its
@@ -1463,7 +1522,8 @@ def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
     win_scaled = win / np.float32(scale)
     level = steady_level(win_scaled, around, settled=settled)
     before = frames[:-window]
-    reference = (_reference(before, scale) if before and len(before) >= min_past
+    reference = (_reference(before, scale, None if looks is None else looks[:-window],
+                            change, min_past) if before and len(before) >= min_past
                  else np.zeros_like(level))
     if held is not None:
         reference = np.where(np.isnan(held), reference, held)
@@ -1497,10 +1557,30 @@ def change_spread(window_maps: np.ndarray, past_maps: np.ndarray) -> float:
     return float(robust_spread(moved[None])[0])
 
 
-def _reference(before: list[np.ndarray], scale: float) -> np.ndarray:
+def _reference(before: list[np.ndarray], scale: float, looks: list | None = None,
+               change: float = 0.0, min_past: int = 1) -> np.ndarray:
     """:func:`past_level` of the frames ``before`` a window (at least one) divided by
-    ``scale`` (see :func:`_step`), shape (h, w), float32."""
-    return past_level(np.asarray(before, np.float32) / np.float32(scale))
+    ``scale`` (see :func:`_step`), shape (h, w), float32.
+
+    With their ``looks`` (one a frame; ``change`` > 0): where at least ``min_past`` (and 2)
+    of the frames have a look within ``change`` of the median of their looks, the
+    :func:`past_level` of those frames alone where that is lower (``ground`` of
+    :func:`persistence`): the frames that show the place as most of them do, passers-by
+    set aside by what they look like rather than only by being the largest. A level of
+    fewer frames is never above the level of all of them (the second largest of a subset
+    is at most that of the whole), so the reference only goes down."""
+    q = np.asarray(before, np.float32) / np.float32(scale)
+    level = past_level(q)
+    if (looks is None or change <= 0 or len(looks) != len(before) or len(before) < 2
+            or any(v is None for v in looks)):
+        return level
+    lk = np.asarray(looks, np.float32)
+    agree = np.abs(lk - _median_along(lk)) <= change
+    enough = agree.sum(axis=0) >= max(min_past, 2)
+    if not enough.any():
+        return level
+    ground = np.maximum(_lowest_and_second(np.where(agree, q, -np.inf))[1], 0.0)
+    return np.where(enough, np.minimum(level, ground), level).astype(np.float32)
 
 
 def _spreads(frames: list[np.ndarray], win: np.ndarray, cache: dict | None) -> np.ndarray:
@@ -1833,9 +1913,12 @@ class Persistence:
         more than this (``change`` of :func:`persistence`): :data:`LARGE` times how much a
         cell's look changes from one normal frame to the next (:func:`look_noise`); 0 (every
         cell counts) for baselines learnt before it, or without looks.
-    shown : bool
+    shown : bool or "all"
         A held cell is flagged only where the frame shows what it holds (``shown`` of
-        :func:`persistence`); False for baselines learnt before it.
+        :func:`persistence`); False for baselines learnt before it. "all" (with
+        ``settle``): a cell not held, too, where the frame looks unlike the window's others
+        by its look and its own brightness, calibrated with it; True for baselines learnt
+        before it.
     normal : ndarray, shape (2, h, w) or (3, h, w), float32, or None
         The camera's normal look (:func:`normal_look` of the calibrating frames), which
         windows without a reference must depart from (``normal`` of :func:`persistence`),
@@ -1866,6 +1949,10 @@ class Persistence:
         (``settle_look`` of :func:`persistence`); False for baselines learnt before it,
         whose thresholds were calibrated without it (0.13's that carry it: as
         ``settle_noise``).
+    ground : bool
+        A window's reference is taken from the frames before it that show the place as most
+        of them do (``ground`` of :func:`persistence`); False for baselines learnt before
+        it, whose thresholds were calibrated without it.
     """
 
     window: int
@@ -1884,12 +1971,13 @@ class Persistence:
     footprint: int = 1
     min_past: int = 1
     change: float = 0.0
-    shown: bool = False
+    shown: bool | str = False
     normal: np.ndarray | None = field(default=None, repr=False)
     crossed: bool | str = False
     settle: bool = False
     settle_noise: bool = False
     settle_look: bool = False
+    ground: bool = False
 
     def cells(self, grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
         """What :meth:`run` takes of each frame (its ``cells``): the frames'
@@ -1914,7 +2002,7 @@ class Persistence:
                            min_past=self.min_past, looks=looks, change=self.change,
                            shown=self.shown, normal=self.normal, crossed=self.crossed,
                            brightness=bright, settle_noise=self.settle_noise,
-                           settle_look=self.settle_look)
+                           settle_look=self.settle_look, ground=self.ground)
 
     def judged(self, run: PersistenceResult) -> tuple[np.ndarray, np.ndarray]:
         """Threshold of each frame of ``run`` and its conformal p-value against the matching
@@ -1959,7 +2047,7 @@ class Persistence:
                "local": self.local, "footprint": self.footprint, "min_past": self.min_past,
                "change": self.change, "shown": self.shown, "crossed": self.crossed,
                "settle": self.settle, "settle_noise": self.settle_noise,
-               "settle_look": self.settle_look}
+               "settle_look": self.settle_look, "ground": self.ground}
         if self.start_threshold is not None:
             out["start_threshold"] = self.start_threshold.to_dict()
         return out
@@ -1982,16 +2070,21 @@ class Persistence:
                    int(meta.get("around", 1)), float(meta.get("floor", 0.0)),
                    int(meta.get("local", 0)), int(meta.get("footprint", 1)),
                    int(meta.get("min_past", 1)), float(meta.get("change", 0.0)),
-                   bool(meta.get("shown", False)),
+                   _shown(meta.get("shown", False)),
                    None if normal is None else np.asarray(normal, np.float32),
                    _crossed(meta.get("crossed", False)), bool(meta.get("settle", False)),
                    bool(meta.get("settle_noise", False)),
-                   bool(meta.get("settle_look", False)))
+                   bool(meta.get("settle_look", False)), bool(meta.get("ground", False)))
 
 
 def _robust(saved) -> bool | str:
     """``robust`` as saved in a baseline's JSON: "window", "change", or a bool."""
     return saved if saved in ("window", "change") else bool(saved)
+
+
+def _shown(saved) -> bool | str:
+    """``shown`` as saved in a baseline's JSON: "all", or a bool."""
+    return saved if saved == "all" else bool(saved)
 
 
 def _crossed(saved) -> bool | str:
@@ -2038,7 +2131,11 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         no spread off its steady level (``settle``; ``brightness`` of :func:`persistence`),
         its looks agreeing within the window's own look noise in a dark stretch
         (``settle_noise``), where the model reads it above its reference also counting by
-        what the picture reads of it (``settle_look``), in calibration as at scan time.
+        what the picture reads of it (``settle_look``), in calibration as at scan time;
+        with it too, a window's reference is taken from the frames before it that show the
+        place as most of them do (``ground``), and a frame unlike its window's others by its
+        look and its own brightness is not flagged where nothing is held (``shown`` "all"),
+        in calibration as at scan time.
 
     Returns
     -------
@@ -2102,6 +2199,7 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
     # (in two threads, whole blocks each: the same numbers, see _in_two)
     step = _in_two(s_maps, s_times, window, max_gap, s_blocks, looks, brightness, past=past,
                    change=change, crossed=crossed, settle_noise=night, settle_look=night,
+                   ground=settle, shown="all" if settle else False,
                    **opts)
     if not step.filled.any():
         raise ValueError(f"no run of {window} consecutive calibrating frames within "
@@ -2121,14 +2219,16 @@ def calibrate_persistence(maps: np.ndarray, times: np.ndarray, blocks: np.ndarra
         return Persistence(window, max_gap, _floored(conformal_threshold(starts, alpha), floor),
                            starts, share, busy, 0, robust, around=AROUND, floor=floor,
                            local=local, footprint=footprint, min_past=MIN_PAST,
-                           change=change, shown=True, normal=normal, crossed=crossed,
-                           settle=settle, settle_noise=night, settle_look=night)
+                           change=change, shown="all" if settle else True, normal=normal,
+                           crossed=crossed,
+                           settle=settle, settle_noise=night, settle_look=night,
+                           ground=settle)
     return Persistence(window, max_gap,
                        _floored(conformal_threshold(step.scores[stepped], alpha), floor),
                        step.scores[stepped], share, busy, past, robust,
                        _floored(conformal_threshold(starts, alpha), floor), starts, AROUND,
-                       floor, local, footprint, MIN_PAST, change, True, normal, crossed,
-                       settle, night, night)
+                       floor, local, footprint, MIN_PAST, change, "all" if settle else True,
+                       normal, crossed, settle, night, night, settle)
 
 
 def _floored(threshold: Threshold, floor: float) -> Threshold:

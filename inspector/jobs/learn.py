@@ -918,8 +918,12 @@ def _persistence_note(p: Persistence, on: bool, mode: str, alpha: float) -> str:
         crossed = (f", also in {p.window - 1} of {p.window + 1} frames that look alike{alike} "
                    f"where passers-by cross it in the others (calibrated with it)"
                    if p.crossed and steps else "")
+        ground = (" (measured from the frames before that look as most of them do, where "
+                  "passers-by cross the place in others)" if p.ground and steps else "")
+        unlike = (", in a frame that looks as the window's others (by its look or its "
+                  "cells' own brightness)" if p.shown == "all" and steps else "")
         clauses.append(f"a change counts where the picture changed (log brightness by more "
-                       f"than {p.change:.3f}{around}){crossed}")
+                       f"than {p.change:.3f}{around}){ground}{unlike}{crossed}")
     if p.settle:
         noise = (", within the frames' own noise when they are dark and it looks unlike "
                  "the normal frames" if p.settle_noise else "")
