@@ -20,17 +20,10 @@ from inspector.core.persistence import (
     MIN_PAST,
     Persistence,
     StreamState,
-    _in_two,
-    _look_reading,
-    _median_along,
-    _own,
-    _second_smallest,
-    _unusual,
-    _sorted_along,
     calibrate_persistence,
     cell_brightness,
-    change_spread,
     cell_looks,
+    change_spread,
     clearly_busy,
     flat_filter,
     held_back,
@@ -48,6 +41,9 @@ from inspector.core.persistence import (
     seen_through,
     steady_level,
 )
+from inspector.core.persistence.calibrate import _in_two
+from inspector.core.persistence.filters import _median_along, _second_smallest, _sorted_along
+from inspector.core.persistence.rules import _look_reading, _own, _unusual
 from inspector.errors import UsageError
 
 
@@ -1118,7 +1114,7 @@ def test_a_reference_is_taken_from_the_frames_that_show_the_ground():
     # _reference against its formula cell by cell (numpy.median, numpy.sort): the second
     # largest of the values whose look is within change of the looks' median, at least 0,
     # where at least min_past of them agree; else (and where higher) past_level's
-    from inspector.core.persistence import _reference
+    from inspector.core.persistence.rules import _reference
 
     rng = np.random.default_rng(5)
     for k in (3, 5, 8):
