@@ -511,7 +511,7 @@ def test_a_lamp_switching_on_is_not_a_thing_left_but_a_parcel_set_down_with_it_i
 
     rel = bright - np.median(bright.reshape(n, -1), axis=1)[:, None, None]
     win = list(looks[4:12])
-    got = _own(win, 4, None, {id(v): (v, b) for v, b in zip(win, rel[4:12])}, None, 3)
+    got = _own(win, 4, None, list(rel[4:12]), None, 3)
     k = local_size((h, w))
     assert k == 7
     look = np.sort(np.abs(looks[8:12] - np.median(looks[4:8], axis=0)), axis=0)[1]

@@ -209,7 +209,7 @@ def _odd_one(looks: list, change: float) -> np.ndarray:
 
 
 def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
-             around: int, bright: dict, reference: np.ndarray | None = None,
+             around: int, bright: list | None, reference: np.ndarray | None = None,
              held_bright: np.ndarray | None = None, moved: tuple | None = None,
              noise: bool = False, unlike: np.ndarray | None = None
              ) -> tuple[np.ndarray, np.ndarray] | None:
@@ -222,7 +222,7 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     before (a held cell: from ``held_look``; ``reference``: that reference when known, see
     :func:`_changed`) by more than ``change`` in all the window's frames but one and in the
     newest (the frame judged: the frame after a thing is taken away is not settled); (2)
-    its own brightness (``bright``: by look, see :func:`_by_look`; each frame's
+    its own brightness (``bright``: one a look, each frame's
     :func:`cell_brightness` less its median over the frame's cells, so that a change of
     exposure, which moves every cell alike, does not count) differs from the median of the
     frames before (a held cell: from the brightness it kept, ``held_bright``) by more than
@@ -258,7 +258,7 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     return own & moved & steady, before_raw
 
 
-def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
+def _own(looks: list, window: int, held_look: np.ndarray | None, bright: list | None,
          held_bright: np.ndarray | None, around: int = 1,
          reference: np.ndarray | None = None, bright_reference: np.ndarray | None = None
          ) -> np.ndarray | None:
@@ -289,7 +289,7 @@ def _own(looks: list, window: int, held_look: np.ndarray | None, bright: dict,
     before = looks[:-window]
     if not before or any(v is None for v in looks):
         return None
-    raw = _brightness_of(looks, bright)
+    raw = bright  # (each look's frame brightness, None when one is not known)
     if raw is None:
         return None
     ref_look = _median_or_held(before, held_look) if reference is None else reference
@@ -320,18 +320,18 @@ def _own_from(looks: list, bright: list, ref_look: np.ndarray, ref_bright: np.nd
                        np.maximum)
 
 
-def _own_change(looks: list, window: int, bright: dict, change: float,
+def _own_change(looks: list, window: int, bright: list | None, change: float,
                 held_bright: np.ndarray | None = None
                 ) -> tuple[np.ndarray, np.ndarray] | None:
     """Per cell, whether its own brightness changed in the window: its frame-relative
-    brightness (``bright``, by look: see :func:`_by_look`) differs from the median of the
+    brightness (``bright``, one a look) differs from the median of the
     frames before the window (a held cell: from ``held_bright``) by more than ``change`` in
     all the window's frames but one and in the newest (:func:`_departs`), bool (h, w); and
     that reference, (h, w) float32. None with no frame before the window or a look or
     brightness missing."""
     if len(looks) <= window or any(v is None for v in looks):
         return None
-    raw = _brightness_of(looks, bright)
+    raw = bright  # (each look's frame brightness, None when one is not known)
     if raw is None:
         return None
     before = _median_or_held(raw[:-window], held_bright)

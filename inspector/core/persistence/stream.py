@@ -405,17 +405,19 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
         what was found on the way (see :class:`_Judged`): the same for a frame in order and
         a late one."""
         seen = _changed(looks, window, held_look, min_past, around) if gate else None
-        moved = _own_change(looks, window, bright, change, held_bright) if settle else None
+        # each look's frame brightness (None: one not known), looked up once for the rules
+        lit = _brightness_of(looks, bright) if settle else None
+        moved = _own_change(looks, window, lit, change, held_bright) if settle else None
         unlike = (_unusual(looks[-window:], normal, around, bright)
                   if settle and (settle_noise or settle_look) and len(looks) > window
                   and _look_noise_of(looks[-window:], change) > change else None)
         unlike = None if unlike is None else unlike > change  # (see settle_noise)
-        fixed = (_settled(looks, window, held_look, change, around, bright,
+        fixed = (_settled(looks, window, held_look, change, around, lit,
                           None if seen is None else seen[1], held_bright, moved,
                           settle_noise, unlike)
                  if settle else None)
         fixed, bright_ref = (None, None) if fixed is None else fixed
-        own = (_own(looks, window, held_look, bright, held_bright, around,
+        own = (_own(looks, window, held_look, lit, held_bright, around,
                     None if seen is None else seen[1], bright_ref) if settle else None)
         level, raw, scale, win_scaled = _step(frames, window, held, around, scaled, spreads,
                                               min_past, fixed,
@@ -428,8 +430,7 @@ def persistence(maps: np.ndarray, times: np.ndarray, window: int, max_gap: float
                 odd = odd if held is None else odd & np.isnan(held)
                 found = np.where(odd, np.minimum(found, 0.0), found).astype(np.float32)
         through = (seen_through(frames, looks, window, scale, held, held_look, change, around,
-                                min_past, _brightness_of(looks, bright)
-                                if settle and crossed == "brightness" else None, ground)
+                                min_past, lit if crossed == "brightness" else None, ground)
                    if crossed and gate and stepped else None)
         if through is not None:
             found = np.maximum(found, through)
