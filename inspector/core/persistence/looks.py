@@ -31,12 +31,17 @@ def _brightness_of(looks: list, bright: dict) -> list | None:
     return [f[1] for f in found]
 
 
+def _or_held(reference: np.ndarray, held: np.ndarray | None) -> np.ndarray:
+    """``reference`` (h, w), but where a cell is held the value it keeps (``held``, NaN
+    elsewhere; None: no cell held)."""
+    return reference if held is None else np.where(np.isnan(held), reference, held)
+
+
 def _median_or_held(before: list, held: np.ndarray | None) -> np.ndarray:
     """A cell's reference: the median of ``before`` (frames' looks or brightness, oldest
     first; :func:`_median_along`), or where a cell is held, the value it keeps (``held``,
     NaN elsewhere), shape (h, w) float32."""
-    reference = _median_along(before)
-    return reference if held is None else np.where(np.isnan(held), reference, held)
+    return _or_held(_median_along(before), held)
 
 
 def _frame_relative(brightness: np.ndarray) -> np.ndarray:

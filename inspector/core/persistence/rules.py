@@ -28,6 +28,7 @@ from inspector.core.persistence.looks import (
     _departure,
     _look_noise_of,
     _median_or_held,
+    _or_held,
 )
 
 
@@ -124,14 +125,14 @@ def seen_through(frames: list, looks: list, window: int, scale: float,
     centre = _median_along(lk)
     reference = _reference(frames[:-span], scale, looks[:-span] if ground else None, change,
                            min_past)
-    usual = _median_along(before)
-    apart = np.abs(before - centre)
+    reference = _or_held(reference, held)
+    if held is None:
+        held_look = None  # (a held look goes with a held reference)
+    usual = _median_or_held(before, held_look)  # the looks before, a held cell's own
+    apart = np.abs(before - centre)  # how far the looks before are from the one agreed on
     kept = _second_smallest(apart) if len(apart) > 2 else apart.min(axis=0)
-    if held is not None:
-        reference = np.where(np.isnan(held), reference, held)
-        if held_look is not None:
-            usual = np.where(np.isnan(held_look), usual, held_look)
-            kept = np.where(np.isnan(held_look), kept, np.abs(centre - held_look))
+    if held_look is not None:
+        kept = np.where(np.isnan(held_look), kept, np.abs(centre - held_look))
     # which frames show the same thing: by their looks, and by the cells' own brightness
     # when known (see above)
     alike = [(lk, centre)]
@@ -468,8 +469,7 @@ def _step(frames: list[np.ndarray], window: int, held: np.ndarray | None = None,
     reference = (_reference(before, scale, None if looks is None else looks[:-window],
                             change, min_past) if before and len(before) >= min_past
                  else np.zeros_like(level))
-    if held is not None:
-        reference = np.where(np.isnan(held), reference, held)
+    reference = _or_held(reference, held)
     return level, (level - reference).astype(np.float32), scale, win_scaled
 
 
