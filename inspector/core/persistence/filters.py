@@ -5,6 +5,7 @@ helpers they share.
 
 from __future__ import annotations
 
+import cv2
 import numpy as np
 
 from inspector.core.persistence.constants import LOCAL_SHARE
@@ -309,8 +310,6 @@ def local_median(maps: np.ndarray, local: int) -> np.ndarray:
     -------
     ndarray, shape (n, h, w), float32
     """
-    import cv2
-
     h, w = maps.shape[1:]
     small = (max(1, w // 2), max(1, h // 2))
     filtered = median_filtered(np.stack([cv2.resize(m, small, interpolation=cv2.INTER_AREA)

@@ -5,6 +5,7 @@ look departs from a reference.
 
 from __future__ import annotations
 
+import cv2
 import numpy as np
 
 from inspector.core.persistence.constants import AROUND, LARGE
@@ -198,8 +199,6 @@ def cell_brightness(grey: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     -------
     ndarray, shape (n, h, w), float32
     """
-    import cv2
-
     h, w = shape
     out = np.empty((len(grey), h, w), np.float32)
     for i, g in enumerate(grey):
@@ -220,8 +219,6 @@ def looks_of(brightness: np.ndarray) -> np.ndarray:
     -------
     ndarray, shape (n, h, w), float32
     """
-    import cv2
-
     brightness = np.asarray(brightness, np.float32)
     k = local_size(brightness.shape)
     out = np.empty(brightness.shape, np.float32)

@@ -6,6 +6,7 @@ and the window since a run began.
 
 from __future__ import annotations
 
+import cv2
 import numpy as np
 
 from inspector.core.persistence.constants import LARGE
@@ -222,23 +223,21 @@ def _settled(looks: list, window: int, held_look: np.ndarray | None, change: flo
     A cell is settled where (1) its own look differs from the median look of the frames
     before (a held cell: from ``held_look``; ``reference``: that reference when known, see
     :func:`_changed`) by more than ``change`` in all the window's frames but one and in the
-    newest (the frame judged: the frame after a thing is taken away is not settled); (2)
-    its own brightness (``bright``: one a look, each frame's
-    :func:`cell_brightness` less its median over the frame's cells, so that a change of
-    exposure, which moves every cell alike, does not count) differs from the median of the
-    frames before (a held cell: from the brightness it kept, ``held_bright``) by more than
-    ``change``, likewise; and (3) the looks of all the window's frames but one (the newest
-    kept) agree within ``change`` (with ``noise``: or within the window's own look noise
-    where that is larger, :func:`_look_noise_of`: in a dark stretch the gain amplifies every
-    look's noise, and one thing's looks scatter by it as a floor's do; with ``unlike``, bool
-    (h, w), only at its cells: see ``settle_noise`` of :func:`persistence`), at every one of
-    the ``around``
+    newest (the frame judged: the frame after a thing is taken away is not settled); (2) its
+    own brightness (``bright``: one a look, each frame's :func:`cell_brightness` less its
+    median over the frame's cells, so that a change of exposure, which moves every cell
+    alike, does not count) differs from the median of the frames before (a held cell: from
+    the brightness it kept, ``held_bright``) by more than ``change``, likewise; and (3) the
+    looks of all the window's frames but one (the newest kept) agree within ``change`` (with
+    ``noise``: or within the window's own look noise where that is larger,
+    :func:`_look_noise_of`: in a dark stretch the gain amplifies every look's noise, and one
+    thing's looks scatter by it as a floor's do; with ``unlike``, bool (h, w), only at its
+    cells: see ``settle_noise`` of :func:`persistence`), at every one of the ``around``
     cells around it; and that brightness reference, (h, w) float32 (what a cell held from
-    this frame keeps). (2) is there
-    because a look
-    is the cell's brightness less the mean around it: when a thing leaves (or comes into)
-    that square, the looks of untouched cells move with the mean, while their brightness
-    does not. ``moved``: (2) as :func:`_own_change` gives it, when already known."""
+    this frame keeps). (2) is there because a look is the cell's brightness less the mean
+    around it: when a thing leaves (or comes into) that square, the looks of untouched cells
+    move with the mean, while their brightness does not. ``moved``: (2) as
+    :func:`_own_change` gives it, when already known."""
     if window < 3:
         return None
     found = moved if moved is not None else _own_change(looks, window, bright, change,
@@ -300,7 +299,7 @@ def _own(looks: list, window: int, held_look: np.ndarray | None, bright: list | 
 
 
 def _own_from(looks: list, bright: list, ref_look: np.ndarray, ref_bright: np.ndarray,
-                around: int = 1) -> np.ndarray:
+              around: int = 1) -> np.ndarray:
     """:func:`_own` of a window's ``looks`` and their frames' ``bright`` (each less its
     frame's median) from the references ``ref_look`` and ``ref_bright``, all (h, w): per
     frame the absolute change of the look less the mean over the :func:`local_size` square
@@ -312,8 +311,6 @@ def _own_from(looks: list, bright: list, ref_look: np.ndarray, ref_bright: np.nd
         look, moved = _second_smallest(look), _second_smallest(moved)
     else:
         look, moved = look.min(axis=0), moved.min(axis=0)
-    import cv2
-
     k = local_size(look.shape)
     around_moved = cv2.blur(np.ascontiguousarray(moved, np.float32), (k, k),
                             borderType=cv2.BORDER_REPLICATE)
