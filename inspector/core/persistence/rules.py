@@ -210,6 +210,25 @@ def _odd_one(looks: list, change: float) -> np.ndarray:
     return np.abs(looks[-1] - _median_along(looks[:-1])) > change
 
 
+def _odd_both(looks: list, bright: dict, change: float) -> np.ndarray | None:
+    """Per cell, whether the newest of a window's ``looks`` differs from the median of the
+    others by more than ``change`` (:func:`_odd_one`) and so does its frame's own brightness
+    (``bright``: by look, see :func:`_by_look`; frame-relative), bool (h, w); None when a
+    look or a brightness is not known. Each by more than the window's own noise of that
+    measure where it is larger (:func:`_look_noise_of`): in a dark stretch the gain
+    amplifies every look's noise, and a thing's looks scatter by it as a floor's do (a
+    night spill on an unseen bench scene, yard 206, read as unlike its window by
+    ``change`` alone and was lost). Both are asked: a passer-by beside a thing moves
+    its look (the mean around it) but not its brightness, and a load of the thing's own
+    shade over it keeps its brightness but not its look (see ``shown`` "all" of
+    :func:`persistence`)."""
+    raw = _brightness_of(looks, bright)
+    if raw is None or any(v is None for v in looks):
+        return None
+    return (_odd_one(looks, _look_noise_of(looks, change))
+            & _odd_one(raw, _look_noise_of(raw, change)))
+
+
 def _settled(looks: list, window: int, held_look: np.ndarray | None, change: float,
              around: int, bright: list | None, reference: np.ndarray | None = None,
              held_bright: np.ndarray | None = None, moved: tuple | None = None,
