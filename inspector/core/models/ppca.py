@@ -237,29 +237,6 @@ class TopPairs:
         return self._w[:self.keep], (self._z if self.vectors else None)
 
 
-_TRIM = None  # see release_free_memory
-
-
-def release_free_memory() -> None:
-    """Hand the heap memory freed so far back to the system (glibc's ``malloc_trim``; a
-    no-op where there is none). glibc keeps what the threads of a learn free (batches of
-    frames, their preparation's temporaries) for later allocations: before each model fit
-    of a 2,000-frame learn 700-825 MB were resident, 540-630 MB after a trim, and the fits'
-    own large arrays then came on top of that (learn's peak). Costs a few milliseconds and
-    the pages' later reuse faulting them in again."""
-    global _TRIM
-    if _TRIM is None:
-        import ctypes
-        import ctypes.util
-
-        try:
-            _TRIM = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim
-        except (OSError, AttributeError):  # (not glibc)
-            _TRIM = False
-    if _TRIM:
-        _TRIM(0)
-
-
 def in_chunks(fn, n: int, workers: int = 2, pool=None) -> list:
     """``[fn(0), ..., fn(n - 1)]``, run in ``pool`` (an executor shared with other work) or
     else in ``workers`` threads of their own (in this thread when there is one job), BLAS
@@ -1341,7 +1318,6 @@ class PatchPPCA(DensityModel):
         ``pool``'s, see :func:`in_chunks`), so the covariances of all locations (the largest
         array of a fit) never exist at once.
         """
-        release_free_memory()  # (before the covariances: see release_free_memory)
         q = latent or self.latent
         if not q:  # the explained-variance rule looks at every location's spectrum first
             mean, cov, _ = moments.mean_cov(**subset)
@@ -1408,7 +1384,6 @@ class PatchPPCA(DensityModel):
         n_b = n_t - n_a
         if n_a < 2 or n_b < 1:
             return 0
-        release_free_memory()  # (before its arrays as large as the scatter)
         m_a = s_a / n_a
         # Second moment of the last block about the earlier mean (both about the shift):
         # (S_b - s_b m^T - m s_b^T) / n_b + m m^T; the earlier covariance
