@@ -1,3 +1,3 @@
 """inspector: learn each fixed camera's normal appearance, flag frames that do not fit it."""
 
-__version__ = "0.13.0"
+__version__ = "0.14.0"
