@@ -272,7 +272,7 @@ class PersistenceSettings:
     @staticmethod
     def check(s: "PersistenceSettings", where: str) -> None:
         if s.mode not in PERSISTENCE_MODES:
-            raise UsageError(f"{where} persistence mode {s.mode!r}: choose one of "
+            raise UsageError(f"{where} {s.mode!r} is not a persistence mode: choose one of "
                              f"{', '.join(PERSISTENCE_MODES)}")
 
 
@@ -324,13 +324,14 @@ class Config:
                     "conditions": self.conditions}
         out: dict[str, Any] = {}
         # [persistence] keys read "persistence" and "persistence_window" in a camera table.
-        mine = {k: table.pop(f"persistence{s}") for k, s in (("mode", ""), ("window", "_window"))
-                if f"persistence{s}" in table}
-        out["persistence"] = _build(PersistenceSettings, mine, where, base=self.persistence)
+        labels = {"mode": "persistence", "window": "persistence_window"}
+        mine = {k: table.pop(label) for k, label in labels.items() if label in table}
+        out["persistence"] = _build(PersistenceSettings, mine, where, base=self.persistence,
+                                    source=self.source, labels=labels)
         for key, current in sections.items():
             names = {f.name for f in fields(current)}
             mine = {k: table.pop(k) for k in list(table) if k in names}
-            out[key] = _build(type(current), mine, where, base=current)
+            out[key] = _build(type(current), mine, where, base=current, source=self.source)
         if table:
             raise UsageError(f"{self.source}: unknown key {where} {sorted(table)[0]!r}")
         return CameraConfig(name=name, mask=mask, **out)
@@ -449,8 +450,12 @@ def _typed(value: Any, kind: type, name: str) -> Any:
     return value
 
 
-def _build(cls: type, table: Any, where: str, base: Any = None, source: str = "") -> Any:
-    """Make dataclass ``cls`` from a TOML table, checking names, types and ranges."""
+def _build(cls: type, table: Any, where: str, base: Any = None, source: str = "",
+           labels: dict[str, str] | None = None) -> Any:
+    """Make dataclass ``cls`` from a TOML table, checking names, types and ranges.
+
+    ``labels``: a field's key as the user wrote it, where it differs (a camera table's
+    ``persistence_window`` for [persistence]'s ``window``), for the messages."""
     prefix = f"{source}: " if source else ""
     if not isinstance(table, dict):
         raise UsageError(f"{prefix}{where} must be a table")
@@ -462,10 +467,12 @@ def _build(cls: type, table: Any, where: str, base: Any = None, source: str = ""
             raise UsageError(f"{prefix}unknown key {where} {key!r}")
         default = getattr(base, key)
         kind = tuple if isinstance(default, tuple) else type(default)
-        value = _typed(value, kind, f"{prefix}{where} {key}")
+        label = (labels or {}).get(key, key)
+        value = _typed(value, kind, f"{prefix}{where} {label}")
         lo_hi = _RANGES.get(key)
         if lo_hi and not (lo_hi[0] <= value <= lo_hi[1]):
-            raise UsageError(f"{prefix}{where} {key} = {value!r} is outside [{lo_hi[0]}, {lo_hi[1]}]")
+            raise UsageError(f"{prefix}{where} {label} = {value!r} is outside "
+                             f"[{lo_hi[0]}, {lo_hi[1]}]")
         values[key] = value
     built = replace(base, **values)
     check = getattr(built, "check", None)  # a section's own rules beyond types and ranges

@@ -875,6 +875,10 @@ def test_bad_persistence_mode_is_a_usage_error(tmp_path):
     path.write_text('[cameras.gate]\npersistence = "sometimes"\n')
     with pytest.raises(UsageError, match="persistence"):
         load_config(path)
+    # A camera table's key is named as the user wrote it, with the file it is in.
+    path.write_text('[cameras.gate]\npersistence_window = 99\n')
+    with pytest.raises(UsageError, match=r"c\.toml: \[cameras\.gate\] persistence_window = 99"):
+        load_config(path).camera("gate")
 
 
 def test_events_carry_since():
